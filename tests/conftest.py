@@ -1,0 +1,8 @@
+"""Shared pytest fixtures. Warnings are errors (pyproject.toml)."""
+
+from __future__ import annotations
+
+import os
+
+# matplotlib must never try to open a window in tests or CI
+os.environ.setdefault("MPLBACKEND", "Agg")
