@@ -148,7 +148,7 @@ _PREFIXES = [
 
 
 def format_si(value: float | None, unit: str, digits: int = 4) -> str:
-    """Format an SI value with an engineering prefix for display, e.g. ``1.23e-7, "s"`` → ``"123 ns"``.
+    """Format an SI value with an engineering prefix, e.g. ``(1.23e-7, "s")`` → ``"123 ns"``.
 
     Parameters
     ----------
@@ -166,11 +166,9 @@ def format_si(value: float | None, unit: str, digits: int = 4) -> str:
     if value == 0:
         return f"0 {unit}".strip()
     magnitude = abs(value)
-    for scale, prefix in _PREFIXES:
-        if magnitude >= scale * 0.9995:
-            break
-    else:
-        scale, prefix = _PREFIXES[-1]
+    scale, prefix = next(
+        ((s, p) for s, p in _PREFIXES if magnitude >= s * 0.9995), _PREFIXES[-1]
+    )
     scaled = value / scale
     text = f"{scaled:.{digits}g}"
     return f"{text} {prefix}{unit}".strip()
