@@ -1,0 +1,602 @@
+"""SCPI command tables: one YAML file per instrument family, read by drivers *and* the simulator.
+
+A table names every operation of a role (``channel_range``, ``fire``, ...) and gives the exact
+string sent for it, with ``{placeholders}`` for parameters. Drivers format the string
+(:meth:`CommandTable.format`); the simulated instruments turn received strings back into the
+operation name and parameter values (:meth:`CommandTable.match`). Adding an instrument family
+is writing a table (DEVELOPERS.md "Adding an instrument family"); no code changes.
+
+Table layout (see ``commands/scope-generic.yaml`` for a complete example)::
+
+    family: scope-generic          # must match the file name
+    role: scope                    # scope | pulse | supply | thermal | handler
+    identity: {fields: [manufacturer, model, serial, firmware], simulated: {...}}
+    constants: {codes_per_div: 25}           # names usable in expressions
+    commands:
+      channel_range:
+        send: "CHANnel{channel}:RANGe {range}"   # SCPI mnemonics: upper case = short form
+        args: {channel: int, range: float}       # int | float | bool | str | {enum: {...}}
+        compute: {scale: "range / 10"}           # optional: wire value from driver inputs
+        inverse: {range: "scale * 10"}           # optional: driver inputs from wire values
+        limits: {range: [0.001, 10000]}          # simulator answers -222 outside
+        returns: float                           # queries only: float|int|bool|str|csv|error|block
+        from_wire: "value + 273.15"              # optional reply conversion (and to_wire)
+    waveform: {...}                # scopes only: sample format, terminator, scaling recipe
+
+Expressions are plain arithmetic (``+ - * /``, unary minus, parentheses, numbers, names) and
+are evaluated without ``eval``.
+"""
+
+from __future__ import annotations
+
+import ast
+import operator
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from functools import lru_cache
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from benchrun.errors import ConfigError, ProtocolError
+from benchrun.instruments import scpi
+
+ROLES = ("scope", "pulse", "supply", "thermal", "handler")
+
+#: IEEE 488.2 common commands and the SCPI error query every family must name.
+COMMON_COMMANDS = (
+    "identify",
+    "reset",
+    "clear_status",
+    "operation_complete",
+    "event_status",
+    "next_error",
+)
+
+#: Operations each role's driver and simulator use; a table must define all of them.
+ROLE_COMMANDS: dict[str, tuple[str, ...]] = {
+    "scope": (
+        "channel_display",
+        "channel_range",
+        "channel_offset",
+        "channel_probe",
+        "sample_interval",
+        "record_length",
+        "time_start",
+        "trigger_source",
+        "trigger_level",
+        "trigger_slope",
+        "arm_single",
+        "acquisition_done",
+        "waveform_data",
+    ),
+    "pulse": (
+        "pulse_count",
+        "first_width",
+        "off_time",
+        "second_width",
+        "gate_resistance",
+        "output",
+        "output_state",
+        "fire",
+    ),
+    "supply": (
+        "voltage",
+        "current_limit",
+        "output",
+        "output_state",
+        "measure_voltage",
+        "measure_current",
+    ),
+    "thermal": ("setpoint", "setpoint_value", "measure_temperature", "output"),
+    "handler": ("list_devices", "select", "selected"),
+}
+
+ARG_TYPES = ("int", "float", "bool", "str")
+RETURN_TYPES = ("float", "int", "bool", "str", "csv", "error", "block")
+
+_PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
+_MNEMONIC = re.compile(r"[A-Za-z]+")
+_VALUE_PATTERN = r"[^,;\s]+"
+
+
+# --- arithmetic expressions ------------------------------------------------------------------
+
+_BINARY = {ast.Add: operator.add, ast.Sub: operator.sub, ast.Mult: operator.mul,
+           ast.Div: operator.truediv}
+
+
+@lru_cache(maxsize=512)
+def _parse_expression(text: str) -> ast.Expression:
+    tree = ast.parse(text, mode="eval")
+    for node in ast.walk(tree):
+        allowed = (ast.Expression, ast.BinOp, ast.UnaryOp, ast.USub, ast.UAdd, ast.Name,
+                   ast.Load, ast.Constant, *_BINARY)
+        if not isinstance(node, allowed):
+            raise ValueError(f"not allowed in a table expression: {type(node).__name__}")
+        if isinstance(node, ast.Constant) and not isinstance(node.value, int | float):
+            raise ValueError("only numeric constants are allowed")
+    return tree
+
+
+def expression_names(text: str) -> set[str]:
+    """Names an expression refers to."""
+    return {n.id for n in ast.walk(_parse_expression(text)) if isinstance(n, ast.Name)}
+
+
+def evaluate(text: str, names: Mapping[str, float]) -> float:
+    """Evaluate a table expression (``+ - * /``, unary signs, numbers, names) safely."""
+
+    def walk(node: ast.AST) -> float:
+        if isinstance(node, ast.Expression):
+            return walk(node.body)
+        if isinstance(node, ast.Constant):
+            return float(node.value)
+        if isinstance(node, ast.Name):
+            if node.id not in names:
+                raise KeyError(node.id)
+            return float(names[node.id])
+        if isinstance(node, ast.UnaryOp):
+            value = walk(node.operand)
+            return -value if isinstance(node.op, ast.USub) else value
+        if isinstance(node, ast.BinOp):
+            return _BINARY[type(node.op)](walk(node.left), walk(node.right))
+        raise ValueError(f"unsupported expression node {type(node).__name__}")
+
+    return walk(_parse_expression(text))
+
+
+# --- table records -----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ArgSpec:
+    """One parameter of a command: its type, and for enums the driver value → wire token map."""
+
+    name: str
+    kind: str
+    enum: Mapping[str, str] = field(default_factory=dict)
+
+    def to_wire(self, value: Any) -> str:
+        if self.kind == "enum":
+            try:
+                return self.enum[str(value)]
+            except KeyError as exc:
+                raise ValueError(f"{self.name}: {value!r} not one of {sorted(self.enum)}") from exc
+        if self.kind == "int":
+            return str(int(value))
+        if self.kind == "float":
+            return scpi.format_value(float(value))
+        if self.kind == "bool":
+            return "1" if value else "0"
+        return str(value)
+
+    def from_wire(self, token: str) -> Any:
+        """Wire token → value; ValueError when it does not fit the type (simulator: -224)."""
+        if self.kind == "enum":
+            for key, wire in self.enum.items():
+                if _mnemonic_regex(wire).fullmatch(token):
+                    return key
+            raise ValueError(f"{token!r} not one of {list(self.enum.values())}")
+        if self.kind == "int":
+            value = float(token)
+            if value != int(value):
+                raise ValueError(f"{token!r} is not an integer")
+            return int(value)
+        if self.kind == "float":
+            return float(token)
+        if self.kind == "bool":
+            upper = token.upper()
+            if upper in ("1", "ON"):
+                return True
+            if upper in ("0", "OFF"):
+                return False
+            raise ValueError(f"{token!r} is not a boolean")
+        return token
+
+
+@dataclass(frozen=True)
+class CommandSpec:
+    """One named operation of a command table."""
+
+    name: str
+    send: str
+    args: tuple[ArgSpec, ...] = ()
+    compute: Mapping[str, str] = field(default_factory=dict)
+    inverse: Mapping[str, str] = field(default_factory=dict)
+    limits: Mapping[str, tuple[float, float]] = field(default_factory=dict)
+    returns: str | None = None
+    true_values: tuple[str, ...] = ("1", "ON")
+    false_value: str = "0"
+    from_wire: str | None = None
+    to_wire: str | None = None
+
+    @property
+    def is_query(self) -> bool:
+        return self.returns is not None
+
+    def arg(self, name: str) -> ArgSpec:
+        for a in self.args:
+            if a.name == name:
+                return a
+        raise KeyError(name)
+
+
+@dataclass(frozen=True)
+class WaveformSpec:
+    """How a scope family delivers a trace and how codes become volts.
+
+    ``gain``/``offset``/``dt``/``t_start`` are expressions over the values read by
+    ``scaling_queries`` (and the table constants): channel volts = codes × gain + offset.
+    ``simulated`` gives, for the simulator, each scaling value as an expression over
+    ``gain, offset, dt, t_start`` so both ends agree by construction (checked by tests).
+    """
+
+    sample_format: str  # "int8" | "int16"
+    byte_order: str  # "little" | "big"
+    terminator_after_block: bool
+    code_min: int
+    code_max: int
+    select_source: str | None
+    scaling_queries: Mapping[str, str]
+    gain: str
+    offset: str
+    dt: str
+    t_start: str
+    simulated: Mapping[str, str]
+
+    @property
+    def numpy_dtype(self) -> str:
+        endian = "<" if self.byte_order == "little" else ">"
+        return "i1" if self.sample_format == "int8" else f"{endian}i2"
+
+
+@dataclass(frozen=True)
+class CommandTable:
+    """A loaded, validated command table for one instrument family."""
+
+    family: str
+    role: str
+    description: str
+    idn_order: tuple[str, ...]
+    simulated_identity: Mapping[str, str]
+    constants: Mapping[str, float]
+    commands: Mapping[str, CommandSpec]
+    waveform: WaveformSpec | None
+    source: str
+    channels: int = 0
+    extra: Mapping[str, Any] = field(default_factory=dict)
+
+    def spec(self, name: str) -> CommandSpec:
+        try:
+            return self.commands[name]
+        except KeyError as exc:
+            raise ConfigError(f"command table {self.family} has no command {name!r}",
+                              file=self.source, field=name) from exc
+
+    def has(self, name: str) -> bool:
+        return name in self.commands
+
+    def format(self, name: str, **inputs: Any) -> str:
+        """The exact string to send for ``name`` with driver-level ``inputs``."""
+        spec = self.spec(name)
+        values: dict[str, Any] = dict(inputs)
+        for target, expr in spec.compute.items():
+            values[target] = evaluate(expr, {**self.constants, **values})
+        wire: dict[str, str] = {}
+        for arg in spec.args:
+            if arg.name not in values:
+                raise TypeError(f"{self.family}.{name}: missing parameter {arg.name!r}")
+            wire[arg.name] = arg.to_wire(values[arg.name])
+        return _PLACEHOLDER.sub(lambda m: wire[m.group(1)], spec.send)
+
+    def parse_reply(self, name: str, text: str) -> Any:
+        """Convert a text reply of query ``name`` to its declared type."""
+        spec = self.spec(name)
+        kind = spec.returns
+        if kind == "float":
+            value = scpi.parse_float(text)
+            if spec.from_wire:
+                value = evaluate(spec.from_wire, {**self.constants, "value": value})
+            return value
+        if kind == "int":
+            return scpi.parse_int(text)
+        if kind == "bool":
+            return scpi.parse_bool(text, spec.true_values)
+        if kind == "csv":
+            stripped = text.strip()
+            return [p.strip().strip('"') for p in stripped.split(",")] if stripped else []
+        if kind == "error":
+            return scpi.parse_error_entry(text)
+        if kind == "str":
+            return text.strip().strip('"')
+        raise ProtocolError(f"{self.family}.{name} does not return text")
+
+    def format_reply(self, name: str, value: Any) -> str:
+        """Simulator side: the text answer of query ``name`` for ``value``."""
+        spec = self.spec(name)
+        kind = spec.returns
+        if kind == "float":
+            v = float(value)
+            if spec.to_wire:
+                v = evaluate(spec.to_wire, {**self.constants, "value": v})
+            return scpi.format_value(v)
+        if kind == "int":
+            return str(int(value))
+        if kind == "bool":
+            return spec.true_values[0] if value else spec.false_value
+        if kind == "csv":
+            return ",".join(str(v) for v in value)
+        return str(value)
+
+    _matchers: tuple[tuple[re.Pattern[str], CommandSpec], ...] = field(
+        default=(), init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "_matchers", _build_matchers(self.commands.values()))
+
+    def match(self, message: str) -> tuple[CommandSpec, dict[str, Any]] | None:
+        """Simulator side: (spec, driver-level values) for a received message, or None.
+
+        Raises
+        ------
+        ValueError
+            When the header matched but a parameter is of the wrong type (SCPI -224).
+        """
+        text = message.strip()
+        for pattern, spec in self._matchers:
+            m = pattern.fullmatch(text)
+            if not m:
+                continue
+            values: dict[str, Any] = {}
+            for arg in spec.args:
+                values[arg.name] = arg.from_wire(m.group(arg.name))
+            for target, expr in spec.inverse.items():
+                values[target] = evaluate(expr, {**self.constants, **values})
+            return spec, values
+        return None
+
+
+def _mnemonic_regex(word: str) -> re.Pattern[str]:
+    return re.compile(_mnemonic_pattern(word), re.IGNORECASE)
+
+
+def _mnemonic_pattern(word: str) -> str:
+    """``CHANnel`` → accepts ``CHAN`` or ``CHANNEL`` (SCPI-1999 Vol. 1 §6.2.1 short/long form)."""
+    short = len(word) - len(word.lstrip("ABCDEFGHIJKLMNOPQRSTUVWXYZ"))
+    if 0 < short < len(word) and word[short:].islower():
+        return f"{re.escape(word[:short])}(?:{re.escape(word[short:])})?"
+    return re.escape(word)
+
+
+def _literal_pattern(text: str) -> str:
+    out: list[str] = []
+    pos = 0
+    for m in _MNEMONIC.finditer(text):
+        out.append(_escape_literal(text[pos : m.start()]))
+        out.append(_mnemonic_pattern(m.group(0)))
+        pos = m.end()
+    out.append(_escape_literal(text[pos:]))
+    return "".join(out)
+
+
+def _escape_literal(text: str) -> str:
+    return "".join(r"\s+" if ch == " " else re.escape(ch) for ch in text)
+
+
+def _build_matchers(specs: Any) -> tuple[tuple[re.Pattern[str], CommandSpec], ...]:
+    result = []
+    for spec in specs:
+        pattern = []
+        pos = 0
+        for m in _PLACEHOLDER.finditer(spec.send):
+            pattern.append(_literal_pattern(spec.send[pos : m.start()]))
+            pattern.append(f"(?P<{m.group(1)}>{_VALUE_PATTERN})")
+            pos = m.end()
+        pattern.append(_literal_pattern(spec.send[pos:]))
+        body = "".join(pattern)
+        if not spec.send.startswith("*"):
+            body = ":?" + body  # a leading colon is allowed on SCPI headers
+        result.append((re.compile(body, re.IGNORECASE), spec))
+    return tuple(result)
+
+
+# --- loading and validation ----------------------------------------------------------------------
+
+
+def families() -> list[str]:
+    """Names of the command tables shipped with benchrun."""
+    folder = resources.files("benchrun.instruments") / "commands"
+    return sorted(p.name[:-5] for p in folder.iterdir() if p.name.endswith(".yaml"))
+
+
+def load_table(family_or_path: str | Path) -> CommandTable:
+    """Load and validate a command table by family name (shipped tables) or file path.
+
+    Raises
+    ------
+    ConfigError
+        Unknown family, unreadable file, or a table that does not validate (names the field).
+    """
+    text_path = str(family_or_path)
+    if text_path.endswith((".yaml", ".yml")) or "/" in text_path:
+        path = Path(text_path)
+        if not path.is_file():
+            raise ConfigError("command table not found", file=text_path)
+        return _load_cached(str(path.resolve()), path.stat().st_mtime_ns)
+    shipped = resources.files("benchrun.instruments") / "commands" / f"{text_path}.yaml"
+    if not shipped.is_file():
+        raise ConfigError(f"unknown instrument family {text_path!r}; shipped: {families()}")
+    return _load_cached(str(shipped), 0)
+
+
+@lru_cache(maxsize=32)
+def _load_cached(path: str, _mtime: int) -> CommandTable:
+    try:
+        data = yaml.safe_load(Path(path).read_text(encoding="utf-8"))
+    except (OSError, yaml.YAMLError) as exc:
+        raise ConfigError(f"cannot read command table: {exc}", file=path) from exc
+    return table_from_dict(data, source=path)
+
+
+def table_from_dict(data: Any, *, source: str = "<table>") -> CommandTable:
+    """Build and validate a :class:`CommandTable` from parsed YAML."""
+
+    def fail(message: str, fld: str | None = None) -> ConfigError:
+        return ConfigError(message, file=source, field=fld)
+
+    if not isinstance(data, dict):
+        raise fail("a command table is a mapping")
+    known = {"family", "role", "description", "identity", "constants", "commands", "waveform",
+             "channels", "simulator"}
+    unknown = set(data) - known
+    if unknown:
+        raise fail(f"unknown keys {sorted(unknown)}")
+    family = str(data.get("family", ""))
+    role = data.get("role")
+    if not family:
+        raise fail("missing", "family")
+    stem = Path(source).stem
+    if source != "<table>" and stem != family:
+        raise fail(f"family {family!r} must match the file name {stem!r}", "family")
+    if role not in ROLES:
+        raise fail(f"must be one of {ROLES}", "role")
+    constants = {str(k): float(v) for k, v in (data.get("constants") or {}).items()}
+    identity = data.get("identity") or {}
+    idn_order = tuple(identity.get("fields", ("manufacturer", "model", "serial", "firmware")))
+    if sorted(idn_order) != sorted(("manufacturer", "model", "serial", "firmware")):
+        raise fail("must list manufacturer, model, serial, firmware once each", "identity.fields")
+
+    raw_commands = data.get("commands")
+    if not isinstance(raw_commands, dict):
+        raise fail("missing or not a mapping", "commands")
+    commands = {name: _command_from_dict(name, entry, constants, fail)
+                for name, entry in raw_commands.items()}
+    for needed in (*COMMON_COMMANDS, *ROLE_COMMANDS[role]):
+        if needed not in commands:
+            raise fail(f"role {role} needs command {needed!r}", "commands")
+
+    waveform = None
+    if role == "scope":
+        waveform = _waveform_from_dict(data.get("waveform"), commands, constants, fail)
+    elif "waveform" in data:
+        raise fail("only scope tables have a waveform section", "waveform")
+    return CommandTable(
+        family=family,
+        role=role,
+        description=str(data.get("description", "")),
+        idn_order=idn_order,
+        simulated_identity=dict(identity.get("simulated", {})),
+        constants=constants,
+        commands=commands,
+        waveform=waveform,
+        source=source,
+        channels=int(data.get("channels", 0)),
+        extra=dict(data.get("simulator") or {}),
+    )
+
+
+def _command_from_dict(name: str, entry: Any, constants: Mapping[str, float], fail: Any
+                       ) -> CommandSpec:
+    where = f"commands.{name}"
+    if isinstance(entry, str):
+        entry = {"send": entry}
+    if not isinstance(entry, dict) or not isinstance(entry.get("send"), str):
+        raise fail("needs a 'send' string", where)
+    allowed = {"send", "args", "compute", "inverse", "limits", "returns", "true_values",
+               "false_value", "from_wire", "to_wire"}
+    if set(entry) - allowed:
+        raise fail(f"unknown keys {sorted(set(entry) - allowed)}", where)
+    args = []
+    for arg_name, kind in (entry.get("args") or {}).items():
+        if isinstance(kind, dict) and "enum" in kind:
+            enum = {str(k): str(v) for k, v in kind["enum"].items()}
+            args.append(ArgSpec(arg_name, "enum", enum))
+        elif kind in ARG_TYPES:
+            args.append(ArgSpec(arg_name, kind))
+        else:
+            raise fail(f"argument type {kind!r} not one of {ARG_TYPES} or enum", f"{where}.args")
+    placeholders = set(_PLACEHOLDER.findall(entry["send"]))
+    arg_names = {a.name for a in args}
+    if placeholders != arg_names:
+        raise fail(f"placeholders {sorted(placeholders)} differ from args {sorted(arg_names)}",
+                   f"{where}.send")
+    returns = entry.get("returns")
+    if returns is not None and returns not in RETURN_TYPES:
+        raise fail(f"must be one of {RETURN_TYPES}", f"{where}.returns")
+    compute = {str(k): str(v) for k, v in (entry.get("compute") or {}).items()}
+    inverse = {str(k): str(v) for k, v in (entry.get("inverse") or {}).items()}
+    for key, expr in (*compute.items(), *inverse.items()):
+        try:
+            expression_names(expr)
+        except (SyntaxError, ValueError) as exc:
+            raise fail(f"bad expression {expr!r}: {exc}", f"{where}.{key}") from exc
+    limits = {}
+    for key, pair in (entry.get("limits") or {}).items():
+        if not (isinstance(pair, list) and len(pair) == 2):
+            raise fail("limits are [low, high]", f"{where}.limits.{key}")
+        limits[str(key)] = (float(pair[0]), float(pair[1]))
+    return CommandSpec(
+        name=name,
+        send=entry["send"],
+        args=tuple(args),
+        compute=compute,
+        inverse=inverse,
+        limits=limits,
+        returns=returns,
+        true_values=tuple(str(v) for v in entry.get("true_values", ("1", "ON"))),
+        false_value=str(entry.get("false_value", "0")),
+        from_wire=entry.get("from_wire"),
+        to_wire=entry.get("to_wire"),
+    )
+
+
+def _waveform_from_dict(raw: Any, commands: Mapping[str, CommandSpec],
+                        constants: Mapping[str, float], fail: Any) -> WaveformSpec:
+    if not isinstance(raw, dict):
+        raise fail("a scope table needs a waveform section", "waveform")
+    try:
+        spec = WaveformSpec(
+            sample_format=str(raw["sample_format"]),
+            byte_order=str(raw.get("byte_order", "little")),
+            terminator_after_block=bool(raw["terminator_after_block"]),
+            code_min=int(raw["code_min"]),
+            code_max=int(raw["code_max"]),
+            select_source=raw.get("select_source"),
+            scaling_queries=dict(raw["scaling_queries"]),
+            gain=str(raw["gain"]),
+            offset=str(raw["offset"]),
+            dt=str(raw["dt"]),
+            t_start=str(raw["t_start"]),
+            simulated=dict(raw["simulated"]),
+        )
+    except KeyError as exc:
+        raise fail(f"missing {exc.args[0]!r}", "waveform") from exc
+    if spec.sample_format not in ("int8", "int16"):
+        raise fail("must be int8 or int16", "waveform.sample_format")
+    if spec.byte_order not in ("little", "big"):
+        raise fail("must be little or big", "waveform.byte_order")
+    for value_name, command in spec.scaling_queries.items():
+        if command not in commands or not commands[command].is_query:
+            raise fail(f"{value_name}: {command!r} is not a query of this table",
+                       "waveform.scaling_queries")
+    if spec.select_source and spec.select_source not in commands:
+        raise fail(f"{spec.select_source!r} is not a command", "waveform.select_source")
+    if commands["waveform_data"].returns != "block":
+        raise fail("must return block", "commands.waveform_data.returns")
+    have = set(spec.scaling_queries) | set(constants)
+    for key in ("gain", "offset", "dt", "t_start"):
+        missing = expression_names(getattr(spec, key)) - have
+        if missing:
+            raise fail(f"uses unknown names {sorted(missing)}", f"waveform.{key}")
+    sim_have = {"gain", "offset", "dt", "t_start"} | set(constants)
+    for key in spec.scaling_queries:
+        if key not in spec.simulated:
+            raise fail(f"no simulated expression for {key!r}", "waveform.simulated")
+        missing = expression_names(spec.simulated[key]) - sim_have
+        if missing:
+            raise fail(f"uses unknown names {sorted(missing)}", f"waveform.simulated.{key}")
+    return spec

@@ -1,0 +1,299 @@
+"""VISA sessions: pyvisa underneath, benchrun errors on top.
+
+:class:`InstrumentSession` is the only place that talks to pyvisa. It
+
+* opens ``TCPIP0::<host>::<port>::SOCKET`` (or any VISA resource) through the VISA library
+  named by a pyvisa spec string (``"@py"`` = pyvisa-py by default, ``""`` = the system
+  library, or a path),
+* writes and queries text with ``"\\n"`` termination,
+* reads definite-length binary blocks with the read terminator *disabled*: ``#``, the digit
+  count, the length, then exactly ``length`` (+1 when the family sends a terminator) bytes.
+  The payload is never scanned for a terminator (DESIGN.md §7: pyvisa-py's terminator scan
+  falls to 0.22 MB/s on a flat trace at code 10 = ``"\\n"``),
+* translates pyvisa and socket errors into :mod:`benchrun.errors` with ``raise ... from exc``:
+  :class:`~benchrun.errors.InstrumentTimeout`, :class:`~benchrun.errors.ConnectionLost`,
+  :class:`~benchrun.errors.ProtocolError`,
+* makes one reconnect attempt when the connection dropped, and repeats the interrupted
+  operation once if the caller marked it repeatable (``retry=True``; a ``fire`` is not),
+* reopens the connection before the next operation after a timeout or a malformed block, so
+  a late answer can never be taken for the answer to the next query.
+
+Anything with the same ``write``/``query``/``query_block``/``resource`` methods (for example
+the recording fake session of the tests) can stand in for it in the role drivers.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import select
+import socket
+from collections.abc import Callable
+from typing import Protocol, TypeVar
+
+import pyvisa
+import pyvisa.constants
+import pyvisa.errors
+
+from benchrun.errors import ConnectionLost, InstrumentError, InstrumentTimeout, ProtocolError
+from benchrun.instruments import scpi
+
+T = TypeVar("T")
+
+DEFAULT_VISA_LIBRARY = "@py"
+
+#: recv size set on pyvisa-py socket sessions for block reads (pyvisa-py's default is 4096)
+FAST_RECV_SIZE = 1 << 20
+
+
+class Transport(Protocol):
+    """What a role driver needs from a session (InstrumentSession or a test double)."""
+
+    resource: str
+
+    def write(self, command: str, *, retry: bool = True) -> None: ...
+
+    def query(self, command: str, *, retry: bool = True) -> str: ...
+
+    def query_block(self, command: str, *, terminator: bool, retry: bool = True) -> bytes: ...
+
+
+_MANAGERS: dict[str, pyvisa.ResourceManager] = {}
+
+
+def resource_manager(visa_library: str = DEFAULT_VISA_LIBRARY) -> pyvisa.ResourceManager:
+    """One shared pyvisa ResourceManager per VISA library spec string."""
+    rm = _MANAGERS.get(visa_library)
+    if rm is None:
+        try:
+            rm = pyvisa.ResourceManager(visa_library)
+        except (OSError, ValueError, pyvisa.errors.Error) as exc:
+            raise InstrumentError(f"cannot load VISA library {visa_library!r}: {exc}") from exc
+        _MANAGERS[visa_library] = rm
+    return rm
+
+
+class InstrumentSession:
+    """A message-based VISA session to one instrument.
+
+    Parameters
+    ----------
+    resource
+        VISA resource string, e.g. ``"TCPIP0::127.0.0.1::5025::SOCKET"``.
+    visa_library
+        pyvisa library spec (``"@py"`` for pyvisa-py, ``""`` for the system VISA).
+    timeout_s
+        I/O timeout for every read.
+    open_timeout_s
+        Time allowed to open the connection.
+    """
+
+    def __init__(
+        self,
+        resource: str,
+        *,
+        visa_library: str = DEFAULT_VISA_LIBRARY,
+        timeout_s: float = 5.0,
+        open_timeout_s: float = 5.0,
+    ) -> None:
+        self.resource = resource
+        self.visa_library = visa_library
+        self._timeout_s = float(timeout_s)
+        self._open_timeout_s = float(open_timeout_s)
+        self._inst: pyvisa.resources.MessageBasedResource | None = None
+        self._stale = False
+        self.reconnects = 0
+        self.open()
+
+    # --- lifecycle --------------------------------------------------------------------------
+
+    def open(self) -> None:
+        """Open the VISA session; ConnectionLost when the instrument cannot be reached."""
+        rm = resource_manager(self.visa_library)
+        try:
+            inst = rm.open_resource(
+                self.resource,
+                open_timeout=int(self._open_timeout_s * 1000),
+                read_termination="\n",
+                write_termination="\n",
+                timeout=int(self._timeout_s * 1000),
+            )
+        except Exception as exc:  # pyvisa-py raises a bare Exception("could not connect")
+            raise ConnectionLost(f"cannot open {self.resource}: {exc}") from exc
+        if not isinstance(inst, pyvisa.resources.MessageBasedResource):
+            inst.close()
+            raise InstrumentError(f"{self.resource} is not a message-based resource")
+        self._inst = inst
+        self._stale = False
+        self._tune_backend()
+
+    def close(self) -> None:
+        """Close the session (idempotent)."""
+        inst, self._inst = self._inst, None
+        if inst is not None:
+            # closing a dead session: nothing left to release
+            with contextlib.suppress(pyvisa.errors.Error, OSError):
+                inst.close()
+
+    def reconnect(self) -> None:
+        """Close and reopen the session."""
+        self.close()
+        self.reconnects += 1
+        self.open()
+
+    def __enter__(self) -> InstrumentSession:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    @property
+    def timeout_s(self) -> float:
+        return self._timeout_s
+
+    @timeout_s.setter
+    def timeout_s(self, value: float) -> None:
+        self._timeout_s = float(value)
+        if self._inst is not None:
+            self._inst.timeout = int(self._timeout_s * 1000)
+
+    # --- operations --------------------------------------------------------------------------
+
+    def write(self, command: str, *, retry: bool = True) -> None:
+        """Send one command (``"\\n"`` appended)."""
+        self._run(command, lambda inst: inst.write(command), retry)
+
+    def query(self, command: str, *, retry: bool = True) -> str:
+        """Send a query and return the text answer without its terminator."""
+        return self._run(command, lambda inst: inst.query(command), retry)
+
+    def query_block(self, command: str, *, terminator: bool, retry: bool = True) -> bytes:
+        """Send a query answered by a definite-length block; return the payload bytes.
+
+        Parameters
+        ----------
+        terminator
+            True when the family sends ``"\\n"`` after the block (the command table's
+            ``terminator_after_block``). Exactly that byte is read and checked.
+        """
+        return self._run(command, lambda inst: self._read_block(inst, command, terminator),
+                         retry)
+
+    # --- internals ---------------------------------------------------------------------------
+
+    def _read_block(self, inst: pyvisa.resources.MessageBasedResource, command: str,
+                    terminator: bool) -> bytes:
+        inst.write(command)
+        saved = inst.read_termination
+        inst.read_termination = None
+        try:
+            n = scpi.block_digit_count(inst.read_bytes(2))
+            length = scpi.block_data_length(inst.read_bytes(n))
+            total = length + (1 if terminator else 0)
+            try:
+                data = inst.read_bytes(total, chunk_size=max(total, 1)) if total else b""
+            except pyvisa.errors.VisaIOError as exc:
+                if exc.error_code == pyvisa.constants.StatusCode.error_timeout and \
+                        not self._peer_closed():
+                    self._stale = True
+                    raise ProtocolError(
+                        f"{self.resource}: truncated block: {length} bytes announced, "
+                        f"not all received within {self._timeout_s:g} s") from exc
+                raise
+        finally:
+            if self._inst is inst:
+                inst.read_termination = saved
+        if terminator:
+            if data[-1:] != b"\n":
+                raise ProtocolError(f"{self.resource}: expected '\\n' after the block, "
+                                    f"got {data[-1:]!r}")
+            return data[:-1]
+        return data
+
+    def _run(self, what: str, op: Callable[[pyvisa.resources.MessageBasedResource], T],
+             retry: bool) -> T:
+        if self._inst is None or self._stale or self._peer_closed():
+            self._reopen(what)
+        try:
+            return self._attempt(what, op)
+        except _Dropped as dropped:
+            self._reopen(what, dropped.__cause__)
+            if not retry:
+                raise ConnectionLost(
+                    f"{self.resource}: connection dropped during {what!r}; reconnected, "
+                    "the command was not repeated") from dropped.__cause__
+        try:
+            return self._attempt(what, op)
+        except _Dropped as dropped:
+            self._stale = True
+            raise ConnectionLost(
+                f"{self.resource}: connection dropped again during {what!r} after one "
+                "reconnect") from dropped.__cause__
+
+    def _attempt(self, what: str, op: Callable[[pyvisa.resources.MessageBasedResource], T]
+                 ) -> T:
+        assert self._inst is not None
+        try:
+            return op(self._inst)
+        except ProtocolError as exc:
+            self._stale = True
+            if self._peer_closed():
+                raise _Dropped() from exc
+            raise
+        except pyvisa.errors.VisaIOError as exc:
+            if exc.error_code == pyvisa.constants.StatusCode.error_timeout:
+                closed = self._peer_closed()
+                self._stale = True
+                if closed:
+                    raise _Dropped() from exc
+                raise InstrumentTimeout(
+                    f"{self.resource}: no answer to {what!r} within {self._timeout_s:g} s"
+                ) from exc
+            raise _Dropped() from exc
+        except (OSError, pyvisa.errors.InvalidSession) as exc:
+            raise _Dropped() from exc
+        except UnicodeDecodeError as exc:
+            self._stale = True
+            raise ProtocolError(f"{self.resource}: answer to {what!r} is not text") from exc
+
+    def _reopen(self, what: str, cause: BaseException | None = None) -> None:
+        try:
+            self.reconnect()
+        except ConnectionLost as exc:
+            raise ConnectionLost(
+                f"{self.resource}: connection lost ({what!r}) and the reconnect failed: "
+                f"{exc}") from (cause or exc)
+
+    def _backend_socket(self) -> socket.socket | None:
+        """The pyvisa-py socket behind the session, when that backend is in use."""
+        inst = self._inst
+        if inst is None:
+            return None
+        sessions = getattr(inst.visalib, "sessions", None)
+        backend = sessions.get(inst.session) if isinstance(sessions, dict) else None
+        sock = getattr(backend, "interface", None)
+        return sock if isinstance(sock, socket.socket) else None
+
+    def _peer_closed(self) -> bool:
+        """True when the peer has closed the TCP connection (pyvisa-py sockets only)."""
+        sock = self._backend_socket()
+        if sock is None:
+            return False
+        try:
+            readable, _, _ = select.select([sock], [], [], 0)
+            if not readable:
+                return False
+            return sock.recv(1, socket.MSG_PEEK) == b""
+        except (OSError, ValueError):
+            return True
+
+    def _tune_backend(self) -> None:
+        """Larger recv chunks for pyvisa-py sockets (fewer Python-level loops per block)."""
+        inst = self._inst
+        sessions = getattr(inst.visalib, "sessions", None) if inst is not None else None
+        backend = sessions.get(inst.session) if isinstance(sessions, dict) else None
+        if backend is not None and hasattr(backend, "max_recv_size"):
+            backend.max_recv_size = FAST_RECV_SIZE
+
+
+class _Dropped(Exception):
+    """Internal: the connection dropped (the cause holds the original error)."""
