@@ -1,0 +1,257 @@
+"""Bench file schema: instruments, probes, fixture, safety limits and calibration dates.
+
+A bench file describes the hardware a sequence runs on. It is loaded with
+:func:`load_bench`, which reports every mistake as ``file:line: field: message``
+(:mod:`benchrun.config.loader`). Example (``sequences/bench-sim.yaml``)::
+
+    name: Simulated double-pulse bench
+    visa_library: "@py"
+    instruments:
+      scope:   {resource: sim, family: scope-generic, calibration_due: 2027-06-30}
+      pulse:   {resource: sim, family: pulse-generic}
+      supply:  {resource: sim, family: supply-generic}
+      thermal: {resource: sim, family: thermal-generic}
+      handler: {resource: sim, family: handler-generic}
+    probes:
+      diode_voltage: {channel: 1, kind: voltage, attenuation: 100}
+      diode_current: {channel: 2, kind: shunt, resistance: 10 mohm, deskew: 1.5 ns}
+    fixture: {load_inductance: 200 uH, ...}
+    safety:  {max_bus_voltage: 1000 V, ...}
+
+The resource ``sim`` is a placeholder: ``benchrun demo`` and ``benchrun run`` resolve it to
+the matching instrument of an in-process simulated bench.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Literal
+
+from pydantic import Field, field_validator, model_validator
+
+from benchrun.config.loader import (
+    Capacitance,
+    Current,
+    Energy,
+    Inductance,
+    Resistance,
+    StrictModel,
+    Time,
+    Voltage,
+    load_model,
+)
+
+#: Roles a bench can fill; scope, pulse source and bus supply are required.
+ROLES = ("scope", "pulse", "supply", "thermal", "handler")
+
+#: Scope signal names the analysis understands (``benchrun.analysis.pipeline``).
+SIGNALS = ("diode_voltage", "diode_current", "switch_voltage", "gate")
+
+#: Resource placeholder resolved to the in-process simulated bench.
+SIM_RESOURCE = "sim"
+
+#: Touch-safe DC voltage: the ES1 limit of IEC 62368-1 and the SELV limit of IEC 61140.
+TOUCH_SAFE_V = 60.0
+
+
+class InstrumentEntry(StrictModel):
+    """One instrument: where it is, which command table drives it, when it is due."""
+
+    resource: str = Field(min_length=1)
+    family: str = Field(min_length=1, pattern=r"^[A-Za-z0-9_.-]+$")
+    calibration_due: _dt.date | None = None
+    timeout: Time = 5.0
+
+    @field_validator("timeout")
+    @classmethod
+    def _positive_timeout(cls, value: float) -> float:
+        if value <= 0:
+            raise ValueError("timeout must be positive")
+        return value
+
+    @property
+    def simulated(self) -> bool:
+        return self.resource.strip().lower() == SIM_RESOURCE
+
+
+class Instruments(StrictModel):
+    """Role → instrument. A bench without a thermal controller tests at room temperature only;
+    without a handler it tests one device that is already in the fixture."""
+
+    scope: InstrumentEntry
+    pulse: InstrumentEntry
+    supply: InstrumentEntry
+    thermal: InstrumentEntry | None = None
+    handler: InstrumentEntry | None = None
+
+    def items(self) -> list[tuple[str, InstrumentEntry]]:
+        return [(role, getattr(self, role)) for role in ROLES if getattr(self, role) is not None]
+
+
+class ProbeEntry(StrictModel):
+    """How one scope input sees a physical quantity.
+
+    ``kind`` is ``voltage`` (``attenuation`` V/V, e.g. 100 for a 100:1 probe), ``shunt``
+    (``resistance`` in ohm; the scope sees I·R) or ``current_sensor`` (``sensitivity`` in
+    V/A, written e.g. ``"0.01 V/A"``). ``deskew`` is the probe's delay, removed in analysis.
+    """
+
+    channel: int = Field(ge=1, le=8)
+    kind: Literal["voltage", "shunt", "current_sensor"]
+    attenuation: float | None = Field(default=None, gt=0)
+    resistance: Resistance | None = None
+    sensitivity: Resistance | None = None
+    deskew: Time = 0.0
+
+    @model_validator(mode="after")
+    def _one_scaling(self) -> ProbeEntry:
+        needed = {"voltage": "attenuation", "shunt": "resistance",
+                  "current_sensor": "sensitivity"}[self.kind]
+        for name in ("attenuation", "resistance", "sensitivity"):
+            value = getattr(self, name)
+            if name == needed:
+                if value is None:
+                    raise ValueError(f"a {self.kind} probe needs '{needed}'")
+                if value <= 0:
+                    raise ValueError(f"'{needed}' must be positive")
+            elif value is not None:
+                raise ValueError(f"'{name}' does not apply to a {self.kind} probe")
+        if abs(self.deskew) > 1e-6:
+            raise ValueError("deskew beyond 1 us is not a probe delay; check the unit")
+        return self
+
+    @property
+    def scale(self) -> float:
+        """Physical value per channel volt (V/V or A/V)."""
+        if self.kind == "voltage":
+            return float(self.attenuation)  # type: ignore[arg-type]
+        if self.kind == "shunt":
+            return 1.0 / float(self.resistance)  # type: ignore[arg-type]
+        return 1.0 / float(self.sensitivity)  # type: ignore[arg-type]
+
+    @property
+    def measures_current(self) -> bool:
+        return self.kind != "voltage"
+
+
+class FixtureSpec(StrictModel):
+    """The double-pulse fixture: load inductor, loop, bus capacitor and its bleeder."""
+
+    load_inductance: Inductance = Field(gt=0)
+    load_resistance: Resistance = Field(ge=0)
+    stray_inductance: Inductance = Field(ge=0)
+    inductor_saturation_current: Current = Field(gt=0)
+    max_pulse_width: Time = Field(gt=0)
+    bus_capacitance: Capacitance = Field(gt=0)
+    bleeder_resistance: Resistance = Field(gt=0)
+    switch_on_voltage: Voltage = Field(default=0.0, ge=0)
+
+    def discharge_time(self, from_V: float, to_V: float = TOUCH_SAFE_V) -> float:
+        """Time for the bleeder to bring the bus from ``from_V`` to ``to_V`` (RC decay).
+
+        t = R·C·ln(V0/V1), the exponential discharge of a capacitor through a resistor
+        (any circuit-theory text); IEC 60204-1 asks for ≤ 60 V within 5 s.
+        """
+        if from_V <= to_V:
+            return 0.0
+        return self.bleeder_resistance * self.bus_capacitance * math.log(from_V / to_V)
+
+
+class SafetyLimits(StrictModel):
+    """Bench-wide limits checked before anything is energised (DESIGN §8)."""
+
+    max_bus_voltage: Voltage = Field(gt=0)
+    max_current: Current = Field(gt=0)
+    max_inductor_energy: Energy = Field(gt=0)
+    max_capacitor_energy: Energy = Field(gt=0)
+    touch_safe_voltage: Voltage = Field(default=TOUCH_SAFE_V, gt=0, le=TOUCH_SAFE_V)
+    discharge_timeout: Time = Field(default=30.0, gt=0)
+
+
+class CalibrationPolicy(StrictModel):
+    """Warn when an instrument's calibration falls due within ``warn_days``."""
+
+    warn_days: int = Field(default=30, ge=0)
+
+
+class BenchConfig(StrictModel):
+    """A whole bench file."""
+
+    name: str = "bench"
+    visa_library: str = "@py"
+    instruments: Instruments
+    probes: dict[str, ProbeEntry]
+    fixture: FixtureSpec
+    safety: SafetyLimits
+    calibration: CalibrationPolicy = CalibrationPolicy()
+
+    @field_validator("probes")
+    @classmethod
+    def _known_signals(cls, probes: dict[str, ProbeEntry]) -> dict[str, ProbeEntry]:
+        for name in probes:
+            if name not in SIGNALS:
+                raise ValueError(f"unknown signal {name!r}; use one of {', '.join(SIGNALS)}")
+        for required in ("diode_voltage", "diode_current"):
+            if required not in probes:
+                raise ValueError(f"a probe for {required!r} is required")
+        if probes["diode_current"].kind == "voltage":
+            raise ValueError("diode_current needs a shunt or current_sensor probe")
+        channels = [p.channel for p in probes.values()]
+        if len(channels) != len(set(channels)):
+            raise ValueError("two signals share one scope channel")
+        return probes
+
+    @property
+    def simulated(self) -> bool:
+        """True when every instrument is the in-process simulated bench."""
+        return all(entry.simulated for _, entry in self.instruments.items())
+
+
+def load_bench(path: str | Path) -> BenchConfig:
+    """Load and validate a bench file; errors name file, line and field."""
+    return load_model(BenchConfig, path)
+
+
+@dataclass(frozen=True)
+class CalibrationState:
+    """Calibration status of one instrument on a given day."""
+
+    role: str
+    due: _dt.date | None
+    days_left: int | None
+    status: Literal["ok", "due-soon", "overdue", "unknown"]
+
+    def describe(self) -> str:
+        if self.due is None:
+            return f"{self.role}: no calibration due date in the bench file"
+        if self.status == "overdue":
+            return f"{self.role}: calibration overdue since {self.due.isoformat()}"
+        if self.status == "due-soon":
+            return f"{self.role}: calibration due {self.due.isoformat()} ({self.days_left} days)"
+        return f"{self.role}: calibration due {self.due.isoformat()}"
+
+
+def calibration_states(bench: BenchConfig, today: _dt.date) -> list[CalibrationState]:
+    """Classify every instrument's calibration due date against ``today``.
+
+    An instrument is *overdue* once its due date has passed (due < today), *due-soon*
+    when it falls due within ``bench.calibration.warn_days`` days.
+    """
+    states = []
+    for role, entry in bench.instruments.items():
+        due = entry.calibration_due
+        if due is None:
+            states.append(CalibrationState(role, None, None, "unknown"))
+            continue
+        days = (due - today).days
+        if days < 0:
+            status = "overdue"
+        elif days <= bench.calibration.warn_days:
+            status = "due-soon"
+        else:
+            status = "ok"
+        states.append(CalibrationState(role, due, days, status))  # type: ignore[arg-type]
+    return states

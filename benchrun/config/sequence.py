@@ -1,0 +1,246 @@
+"""Sequence file schema: what to test (part, lot, devices, test points) and how.
+
+Loaded with :func:`load_sequence`; errors name file, line and field, unknown keys are errors.
+Quantities are written as engineers write them. Example (``sequences/kfr30-12-demo.yaml``)::
+
+    part: KFR30-12
+    lot: L2611-A
+    devices: all            # every device the handler holds, or a list of serials
+    limits: ../limits/KFR30-12.yaml
+    test_points:
+      - bus_voltage: 600 V
+        forward_current: 30 A
+        temperatures: [25 degC, 125 degC]
+        gate_resistance: 10 ohm
+        repeats: 2
+        shot_spacing: 0.2 s
+    tolerances: {forward_current: 5 %, didt: 25 %, reverse_voltage: 5 %, temperature: 3 K}
+
+Relative tolerances are written ``"5 %"`` (or a plain fraction, 0.05); temperature tolerances
+and bands are temperature *differences* (``"3 K"``; ``"3 degC"`` is read as a difference here).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import BeforeValidator, Field, field_validator, model_validator
+
+from benchrun.config.loader import (
+    Current,
+    CurrentSlope,
+    Frequency,
+    Resistance,
+    StrictModel,
+    Temperature,
+    Time,
+    Voltage,
+    load_model,
+)
+from benchrun.errors import UnitError
+from benchrun.units import parse_quantity
+
+
+def _fraction(value: Any) -> float:
+    try:
+        result = parse_quantity(value, "dimensionless")
+    except UnitError as exc:
+        raise ValueError(exc.message) from None
+    if not 0 < result < 1:
+        raise ValueError(f"a relative tolerance must lie between 0 and 100 %, got {value!r}")
+    return result
+
+
+def _temperature_difference(value: Any) -> float:
+    if isinstance(value, str):
+        text = value.strip()
+        # a tolerance written "3 degC" or "3 °C" means a difference of 3 K
+        for suffix in ("degC", "°C", "℃"):
+            if text.endswith(suffix) and not text.endswith("delta_degC"):
+                text = text[: -len(suffix)] + "K"
+        value = text
+    try:
+        result = parse_quantity(value, "temperature_difference")
+    except UnitError as exc:
+        raise ValueError(exc.message) from None
+    if result <= 0:
+        raise ValueError("a temperature tolerance must be positive")
+    return result
+
+
+#: A relative tolerance: "5 %" or 0.05.
+Fraction = Annotated[float, BeforeValidator(_fraction)]
+#: A temperature difference: "3 K" (or "3 degC", read as a difference).
+TemperatureBand = Annotated[float, BeforeValidator(_temperature_difference)]
+
+
+class PartRatings(StrictModel):
+    """Absolute maximum ratings of the part (from its datasheet)."""
+
+    vrrm: Voltage = Field(gt=0)
+    if_max: Current = Field(gt=0)
+    tj_max: Temperature = Field(gt=0)
+    tj_min: Temperature = Field(default=218.15, gt=0)
+
+
+class TestPointSpec(StrictModel):
+    """One test condition, swept over its temperatures."""
+
+    __test__ = False  # not a pytest test class
+
+    label: str = ""
+    bus_voltage: Voltage = Field(gt=0)
+    forward_current: Current = Field(gt=0)
+    temperatures: list[Temperature] = Field(min_length=1)
+    gate_resistance: Resistance | None = Field(default=None, gt=0)
+    didt: CurrentSlope | None = Field(default=None, gt=0)
+    repeats: int = Field(default=1, ge=1, le=1000)
+    shot_spacing: Time = Field(default=0.5, ge=0)
+
+    @model_validator(mode="after")
+    def _drive(self) -> TestPointSpec:
+        if self.gate_resistance is None and self.didt is None:
+            raise ValueError("give 'gate_resistance' or a 'didt' target")
+        return self
+
+
+class Tolerances(StrictModel):
+    """Allowed deviation of the measured conditions from the requested ones (per shot)."""
+
+    forward_current: Fraction = 0.05
+    didt: Fraction = 0.25
+    reverse_voltage: Fraction = 0.05
+    temperature: TemperatureBand = 3.0
+
+
+class ThermalSettings(StrictModel):
+    """Temperature changes: stable within ``band`` for ``dwell``, then ``soak``; give up after
+    ``timeout``."""
+
+    band: TemperatureBand = 1.0
+    dwell: Time = Field(default=60.0, ge=0)
+    soak: Time = Field(default=300.0, ge=0)
+    timeout: Time = Field(default=3600.0, gt=0)
+    poll_interval: Time = Field(default=1.0, gt=0)
+
+
+class TrimSettings(StrictModel):
+    """Trim shots that correct the first-pulse width t1 before the real shots.
+
+    ``single_pulse`` fires the first pulse alone at the test voltage; ``low_voltage`` fires
+    it at ``bus_voltage`` (same t1 scales with V, see :func:`benchrun.runner.plan`); ``off``
+    trusts the calculated t1.
+    """
+
+    mode: Literal["single_pulse", "low_voltage", "off"] = "single_pulse"
+    bus_voltage: Voltage | None = Field(default=None, gt=0)
+    tolerance: Fraction = 0.02
+    max_shots: int = Field(default=4, ge=1, le=20)
+
+    @model_validator(mode="after")
+    def _voltage(self) -> TrimSettings:
+        if self.mode == "low_voltage" and self.bus_voltage is None:
+            raise ValueError("low_voltage trim needs 'bus_voltage'")
+        return self
+
+
+class TimingSettings(StrictModel):
+    """Double-pulse timing and capture beyond the first pulse width (which is calculated)."""
+
+    off_time: Time = Field(default=3e-6, gt=0)
+    second_pulse: Time = Field(default=2e-6, gt=0)
+    pre_trigger: Time = Field(default=1e-6, ge=0)
+    post_margin: Time = Field(default=1e-6, ge=0)
+    sample_interval: Time = Field(default=1e-9, gt=0)
+
+
+class ExpectedValues(StrictModel):
+    """Rough expectations that set the scope ranges (never used as results)."""
+
+    irrm_fraction: float = Field(default=1.0, gt=0, le=5)
+    overshoot_margin: float = Field(default=1.5, ge=1, le=5)
+    didt: CurrentSlope | None = Field(default=None, gt=0)
+
+
+class AnalysisSettings(StrictModel):
+    """Passed to the analysis as ``RecoveryOptions`` (DESIGN §3 defaults)."""
+
+    fit_high: float = Field(default=0.9, gt=0, lt=1)
+    fit_low: float = Field(default=0.25, gt=0, lt=1)
+    trr_method: Literal["extrapolate", "threshold"] = "extrapolate"
+    trr_threshold_fraction: float = Field(default=0.25, gt=0, lt=1)
+    integration_end_fraction: float = Field(default=0.02, gt=0, lt=1)
+    lowpass: Frequency | None = Field(default=None, gt=0)
+
+    @model_validator(mode="after")
+    def _order(self) -> AnalysisSettings:
+        if self.fit_low >= self.fit_high:
+            raise ValueError("fit_low must be below fit_high")
+        return self
+
+    def option_values(self) -> dict[str, Any]:
+        """Keyword arguments for ``RecoveryOptions``."""
+        return {
+            "fit_high": self.fit_high,
+            "fit_low": self.fit_low,
+            "trr_method": self.trr_method,
+            "trr_threshold_fraction": self.trr_threshold_fraction,
+            "integration_end_fraction": self.integration_end_fraction,
+            "lowpass_hz": self.lowpass,
+        }
+
+
+class LossSettings(StrictModel):
+    """Switching frequencies for the loss estimate."""
+
+    switching_frequencies: list[Frequency] = Field(default_factory=list)
+
+
+class SequenceConfig(StrictModel):
+    """A whole sequence file."""
+
+    name: str = ""
+    part: str = Field(min_length=1)
+    lot: str = Field(min_length=1)
+    ratings: PartRatings | None = None
+    devices: Literal["all"] | list[str] = "all"
+    limits: str | None = None
+    test_points: list[TestPointSpec] = Field(min_length=1)
+    tolerances: Tolerances = Tolerances()
+    thermal: ThermalSettings = ThermalSettings()
+    trim: TrimSettings = TrimSettings()
+    timing: TimingSettings = TimingSettings()
+    expected: ExpectedValues = ExpectedValues()
+    analysis: AnalysisSettings = AnalysisSettings()
+    loss: LossSettings = LossSettings()
+    switch_voltage: bool = False
+    retry_invalid: int = Field(default=1, ge=0, le=3)
+
+    @field_validator("devices")
+    @classmethod
+    def _serials(cls, value: Any) -> Any:
+        if isinstance(value, list):
+            if not value:
+                raise ValueError("the device list is empty")
+            if len(set(value)) != len(value):
+                raise ValueError("a serial is listed twice")
+            for serial in value:
+                if not serial.strip():
+                    raise ValueError("empty serial")
+        return value
+
+
+def load_sequence(path: str | Path) -> SequenceConfig:
+    """Load and validate a sequence file; errors name file, line and field."""
+    return load_model(SequenceConfig, path)
+
+
+def limits_path(sequence: SequenceConfig, sequence_path: str | Path) -> Path | None:
+    """The limits file named by the sequence, resolved relative to the sequence file."""
+    if sequence.limits is None:
+        return None
+    path = Path(sequence.limits)
+    if not path.is_absolute():
+        path = Path(sequence_path).resolve().parent / path
+    return path.resolve()

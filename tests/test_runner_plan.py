@@ -1,0 +1,146 @@
+"""Pulse timing, trim correction, scope ranges and firing order."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from scipy.integrate import solve_ivp
+
+from benchrun.config.bench import load_bench
+from benchrun.config.sequence import load_sequence
+from benchrun.records import TestPoint
+from benchrun.runner.plan import (
+    corrected_first_pulse,
+    droop,
+    effective_inductance,
+    expand_points,
+    first_pulse_width,
+    inductor_current,
+    plan_pulses,
+    plan_ranges,
+    plan_run,
+)
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def bench():
+    return load_bench(ROOT / "sequences" / "bench-sim.yaml")
+
+
+@pytest.fixture(scope="module")
+def sequence():
+    return load_sequence(ROOT / "sequences" / "kfr30-12-demo.yaml")
+
+
+def test_lossless_pulse_width_textbook():
+    # t1 = L*I/V (ideal inductor charged from a constant voltage, DESIGN §4): 200 uH, 30 A,
+    # 600 V -> 10 us (hand calculation)
+    assert first_pulse_width(30.0, 600.0, 200e-6) == pytest.approx(10e-6)
+
+
+@pytest.mark.parametrize(("amps", "V", "L", "R"), [(30.0, 600.0, 200e-6, 0.02),
+                                                 (20.0, 100.0, 1e-3, 1.5),
+                                                 (50.0, 400.0, 80e-6, 0.5)])
+def test_pulse_width_against_ode_solver(amps, V, L, R):
+    # independent reference: scipy integrates L di/dt = V - R i from 0 over t1
+    t1 = first_pulse_width(amps, V, L, R)
+    sol = solve_ivp(lambda t, i: [(V - R * i[0]) / L], (0.0, t1), [0.0],
+                    rtol=1e-10, atol=1e-12)
+    assert sol.y[0, -1] == pytest.approx(amps, rel=1e-6)
+    assert inductor_current(t1, V, L, R) == pytest.approx(amps, rel=1e-12)
+
+
+def test_switch_voltage_reduces_drive():
+    assert first_pulse_width(30.0, 600.0, 200e-6, 0.0, 5.0) == pytest.approx(200e-6 * 30 / 595)
+
+
+def test_unreachable_current_is_refused():
+    from benchrun.errors import SafetyError
+
+    with pytest.raises(SafetyError, match="cannot be reached"):
+        first_pulse_width(100.0, 10.0, 1e-3, 0.2)  # final value 50 A
+
+
+def test_effective_inductance_inverts():
+    L = effective_inductance(10e-6, 29.0, 600.0, 0.02)
+    assert inductor_current(10e-6, 600.0, L, 0.02) == pytest.approx(29.0)
+
+
+def test_trim_converges_on_a_different_inductor(bench, sequence):
+    # the real inductor is 8 % below its nameplate: the calculated t1 overshoots the current
+    point = expand_points(sequence)[0]
+    plan = plan_pulses(point, sequence, bench.fixture)
+    fx = bench.fixture
+    true_L = 0.92 * fx.load_inductance
+
+    def fire(t1):  # current at commutation for a given t1, in the same RL model
+        return inductor_current(t1, point.bus_voltage_V, true_L, fx.load_resistance) - droop(
+            point.forward_current_A, plan.off_time_s, fx)
+
+    first = fire(plan.first_pulse_s)
+    assert abs(first / point.forward_current_A - 1) > 0.05
+    t1, L_eff = corrected_first_pulse(plan, point, first, point.bus_voltage_V, fx)
+    assert L_eff == pytest.approx(true_L, rel=1e-9)
+    assert fire(t1) == pytest.approx(point.forward_current_A, rel=1e-9)
+
+
+def test_droop_formula(bench):
+    # (VF + I*R)*t_off/L, DESIGN §4: (1.5 V + 30 A*0.02 ohm)*3 us/200 uH = 31.5 mA
+    assert droop(30.0, 3e-6, bench.fixture) == pytest.approx(2.1 * 3e-6 / 200e-6)
+
+
+def test_record_window_covers_double_pulse(bench, sequence):
+    point = expand_points(sequence)[0]
+    plan = plan_pulses(point, sequence, bench.fixture)
+    assert plan.record_start_s < 0
+    end = plan.record_start_s + plan.record_length_s
+    assert end >= plan.first_pulse_s + plan.off_time_s + plan.second_pulse_s
+    assert plan.points == pytest.approx(plan.record_length_s / plan.sample_interval_s, abs=1)
+    longer = plan.with_first_pulse(plan.first_pulse_s + 1e-6)
+    assert longer.record_length_s == pytest.approx(plan.record_length_s + 1e-6)
+
+
+def test_ranges_cover_expected_values(bench, sequence):
+    point = TestPoint(index=0, temperature_K=298.15, bus_voltage_V=600.0,
+                      forward_current_A=30.0, didt_A_per_s=1e9)
+    ranges = plan_ranges(point, sequence, bench)
+    cur = ranges["diode_current"]
+    assert cur.high == pytest.approx(1.3 * 30.0)
+    assert cur.low <= -30.0  # Irrm expected = 1.0 * IF, with headroom
+    volt = ranges["diode_voltage"]
+    overshoot = 40e-9 * 1e9  # Ls * di/dt (DESIGN §4) = 40 V
+    assert volt.low <= -(600.0 + overshoot)
+    assert volt.high > 0
+    assert "switch_voltage" in ranges and ranges["switch_voltage"].high > 600.0 + overshoot
+
+
+def test_points_and_firing_order(sequence):
+    points = expand_points(sequence)
+    assert [p.index for p in points] == list(range(len(points)))
+    assert [p.temperature_K for p in points] == pytest.approx([298.15, 398.15])
+    steps = plan_run(sequence, ["A1", "A2", "A3"])
+    assert len(steps) == 2
+    shots = steps[0].shots
+    repeats = sequence.test_points[0].repeats
+    assert len(shots) == 3 * repeats
+    assert [s.serial for s in shots[:repeats]] == ["A1"] * repeats
+    ids = [s.identity for step in steps for s in step.shots]
+    assert len(ids) == len(set(ids))
+
+
+def test_temperatures_grouped_across_points(tmp_path):
+    text = (ROOT / "sequences" / "kfr30-12-demo.yaml").read_text()
+    text = text.replace("test_points:\n", "test_points:\n  - bus_voltage: 400 V\n"
+                        "    forward_current: 15 A\n    temperatures: [125 degC]\n"
+                        "    gate_resistance: 22 ohm\n")
+    path = tmp_path / "seq.yaml"
+    path.write_text(text)
+    seq = load_sequence(path)
+    points = expand_points(seq)
+    temps = [p.temperature_K for p in points]
+    assert temps == sorted(temps, key=lambda t: [398.15, 298.15].index(t))
+    assert len(plan_run(seq, ["X"])) == 2
+    assert points[0].bus_voltage_V == 400.0  # first-listed temperature (125 degC) first
