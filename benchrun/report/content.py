@@ -1,0 +1,175 @@
+"""What the report shows, as plain data: the bridge between run/grading objects and layout.
+
+:func:`build_content` reads a ``RunData`` (store contract) and a ``LotGrade`` (grading contract)
+and returns a :class:`ReportContent` of strings and SI floats; the layout code
+(:mod:`benchrun.report.sections`) never touches the run or grading objects. The same content
+becomes the JSON attachment (:func:`attachment_dict`) that verification compares with a
+re-analysis of the raw record.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+from dataclasses import dataclass, field
+from typing import Any
+
+#: Metric keys shown in the device table when they are graded, in this order (DESIGN §3).
+METRIC_ORDER = (
+    "trr_s", "qrr_C", "irrm_A", "err_J", "ta_s", "tb_s", "softness", "rrsf", "vrm_V",
+    "didt_A_per_s", "if_A", "vr_V", "eon_J", "eon_recovery_J",
+)
+
+#: Display label and SI unit of every metric key (``RecoveryMetrics.to_dict()`` keys).
+METRIC_LABELS: dict[str, tuple[str, str]] = {
+    "if_A": ("IF", "A"),
+    "t0_s": ("t0", "s"),
+    "irrm_A": ("Irrm", "A"),
+    "ta_s": ("ta", "s"),
+    "tb_s": ("tb", "s"),
+    "trr_s": ("trr", "s"),
+    "softness": ("S = tb/ta", ""),
+    "rrsf": ("RRSF", ""),
+    "qrr_C": ("Qrr", "C"),
+    "err_J": ("Err", "J"),
+    "didt_A_per_s": ("di/dt", "A/s"),
+    "vrm_V": ("VRM", "V"),
+    "vr_V": ("VR", "V"),
+    "eon_J": ("Eon", "J"),
+    "eon_recovery_J": ("Eon (recovery part)", "J"),
+    "t_irrm_s": ("t(Irrm)", "s"),
+    "t_trr_s": ("t(trr)", "s"),
+    "t2_s": ("t2", "s"),
+}
+
+#: Definitions printed in the report (DESIGN §3; fractions filled from the analysis options).
+METRIC_DEFINITIONS: dict[str, str] = {
+    "if_A": "forward current on the plateau just before commutation",
+    "irrm_A": "peak reverse recovery current, −min(i) in the recovery",
+    "ta_s": "t0 to the instant of Irrm",
+    "trr_s": ("t0 to the zero crossing of the straight line through the points where i "
+              "rises through −{fit_high}·Irrm and −{fit_low}·Irrm (IEC 60747-2 extrapolation)"),
+    "trr_s_threshold": ("t0 to the instant i rises through −{threshold}·Irrm "
+                        "(JEDEC 'current reaches a set value' method)"),
+    "tb_s": "trr − ta",
+    "softness": "S = tb / ta",
+    "rrsf": ("JEDEC reverse-recovery softness factor: |di/dt at t0| / |steepest di/dt "
+             "after the minimum|"),
+    "qrr_C": "−∫ i dt from t0 to t2; t2 where i rises through −{end}·Irrm",
+    "err_J": "∫ v·i dt from t0 to t2 (energy dissipated in the diode)",
+    "didt_A_per_s": "(0.5·IF + 0.5·Irrm) / (tb − ta) between the +0.5·IF and −0.5·Irrm crossings",
+    "vrm_V": "max(−v) from t0 to t2 + trr (peak reverse voltage incl. overshoot)",
+    "vr_V": "steady reverse voltage after the event",
+}
+
+
+@dataclass(frozen=True)
+class Cell:
+    """One graded metric of one device at one condition."""
+
+    value: float | None
+    expanded_u: float | None
+    grade: str | None  # conforming / non-conforming / indeterminate / invalid / None
+    limit: str = ""
+
+
+@dataclass(frozen=True)
+class DeviceLine:
+    """One row of the device table: a device at one condition."""
+
+    serial: str
+    condition: str
+    cells: dict[str, Cell]
+    bin: str
+    verdict: str
+    note: str = ""
+
+
+@dataclass(frozen=True)
+class WaveformRequest:
+    """A shot whose recovery is plotted, and why."""
+
+    raw_ref: str
+    serial: str
+    condition: str
+    why: str  # "representative" or the verdict that put it there
+
+
+@dataclass
+class ReportContent:
+    """Everything the report prints, as strings and SI floats."""
+
+    report_id: str
+    generated_utc: str
+    company: str
+    part: str
+    lot: str
+    run_id: str
+    software_version: str
+    disposition: str
+    disposition_reasons: list[str]
+    signer_name: str
+    signer_role: str
+    signer_organisation: str
+    signer_fingerprint: str
+    run_window: str = ""
+    conditions_table: list[list[str]] = field(default_factory=list)
+    instruments_table: list[list[str]] = field(default_factory=list)
+    fixture_table: list[list[str]] = field(default_factory=list)
+    definitions_table: list[list[str]] = field(default_factory=list)
+    decision_rule: list[str] = field(default_factory=list)
+    budget_table: list[list[str]] = field(default_factory=list)
+    metric_columns: list[str] = field(default_factory=list)
+    devices: list[DeviceLine] = field(default_factory=list)
+    counts: dict[str, int] = field(default_factory=dict)
+    statistics_table: list[list[str]] = field(default_factory=list)
+    distributions: list[dict[str, Any]] = field(default_factory=list)
+    trends: list[dict[str, Any]] = field(default_factory=list)
+    temperature_log: list[tuple[int, float | None, float]] = field(default_factory=list)
+    waveforms: list[WaveformRequest] = field(default_factory=list)
+    manifest: list[dict[str, Any]] = field(default_factory=list)
+    shots: list[dict[str, Any]] = field(default_factory=list)
+    lot_grade: dict[str, Any] = field(default_factory=dict)
+    analysis_options: dict[str, Any] = field(default_factory=dict)
+    limits_file: str = "limits.yaml"
+
+
+def new_report_id(run_id: str, when: _dt.datetime) -> str:
+    """Report identifier: run id plus the UTC minute it was issued."""
+    return f"RPT-{run_id}-{when.strftime('%Y%m%dT%H%M%SZ')}"
+
+
+def attachment_dict(content: ReportContent) -> dict[str, Any]:
+    """The JSON embedded in the PDF: every number verification compares."""
+    return {
+        "format": "benchrun-report",
+        "format_version": 1,
+        "report_id": content.report_id,
+        "generated_utc": content.generated_utc,
+        "run_id": content.run_id,
+        "part": content.part,
+        "lot": content.lot,
+        "software_version": content.software_version,
+        "disposition": content.disposition,
+        "disposition_reasons": list(content.disposition_reasons),
+        "signer": {
+            "name": content.signer_name,
+            "role": content.signer_role,
+            "certificate_sha256": content.signer_fingerprint,
+        },
+        "analysis_options": content.analysis_options,
+        "limits_file": content.limits_file,
+        "shots": content.shots,
+        "devices": [
+            {
+                "serial": d.serial,
+                "condition": d.condition,
+                "bin": d.bin,
+                "verdict": d.verdict,
+                "grades": {k: c.grade for k, c in d.cells.items()},
+                "expanded_uncertainty": {k: c.expanded_u for k, c in d.cells.items()},
+            }
+            for d in content.devices
+        ],
+        "lot_grade": content.lot_grade,
+        "manifest": content.manifest,
+    }

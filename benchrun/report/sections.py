@@ -1,0 +1,220 @@
+"""Report sections as reportlab platypus flowables, built from :class:`ReportContent`.
+
+Tables are ``LongTable`` objects with a repeated header row so they break cleanly across
+pages. A verdict or grade is always written in words; colour only reinforces it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+from xml.sax.saxutils import escape
+
+from reportlab.lib import colors
+from reportlab.lib.units import mm
+from reportlab.platypus import (
+    CondPageBreak,
+    Flowable,
+    KeepTogether,
+    LongTable,
+    Paragraph,
+    Spacer,
+    Table,
+    TableStyle,
+)
+
+from benchrun.report.content import METRIC_LABELS, DeviceLine, ReportContent
+from benchrun.report.styles import (
+    FONT_BOLD,
+    FONT_REGULAR,
+    HEADER_BG,
+    INK,
+    RULE,
+    VERDICT_COLOURS,
+    ZEBRA_BG,
+    paragraph_styles,
+)
+from benchrun.units import format_si
+
+#: Short words for grades inside the dense device table (full words in the legend).
+GRADE_SHORT = {
+    "conforming": "ok",
+    "non-conforming": "NC",
+    "indeterminate": "IND",
+    "invalid": "INV",
+}
+
+
+def P(text: str, style: str = "body") -> Paragraph:  # noqa: N802 - reads like markup
+    """A paragraph of plain text (escaped) in a named style."""
+    return Paragraph(escape(text), paragraph_styles()[style])
+
+
+def PM(markup: str, style: str = "body") -> Paragraph:  # noqa: N802
+    """A paragraph of reportlab mini-markup (caller escapes any data)."""
+    return Paragraph(markup, paragraph_styles()[style])
+
+
+def base_table_style(n_rows: int, *, zebra: bool = True, font_size: float = 7.5) -> list:
+    cmds: list[tuple] = [
+        ("FONT", (0, 0), (-1, -1), FONT_REGULAR, font_size),
+        ("FONT", (0, 0), (-1, 0), FONT_BOLD, font_size),
+        ("TEXTCOLOR", (0, 0), (-1, -1), INK),
+        ("BACKGROUND", (0, 0), (-1, 0), HEADER_BG),
+        ("LINEBELOW", (0, 0), (-1, 0), 0.8, RULE),
+        ("LINEBELOW", (0, -1), (-1, -1), 0.8, RULE),
+        ("VALIGN", (0, 0), (-1, -1), "TOP"),
+        ("TOPPADDING", (0, 0), (-1, -1), 1.6),
+        ("BOTTOMPADDING", (0, 0), (-1, -1), 1.6),
+        ("LEFTPADDING", (0, 0), (-1, -1), 3),
+        ("RIGHTPADDING", (0, 0), (-1, -1), 3),
+    ]
+    if zebra:
+        for row in range(2, n_rows, 2):
+            cmds.append(("BACKGROUND", (0, row), (-1, row), ZEBRA_BG))
+    return cmds
+
+
+def simple_table(
+    rows: Sequence[Sequence[Any]],
+    widths: Sequence[float] | None = None,
+    *,
+    wrap: bool = True,
+    font_size: float = 7.5,
+) -> Flowable:
+    """A header + rows table; cells are wrapped as paragraphs when ``wrap``."""
+    if not rows:
+        return P("(none)", "muted")
+    style = paragraph_styles()["cell"]
+    bold = paragraph_styles()["cell_bold"]
+    data = []
+    for r, row in enumerate(rows):
+        if wrap:
+            data.append([
+                c if isinstance(c, Flowable)
+                else Paragraph(escape(str(c)), bold if r == 0 else style)
+                for c in row
+            ])
+        else:
+            data.append([str(c) for c in row])
+    table = LongTable(data, colWidths=widths, repeatRows=1, hAlign="LEFT")
+    table.setStyle(TableStyle(base_table_style(len(data), font_size=font_size)))
+    return table
+
+
+def key_value_table(pairs: Sequence[tuple[str, str]], widths: tuple[float, float]) -> Table:
+    style = paragraph_styles()
+    data = [[Paragraph(escape(k), style["cell_bold"]), Paragraph(escape(v), style["cell"])]
+            for k, v in pairs]
+    table = Table(data, colWidths=widths, hAlign="LEFT")
+    table.setStyle(TableStyle([
+        ("VALIGN", (0, 0), (-1, -1), "TOP"),
+        ("LINEBELOW", (0, 0), (-1, -1), 0.3, RULE),
+        ("TOPPADDING", (0, 0), (-1, -1), 2.5),
+        ("BOTTOMPADDING", (0, 0), (-1, -1), 2.5),
+    ]))
+    return table
+
+
+def disposition_banner(disposition: str, width: float) -> Table:
+    bg, fg = VERDICT_COLOURS.get(disposition, (colors.white, INK))
+    word = {"accept": "LOT ACCEPTED", "reject": "LOT REJECTED"}.get(disposition,
+                                                                  disposition.upper())
+    style = paragraph_styles()["disposition"]
+    cell = Paragraph(f'<font color="{fg.hexval()}">Lot disposition: {escape(word)}</font>', style)
+    table = Table([[cell]], colWidths=[width])
+    table.setStyle(TableStyle([
+        ("BACKGROUND", (0, 0), (-1, -1), bg),
+        ("BOX", (0, 0), (-1, -1), 1.2, fg),
+        ("TOPPADDING", (0, 0), (-1, -1), 8),
+        ("BOTTOMPADDING", (0, 0), (-1, -1), 10),
+    ]))
+    return table
+
+
+def _cell_text(cell: Any, unit: str) -> str:
+    if cell is None or cell.value is None:
+        text = "—"
+    else:
+        text = format_si(cell.value, unit, 3)
+        if cell.expanded_u is not None:
+            text += f" ± {format_si(cell.expanded_u, unit, 2)}"
+    if cell is not None and cell.grade and cell.grade != "conforming":
+        text += f" {GRADE_SHORT.get(cell.grade, cell.grade)}"
+    return text
+
+
+def device_table(content: ReportContent, width: float) -> Flowable:
+    """Per device and condition: value ± U and grade of each graded metric, bin, verdict.
+
+    Plain-string cells (no paragraphs) keep a 1000-row table fast to lay out.
+    """
+    keys = content.metric_columns
+    header = ["Serial", "Condition"] + [
+        f"{METRIC_LABELS.get(k, (k, ''))[0]}" + (f" ({METRIC_LABELS[k][1]})"
+                                                 if METRIC_LABELS.get(k, ("", ""))[1] else "")
+        for k in keys
+    ] + ["Bin", "Verdict"]
+    rows: list[list[str]] = [header]
+    cmds: list[tuple] = []
+    for r, line in enumerate(content.devices, start=1):
+        row = [line.serial, line.condition]
+        for c, key in enumerate(keys, start=2):
+            cell = line.cells.get(key)
+            unit = METRIC_LABELS.get(key, (key, ""))[1]
+            row.append(_cell_text(cell, unit))
+            if cell is not None and cell.grade in ("non-conforming", "indeterminate", "invalid"):
+                bg, fg = VERDICT_COLOURS[cell.grade]
+                cmds += [("BACKGROUND", (c, r), (c, r), bg), ("TEXTCOLOR", (c, r), (c, r), fg)]
+        row += [line.bin or "—", line.verdict.upper() if line.verdict != "conforming"
+                else line.verdict]
+        rows.append(row)
+        if line.verdict in VERDICT_COLOURS:
+            bg, fg = VERDICT_COLOURS[line.verdict]
+            v = len(row) - 1
+            cmds += [("BACKGROUND", (v, r), (v, r), bg), ("TEXTCOLOR", (v, r), (v, r), fg)]
+            if line.verdict != "conforming":
+                cmds += [("FONT", (0, r), (0, r), FONT_BOLD, 6.8),
+                         ("FONT", (v, r), (v, r), FONT_BOLD, 6.8)]
+    n_metric = len(keys)
+    fixed = [22 * mm, 16 * mm]
+    tail = [9 * mm, 21 * mm]
+    rest = max(width - sum(fixed) - sum(tail), 20 * mm)
+    widths = fixed + [rest / max(n_metric, 1)] * n_metric + tail
+    table = LongTable(rows, colWidths=widths, repeatRows=1, hAlign="LEFT")
+    style = base_table_style(len(rows), font_size=6.8)
+    style += [("ALIGN", (2, 0), (-1, -1), "LEFT")]
+    table.setStyle(TableStyle(style + cmds))
+    return table
+
+
+def non_conforming_list(devices: Sequence[DeviceLine]) -> list[Flowable]:
+    """Every device that is not conforming, named in words (also for colour-blind readers)."""
+    out: list[Flowable] = []
+    bad = [d for d in devices if d.verdict != "conforming"]
+    if not bad:
+        out.append(P("Every device at every condition is conforming.", "body"))
+        return out
+    rows = [["Serial", "Condition", "Verdict", "Metrics not conforming", "Note"]]
+    for d in bad:
+        which = [
+            f"{METRIC_LABELS.get(k, (k, ''))[0]}: {c.grade}"
+            for k, c in d.cells.items()
+            if c.grade and c.grade != "conforming"
+        ]
+        rows.append([d.serial, d.condition, d.verdict.upper(), "; ".join(which) or "—", d.note])
+    out.append(simple_table(rows, [24 * mm, 20 * mm, 28 * mm, 60 * mm, 42 * mm]))
+    return out
+
+
+def section(title: str, level: int = 2) -> list[Flowable]:
+    """A heading that is never left alone at the bottom of a page."""
+    return [CondPageBreak(40 * mm), P(title, "h1" if level == 1 else "h2")]
+
+
+def keep(*flowables: Flowable) -> KeepTogether:
+    return KeepTogether(list(flowables))
+
+
+def spacer(height_mm: float = 3) -> Spacer:
+    return Spacer(1, height_mm * mm)

@@ -1,0 +1,202 @@
+"""The order and wording of the report: cover, conditions, bench, method, results, figures,
+cautions, manifest. Layout helpers live in :mod:`benchrun.report.sections`."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+from reportlab.lib.units import mm
+from reportlab.platypus import Flowable, Table, TableStyle
+
+from benchrun.report import sections as sec
+from benchrun.report.content import ReportContent
+from benchrun.report.mplflow import FigureFlowable
+from benchrun.report.plots import distribution_figure, temperature_log_figure, trend_figure
+
+SAFETY_CAUTIONS = (
+    "High voltage and stored energy can kill. A double-pulse bench charges capacitors to "
+    "hundreds of volts and stores energy in its load inductor; contact with live parts or a "
+    "discharge through the body can be fatal.",
+    "Only trained and authorised persons may connect, operate or open a test bench. Follow "
+    "local electrical safety codes, the site's procedures and licensed practice; they take "
+    "precedence over anything in this report or in the software.",
+    "Before touching a fixture, switch the supply and pulse outputs off and confirm with a "
+    "meter that the bus voltage is below 60 V (touch-safe limit, IEC 61140 / IEC 62368-1 "
+    "ES1); bleeders must discharge stored energy to that level within 5 s (IEC 60204-1).",
+)
+
+CERTIFICATION_LIMITS = (
+    "This report states the measured recovery behaviour of the listed devices under the "
+    "stated test conditions, the grades obtained from the stated limits and decision rule, "
+    "and the lot disposition that follows from them. It certifies nothing beyond that.",
+    "Results apply only to the devices tested, at the measured conditions shown. They do not "
+    "extend to other voltages, currents, di/dt, temperatures, circuits or devices not tested.",
+    "Measurement uncertainty is the expanded uncertainty U (coverage factor as stated, about "
+    "95 % coverage) estimated from the stated budget; it does not cover faults of the bench "
+    "outside that budget.",
+    "Instrument identities and calibration due dates are as recorded by the test software; "
+    "calibration itself is certified by the calibration provider, not by this report.",
+    "The signature binds the signer to this file. Any change to the file, or to the raw record, "
+    "configuration files or results behind it, is detected by 'benchrun verify'.",
+)
+
+
+def _pair_figures(figures: list[Any], width: float) -> list[Flowable]:
+    """Lay small figures out two per row."""
+    out: list[Flowable] = []
+    for k in range(0, len(figures), 2):
+        row = [FigureFlowable(f) for f in figures[k:k + 2]]
+        if len(row) == 1:
+            row.append(sec.spacer(1))
+        table = Table([row], colWidths=[width / 2, width / 2], hAlign="LEFT")
+        table.setStyle(TableStyle([
+            ("LEFTPADDING", (0, 0), (-1, -1), 0), ("RIGHTPADDING", (0, 0), (-1, -1), 0),
+            ("VALIGN", (0, 0), (-1, -1), "TOP"),
+        ]))
+        out.append(table)
+    return out
+
+
+def _cover(content: ReportContent, signature_slot: Flowable, width: float) -> list[Flowable]:
+    counts = content.counts
+    story: list[Flowable] = [
+        sec.P(content.company, "title"),
+        sec.P("Reverse-recovery lot acceptance report", "subtitle"),
+        sec.key_value_table(
+            [
+                ("Part", content.part),
+                ("Lot", content.lot),
+                ("Report identifier", content.report_id),
+                ("Date of issue (UTC)", content.generated_utc),
+                ("Run", content.run_id + (f" ({content.run_window})" if content.run_window
+                                          else "")),
+                ("Software", f"benchrun {content.software_version}"),
+                ("Signer", ", ".join(x for x in (content.signer_name, content.signer_role,
+                                                 content.signer_organisation) if x)),
+                ("Signer certificate SHA-256", content.signer_fingerprint),
+            ],
+            (48 * mm, width - 48 * mm),
+        ),
+        sec.spacer(6),
+        sec.disposition_banner(content.disposition, width),
+        sec.spacer(3),
+        sec.P("Reasons for the disposition", "h3"),
+    ]
+    for reason in content.disposition_reasons or ["(no reason recorded)"]:
+        story.append(sec.P(f"• {reason}", "body"))
+    story.append(sec.spacer(3))
+    if counts:
+        rows = [["Devices", "Conforming", "Non-conforming", "Indeterminate", "Invalid"],
+                [str(counts.get("devices", 0)), str(counts.get("conforming", 0)),
+                 str(counts.get("non-conforming", 0)), str(counts.get("indeterminate", 0)),
+                 str(counts.get("invalid", 0))]]
+        story.append(sec.simple_table(rows, [width / 5] * 5))
+    story += [
+        sec.spacer(6),
+        sec.P("Approval", "h3"),
+        sec.P("The signature below is a PAdES digital signature over this whole file, including "
+            "the embedded data file 'benchrun-report.json' that holds every number shown here. "
+            "Check it with 'benchrun verify REPORT.pdf --cert SIGNER_CERT --data RUN_FOLDER'.",
+            "small"),
+        sec.spacer(2),
+        signature_slot,
+    ]
+    return story
+
+
+def build_story(
+    content: ReportContent,
+    *,
+    signature_slot: Flowable,
+    waveform_flowables: list[Flowable],
+    loss_flowables: list[Flowable],
+    portrait: Callable[[], list[Flowable]],
+    wide: Callable[[], list[Flowable]],
+    portrait_width: float,
+    landscape_width: float,
+) -> list[Flowable]:
+    """The whole report as a list of flowables."""
+    w = portrait_width
+    story: list[Flowable] = _cover(content, signature_slot, w)
+
+    story += portrait()
+    story += sec.section("1  Test conditions: requested and measured")
+    story.append(sec.P("Measured values are the mean and range over the valid shots of each "
+                     "condition; the tolerance is the one the shots were checked against.",
+                     "small"))
+    story.append(sec.simple_table(content.conditions_table))
+
+    story += sec.section("2  Bench, fixture and software")
+    story.append(sec.P("Instruments (identity as reported by the instrument, IEEE 488.2 *IDN?)",
+                     "h3"))
+    story.append(sec.simple_table(content.instruments_table))
+    story.append(sec.P("Fixture", "h3"))
+    story.append(sec.simple_table(content.fixture_table))
+
+    story += sec.section("3  Method: metric definitions, decision rule, uncertainty")
+    story.append(sec.simple_table(content.definitions_table, [34 * mm, w - 34 * mm]))
+    story.append(sec.P("Decision rule", "h3"))
+    for line in content.decision_rule:
+        story.append(sec.P(line, "small"))
+    story.append(sec.P("Uncertainty budget (GUM, JCGM 100:2008)", "h3"))
+    story.append(sec.simple_table(content.budget_table))
+
+    story += wide()
+    story += sec.section("4  Results per device")
+    story.append(sec.P(
+        "Each cell: measured value ± expanded uncertainty U. A grade other than conforming is "
+        "written after the value and the cell is shaded: NC = non-conforming, IND = "
+        "indeterminate (inside the guard band), INV = invalid (test conditions out of "
+        "tolerance; not graded). The verdict column repeats the device verdict in words.",
+        "small"))
+    story.append(sec.spacer(1.5))
+    story.append(sec.device_table(content, landscape_width))
+
+    story += portrait()
+    story += sec.section("5  Devices that are not conforming")
+    story += sec.non_conforming_list(content.devices)
+    story += sec.section("6  Lot statistics")
+    story.append(sec.simple_table(content.statistics_table))
+
+    figures = [distribution_figure(d["label"], d["unit"], d["groups"], d["limits"],
+                                   width_pt=w / 2 - 4, height_pt=150)
+               for d in content.distributions]
+    if figures:
+        story += sec.section("7  Distributions against the limits")
+        story.append(sec.P("Dashed red lines: the limits at each condition.", "small"))
+        story += _pair_figures(figures, w)
+    trend_figs = [trend_figure(d["label"], d["unit"], d["per_device"], width_pt=w / 2 - 4,
+                               height_pt=150) for d in content.trends]
+    if trend_figs or content.temperature_log:
+        story += sec.section("8  Temperature trends")
+        story += _pair_figures(trend_figs, w)
+        if content.temperature_log:
+            story.append(FigureFlowable(temperature_log_figure(content.temperature_log,
+                                                               width_pt=w, height_pt=140)))
+    if waveform_flowables:
+        story += sec.section("9  Recovery waveforms")
+        story.append(sec.P(
+            "Current and voltage through the recovery as re-read from the raw record. Marked: "
+            "t0 (current zero crossing), Irrm (reverse peak), trr (zero crossing of the "
+            "extrapolation line), t2 (end of the Qrr/Err integration). One representative "
+            "device and every device that is not conforming.", "small"))
+        story += waveform_flowables
+    if loss_flowables:
+        story += sec.section("10  Recovery loss estimate")
+        story += loss_flowables
+    story += sec.section("Safety cautions")
+    for text in SAFETY_CAUTIONS:
+        story.append(sec.P(f"⚠ {text}", "caution"))
+    story += sec.section("What this report certifies, and what it does not")
+    for text in CERTIFICATION_LIMITS:
+        story.append(sec.P(f"• {text}", "small"))
+    story += sec.section("Manifest (SHA-256)")
+    story.append(sec.P(
+        "Hashes of the data this report rests on (FIPS 180-4 SHA-256). The result rows digest "
+        "covers every stored shot of the run.", "small"))
+    rows = [["Item", "Kind", "Size", "SHA-256"]]
+    rows += [[m["name"], m["kind"], "" if m.get("size") is None else str(m["size"]),
+              m["sha256"]] for m in content.manifest]
+    story.append(sec.simple_table(rows, [42 * mm, 12 * mm, 18 * mm, w - 72 * mm]))
+    return story
