@@ -1,0 +1,553 @@
+"""The raw record: every shot's ADC codes, scaling and settings in one HDF5 file per run.
+
+Layout (HDF5, readable by any HDF5 tool)::
+
+    /                       attrs: format, format_version, software_version, created,
+                                   run_id and any other run-level attribute (JSON strings
+                                   for non-scalar values, see :meth:`RawRecord.run_attrs`)
+    /shots/<key>/           attrs: t_start_s, dt_s, probes_json, attrs_json,
+                                   content_sha256, complete
+    /shots/<key>/<channel>  int8 / int16 dataset: ADC codes exactly as captured
+                            attrs: gain, offset, code_min, code_max
+
+Physical channel volts are ``codes * gain + offset`` (the scope's own scaling recipe), the
+physical quantity is channel volts times the probe ``scale``; see
+:mod:`benchrun.analysis.pipeline`. Codes are never rescaled or resampled before they are
+stored, so re-analysis of the record reproduces the runner's numbers exactly.
+
+Crash safety
+------------
+A shot is written as: group → datasets → attributes → ``complete = True`` last, then the file
+is flushed (``H5Fflush``) and ``fsync``-ed before :meth:`RawRecord.append_shot` returns. A
+``kill -9`` at any moment therefore loses at most the shot in flight: a group left without the
+``complete`` mark is invisible to :meth:`RawRecord.keys` and is deleted when the file is next
+opened for writing. The file uses the earliest HDF5 file format (superblock version 0), which
+has no "file open for writing" status flag, so it reopens after a crash without ``h5clear``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import hashlib
+import json
+import os
+import re
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Protocol
+
+import h5py
+import numpy as np
+
+from benchrun import __version__
+from benchrun.errors import StoreError
+
+try:  # the one scaling contract shared with the analysis pipeline
+    from benchrun.analysis.pipeline import ChannelData, ProbeCalibration
+except ImportError:  # pragma: no cover - only while benchrun.analysis.pipeline is missing
+
+    @dataclass(frozen=True)
+    class ChannelData:  # type: ignore[no-redef]
+        """Raw ADC codes of one scope channel and their scaling (same fields as the pipeline)."""
+
+        codes: np.ndarray
+        gain: float
+        offset: float
+        code_min: int
+        code_max: int
+
+    @dataclass(frozen=True)
+    class ProbeCalibration:  # type: ignore[no-redef]
+        """Probe scale (physical unit per channel volt) and deskew (same fields as pipeline)."""
+
+        scale: float
+        deskew_s: float = 0.0
+
+
+#: Value of the root ``format`` attribute: identifies a benchrun raw record.
+FORMAT_NAME = "benchrun-raw-record"
+#: Layout version of the raw record written by this module.
+FORMAT_VERSION = 1
+#: Group holding one subgroup per shot.
+SHOTS_GROUP = "shots"
+
+_KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
+_CHUNK_BYTES = 256 * 1024
+
+
+class ChannelLike(Protocol):
+    """Anything with the fields of :class:`benchrun.analysis.pipeline.ChannelData`."""
+
+    codes: np.ndarray
+    gain: float
+    offset: float
+    code_min: int
+    code_max: int
+
+
+class ProbeLike(Protocol):
+    """Anything with the fields of :class:`benchrun.analysis.pipeline.ProbeCalibration`."""
+
+    scale: float
+    deskew_s: float
+
+
+@dataclass(frozen=True)
+class RawShot:
+    """One shot read back from the raw record.
+
+    Attributes
+    ----------
+    key
+        Shot key (the name of its group below ``/shots``).
+    t_start, dt
+        Time of the first sample relative to the trigger and the sample interval, seconds.
+    channels
+        Channel name → :class:`ChannelData` with the codes exactly as stored.
+    probes
+        Channel name → :class:`ProbeCalibration`.
+    attrs
+        The shot attributes given to :meth:`RawRecord.append_shot` (settings, serial, point,
+        timestamp, instrument identities ...), as JSON round-trips them.
+    """
+
+    key: str
+    t_start: float
+    dt: float
+    channels: dict[str, ChannelData]
+    probes: dict[str, ProbeCalibration]
+    attrs: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def raw_ref(self) -> str:
+        """Reference to this shot as stored in ``ShotResult.raw_ref`` (``"shots/<key>"``)."""
+        return f"{SHOTS_GROUP}/{self.key}"
+
+    def digest(self) -> str:
+        """SHA-256 of the shot's content, see :func:`shot_digest`."""
+        return shot_digest(self.t_start, self.dt, self.channels, self.probes, self.attrs)
+
+
+def _json(value: Any) -> str:
+    """Canonical JSON (sorted keys, no spaces); floats as ``repr`` so they round-trip exactly."""
+    try:
+        return json.dumps(value, sort_keys=True, separators=(",", ":"), allow_nan=True)
+    except (TypeError, ValueError) as exc:
+        raise StoreError(f"value cannot be stored as JSON: {exc}") from exc
+
+
+def shot_digest(
+    t_start: float,
+    dt: float,
+    channels: Mapping[str, ChannelLike],
+    probes: Mapping[str, ProbeLike],
+    attrs: Mapping[str, Any],
+) -> str:
+    """SHA-256 (hex) over a shot's timing, scaling, probes, attributes and raw codes.
+
+    The header is canonical JSON (sorted keys); then, per channel in name order, the dtype
+    string and the little-endian code bytes. Stored with every shot so a changed byte in a
+    waveform is found by :meth:`RawRecord.read_shot` even when the file still opens.
+
+    Returns
+    -------
+    str
+        64 hex digits.
+    """
+    header = {
+        "t_start": float(t_start),
+        "dt": float(dt),
+        "channels": {
+            name: {
+                "gain": float(ch.gain),
+                "offset": float(ch.offset),
+                "code_min": int(ch.code_min),
+                "code_max": int(ch.code_max),
+                "dtype": np.asarray(ch.codes).dtype.newbyteorder("<").str,
+                "length": int(np.asarray(ch.codes).size),
+            }
+            for name, ch in channels.items()
+        },
+        "probes": {
+            name: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)}
+            for name, p in probes.items()
+        },
+        "attrs": dict(attrs),
+    }
+    h = hashlib.sha256(_json(header).encode())
+    for name in sorted(channels):
+        codes = np.asarray(channels[name].codes)
+        h.update(name.encode() + b"\0")
+        h.update(np.ascontiguousarray(codes, dtype=codes.dtype.newbyteorder("<")).tobytes())
+    return h.hexdigest()
+
+
+def file_sha256(path: str | os.PathLike[str], chunk_size: int = 1 << 20) -> str:
+    """SHA-256 (hex) of a file's bytes (FIPS 180-4), read in chunks.
+
+    Raises
+    ------
+    StoreError
+        The file cannot be read.
+    """
+    h = hashlib.sha256()
+    try:
+        with open(path, "rb") as fh:
+            while block := fh.read(chunk_size):
+                h.update(block)
+    except OSError as exc:
+        raise StoreError(f"cannot read {path} to hash it: {exc}") from exc
+    return h.hexdigest()
+
+
+def _key_of(key_or_ref: str) -> str:
+    key = key_or_ref.removeprefix("/").removeprefix(f"{SHOTS_GROUP}/")
+    if not _KEY_RE.match(key):
+        raise StoreError(
+            f"invalid shot key {key_or_ref!r}: use letters, digits, '_', '-', '.' only"
+        )
+    return key
+
+
+def _attr_str(value: Any) -> str:
+    return value.decode() if isinstance(value, bytes) else str(value)
+
+
+class RawRecord:
+    """The raw HDF5 record of one run, opened as a context manager.
+
+    Parameters
+    ----------
+    path
+        File path (conventionally ``<run_dir>/raw.h5``).
+    mode
+        ``"r"`` read only; ``"a"`` read/write, create if missing (default); ``"w"`` create,
+        truncating an existing file. Opening for writing removes shots left incomplete by a
+        crash.
+    compression
+        ``"gzip"`` (level 1 with byte shuffle: standard HDF5 filters any HDF5 reader has, about
+        3x smaller for 8-bit captures) or ``None``. Only affects newly written shots.
+
+    Raises
+    ------
+    StoreError
+        The file is missing (mode ``"r"``), not an HDF5 file, damaged, locked by another
+        writer, or a different kind of HDF5 file.
+
+    Examples
+    --------
+    >>> with RawRecord(run_dir / "raw.h5") as raw:            # doctest: +SKIP
+    ...     ref = raw.append_shot(raw.next_key(), t0, dt, channels, probes, {"serial": "S01"})
+    """
+
+    def __init__(
+        self,
+        path: str | os.PathLike[str],
+        mode: str = "a",
+        *,
+        compression: str | None = "gzip",
+    ) -> None:
+        if mode not in ("r", "a", "w"):
+            raise StoreError(f"raw record mode must be 'r', 'a' or 'w', not {mode!r}")
+        if compression not in ("gzip", None):
+            raise StoreError(f"compression must be 'gzip' or None, not {compression!r}")
+        self.path = Path(path)
+        self.mode = mode
+        self.compression = compression
+        self._file: h5py.File | None = None
+        self._open()
+
+    # -- opening and closing -------------------------------------------------------------
+    def _open(self) -> None:
+        path = self.path
+        if self.mode == "r" and not path.exists():
+            raise StoreError(f"raw record {path} does not exist")
+        if self.mode != "r" and not path.parent.is_dir():
+            raise StoreError(f"cannot create raw record {path}: folder {path.parent} is missing")
+        # A file of zero bytes holds nothing: a crash before the first flush of a new record.
+        fresh = self.mode == "w" or not path.exists() or path.stat().st_size == 0
+        h5mode = "r" if self.mode == "r" else ("w" if fresh else "r+")
+        try:
+            self._file = h5py.File(path, h5mode, libver="earliest")
+        except (OSError, ValueError) as exc:
+            raise StoreError(
+                f"raw record {path} cannot be opened ({exc}); the file is not an HDF5 file, "
+                "is damaged (for example half-written when the machine lost power), or is "
+                "open for writing in another process"
+            ) from exc
+        f = self._file
+        if fresh:
+            f.attrs["format"] = FORMAT_NAME
+            f.attrs["format_version"] = FORMAT_VERSION
+            f.attrs["software_version"] = __version__
+            f.attrs["created"] = _dt.datetime.now(_dt.UTC).isoformat()
+            f.create_group(SHOTS_GROUP)
+            self.flush()
+            return
+        if _attr_str(f.attrs.get("format", "")) != FORMAT_NAME or SHOTS_GROUP not in f:
+            self.close()
+            raise StoreError(f"{path} is an HDF5 file but not a benchrun raw record")
+        if self.mode != "r":
+            self._drop_incomplete()
+
+    def _drop_incomplete(self) -> None:
+        shots = self._shots
+        stale = [k for k, g in shots.items() if not bool(g.attrs.get("complete", False))]
+        for key in stale:
+            del shots[key]
+        if stale:
+            self.flush()
+
+    def close(self) -> None:
+        """Flush and close the file (safe to call twice)."""
+        if self._file is not None:
+            with contextlib.suppress(Exception):
+                if self.mode != "r":
+                    self.flush()
+            self._file.close()
+            self._file = None
+
+    def __enter__(self) -> RawRecord:
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        self.close()
+
+    @property
+    def _f(self) -> h5py.File:
+        if self._file is None:
+            raise StoreError(f"raw record {self.path} is closed")
+        return self._file
+
+    @property
+    def _shots(self) -> h5py.Group:
+        return self._f[SHOTS_GROUP]
+
+    def flush(self) -> None:
+        """Write everything to the operating system (``H5Fflush``) and ``fsync`` it to disk."""
+        f = self._f
+        try:
+            f.flush()
+            fd = f.id.get_vfd_handle()
+            if isinstance(fd, int) and fd >= 0:
+                os.fsync(fd)
+        except (OSError, ValueError) as exc:
+            raise StoreError(f"cannot flush raw record {self.path}: {exc}") from exc
+
+    # -- run-level attributes ------------------------------------------------------------
+    @property
+    def run_attrs(self) -> dict[str, Any]:
+        """Run-level attributes of the file root (``run_id``, ``software_version``, ...).
+
+        Values set through :meth:`set_run_attrs` come back as given (JSON round trip).
+        """
+        out: dict[str, Any] = {}
+        for name, value in self._f.attrs.items():
+            if name.endswith("_json"):
+                out[name.removesuffix("_json")] = json.loads(_attr_str(value))
+            elif isinstance(value, bytes | str):
+                out[name] = _attr_str(value)
+            elif isinstance(value, np.generic):
+                out[name] = value.item()
+            else:
+                out[name] = value
+        return out
+
+    def set_run_attrs(self, **attrs: Any) -> None:
+        """Set run-level attributes; strings and numbers natively, other values as JSON."""
+        self._require_writable()
+        f = self._f
+        for name, value in attrs.items():
+            if isinstance(value, str | int | float | bool):
+                f.attrs[name] = value
+            else:
+                f.attrs[f"{name}_json"] = _json(value)
+        self.flush()
+
+    # -- shots ---------------------------------------------------------------------------
+    def _require_writable(self) -> None:
+        if self.mode == "r":
+            raise StoreError(f"raw record {self.path} is open read-only")
+
+    def keys(self) -> list[str]:
+        """Keys of every complete shot, sorted."""
+        return sorted(k for k, g in self._shots.items() if bool(g.attrs.get("complete", False)))
+
+    def __contains__(self, key_or_ref: str) -> bool:
+        key = _key_of(key_or_ref)
+        g = self._shots.get(key)
+        return g is not None and bool(g.attrs.get("complete", False))
+
+    def __len__(self) -> int:
+        return len(self.keys())
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self.keys())
+
+    def next_key(self) -> str:
+        """A fresh sequential key (``"000000"``, ``"000001"``, ...) after every stored one."""
+        numbers = [int(k) for k in self._shots if k.isdigit()]
+        return f"{(max(numbers) + 1) if numbers else 0:06d}"
+
+    def append_shot(
+        self,
+        key: str,
+        t_start: float,
+        dt: float,
+        channels: Mapping[str, ChannelLike],
+        probes: Mapping[str, ProbeLike],
+        attrs: Mapping[str, Any] | None = None,
+        *,
+        replace: bool = False,
+    ) -> str:
+        """Store one shot and make it durable before returning.
+
+        Parameters
+        ----------
+        key
+            Shot key (letters, digits, ``_ - .``); see :meth:`next_key`.
+        t_start, dt
+            Time of the first sample (s, relative to the trigger) and sample interval (s).
+        channels
+            Channel name → object with ``codes`` (integer array, stored as captured),
+            ``gain``, ``offset``, ``code_min``, ``code_max``.
+        probes
+            Channel name → object with ``scale`` and ``deskew_s``.
+        attrs
+            JSON-serialisable shot attributes: settings, serial, point, timestamp, instrument
+            identities ... Floats round-trip exactly.
+        replace
+            Overwrite a complete shot stored under the same key (otherwise an error).
+
+        Returns
+        -------
+        str
+            The reference to store in ``ShotResult.raw_ref`` (``"shots/<key>"``).
+
+        Raises
+        ------
+        StoreError
+            Bad key or data, key already used, read-only record, or a write failure.
+        """
+        self._require_writable()
+        key = _key_of(key)
+        attrs = dict(attrs or {})
+        if not channels:
+            raise StoreError(f"shot {key}: no channels to store")
+        if not (np.isfinite(t_start) and np.isfinite(dt) and dt > 0):
+            raise StoreError(f"shot {key}: t_start must be finite and dt positive")
+        arrays: dict[str, np.ndarray] = {}
+        for name, ch in channels.items():
+            if not _KEY_RE.match(name):
+                raise StoreError(f"shot {key}: invalid channel name {name!r}")
+            codes = np.asarray(ch.codes)
+            if codes.ndim != 1 or codes.dtype.kind not in "iu" or codes.dtype.itemsize > 2:
+                raise StoreError(
+                    f"shot {key}: channel {name!r} codes must be a 1-D int8/int16 array, "
+                    f"got {codes.dtype} with shape {codes.shape}"
+                )
+            arrays[name] = codes
+        digest = shot_digest(t_start, dt, channels, probes, attrs)
+        probes_json = _json(
+            {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)} for n, p in probes.items()}
+        )
+        attrs_json = _json(attrs)
+        shots = self._shots
+        try:
+            if key in shots:
+                if bool(shots[key].attrs.get("complete", False)) and not replace:
+                    raise StoreError(f"shot {key} is already in raw record {self.path}")
+                del shots[key]
+            group = shots.create_group(key)
+            for name, codes in arrays.items():
+                ch = channels[name]
+                options: dict[str, Any] = {}
+                if self.compression == "gzip" and codes.size:
+                    chunk = max(1, min(codes.size, _CHUNK_BYTES // codes.dtype.itemsize))
+                    options = {
+                        "compression": "gzip",
+                        "compression_opts": 1,
+                        "shuffle": True,
+                        "chunks": (chunk,),
+                    }
+                ds = group.create_dataset(name, data=codes, **options)
+                ds.attrs["gain"] = float(ch.gain)
+                ds.attrs["offset"] = float(ch.offset)
+                ds.attrs["code_min"] = int(ch.code_min)
+                ds.attrs["code_max"] = int(ch.code_max)
+            group.attrs["t_start_s"] = float(t_start)
+            group.attrs["dt_s"] = float(dt)
+            group.attrs["probes_json"] = probes_json
+            group.attrs["attrs_json"] = attrs_json
+            group.attrs["content_sha256"] = digest
+            group.attrs["complete"] = True
+        except StoreError:
+            raise
+        except (OSError, ValueError, TypeError, KeyError) as exc:
+            raise StoreError(f"cannot write shot {key} to {self.path}: {exc}") from exc
+        self.flush()
+        return f"{SHOTS_GROUP}/{key}"
+
+    def read_shot(self, key_or_ref: str, *, verify: bool = True) -> RawShot:
+        """Read one complete shot back.
+
+        Parameters
+        ----------
+        key_or_ref
+            The shot key, or the reference ``"shots/<key>"`` kept in ``ShotResult.raw_ref``.
+        verify
+            Recompute the content SHA-256 and compare it with the one stored with the shot.
+
+        Raises
+        ------
+        StoreError
+            No such complete shot, unreadable data, or (``verify``) content that differs from
+            what was written.
+        """
+        key = _key_of(key_or_ref)
+        group = self._shots.get(key)
+        if group is None or not bool(group.attrs.get("complete", False)):
+            raise StoreError(f"no shot {key!r} in raw record {self.path}")
+        try:
+            channels: dict[str, ChannelData] = {}
+            for name, ds in group.items():
+                channels[name] = ChannelData(
+                    codes=ds[()],
+                    gain=float(ds.attrs["gain"]),
+                    offset=float(ds.attrs["offset"]),
+                    code_min=int(ds.attrs["code_min"]),
+                    code_max=int(ds.attrs["code_max"]),
+                )
+            probes = {
+                name: ProbeCalibration(scale=float(p["scale"]), deskew_s=float(p["deskew_s"]))
+                for name, p in json.loads(_attr_str(group.attrs["probes_json"])).items()
+            }
+            shot = RawShot(
+                key=key,
+                t_start=float(group.attrs["t_start_s"]),
+                dt=float(group.attrs["dt_s"]),
+                channels=channels,
+                probes=probes,
+                attrs=json.loads(_attr_str(group.attrs["attrs_json"])),
+            )
+            stored_digest = _attr_str(group.attrs["content_sha256"])
+        except (OSError, KeyError, ValueError, TypeError) as exc:
+            raise StoreError(f"shot {key} in {self.path} cannot be read: {exc}") from exc
+        if verify and shot.digest() != stored_digest:
+            raise StoreError(
+                f"shot {key} in {self.path} does not match the SHA-256 recorded when it was "
+                "written: the raw data were changed or damaged"
+            )
+        return shot
+
+    def damaged_keys(self) -> list[str]:
+        """Keys of complete shots that cannot be read or whose content hash does not match."""
+        bad = []
+        for key in self.keys():
+            try:
+                self.read_shot(key, verify=True)
+            except StoreError:
+                bad.append(key)
+        return bad

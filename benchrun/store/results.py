@@ -1,0 +1,624 @@
+"""The results database: runs, analysed shots and issued reports, through SQLAlchemy 2.0 Core.
+
+A SQLite file is the default (``sqlite:///<run_dir>/results.db``); a PostgreSQL URL
+(``postgresql+psycopg://user@host/db``) lets several benches share one store. Three tables:
+
+``runs``
+    one row per run: ``run_id`` (key), ``part``, ``lot``, ``started``, ``finished``,
+    ``status``, ``manifest`` (JSON text).
+``shots``
+    one row per analysed shot; unique on ``(run_id, serial, point_index, repeat, attempt)`` so a
+    resumed run can never store a shot twice. Dict-valued fields of
+    :class:`~benchrun.records.ShotResult` are JSON text (floats written with ``repr``, so they
+    round-trip bit-exactly on every backend); the target columns ``temperature_K``,
+    ``bus_voltage_V``, ``forward_current_A`` are copies of the point for SQL queries.
+``reports``
+    one row per issued report: ``report_id`` (key), ``run_id``, ``path``, ``sha256``,
+    ``created``, ``signer``, ``disposition``, ``details`` (JSON text).
+
+Every write is its own transaction, committed before the method returns. SQLite runs in WAL
+mode with ``synchronous=FULL`` so a committed shot survives a crash or power loss (SQLite
+documentation, "Write-Ahead Logging" and "PRAGMA synchronous"). Every SQLAlchemy error is
+translated to :class:`~benchrun.errors.StoreError`.
+
+Times are ISO 8601 UTC strings; they sort chronologically as text on every backend.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import math
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+from sqlalchemy import (
+    Boolean,
+    Column,
+    Double,
+    ForeignKey,
+    Integer,
+    MetaData,
+    String,
+    Table,
+    Text,
+    UniqueConstraint,
+    create_engine,
+    event,
+    insert,
+    select,
+    update,
+)
+from sqlalchemy.engine import Connection, Engine, make_url
+from sqlalchemy.exc import ArgumentError, IntegrityError, NoSuchModuleError, SQLAlchemyError
+
+from benchrun.errors import StoreError
+from benchrun.records import ShotResult
+
+metadata = MetaData()
+
+runs_table = Table(
+    "runs",
+    metadata,
+    Column("run_id", String(200), primary_key=True),
+    Column("part", String(200), nullable=False),
+    Column("lot", String(200), nullable=False),
+    Column("started", String(40), nullable=False),
+    Column("finished", String(40), nullable=True),
+    Column("status", String(40), nullable=False),
+    Column("manifest", Text, nullable=False),
+)
+
+shots_table = Table(
+    "shots",
+    metadata,
+    Column("id", Integer, primary_key=True, autoincrement=True),
+    Column("run_id", String(200), ForeignKey("runs.run_id"), nullable=False, index=True),
+    Column("part", String(200), nullable=False),
+    Column("lot", String(200), nullable=False),
+    Column("serial", String(200), nullable=False),
+    Column("point_index", Integer, nullable=False),
+    Column("repeat", Integer, nullable=False),
+    Column("attempt", Integer, nullable=False),
+    Column("timestamp", String(40), nullable=False),
+    Column("temperature_K", Double, nullable=True),
+    Column("bus_voltage_V", Double, nullable=True),
+    Column("forward_current_A", Double, nullable=True),
+    Column("point", Text, nullable=False),
+    Column("conditions", Text, nullable=False),
+    Column("metrics", Text, nullable=False),
+    Column("flags", Text, nullable=False),
+    Column("valid", Boolean, nullable=False),
+    Column("raw_ref", String(400), nullable=False),
+    Column("acquisition", Text, nullable=False),
+    Column("extra", Text, nullable=False),
+    UniqueConstraint("run_id", "serial", "point_index", "repeat", "attempt", name="uq_shot"),
+)
+
+reports_table = Table(
+    "reports",
+    metadata,
+    Column("report_id", String(200), primary_key=True),
+    Column("run_id", String(200), ForeignKey("runs.run_id"), nullable=False, index=True),
+    Column("path", Text, nullable=False),
+    Column("sha256", String(64), nullable=False),
+    Column("created", String(40), nullable=False),
+    Column("signer", Text, nullable=False),
+    Column("disposition", String(40), nullable=False),
+    Column("details", Text, nullable=False),
+)
+
+#: ShotResult fields stored in their own column (everything else goes to ``extra``).
+_SHOT_COLUMNS = (
+    "run_id", "part", "lot", "serial", "repeat", "attempt", "timestamp",
+    "conditions", "metrics", "flags", "valid", "raw_ref", "acquisition", "point",
+)  # fmt: skip
+
+
+def utc_now() -> str:
+    """The current time as an ISO 8601 UTC string."""
+    return _dt.datetime.now(_dt.UTC).isoformat()
+
+
+def canonical_json(value: Any) -> str:
+    """Canonical JSON: sorted keys, no spaces, floats as ``repr`` (exact round trip)."""
+    try:
+        return json.dumps(value, sort_keys=True, separators=(",", ":"), allow_nan=True)
+    except (TypeError, ValueError) as exc:
+        raise StoreError(f"value cannot be stored as JSON: {exc}") from exc
+
+
+@dataclass(frozen=True)
+class RunRecord:
+    """One row of the ``runs`` table."""
+
+    run_id: str
+    part: str
+    lot: str
+    started: str
+    finished: str | None
+    status: str
+    manifest: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class ReportRecord:
+    """One row of the ``reports`` table.
+
+    ``disposition`` is the lot disposition stated in the report (``"accept"``/``"reject"``);
+    ``details`` holds anything else worth listing (row digest, signer role ...).
+    """
+
+    report_id: str
+    run_id: str
+    path: str
+    sha256: str
+    created: str
+    signer: str
+    disposition: str
+    details: dict[str, Any] = field(default_factory=dict)
+
+
+def normalize_url(url: str) -> str:
+    """Complete a database URL: a bare ``postgresql://`` gets the psycopg 3 driver.
+
+    A plain file path (no ``://``) is taken as a SQLite file.
+    """
+    if "://" not in url:
+        return f"sqlite:///{Path(url).resolve()}"
+    for prefix in ("postgresql://", "postgres://"):
+        if url.startswith(prefix):
+            return "postgresql+psycopg://" + url[len(prefix) :]
+    return url
+
+
+def _set_sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
+    cursor = dbapi_connection.cursor()
+    try:
+        cursor.execute("PRAGMA journal_mode=WAL")
+        cursor.execute("PRAGMA synchronous=FULL")
+        cursor.execute("PRAGMA foreign_keys=ON")
+        cursor.execute("PRAGMA busy_timeout=10000")
+    finally:
+        cursor.close()
+
+
+class ResultsStore:
+    """Runs, shots and reports in a SQL database.
+
+    Parameters
+    ----------
+    url
+        SQLAlchemy URL: ``sqlite:///path/results.db`` (default kind), or
+        ``postgresql+psycopg://user@host:port/db``. A bare ``postgresql://`` URL is given the
+        psycopg 3 driver; a plain path is a SQLite file. Keep passwords out of URLs that are
+        written to ``run.json``: libpq reads ``PGPASSWORD`` and ``~/.pgpass``.
+    create
+        Create missing tables (default). The SQLite file's folder must exist.
+
+    Raises
+    ------
+    StoreError
+        Bad URL, missing driver, unreachable server or any database error.
+    """
+
+    def __init__(self, url: str, *, create: bool = True) -> None:
+        self.url = normalize_url(str(url))
+        try:
+            parsed = make_url(self.url)
+        except ArgumentError as exc:
+            raise StoreError(f"not a database URL: {url!r} ({exc})") from exc
+        self.backend = parsed.get_backend_name()
+        if self.backend == "sqlite" and parsed.database and parsed.database != ":memory:":
+            folder = Path(parsed.database).parent
+            if not folder.is_dir():
+                raise StoreError(f"cannot open results database {parsed.database}: "
+                                 f"folder {folder} is missing")
+        #: The URL without its password, fit to be written into a manifest.
+        self.public_url = parsed._replace(password=None).render_as_string(hide_password=False)
+        try:
+            engine: Engine = create_engine(self.url, pool_pre_ping=self.backend != "sqlite")
+        except (ArgumentError, NoSuchModuleError, ImportError) as exc:
+            raise StoreError(f"cannot use database URL {self.public_url}: {exc}") from exc
+        if self.backend == "sqlite":
+            event.listen(engine, "connect", _set_sqlite_pragmas)
+        self._engine = engine
+        if create:
+            with self._errors(f"cannot prepare the results tables in {self.public_url}"):
+                metadata.create_all(engine)
+
+    # -- plumbing ------------------------------------------------------------------------
+    @contextmanager
+    def _errors(self, what: str) -> Iterator[None]:
+        try:
+            yield
+        except StoreError:
+            raise
+        except SQLAlchemyError as exc:
+            raise StoreError(f"{what}: {exc.__class__.__name__}: {exc}") from exc
+
+    @contextmanager
+    def _begin(self, what: str) -> Iterator[Connection]:
+        with self._errors(what), self._engine.begin() as conn:
+            yield conn
+
+    def close(self) -> None:
+        """Release every pooled connection."""
+        self._engine.dispose()
+
+    def __enter__(self) -> ResultsStore:
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return f"ResultsStore({self.public_url!r})"
+
+    # -- runs ----------------------------------------------------------------------------
+    def create_run(
+        self,
+        run_id: str,
+        part: str,
+        lot: str,
+        manifest: dict[str, Any] | None = None,
+        *,
+        started: str | None = None,
+        status: str = "running",
+    ) -> RunRecord:
+        """Insert a new run; an existing ``run_id`` is an error (use :meth:`get_run` to resume)."""
+        record = RunRecord(
+            run_id=run_id,
+            part=part,
+            lot=lot,
+            started=started or utc_now(),
+            finished=None,
+            status=status,
+            manifest=dict(manifest or {}),
+        )
+        values = {
+            "run_id": run_id, "part": part, "lot": lot, "started": record.started,
+            "finished": None, "status": status, "manifest": canonical_json(record.manifest),
+        }  # fmt: skip
+        try:
+            with self._engine.begin() as conn:
+                conn.execute(insert(runs_table).values(**values))
+        except IntegrityError as exc:
+            raise StoreError(f"run {run_id!r} already exists in {self.public_url}") from exc
+        except SQLAlchemyError as exc:
+            raise StoreError(f"cannot create run {run_id!r}: {exc}") from exc
+        return record
+
+    def get_run(self, run_id: str) -> RunRecord | None:
+        """The run's row, or ``None`` when there is no such run."""
+        with self._begin(f"cannot read run {run_id!r}") as conn:
+            row = conn.execute(select(runs_table).where(runs_table.c.run_id == run_id)).first()
+        return None if row is None else self._run_record(row._mapping)
+
+    def update_run(
+        self,
+        run_id: str,
+        *,
+        status: str | None = None,
+        finished: str | None = None,
+        manifest: dict[str, Any] | None = None,
+    ) -> RunRecord:
+        """Change a run's status, end time and/or manifest; returns the updated row."""
+        values: dict[str, Any] = {}
+        if status is not None:
+            values["status"] = status
+        if finished is not None:
+            values["finished"] = finished
+        if manifest is not None:
+            values["manifest"] = canonical_json(manifest)
+        with self._begin(f"cannot update run {run_id!r}") as conn:
+            if values:
+                result = conn.execute(
+                    update(runs_table).where(runs_table.c.run_id == run_id).values(**values)
+                )
+                if result.rowcount == 0:
+                    raise StoreError(f"no run {run_id!r} in {self.public_url}")
+        record = self.get_run(run_id)
+        if record is None:
+            raise StoreError(f"no run {run_id!r} in {self.public_url}")
+        return record
+
+    def runs(self) -> list[RunRecord]:
+        """Every run, oldest first."""
+        with self._begin("cannot list runs") as conn:
+            rows = conn.execute(
+                select(runs_table).order_by(runs_table.c.started, runs_table.c.run_id)
+            ).all()
+        return [self._run_record(r._mapping) for r in rows]
+
+    @staticmethod
+    def _run_record(row: Any) -> RunRecord:
+        return RunRecord(
+            run_id=row["run_id"],
+            part=row["part"],
+            lot=row["lot"],
+            started=row["started"],
+            finished=row["finished"],
+            status=row["status"],
+            manifest=json.loads(row["manifest"]),
+        )
+
+    # -- shots ---------------------------------------------------------------------------
+    @staticmethod
+    def _shot_row(shot: ShotResult) -> dict[str, Any]:
+        data = shot.to_dict()
+        point = data["point"]
+        extra = {k: v for k, v in data.items() if k not in _SHOT_COLUMNS}
+        return {
+            "run_id": shot.run_id,
+            "part": shot.part,
+            "lot": shot.lot,
+            "serial": shot.serial,
+            "point_index": int(shot.point.index),
+            "repeat": int(shot.repeat),
+            "attempt": int(shot.attempt),
+            "timestamp": shot.timestamp,
+            "temperature_K": _query_float(point.get("temperature_K")),
+            "bus_voltage_V": _query_float(point.get("bus_voltage_V")),
+            "forward_current_A": _query_float(point.get("forward_current_A")),
+            "point": canonical_json(point),
+            "conditions": canonical_json(data["conditions"]),
+            "metrics": canonical_json(data["metrics"]),
+            "flags": canonical_json(data["flags"]),
+            "valid": bool(shot.valid),
+            "raw_ref": shot.raw_ref,
+            "acquisition": canonical_json(data["acquisition"]),
+            "extra": canonical_json(extra),
+        }
+
+    @staticmethod
+    def _shot_from_row(row: Any) -> ShotResult:
+        data: dict[str, Any] = json.loads(row["extra"])
+        data.update(
+            run_id=row["run_id"],
+            part=row["part"],
+            lot=row["lot"],
+            serial=row["serial"],
+            repeat=row["repeat"],
+            attempt=row["attempt"],
+            timestamp=row["timestamp"],
+            point=json.loads(row["point"]),
+            conditions=json.loads(row["conditions"]),
+            metrics=json.loads(row["metrics"]),
+            flags=json.loads(row["flags"]),
+            valid=bool(row["valid"]),
+            raw_ref=row["raw_ref"],
+            acquisition=json.loads(row["acquisition"]),
+        )
+        return ShotResult.from_dict(data)
+
+    def _stored_row(self, conn: Connection, key: tuple[str, str, int, int, int]) -> Any:
+        c = shots_table.c
+        run_id, serial, point_index, repeat, attempt = key
+        return conn.execute(
+            select(shots_table).where(
+                c.run_id == run_id,
+                c.serial == serial,
+                c.point_index == point_index,
+                c.repeat == repeat,
+                c.attempt == attempt,
+            )
+        ).first()
+
+    def add_shot(self, shot: ShotResult) -> bool:
+        """Store one shot in its own transaction, committed before returning.
+
+        Idempotent: storing the identical shot again does nothing.
+
+        Returns
+        -------
+        bool
+            True when the row was inserted, False when the identical row was already there.
+
+        Raises
+        ------
+        StoreError
+            The run does not exist, a *different* shot is already stored under the same
+            ``(run_id, serial, point_index, repeat, attempt)``, or a database error.
+        """
+        row = self._shot_row(shot)
+        key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
+        try:
+            with self._engine.begin() as conn:
+                conn.execute(insert(shots_table).values(**row))
+            return True
+        except IntegrityError as exc:
+            with self._begin("cannot check an existing shot") as conn:
+                existing = self._stored_row(conn, key)
+                run_exists = conn.execute(
+                    select(runs_table.c.run_id).where(runs_table.c.run_id == shot.run_id)
+                ).first()
+            if existing is None:
+                if run_exists is None:
+                    raise StoreError(
+                        f"run {shot.run_id!r} is not in {self.public_url}; create_run first"
+                    ) from exc
+                raise StoreError(f"cannot store shot {key}: {exc}") from exc
+            stored = {k: v for k, v in existing._mapping.items() if k != "id"}
+            if _same_row(stored, row):
+                return False
+            raise StoreError(
+                f"a different shot is already stored for run {key[0]!r}, serial {key[1]!r}, "
+                f"point {key[2]}, repeat {key[3]}, attempt {key[4]}"
+            ) from exc
+        except SQLAlchemyError as exc:
+            raise StoreError(f"cannot store shot {key}: {exc}") from exc
+
+    def shots(self, run_id: str) -> list[ShotResult]:
+        """Every shot of a run, in the order they were stored."""
+        with self._begin(f"cannot read the shots of run {run_id!r}") as conn:
+            rows = conn.execute(
+                select(shots_table)
+                .where(shots_table.c.run_id == run_id)
+                .order_by(shots_table.c.id)
+            ).all()
+        try:
+            return [self._shot_from_row(r._mapping) for r in rows]
+        except (ValueError, TypeError, KeyError) as exc:
+            raise StoreError(f"a stored shot of run {run_id!r} cannot be decoded: {exc}") from exc
+
+    def tested_keys(
+        self, run_id: str, *, max_attempts: int | None = None
+    ) -> set[tuple[str, int, int]]:
+        """``(serial, point_index, repeat)`` of every test that needs no further shot.
+
+        Parameters
+        ----------
+        max_attempts
+            ``None``: any stored shot completes its test. Otherwise a test is complete when
+            one of its shots is valid or ``max_attempts`` shots were stored (so a resumed run
+            still fires the retry of an invalid shot interrupted by a crash).
+        """
+        c = shots_table.c
+        with self._begin(f"cannot read the shots of run {run_id!r}") as conn:
+            rows = conn.execute(
+                select(c.serial, c.point_index, c.repeat, c.attempt, c.valid).where(
+                    c.run_id == run_id
+                )
+            ).all()
+        attempts: dict[tuple[str, int, int], list[bool]] = {}
+        for serial, point_index, repeat, _attempt, valid in rows:
+            attempts.setdefault((serial, point_index, repeat), []).append(bool(valid))
+        if max_attempts is None:
+            return set(attempts)
+        return {k for k, v in attempts.items() if any(v) or len(v) >= max_attempts}
+
+    def next_attempt(self, run_id: str, serial: str, point_index: int, repeat: int) -> int:
+        """The attempt number for the next shot of this test (0 when none is stored)."""
+        c = shots_table.c
+        with self._begin(f"cannot read the shots of run {run_id!r}") as conn:
+            done = conn.execute(
+                select(c.attempt).where(
+                    c.run_id == run_id,
+                    c.serial == serial,
+                    c.point_index == point_index,
+                    c.repeat == repeat,
+                )
+            ).all()
+        return max((a for (a,) in done), default=-1) + 1
+
+    def row_digest(self, run_id: str) -> str:
+        """SHA-256 (hex) over every stored column of every shot row of a run.
+
+        Each row (all columns but the surrogate ``id``) becomes a JSON object with sorted
+        keys; rows are sorted by ``(serial, point_index, repeat, attempt)`` and the list is
+        hashed as canonical JSON. Any edit to any stored value of the run's shots (including
+        the query-only target columns) changes the digest. The digest does not depend on the
+        backend: the same rows give the same digest in SQLite and PostgreSQL.
+        """
+        with self._begin(f"cannot read the shots of run {run_id!r}") as conn:
+            rows = conn.execute(
+                select(shots_table).where(shots_table.c.run_id == run_id)
+            ).all()
+        canon = []
+        for r in rows:
+            m = {k: v for k, v in r._mapping.items() if k != "id"}
+            m["valid"] = bool(m["valid"])
+            canon.append(m)
+        canon.sort(key=lambda m: (m["serial"], m["point_index"], m["repeat"], m["attempt"]))
+        payload = {"run_id": run_id, "shots": canon}
+        return hashlib.sha256(canonical_json(payload).encode()).hexdigest()
+
+    # -- reports -------------------------------------------------------------------------
+    def add_report(
+        self,
+        report_id: str,
+        run_id: str,
+        path: str,
+        sha256: str,
+        *,
+        signer: str,
+        disposition: str,
+        created: str | None = None,
+        details: dict[str, Any] | None = None,
+    ) -> ReportRecord:
+        """Register an issued report; an existing ``report_id`` is an error."""
+        record = ReportRecord(
+            report_id=report_id,
+            run_id=run_id,
+            path=str(path),
+            sha256=sha256,
+            created=created or utc_now(),
+            signer=signer,
+            disposition=disposition,
+            details=dict(details or {}),
+        )
+        values = {f.name: getattr(record, f.name) for f in fields(record)}
+        values["details"] = canonical_json(record.details)
+        try:
+            with self._engine.begin() as conn:
+                conn.execute(insert(reports_table).values(**values))
+        except IntegrityError as exc:
+            raise StoreError(
+                f"cannot register report {report_id!r}: the id is already used or run "
+                f"{run_id!r} is not in {self.public_url}"
+            ) from exc
+        except SQLAlchemyError as exc:
+            raise StoreError(f"cannot register report {report_id!r}: {exc}") from exc
+        return record
+
+    def reports(self, run_id: str | None = None) -> list[ReportRecord]:
+        """Every registered report (of one run, when given), oldest first."""
+        query = select(reports_table).order_by(
+            reports_table.c.created, reports_table.c.report_id
+        )
+        if run_id is not None:
+            query = query.where(reports_table.c.run_id == run_id)
+        with self._begin("cannot list reports") as conn:
+            rows = conn.execute(query).all()
+        return [self._report_record(r._mapping) for r in rows]
+
+    def report(self, report_id: str) -> ReportRecord | None:
+        """One report's row, or ``None`` when there is no such report."""
+        with self._begin(f"cannot read report {report_id!r}") as conn:
+            row = conn.execute(
+                select(reports_table).where(reports_table.c.report_id == report_id)
+            ).first()
+        return None if row is None else self._report_record(row._mapping)
+
+    @staticmethod
+    def _report_record(row: Any) -> ReportRecord:
+        values = dict(row)
+        values["details"] = json.loads(values["details"])
+        return ReportRecord(**values)
+
+
+def _query_float(value: Any) -> float | None:
+    """A target value for the query-only columns (SQLite cannot hold NaN: stored as NULL)."""
+    if value is None:
+        return None
+    number = float(value)
+    return number if math.isfinite(number) else None
+
+
+def _same_row(stored: dict[str, Any], row: dict[str, Any]) -> bool:
+    if set(stored) != set(row):
+        return False
+    for key, value in row.items():
+        other = stored[key]
+        if key == "valid":
+            if bool(other) != bool(value):
+                return False
+        elif other != value:
+            return False
+    return True
+
+
+__all__ = [
+    "ReportRecord",
+    "ResultsStore",
+    "RunRecord",
+    "canonical_json",
+    "metadata",
+    "normalize_url",
+    "utc_now",
+]
