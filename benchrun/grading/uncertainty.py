@@ -66,6 +66,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from benchrun.config.limits import metric_unit
+from benchrun.units import format_si
 
 SQRT3 = math.sqrt(3.0)
 SQRT6 = math.sqrt(6.0)
@@ -242,14 +243,15 @@ class _Builder:
             self.notes.append(f"no {channel} reference reading: scope accuracy not included")
             return
         bound = acc * full_scale / reference
+        unit = "A" if channel == "current" else "V"
         self.add(
-            f"{channel}-channel gain, scope vertical accuracy ±{acc:.3g} of "
-            f"{full_scale:.4g} full scale at {reference:.4g}",
+            f"{channel}-channel gain, scope vertical accuracy ±{100 * acc:.3g} % of "
+            f"{format_si(full_scale, unit)} full scale, relative to {format_si(reference, unit)}",
             _TYPE_B_RECT, rectangular(bound), "1", c,
         )
 
     def sensor(self, name: str, tolerance: float, c: float) -> None:
-        self.add(name, _TYPE_B_RECT, rectangular(tolerance), "1", c)
+        self.add(f"{name} ±{100 * tolerance:.3g} %", _TYPE_B_RECT, rectangular(tolerance), "1", c)
 
     def adc_step(self, channel: str) -> None:
         range_key = "current_range_A" if channel == "current" else "voltage_range_V"
@@ -339,7 +341,7 @@ def metric_contributors(
         b.scope_gain("voltage", vrm if vrm is not None else vr, y, acc)
         b.sensor(voltage_probe, v_tol, y)
         if vr is not None and irrm is not None:
-            b.add(f"voltage-current deskew within ±{inputs.deskew:.3g} s", _TYPE_B_RECT,
+            b.add(f"voltage-current deskew within ±{format_si(inputs.deskew, 's')}", _TYPE_B_RECT,
                   rectangular(inputs.deskew), "s", vr * irrm)
             b.instants([("the integration end t2", vr * f_end * irrm)])
         else:

@@ -1,0 +1,650 @@
+"""Apply a limits file to analysed shots: per-metric grades, device verdicts, bins, lot.
+
+Pure: shots and a :class:`~benchrun.config.limits.LimitsSpec` in, a frozen
+:class:`LotGrade` out. A failing device is a result; :class:`~benchrun.errors.GradingError`
+is raised only when the limits cannot be applied at all (another part, a condition that
+matches two different test points).
+
+Per device and required condition, the shots at the test point matching the condition are
+checked against the tolerances: a shot whose measured IF, di/dt, VR or temperature lies
+outside them, or that the runner or the analysis marked invalid, is *invalid* and never graded.
+Each metric is graded on the mean of the remaining valid shots (``n`` reported) with its GUM
+budget (:mod:`benchrun.grading.uncertainty`) and the decision rule
+(:mod:`benchrun.grading.decision`). A required condition without any valid shot makes the
+device *invalid*.
+"""
+
+from __future__ import annotations
+
+import math
+import statistics
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from benchrun.config.limits import (
+    METRIC_UNITS,
+    Condition,
+    ExtraContributor,
+    LimitsSpec,
+    Tolerances,
+    metric_unit,
+)
+from benchrun.errors import GradingError
+from benchrun.grading.bins import assign_bin
+from benchrun.grading.decision import (
+    CONFORMING,
+    INDETERMINATE,
+    INVALID,
+    NONCONFORMING,
+    DecisionRule,
+    decide,
+    worst,
+)
+from benchrun.grading.lot import (
+    LotStatistics,
+    MetricStatistics,
+    Outlier,
+    RatioStatistics,
+    disposition,
+    find_outliers,
+    summarize,
+)
+from benchrun.grading.uncertainty import (
+    Contributor,
+    InstrumentInputs,
+    UncertaintyBudget,
+    metric_budget,
+    rectangular,
+    triangular,
+)
+from benchrun.records import ShotResult, TestPoint
+from benchrun.units import format_si
+
+#: Acquisition facts combined over a device's shots by taking the largest (conservative).
+ACQUISITION_KEYS = ("sample_interval_s", "current_range_A", "voltage_range_V", "adc_bits")
+
+
+@dataclass(frozen=True)
+class MetricGrade:
+    """Grade of one metric of one device at one condition."""
+
+    metric: str
+    condition: str
+    unit: str
+    value: float | None
+    n: int
+    expanded_uncertainty: float | None
+    combined_uncertainty: float | None
+    coverage_factor: float
+    lower: float | None
+    upper: float | None
+    acceptance_lower: float | None
+    acceptance_upper: float | None
+    guard_band: float | None
+    outcome: str
+    statement: str
+    reason: str
+    budget: UncertaintyBudget | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "metric": self.metric,
+            "condition": self.condition,
+            "unit": self.unit,
+            "value": self.value,
+            "n": self.n,
+            "U": self.expanded_uncertainty,
+            "u_c": self.combined_uncertainty,
+            "k": self.coverage_factor,
+            "lower": self.lower,
+            "upper": self.upper,
+            "acceptance_lower": self.acceptance_lower,
+            "acceptance_upper": self.acceptance_upper,
+            "guard_band": self.guard_band,
+            "outcome": self.outcome,
+            "statement": self.statement,
+            "reason": self.reason,
+            "budget": None if self.budget is None else self.budget.to_dict(),
+        }
+
+
+@dataclass(frozen=True)
+class DeviceGrade:
+    """Verdict of one device: the worst of its metric outcomes, its bin and why."""
+
+    serial: str
+    verdict: str
+    bin: str | None
+    grades: tuple[MetricGrade, ...]
+    reasons: tuple[str, ...]
+    values: dict[str, dict[str, float]] = field(default_factory=dict)
+    shots: dict[str, dict[str, int]] = field(default_factory=dict)
+    invalid_shots: tuple[str, ...] = ()
+    ratios: dict[str, float] = field(default_factory=dict)
+
+    def grade(self, metric: str, condition: str) -> MetricGrade:
+        """The grade of ``metric`` at ``condition``."""
+        for item in self.grades:
+            if item.metric == metric and item.condition == condition:
+                return item
+        raise KeyError((metric, condition))
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "serial": self.serial,
+            "verdict": self.verdict,
+            "bin": self.bin,
+            "grades": [g.to_dict() for g in self.grades],
+            "reasons": list(self.reasons),
+            "values": {c: dict(v) for c, v in self.values.items()},
+            "shots": {c: dict(v) for c, v in self.shots.items()},
+            "invalid_shots": list(self.invalid_shots),
+            "ratios": dict(self.ratios),
+        }
+
+
+@dataclass(frozen=True)
+class LotGrade:
+    """Grades of every device, the lot disposition with its reasons, statistics, budgets."""
+
+    part: str
+    lots: tuple[str, ...]
+    run_ids: tuple[str, ...]
+    conditions: tuple[dict[str, Any], ...]
+    devices: list[DeviceGrade]
+    disposition: str
+    reasons: tuple[str, ...]
+    statistics: LotStatistics
+    budgets: dict[str, UncertaintyBudget]
+    decision_rule: str
+    lot_rule: str
+
+    def device(self, serial: str) -> DeviceGrade:
+        """The grade of the device ``serial``."""
+        for item in self.devices:
+            if item.serial == serial:
+                return item
+        raise KeyError(serial)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe, deterministic dictionary (non-finite floats become ``None``)."""
+        data = {
+            "part": self.part,
+            "lots": list(self.lots),
+            "run_ids": list(self.run_ids),
+            "conditions": [dict(c) for c in self.conditions],
+            "devices": [d.to_dict() for d in self.devices],
+            "disposition": self.disposition,
+            "reasons": list(self.reasons),
+            "statistics": self.statistics.to_dict(),
+            "budgets": {key: b.to_dict() for key, b in self.budgets.items()},
+            "decision_rule": self.decision_rule,
+            "lot_rule": self.lot_rule,
+        }
+        return _json_safe(data)
+
+
+def _json_safe(value: Any) -> Any:
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    return value
+
+
+# ----------------------------------------------------------------------------- matching
+
+
+def _close(a: float, b: float, rel: float | None) -> bool:
+    tolerance = 1e-6 if rel is None else rel
+    return abs(a - b) <= tolerance * abs(b)
+
+
+def point_matches(point: TestPoint, condition: Condition, tol: Tolerances) -> bool:
+    """Whether a test point's *requested* values belong to a condition (within tolerance)."""
+    if abs(point.temperature_K - condition.temperature) > tol.temperature:
+        return False
+    if condition.forward_current is not None and not _close(
+        point.forward_current_A, condition.forward_current, tol.forward_current
+    ):
+        return False
+    if condition.reverse_voltage is not None and not _close(
+        point.bus_voltage_V, condition.reverse_voltage, tol.reverse_voltage
+    ):
+        return False
+    return not (
+        condition.didt is not None
+        and point.didt_A_per_s is not None
+        and not _close(point.didt_A_per_s, condition.didt, tol.didt)
+    )
+
+
+def shot_problems(shot: ShotResult, condition: Condition, tol: Tolerances) -> list[str]:
+    """Why a shot cannot be graded at ``condition`` (empty when it is valid)."""
+    problems: list[str] = []
+    if not shot.valid:
+        flags = f" ({', '.join(shot.flags)})" if shot.flags else ""
+        problems.append(f"marked invalid at acquisition{flags}")
+    point = shot.point
+    checks = [
+        ("IF", "if_A", condition.forward_current or point.forward_current_A,
+         tol.forward_current, "A"),
+        ("VR", "vr_V", condition.reverse_voltage or point.bus_voltage_V,
+         tol.reverse_voltage, "V"),
+        ("di/dt", "didt_A_per_s", condition.didt or point.didt_A_per_s, tol.didt, "A/s"),
+    ]
+    for label, key, target, rel, unit in checks:
+        if target is None or rel is None:
+            continue
+        measured = shot.conditions.get(key)
+        if measured is None or not math.isfinite(measured):
+            problems.append(f"{label} not measured")
+        elif abs(measured - target) > rel * abs(target):
+            problems.append(
+                f"{label} {format_si(measured, unit)} outside {format_si(target, unit)} "
+                f"± {rel * 100:g} %"
+            )
+    measured_t = shot.conditions.get("temperature_K")
+    if measured_t is None or not math.isfinite(measured_t):
+        problems.append("temperature not measured")
+    elif abs(measured_t - condition.temperature) > tol.temperature:
+        problems.append(
+            f"T {format_si(measured_t, 'K')} outside {format_si(condition.temperature, 'K')} "
+            f"± {tol.temperature:g} K"
+        )
+    return problems
+
+
+def _match_points(shots: Sequence[ShotResult], spec: LimitsSpec) -> dict[str, TestPoint | None]:
+    points: list[TestPoint] = []
+    for shot in shots:
+        if shot.point not in points:
+            points.append(shot.point)
+    points.sort(key=lambda p: (p.index, p.temperature_K, p.label))
+    chosen: dict[str, TestPoint | None] = {}
+    owner: dict[TestPoint, str] = {}
+    for condition in spec.conditions:
+        matching = [p for p in points if point_matches(p, condition, spec.tolerances)]
+        if len(matching) > 1:
+            listed = ", ".join(f"#{p.index} ({p.label or 'unlabelled'}, "
+                               f"{format_si(p.temperature_K, 'K')}, "
+                               f"{format_si(p.forward_current_A, 'A')})" for p in matching)
+            raise GradingError(
+                f"condition {condition.name!r} matches several test points: {listed}; "
+                "name forward_current, reverse_voltage or didt in the limits file to tell "
+                "them apart"
+            )
+        if matching:
+            if matching[0] in owner:
+                raise GradingError(
+                    f"test point #{matching[0].index} matches both condition "
+                    f"{owner[matching[0]]!r} and {condition.name!r}"
+                )
+            owner[matching[0]] = condition.name
+        chosen[condition.name] = matching[0] if matching else None
+    return chosen
+
+
+# ----------------------------------------------------------------------------- device
+
+
+def _finite(value: Any) -> float | None:
+    if value is None or isinstance(value, bool):
+        return None
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        return None
+    return number if math.isfinite(number) else None
+
+
+def _samples(shots: Sequence[ShotResult]) -> dict[str, list[float]]:
+    samples: dict[str, list[float]] = {}
+    for shot in shots:
+        for key, value in shot.metrics.items():
+            number = _finite(value)
+            if number is not None:
+                samples.setdefault(key, []).append(number)
+    return samples
+
+
+def _acquisition(shots: Sequence[ShotResult]) -> dict[str, float]:
+    facts: dict[str, float] = {}
+    for shot in shots:
+        for key in ACQUISITION_KEYS:
+            number = _finite(shot.acquisition.get(key))
+            if number is not None:
+                facts[key] = max(facts.get(key, number), number)
+    return facts
+
+
+def _extra_contributors(
+    extras: Iterable[ExtraContributor], metric: str, value: float
+) -> list[Contributor]:
+    result = []
+    for extra in extras:
+        if extra.metric != metric:
+            continue
+        if extra.distribution == "rectangular":
+            convert, how = rectangular, "Type B, rectangular a/√3 (JCGM 100:2008 §4.3.7)"
+        elif extra.distribution == "triangular":
+            convert, how = triangular, "Type B, triangular a/√6 (JCGM 100:2008 §4.3.9)"
+        else:
+            k = extra.coverage_factor
+            def convert(bound: float, k: float = k) -> float:
+                return abs(bound) / k
+            how = f"Type B, normal U/k with k = {k:g} (JCGM 100:2008 §4.3.3)"
+        if extra.relative is not None:
+            result.append(Contributor(extra.name, how, convert(extra.relative), "1", value))
+        else:
+            unit = metric_unit(metric) or "1"
+            result.append(Contributor(extra.name, how, convert(extra.absolute or 0.0), unit, 1.0))
+    return result
+
+
+def _inputs(spec: LimitsSpec) -> InstrumentInputs:
+    u = spec.uncertainty
+    return InstrumentInputs(
+        scope_vertical_accuracy=u.scope_vertical_accuracy,
+        current_sensor_tolerance=u.current_sensor_tolerance,
+        voltage_probe_tolerance=u.voltage_probe_tolerance,
+        deskew=u.deskew,
+        integration_end_fraction=u.integration_end_fraction,
+    )
+
+
+def _label(metric: str, condition: str) -> str:
+    return f"{metric} at {condition}"
+
+
+def _invalid_grade(metric: str, condition: str, k: float, lower: float | None,
+                   upper: float | None, reason: str) -> MetricGrade:
+    return MetricGrade(metric, condition, metric_unit(metric), None, 0, None, None, k,
+                       lower, upper, None, None, None, INVALID, "not graded", reason)
+
+
+def _hot_cold(spec: LimitsSpec) -> tuple[Condition, Condition] | None:
+    ordered = sorted(spec.conditions, key=lambda c: c.temperature)
+    cold, hot = ordered[0], ordered[-1]
+    if hot.temperature - cold.temperature <= spec.tolerances.temperature:
+        return None
+    return hot, cold
+
+
+def _grade_device(
+    serial: str,
+    shots: Sequence[ShotResult],
+    spec: LimitsSpec,
+    points: Mapping[str, TestPoint | None],
+    rule: DecisionRule,
+) -> tuple[DeviceGrade, dict[str, dict[str, list[float]]], dict[str, dict[str, float]]]:
+    k = spec.uncertainty.coverage_factor
+    inputs = _inputs(spec)
+    grades: list[MetricGrade] = []
+    reasons: list[str] = []
+    outcomes: list[str] = []
+    values: dict[str, dict[str, float]] = {}
+    counts: dict[str, dict[str, int]] = {}
+    invalid_shots: list[str] = []
+    all_samples: dict[str, dict[str, list[float]]] = {}
+    acquisitions: dict[str, dict[str, float]] = {}
+    for condition in spec.conditions:
+        name = condition.name
+        point = points[name]
+        here = sorted(
+            (s for s in shots if point is not None and s.point == point),
+            key=lambda s: (s.repeat, s.attempt, s.timestamp),
+        )
+        valid = []
+        for shot in here:
+            problems = shot_problems(shot, condition, spec.tolerances)
+            if problems:
+                invalid_shots.append(
+                    f"{name} repeat {shot.repeat} attempt {shot.attempt}: {'; '.join(problems)}"
+                )
+            else:
+                valid.append(shot)
+        counts[name] = {"valid": len(valid), "invalid": len(here) - len(valid)}
+        samples = {k: v for k, v in _samples(valid).items() if k in METRIC_UNITS}
+        all_samples[name] = samples
+        means = {key: math.fsum(v) / len(v) for key, v in samples.items()}
+        values[name] = {key: means[key] for key in sorted(means, key=_metric_order)}
+        acquisition = _acquisition(valid)
+        acquisitions[name] = acquisition
+        if not valid:
+            why = "no test point in the results matches it" if point is None else (
+                f"none of its {len(here)} shot(s) is valid" if here else "no shot recorded")
+            reasons.append(f"required condition {name}: {why}")
+            outcomes.append(INVALID)
+        for limit in spec.limits_at(name):
+            metric = limit.metric
+            if not valid:
+                grades.append(_invalid_grade(metric, name, k, limit.min, limit.max,
+                                             f"no valid shot at {name}"))
+                continue
+            if metric not in means:
+                grades.append(_invalid_grade(metric, name, k, limit.min, limit.max,
+                                             f"{metric} not found in any valid shot at {name}"))
+                outcomes.append(INVALID)
+                reasons.append(f"{_label(metric, name)}: not measured")
+                continue
+            value = means[metric]
+            budget = metric_budget(
+                metric, means, acquisition, inputs,
+                repeat_samples=samples[metric],
+                extra=_extra_contributors(spec.uncertainty.extra, metric, value),
+                coverage_factor=k,
+                include_repeatability=spec.uncertainty.repeatability,
+            )
+            decision = decide(value, budget.expanded, limit.min, limit.max, rule,
+                              name=_label(metric, name), unit=metric_unit(metric))
+            grades.append(MetricGrade(
+                metric, name, metric_unit(metric), value, len(samples[metric]),
+                budget.expanded, budget.combined, k, limit.min, limit.max,
+                decision.acceptance_lower, decision.acceptance_upper, decision.guard_band,
+                decision.outcome, decision.statement, decision.reason, budget,
+            ))
+            outcomes.append(decision.outcome)
+            if decision.outcome != CONFORMING:
+                reasons.append(decision.reason)
+    verdict = worst(outcomes)
+    if verdict == CONFORMING:
+        reasons.insert(0, "every limit met at every required condition")
+    chosen_bin = None
+    if spec.bins is not None and verdict == CONFORMING:
+        bin_condition = spec.bins.condition or spec.conditions[0].name
+        bin_value = values.get(bin_condition, {}).get(spec.bins.metric)
+        chosen_bin = assign_bin(bin_value, spec.bins.classes)
+        if chosen_bin is None:
+            shown = format_si(bin_value, metric_unit(spec.bins.metric))
+            reasons.append(f"{spec.bins.metric} at {bin_condition} {shown} is in no bin class")
+    ratios: dict[str, float] = {}
+    pair = _hot_cold(spec)
+    if pair is not None:
+        hot, cold = values.get(pair[0].name, {}), values.get(pair[1].name, {})
+        for key in hot:
+            if key in cold and cold[key] != 0:
+                ratios[key] = hot[key] / cold[key]
+    device = DeviceGrade(serial, verdict, chosen_bin, tuple(grades), tuple(reasons), values,
+                         counts, tuple(invalid_shots), ratios)
+    return device, all_samples, acquisitions
+
+
+def _metric_order(key: str) -> tuple[int, str]:
+    keys = list(METRIC_UNITS)
+    return (keys.index(key), key) if key in keys else (len(keys), key)
+
+
+# ----------------------------------------------------------------------------- lot
+
+
+def _lot_budgets(
+    spec: LimitsSpec,
+    devices: Sequence[DeviceGrade],
+    samples: Mapping[str, Mapping[str, Mapping[str, list[float]]]],
+    acquisitions: Mapping[str, Mapping[str, Mapping[str, float]]],
+) -> dict[str, UncertaintyBudget]:
+    """Representative budget per limited metric and condition: at the lot-mean values, the
+    largest acquisition settings, and the pooled within-device standard deviation."""
+    inputs = _inputs(spec)
+    budgets: dict[str, UncertaintyBudget] = {}
+    for condition in spec.conditions:
+        name = condition.name
+        per_device = [d.values.get(name, {}) for d in devices]
+        keys = {key for values in per_device for key in values}
+        means = {}
+        for key in sorted(keys, key=_metric_order):
+            column = [v[key] for v in per_device if key in v]
+            means[key] = math.fsum(column) / len(column)
+        acquisition: dict[str, float] = {}
+        for device in devices:
+            for key, value in acquisitions[device.serial].get(name, {}).items():
+                acquisition[key] = max(acquisition.get(key, value), value)
+        for limit in spec.limits_at(name):
+            metric = limit.metric
+            if metric not in means:
+                continue
+            dof = 0
+            total = 0.0
+            counts = []
+            for device in devices:
+                shots = samples[device.serial].get(name, {}).get(metric, [])
+                if len(shots) >= 2:
+                    counts.append(len(shots))
+                    dof += len(shots) - 1
+                    total += statistics.variance(shots) * (len(shots) - 1)
+            repeat = None
+            if dof > 0:
+                repeat = (math.sqrt(total / dof), statistics.median_low(counts))
+            budget = metric_budget(
+                metric, means, acquisition, inputs,
+                repeat_std=repeat,
+                extra=_extra_contributors(spec.uncertainty.extra, metric, means[metric]),
+                coverage_factor=spec.uncertainty.coverage_factor,
+                include_repeatability=spec.uncertainty.repeatability,
+            )
+            if repeat is None and spec.uncertainty.repeatability:
+                budget = UncertaintyBudget(
+                    budget.metric, budget.value, budget.contributors, budget.combined,
+                    budget.coverage_factor, budget.expanded,
+                    (*budget.notes, "no device has two valid shots: repeatability not "
+                     "evaluated"),
+                )
+            budgets[f"{metric}@{name}"] = budget
+    return budgets
+
+
+def _lot_statistics(spec: LimitsSpec, devices: Sequence[DeviceGrade]) -> LotStatistics:
+    count = len(devices)
+    tally = {v: sum(1 for d in devices if d.verdict == v)
+             for v in (CONFORMING, NONCONFORMING, INDETERMINATE, INVALID)}
+    metrics: list[MetricStatistics] = []
+    outliers: list[Outlier] = []
+    for condition in spec.conditions:
+        name = condition.name
+        limited = {item.metric: item for item in spec.limits_at(name)}
+        present = {key for d in devices for key in d.values.get(name, {})}
+        order = [m for m in limited if m in present]
+        order += sorted((m for m in present if m not in limited and m in METRIC_UNITS),
+                        key=_metric_order)
+        for metric in order:
+            serials = [d.serial for d in devices if metric in d.values.get(name, {})]
+            column = [d.values[name][metric] for d in devices if metric in d.values.get(name, {})]
+            limit = limited.get(metric)
+            metrics.append(summarize(metric, name, column,
+                                     None if limit is None else limit.min,
+                                     None if limit is None else limit.max))
+            outliers.extend(find_outliers(metric, name, serials, column))
+    ratios: list[RatioStatistics] = []
+    pair = _hot_cold(spec)
+    if pair is not None:
+        hot, cold = pair
+        keys = sorted({key for d in devices for key in d.ratios}, key=_metric_order)
+        for key in keys:
+            if key not in METRIC_UNITS:
+                continue
+            per_device = {d.serial: d.ratios[key] for d in devices if key in d.ratios}
+            mean = math.fsum(per_device.values()) / len(per_device) if per_device else None
+            ratios.append(RatioStatistics(key, hot.name, cold.name, per_device, mean))
+    yield_fraction = tally[CONFORMING] / count if count else None
+    return LotStatistics(count, tally[CONFORMING], tally[NONCONFORMING], tally[INDETERMINATE],
+                         tally[INVALID], yield_fraction, tuple(metrics), tuple(ratios),
+                         tuple(outliers))
+
+
+def describe_lot_rule(spec: LimitsSpec) -> str:
+    """The lot acceptance rule as a sentence for the report."""
+    rule = spec.lot
+    text = (f"Accept the lot when at most c = {rule.acceptance_number} device(s) count as "
+            "non-conforming")
+    if rule.sample_size is not None:
+        text += f" and at least n = {rule.sample_size} device(s) were graded"
+    text += (f"; an indeterminate device counts as {rule.indeterminate.replace('non', 'non-')}"
+             f", an invalid device is "
+             f"{'counted as non-conforming' if rule.invalid == 'nonconforming' else 'excluded'}.")
+    return text
+
+
+def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec) -> LotGrade:
+    """Grade every device in ``shots`` against ``limits`` (pure).
+
+    Parameters
+    ----------
+    shots
+        Analysed shots of one part (all repeats and retries, valid or not).
+    limits
+        The limits file, as loaded by :func:`benchrun.config.limits.load_limits`.
+
+    Raises
+    ------
+    GradingError
+        The shots are of another part, or a condition cannot be matched to one test point.
+    """
+    shots = list(shots)
+    other = sorted({s.part for s in shots if s.part != limits.part})
+    if other:
+        raise GradingError(f"limits for {limits.part} cannot grade shots of {', '.join(other)}")
+    rule = DecisionRule(limits.decision_rule.rule, limits.decision_rule.guard_factor)
+    points = _match_points(shots, limits)
+    serials = sorted({s.serial for s in shots})
+    devices: list[DeviceGrade] = []
+    samples: dict[str, dict[str, dict[str, list[float]]]] = {}
+    acquisitions: dict[str, dict[str, dict[str, float]]] = {}
+    for serial in serials:
+        device, device_samples, device_acq = _grade_device(
+            serial, [s for s in shots if s.serial == serial], limits, points, rule)
+        devices.append(device)
+        samples[serial] = device_samples
+        acquisitions[serial] = device_acq
+    verdicts = {d.serial: d.verdict for d in devices}
+    decision, reasons = disposition(
+        verdicts,
+        acceptance_number=limits.lot.acceptance_number,
+        sample_size=limits.lot.sample_size,
+        indeterminate=limits.lot.indeterminate,
+        invalid=limits.lot.invalid,
+    )
+    conditions = tuple(
+        {
+            "name": c.name,
+            "temperature_K": c.temperature,
+            "point_index": None if points[c.name] is None else points[c.name].index,
+        }
+        for c in limits.conditions
+    )
+    return LotGrade(
+        part=limits.part,
+        lots=tuple(sorted({s.lot for s in shots})),
+        run_ids=tuple(sorted({s.run_id for s in shots})),
+        conditions=conditions,
+        devices=devices,
+        disposition=decision,
+        reasons=reasons,
+        statistics=_lot_statistics(limits, devices),
+        budgets=_lot_budgets(limits, devices, samples, acquisitions),
+        decision_rule=rule.describe(limits.uncertainty.coverage_factor),
+        lot_rule=describe_lot_rule(limits),
+    )
