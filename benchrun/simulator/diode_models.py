@@ -1,0 +1,247 @@
+"""Diode models for the simulated bench (pure, SI units, kelvin).
+
+Two models:
+
+* :class:`LauritzenMaDiode` — the charge-control model of P. O. Lauritzen and C. L. Ma,
+  "A simple diode model with reverse recovery", IEEE Trans. Power Electronics 6(2),
+  pp. 188-191, 1991::
+
+      qE = Is·τ·(exp(v/(n·VT)) − 1)      junction charge set by the junction voltage v
+      i  = (qE − qM)/TM                  diffusion current (TM: transit time)
+      dqM/dt = i − qM/τ                  stored charge (τ: high-level carrier lifetime)
+
+  In steady forward conduction qM = τ·i and qE = (τ + TM)·i.  After the junction blocks
+  (qE ≈ −Is·τ ≈ 0) the current is i = −qM/TM and the stored charge decays with
+  τ·TM/(τ + TM) (the recovery tail).  A depletion capacitance
+  C(v) = Cj0/(1 − v/Vj)^M (v anode-to-cathode, i.e. C = Cj0/(1 + VR/Vj)^M for a reverse
+  voltage VR) sits across the junction, linearised above FC·Vj as in the Berkeley SPICE
+  diode model.
+
+* :class:`SchottkyDiode` — a majority-carrier (SiC Schottky) diode: thermionic-emission forward
+  characteristic i = Is(T)·(exp(v/(n·VT)) − 1), no stored charge, the same depletion
+  capacitance (temperature independent), hence a purely capacitive "recovery" whose charge is
+  Qc = ∫ C(V) dV.
+
+Temperature laws (compact-model practice, exponents from memory):
+
+* lifetime τ(T) = τ(T0)·(T/T0)^k with k = ``tau_temp_exponent`` (≈ 1.5-3);
+* saturation current, Berkeley SPICE form Is(T) = Is·(T/T0)^(XTI/n)·exp((T/T0 − 1)·Eg/(n·VT));
+* Schottky: Is(T) = Is·(T/T0)²·exp(−(φB/k)·(1/T − 1/T0)) (Richardson law, barrier φB);
+* series resistance R(T) = R·(T/T0)^r (``rs_temp_exponent``, 0 = constant).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+BOLTZMANN_J_PER_K = 1.380649e-23
+ELEMENTARY_CHARGE_C = 1.602176634e-19
+
+# exp() is continued linearly above this argument (common practice in circuit simulators,
+# avoids overflow while a Newton iteration explores large forward voltages)
+_EXP_LIMIT = 80.0
+_EXP_AT_LIMIT = math.exp(_EXP_LIMIT)
+
+
+def thermal_voltage(temperature_K: float) -> float:
+    """Return kT/q in volts."""
+    return BOLTZMANN_J_PER_K * temperature_K / ELEMENTARY_CHARGE_C
+
+
+def limited_exp(x: float) -> float:
+    """exp(x), continued linearly (value and slope matched) above ``_EXP_LIMIT``."""
+    if x <= _EXP_LIMIT:
+        return math.exp(x)
+    return _EXP_AT_LIMIT * (1.0 + x - _EXP_LIMIT)
+
+
+def limited_exp_array(x: np.ndarray) -> np.ndarray:
+    """Vectorised :func:`limited_exp`."""
+    x = np.asarray(x, dtype=float)
+    return np.where(
+        x <= _EXP_LIMIT,
+        np.exp(np.minimum(x, _EXP_LIMIT)),
+        _EXP_AT_LIMIT * (1.0 + x - _EXP_LIMIT),
+    )
+
+
+@dataclass(frozen=True)
+class LauritzenMaDiode:
+    """Lauritzen-Ma charge-control diode (IEEE Trans. Power Electronics 6(2), 1991).
+
+    Parameters are given at ``t_ref_K``.  ``is_A`` is the saturation current of the
+    static characteristic i = Is·(exp(v/(n·VT)) − 1)·τ/(τ + TM) (steady state of the model).
+    """
+
+    tau_s: float
+    tm_s: float
+    is_A: float
+    n: float
+    cj0_F: float
+    vj_V: float
+    m: float
+    tau_temp_exponent: float = 2.0
+    t_ref_K: float = 298.15
+    series_resistance_ohm: float = 0.0
+    fc: float = 0.5
+    eg_eV: float = 1.11
+    xti: float = 3.0
+    rs_temp_exponent: float = 0.0
+
+    kind = "lauritzen-ma"
+
+    def at_temperature(self, temperature_K: float) -> JunctionParams:
+        """Temperature-adjusted parameters used by the circuit solver."""
+        ratio = temperature_K / self.t_ref_K
+        vt = thermal_voltage(temperature_K)
+        nvt = self.n * vt
+        is_t = (
+            self.is_A
+            * ratio ** (self.xti / self.n)
+            * math.exp((ratio - 1.0) * self.eg_eV / nvt)
+        )
+        tau = self.tau_s * ratio**self.tau_temp_exponent
+        return JunctionParams(
+            kind=self.kind,
+            tau_s=tau,
+            tm_s=self.tm_s,
+            is_A=is_t,
+            nvt_V=nvt,
+            rs_ohm=self.series_resistance_ohm * ratio**self.rs_temp_exponent,
+            cj0_F=self.cj0_F,
+            vj_V=self.vj_V,
+            m=self.m,
+            fc=self.fc,
+        )
+
+
+@dataclass(frozen=True)
+class SchottkyDiode:
+    """Majority-carrier (SiC Schottky) diode: thermionic forward law + depletion capacitance."""
+
+    cj0_F: float
+    vj_V: float
+    m: float
+    is_A: float = 1e-14
+    n: float = 1.05
+    barrier_eV: float = 1.2
+    series_resistance_ohm: float = 0.05
+    t_ref_K: float = 298.15
+    fc: float = 0.5
+    rs_temp_exponent: float = 1.5
+
+    kind = "schottky"
+
+    def at_temperature(self, temperature_K: float) -> JunctionParams:
+        """Temperature-adjusted parameters (capacitance is temperature independent)."""
+        ratio = temperature_K / self.t_ref_K
+        vt = thermal_voltage(temperature_K)
+        k_ev = BOLTZMANN_J_PER_K / ELEMENTARY_CHARGE_C
+        is_t = (
+            self.is_A
+            * ratio**2
+            * math.exp(-(self.barrier_eV / k_ev) * (1.0 / temperature_K - 1.0 / self.t_ref_K))
+        )
+        return JunctionParams(
+            kind=self.kind,
+            tau_s=0.0,
+            tm_s=0.0,
+            is_A=is_t,
+            nvt_V=self.n * vt,
+            rs_ohm=self.series_resistance_ohm * ratio**self.rs_temp_exponent,
+            cj0_F=self.cj0_F,
+            vj_V=self.vj_V,
+            m=self.m,
+            fc=self.fc,
+        )
+
+
+DiodeModel = LauritzenMaDiode | SchottkyDiode
+
+
+@dataclass(frozen=True)
+class JunctionParams:
+    """Diode parameters at one temperature, in the form the solver uses."""
+
+    kind: str
+    tau_s: float
+    tm_s: float
+    is_A: float
+    nvt_V: float
+    rs_ohm: float
+    cj0_F: float
+    vj_V: float
+    m: float
+    fc: float
+
+    @property
+    def is_charge_control(self) -> bool:
+        return self.kind == "lauritzen-ma"
+
+    @property
+    def tail_time_constant_s(self) -> float:
+        """τ·TM/(τ + TM): decay of the stored charge once the junction blocks (0 for Schottky)."""
+        if not self.is_charge_control:
+            return 0.0
+        return self.tau_s * self.tm_s / (self.tau_s + self.tm_s)
+
+    # --- junction capacitance -------------------------------------------------------------
+    def capacitance(self, v: float) -> float:
+        """Depletion capacitance at anode-to-cathode junction voltage ``v`` (scalar)."""
+        v_lin = self.fc * self.vj_V
+        if v < v_lin:
+            return self.cj0_F / (1.0 - v / self.vj_V) ** self.m
+        f1 = (1.0 - self.fc) ** (1.0 + self.m)
+        return self.cj0_F / f1 * (1.0 - self.fc * (1.0 + self.m) + self.m * v / self.vj_V)
+
+    def capacitance_array(self, v: np.ndarray) -> np.ndarray:
+        """Vectorised :meth:`capacitance`."""
+        v = np.asarray(v, dtype=float)
+        v_lin = self.fc * self.vj_V
+        below = self.cj0_F / (1.0 - np.minimum(v, v_lin) / self.vj_V) ** self.m
+        f1 = (1.0 - self.fc) ** (1.0 + self.m)
+        above = self.cj0_F / f1 * (1.0 - self.fc * (1.0 + self.m) + self.m * v / self.vj_V)
+        return np.where(v < v_lin, below, above)
+
+    def depletion_charge(self, v: float) -> float:
+        """∫₀^v C(u) du for v ≤ FC·Vj (closed form of the depletion charge)."""
+        if v > self.fc * self.vj_V:
+            raise ValueError("depletion_charge is defined here for v <= FC*Vj only")
+        return (
+            self.cj0_F
+            * self.vj_V
+            / (1.0 - self.m)
+            * (1.0 - (1.0 - v / self.vj_V) ** (1.0 - self.m))
+        )
+
+    # --- static (quasi-steady) behaviour ----------------------------------------------------
+    def junction_current(self, v: float, q: float) -> tuple[float, float]:
+        """Junction current and d(q)/dt at junction voltage ``v``.
+
+        ``q`` is the stored charge divided by τ (amperes), qM = τ·q; for a Schottky diode ``q``
+        is unused and its derivative is 0.
+        """
+        e = limited_exp(v / self.nvt_V) - 1.0
+        if self.kind == "lauritzen-ma":
+            i = (self.is_A * self.tau_s * e - self.tau_s * q) / self.tm_s
+            return i, (i - q) / self.tau_s
+        return self.is_A * e, 0.0
+
+    def junction_voltage_forward(self, current_A: float, q: float | None = None) -> float:
+        """Junction voltage carrying ``current_A`` (current-forced form).
+
+        For the charge-control model qE = qM + TM·i with qM = τ·q (steady state q = i when
+        ``q`` is None); v = n·VT·ln(1 + qE/(Is·τ)).  Valid while qE > −Is·τ.
+        """
+        if self.kind == "lauritzen-ma":
+            qm = self.tau_s * (current_A if q is None else q)
+            qe = qm + self.tm_s * current_A
+            return self.nvt_V * math.log1p(qe / (self.is_A * self.tau_s))
+        return self.nvt_V * math.log1p(current_A / self.is_A)
+
+    def forward_voltage(self, current_A: float) -> float:
+        """Steady terminal forward voltage at ``current_A`` (junction + series resistance)."""
+        return self.junction_voltage_forward(current_A) + self.rs_ohm * current_A
