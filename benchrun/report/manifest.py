@@ -19,6 +19,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from benchrun.errors import BenchrunError
+
 #: Files of a run folder (DEVELOPERS.md, store contract) that a report rests on.
 RUN_FILES = ("raw.h5", "sequence.yaml", "bench.yaml", "limits.yaml")
 
@@ -103,23 +105,16 @@ def shots_digest(shots: Iterable[Any]) -> str:
 def row_digest(run: Any) -> tuple[str, str]:
     """Digest of the result rows behind ``run`` and the method used.
 
-    Uses ``ResultsStore.row_digest(run_id)`` (store contract) when the run came from a
-    store that offers it; otherwise :func:`shots_digest` over the loaded shots.
+    Uses ``ResultsStore.row_digest(run_id)`` (store contract: every stored column of every
+    shot row) when the run came from a results store; otherwise :func:`shots_digest` over the
+    loaded shots.
     """
     url = getattr(run, "store_url", None)
     if url:
-        try:
-            from benchrun.store.results import ResultsStore
-        except ImportError:
-            ResultsStore = None
-        if ResultsStore is not None and hasattr(ResultsStore, "row_digest"):
-            store = ResultsStore(url)
-            try:
-                return str(store.row_digest(run.run_id)), ROW_DIGEST_STORE
-            finally:
-                close = getattr(store, "close", None)
-                if callable(close):
-                    close()
+        from benchrun.store.results import ResultsStore
+
+        with ResultsStore(url, create=False) as store:
+            return str(store.row_digest(run.run_id)), ROW_DIGEST_STORE
     return shots_digest(run.shots), ROW_DIGEST_LOCAL
 
 
@@ -165,10 +160,14 @@ def check_manifest(entries: list[ManifestEntry], run: Any | None,
             if run is None:
                 checks.append(ManifestCheck(entry.name, False, "result rows not available"))
                 continue
-            if entry.method == ROW_DIGEST_STORE:
-                actual, _ = row_digest(run)
-            else:
-                actual = shots_digest(run.shots)
+            try:
+                if entry.method == ROW_DIGEST_STORE:
+                    actual, _ = row_digest(run)
+                else:
+                    actual = shots_digest(run.shots)
+            except BenchrunError as exc:
+                checks.append(ManifestCheck(entry.name, False, f"cannot read the rows: {exc}"))
+                continue
             if actual == entry.sha256:
                 checks.append(ManifestCheck(entry.name, True, "row digest matches"))
             else:

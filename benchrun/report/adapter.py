@@ -1,0 +1,409 @@
+"""Build :class:`ReportContent` from a stored run (``RunData``) and its ``LotGrade``.
+
+Reads the run folder's configuration files as used (bench, sequence) for instruments,
+calibration dates, fixture, tolerances and analysis options; the grades come unchanged from
+the ``LotGrade``; the shots' numbers from ``RunData.shots``. Waveforms for the plots are re-read
+from the raw record and re-analysed through the same pipeline the runner used.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import math
+from collections.abc import Iterator
+from typing import Any
+
+import numpy as np
+
+from benchrun import __version__
+from benchrun.errors import BenchrunError
+from benchrun.report.content import (
+    METRIC_DEFINITIONS,
+    METRIC_LABELS,
+    METRIC_ORDER,
+    Cell,
+    DeviceLine,
+    ReportContent,
+    WaveformRequest,
+    new_report_id,
+)
+from benchrun.report.keys import ReportSigner
+from benchrun.report.manifest import build_manifest
+from benchrun.report.plots import WaveformMarks
+from benchrun.units import format_si
+
+COMPANY_DEFAULT = "Korvane Power Components"
+
+#: At most this many failing devices get a waveform plot each (the rest are listed by name).
+MAX_FAILING_PLOTS = 60
+
+
+def _cfg(loader: str, path: Any) -> Any:
+    """Load a configuration file of the run folder; None when absent or unreadable."""
+    if path is None or not path.is_file():
+        return None
+    try:
+        if loader == "bench":
+            from benchrun.config.bench import load_bench
+
+            return load_bench(path)
+        from benchrun.config.sequence import load_sequence
+
+        return load_sequence(path)
+    except BenchrunError:
+        return None
+
+
+def analysis_options(run: Any) -> dict[str, Any]:
+    """The analysis options the run used (from its sequence file), as RecoveryOptions kwargs."""
+    sequence = _cfg("sequence", getattr(run, "sequence_path", None))
+    if sequence is not None:
+        return dict(sequence.analysis.option_values())
+    stored = (getattr(run, "manifest", None) or {}).get("analysis_options")
+    return dict(stored) if isinstance(stored, dict) else {}
+
+
+def _fmt_range(values: list[float], unit: str) -> str:
+    if not values:
+        return "—"
+    mean = math.fsum(values) / len(values)
+    text = format_si(mean, unit, 4)
+    if len(values) > 1:
+        text += f" ({format_si(min(values), unit, 3)} … {format_si(max(values), unit, 3)})"
+    return text
+
+
+def _conditions_table(run: Any, lot: Any, tolerances: Any) -> list[list[str]]:
+    rows = [["Condition", "Quantity", "Requested", "Measured mean (min … max)", "Tolerance",
+             "Valid shots"]]
+    for cond in lot.conditions:
+        index = cond.get("point_index")
+        shots = [s for s in run.shots if s.point.index == index]
+        if not shots:
+            rows.append([cond["name"], "—", format_si(cond["temperature_K"], "K"), "no shots",
+                         "", "0"])
+            continue
+        point = shots[0].point
+        valid = [s for s in shots if s.valid]
+        n = f"{len(valid)} of {len(shots)}"
+        tol = tolerances
+        quantities = [
+            ("temperature", "temperature_K", point.temperature_K, "K",
+             f"± {tol.temperature:g} K" if tol else ""),
+            ("forward current IF", "if_A", point.forward_current_A, "A",
+             f"± {tol.forward_current * 100:g} %" if tol and tol.forward_current else ""),
+            ("reverse voltage VR", "vr_V", point.bus_voltage_V, "V",
+             f"± {tol.reverse_voltage * 100:g} %" if tol and tol.reverse_voltage else ""),
+            ("di/dt", "didt_A_per_s", point.didt_A_per_s, "A/s",
+             f"± {tol.didt * 100:g} %" if tol and tol.didt and point.didt_A_per_s else ""),
+        ]
+        for k, (label, key, requested, unit, tol_text) in enumerate(quantities):
+            measured = [float(s.conditions[key]) for s in valid
+                        if s.conditions.get(key) is not None
+                        and math.isfinite(float(s.conditions[key]))]
+            rows.append([cond["name"] if k == 0 else "", label,
+                         format_si(requested, unit) if requested is not None else "not set",
+                         _fmt_range(measured, unit), tol_text, n if k == 0 else ""])
+    return rows
+
+
+def _instruments_table(run: Any, bench: Any) -> list[list[str]]:
+    rows = [["Role", "Identity (*IDN?)", "Command table", "Resource", "Calibration due"]]
+    identities = (run.manifest or {}).get("instruments") or {}
+    roles = [r for r, _ in bench.instruments.items()] if bench else list(identities)
+    for role in roles:
+        entry = dict(bench.instruments.items()).get(role) if bench else None
+        ident = identities.get(role) if isinstance(identities, dict) else None
+        if isinstance(ident, dict):
+            text = ident.get("idn") or ", ".join(
+                str(ident[k]) for k in ("manufacturer", "model", "serial", "firmware")
+                if ident.get(k))
+            due = ident.get("calibration_due")
+        else:
+            text, due = (str(ident) if ident else "not recorded"), None
+        if due is None and entry is not None and entry.calibration_due is not None:
+            due = entry.calibration_due.isoformat()
+        rows.append([role, text or "not recorded", entry.family if entry else "",
+                     entry.resource if entry else "", str(due) if due else "not given"])
+    return rows
+
+
+def _fixture_table(bench: Any) -> list[list[str]]:
+    if bench is None:
+        return [["Item", "Value"], ["bench file", "not available"]]
+    f = bench.fixture
+    rows = [["Item", "Value"],
+            ["bench", bench.name],
+            ["load inductance", format_si(f.load_inductance, "H")],
+            ["load resistance", format_si(f.load_resistance, "Ω")],
+            ["loop stray inductance", format_si(f.stray_inductance, "H")],
+            ["inductor saturation current", format_si(f.inductor_saturation_current, "A")],
+            ["bus capacitance", format_si(f.bus_capacitance, "F")],
+            ["bleeder resistance", format_si(f.bleeder_resistance, "Ω")],
+            ["maximum pulse width", format_si(f.max_pulse_width, "s")]]
+    for name, probe in bench.probes.items():
+        unit = "A/V" if probe.measures_current else "V/V"
+        rows.append([f"probe {name}", f"channel {probe.channel}, {probe.kind}, scale "
+                     f"{probe.scale:g} {unit}, deskew {format_si(probe.deskew, 's')}"])
+    return rows
+
+
+def _definitions(options: dict[str, Any]) -> list[list[str]]:
+    fit_high = options.get("fit_high", 0.9)
+    fit_low = options.get("fit_low", 0.25)
+    end = options.get("integration_end_fraction", 0.02)
+    rows = [["Metric", "Definition (values positive, SI units; times by linear interpolation)"]]
+    for key in ("if_A", "irrm_A", "ta_s", "trr_s", "tb_s", "softness", "rrsf", "qrr_C", "err_J",
+                "didt_A_per_s", "vrm_V", "vr_V"):
+        text = METRIC_DEFINITIONS[key]
+        if key == "trr_s" and options.get("trr_method") == "threshold":
+            text = METRIC_DEFINITIONS["trr_s_threshold"]
+        text = text.format(fit_high=fit_high, fit_low=fit_low, end=end,
+                           threshold=options.get("trr_threshold_fraction", 0.25))
+        rows.append([METRIC_LABELS[key][0], text])
+    rows.append(["t0", "first falling zero crossing of the diode current at the analysed "
+                       "commutation"])
+    low = options.get("lowpass_hz")
+    rows.append(["filtering", "zero-phase low-pass at " + format_si(low, "Hz")
+                 if low else "none (raw ADC codes, offset removed from the pre-event baseline)"])
+    return rows
+
+
+def _budget_table(lot: Any) -> list[list[str]]:
+    rows = [["Metric @ condition", "Contributor", "Evaluation", "u(xᵢ)", "|cᵢ|·u(xᵢ)"]]
+    for key, budget in lot.budgets.items():
+        metric = key.split("@")[0]
+        unit = METRIC_LABELS.get(metric, (metric, ""))[1]
+        label = key.replace("@", " @ ")
+        for k, c in enumerate(budget.contributors):
+            u_text = f"{c.standard_uncertainty:.3g} {c.input_unit}".strip()
+            rows.append([label if k == 0 else "", c.name, c.evaluation, u_text,
+                         format_si(abs(c.contribution), unit, 3)])
+        rows.append(["", "combined u_c; expanded U", f"k = {budget.coverage_factor:g}",
+                     format_si(budget.combined, unit, 3), format_si(budget.expanded, unit, 3)])
+    return rows
+
+
+def _device_lines(lot: Any) -> tuple[list[DeviceLine], list[str]]:
+    graded = {g.metric for d in lot.devices for g in d.grades}
+    columns = [k for k in METRIC_ORDER if k in graded] + sorted(graded - set(METRIC_ORDER))
+    lines: list[DeviceLine] = []
+    for device in lot.devices:
+        for cond in lot.conditions:
+            name = cond["name"]
+            cells = {}
+            for g in device.grades:
+                if g.condition != name:
+                    continue
+                limit = " ".join(x for x in (
+                    f"≥ {format_si(g.lower, g.unit)}" if g.lower is not None else "",
+                    f"≤ {format_si(g.upper, g.unit)}" if g.upper is not None else "") if x)
+                cells[g.metric] = Cell(g.value, g.expanded_uncertainty, g.outcome, limit)
+            note = "; ".join(r for r in device.reasons if name in r)[:160]
+            lines.append(DeviceLine(device.serial, name, cells, device.bin or "",
+                                    device.verdict, note))
+    return lines, columns
+
+
+def _json_safe(value: Any) -> Any:
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    return value
+
+
+def _shot_rows(run: Any, lot: Any) -> list[dict[str, Any]]:
+    """Every shot as ``ShotResult.to_dict()`` plus its condition name (JSON-safe)."""
+    by_index = {c.get("point_index"): c["name"] for c in lot.conditions}
+    return [_json_safe({**s.to_dict(), "condition": by_index.get(s.point.index, "")})
+            for s in run.shots]
+
+
+def _figures(run: Any, lot: Any, columns: list[str]) -> tuple[list, list, list]:
+    limits: dict[tuple[str, str], tuple[float | None, float | None]] = {}
+    for d in lot.devices:
+        for g in d.grades:
+            limits.setdefault((g.metric, g.condition), (g.lower, g.upper))
+    names = {c.get("point_index"): c["name"] for c in lot.conditions}
+    dists, trends = [], []
+    for key in columns:
+        label, unit = METRIC_LABELS.get(key, (key, ""))
+        groups: dict[str, list[float | None]] = {}
+        per_device: dict[str, list[tuple[float, float]]] = {}
+        for s in run.shots:
+            cond = names.get(s.point.index)
+            if cond is None or not s.valid:
+                continue
+            groups.setdefault(cond, []).append(s.metrics.get(key))
+            value = s.metrics.get(key)
+            temperature = s.conditions.get("temperature_K") or s.point.temperature_K
+            if value is not None:
+                per_device.setdefault(s.serial, []).append((temperature, value))
+        lims = {c: limits.get((key, c), (None, None)) for c in groups}
+        dists.append({"label": label, "unit": unit, "groups": groups, "limits": lims})
+        if len({c["temperature_K"] for c in lot.conditions}) > 1:
+            trends.append({"label": label, "unit": unit, "per_device": per_device})
+    log = [(n, s.conditions.get("temperature_K"), s.point.temperature_K)
+           for n, s in enumerate(sorted(run.shots, key=lambda s: (s.timestamp, s.raw_ref)))]
+    return dists, trends, log
+
+
+def _waveform_requests(run: Any, lot: Any) -> list[WaveformRequest]:
+    names = {c.get("point_index"): c["name"] for c in lot.conditions}
+    valid = [s for s in run.shots if s.valid and s.raw_ref and s.point.index in names]
+    requests: list[WaveformRequest] = []
+    conforming = [d.serial for d in lot.devices if d.verdict == "conforming"]
+    if valid:
+        # representative: the conforming device whose trr (else Qrr) is closest to the median
+        key = next((k for k in ("trr_s", "qrr_C", "irrm_A")
+                    if any(s.metrics.get(k) is not None for s in valid)), None)
+        pool = [s for s in valid if s.serial in conforming] or valid
+        if key is not None:
+            vals = [s for s in pool if s.metrics.get(key) is not None]
+            if vals:
+                median = float(np.median([s.metrics[key] for s in vals]))
+                pool = sorted(vals, key=lambda s: abs(s.metrics[key] - median))
+        pick = pool[0]
+        requests.append(WaveformRequest(pick.raw_ref, pick.serial, names[pick.point.index],
+                                        "representative device"))
+    failing = [d for d in lot.devices if d.verdict != "conforming"]
+    for device in failing[:MAX_FAILING_PLOTS]:
+        bad_conditions = [g.condition for g in device.grades if g.outcome != "conforming"]
+        shots = [s for s in run.shots if s.serial == device.serial and s.raw_ref
+                 and names.get(s.point.index) in (bad_conditions or names.values())]
+        if not shots:
+            continue
+        shot = sorted(shots, key=lambda s: (not s.valid, s.repeat, s.attempt))[0]
+        requests.append(WaveformRequest(shot.raw_ref, device.serial,
+                                        names.get(shot.point.index, ""), device.verdict))
+    return requests
+
+
+def build_content(run: Any, lot: Any, signer: ReportSigner, *,
+                  now: _dt.datetime | None = None) -> ReportContent:
+    """Everything the report prints, from a run and its grades."""
+    now = now or _dt.datetime.now(_dt.UTC).replace(microsecond=0)
+    manifest = run.manifest or {}
+    bench = _cfg("bench", getattr(run, "bench_path", None))
+    sequence = _cfg("sequence", getattr(run, "sequence_path", None))
+    options = analysis_options(run)
+    devices, columns = _device_lines(lot)
+    stats = lot.statistics
+    dists, trends, log = _figures(run, lot, columns)
+    record = getattr(run, "run", None)
+    started = manifest.get("started") or (record.started if record else "")
+    finished = manifest.get("finished") or (record.finished if record else "")
+    content = ReportContent(
+        report_id=new_report_id(run.run_id, now),
+        generated_utc=now.strftime("%Y-%m-%d %H:%M:%S UTC"),
+        company=manifest.get("company") or signer.organisation or COMPANY_DEFAULT,
+        part=lot.part,
+        lot=", ".join(lot.lots),
+        run_id=run.run_id,
+        software_version=str(manifest.get("software_version") or __version__),
+        disposition=lot.disposition,
+        disposition_reasons=list(lot.reasons),
+        signer_name=signer.name,
+        signer_role=signer.role,
+        signer_organisation=signer.organisation,
+        signer_fingerprint=signer.cert_fingerprint_sha256,
+        run_window=f"{started} to {finished}" if started and finished else str(started or ""),
+        conditions_table=_conditions_table(run, lot, sequence.tolerances if sequence else None),
+        instruments_table=_instruments_table(run, bench),
+        fixture_table=_fixture_table(bench),
+        definitions_table=_definitions(options),
+        decision_rule=[lot.decision_rule, lot.lot_rule],
+        budget_table=_budget_table(lot),
+        metric_columns=columns,
+        devices=devices,
+        counts={"devices": stats.count, "conforming": stats.conforming,
+                "non-conforming": stats.nonconforming, "indeterminate": stats.indeterminate,
+                "invalid": stats.invalid},
+        statistics_table=_statistics_table(stats),
+        distributions=dists,
+        trends=trends,
+        temperature_log=log,
+        waveforms=_waveform_requests(run, lot),
+        manifest=[e.to_dict() for e in build_manifest(run)],
+        shots=_shot_rows(run, lot),
+        lot_grade=lot.to_dict(),
+        analysis_options=options,
+    )
+    return content
+
+
+def _statistics_table(stats: Any) -> list[list[str]]:
+    rows = [["Metric", "Condition", "n", "Mean", "σ", "Min", "Max", "Cpk"]]
+    for m in stats.metrics:
+        label, unit = METRIC_LABELS.get(m.metric, (m.metric, ""))
+        rows.append([label, m.condition, str(m.n), format_si(m.mean, unit, 4),
+                     format_si(m.std, unit, 3), format_si(m.minimum, unit, 4),
+                     format_si(m.maximum, unit, 4),
+                     "—" if m.cpk is None else f"{m.cpk:.2f}"])
+    if stats.yield_fraction is not None:
+        rows.append(["yield", "", str(stats.count), f"{stats.yield_fraction * 100:.1f} %",
+                     "", "", "", ""])
+    for r in stats.ratios:
+        label, _ = METRIC_LABELS.get(r.metric, (r.metric, ""))
+        rows.append([f"{label} ratio {r.hot}/{r.cold}", "", str(len(r.per_device)),
+                     "—" if r.mean is None else f"{r.mean:.3f}", "", "", "", ""])
+    for o in stats.outliers[:40]:
+        label, unit = METRIC_LABELS.get(o.metric, (o.metric, ""))
+        rows.append([f"outlier {o.serial}", o.condition, "", f"{label} "
+                     f"{format_si(o.value, unit, 4)}", f"z = {o.z:.1f}", "", "", ""])
+    return rows
+
+
+def shot_waveform(raw_shot: Any, options: dict[str, Any]) -> tuple[Any, Any, Any,
+                                                                    WaveformMarks]:
+    """Physical waveforms of one raw shot and the marks from its re-analysis."""
+    from benchrun.report.reanalysis import analyze_raw_shot
+
+    channels, probes = raw_shot.channels, raw_shot.probes
+
+    def physical(name: str) -> tuple[np.ndarray, np.ndarray]:
+        ch = channels[name]
+        probe = probes.get(name)
+        volts = np.asarray(ch.codes, dtype=float) * ch.gain + ch.offset
+        scale = probe.scale if probe else 1.0
+        deskew = probe.deskew_s if probe else 0.0
+        t = raw_shot.t_start + np.arange(volts.size) * raw_shot.dt - deskew
+        return t, volts * scale
+
+    t_i, i = physical("diode_current")
+    t_v, v = physical("diode_voltage")
+    v = np.interp(t_i, t_v, v)
+    marks = WaveformMarks(None, None, None, None, None)
+    with contextlib.suppress(BenchrunError):
+        metrics = analyze_raw_shot(raw_shot, options)
+        marks = WaveformMarks(metrics.get("t0_s"), metrics.get("t_irrm_s"),
+                              metrics.get("irrm_A"), metrics.get("t_trr_s"),
+                              metrics.get("t2_s"), metrics.get("if_A"), metrics.get("vrm_V"))
+    return t_i, v, i, marks
+
+
+@contextlib.contextmanager
+def raw_waveform_loader(run: Any, content: ReportContent) -> Iterator[Any]:
+    """A loader ``raw_ref → (t, v, i, marks)`` over the run's raw record (None if missing)."""
+    raw = None
+    with contextlib.suppress(BenchrunError):
+        raw = run.open_raw()
+    options = content.analysis_options
+
+    def load(ref: str) -> Any:
+        if raw is None:
+            return None
+        try:
+            return shot_waveform(raw.read_shot(ref), options)
+        except (BenchrunError, KeyError):
+            return None
+
+    try:
+        yield load
+    finally:
+        if raw is not None:
+            raw.close()

@@ -1,0 +1,178 @@
+"""Re-analysis for verification: raw waveforms → metrics → grades, compared with the report.
+
+Each shot listed in the report's embedded data is read back from the raw HDF5 record (its
+stored content hash is checked on reading), analysed again through
+``benchrun.analysis.pipeline.analyze_channels`` with the analysis options of the run's sequence
+file, and every metric is compared with the report's number. The shots, with the re-analysed
+metrics, are then graded again with the run folder's limits file (``grade_lot``) and every
+grade, device verdict, bin and the lot disposition are compared with the report.
+
+Numbers must agree to a relative 1e-9: the pipeline is deterministic, so on the same software
+they are identical; the margin only absorbs floating-point differences between machines.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from benchrun.errors import BenchrunError
+
+#: Relative agreement required between a reported and a re-computed number.
+REL_TOL = 1e-9
+#: Keys of ``ShotResult.conditions`` that the analysis itself measures (taken from it again).
+ANALYSED_CONDITIONS = ("if_A", "didt_A_per_s", "vr_V")
+
+
+def analyze_raw_shot(raw_shot: Any, options: dict[str, Any] | None) -> dict[str, Any]:
+    """Metrics of one raw shot through the runner's pipeline (``ShotAnalysis.metrics()``)."""
+    from benchrun.analysis import RecoveryOptions
+    from benchrun.analysis.pipeline import analyze_channels
+
+    opts = RecoveryOptions(**options) if options else None
+    result = analyze_channels(raw_shot.t_start, raw_shot.dt, raw_shot.channels,
+                              raw_shot.probes, opts)
+    return dict(result.metrics())
+
+
+def same_number(a: Any, b: Any) -> bool:
+    """Equal within :data:`REL_TOL` (None equals None; NaN is treated as None)."""
+    def norm(x: Any) -> float | None:
+        if x is None:
+            return None
+        x = float(x)
+        return x if math.isfinite(x) else None
+
+    a, b = norm(a), norm(b)
+    if a is None or b is None:
+        return a is None and b is None
+    return math.isclose(a, b, rel_tol=REL_TOL, abs_tol=0.0)
+
+
+def _check(ok: bool, reason: str, details: list[str] | tuple[str, ...] = ()) -> Any:
+    from benchrun.report.verify import CHECK_REANALYSIS, Check
+
+    return Check(CHECK_REANALYSIS, ok, reason, tuple(details))
+
+
+def _reanalyse_shots(rows: list[dict[str, Any]], run: Any, options: dict[str, Any] | None,
+                     problems: list[str]) -> dict[str, dict[str, Any]]:
+    """raw_ref → re-analysed metrics; problems collects every disagreement."""
+    out: dict[str, dict[str, Any]] = {}
+    try:
+        raw = run.open_raw()
+    except BenchrunError as exc:
+        problems.append(f"raw record cannot be opened: {exc}")
+        return out
+    with raw:
+        for row in rows:
+            ref = row.get("raw_ref") or ""
+            label = f"{row.get('serial')} {ref}"
+            reported = row.get("metrics") or {}
+            try:
+                shot = raw.read_shot(ref, verify=True)
+            except BenchrunError as exc:
+                problems.append(f"{label}: {exc}")
+                continue
+            try:
+                metrics = analyze_raw_shot(shot, options)
+            except BenchrunError as exc:
+                if all(v is None for v in reported.values()):
+                    out[ref] = {k: None for k in reported}
+                else:
+                    problems.append(f"{label}: analysis now fails ({exc}) but the report has "
+                                    "metrics")
+                continue
+            out[ref] = metrics
+            for key, value in reported.items():
+                if not same_number(value, metrics.get(key)):
+                    problems.append(f"{label}: {key} reported {value!r}, re-analysis gives "
+                                    f"{metrics.get(key)!r}")
+    return out
+
+
+def _compare_grades(reported: dict[str, Any], lot: Any, problems: list[str]) -> None:
+    new = lot.to_dict()
+    if reported.get("disposition") != new["disposition"]:
+        problems.append(f"lot disposition reported {reported.get('disposition')!r}, regrading "
+                        f"gives {new['disposition']!r}")
+    old_devices = {d["serial"]: d for d in reported.get("devices", [])}
+    new_devices = {d["serial"]: d for d in new["devices"]}
+    for serial in sorted(set(old_devices) | set(new_devices)):
+        old, cur = old_devices.get(serial), new_devices.get(serial)
+        if old is None or cur is None:
+            problems.append(f"device {serial}: present only in the "
+                            f"{'regrade' if old is None else 'report'}")
+            continue
+        for field in ("verdict", "bin"):
+            if old.get(field) != cur.get(field):
+                problems.append(f"device {serial}: {field} reported {old.get(field)!r}, "
+                                f"regrading gives {cur.get(field)!r}")
+        old_grades = {(g["metric"], g["condition"]): g for g in old.get("grades", [])}
+        for g in cur.get("grades", []):
+            key = (g["metric"], g["condition"])
+            before = old_grades.pop(key, None)
+            where = f"device {serial} {g['metric']} at {g['condition']}"
+            if before is None:
+                problems.append(f"{where}: not in the report")
+                continue
+            if before.get("outcome") != g.get("outcome"):
+                problems.append(f"{where}: grade reported {before.get('outcome')!r}, regrading "
+                                f"gives {g.get('outcome')!r}")
+            for field in ("value", "U", "lower", "upper"):
+                if not same_number(before.get(field), g.get(field)):
+                    problems.append(f"{where}: {field} reported {before.get(field)!r}, "
+                                    f"regrading gives {g.get(field)!r}")
+        for key in old_grades:
+            problems.append(f"device {serial} {key[0]} at {key[1]}: graded in the report only")
+
+
+def reanalysis_check(attachment: dict[str, Any] | None, run: Any,
+                     load_error: str | None) -> Any:
+    """The re-analysis check of :func:`benchrun.report.verify.verify_report`."""
+    if attachment is None:
+        return _check(False, "the report carries no readable embedded data to compare")
+    if run is None:
+        return _check(False, load_error or "no run data to re-analyse")
+    rows = attachment.get("shots") or []
+    if not rows:
+        return _check(False, "the report lists no shots")
+    options = attachment.get("analysis_options") or None
+    problems: list[str] = []
+    metrics = _reanalyse_shots(rows, run, options, problems)
+    shot_problems = len(problems)
+    try:
+        from benchrun.grading import grade_lot, load_limits
+        from benchrun.records import ShotResult
+
+        if run.limits_path is None or not run.limits_path.is_file():
+            problems.append("the run folder has no limits.yaml to regrade with")
+        else:
+            limits = load_limits(run.limits_path)
+            shots = []
+            for row in rows:
+                data = {k: v for k, v in row.items() if k != "condition"}
+                shot = ShotResult.from_dict(data)
+                fresh = metrics.get(shot.raw_ref)
+                if fresh is not None:
+                    merged = {k: fresh.get(k) for k in shot.metrics}
+                    conditions = dict(shot.conditions)
+                    for key in ANALYSED_CONDITIONS:
+                        if key in conditions and key in fresh:
+                            conditions[key] = fresh[key]
+                    shot = ShotResult.from_dict({**shot.to_dict(), "metrics": merged,
+                                                 "conditions": conditions})
+                shots.append(shot)
+            _compare_grades(attachment.get("lot_grade") or {}, grade_lot(shots, limits),
+                            problems)
+    except BenchrunError as exc:
+        problems.append(f"regrading failed: {exc}")
+    except (KeyError, TypeError, ValueError) as exc:
+        problems.append(f"the embedded shot data are malformed ({type(exc).__name__}: {exc})")
+    if problems:
+        what = (f"{shot_problems} shot disagreement(s)" if shot_problems else "shots agree")
+        grade_issues = len(problems) - shot_problems
+        summary = f"{what}; {grade_issues} grade disagreement(s)"
+        return _check(False, f"{summary}: {problems[0]}", problems[:200])
+    return _check(True, f"{len(rows)} shots re-analysed: every metric, grade, bin, device "
+                        "verdict and the lot disposition reproduced")
