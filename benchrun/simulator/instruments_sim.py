@@ -1,0 +1,559 @@
+"""State machines of the simulated instruments, driven by their command tables.
+
+Each instrument receives one program message (a line), splits it into message units at
+``;``, matches every unit against its family's command table
+(:meth:`~benchrun.instruments.commands.CommandTable.match`) and runs the operation of that
+name. Errors go to a real SCPI error queue (SCPI-1999 Vol. 2 §21.8): ``-113`` undefined
+header, ``-224`` illegal parameter value, ``-222`` data out of range, ``-221`` settings
+conflict, ``-350`` queue overflow; the matching IEEE 488.2 event status bits are set
+(command error 0x20, execution error 0x10, device-dependent 0x08, query error 0x04).
+
+The instruments share a :class:`BenchLink` (implemented by the simulated bench) that gives
+them the accelerated clock and the coupled state: the supply's bus voltage, the thermal
+controller's temperature, the handler's selected device and the scope's capture when the
+pulse source fires.
+"""
+
+from __future__ import annotations
+
+import inspect
+import math
+import threading
+from collections import deque
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+import numpy as np
+
+from benchrun.instruments import scpi
+from benchrun.instruments.commands import CommandSpec, CommandTable, WaveformSpec, evaluate
+from benchrun.simulator.faults import FaultSwitches
+
+ERROR_QUEUE_LENGTH = 16
+
+ESR_OPC = 0x01
+ESR_QUERY_ERROR = 0x04
+ESR_DEVICE_ERROR = 0x08
+ESR_EXECUTION_ERROR = 0x10
+ESR_COMMAND_ERROR = 0x20
+
+
+@dataclass(frozen=True)
+class Block:
+    """A binary block answer: header + payload (+ ``"\\n"``) sent without copying."""
+
+    payload: memoryview
+    terminator: bool
+
+
+class BenchLink(Protocol):
+    """What instruments need from the bench they sit on."""
+
+    lock: threading.RLock
+
+    def now(self) -> float:
+        """Simulated seconds since the bench started (accelerated clock)."""
+        ...
+
+    def fire(self, timing: tuple[float, float, float], gate_resistance_ohm: float) -> str | None:
+        """The pulse source fired; returns a reason string when nothing could happen."""
+        ...
+
+    def device_serials(self) -> list[str]: ...
+
+    def bus_capacitance(self) -> float: ...
+
+    def bleeder_ohm(self) -> float: ...
+
+
+class SimInstrument:
+    """Common IEEE 488.2 behaviour; subclasses add ``op_<command name>`` methods."""
+
+    role = ""
+
+    def __init__(self, table: CommandTable, bench: BenchLink, serial: str,
+                 faults: FaultSwitches | None = None) -> None:
+        self.table = table
+        self.bench = bench
+        self.serial = serial
+        self.faults = faults or FaultSwitches()
+        self.errors: deque[tuple[int, str]] = deque()
+        self.esr = 0
+        self.reset_state()
+
+    # --- message handling -----------------------------------------------------------------
+
+    def handle(self, message: str) -> list[str | Block]:
+        """Process one program message; return the answers of its queries in order."""
+        answers: list[str | Block] = []
+        with self.bench.lock:
+            for code, detail in self.faults.take_pending_errors():
+                self.push_error(code, detail)
+            for unit in message.split(";"):
+                unit = unit.strip()
+                if not unit:
+                    continue
+                answer = self._handle_unit(unit)
+                if answer is not None:
+                    answers.append(answer)
+        return answers
+
+    def _handle_unit(self, unit: str) -> str | Block | None:
+        try:
+            found = self.table.match(unit)
+        except (ValueError, KeyError, ZeroDivisionError) as exc:
+            self.push_error(-224, f"{unit}: {exc}")
+            return None
+        if found is None:
+            self.push_error(-113, unit.split()[0][:40])
+            return None
+        spec, values = found
+        for name, (low, high) in spec.limits.items():
+            v = values.get(name)
+            if isinstance(v, int | float) and not low <= v <= high:
+                self.push_error(-222, f"{name} {v:g} outside [{low:g}, {high:g}]")
+                return None
+        result = self.dispatch(spec.name, values)
+        if not spec.is_query:
+            return None
+        if isinstance(result, Block):
+            return result
+        return self._format_answer(spec, result)
+
+    def dispatch(self, name: str, values: dict[str, Any]) -> Any:
+        """Run operation ``name`` (method ``op_<name>``) with the parameters it takes."""
+        handler = getattr(self, f"op_{name}", None)
+        if handler is None:  # a command this family declares that needs no simulated effect
+            return None
+        wanted = inspect.signature(handler).parameters
+        return handler(**{k: v for k, v in values.items() if k in wanted})
+
+    def _format_answer(self, spec: CommandSpec, value: Any) -> str:
+        if spec.returns == "error":
+            return str(value)
+        return self.table.format_reply(spec.name, value)
+
+    def push_error(self, code: int, detail: str = "") -> None:
+        """Add an entry to the error queue and set the matching event status bit."""
+        if -199 <= code <= -100:
+            self.esr |= ESR_COMMAND_ERROR
+        elif -299 <= code <= -200:
+            self.esr |= ESR_EXECUTION_ERROR
+        elif -499 <= code <= -400:
+            self.esr |= ESR_QUERY_ERROR
+        else:
+            self.esr |= ESR_DEVICE_ERROR
+        if len(self.errors) >= ERROR_QUEUE_LENGTH - 1:
+            if len(self.errors) == ERROR_QUEUE_LENGTH - 1:
+                self.errors.append((-350, scpi.SCPI_ERRORS[-350]))
+            return
+        self.errors.append((code, detail))
+
+    # --- IEEE 488.2 common commands ----------------------------------------------------------
+
+    def reset_state(self) -> None:
+        """``*RST`` state of the instrument (subclasses extend)."""
+
+    def op_identify(self) -> str:
+        ident = self.table.simulated_identity
+        fields = scpi.IdnFields(ident.get("manufacturer", "BENCHRUN-SIM"),
+                                ident.get("model", self.role.upper()), self.serial,
+                                ident.get("firmware", "0"))
+        values = {"manufacturer": fields.manufacturer, "model": fields.model,
+                  "serial": fields.serial, "firmware": fields.firmware}
+        return ",".join(values[k] for k in self.table.idn_order)
+
+    def op_reset(self) -> None:
+        self.reset_state()
+
+    def op_clear_status(self) -> None:
+        self.errors.clear()
+        self.esr = 0
+
+    def op_operation_complete(self) -> int:
+        return 1
+
+    def op_event_status(self) -> int:
+        value, self.esr = self.esr, 0
+        return value
+
+    def op_next_error(self) -> str:
+        if not self.errors:
+            return scpi.format_error_entry(0)
+        code, detail = self.errors.popleft()
+        return scpi.format_error_entry(code, detail)
+
+
+# --- scope -------------------------------------------------------------------------------------
+
+
+@dataclass
+class ChannelSetting:
+    display: bool = False
+    range: float = 8.0
+    offset: float = 0.0
+    probe: float = 1.0
+
+
+@dataclass(frozen=True)
+class Trace:
+    """One stored channel in the family's wire encoding."""
+
+    data: np.ndarray  # family dtype, ready to send
+    gain: float  # probe units per code
+    offset: float  # probe units
+    t_start: float
+    dt: float
+
+
+def encode_for_family(codes: np.ndarray, gain: float, offset: float, code_min: int,
+                      code_max: int, wf: WaveformSpec) -> tuple[np.ndarray, float, float]:
+    """Map ADC codes onto a family's code range and dtype, keeping volts unchanged.
+
+    ``volts = codes*gain + offset`` before and ``family_codes*gain_f + offset_f`` after; the
+    ADC limits ``code_min``/``code_max`` land on the family's ``code_min`` and (for an
+    integer step) ``code_max``.
+    """
+    span_src = max(code_max - code_min, 1)
+    span_fam = wf.code_max - wf.code_min
+    step = span_fam // span_src if span_fam >= span_src else span_fam / span_src
+    src = np.asarray(codes, dtype=np.int64)
+    if isinstance(step, int):
+        fam = (src - code_min) * step + wf.code_min
+    else:
+        fam = np.rint((src - code_min) * step).astype(np.int64) + wf.code_min
+    fam = np.clip(fam, wf.code_min, wf.code_max).astype(wf.numpy_dtype)
+    gain_f = gain / step
+    offset_f = offset + gain * code_min - gain_f * wf.code_min
+    return fam, float(gain_f), float(offset_f)
+
+
+class SimScope(SimInstrument):
+    """Single-shot digitizing scope; captures what the bench produces when the pulse fires."""
+
+    role = "scope"
+
+    def reset_state(self) -> None:
+        n = max(self.table.channels, 4)
+        self.channels = {ch: ChannelSetting(display=(ch == 1)) for ch in range(1, n + 1)}
+        self.sample_interval = 1e-9
+        self.record_length = 10_000
+        self.t_start = 0.0
+        self.trigger_channel = 1
+        self.trigger_level = 0.0
+        self.trigger_slope = "rising"
+        self.armed = False
+        self.done = False
+        self.traces: dict[int, Trace] = {}
+        self.source = 1
+
+    def op_channel_display(self, channel: int, state: bool) -> None:
+        self.channels[channel].display = state
+
+    def op_channel_range(self, channel: int, range: float) -> None:
+        self.channels[channel].range = range
+
+    def op_channel_offset(self, channel: int, offset: float) -> None:
+        self.channels[channel].offset = offset
+
+    def op_channel_probe(self, channel: int, factor: float) -> None:
+        self.channels[channel].probe = factor
+
+    def op_sample_interval(self, interval: float) -> None:
+        self.sample_interval = interval
+
+    def op_record_length(self, points: int) -> None:
+        self.record_length = points
+
+    def op_time_start(self, t_start: float) -> None:
+        self.t_start = t_start
+
+    def op_trigger_source(self, channel: int) -> None:
+        self.trigger_channel = channel
+
+    def op_trigger_level(self, level: float) -> None:
+        self.trigger_level = level
+
+    def op_trigger_slope(self, slope: str) -> None:
+        self.trigger_slope = slope
+
+    def op_arm_single(self) -> None:
+        self.armed = True
+        self.done = False
+
+    def op_acquisition_done(self) -> bool:
+        return self.done
+
+    def op_waveform_source(self, channel: int) -> None:
+        self.source = channel
+
+    def _trace(self, channel: int | None) -> Trace | None:
+        ch = self.source if channel is None else channel
+        trace = self.traces.get(ch)
+        if trace is None:
+            self.push_error(-221, f"no data on channel {ch}")
+        return trace
+
+    def op_waveform_data(self, channel: int | None = None) -> Block | str:
+        trace = self._trace(channel)
+        wf = self.table.waveform
+        assert wf is not None
+        data = trace.data if trace is not None else np.zeros(0, dtype=wf.numpy_dtype)
+        return Block(memoryview(data).cast("B"), wf.terminator_after_block)
+
+    def _scaling(self, key: str, channel: int | None) -> float:
+        trace = self._trace(channel)
+        wf = self.table.waveform
+        assert wf is not None
+        if trace is None:
+            return 0.0
+        names = {**self.table.constants, "gain": trace.gain, "offset": trace.offset,
+                 "dt": trace.dt, "t_start": trace.t_start}
+        return evaluate(wf.simulated[key], names)
+
+    def dispatch(self, name: str, values: dict[str, Any]) -> Any:
+        # scaling queries are named by the table: answer each from its `simulated` expression
+        wf = self.table.waveform
+        assert wf is not None
+        for key, command in wf.scaling_queries.items():
+            if name == command:
+                return self._scaling(key, values.get("channel"))
+        return super().dispatch(name, values)
+
+    def store_trace(self, channel: int, codes: np.ndarray, gain: float, offset: float,
+                    code_min: int, code_max: int, t_start: float, dt: float) -> None:
+        """Keep one acquired channel (channel-input codes with volts = codes*gain+offset)."""
+        wf = self.table.waveform
+        assert wf is not None
+        probe = self.channels[channel].probe
+        data, gain_f, offset_f = encode_for_family(codes, gain * probe, offset * probe,
+                                                   code_min, code_max, wf)
+        self.traces[channel] = Trace(data, gain_f, offset_f, t_start, dt)
+
+    def complete_acquisition(self) -> None:
+        self.armed = False
+        self.done = True
+
+
+# --- pulse source ------------------------------------------------------------------------------
+
+
+class SimPulseSource(SimInstrument):
+    """Two-pulse gate driver; firing asks the bench to run the shot."""
+
+    role = "pulse"
+
+    def reset_state(self) -> None:
+        self.count = 2
+        self.first = 10e-6
+        self.gap = 5e-6
+        self.second = 2e-6
+        self.gate_resistance = 10.0
+        self.output_on = False
+        self.shots = 0
+
+    def op_pulse_count(self, count: int) -> None:
+        self.count = count
+
+    def op_first_width(self, width: float) -> None:
+        self.first = width
+
+    def op_off_time(self, gap: float) -> None:
+        self.gap = gap
+
+    def op_second_width(self, width: float) -> None:
+        self.second = width
+
+    def op_gate_resistance(self, ohm: float) -> None:
+        self.gate_resistance = ohm
+
+    def op_output(self, state: bool) -> None:
+        self.output_on = state
+
+    def op_output_state(self) -> bool:
+        return self.output_on
+
+    def op_fire(self) -> None:
+        if not self.output_on:
+            self.push_error(-221, "output off")
+            return
+        timing = (self.first, self.gap, self.second) if self.count == 2 else (self.first, 0.0, 0.0)
+        problem = self.bench.fire(timing, self.gate_resistance)
+        if problem:
+            self.push_error(-221, problem)
+            return
+        self.shots += 1
+
+
+# --- bus supply --------------------------------------------------------------------------------
+
+
+class SimBusSupply(SimInstrument):
+    """DC supply charging the bus capacitor at its current limit; a bleeder discharges it.
+
+    While the output is on the bus voltage ramps at ``I_limit / C`` towards the setpoint;
+    after output off it decays as ``V0·exp(-t/(R_bleed·C))`` (RC discharge), both on the
+    bench's accelerated clock.
+    """
+
+    role = "supply"
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        self._v_ref = 0.0
+        self._t_ref = 0.0
+        self.output_on = False
+        self.setpoint = 0.0
+        self.current_limit = 1.0
+        super().__init__(*args, **kwargs)
+
+    def reset_state(self) -> None:
+        self._rebase()
+        self.setpoint = 0.0
+        self.current_limit = 1.0
+        self.output_on = False
+
+    def bus_voltage(self, t: float | None = None) -> float:
+        """Bus voltage at simulated time ``t`` (now by default)."""
+        t = self.bench.now() if t is None else t
+        elapsed = max(t - self._t_ref, 0.0)
+        c = self.bench.bus_capacitance()
+        if self.output_on:
+            rate = self.current_limit / c
+            if self._v_ref <= self.setpoint:
+                return min(self.setpoint, self._v_ref + rate * elapsed)
+            # above the setpoint: the bleeder pulls the bus down to it
+            tau = self.bench.bleeder_ohm() * c
+            return max(self.setpoint, self._v_ref * math.exp(-elapsed / tau))
+        tau = self.bench.bleeder_ohm() * c
+        return self._v_ref * math.exp(-elapsed / tau)
+
+    def _rebase(self) -> None:
+        now = self.bench.now()
+        self._v_ref = self.bus_voltage(now)
+        self._t_ref = now
+
+    def op_voltage(self, volts: float) -> None:
+        self._rebase()
+        self.setpoint = volts
+
+    def op_current_limit(self, amps: float) -> None:
+        self._rebase()
+        self.current_limit = amps
+
+    def op_output(self, state: bool) -> None:
+        self._rebase()
+        self.output_on = state
+
+    def op_output_state(self) -> bool:
+        return self.output_on
+
+    def op_measure_voltage(self) -> float:
+        return round(self.bus_voltage(), 3)
+
+    def op_measure_current(self) -> float:
+        if not self.output_on:
+            return 0.0
+        charging = self.bus_voltage() < self.setpoint - 1e-6
+        bleed = self.bus_voltage() / self.bench.bleeder_ohm()
+        return round(self.current_limit if charging else bleed, 6)
+
+
+# --- thermal controller ------------------------------------------------------------------------
+
+
+class SimThermalController(SimInstrument):
+    """First-order thermal lag towards the setpoint (ambient when the output is off).
+
+    ``T(t) = T_target + (T0 - T_target)·exp(-t/tau)`` on the accelerated clock. With the
+    ``thermal_no_settle`` fault the reading oscillates ±``no_settle_amplitude_K`` around it.
+    """
+
+    role = "thermal"
+    ambient_K = 298.15
+    tau_s = 60.0
+    no_settle_amplitude_K = 4.0
+    no_settle_period_s = 40.0
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        self._t_ref = 0.0
+        self._temp_ref = self.ambient_K
+        self.setpoint = self.ambient_K
+        self.output_on = False
+        super().__init__(*args, **kwargs)
+
+    def reset_state(self) -> None:
+        self._rebase()
+        self.setpoint = self.ambient_K
+        self.output_on = False
+
+    def _target(self) -> float:
+        return self.setpoint if self.output_on else self.ambient_K
+
+    def _lag(self, t: float) -> float:
+        elapsed = max(t - self._t_ref, 0.0)
+        target = self._target()
+        return target + (self._temp_ref - target) * math.exp(-elapsed / self.tau_s)
+
+    def temperature(self, t: float | None = None) -> float:
+        """Device temperature at simulated time ``t``, K."""
+        t = self.bench.now() if t is None else t
+        value = self._lag(t)
+        if self.faults.state.thermal_no_settle:
+            phase = 2 * math.pi * t / self.no_settle_period_s
+            value += self.no_settle_amplitude_K * math.sin(phase)
+        return value
+
+    def _rebase(self) -> None:
+        now = self.bench.now()
+        self._temp_ref = self._lag(now)
+        self._t_ref = now
+
+    def op_setpoint(self, kelvin: float) -> None:
+        self._rebase()
+        self.setpoint = kelvin
+
+    def op_setpoint_value(self) -> float:
+        return self.setpoint
+
+    def op_measure_temperature(self) -> float:
+        return round(self.temperature(), 3)
+
+    def op_output(self, state: bool) -> None:
+        self._rebase()
+        self.output_on = state
+
+
+# --- handler -----------------------------------------------------------------------------------
+
+
+class SimHandler(SimInstrument):
+    """Device carousel: places one device of the virtual lot in the fixture."""
+
+    role = "handler"
+
+    def reset_state(self) -> None:
+        self.selected: str | None = None
+
+    def op_list_devices(self) -> list[str]:
+        return self.bench.device_serials()
+
+    def op_select(self, serial: str) -> None:
+        if serial.upper() == "NONE":
+            self.selected = None
+            return
+        if serial not in self.bench.device_serials():
+            self.push_error(-224, f"no device {serial}")
+            return
+        self.selected = serial
+
+    def op_selected(self) -> str:
+        return self.selected or "NONE"
+
+
+SIM_CLASSES: dict[str, type[SimInstrument]] = {
+    "scope": SimScope,
+    "pulse": SimPulseSource,
+    "supply": SimBusSupply,
+    "thermal": SimThermalController,
+    "handler": SimHandler,
+}
