@@ -8,8 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from benchrun.analysis.pipeline import ChannelData, ProbeCalibration
 from benchrun.records import ShotResult, TestPoint
-from benchrun.store.raw import ChannelData, ProbeCalibration
 
 
 def make_channels(seed: int = 0, n: int = 2000) -> dict[str, ChannelData]:

@@ -44,26 +44,37 @@ import numpy as np
 from benchrun import __version__
 from benchrun.errors import StoreError
 
-try:  # the one scaling contract shared with the analysis pipeline
-    from benchrun.analysis.pipeline import ChannelData, ProbeCalibration
-except ImportError:  # pragma: no cover - only while benchrun.analysis.pipeline is missing
 
-    @dataclass(frozen=True)
-    class ChannelData:  # type: ignore[no-redef]
-        """Raw ADC codes of one scope channel and their scaling (same fields as the pipeline)."""
+@dataclass(frozen=True)
+class _FallbackChannelData:
+    """Same fields as :class:`benchrun.analysis.pipeline.ChannelData` (used only without it)."""
 
-        codes: np.ndarray
-        gain: float
-        offset: float
-        code_min: int
-        code_max: int
+    codes: np.ndarray
+    gain: float
+    offset: float
+    code_min: int
+    code_max: int
 
-    @dataclass(frozen=True)
-    class ProbeCalibration:  # type: ignore[no-redef]
-        """Probe scale (physical unit per channel volt) and deskew (same fields as pipeline)."""
 
-        scale: float
-        deskew_s: float = 0.0
+@dataclass(frozen=True)
+class _FallbackProbeCalibration:
+    """Same fields as :class:`benchrun.analysis.pipeline.ProbeCalibration`."""
+
+    scale: float
+    deskew_s: float = 0.0
+
+
+def scaling_types() -> tuple[type, type]:
+    """``(ChannelData, ProbeCalibration)`` of :mod:`benchrun.analysis.pipeline`.
+
+    Imported on first use, not at import time, so that opening a store does not load
+    the signal-processing stack (scipy) a report listing does not need.
+    """
+    try:
+        from benchrun.analysis.pipeline import ChannelData, ProbeCalibration
+    except ImportError:  # pragma: no cover - only while the analysis package is incomplete
+        return _FallbackChannelData, _FallbackProbeCalibration
+    return ChannelData, ProbeCalibration
 
 
 #: Value of the root ``format`` attribute: identifies a benchrun raw record.
@@ -105,9 +116,10 @@ class RawShot:
     t_start, dt
         Time of the first sample relative to the trigger and the sample interval, seconds.
     channels
-        Channel name → :class:`ChannelData` with the codes exactly as stored.
+        Channel name → :class:`benchrun.analysis.pipeline.ChannelData` with the codes
+        exactly as stored.
     probes
-        Channel name → :class:`ProbeCalibration`.
+        Channel name → :class:`benchrun.analysis.pipeline.ProbeCalibration`.
     attrs
         The shot attributes given to :meth:`RawRecord.append_shot` (settings, serial, point,
         timestamp, instrument identities ...), as JSON round-trips them.
@@ -116,8 +128,8 @@ class RawShot:
     key: str
     t_start: float
     dt: float
-    channels: dict[str, ChannelData]
-    probes: dict[str, ProbeCalibration]
+    channels: dict[str, Any]
+    probes: dict[str, Any]
     attrs: dict[str, Any] = field(default_factory=dict)
 
     @property
@@ -510,8 +522,9 @@ class RawRecord:
         group = self._shots.get(key)
         if group is None or not bool(group.attrs.get("complete", False)):
             raise StoreError(f"no shot {key!r} in raw record {self.path}")
+        ChannelData, ProbeCalibration = scaling_types()
         try:
-            channels: dict[str, ChannelData] = {}
+            channels: dict[str, Any] = {}
             for name, ds in group.items():
                 channels[name] = ChannelData(
                     codes=ds[()],

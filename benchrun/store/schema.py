@@ -1,0 +1,133 @@
+"""Tables of the results database and the records read from them (SQLAlchemy 2.0 Core).
+
+See :mod:`benchrun.store.results` for what each table holds. JSON-valued columns are
+``Text`` holding canonical JSON (:func:`canonical_json`), not a JSON column type, so every
+backend stores exactly the characters written and floats round-trip bit-exactly.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+from dataclasses import dataclass, field
+from typing import Any
+
+from sqlalchemy import (
+    Boolean,
+    Column,
+    Double,
+    ForeignKey,
+    Integer,
+    MetaData,
+    String,
+    Table,
+    Text,
+    UniqueConstraint,
+)
+
+from benchrun.errors import StoreError
+
+metadata = MetaData()
+
+runs_table = Table(
+    "runs",
+    metadata,
+    Column("run_id", String(200), primary_key=True),
+    Column("part", String(200), nullable=False),
+    Column("lot", String(200), nullable=False),
+    Column("started", String(40), nullable=False),
+    Column("finished", String(40), nullable=True),
+    Column("status", String(40), nullable=False),
+    Column("manifest", Text, nullable=False),
+)
+
+shots_table = Table(
+    "shots",
+    metadata,
+    Column("id", Integer, primary_key=True, autoincrement=True),
+    Column("run_id", String(200), ForeignKey("runs.run_id"), nullable=False, index=True),
+    Column("part", String(200), nullable=False),
+    Column("lot", String(200), nullable=False),
+    Column("serial", String(200), nullable=False),
+    Column("point_index", Integer, nullable=False),
+    Column("repeat", Integer, nullable=False),
+    Column("attempt", Integer, nullable=False),
+    Column("timestamp", String(40), nullable=False),
+    Column("temperature_K", Double, nullable=True),
+    Column("bus_voltage_V", Double, nullable=True),
+    Column("forward_current_A", Double, nullable=True),
+    Column("point", Text, nullable=False),
+    Column("conditions", Text, nullable=False),
+    Column("metrics", Text, nullable=False),
+    Column("flags", Text, nullable=False),
+    Column("valid", Boolean, nullable=False),
+    Column("raw_ref", String(400), nullable=False),
+    Column("acquisition", Text, nullable=False),
+    Column("extra", Text, nullable=False),
+    UniqueConstraint("run_id", "serial", "point_index", "repeat", "attempt", name="uq_shot"),
+)
+
+reports_table = Table(
+    "reports",
+    metadata,
+    Column("report_id", String(200), primary_key=True),
+    Column("run_id", String(200), ForeignKey("runs.run_id"), nullable=False, index=True),
+    Column("path", Text, nullable=False),
+    Column("sha256", String(64), nullable=False),
+    Column("created", String(40), nullable=False),
+    Column("signer", Text, nullable=False),
+    Column("disposition", String(40), nullable=False),
+    Column("details", Text, nullable=False),
+)
+
+#: ShotResult fields stored in their own column (everything else goes to ``extra``).
+SHOT_COLUMNS = (
+    "run_id", "part", "lot", "serial", "repeat", "attempt", "timestamp",
+    "conditions", "metrics", "flags", "valid", "raw_ref", "acquisition", "point",
+)  # fmt: skip
+
+
+def utc_now() -> str:
+    """The current time as an ISO 8601 UTC string."""
+    return _dt.datetime.now(_dt.UTC).isoformat()
+
+
+def canonical_json(value: Any) -> str:
+    """Canonical JSON: sorted keys, no spaces, floats as ``repr`` (exact round trip)."""
+    try:
+        return json.dumps(value, sort_keys=True, separators=(",", ":"), allow_nan=True)
+    except (TypeError, ValueError) as exc:
+        raise StoreError(f"value cannot be stored as JSON: {exc}") from exc
+
+
+@dataclass(frozen=True)
+class RunRecord:
+    """One row of the ``runs`` table."""
+
+    run_id: str
+    part: str
+    lot: str
+    started: str
+    finished: str | None
+    status: str
+    manifest: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class ReportRecord:
+    """One row of the ``reports`` table.
+
+    ``disposition`` is the lot disposition stated in the report (``"accept"``/``"reject"``);
+    ``details`` holds anything else worth listing (row digest, signer role ...).
+    """
+
+    report_id: str
+    run_id: str
+    path: str
+    sha256: str
+    created: str
+    signer: str
+    disposition: str
+    details: dict[str, Any] = field(default_factory=dict)
+
+
