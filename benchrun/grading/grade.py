@@ -399,8 +399,10 @@ def _grade_device(
             key=lambda s: (s.repeat, s.attempt, s.timestamp),
         )
         valid = []
+        seen_problems: list[str] = []
         for shot in here:
             problems = shot_problems(shot, condition, spec.tolerances)
+            seen_problems += [p for p in problems if p not in seen_problems]
             if problems:
                 invalid_shots.append(
                     f"{name} repeat {shot.repeat} attempt {shot.attempt}: {'; '.join(problems)}"
@@ -416,7 +418,8 @@ def _grade_device(
         acquisitions[name] = acquisition
         if not valid:
             why = "no test point in the results matches it" if point is None else (
-                f"none of its {len(here)} shot(s) is valid" if here else "no shot recorded")
+                f"none of its {len(here)} shot(s) is valid ({'; '.join(seen_problems)})"
+                if here else "no shot recorded")
             reasons.append(f"required condition {name}: {why}")
             outcomes.append(INVALID)
         for limit in spec.limits_at(name):
