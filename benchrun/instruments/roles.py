@@ -239,8 +239,13 @@ class Scope(_Driver):
         self.check_errors("configuring the capture")
 
     def arm_single(self) -> None:
-        """Arm one single-shot acquisition."""
+        """Arm one single-shot acquisition; returns once the scope is armed (``*OPC?``).
+
+        Without the ``*OPC?`` round trip a fire command sent to the pulse source on another
+        connection could overtake the arm command.
+        """
         self._send("arm_single")
+        self.operation_complete()
 
     def acquisition_done(self) -> bool:
         return bool(self._ask("acquisition_done"))
@@ -272,6 +277,9 @@ class Scope(_Driver):
             raise ProtocolError(f"{self.session.resource}: block of {len(payload)} bytes is "
                                 f"not a whole number of {wf.sample_format} samples")
         codes = np.frombuffer(payload, dtype=wf.numpy_dtype).astype(np.int16)
+        if codes.size == 0:
+            self.check_errors(f"reading channel {name}")
+            raise ProtocolError(f"{self.session.resource}: channel {name} returned no samples")
         probe = self._probe.get(ch, 1.0)
         return ChannelTrace(
             codes=codes,

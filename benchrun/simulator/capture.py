@@ -16,6 +16,7 @@ the chosen direction is ``t = 0``; no crossing, no capture.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
@@ -127,45 +128,96 @@ class PatternCaptureModel:
 
 
 class PhysicsCaptureModel:
-    """Shots from the circuit physics (see module docstring)."""
+    """Shots from the circuit physics (see module docstring).
 
-    def capture(self, condition: ShotCondition, setup: AcquisitionSetup, catalog: Any,
-                fixture: Any, rng: np.random.Generator) -> Capture | None:
+    Parameters
+    ----------
+    bandwidth_hz
+        Probe/front-end bandwidth per fixture signal (missing = unlimited).
+    skew_s
+        Probe delay per fixture signal (the bench file's deskew should cancel it).
+    noise_lsb
+        ADC noise, rms in LSB.
+    voltage_resolution_V, temperature_resolution_K
+        Shot conditions are rounded to these steps so that repeated shots at one setting
+        reuse the cached circuit solution (the physics is insensitive below them).
+    """
+
+    def __init__(
+        self,
+        bandwidth_hz: Mapping[str, float | None] | None = None,
+        skew_s: Mapping[str, float] | None = None,
+        noise_lsb: float = 0.6,
+        voltage_resolution_V: float = 0.1,
+        temperature_resolution_K: float = 0.1,
+    ) -> None:
+        self.bandwidth_hz = dict(DEFAULT_BANDWIDTH_HZ if bandwidth_hz is None else bandwidth_hz)
+        self.skew_s = dict(skew_s or {})
+        self.noise_lsb = noise_lsb
+        self.voltage_resolution_V = voltage_resolution_V
+        self.temperature_resolution_K = temperature_resolution_K
+
+    def waveforms(self, condition: ShotCondition, record_end_s: float, catalog: Any,
+                  fixture: Any) -> Any:
+        """Dense circuit waveforms of a shot (cached by the physics module per condition)."""
         from benchrun.simulator import physics
 
         diode = catalog_device(catalog, condition.serial)
         switch = physics.SwitchModel(gate_resistance_ohm=condition.gate_resistance_ohm)
-        record_end = setup.t_start_s + setup.sample_interval_s * setup.record_length
         if condition.second_pulse_s > 0:
             timing = physics.PulseTiming(condition.first_pulse_s, condition.off_time_s,
                                          condition.second_pulse_s)
         else:
-            # single-pulse (trim) shot: a second turn-on placed after the end of the record
-            off = max(record_end - condition.first_pulse_s, 0.0) + 5e-6
+            # single-pulse (trim) shot: the solver always runs two pulses, so the second
+            # turn-on is placed after the end of the record, where the scope cannot see it
+            off = max(record_end_s - condition.first_pulse_s, 0.0) + 5e-6
             timing = physics.PulseTiming(condition.first_pulse_s, off, 1e-6)
-        waves = physics.simulate_double_pulse(fixture, switch, diode, timing,
-                                              round(condition.bus_voltage_V, 3),
-                                              round(condition.temperature_K, 2))
-        trig = waves.channel(setup.trigger_signal)
+        bus = _round_to(condition.bus_voltage_V, self.voltage_resolution_V)
+        temperature = _round_to(condition.temperature_K, self.temperature_resolution_K)
+        return physics.simulate_double_pulse(fixture, switch, diode, timing, bus, temperature)
+
+    def capture(self, condition: ShotCondition, setup: AcquisitionSetup, catalog: Any,
+                fixture: Any, rng: np.random.Generator) -> Capture | None:
+        from benchrun.simulator.acquisition import AcquisitionSettings, digitize
+
+        record_end = 1e-6 + setup.t_start_s + setup.sample_interval_s * setup.record_length
+        try:
+            waves = self.waveforms(condition, max(record_end, 0.0), catalog, fixture)
+            trig = waves.channel(setup.trigger_signal)
+        except (ValueError, KeyError):
+            return None  # no physical shot (e.g. pulse too short), or nothing on the trigger
         t_trig = trigger_time(waves.t, trig, setup.trigger_level, setup.trigger_slope)
         if t_trig is None:
             return None
-        digitized = physics.digitize(waves, _acquisition_for_physics(setup, t_trig), rng)
+        settings = AcquisitionSettings(
+            sample_interval_s=setup.sample_interval_s,
+            record_length=setup.record_length,
+            t_start_s=t_trig + setup.t_start_s,
+            channel_ranges={ch.signal: (ch.range, ch.offset) for ch in setup.channels},
+            bandwidth_hz={ch.signal: self.bandwidth_hz.get(ch.signal) for ch in setup.channels},
+            skew_s={ch.signal: self.skew_s.get(ch.signal, 0.0) for ch in setup.channels},
+            adc_bits=8,
+            noise_lsb=self.noise_lsb,
+        )
+        digitized = digitize(waves, settings, rng)
         channels = {}
         for ch in setup.channels:
-            data = digitized[ch.signal]
+            data = digitized[ch.signal]  # physical units: channel volts = physical / probe
             channels[ch.channel] = CapturedChannel(
-                np.asarray(data.codes), float(data.gain), float(data.offset),
-                int(data.code_min), int(data.code_max))
+                np.asarray(data.codes, dtype=np.int16), float(data.gain) / ch.probe,
+                float(data.offset) / ch.probe, int(data.code_min), int(data.code_max))
         return Capture(channels, setup.t_start_s, setup.sample_interval_s)
 
 
-def _acquisition_for_physics(setup: AcquisitionSetup, t_trigger: float) -> Any:
-    from benchrun.simulator import physics
+#: Probe bandwidths of the simulated fixture (typical of HV differential probes and wideband
+#: current sensors; common practice values, not a particular product).
+DEFAULT_BANDWIDTH_HZ: dict[str, float | None] = {
+    "diode_voltage": 200e6,
+    "switch_voltage": 200e6,
+    "diode_current": 120e6,
+    "gate": 100e6,
+}
 
-    return physics.Acquisition(
-        channels={ch.signal: (ch.range, ch.offset, ch.probe) for ch in setup.channels},
-        sample_interval_s=setup.sample_interval_s,
-        record_length=setup.record_length,
-        t_first_sample_s=t_trigger + setup.t_start_s,
-    )
+
+def _round_to(value: float, step: float) -> float:
+    return float(round(value / step) * step) if step > 0 else float(value)

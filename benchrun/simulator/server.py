@@ -435,7 +435,10 @@ def _catalog_serials(catalog: Any) -> list[str]:
         serials = serials()
     if serials is not None:
         return [str(s) for s in serials]
-    raise TypeError("catalog must be a mapping serial → device or provide .serials")
+    lots = getattr(catalog, "lots", None)  # a VirtualCatalog: every lot's serials
+    if isinstance(lots, Mapping):
+        return [str(s) for lot in lots.values() for s in lot.serials]
+    raise TypeError("catalog must be a mapping serial → device, a lot or a catalogue")
 
 
 def catalog_device(catalog: Any, serial: str) -> Any:
@@ -457,7 +460,7 @@ def _fixture_value(fixture: Any, names: tuple[str, ...], default: float) -> floa
 def _default_catalog() -> Any:
     from benchrun.simulator import devices
 
-    return devices.default_catalog()
+    return devices.load_virtual_parts()
 
 
 def _default_fixture() -> Any:
