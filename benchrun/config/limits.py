@@ -38,6 +38,7 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BeforeValidator, Field, ValidationInfo, field_validator, model_validator
 
+from benchrun.analysis.metrics_meta import METRICS
 from benchrun.config.loader import (
     Current,
     CurrentSlope,
@@ -50,23 +51,28 @@ from benchrun.config.loader import (
 from benchrun.errors import ConfigError, UnitError
 from benchrun.units import parse_quantity
 
-#: Metric key → (dimension for :func:`benchrun.units.parse_quantity`, unit symbol for display).
-#: Keys follow ``RecoveryMetrics.to_dict()`` and ``SwitchingMetrics`` (DEVELOPERS.md).
+#: Unit symbol (as in :mod:`benchrun.analysis.metrics_meta`) → dimension for parse_quantity.
+_DIMENSION_OF_UNIT = {
+    "A": "current",
+    "s": "time",
+    "": "dimensionless",
+    "C": "charge",
+    "J": "energy",
+    "A/s": "current_slope",
+    "V": "voltage",
+    "W": "power",
+    "V/s": "voltage_slope",
+}
+
+#: Absolute instants inside a record: a limit on them would mean nothing.
+_NOT_GRADEABLE = frozenset({"t0_s", "t_irrm_s", "t_trr_s", "t2_s"})
+
+#: Gradeable metric key → (dimension for :func:`benchrun.units.parse_quantity`, unit symbol),
+#: from the analysis' metric table (``benchrun/analysis/metrics_meta.py``).
 METRIC_UNITS: dict[str, tuple[str, str]] = {
-    "if_A": ("current", "A"),
-    "irrm_A": ("current", "A"),
-    "ta_s": ("time", "s"),
-    "tb_s": ("time", "s"),
-    "trr_s": ("time", "s"),
-    "softness": ("dimensionless", ""),
-    "rrsf": ("dimensionless", ""),
-    "qrr_C": ("charge", "C"),
-    "err_J": ("energy", "J"),
-    "didt_A_per_s": ("current_slope", "A/s"),
-    "vrm_V": ("voltage", "V"),
-    "vr_V": ("voltage", "V"),
-    "eon_J": ("energy", "J"),
-    "eon_recovery_J": ("energy", "J"),
+    key: (_DIMENSION_OF_UNIT[item.unit], item.unit)
+    for key, item in METRICS.items()
+    if key not in _NOT_GRADEABLE and item.unit in _DIMENSION_OF_UNIT
 }
 
 
@@ -189,7 +195,9 @@ class MetricLimit(StrictModel):
 
 
 class DecisionRuleSpec(StrictModel):
-    """Decision rule of ILAC-G8:09/2019: simple acceptance (w = 0) or a guard band w = r·U."""
+    """Decision rule of ILAC-G8:09/2019: ``simple`` acceptance (§4.2.1, w = 0), ``guarded``
+    (§4.2.3, non-binary: conforming / indeterminate / non-conforming) or ``guarded-binary``
+    (§4.2.2: pass inside the acceptance limits, fail otherwise), guard band w = r·U."""
 
     rule: Literal["simple", "guarded", "guarded-binary"] = "guarded"
     guard_factor: float = Field(default=1.0, ge=0, le=3)

@@ -261,7 +261,7 @@ class _Builder:
             self.notes.append(f"{range_key} or adc_bits not recorded: {channel} quantisation "
                               "not included")
             return
-        step = full_scale / 2.0 ** int(bits)
+        step = full_scale / 2.0**bits
         unit = "A" if channel == "current" else "V"
         self.add(f"{channel} ADC quantisation of the peak sample", _TYPE_B_RES,
                  resolution(step), unit, 1.0)
