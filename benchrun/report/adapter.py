@@ -26,6 +26,7 @@ from benchrun.report.content import (
     DeviceLine,
     ReportContent,
     WaveformRequest,
+    fmt,
     new_report_id,
 )
 from benchrun.report.keys import ReportSigner
@@ -68,9 +69,9 @@ def _fmt_range(values: list[float], unit: str) -> str:
     if not values:
         return "—"
     mean = math.fsum(values) / len(values)
-    text = format_si(mean, unit, 4)
+    text = fmt(mean, unit, 4)
     if len(values) > 1:
-        text += f" ({format_si(min(values), unit, 3)} … {format_si(max(values), unit, 3)})"
+        text += f" ({fmt(min(values), unit, 3)} … {fmt(max(values), unit, 3)})"
     return text
 
 
@@ -103,7 +104,7 @@ def _conditions_table(run: Any, lot: Any, tolerances: Any) -> list[list[str]]:
                         if s.conditions.get(key) is not None
                         and math.isfinite(float(s.conditions[key]))]
             rows.append([cond["name"] if k == 0 else "", label,
-                         format_si(requested, unit) if requested is not None else "not set",
+                         fmt(requested, unit) if requested is not None else "not set",
                          _fmt_range(measured, unit), tol_text, n if k == 0 else ""])
     return rows
 
@@ -170,18 +171,24 @@ def _definitions(options: dict[str, Any]) -> list[list[str]]:
     return rows
 
 
+def _u_text(value: float, unit: str) -> str:
+    if unit in ("1", ""):
+        return f"{value * 100:.3g} %"
+    return fmt(value, unit, 3)
+
+
 def _budget_table(lot: Any) -> list[list[str]]:
     rows = [["Metric @ condition", "Contributor", "Evaluation", "u(xᵢ)", "|cᵢ|·u(xᵢ)"]]
     for key, budget in lot.budgets.items():
-        metric = key.split("@")[0]
+        metric, _, condition = key.partition("@")
         unit = METRIC_LABELS.get(metric, (metric, ""))[1]
-        label = key.replace("@", " @ ")
+        label = f"{METRIC_LABELS.get(metric, (metric, ''))[0]} @ {condition}"
         for k, c in enumerate(budget.contributors):
-            u_text = f"{c.standard_uncertainty:.3g} {c.input_unit}".strip()
-            rows.append([label if k == 0 else "", c.name, c.evaluation, u_text,
-                         format_si(abs(c.contribution), unit, 3)])
+            rows.append([label if k == 0 else "", c.name, c.evaluation,
+                         _u_text(c.standard_uncertainty, c.input_unit),
+                         fmt(abs(c.contribution), unit, 3)])
         rows.append(["", "combined u_c; expanded U", f"k = {budget.coverage_factor:g}",
-                     format_si(budget.combined, unit, 3), format_si(budget.expanded, unit, 3)])
+                     fmt(budget.combined, unit, 3), fmt(budget.expanded, unit, 3)])
     return rows
 
 
@@ -340,9 +347,9 @@ def _statistics_table(stats: Any) -> list[list[str]]:
     rows = [["Metric", "Condition", "n", "Mean", "σ", "Min", "Max", "Cpk"]]
     for m in stats.metrics:
         label, unit = METRIC_LABELS.get(m.metric, (m.metric, ""))
-        rows.append([label, m.condition, str(m.n), format_si(m.mean, unit, 4),
-                     format_si(m.std, unit, 3), format_si(m.minimum, unit, 4),
-                     format_si(m.maximum, unit, 4),
+        rows.append([label, m.condition, str(m.n), fmt(m.mean, unit, 4),
+                     fmt(m.std, unit, 3), fmt(m.minimum, unit, 4),
+                     fmt(m.maximum, unit, 4),
                      "—" if m.cpk is None else f"{m.cpk:.2f}"])
     if stats.yield_fraction is not None:
         rows.append(["yield", "", str(stats.count), f"{stats.yield_fraction * 100:.1f} %",
@@ -354,7 +361,7 @@ def _statistics_table(stats: Any) -> list[list[str]]:
     for o in stats.outliers[:40]:
         label, unit = METRIC_LABELS.get(o.metric, (o.metric, ""))
         rows.append([f"outlier {o.serial}", o.condition, "", f"{label} "
-                     f"{format_si(o.value, unit, 4)}", f"z = {o.z:.1f}", "", "", ""])
+                     f"{fmt(o.value, unit, 4)}", f"z = {o.z:.1f}", "", "", ""])
     return rows
 
 
@@ -366,13 +373,12 @@ def shot_waveform(raw_shot: Any, options: dict[str, Any]) -> tuple[Any, Any, Any
     channels, probes = raw_shot.channels, raw_shot.probes
 
     def physical(name: str) -> tuple[np.ndarray, np.ndarray]:
-        ch = channels[name]
-        probe = probes.get(name)
-        volts = np.asarray(ch.codes, dtype=float) * ch.gain + ch.offset
-        scale = probe.scale if probe else 1.0
-        deskew = probe.deskew_s if probe else 0.0
-        t = raw_shot.t_start + np.arange(volts.size) * raw_shot.dt - deskew
-        return t, volts * scale
+        from benchrun.analysis.pipeline import ProbeCalibration, physical_channel
+
+        probe = probes.get(name) or ProbeCalibration(scale=1.0)
+        values, _ = physical_channel(name, raw_shot.dt, channels[name], probe)
+        t = raw_shot.t_start + np.arange(values.size) * raw_shot.dt
+        return t, values
 
     t_i, i = physical("diode_current")
     t_v, v = physical("diode_voltage")
@@ -382,7 +388,8 @@ def shot_waveform(raw_shot: Any, options: dict[str, Any]) -> tuple[Any, Any, Any
         metrics = analyze_raw_shot(raw_shot, options)
         marks = WaveformMarks(metrics.get("t0_s"), metrics.get("t_irrm_s"),
                               metrics.get("irrm_A"), metrics.get("t_trr_s"),
-                              metrics.get("t2_s"), metrics.get("if_A"), metrics.get("vrm_V"))
+                              metrics.get("t2_s"), metrics.get("if_A"), metrics.get("vrm_V"),
+                              float((options or {}).get("fit_high", 0.9)))
     return t_i, v, i, marks
 
 

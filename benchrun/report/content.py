@@ -56,7 +56,8 @@ METRIC_DEFINITIONS: dict[str, str] = {
              "after the minimum|"),
     "qrr_C": "−∫ i dt from t0 to t2; t2 where i rises through −{end}·Irrm",
     "err_J": "∫ v·i dt from t0 to t2 (energy dissipated in the diode)",
-    "didt_A_per_s": "(0.5·IF + 0.5·Irrm) / (tb − ta) between the +0.5·IF and −0.5·Irrm crossings",
+    "didt_A_per_s": ("commutation slope (0.5·IF + 0.5·Irrm) / Δt, Δt between the instants the "
+                     "current falls through +0.5·IF and through −0.5·Irrm"),
     "vrm_V": "max(−v) from t0 to t2 + trr (peak reverse voltage incl. overshoot)",
     "vr_V": "steady reverse voltage after the event",
 }
@@ -131,6 +132,42 @@ class ReportContent:
     lot_grade: dict[str, Any] = field(default_factory=dict)
     analysis_options: dict[str, Any] = field(default_factory=dict)
     limits_file: str = "limits.yaml"
+
+
+_PREFIX = {"T": 1e12, "G": 1e9, "M": 1e6, "k": 1e3, "": 1.0, "m": 1e-3, "µ": 1e-6,
+           "n": 1e-9, "p": 1e-12, "f": 1e-15}
+
+
+def fmt(value: float | None, unit: str, digits: int = 4) -> str:
+    """Display a SI value: engineering prefix, di/dt in A/µs, dimensionless plain."""
+    import math
+
+    from benchrun.units import format_si
+
+    if value is None or not math.isfinite(value):
+        return "—"
+    if unit == "A/s":
+        return f"{value / 1e6:.{digits}g} A/µs"
+    if unit == "":
+        return f"{value:.{digits}g}"
+    return format_si(value, unit, digits)
+
+
+def value_with_u(value: float, expanded_u: float | None, unit: str, digits: int = 3) -> str:
+    """``value ± U`` with one shared prefix, e.g. ``102 ns ± 0.82 ns``."""
+    import math
+
+    text = fmt(value, unit, digits)
+    if expanded_u is None or not math.isfinite(expanded_u):
+        return text
+    if unit == "":
+        return f"{text} ± {expanded_u:.2g}"
+    if unit == "A/s":
+        return f"{value / 1e6:.{digits}g} ± {expanded_u / 1e6:.2g} A/µs"
+    number, _, shown = text.partition(" ")
+    prefix = shown[: len(shown) - len(unit)] if shown.endswith(unit) else ""
+    scale = _PREFIX.get(prefix, 1.0)
+    return f"{number} ± {expanded_u / scale:.2g} {shown}"
 
 
 def new_report_id(run_id: str, when: _dt.datetime) -> str:

@@ -33,6 +33,7 @@ class WaveformMarks:
     t2_s: float | None
     if_A: float | None = None
     vrm_V: float | None = None
+    fit_high: float = 0.9
 
 
 def _decimate(t: np.ndarray, *ys: np.ndarray) -> tuple[np.ndarray, ...]:
@@ -52,6 +53,21 @@ def _decimate(t: np.ndarray, *ys: np.ndarray) -> tuple[np.ndarray, ...]:
         pair[:, 1] = np.where(lo_first, blocks.max(axis=1), blocks.min(axis=1))
         outs.append(pair.ravel())
     return (t_out, *outs)
+
+
+def _rise_through(t: np.ndarray, i: np.ndarray, after: float, level: float) -> float | None:
+    """First instant after ``after`` at which ``i`` rises through ``level`` (interpolated)."""
+    idx = np.nonzero(t >= after)[0]
+    if idx.size < 2:
+        return None
+    seg = i[idx]
+    above = np.nonzero(seg >= level)[0]
+    if above.size == 0 or above[0] == 0:
+        return None
+    k = idx[above[0]]
+    i0, i1 = i[k - 1], i[k]
+    frac = 0.0 if i1 == i0 else (level - i0) / (i1 - i0)
+    return float(t[k - 1] + frac * (t[k] - t[k - 1]))
 
 
 def recovery_window(marks: WaveformMarks, t: np.ndarray) -> tuple[float, float]:
@@ -129,9 +145,11 @@ def waveform_figure(
         ax_i.plot([x], [-marks.irrm_A], marker="v", color=PLOT_LIMIT, ms=5, ls="none")
         ax_i.annotate(f"Irrm = {marks.irrm_A:.3g} A", (x, -marks.irrm_A), xytext=(6, -2),
                       textcoords="offset points", fontsize=7.5, color=PLOT_LIMIT)
-        # the trr extrapolation line: from the Irrm point to the zero crossing at trr
-        if marks.t_trr_s is not None:
-            ax_i.plot([x, rel(marks.t_trr_s)], [-marks.irrm_A, 0.0], color=PLOT_MARK, lw=0.6,
+        # the trr extrapolation line: from the fit_high·Irrm point to the zero crossing at trr
+        level = -marks.fit_high * marks.irrm_A
+        t_hi = _rise_through(t, i, marks.t_irrm_s, level)
+        if marks.t_trr_s is not None and t_hi is not None:
+            ax_i.plot([rel(t_hi), rel(marks.t_trr_s)], [level, 0.0], color=PLOT_MARK, lw=0.7,
                       ls="--")
     if marks.vrm_V is not None:
         ax_v.axhline(-marks.vrm_V, color=PLOT_LIMIT, lw=0.6, ls=":")
@@ -271,8 +289,3 @@ def temperature_log_figure(
     ax.grid(True, lw=0.3, color="#dddddd")
     ax.legend(fontsize=6.5, frameon=False, ncols=2)
     return fig
-
-
-def voltage_current_colours() -> tuple[str, str]:
-    """Colours used for current and voltage traces (for captions)."""
-    return PLOT_CURRENT, PLOT_VOLTAGE

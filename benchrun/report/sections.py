@@ -23,7 +23,7 @@ from reportlab.platypus import (
     TableStyle,
 )
 
-from benchrun.report.content import METRIC_LABELS, DeviceLine, ReportContent
+from benchrun.report.content import METRIC_LABELS, DeviceLine, ReportContent, value_with_u
 from benchrun.report.styles import (
     FONT_BOLD,
     FONT_REGULAR,
@@ -34,7 +34,6 @@ from benchrun.report.styles import (
     ZEBRA_BG,
     paragraph_styles,
 )
-from benchrun.units import format_si
 
 #: Short words for grades inside the dense device table (full words in the legend).
 GRADE_SHORT = {
@@ -136,9 +135,7 @@ def _cell_text(cell: Any, unit: str) -> str:
     if cell is None or cell.value is None:
         text = "—"
     else:
-        text = format_si(cell.value, unit, 3)
-        if cell.expanded_u is not None:
-            text += f" ± {format_si(cell.expanded_u, unit, 2)}"
+        text = value_with_u(cell.value, cell.expanded_u, unit)
     if cell is not None and cell.grade and cell.grade != "conforming":
         text += f" {GRADE_SHORT.get(cell.grade, cell.grade)}"
     return text
@@ -178,7 +175,7 @@ def device_table(content: ReportContent, width: float) -> Flowable:
                          ("FONT", (v, r), (v, r), FONT_BOLD, 6.8)]
     n_metric = len(keys)
     fixed = [22 * mm, 16 * mm]
-    tail = [9 * mm, 21 * mm]
+    tail = [9 * mm, 27 * mm]
     rest = max(width - sum(fixed) - sum(tail), 20 * mm)
     widths = fixed + [rest / max(n_metric, 1)] * n_metric + tail
     table = LongTable(rows, colWidths=widths, repeatRows=1, hAlign="LEFT")

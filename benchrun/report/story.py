@@ -93,7 +93,10 @@ def _cover(content: ReportContent, signature_slot: Flowable, width: float) -> li
                  str(counts.get("invalid", 0))]]
         story.append(sec.simple_table(rows, [width / 5] * 5))
     story += [
-        sec.spacer(6),
+        sec.spacer(4),
+        sec.P("⚠ High voltage and stored energy can kill. Read the safety cautions at the end "
+              "of this report; local codes and licensed practice take precedence.", "caution"),
+        sec.spacer(4),
         sec.P("Approval", "h3"),
         sec.P("The signature below is a PAdES digital signature over this whole file, including "
             "the embedded data file 'benchrun-report.json' that holds every number shown here. "
@@ -125,7 +128,8 @@ def build_story(
     story.append(sec.P("Measured values are the mean and range over the valid shots of each "
                      "condition; the tolerance is the one the shots were checked against.",
                      "small"))
-    story.append(sec.simple_table(content.conditions_table))
+    story.append(sec.simple_table(content.conditions_table,
+                                  [18 * mm, 32 * mm, 24 * mm, 58 * mm, 20 * mm, w - 152 * mm]))
 
     story += sec.section("2  Bench, fixture and software")
     story.append(sec.P("Instruments (identity as reported by the instrument, IEEE 488.2 *IDN?)",
@@ -140,7 +144,8 @@ def build_story(
     for line in content.decision_rule:
         story.append(sec.P(line, "small"))
     story.append(sec.P("Uncertainty budget (GUM, JCGM 100:2008)", "h3"))
-    story.append(sec.simple_table(content.budget_table))
+    story.append(sec.simple_table(content.budget_table,
+                                  [24 * mm, 56 * mm, 46 * mm, 24 * mm, w - 150 * mm]))
 
     story += wide()
     story += sec.section("4  Results per device")
@@ -157,31 +162,39 @@ def build_story(
     story += sec.section("5  Devices that are not conforming")
     story += sec.non_conforming_list(content.devices)
     story += sec.section("6  Lot statistics")
-    story.append(sec.simple_table(content.statistics_table))
+    story.append(sec.simple_table(content.statistics_table,
+                                  [34 * mm, 16 * mm, 10 * mm, 26 * mm, 22 * mm, 24 * mm, 24 * mm,
+                                   w - 156 * mm]))
 
     figures = [distribution_figure(d["label"], d["unit"], d["groups"], d["limits"],
                                    width_pt=w / 2 - 4, height_pt=150)
                for d in content.distributions]
     if figures:
-        story += sec.section("7  Distributions against the limits")
-        story.append(sec.P("Dashed red lines: the limits at each condition.", "small"))
-        story += _pair_figures(figures, w)
+        rows = _pair_figures(figures, w)
+        story += sec.section("7  Distributions against the limits")[:1]
+        story.append(sec.keep(sec.P("7  Distributions against the limits", "h2"),
+                              sec.P("Dashed red lines: the limits at each condition.", "small"),
+                              rows[0]))
+        story += rows[1:]
     trend_figs = [trend_figure(d["label"], d["unit"], d["per_device"], width_pt=w / 2 - 4,
                                height_pt=150) for d in content.trends]
     if trend_figs or content.temperature_log:
-        story += sec.section("8  Temperature trends")
-        story += _pair_figures(trend_figs, w)
+        rows = _pair_figures(trend_figs, w)
+        story += sec.section("8  Temperature trends")[:1]
+        story.append(sec.keep(sec.P("8  Temperature trends", "h2"), *rows[:1]))
+        story += rows[1:]
         if content.temperature_log:
             story.append(FigureFlowable(temperature_log_figure(content.temperature_log,
                                                                width_pt=w, height_pt=140)))
     if waveform_flowables:
-        story += sec.section("9  Recovery waveforms")
-        story.append(sec.P(
+        story += sec.section("9  Recovery waveforms")[:1]
+        story.append(sec.keep(sec.P("9  Recovery waveforms", "h2"), sec.P(
             "Current and voltage through the recovery as re-read from the raw record. Marked: "
             "t0 (current zero crossing), Irrm (reverse peak), trr (zero crossing of the "
-            "extrapolation line), t2 (end of the Qrr/Err integration). One representative "
-            "device and every device that is not conforming.", "small"))
-        story += waveform_flowables
+            "extrapolation line through the fit points, drawn dashed), t2 (end of the Qrr/Err "
+            "integration). One representative device and every device that is not "
+            "conforming.", "small"), waveform_flowables[0]))
+        story += waveform_flowables[1:]
     if loss_flowables:
         story += sec.section("10  Recovery loss estimate")
         story += loss_flowables
