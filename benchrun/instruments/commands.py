@@ -101,6 +101,7 @@ RETURN_TYPES = ("float", "int", "bool", "str", "csv", "error", "block")
 _PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
 _MNEMONIC = re.compile(r"[A-Za-z]+")
 _VALUE_PATTERN = r"[^,;\s]+"
+_SUFFIX_PATTERN = r"\d+"
 
 
 # --- arithmetic expressions ------------------------------------------------------------------
@@ -394,7 +395,11 @@ def _build_matchers(specs: Any) -> tuple[tuple[re.Pattern[str], CommandSpec], ..
         pos = 0
         for m in _PLACEHOLDER.finditer(spec.send):
             pattern.append(_literal_pattern(spec.send[pos : m.start()]))
-            pattern.append(f"(?P<{m.group(1)}>{_VALUE_PATTERN})")
+            before = spec.send[: m.start()]
+            # a placeholder in the header or glued to a mnemonic is a numeric suffix (CHANnel{n})
+            suffix = " " not in before or (before[-1:].isalpha())
+            value = _SUFFIX_PATTERN if suffix else _VALUE_PATTERN
+            pattern.append(f"(?P<{m.group(1)}>{value})")
             pos = m.end()
         pattern.append(_literal_pattern(spec.send[pos:]))
         body = "".join(pattern)

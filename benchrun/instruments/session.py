@@ -14,7 +14,9 @@
   :class:`~benchrun.errors.InstrumentTimeout`, :class:`~benchrun.errors.ConnectionLost`,
   :class:`~benchrun.errors.ProtocolError`,
 * makes one reconnect attempt when the connection dropped, and repeats the interrupted
-  operation once if the caller marked it repeatable (``retry=True``; a ``fire`` is not),
+  operation once if the caller marked it repeatable (``retry=True``; a ``fire`` is not);
+  repeatable writes sent since the last answered query are repeated too (a dropped
+  connection may have swallowed them),
 * reopens the connection before the next operation after a timeout or a malformed block, so
   a late answer can never be taken for the answer to the next query.
 
@@ -44,6 +46,9 @@ DEFAULT_VISA_LIBRARY = "@py"
 #: Block payloads are read in pieces of this size (cache-resident copies are ~3x faster than
 #: copies of a whole 10 MB trace; measured by benchmarks/transfer.py).
 BLOCK_CHUNK = 1 << 18
+
+#: Writes remembered for repetition after a dropped connection (see ``_recover``).
+MAX_UNCONFIRMED = 256
 
 #: recv size set on pyvisa-py socket sessions (pyvisa-py's default is 4096 bytes per recv)
 FAST_RECV_SIZE = BLOCK_CHUNK
@@ -105,6 +110,9 @@ class InstrumentSession:
         self._open_timeout_s = float(open_timeout_s)
         self._inst: pyvisa.resources.MessageBasedResource | None = None
         self._stale = False
+        self._unconfirmed: list[tuple[str, bool]] = []
+        #: non-repeatable writes that were in flight when a connection dropped
+        self.unconfirmed_lost: list[str] = []
         self.reconnects = 0
         self.open()
 
@@ -164,7 +172,7 @@ class InstrumentSession:
 
     def write(self, command: str, *, retry: bool = True) -> None:
         """Send one command (``"\\n"`` appended)."""
-        self._run(command, lambda inst: inst.write(command), retry)
+        self._run(command, lambda inst: inst.write(command), retry, is_write=True)
 
     def query(self, command: str, *, retry: bool = True) -> str:
         """Send a query and return the text answer without its terminator."""
@@ -226,24 +234,57 @@ class InstrumentSession:
         return buffer
 
     def _run(self, what: str, op: Callable[[pyvisa.resources.MessageBasedResource], T],
-             retry: bool) -> T:
-        if self._inst is None or self._stale or self._peer_closed():
+             retry: bool, *, is_write: bool = False) -> T:
+        if self._inst is None or self._stale:
             self._reopen(what)
+            self._unconfirmed.clear()
+        elif self._peer_closed():
+            self._recover(what, None)
         try:
-            return self._attempt(what, op)
+            result = self._attempt(what, op)
         except _Dropped as dropped:
-            self._reopen(what, dropped.__cause__)
+            self._recover(what, dropped.__cause__)
             if not retry:
                 raise ConnectionLost(
                     f"{self.resource}: connection dropped during {what!r}; reconnected, "
                     "the command was not repeated") from dropped.__cause__
-        try:
-            return self._attempt(what, op)
-        except _Dropped as dropped:
-            self._stale = True
-            raise ConnectionLost(
-                f"{self.resource}: connection dropped again during {what!r} after one "
-                "reconnect") from dropped.__cause__
+            try:
+                result = self._attempt(what, op)
+            except _Dropped as again:
+                self._stale = True
+                raise ConnectionLost(
+                    f"{self.resource}: connection dropped again during {what!r} after one "
+                    "reconnect") from again.__cause__
+        if is_write:
+            self._unconfirmed.append((what, retry))
+            del self._unconfirmed[:-MAX_UNCONFIRMED]
+        else:
+            # an answer on the same stream proves the earlier writes arrived
+            self._unconfirmed.clear()
+        return result
+
+    def _recover(self, what: str, cause: BaseException | None) -> None:
+        """Reconnect once after a drop and re-send writes the old connection may have lost.
+
+        Writes are only known to have arrived once a later query on the same connection was
+        answered. Unconfirmed repeatable writes (settings) are sent again on the new
+        connection; non-repeatable ones (a ``fire``) are not, and are listed in
+        :attr:`unconfirmed_lost` (a shot that did not happen shows up as a missing trigger;
+        the operation that found the drop, for example switching an output off, must still
+        go through).
+        """
+        pending, self._unconfirmed = self._unconfirmed, []
+        self._reopen(what, cause)
+        self.unconfirmed_lost.extend(cmd for cmd, repeatable in pending if not repeatable)
+        for command in [p for p in pending if p[1]]:
+            try:
+                self._attempt(command[0], lambda inst, c=command[0]: inst.write(c))
+            except _Dropped as again:
+                self._stale = True
+                raise ConnectionLost(
+                    f"{self.resource}: connection dropped again while repeating "
+                    f"{command[0]!r} after one reconnect") from again.__cause__
+            self._unconfirmed.append(command)
 
     def _attempt(self, what: str, op: Callable[[pyvisa.resources.MessageBasedResource], T]
                  ) -> T:
