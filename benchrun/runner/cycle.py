@@ -1,0 +1,325 @@
+"""The shot cycle: settle a temperature, trim the first pulse, fire, store, verify, retry.
+
+Every shot goes to the raw record (flushed and fsync-ed) and then to the results DB (its own
+committed transaction) before the next shot is fired, so a crash loses at most the shot in
+flight. An instrument fault during a shot is retried once with every setting sent again; a
+second fault ends the run (the caller brings the bench to the safe state). An *invalid* shot
+(measured conditions out of tolerance, no event, clipped diode channel) is stored and fired
+again up to ``retry_invalid`` times, with the first pulse corrected from the measured current
+or the scope ranges widened after clipping.
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from benchrun.errors import CalibrationOverdue, InstrumentError, RunError
+from benchrun.records import ShotResult, TestPoint
+from benchrun.runner.plan import (
+    PlannedShot,
+    PulsePlan,
+    SignalRange,
+    corrected_first_pulse,
+    droop,
+    effective_inductance,
+    first_pulse_width,
+    plan_pulses,
+    plan_ranges,
+)
+from benchrun.runner.progress import RunProgress
+from benchrun.runner.safety import check_shot
+from benchrun.runner.shots import ShotContext, build_result, probes_for, shot_key
+from benchrun.store.results import utc_now
+
+if TYPE_CHECKING:
+    from benchrun.runner.execute import PreparedRun, RunOptions, RunOutcome
+    from benchrun.runner.station import Capture, Station
+    from benchrun.store.raw import RawRecord
+    from benchrun.store.results import ResultsStore
+
+log = logging.getLogger("benchrun.runner")
+
+#: Range widening applied to a clipped diode channel before the retry.
+WIDEN_FACTOR = 2.0
+#: Headroom over the largest reverse-recovery current measured so far at a point.
+IRRM_HEADROOM = 1.3
+
+
+class ShotCycle:
+    """Runs the shots of one run on a connected station."""
+
+    def __init__(self, prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
+                 station: Station, store: ResultsStore, raw: RawRecord) -> None:
+        self.sequence = prep.sequence
+        self.bench = prep.bench
+        self.options = options
+        self.outcome = outcome
+        self.station = station
+        self.store = store
+        self.raw = raw
+        self.probes = probes_for(prep.bench)
+        names = ["diode_voltage", "diode_current"]
+        if self.sequence.switch_voltage and "switch_voltage" in self.bench.probes:
+            names.append("switch_voltage")
+        if "gate" in self.bench.probes:
+            names.append("gate")
+        self.channel_names = names
+        self.first_pulse: dict[int, float] = {}
+        self.widen: dict[tuple[int, str], float] = {}
+        self.irrm_seen: dict[int, float] = {}
+        self.inductance: float | None = None
+        self.progress = RunProgress(0, enabled=False)
+        self.max_attempts = 1 + self.sequence.retry_invalid
+
+    # --- resume ----------------------------------------------------------------------------
+
+    def completed(self) -> set[tuple[int, str, int]]:
+        """Identities ``(point index, serial, repeat)`` that need no further shot."""
+        keys = self.store.tested_keys(self.outcome.run_id, max_attempts=self.max_attempts)
+        return {(index, serial, repeat) for serial, index, repeat in keys}
+
+    def recover_orphans(self) -> int:
+        """Store shots that reached the raw record but not the DB before a crash."""
+        stored = {(s.serial, s.point.index, s.repeat, s.attempt)
+                  for s in self.store.shots(self.outcome.run_id)}
+        recovered = 0
+        for key in list(self.raw):
+            shot = self.raw.read_shot(key)
+            context = ShotContext.from_attrs(shot.attrs)
+            identity = (context.serial, context.point.index, context.repeat, context.attempt)
+            if context.run_id != self.outcome.run_id or identity in stored:
+                continue
+            result = build_result(context, shot.t_start, shot.dt, shot.channels, shot.probes,
+                                  self.sequence, shot.raw_ref)
+            self.store.add_shot(result)
+            recovered += 1
+            log.info("resume: shot %s was in the raw record only; analysed and stored", key)
+        self.outcome.shots_recovered += recovered
+        return recovered
+
+    # --- temperature step -------------------------------------------------------------------
+
+    def run_temperature(self, kelvin: float, shots: list[PlannedShot]) -> None:
+        """Settle at ``kelvin`` (stable, then soak), then fire ``shots`` in order."""
+        thermal = self.sequence.thermal
+        label = f"{kelvin - 273.15:g} °C"
+        self.progress.status(f"settling at {label}")
+        log.info("setting %s", label)
+
+        def show(reading: float) -> None:
+            self.progress.status(f"settling at {label}: {reading - 273.15:6.2f} °C")
+
+        self.station.settle(kelvin, band=thermal.band, dwell=thermal.dwell, soak=thermal.soak,
+                            timeout=thermal.timeout, poll=thermal.poll_interval,
+                            on_reading=show)
+        for planned in shots:
+            self.run_shot(planned)
+
+    # --- one test (shot with its retries) ----------------------------------------------------
+
+    def run_shot(self, planned: PlannedShot) -> ShotResult | None:
+        point = planned.point
+        spacing = self._spec(point).shot_spacing
+        self.progress.shooting(planned.serial, point.temperature_K,
+                               f"{point.label} #{planned.repeat + 1}")
+        self.station.select(planned.serial)
+        self._trim(point)
+        attempt = self.store.next_attempt(self.outcome.run_id, planned.serial, point.index,
+                                          planned.repeat)
+        result = None
+        while attempt < self.max_attempts:
+            result = self._fire_and_store(planned, attempt)
+            if result.valid:
+                break
+            log.warning("%s %s repeat %d attempt %d invalid: %s", planned.serial, point.label,
+                        planned.repeat, attempt, "; ".join(result.flags))
+            self._adjust_after(point, result)
+            attempt += 1
+        self.progress.advance()
+        if spacing > 0:
+            self.station.clock.sleep(spacing)
+        return result
+
+    def _spec(self, point: TestPoint) -> Any:
+        from benchrun.runner.plan import expand_with_specs
+
+        if not hasattr(self, "_specs"):
+            self._specs = {p.index: s for p, s in expand_with_specs(self.sequence)}
+        return self._specs[point.index]
+
+    def _plan(self, point: TestPoint) -> PulsePlan:
+        plan = plan_pulses(point, self.sequence, self.bench.fixture, self.inductance)
+        t1 = self.first_pulse.get(point.index)
+        return plan if t1 is None else plan.with_first_pulse(t1)
+
+    def _ranges(self, point: TestPoint, scale_V: float = 1.0) -> dict[str, SignalRange]:
+        """Scope windows: planned from expectations, the current window's negative side
+        raised to the largest Irrm seen at this point (with headroom), and any channel that
+        clipped widened."""
+        ranges = plan_ranges(point, self.sequence, self.bench)
+        seen = self.irrm_seen.get(point.index)
+        if seen is not None:
+            r = ranges["diode_current"]
+            ranges["diode_current"] = SignalRange(r.signal, min(r.low, -IRRM_HEADROOM * seen),
+                                                  r.high)
+        out = {}
+        for name in self.channel_names:
+            r = ranges[name]
+            k = self.widen.get((point.index, name), 1.0)
+            if name != "diode_current":
+                k *= scale_V
+            out[name] = SignalRange(name, r.low * k, r.high * k)
+        return out
+
+    def _learn(self, point: TestPoint, result: ShotResult) -> None:
+        irrm = result.metrics.get("irrm_A")
+        if irrm is not None and irrm > 0:
+            self.irrm_seen[point.index] = max(self.irrm_seen.get(point.index, 0.0), irrm)
+
+    def _adjust_after(self, point: TestPoint, result: ShotResult) -> None:
+        for name in ("diode_current", "diode_voltage"):
+            if f"clipped_{name}" in result.flags:
+                key = (point.index, name)
+                self.widen[key] = self.widen.get(key, 1.0) * WIDEN_FACTOR
+                log.info("%s clipped: widening its range at %s by %g", name, point.label,
+                         WIDEN_FACTOR)
+        measured = result.conditions.get("if_A")
+        if measured:
+            self._correct(point, float(measured))
+
+    def _correct(self, point: TestPoint, measured_A: float) -> None:
+        plan = self._plan(point)
+        t1, L_eff = corrected_first_pulse(plan, point, measured_A, point.bus_voltage_V,
+                                          self.bench.fixture)
+        self.first_pulse[point.index] = t1
+        self.inductance = L_eff
+
+    # --- trim ----------------------------------------------------------------------------
+
+    def _trim(self, point: TestPoint) -> None:
+        """Correct t1 with single-pulse (or low-voltage) shots until IF is within tolerance."""
+        if point.index in self.first_pulse:
+            return
+        trim = self.sequence.trim
+        plan = self._plan(point)
+        if trim.mode == "off":
+            self.first_pulse[point.index] = plan.first_pulse_s
+            return
+        fx = self.bench.fixture
+        volts = point.bus_voltage_V if trim.mode == "single_pulse" else float(trim.bus_voltage)
+        target = point.forward_current_A
+        for shot in range(trim.max_shots):
+            check_shot(plan, point, self.bench)
+            self.progress.status(f"trim {point.label}: shot {shot + 1}")
+            measured = self._trim_shot(point, plan, volts)
+            loss = droop(target, plan.off_time_s, fx)
+            L_eff = effective_inductance(plan.first_pulse_s, measured + loss, volts,
+                                         fx.load_resistance, fx.switch_on_voltage)
+            t1 = first_pulse_width(target + loss, point.bus_voltage_V, L_eff,
+                                   fx.load_resistance, fx.switch_on_voltage)
+            if trim.mode == "single_pulse":
+                deviation = measured / target - 1.0
+            else:
+                deviation = t1 / plan.first_pulse_s - 1.0
+            log.info("trim %s shot %d at %g V: t1 %.4g us gave %.4g A (%+.2f %%); next t1 "
+                     "%.4g us", point.label, shot + 1, volts, plan.first_pulse_s * 1e6,
+                     measured, deviation * 100, t1 * 1e6)
+            self.inductance = L_eff
+            plan = plan.with_first_pulse(t1)
+            if abs(deviation) <= trim.tolerance:
+                check_shot(plan, point, self.bench)
+                self.first_pulse[point.index] = t1
+                return
+        raise RunError(f"trim of {point.label} did not reach {target:g} A within "
+                       f"{trim.tolerance * 100:g} % in {trim.max_shots} shots; check the load "
+                       "inductor and the current sensor")
+
+    def _trim_shot(self, point: TestPoint, plan: PulsePlan, volts: float) -> float:
+        """Fire the first pulse alone; return the freewheeling current at the commutation
+        instant (median of the diode current over the second half of the off time)."""
+        scale = volts / point.bus_voltage_V
+        ranges = self._ranges(point, scale)
+        current = ranges["diode_current"]
+        ranges["diode_current"] = SignalRange("diode_current", current.low * scale,
+                                              current.high * scale)
+
+        def shoot() -> Capture:
+            self.station.configure_pulse(plan, point.gate_resistance_ohm, single=True)
+            self.station.energise(volts)
+            self.station.configure_scope(plan, ranges, volts)
+            return self.station.fire(["diode_current"], self.options.trigger_timeout_s)
+
+        capture = self._with_retry(shoot, "trim shot")
+        self.outcome.trim_shots += 1
+        trace = capture.traces["diode_current"]
+        amps = trace.volts() * self.probes["diode_current"].scale
+        t = trace.t_start + trace.dt * np.arange(amps.size)
+        t_on = plan.first_pulse_s
+        window = (t >= t_on + 0.5 * plan.off_time_s) & (t <= t_on + 0.95 * plan.off_time_s)
+        if window.sum() < 3:
+            raise RunError("trim shot: the record does not cover the off time")
+        return float(np.median(amps[window]))
+
+    # --- fire, store ---------------------------------------------------------------------------
+
+    def _with_retry(self, action: Any, what: str) -> Any:
+        try:
+            return action()
+        except CalibrationOverdue:
+            raise
+        except InstrumentError as exc:
+            log.warning("instrument fault during %s: %s; sending every setting again and "
+                        "retrying once", what, exc)
+            self.station.forget_settings()
+        return action()
+
+    def _fire_and_store(self, planned: PlannedShot, attempt: int) -> ShotResult:
+        point = planned.point
+        plan = self._plan(point)
+        check_shot(plan, point, self.bench)
+        ranges = self._ranges(point)
+        measured: dict[str, Any] = {}
+
+        def shoot() -> Capture:
+            self.station.configure_pulse(plan, point.gate_resistance_ohm)
+            measured["bus_V"] = self.station.energise(point.bus_voltage_V)
+            self.station.configure_scope(plan, ranges, point.bus_voltage_V)
+            measured["temperature_K"] = self.station.temperature()
+            measured["timestamp"] = utc_now()
+            return self.station.fire(self.channel_names, self.options.trigger_timeout_s)
+
+        capture = self._with_retry(shoot, f"shot {planned.serial} {point.label}")
+        context = ShotContext(
+            run_id=self.outcome.run_id, part=self.sequence.part, lot=self.sequence.lot,
+            serial=planned.serial, point=point, repeat=planned.repeat, attempt=attempt,
+            timestamp=measured["timestamp"], temperature_K=measured["temperature_K"],
+            bus_voltage_V=measured["bus_V"],
+        )  # fmt: skip
+        channels = {name: trace.to_channel_data() for name, trace in capture.traces.items()}
+        probes = {name: self.probes[name] for name in channels}
+        settings = {
+            "first_pulse_s": plan.first_pulse_s, "off_time_s": plan.off_time_s,
+            "second_pulse_s": plan.second_pulse_s, "record_start_s": plan.record_start_s,
+            "sample_interval_s": plan.sample_interval_s, "record_length": plan.points,
+            "gate_resistance_ohm": point.gate_resistance_ohm,
+            "ranges": {name: [r.low, r.high] for name, r in ranges.items()},
+        }  # fmt: skip
+        key = shot_key(point.index, planned.serial, planned.repeat, attempt)
+        ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
+                                   context.attrs(settings))
+        result = build_result(context, capture.t_start, capture.dt, channels, probes,
+                              self.sequence, ref)
+        self.store.add_shot(result)
+        self._learn(point, result)
+        self.outcome.shots_stored += 1
+        self.outcome.shots_valid += int(result.valid)
+        if result.valid and result.conditions.get("if_A"):
+            deviation = result.conditions["if_A"] / point.forward_current_A - 1.0
+            if abs(deviation) > 0.5 * self.sequence.tolerances.forward_current:
+                self._correct(point, float(result.conditions["if_A"]))
+        if self.options.on_stored is not None:
+            self.options.on_stored(result)
+        return result

@@ -1,0 +1,415 @@
+"""The unattended run: configuration → pre-flight → temperatures → devices → shots → store.
+
+:func:`run_sequence` is the whole run. Order of work:
+
+1. load the sequence, bench and limits files (errors at file:line; nothing is energised);
+2. calibration dates (warning when due soon, :class:`~benchrun.errors.CalibrationOverdue`
+   when overdue unless overridden — the override is written to the manifest);
+3. pre-flight safety on every planned point (:func:`benchrun.runner.safety.preflight`);
+4. run folder and manifest (or, with ``resume``, the unfinished run folder), results DB;
+5. instruments: identities, device list; then per temperature: settle and soak; per device
+   and point: trim shots, then the repeats, each stored in the raw record *and* the results DB
+   before the next shot; an invalid shot is fired once more;
+6. always: the safe state (pulse off, supply off, bus below 60 V), the manifest's status.
+
+Resume after a crash (even ``kill -9``): every test complete in the DB is skipped; a shot
+found in the raw record but missing from the DB (crash between the two writes) is analysed
+from the raw record and stored, not fired again.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import logging
+import shutil
+import signal
+import threading
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from benchrun import __version__
+from benchrun.config.bench import BenchConfig, load_bench
+from benchrun.config.sequence import PartRatings, SequenceConfig, limits_path, load_sequence
+from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError
+from benchrun.records import ShotResult
+from benchrun.runner.cycle import ShotCycle
+from benchrun.runner.plan import expand_points, plan_run
+from benchrun.runner.progress import RunProgress, close_run_log, open_run_log
+from benchrun.runner.safety import (
+    CalibrationCheck,
+    Clock,
+    SafeStateReport,
+    WallClock,
+    check_calibration,
+    preflight,
+)
+from benchrun.runner.station import Station, resolve_resources
+from benchrun.store.raw import RawRecord
+from benchrun.store.results import ResultsStore, utc_now
+from benchrun.store.rundata import (
+    BENCH_FILE,
+    LIMITS_FILE,
+    LOG_FILE,
+    RAW_FILE,
+    SEQUENCE_FILE,
+    default_store_url,
+    hash_run_files,
+    read_manifest,
+    store_url_for,
+    write_manifest,
+)
+
+log = logging.getLogger("benchrun.runner")
+
+
+@dataclass
+class RunOptions:
+    """How to run a sequence.
+
+    Attributes
+    ----------
+    out_dir
+        Parent folder of run folders.
+    resume
+        False: a new run. True: the newest unfinished run of the same part and lot in
+        ``out_dir``. A path: that run folder.
+    db_url
+        Results database URL (default: ``results.db`` in the run folder).
+    allow_overdue_calibration
+        Run with overdue instruments (recorded in the manifest).
+    sim_resources
+        Role → resource of a running simulated bench, for ``sim`` bench entries.
+    ratings_lookup
+        Part number → ratings, when the sequence gives none (the simulator's catalogue).
+    clock
+        Time source for every wait.
+    today
+        Date for the calibration check (default: today, UTC).
+    show_progress
+        Live display on standard error.
+    trigger_timeout_s
+        Wall-clock time allowed between firing and the scope's trigger.
+    on_stored
+        Called after each shot is durably stored (for progress hooks and tests).
+    """
+
+    out_dir: Path
+    resume: bool | Path = False
+    db_url: str | None = None
+    allow_overdue_calibration: bool = False
+    sim_resources: dict[str, str] | None = None
+    ratings_lookup: Callable[[str], PartRatings | None] | None = None
+    clock: Clock = field(default_factory=WallClock)
+    today: _dt.date | None = None
+    show_progress: bool = True
+    trigger_timeout_s: float = 5.0
+    on_stored: Callable[[ShotResult], None] | None = None
+
+
+@dataclass
+class RunOutcome:
+    """What a run achieved."""
+
+    run_id: str
+    run_dir: Path
+    store_url: str
+    status: str = "running"
+    shots_stored: int = 0
+    shots_valid: int = 0
+    shots_recovered: int = 0
+    shots_skipped: int = 0
+    trim_shots: int = 0
+    warnings: list[str] = field(default_factory=list)
+    safe_state: SafeStateReport | None = None
+    error: str | None = None
+
+
+@dataclass(frozen=True)
+class PreparedRun:
+    """Everything checked before a run folder exists or anything is energised."""
+
+    sequence_path: Path
+    bench_path: Path
+    limits_file: Path | None
+    sequence: SequenceConfig
+    bench: BenchConfig
+    ratings: PartRatings | None
+    calibration: CalibrationCheck
+
+
+def prepare(sequence_path: str | Path, bench_path: str | Path, options: RunOptions
+            ) -> PreparedRun:
+    """Load and check every file, calibration dates and pre-flight safety. No I/O to
+    instruments; raises ConfigError, CalibrationOverdue or SafetyError."""
+    sequence_path, bench_path = Path(sequence_path), Path(bench_path)
+    sequence = load_sequence(sequence_path)
+    bench = load_bench(bench_path)
+    limits_file = limits_path(sequence, sequence_path)
+    if limits_file is not None:
+        from benchrun.config.limits import load_limits
+
+        if not limits_file.is_file():
+            raise ConfigError(f"limits file {limits_file} not found", file=str(sequence_path),
+                              field="limits")
+        spec = load_limits(limits_file)
+        if getattr(spec, "part", sequence.part) != sequence.part:
+            raise ConfigError(f"limits file is for part {spec.part!r}, the sequence tests "
+                              f"{sequence.part!r}", file=str(sequence_path), field="limits")
+    ratings = sequence.ratings
+    if ratings is None and options.ratings_lookup is not None:
+        ratings = options.ratings_lookup(sequence.part)
+    today = options.today or _dt.datetime.now(_dt.UTC).date()
+    calibration = check_calibration(bench, today,
+                                    allow_overdue=options.allow_overdue_calibration)
+    if sequence.devices != "all" and bench.instruments.handler is None \
+            and len(sequence.devices) != 1:
+        raise SafetyError("without a handler only one device (the one in the fixture) can be "
+                          "tested; list exactly one serial")
+    if sequence.devices == "all" and bench.instruments.handler is None:
+        raise ConfigError("'devices: all' needs a handler in the bench file",
+                          file=str(sequence_path), field="devices")
+    preflight(expand_points(sequence), sequence, bench, ratings)
+    return PreparedRun(sequence_path, bench_path, limits_file, sequence, bench, ratings,
+                       calibration)
+
+
+def _sha256(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def _new_run_id(sequence: SequenceConfig, out_dir: Path) -> str:
+    stamp = _dt.datetime.now(_dt.UTC).strftime("%Y%m%dT%H%M%SZ")
+    base = f"{sequence.lot}-{stamp}"
+    run_id, n = base, 1
+    while (out_dir / run_id).exists():
+        n += 1
+        run_id = f"{base}-{n}"
+    return run_id
+
+
+def find_resumable(out_dir: Path, part: str, lot: str) -> Path:
+    """Newest run folder in ``out_dir`` of this part and lot that did not complete."""
+    candidates = []
+    for manifest_path in out_dir.glob("*/run.json"):
+        try:
+            manifest = read_manifest(manifest_path.parent)
+        except BenchrunError:
+            continue
+        if manifest.get("part") == part and manifest.get("lot") == lot \
+                and manifest.get("status") != "complete":
+            candidates.append((manifest.get("started", ""), manifest_path.parent))
+    if not candidates:
+        raise RunError(f"nothing to resume: no unfinished run of {part} lot {lot} in {out_dir}")
+    return sorted(candidates)[-1][1]
+
+
+def _open_run_folder(prep: PreparedRun, options: RunOptions
+                     ) -> tuple[str, Path, dict[str, Any], bool]:
+    out_dir = Path(options.out_dir)
+    if options.resume:
+        run_dir = (Path(options.resume) if isinstance(options.resume, Path)
+                   else find_resumable(out_dir, prep.sequence.part, prep.sequence.lot))
+        manifest = read_manifest(run_dir)
+        for name, source in ((SEQUENCE_FILE, prep.sequence_path), (BENCH_FILE, prep.bench_path)):
+            kept = run_dir / name
+            if kept.is_file() and _sha256(kept) != _sha256(source):
+                raise RunError(f"cannot resume {run_dir.name}: {source} differs from the "
+                               f"{name} the run started with")
+        if manifest.get("status") == "complete":
+            raise RunError(f"run {run_dir.name} is already complete")
+        return str(manifest["run_id"]), run_dir, manifest, True
+    out_dir.mkdir(parents=True, exist_ok=True)
+    run_id = _new_run_id(prep.sequence, out_dir)
+    run_dir = out_dir / run_id
+    run_dir.mkdir()
+    shutil.copyfile(prep.sequence_path, run_dir / SEQUENCE_FILE)
+    shutil.copyfile(prep.bench_path, run_dir / BENCH_FILE)
+    if prep.limits_file is not None:
+        shutil.copyfile(prep.limits_file, run_dir / LIMITS_FILE)
+    manifest: dict[str, Any] = {
+        "run_id": run_id,
+        "part": prep.sequence.part,
+        "lot": prep.sequence.lot,
+        "status": "running",
+        "started": utc_now(),
+        "finished": None,
+        "software_version": __version__,
+        "sequence_source": str(prep.sequence_path.resolve()),
+        "bench_source": str(prep.bench_path.resolve()),
+        "run_dir": str(run_dir.resolve()),
+        "analysis_options": prep.sequence.analysis.option_values(),
+        "calibration": prep.calibration.to_dict(),
+        "allow_overdue_calibration": bool(options.allow_overdue_calibration),
+        "tolerances": prep.sequence.tolerances.model_dump(),
+        "switching_frequencies_Hz": list(prep.sequence.loss.switching_frequencies),
+        "fixture": prep.bench.fixture.model_dump(),
+        "probes": {k: v.model_dump() for k, v in prep.bench.probes.items()},
+        "bench_name": prep.bench.name,
+        "resumes": [],
+    }
+    if options.db_url:
+        manifest["store_url"] = options.db_url
+    write_manifest(run_dir, manifest)
+    return run_id, run_dir, manifest, False
+
+
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM, handled like Ctrl-C (safe state, then stop)."""
+
+
+def _raise_terminated(signum: int, frame: Any) -> None:
+    raise _Terminated(f"signal {signum}")
+
+
+def run_sequence(sequence_path: str | Path, bench_path: str | Path,
+                 options: RunOptions) -> RunOutcome:
+    """Run (or resume) a sequence on a bench; see the module docstring.
+
+    Raises
+    ------
+    ConfigError, CalibrationOverdue, SafetyError
+        Before anything is energised.
+    RunError, InstrumentError, StoreError
+        During the run, after the safe state was reached (or reported as not reached).
+    KeyboardInterrupt
+        Ctrl-C or SIGTERM, after the safe state.
+    """
+    prep = prepare(sequence_path, bench_path, options)
+    run_id, run_dir, manifest, resumed = _open_run_folder(prep, options)
+    url = store_url_for(run_dir, manifest) if resumed else (options.db_url
+                                                             or default_store_url(run_dir))
+    outcome = RunOutcome(run_id, run_dir, url, warnings=list(prep.calibration.warnings))
+    handler = open_run_log(run_dir / LOG_FILE)
+    old_term = None
+    if threading.current_thread() is threading.main_thread():
+        old_term = signal.signal(signal.SIGTERM, _raise_terminated)
+    try:
+        log.info("%s run %s: %s lot %s, sequence %s, bench %s",
+                 "resuming" if resumed else "starting", run_id, prep.sequence.part,
+                 prep.sequence.lot, prep.sequence_path, prep.bench_path)
+        for warning in prep.calibration.warnings:
+            log.warning("calibration: %s", warning)
+        for overridden in prep.calibration.overridden:
+            log.warning("calibration OVERRIDDEN (--allow-overdue-calibration): %s", overridden)
+        with ResultsStore(url) as store:
+            if store.get_run(run_id) is None:
+                store.create_run(run_id, prep.sequence.part, prep.sequence.lot, manifest,
+                                 started=manifest.get("started"))
+            if resumed:
+                manifest.setdefault("resumes", []).append(
+                    {"at": utc_now(), "calibration": prep.calibration.to_dict(),
+                     "allow_overdue_calibration": bool(options.allow_overdue_calibration)})
+                manifest["status"] = "running"
+                write_manifest(run_dir, manifest)
+                store.update_run(run_id, status="running", manifest=manifest)
+            try:
+                with RawRecord(run_dir / RAW_FILE, "a") as raw:
+                    _execute(prep, options, outcome, manifest, store, raw)
+            finally:
+                _record_files(outcome, manifest, store)
+    finally:
+        if old_term is not None:
+            signal.signal(signal.SIGTERM, old_term)
+        close_run_log(handler)
+    return outcome
+
+
+def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
+             manifest: dict[str, Any], store: ResultsStore, raw: RawRecord) -> None:
+    resources = resolve_resources(prep.bench, options.sim_resources)
+    station: Station | None = None
+    error: BaseException | None = None
+    try:
+        station = Station(prep.bench, resources, options.clock)
+        identities = station.identify()
+        manifest["instruments"] = {role: ident.to_dict() for role, ident in identities.items()}
+        raw.set_run_attrs(run_id=outcome.run_id, part=prep.sequence.part,
+                          lot=prep.sequence.lot, instruments=manifest["instruments"],
+                          analysis_options=manifest.get("analysis_options"))
+        write_manifest(outcome.run_dir, manifest)
+        serials = _serials(prep.sequence, station)
+        manifest["devices"] = serials
+        write_manifest(outcome.run_dir, manifest)
+        steps = plan_run(prep.sequence, serials)
+        cycle = ShotCycle(prep, options, outcome, station, store, raw)
+        cycle.recover_orphans()
+        done = cycle.completed()
+        total = sum(len(step.shots) for step in steps)
+        skipped = sum(1 for step in steps for s in step.shots if s.identity in done)
+        outcome.shots_skipped = skipped
+        if skipped:
+            log.info("resume: %d of %d tests already complete", skipped, total)
+        with RunProgress(total, skipped, enabled=options.show_progress) as progress:
+            cycle.progress = progress
+            for step in steps:
+                todo = [s for s in step.shots if s.identity not in done]
+                if todo:
+                    cycle.run_temperature(step.temperature_K, todo)
+        outcome.status = "complete"
+    except KeyboardInterrupt as exc:
+        outcome.status = "interrupted"
+        outcome.error = "interrupted (Ctrl-C or SIGTERM)"
+        error = exc
+    except BaseException as exc:
+        outcome.status = "aborted"
+        outcome.error = str(exc)
+        error = exc
+    finally:
+        if station is not None:
+            outcome.safe_state = _safe(station)
+            station.close()
+        _finish(outcome, manifest, store)
+    if error is not None:
+        log.error("run %s %s: %s", outcome.run_id, outcome.status, outcome.error)
+        raise error
+    if outcome.safe_state is not None and not outcome.safe_state.reached:
+        raise SafetyError(outcome.safe_state.describe())
+
+
+def _safe(station: Station) -> SafeStateReport:
+    # a second Ctrl-C while making safe must not skip the rest of the procedure
+    previous = None
+    if threading.current_thread() is threading.main_thread():
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        return station.make_safe()
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGINT, previous)
+
+
+def _serials(sequence: SequenceConfig, station: Station) -> list[str]:
+    held = station.devices()
+    if sequence.devices == "all":
+        if not held:
+            raise RunError("the handler holds no devices")
+        return held
+    if station.handler is not None:
+        missing = [s for s in sequence.devices if s not in held]
+        if missing:
+            raise RunError(f"devices not in the handler: {', '.join(missing)}")
+    return list(sequence.devices)
+
+
+def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore) -> None:
+    manifest["status"] = outcome.status
+    manifest["finished"] = utc_now()
+    manifest["safe_state"] = outcome.safe_state.to_dict() if outcome.safe_state else None
+    manifest["error"] = outcome.error
+    manifest["counts"] = {"stored": outcome.shots_stored, "valid": outcome.shots_valid,
+                          "recovered": outcome.shots_recovered, "trim": outcome.trim_shots}
+    manifest["store_url"] = manifest.get("store_url")
+
+
+def _record_files(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore) -> None:
+    """Hash the run's files (raw record closed) and record the end of the run."""
+    try:
+        manifest["files"] = hash_run_files(outcome.run_dir)
+        write_manifest(outcome.run_dir, manifest)
+        store.update_run(outcome.run_id, status=outcome.status,
+                         finished=manifest.get("finished") or utc_now(), manifest=manifest)
+    except BenchrunError as exc:
+        log.error("could not record the end of run %s: %s", outcome.run_id, exc)

@@ -1,0 +1,162 @@
+"""From a capture to a stored, analysed shot — the same path live and when recovering.
+
+:func:`analyse` runs :func:`benchrun.analysis.analyze_channels` (the one path shared with
+verification) and turns a capture that cannot be analysed into an *invalid result*, never an
+exception. :func:`build_result` adds the measured conditions and their check.
+:func:`shot_key` names a shot in the raw record deterministically, so a shot that reached the
+raw record but not the database before a crash is found and completed on resume.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass
+from functools import reduce
+from typing import Any
+
+import numpy as np
+
+from benchrun.analysis import ChannelData, ProbeCalibration, RecoveryOptions, analyze_channels
+from benchrun.config.bench import BenchConfig
+from benchrun.config.sequence import SequenceConfig
+from benchrun.errors import AnalysisError
+from benchrun.records import CONDITION_KEYS, ShotResult, TestPoint
+from benchrun.runner.conditions import check_conditions
+
+#: Flag of a shot whose capture could not be analysed at all.
+FLAG_ANALYSIS_FAILED = "analysis_failed"
+#: Metrics without which a shot cannot be graded.
+REQUIRED_METRICS = ("if_A", "irrm_A", "qrr_C", "trr_s")
+
+
+def shot_key(point_index: int, serial: str, repeat: int, attempt: int) -> str:
+    """Raw-record key of one shot: ``p000-<serial>-r00-a0`` (serial made key-safe)."""
+    safe = re.sub(r"[^A-Za-z0-9_.-]", "_", serial)
+    return f"p{point_index:03d}-{safe}-r{repeat:02d}-a{attempt}"
+
+
+def probes_for(bench: BenchConfig) -> dict[str, ProbeCalibration]:
+    """Probe calibrations of every wired signal."""
+    return {name: ProbeCalibration(scale=p.scale, deskew_s=p.deskew)
+            for name, p in bench.probes.items()}
+
+
+def recovery_options(sequence: SequenceConfig) -> RecoveryOptions:
+    return RecoveryOptions(**sequence.analysis.option_values())
+
+
+def analyse(t_start: float, dt: float, channels: Mapping[str, ChannelData],
+            probes: Mapping[str, ProbeCalibration], options: RecoveryOptions
+            ) -> tuple[dict[str, float | None], tuple[str, ...]]:
+    """Metrics and flags of one capture; a capture without an event gives empty metrics and
+    the flag ``analysis_failed: <reason>``."""
+    try:
+        result = analyze_channels(t_start, dt, dict(channels), dict(probes), options)
+    except AnalysisError as exc:
+        return {}, (f"{FLAG_ANALYSIS_FAILED}: {exc}",)
+    metrics = {k: (None if v is None or not math.isfinite(float(v)) else float(v))
+               for k, v in result.metrics().items()}
+    return metrics, tuple(result.flags)
+
+
+def adc_bits(channel: ChannelData) -> float:
+    """Resolution of the ADC behind a channel, from its code range and the code step.
+
+    A family that left-justifies an 8-bit ADC into 16-bit words has a code step of 256;
+    the step is the greatest common divisor of the differences between codes seen.
+    """
+    codes = np.unique(np.asarray(channel.codes, dtype=np.int64))
+    diffs = np.diff(codes)
+    step = int(reduce(math.gcd, diffs.tolist(), 0)) if diffs.size else 1
+    step = max(step, 1)
+    levels = (channel.code_max - channel.code_min) / step + 1
+    return round(math.log2(max(levels, 2.0)), 2)
+
+
+def acquisition_facts(dt: float, channels: Mapping[str, ChannelData],
+                      probes: Mapping[str, ProbeCalibration]) -> dict[str, float]:
+    """What the uncertainty budget needs: sample interval, full-scale ranges, ADC bits."""
+    facts: dict[str, float] = {"sample_interval_s": float(dt)}
+    for name, key in (("diode_current", "current_range_A"), ("diode_voltage", "voltage_range_V")):
+        ch = channels.get(name)
+        if ch is None:
+            continue
+        full_scale = (ch.code_max - ch.code_min) * abs(ch.gain) * abs(probes[name].scale)
+        facts[key] = float(full_scale)
+    if "diode_current" in channels:
+        facts["adc_bits"] = adc_bits(channels["diode_current"])
+    return facts
+
+
+@dataclass(frozen=True)
+class ShotContext:
+    """The shot's identity and the conditions measured outside the capture."""
+
+    run_id: str
+    part: str
+    lot: str
+    serial: str
+    point: TestPoint
+    repeat: int
+    attempt: int
+    timestamp: str
+    temperature_K: float | None
+    bus_voltage_V: float | None
+
+    def attrs(self, settings: dict[str, Any]) -> dict[str, Any]:
+        """Shot attributes for the raw record."""
+        return {
+            "run_id": self.run_id, "part": self.part, "lot": self.lot, "serial": self.serial,
+            "point": self.point.to_dict(), "repeat": self.repeat, "attempt": self.attempt,
+            "timestamp": self.timestamp, "temperature_K": self.temperature_K,
+            "bus_voltage_V": self.bus_voltage_V, "settings": settings,
+        }  # fmt: skip
+
+    @classmethod
+    def from_attrs(cls, attrs: Mapping[str, Any]) -> ShotContext:
+        return cls(
+            run_id=attrs["run_id"], part=attrs["part"], lot=attrs["lot"],
+            serial=attrs["serial"], point=TestPoint(**attrs["point"]),
+            repeat=int(attrs["repeat"]), attempt=int(attrs["attempt"]),
+            timestamp=attrs["timestamp"], temperature_K=attrs.get("temperature_K"),
+            bus_voltage_V=attrs.get("bus_voltage_V"),
+        )  # fmt: skip
+
+
+def build_result(context: ShotContext, t_start: float, dt: float,
+                 channels: Mapping[str, ChannelData], probes: Mapping[str, ProbeCalibration],
+                 sequence: SequenceConfig, raw_ref: str) -> ShotResult:
+    """Analyse a capture and check its measured conditions: one :class:`ShotResult`."""
+    metrics, flags = analyse(t_start, dt, channels, probes, recovery_options(sequence))
+    conditions: dict[str, Any] = {
+        "if_A": metrics.get("if_A"),
+        "didt_A_per_s": metrics.get("didt_A_per_s"),
+        "vr_V": metrics.get("vr_V"),
+        "temperature_K": context.temperature_K,
+    }
+    assert tuple(conditions) == CONDITION_KEYS
+    check = check_conditions(context.point, conditions, sequence.tolerances)
+    missing = [k for k in REQUIRED_METRICS if metrics.get(k) is None]
+    all_flags = list(flags) + list(check.flags)
+    if missing and not any(f.startswith(FLAG_ANALYSIS_FAILED) for f in flags):
+        all_flags.append(f"metrics_missing: {', '.join(missing)}")
+    clipped = any(f.startswith("clipped_diode") for f in flags)
+    valid = check.valid and not missing and not clipped
+    return ShotResult(
+        run_id=context.run_id,
+        part=context.part,
+        lot=context.lot,
+        serial=context.serial,
+        point=context.point,
+        repeat=context.repeat,
+        attempt=context.attempt,
+        timestamp=context.timestamp,
+        conditions=conditions,
+        metrics=metrics,
+        flags=tuple(dict.fromkeys(all_flags)),
+        valid=valid,
+        raw_ref=raw_ref,
+        acquisition=acquisition_facts(dt, channels, probes),
+    )

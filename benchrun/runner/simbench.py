@@ -1,0 +1,98 @@
+"""An in-process simulated bench for bench files whose resources are ``sim``.
+
+:func:`simulated_bench` starts :class:`benchrun.simulator.server.SimulatedBench` holding the
+sequence's virtual lot, on a fixture built from the bench file (with the load inductor a few
+percent off its nameplate, as real inductors are, so the trim shots have work to do), and
+yields what :func:`benchrun.runner.execute.run_sequence` needs: resources, the accelerated
+clock and the virtual catalogue's part ratings.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Any
+
+from benchrun.config.bench import BenchConfig
+from benchrun.config.sequence import PartRatings, SequenceConfig
+from benchrun.errors import ConfigError
+
+#: Simulated seconds per wall-clock second (thermal lag, bus charge and bleeder discharge).
+DEFAULT_SPEEDUP = 200.0
+
+#: The simulated load inductor's deviation from the bench file's nameplate value.
+INDUCTOR_DEVIATION = -0.04
+
+
+class AcceleratedClock:
+    """The runner's clock on the simulated bench's time: waits are shortened by the speed-up,
+    readings of time come from the bench, so dwell, soak and discharge logic run unchanged."""
+
+    def __init__(self, bench: Any) -> None:
+        self.bench = bench
+        self.speedup = float(bench.clock_speedup)
+
+    def monotonic(self) -> float:
+        return float(self.bench.now())
+
+    def sleep(self, seconds: float) -> None:
+        if seconds > 0:
+            time.sleep(seconds / self.speedup)
+
+
+@dataclass
+class SimulatedSetup:
+    """A running simulated bench and what the runner needs from it."""
+
+    bench: Any
+    resources: dict[str, str]
+    clock: AcceleratedClock
+    catalog: Any
+
+    def ratings(self, part: str) -> PartRatings | None:
+        """Ratings of a virtual part (VRRM, IF max, Tj range) as the sequence schema has them."""
+        try:
+            found = self.catalog.part(part).ratings
+        except ConfigError:
+            return None
+        return PartRatings(vrrm=found.vrrm_V, if_max=found.if_max_A, tj_max=found.tj_max_K,
+                           tj_min=found.tj_min_K)
+
+
+def sim_fixture(bench: BenchConfig) -> Any:
+    """The simulator's fixture from the bench file's fixture values."""
+    from benchrun.simulator.physics import Fixture
+
+    fx = bench.fixture
+    return Fixture(
+        load_inductance_H=fx.load_inductance * (1.0 + INDUCTOR_DEVIATION),
+        load_resistance_ohm=fx.load_resistance,
+        stray_inductance_H=fx.stray_inductance,
+        bus_capacitance_F=fx.bus_capacitance,
+        bleeder_resistance_ohm=fx.bleeder_resistance,
+    )
+
+
+@contextlib.contextmanager
+def simulated_bench(bench: BenchConfig, sequence: SequenceConfig, *, seed: int = 1,
+                    speedup: float = DEFAULT_SPEEDUP) -> Iterator[SimulatedSetup]:
+    """Start the simulated bench with the sequence's lot in its handler."""
+    from benchrun.simulator.devices import load_virtual_parts
+    from benchrun.simulator.server import SimulatedBench
+
+    catalog = load_virtual_parts()
+    lot = catalog.lot(sequence.lot)
+    if lot.part.name != sequence.part:
+        raise ConfigError(f"virtual lot {sequence.lot} holds {lot.part.name}, not "
+                          f"{sequence.part}", field="lot")
+    families = {role: entry.family for role, entry in bench.instruments.items()}
+    wiring = {probe.channel: name for name, probe in bench.probes.items()}
+    sim = SimulatedBench(lot, sim_fixture(bench), seed=seed, clock_speedup=speedup,
+                         families=families, wiring=wiring)
+    resources = sim.start()
+    try:
+        yield SimulatedSetup(sim, resources, AcceleratedClock(sim), catalog)
+    finally:
+        sim.stop()

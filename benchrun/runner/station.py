@@ -1,0 +1,288 @@
+"""The connected bench: role drivers plus the few procedures the runner builds from them.
+
+:class:`Station` opens every instrument of a bench file (resolving the ``sim`` placeholder to
+an in-process simulated bench's resources), records their IEEE 488.2 identities, and offers
+the steps of a run: bring the bus to a voltage, discharge it, change the device, settle a
+temperature, fire one pulse train and read the capture. The safe state is
+:meth:`Station.make_safe` (:func:`benchrun.runner.safety.make_safe` on these drivers).
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+from benchrun.config.bench import BenchConfig
+from benchrun.errors import InstrumentTimeout, RunError
+from benchrun.instruments.roles import ChannelTrace, InstrumentIdentity, connect
+from benchrun.runner.conditions import StabilityTracker
+from benchrun.runner.plan import PulsePlan, SignalRange
+from benchrun.runner.safety import Clock, SafeStateReport, make_safe
+
+log = logging.getLogger("benchrun.runner")
+
+#: Poll interval while waiting for the bus voltage (simulated or real seconds).
+BUS_POLL_S = 0.05
+
+
+def resolve_resources(bench: BenchConfig, sim_resources: dict[str, str] | None
+                      ) -> dict[str, str]:
+    """VISA resource per role, with ``sim`` placeholders replaced by the simulated bench's."""
+    resolved = {}
+    for role, entry in bench.instruments.items():
+        if entry.simulated:
+            if not sim_resources or role not in sim_resources:
+                raise RunError(f"bench instrument {role!r} is 'sim' but no simulated bench "
+                               "is running")
+            resolved[role] = sim_resources[role]
+        else:
+            resolved[role] = entry.resource
+    return resolved
+
+
+@dataclass
+class Capture:
+    """One acquisition as read from the scope."""
+
+    t_start: float
+    dt: float
+    traces: dict[str, ChannelTrace]
+
+
+class Station:
+    """Open sessions to every instrument of a bench.
+
+    Parameters
+    ----------
+    bench
+        The bench file.
+    resources
+        Role → VISA resource string (see :func:`resolve_resources`).
+    clock
+        Time source for every wait (the simulated bench may run an accelerated clock).
+    """
+
+    def __init__(self, bench: BenchConfig, resources: dict[str, str], clock: Clock) -> None:
+        self.bench = bench
+        self.clock = clock
+        self.drivers: dict[str, Any] = {}
+        channel_map = {name: probe.channel for name, probe in bench.probes.items()}
+        try:
+            for role, entry in bench.instruments.items():
+                options = {"channel_map": channel_map} if role == "scope" else {}
+                self.drivers[role] = connect(role, resources[role], entry.family,
+                                             visa_library=bench.visa_library,
+                                             timeout_s=entry.timeout, **options)
+        except Exception:
+            self.close()
+            raise
+        self.identities: dict[str, InstrumentIdentity] = {}
+        self._scope_setup: tuple | None = None
+        self._pulse_setup: tuple | None = None
+        self._gate: float | None = None
+        self._voltage: float | None = None
+
+    # --- lifecycle -----------------------------------------------------------------------
+
+    def identify(self) -> dict[str, InstrumentIdentity]:
+        """Ask every instrument ``*IDN?``; drain their error queues."""
+        for role, driver in self.drivers.items():
+            self.identities[role] = driver.identity()
+            driver.drain_errors()
+            ident = self.identities[role]
+            log.info("%s: %s %s s/n %s fw %s at %s (%s)", role, ident.manufacturer,
+                     ident.model, ident.serial, ident.firmware, ident.resource, ident.family)
+        return dict(self.identities)
+
+    def close(self) -> None:
+        for driver in self.drivers.values():
+            close = getattr(driver.session, "close", None)
+            if close is not None:
+                close()
+
+    @property
+    def scope(self) -> Any:
+        return self.drivers["scope"]
+
+    @property
+    def pulse(self) -> Any:
+        return self.drivers["pulse"]
+
+    @property
+    def supply(self) -> Any:
+        return self.drivers["supply"]
+
+    @property
+    def thermal(self) -> Any | None:
+        return self.drivers.get("thermal")
+
+    @property
+    def handler(self) -> Any | None:
+        return self.drivers.get("handler")
+
+    # --- bus -------------------------------------------------------------------------------
+
+    def energise(self, volts: float, *, tolerance: float = 0.01) -> float:
+        """Supply on at ``volts``; wait until the measured bus is within tolerance.
+
+        Returns the measured bus voltage. Raises RunError when it is not reached within the
+        bench's discharge timeout (the same allowance for charging).
+        """
+        if self._voltage != volts:
+            self.supply.set_voltage(volts)
+            self._voltage = volts
+        if not self.supply.is_output_on():
+            self.supply.output(True)
+        band = max(tolerance * volts, 1.0)
+        deadline = self.clock.monotonic() + self.bench.safety.discharge_timeout
+        while True:
+            measured = self.supply.measure_voltage()
+            if abs(measured - volts) <= band:
+                return measured
+            if self.clock.monotonic() > deadline:
+                raise RunError(f"bus voltage {measured:.1f} V did not reach {volts:g} V")
+            self.clock.sleep(BUS_POLL_S)
+
+    def discharge(self) -> float:
+        """Supply off; wait until the measured bus is touch-safe. Returns the voltage."""
+        self.supply.output(False)
+        limit = self.bench.safety.touch_safe_voltage
+        deadline = self.clock.monotonic() + self.bench.safety.discharge_timeout
+        while True:
+            measured = self.supply.measure_voltage()
+            if abs(measured) < limit:
+                return measured
+            if self.clock.monotonic() > deadline:
+                raise RunError(f"bus still at {measured:.1f} V after "
+                               f"{self.bench.safety.discharge_timeout:g} s with the supply off")
+            self.clock.sleep(BUS_POLL_S)
+
+    # --- devices and temperature -------------------------------------------------------------
+
+    def devices(self) -> list[str]:
+        """Serials the handler holds."""
+        if self.handler is None:
+            return []
+        return list(self.handler.list_devices())
+
+    def select(self, serial: str) -> None:
+        """Put ``serial`` in the fixture; the bus is discharged first (no handling live)."""
+        if self.handler is None:
+            return
+        if self.handler.selected() == serial:
+            return
+        self.pulse.output(False)
+        volts = self.discharge()
+        log.info("bus at %.1f V; handler selects %s", volts, serial)
+        self.handler.select(serial)
+        self._voltage = None
+
+    def settle(self, kelvin: float, *, band: float, dwell: float, soak: float,
+               timeout: float, poll: float,
+               on_reading: Callable[[float], None] | None = None) -> float:
+        """Set the temperature, wait until stable within ``band`` for ``dwell``, then soak.
+
+        The stability logic is never skipped; on the simulated bench it simply runs on the
+        accelerated clock. Raises RunError when the temperature does not settle in time.
+        """
+        thermal = self.thermal
+        if thermal is None:
+            return kelvin
+        thermal.set_temperature(kelvin)
+        thermal.output(True)
+        tracker = StabilityTracker(kelvin, band, dwell)
+        start = self.clock.monotonic()
+        reading = thermal.measure_temperature()
+        while True:
+            now = self.clock.monotonic()
+            reading = thermal.measure_temperature()
+            if on_reading is not None:
+                on_reading(reading)
+            if tracker.update(now, reading):
+                break
+            if now - start > timeout:
+                raise RunError(
+                    f"temperature did not settle at {kelvin - 273.15:g} degC within "
+                    f"{timeout:g} s (last reading {reading - 273.15:.2f} degC, band "
+                    f"{band:g} K)")
+            self.clock.sleep(poll)
+        log.info("stable at %.2f degC after %.0f s; soaking %.0f s", reading - 273.15,
+                 self.clock.monotonic() - start, soak)
+        end = self.clock.monotonic() + soak
+        while self.clock.monotonic() < end:
+            self.clock.sleep(min(poll, end - self.clock.monotonic()))
+        return thermal.measure_temperature()
+
+    def temperature(self) -> float | None:
+        """Measured device temperature, K (None without a thermal controller)."""
+        return None if self.thermal is None else self.thermal.measure_temperature()
+
+    # --- one shot ------------------------------------------------------------------------------
+
+    def configure_scope(self, plan: PulsePlan, ranges: dict[str, SignalRange],
+                        bus_voltage_V: float) -> None:
+        """Ranges, sampling and trigger; only sent when they changed."""
+        probes = self.bench.probes
+        channels = {name: (r.span, r.center, probes[name].scale) for name, r in ranges.items()}
+        # trigger on the first turn-on: the diode voltage falls to -VR when the switch closes
+        setup = (tuple(sorted(channels.items())), plan.sample_interval_s, plan.points,
+                 plan.record_start_s, -0.5 * bus_voltage_V)
+        if setup == self._scope_setup:
+            return
+        self.scope.configure(channels, plan.sample_interval_s, plan.points,
+                             plan.record_start_s, "diode_voltage", -0.5 * bus_voltage_V,
+                             "falling")
+        self._scope_setup = setup
+
+    def configure_pulse(self, plan: PulsePlan, gate_resistance_ohm: float | None,
+                        *, single: bool = False) -> None:
+        """Pulse timing and gate resistance; only sent when they changed."""
+        if gate_resistance_ohm is not None and gate_resistance_ohm != self._gate:
+            self.pulse.set_gate_resistance(gate_resistance_ohm)
+            self._gate = gate_resistance_ohm
+        setup = (plan.first_pulse_s, 0.0, 0.0) if single else (
+            plan.first_pulse_s, plan.off_time_s, plan.second_pulse_s)
+        if setup != self._pulse_setup:
+            self.pulse.configure(*setup)
+            self._pulse_setup = setup
+
+    def fire(self, channels: list[str], trigger_timeout_s: float) -> Capture:
+        """Arm, fire, wait for the trigger and read every channel."""
+        self.scope.arm_single()
+        if not self.pulse.is_output_on():
+            self.pulse.output(True)
+        self.pulse.fire()
+        if not self.scope.wait_triggered(trigger_timeout_s):
+            raise InstrumentTimeout(f"the scope did not trigger within {trigger_timeout_s:g} s "
+                                    "of firing")
+        traces = self.scope.read_channels(channels)
+        first = next(iter(traces.values()))
+        return Capture(first.t_start, first.dt, traces)
+
+    def forget_settings(self) -> None:
+        """After an instrument fault: send every setting again before the next shot."""
+        self._scope_setup = None
+        self._pulse_setup = None
+        self._gate = None
+        self._voltage = None
+
+    # --- safe state -----------------------------------------------------------------------------
+
+    def make_safe(self) -> SafeStateReport:
+        """Pulse output off, supply off, wait for a touch-safe bus (never raises)."""
+        extra = ()
+        if self.thermal is not None:
+            thermal = self.thermal
+            extra = (lambda: thermal.output(False),)
+        return make_safe(
+            (lambda: self.pulse.output(False)) if "pulse" in self.drivers else None,
+            (lambda: self.supply.output(False)) if "supply" in self.drivers else None,
+            (lambda: self.supply.measure_voltage()) if "supply" in self.drivers else None,
+            touch_safe_V=self.bench.safety.touch_safe_voltage,
+            timeout_s=self.bench.safety.discharge_timeout,
+            clock=self.clock,
+            poll_s=BUS_POLL_S * 4,
+            extra_off=extra,
+        )
