@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import random
+from dataclasses import replace
 
 import pytest
 from grading_helpers import COLD, HOT, LIMITS_YAML, shot, write_limits
@@ -95,6 +96,20 @@ def test_invalid_shots_are_never_graded_and_a_retry_counts(limits):
         "25C repeat 0 attempt 0: T 31.85 °C outside 25.00 °C ± 3 K",
         "25C repeat 1 attempt 0: marked invalid at acquisition (no_event)",
     )
+
+
+def test_condition_flags_are_judged_again_by_the_limits_tolerances(tmp_path, limits):
+    # the runner flagged IF 31.8 A (+6 %) against a 5 % sequence tolerance
+    flagged = shot("S030", COLD, 0, valid=False, conditions={"if_A": 31.8})
+    flagged = replace(flagged, flags=("condition:IF 31.8 A is +6.0 % from 30 A (tolerance 5 %)",))
+    shots = [flagged, shot("S030", HOT, 0)]
+    assert grade_lot(shots, limits).device("S030").verdict == "invalid"
+    wider = load_limits(write_limits(tmp_path, LIMITS_YAML.replace(
+        "forward_current: 5 %", "forward_current: 8 %"), name="wide.yaml"))
+    assert grade_lot(shots, wider).device("S030").verdict == "conforming"
+    # an analysis failure is never re-admitted
+    broken = replace(flagged, flags=("no_event",))
+    assert grade_lot([broken, shot("S030", HOT, 0)], wider).device("S030").verdict == "invalid"
 
 
 def test_missing_required_condition_makes_the_device_invalid(limits):

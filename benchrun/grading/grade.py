@@ -61,6 +61,9 @@ from benchrun.grading.uncertainty import (
 from benchrun.records import ShotResult, TestPoint
 from benchrun.units import format_si
 
+#: Prefix of the runner's condition-check flags (``benchrun.runner.conditions``).
+CONDITION_FLAG = "condition:"
+
 #: Acquisition facts combined over a device's shots by taking the largest (conservative).
 ACQUISITION_KEYS = ("sample_interval_s", "current_range_A", "voltage_range_V", "adc_bits")
 
@@ -223,9 +226,15 @@ def point_matches(point: TestPoint, condition: Condition, tol: Tolerances) -> bo
 
 
 def shot_problems(shot: ShotResult, condition: Condition, tol: Tolerances) -> list[str]:
-    """Why a shot cannot be graded at ``condition`` (empty when it is valid)."""
+    """Why a shot cannot be graded at ``condition`` (empty when it is valid).
+
+    A shot the runner marked invalid stays invalid, unless every flag it carries is a
+    condition flag (``"condition:..."``): then its measured conditions are judged again
+    against the limits file's tolerances, so regrading with other tolerances takes effect.
+    """
     problems: list[str] = []
-    if not shot.valid:
+    condition_only = bool(shot.flags) and all(f.startswith(CONDITION_FLAG) for f in shot.flags)
+    if not shot.valid and not condition_only:
         flags = f" ({', '.join(shot.flags)})" if shot.flags else ""
         problems.append(f"marked invalid at acquisition{flags}")
     point = shot.point
@@ -612,13 +621,16 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec) -> LotGrade:
         raise GradingError(f"limits for {limits.part} cannot grade shots of {', '.join(other)}")
     rule = DecisionRule(limits.decision_rule.rule, limits.decision_rule.guard_factor)
     points = _match_points(shots, limits)
-    serials = sorted({s.serial for s in shots})
+    by_serial: dict[str, list[ShotResult]] = {}
+    for item in shots:
+        by_serial.setdefault(item.serial, []).append(item)
+    serials = sorted(by_serial)
     devices: list[DeviceGrade] = []
     samples: dict[str, dict[str, dict[str, list[float]]]] = {}
     acquisitions: dict[str, dict[str, dict[str, float]]] = {}
     for serial in serials:
         device, device_samples, device_acq = _grade_device(
-            serial, [s for s in shots if s.serial == serial], limits, points, rule)
+            serial, by_serial[serial], limits, points, rule)
         devices.append(device)
         samples[serial] = device_samples
         acquisitions[serial] = device_acq
