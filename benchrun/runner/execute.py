@@ -94,6 +94,8 @@ class RunOptions:
         Wall-clock time allowed between firing and the scope's trigger.
     on_stored
         Called after each shot is durably stored (for progress hooks and tests).
+    on_finish
+        Called with the outcome once the run ended, whichever way (commands print it).
     """
 
     out_dir: Path
@@ -107,6 +109,7 @@ class RunOptions:
     show_progress: bool = True
     trigger_timeout_s: float = 5.0
     on_stored: Callable[[ShotResult], None] | None = None
+    on_finish: Callable[[RunOutcome], None] | None = None
 
 
 @dataclass
@@ -314,6 +317,8 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
         if old_term is not None:
             signal.signal(signal.SIGTERM, old_term)
         close_run_log(handler)
+        if options.on_finish is not None:
+            options.on_finish(outcome)
     return outcome
 
 

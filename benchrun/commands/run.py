@@ -1,0 +1,80 @@
+"""``benchrun run SEQUENCE --bench BENCH [--out DIR] [--resume [RUN_DIR]] [--db URL]``.
+
+Runs a test sequence unattended: checks every file and every planned setting before anything
+is energised, then fires, stores and analyses every shot. Resources written ``sim`` in the
+bench file are served by an in-process simulated bench. After a crash or Ctrl-C,
+``--resume`` continues the newest unfinished run of the same part and lot in DIR (or the run
+folder given) at the first untested point.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+from typing import Any
+
+from benchrun.runner.execute import RunOptions, RunOutcome
+from benchrun.runner.launch import run_on_bench
+from benchrun.runner.simbench import DEFAULT_SPEEDUP
+
+
+def register(subparsers: Any) -> None:
+    parser = subparsers.add_parser(
+        "run", help="run a test sequence on a bench (unattended, resumable)",
+        description=__doc__.split("\n\n", 1)[1] if __doc__ else None,
+    )
+    parser.add_argument("sequence", type=Path, help="sequence file (YAML)")
+    parser.add_argument("--bench", type=Path, required=True, help="bench file (YAML)")
+    parser.add_argument("--out", type=Path, default=Path("runs"), metavar="DIR",
+                        help="folder for run folders (default: ./runs)")
+    parser.add_argument("--resume", nargs="?", const=True, default=False, metavar="RUN_DIR",
+                        help="continue an unfinished run (newest of this lot in DIR, or RUN_DIR)")
+    parser.add_argument("--db", metavar="URL", default=None,
+                        help="results database URL (default: results.db in the run folder)")
+    parser.add_argument("--allow-overdue-calibration", action="store_true",
+                        help="run with instruments past their calibration date "
+                             "(recorded in the run manifest)")
+    parser.add_argument("--no-progress", action="store_true", help="no live progress display")
+    parser.add_argument("--sim-speedup", type=float, default=DEFAULT_SPEEDUP,
+                        help="clock speed-up of the simulated bench (sim resources only)")
+    parser.add_argument("--sim-seed", type=int, default=1, help="noise seed of the simulator")
+    parser.set_defaults(func=run)
+
+
+def print_outcome(outcome: RunOutcome) -> None:
+    """Summary of a run for the terminal."""
+    print(f"run {outcome.run_id}: {outcome.status}")
+    print(f"  run folder:  {outcome.run_dir}")
+    print(f"  results DB:  {outcome.store_url}")
+    print(f"  shots:       {outcome.shots_stored} stored this session "
+          f"({outcome.shots_valid} valid), {outcome.shots_recovered} recovered from the raw "
+          f"record, {outcome.shots_skipped} tests already done, {outcome.trim_shots} trim shots")
+    for warning in outcome.warnings:
+        print(f"  warning:     {warning}")
+    if outcome.error:
+        print(f"  stopped by:  {outcome.error}")
+    if outcome.safe_state is not None:
+        text = outcome.safe_state.describe()
+        if outcome.safe_state.reached:
+            print(f"  {text}")
+        else:
+            print("!" * 78, file=sys.stderr)
+            print(f"!! {text}", file=sys.stderr)
+            print("!" * 78, file=sys.stderr)
+
+
+def run(args: argparse.Namespace) -> int:
+    resume: bool | Path = args.resume if args.resume is True else (
+        Path(args.resume) if args.resume else False)
+    options = RunOptions(
+        out_dir=args.out,
+        resume=resume,
+        db_url=args.db,
+        allow_overdue_calibration=args.allow_overdue_calibration,
+        show_progress=not args.no_progress and sys.stderr.isatty(),
+        on_finish=print_outcome,
+    )
+    outcome = run_on_bench(args.sequence, args.bench, options, sim_speedup=args.sim_speedup,
+                           sim_seed=args.sim_seed)
+    return 0 if outcome.status == "complete" else 1
