@@ -240,3 +240,43 @@ def test_changed_attribute_is_detected(tmp_path):
         f["shots/000000/diode_voltage"].attrs["gain"] = 0.3
     with RawRecord(path, "r") as raw, pytest.raises(StoreError, match="SHA-256"):
         raw.read_shot("000000")
+
+
+def test_read_shot_gives_the_analysis_pipeline_types(tmp_path):
+    """Stored shots feed benchrun.analysis.pipeline.analyze_channels unchanged."""
+    from benchrun.analysis import pipeline
+
+    with RawRecord(tmp_path / "raw.h5") as raw:
+        raw.append_shot("000000", 0.0, 1e-9, make_channels(), make_probes(), {})
+        shot = raw.read_shot("000000")
+    assert all(isinstance(c, pipeline.ChannelData) for c in shot.channels.values())
+    assert all(isinstance(p, pipeline.ProbeCalibration) for p in shot.probes.values())
+    original = make_channels()["gate"]
+    np.testing.assert_array_equal(shot.channels["gate"].volts(), original.volts())
+
+
+def test_second_writer_process_is_refused(tmp_path):
+    """HDF5 file locking keeps a second process from writing the record at the same time."""
+    import subprocess
+    import sys
+
+    path = tmp_path / "raw.h5"
+    code = (
+        "import sys\n"
+        "from benchrun.errors import StoreError\n"
+        "from benchrun.store.raw import RawRecord\n"
+        "try:\n"
+        "    RawRecord(sys.argv[1], 'a')\n"
+        "except StoreError as exc:\n"
+        "    print('refused:', exc)\n"
+        "    sys.exit(3)\n"
+    )
+    with RawRecord(path) as raw:
+        raw.append_shot("000000", 0.0, 1e-9, make_channels(), make_probes(), {})
+        busy = subprocess.run([sys.executable, "-c", code, str(path)], capture_output=True,
+                              text=True, timeout=60)  # fmt: skip
+    assert busy.returncode == 3, busy.stdout + busy.stderr
+    assert "another process" in busy.stdout
+    free = subprocess.run([sys.executable, "-c", code, str(path)], capture_output=True,
+                          text=True, timeout=60)  # fmt: skip
+    assert free.returncode == 0, free.stdout + free.stderr

@@ -223,6 +223,19 @@ def _key_of(key_or_ref: str) -> str:
     return key
 
 
+def _fsync_dir(folder: Path) -> None:
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass  # some file systems cannot sync a directory; the file itself is synced
+    finally:
+        os.close(fd)
+
+
 def _attr_str(value: Any) -> str:
     return value.decode() if isinstance(value, bytes) else str(value)
 
@@ -269,6 +282,7 @@ class RawRecord:
         self.mode = mode
         self.compression = compression
         self._file: h5py.File | None = None
+        self._next_number: int | None = None  # cache of next_key(); None = not yet scanned
         self._open()
 
     # -- opening and closing -------------------------------------------------------------
@@ -282,7 +296,9 @@ class RawRecord:
         fresh = self.mode == "w" or not path.exists() or path.stat().st_size == 0
         h5mode = "r" if self.mode == "r" else ("w" if fresh else "r+")
         try:
-            self._file = h5py.File(path, h5mode, libver="earliest")
+            # best-effort locking: a second writer is refused, yet file systems without
+            # lock support (some network shares) still work
+            self._file = h5py.File(path, h5mode, libver="earliest", locking="best-effort")
         except (OSError, ValueError) as exc:
             raise StoreError(
                 f"raw record {path} cannot be opened ({exc}); the file is not an HDF5 file, "
@@ -297,6 +313,7 @@ class RawRecord:
             f.attrs["created"] = _dt.datetime.now(_dt.UTC).isoformat()
             f.create_group(SHOTS_GROUP)
             self.flush()
+            _fsync_dir(path.parent)  # the new file's directory entry is durable too
             return
         if _attr_str(f.attrs.get("format", "")) != FORMAT_NAME or SHOTS_GROUP not in f:
             self.close()
@@ -400,8 +417,10 @@ class RawRecord:
 
     def next_key(self) -> str:
         """A fresh sequential key (``"000000"``, ``"000001"``, ...) after every stored one."""
-        numbers = [int(k) for k in self._shots if k.isdigit()]
-        return f"{(max(numbers) + 1) if numbers else 0:06d}"
+        if self._next_number is None:
+            numbers = [int(k) for k in self._shots if k.isdigit()]
+            self._next_number = (max(numbers) + 1) if numbers else 0
+        return f"{self._next_number:06d}"
 
     def append_shot(
         self,
@@ -500,6 +519,8 @@ class RawRecord:
         except (OSError, ValueError, TypeError, KeyError) as exc:
             raise StoreError(f"cannot write shot {key} to {self.path}: {exc}") from exc
         self.flush()
+        if key.isdigit() and self._next_number is not None:
+            self._next_number = max(self._next_number, int(key) + 1)
         return f"{SHOTS_GROUP}/{key}"
 
     def read_shot(self, key_or_ref: str, *, verify: bool = True) -> RawShot:

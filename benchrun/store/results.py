@@ -120,7 +120,12 @@ class ResultsStore:
         self._engine = engine
         if create:
             with self._errors(f"cannot prepare the results tables in {self.public_url}"):
-                metadata.create_all(engine)
+                try:
+                    metadata.create_all(engine)
+                except IntegrityError:
+                    # two benches creating the tables of a new shared database at the same
+                    # moment: the other one won; check again (no-op when the tables exist)
+                    metadata.create_all(engine)
 
     # -- plumbing ------------------------------------------------------------------------
     @contextmanager

@@ -1,0 +1,110 @@
+"""Store cost per shot: durable HDF5 append (flush + fsync) and durable results-row commit.
+
+Writes ``--shots`` shots of ``--channels`` channels x ``--samples`` int16 codes (a smooth
+step with quantisation noise, like an 8-bit capture stored as int16) into a fresh raw record,
+once with gzip (level 1 + shuffle, the default) and once uncompressed, and stores the same
+number of result rows in a SQLite results database (WAL, synchronous=FULL) and, with ``--db``,
+in any other database URL. Prints milliseconds per shot and bytes per shot.
+
+Run: ``python benchmarks/store.py [--shots N] [--samples N] [--channels N] [--db URL]``
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import statistics
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from benchrun.records import ShotResult, TestPoint
+from benchrun.store import RawRecord, ResultsStore
+
+
+@dataclasses.dataclass(frozen=True)
+class _Channel:
+    codes: np.ndarray
+    gain: float
+    offset: float
+    code_min: int
+    code_max: int
+
+
+@dataclasses.dataclass(frozen=True)
+class _Probe:
+    scale: float
+    deskew_s: float = 0.0
+
+
+def _channels(rng: np.random.Generator, n_channels: int, n: int) -> dict[str, _Channel]:
+    t = np.arange(n)
+    out = {}
+    for c in range(n_channels):
+        wave = 100 * np.tanh((t - n * 0.4) / (30 + 10 * c)) + rng.normal(0, 1.5, n)
+        out[f"ch{c}"] = _Channel(np.round(wave).astype(np.int16), 0.01, 0.0, -128, 127)
+    return out
+
+
+def bench_raw(folder: Path, shots: int, n_channels: int, n: int, compression: str | None):
+    rng = np.random.default_rng(1)
+    probes = {f"ch{c}": _Probe(100.0) for c in range(n_channels)}
+    data = [_channels(rng, n_channels, n) for _ in range(min(shots, 8))]
+    path = folder / f"raw-{compression}.h5"
+    times = []
+    with RawRecord(path, "w", compression=compression) as raw:
+        for i in range(shots):
+            t0 = time.perf_counter()
+            raw.append_shot(raw.next_key(), 0.0, 1e-9, data[i % len(data)], probes,
+                            {"serial": f"S{i:04d}", "settings": {"bus_voltage_V": 600.0}})
+            times.append(time.perf_counter() - t0)
+    return statistics.median(times), path.stat().st_size / shots
+
+
+def bench_db(url: str, shots: int) -> float:
+    times = []
+    with ResultsStore(url) as store:
+        run_id = f"BENCH-{time.time_ns()}"
+        store.create_run(run_id, "KFR30-12", "L2611-A")
+        for i in range(shots):
+            shot = ShotResult(
+                run_id=run_id, part="KFR30-12", lot="L2611-A", serial=f"S{i:04d}",
+                point=TestPoint(0, 298.15, 600.0, 30.0), repeat=0, attempt=0,
+                timestamp="2031-04-02T10:00:00+00:00",
+                conditions={"if_A": 30.01, "didt_A_per_s": 5e8, "vr_V": 600.2,
+                            "temperature_K": 298.2},
+                metrics={k: 1e-7 * (i + 1) for k in ("trr_s", "ta_s", "tb_s", "qrr_C")},
+                raw_ref=f"shots/{i:06d}",
+            )
+            t0 = time.perf_counter()
+            store.add_shot(shot)
+            times.append(time.perf_counter() - t0)
+    return statistics.median(times)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--shots", type=int, default=200)
+    parser.add_argument("--samples", type=int, default=50_000)
+    parser.add_argument("--channels", type=int, default=4)
+    parser.add_argument("--db", default=None, help="extra database URL to time")
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        print(f"{args.shots} shots, {args.channels} channels x {args.samples} int16 samples")
+        for compression in ("gzip", None):
+            median, size = bench_raw(folder, args.shots, args.channels, args.samples,
+                                     compression)
+            print(f"raw record ({compression or 'uncompressed'}): {median * 1e3:.2f} ms/shot "
+                  f"(median, flush + fsync included), {size / 1e3:.1f} kB/shot")
+        sqlite = bench_db(f"sqlite:///{folder / 'results.db'}", args.shots)
+        print(f"results row (SQLite, WAL, synchronous=FULL): {sqlite * 1e3:.2f} ms/shot")
+        if args.db:
+            other = bench_db(args.db, args.shots)
+            print(f"results row ({args.db.split(':')[0]}): {other * 1e3:.2f} ms/shot")
+
+
+if __name__ == "__main__":
+    main()
