@@ -1,0 +1,82 @@
+"""Unit, display name and description of every metric key (used by the CLI, limits and report).
+
+Keys are those of ``RecoveryMetrics.to_dict()`` and ``SwitchingMetrics``; values are SI.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from benchrun.errors import GradingError
+
+
+@dataclass(frozen=True)
+class MetricMeta:
+    """What a metric key means.
+
+    Attributes
+    ----------
+    key
+        The metric key (``"qrr_C"``).
+    unit
+        SI unit symbol for :func:`benchrun.units.format_si` (``""`` for a ratio).
+    name
+        Short display name (``"Qrr"``).
+    description
+        One line with the definition and its source.
+    """
+
+    key: str
+    unit: str
+    name: str
+    description: str
+
+
+_TABLE = (
+    ("if_A", "A", "IF", "forward current on the plateau just before commutation"),
+    ("t0_s", "s", "t0", "instant the current falls through zero at the commutation"),
+    ("irrm_A", "A", "Irrm", "peak reverse-recovery current, -min(i)"),
+    ("ta_s", "s", "ta", "time from t0 to the reverse-current peak"),
+    ("tb_s", "s", "tb", "trr - ta"),
+    ("trr_s", "s", "trr",
+     "reverse-recovery time: t0 to the zero crossing of the line through 0.9·Irrm and "
+     "0.25·Irrm after the peak (IEC 60747-2 extrapolation)"),
+    ("softness", "", "S", "softness tb/ta"),
+    ("rrsf", "", "RRSF",
+     "reverse-recovery softness factor |di/dt at t0| / |steepest di/dt after the peak| "
+     "(JEDEC style)"),
+    ("qrr_C", "C", "Qrr",
+     "recovered charge -∫i dt from t0 to the 2 % point after the peak (IEC 60747-9 practice)"),
+    ("err_J", "J", "Err", "reverse-recovery energy ∫v·i dt from t0 to the 2 % point"),
+    ("didt_A_per_s", "A/s", "di/dt",
+     "commutation slope (0.5·IF + 0.5·Irrm) / (t(-0.5·Irrm) - t(+0.5·IF))"),
+    ("vrm_V", "V", "VRM", "peak reverse voltage from t0 to t2 + trr"),
+    ("vr_V", "V", "VR", "steady reverse voltage after the recovery"),
+    ("t_irrm_s", "s", "t(Irrm)", "absolute instant of the reverse-current peak"),
+    ("t_trr_s", "s", "t(trr)", "absolute instant at which trr ends"),
+    ("t2_s", "s", "t2", "absolute end of the Qrr / Err integration"),
+    ("eon_J", "J", "Eon", "switch turn-on energy"),
+    ("eon_recovery_J", "J", "Eon(rec)", "part of the switch turn-on energy due to diode recovery"),
+)
+
+#: Metric key → :class:`MetricMeta`.
+METRICS: dict[str, MetricMeta] = {k: MetricMeta(k, u, n, d) for k, u, n, d in _TABLE}
+
+
+def meta(key: str) -> MetricMeta:
+    """The :class:`MetricMeta` of ``key``; raises :class:`GradingError` for an unknown key."""
+    try:
+        return METRICS[key]
+    except KeyError:
+        known = ", ".join(METRICS)
+        raise GradingError(f"unknown metric {key!r}; known metrics: {known}") from None
+
+
+def unit_of(key: str) -> str:
+    """SI unit symbol of a metric key."""
+    return meta(key).unit
+
+
+def display_name(key: str) -> str:
+    """Short display name of a metric key."""
+    return meta(key).name

@@ -1,0 +1,505 @@
+"""Reverse-recovery metrics of a power diode from a double-pulse capture.
+
+Definitions (all results positive magnitudes, SI units; times by linear interpolation):
+
+- ``if_A``: forward current on the plateau just before the commutation (median).
+- ``t0_s``: falling zero crossing of the current at the commutation.
+- ``irrm_A``: peak reverse current, ``-min(i)`` during the recovery.
+- ``ta_s``: time from t0 to the current minimum.
+- ``trr_s``: t0 to the zero crossing of the straight line through the points where the current,
+  after its minimum, rises through ``-fit_high·Irrm`` and ``-fit_low·Irrm`` (0.9 / 0.25 by
+  default): the extrapolation method of IEC 60747-2 (rectifier diodes, reverse recovery time).
+  With ``trr_method="threshold"`` the end is the instant the current rises through
+  ``-trr_threshold_fraction·Irrm`` (the "current reaches a set value" criterion JEDEC also
+  allows).
+- ``tb_s = trr - ta`` and ``softness = tb / ta``.
+- ``rrsf``: reverse-recovery softness factor in the JEDEC (JESD24 / JESD282 style) sense,
+  ``|di/dt at t0| / |steepest di/dt after the minimum|``.
+- ``qrr_C``: ``-∫ i dt`` from t0 to t2, t2 being the first instant after the minimum at which
+  the current rises through ``-integration_end_fraction·Irrm`` (2 % by default, the integration
+  end used in IEC 60747-9 practice).
+- ``err_J``: ``∫ v·i dt`` over the same interval (energy dissipated in the diode).
+- ``didt_A_per_s``: ``(0.5·IF + 0.5·Irrm) / (t_b - t_a)``, t_a the falling crossing of
+  ``+0.5·IF``, t_b that of ``-0.5·Irrm``.
+- ``vrm_V``: peak reverse voltage ``max(-v)`` from t0 to ``t2 + trr``.
+- ``vr_V``: steady reverse voltage after the event (median of ``-v`` after that window).
+
+Measurement approach (see :mod:`benchrun.analysis.events`): the event is located on a coarse
+strided pass over the whole record; the metrics are measured on a window around it. On noisy
+data a light centred moving average (width ≈ 1/10 of the forward-current fall, ≤ 31 samples)
+is used only to *locate* crossings and the minimum; values are measured on the raw samples by
+least-squares lines / parabolas through the samples inside the noise band. On clean data the
+estimators are plain interpolation and plain sample extrema.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field, fields
+from typing import Any
+
+import numpy as np
+
+from benchrun.analysis import events as ev
+from benchrun.analysis.conditioning import lowpass
+from benchrun.errors import ConfigError, InputDataError, NoEventError
+
+#: Fewest samples accepted for a record.
+MIN_SAMPLES = 16
+#: Samples looked back before the end of the plateau (enough for the fall and a plateau).
+PLATEAU_LOOKBACK = 60_000
+#: First span after the plateau examined; grown by 4× until the event is complete.
+INITIAL_SPAN = 16_384
+#: Fewer samples than this across ta make Irrm and ta unreliable (common practice).
+MIN_SAMPLES_IN_TA = 10
+#: Locator width (samples) used to pin down the reverse-current peak on noisy data.
+PEAK_LOCATOR_WIDTH = 5
+
+FLAG_SHORT_PLATEAU = "short_plateau"
+FLAG_FEW_SAMPLES_TA = "few_samples_in_ta"
+FLAG_NEAR_END = "event_near_record_end"
+FLAG_INCOMPLETE = "recovery_incomplete"
+FLAG_TRR_NOT_FOUND = "trr_not_found"
+FLAG_TRR_LINE = "trr_line_no_crossing"
+FLAG_RRSF = "rrsf_not_found"
+FLAG_LOW_SNR = "low_signal_to_noise"
+FLAG_VR = "reverse_voltage_not_found"
+
+
+@dataclass(frozen=True)
+class RecoveryOptions:
+    """How the recovery is measured (every fraction is printed on the report).
+
+    Attributes
+    ----------
+    fit_high, fit_low
+        Fractions of Irrm defining the trr extrapolation line (IEC 60747-2: 0.9 and 0.25).
+    trr_method
+        ``"extrapolate"`` (line through the two points) or ``"threshold"`` (current rises
+        through ``-trr_threshold_fraction·Irrm``).
+    trr_threshold_fraction
+        End criterion of the threshold method (0.25 from memory of JEDEC practice).
+    integration_end_fraction
+        Qrr / Err integration end, fraction of Irrm (0.02, IEC 60747-9 practice).
+    commutation
+        Which current reversal of the record to analyse (0 = first, -1 = last).
+    lowpass_hz
+        Optional zero-phase low-pass cut-off applied to the analysis window.
+    """
+
+    fit_high: float = 0.9
+    fit_low: float = 0.25
+    trr_method: str = "extrapolate"
+    trr_threshold_fraction: float = 0.25
+    integration_end_fraction: float = 0.02
+    commutation: int = -1
+    lowpass_hz: float | None = None
+
+    def __post_init__(self) -> None:
+        if not 0.0 < self.fit_low < self.fit_high < 1.0:
+            raise ConfigError(
+                f"need 0 < fit_low < fit_high < 1, got {self.fit_low} and {self.fit_high}",
+                field="fit_low/fit_high",
+            )
+        if self.trr_method not in ("extrapolate", "threshold"):
+            raise ConfigError(
+                f"trr_method must be 'extrapolate' or 'threshold', got {self.trr_method!r}",
+                field="trr_method",
+            )
+        for name in ("trr_threshold_fraction", "integration_end_fraction"):
+            value = getattr(self, name)
+            if not 0.0 < value < 1.0:
+                raise ConfigError(f"must be between 0 and 1, got {value!r}", field=name)
+        if self.lowpass_hz is not None and not (
+            math.isfinite(self.lowpass_hz) and self.lowpass_hz > 0
+        ):
+            raise ConfigError(f"must be a positive frequency, got {self.lowpass_hz!r}",
+                              field="lowpass_hz")
+
+
+@dataclass(frozen=True)
+class RecoveryMetrics:
+    """Result of :func:`analyze_recovery` (SI units; ``None`` where not found)."""
+
+    if_A: float | None
+    t0_s: float | None
+    irrm_A: float | None
+    ta_s: float | None
+    tb_s: float | None
+    trr_s: float | None
+    softness: float | None
+    rrsf: float | None
+    qrr_C: float | None
+    err_J: float | None
+    didt_A_per_s: float | None
+    vrm_V: float | None
+    vr_V: float | None
+    t_irrm_s: float | None
+    t_trr_s: float | None
+    t2_s: float | None
+    flags: tuple[str, ...] = field(default=())
+
+    def to_dict(self) -> dict[str, Any]:
+        """Numeric keys plus ``flags`` as a list (JSON-ready)."""
+        data = asdict(self)
+        data["flags"] = list(self.flags)
+        return data
+
+    @classmethod
+    def metric_keys(cls) -> tuple[str, ...]:
+        """The numeric keys, in field order."""
+        return tuple(f.name for f in fields(cls) if f.name != "flags")
+
+
+class _TimeBase:
+    """Times of the record, given as an array or as ``t_start + k·dt``."""
+
+    def __init__(self, t: np.ndarray | None, dt: float | None, t_start: float) -> None:
+        self.t = t
+        self.dt = dt
+        self.t_start = t_start
+
+    def window(self, a: int, b: int) -> np.ndarray:
+        if self.t is not None:
+            return np.asarray(self.t[a:b], dtype=np.float64)
+        return self.t_start + self.dt * np.arange(a, b, dtype=np.float64)
+
+
+def _check_finite(name: str, x: np.ndarray) -> None:
+    if np.issubdtype(x.dtype, np.integer):
+        return
+    if math.isfinite(float(np.sum(x))):
+        return
+    bad = np.flatnonzero(~np.isfinite(x))
+    if bad.size:
+        raise InputDataError(f"{name} has a non-finite value (NaN or inf) at sample {bad[0]}")
+    raise InputDataError(f"{name} values are too large to be physical")
+
+
+def _check_increasing(t: np.ndarray) -> None:
+    chunk = 1 << 20
+    for a in range(0, t.size - 1, chunk):
+        seg = t[a : a + chunk + 1]
+        ok = seg[1:] > seg[:-1]
+        if not ok.all():
+            k = a + int(np.argmin(ok)) + 1
+            raise InputDataError(f"time is not strictly increasing at sample {k}")
+
+
+def _validate(t, v, i, dt, t_start) -> tuple[np.ndarray, np.ndarray, _TimeBase]:
+    v = np.asarray(v)
+    i = np.asarray(i)
+    for name, x in (("voltage", v), ("current", i)):
+        if x.ndim != 1:
+            raise InputDataError(f"{name} must be a 1-D array, got shape {x.shape}")
+        if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
+            raise InputDataError(f"{name} must be numeric, got dtype {x.dtype}")
+    if v.size != i.size:
+        raise InputDataError(f"voltage has {v.size} samples but current has {i.size}")
+    if i.size < MIN_SAMPLES:
+        raise InputDataError(f"record too short: {i.size} samples, need at least {MIN_SAMPLES}")
+    _check_finite("voltage", v)
+    _check_finite("current", i)
+    if t is not None:
+        t = np.asarray(t, dtype=np.float64)
+        if t.ndim != 1 or t.size != i.size:
+            raise InputDataError(f"time has shape {t.shape}, expected ({i.size},)")
+        _check_finite("time", t)
+        _check_increasing(t)
+        return v, i, _TimeBase(t, None, 0.0)
+    if dt is None or not (math.isfinite(dt) and dt > 0):
+        raise InputDataError(f"give a time array or a sample interval dt > 0, got dt={dt!r}")
+    if not math.isfinite(t_start):
+        raise InputDataError(f"t_start must be finite, got {t_start!r}")
+    return v, i, _TimeBase(None, float(dt), float(t_start))
+
+
+def analyze_recovery(
+    t: np.ndarray | None,
+    v: np.ndarray,
+    i: np.ndarray,
+    options: RecoveryOptions | None = None,
+    *,
+    dt: float | None = None,
+    t_start: float = 0.0,
+) -> RecoveryMetrics:
+    """Find the diode's reverse-recovery event in a record and measure it.
+
+    Parameters
+    ----------
+    t
+        Sample times [s], strictly increasing; or ``None`` with ``dt`` and ``t_start``.
+    v
+        Anode-to-cathode voltage [V].
+    i
+        Forward current [A], anode → cathode positive.
+    options
+        :class:`RecoveryOptions`; defaults per IEC 60747-2 / IEC 60747-9 practice.
+    dt, t_start
+        Sample interval and time of the first sample when ``t`` is None.
+
+    Returns
+    -------
+    RecoveryMetrics
+        Definitions in the module docstring; ``flags`` say what makes a value untrustworthy.
+
+    Raises
+    ------
+    InputDataError
+        Arrays of the wrong shape, too short, non-finite, or time not increasing.
+    NoEventError
+        No forward-current plateau followed by a current reversal in the record.
+    """
+    opts = options or RecoveryOptions()
+    v, i, timebase = _validate(t, v, i, dt, t_start)
+    plateaus, level, _step = ev.find_plateaus(i)
+    if not plateaus:
+        raise NoEventError(
+            "no forward-current plateau in the record (is the current anode → cathode positive?)"
+        )
+    candidates = [p for p in plateaus if p.ends_in_record]
+    if not candidates:
+        raise NoEventError("the forward current never commutates before the record ends")
+    wanted = opts.commutation if opts.commutation >= 0 else -opts.commutation - 1
+    ordered = candidates if opts.commutation >= 0 else candidates[::-1]
+    found = 0
+    for plateau in ordered:
+        metrics = _analyze_plateau_end(plateau, level, v, i, timebase, opts)
+        if metrics is None:
+            continue
+        if found == wanted:
+            return metrics
+        found += 1
+    if found:
+        raise NoEventError(
+            f"commutation {opts.commutation} requested but the record holds only {found}"
+        )
+    raise NoEventError("the forward current falls but never reverses: no recovery event")
+
+
+_NEED_MORE = object()
+
+
+def _analyze_plateau_end(plateau, level, v, i, timebase, opts) -> RecoveryMetrics | None:
+    a = max(plateau.start, plateau.end - PLATEAU_LOOKBACK)
+    hard_stop = plateau.next_start
+    span = INITIAL_SPAN + 4 * ev.coarse_step(i.size)
+    while True:
+        b = min(hard_stop, plateau.end + span)
+        result = _measure_window(a, b, b < hard_stop, plateau, level, v, i, timebase, opts)
+        if result is not _NEED_MORE:
+            return result
+        span *= 4
+
+
+def _odd(n: float) -> int:
+    k = int(n)
+    return k if k % 2 else k + 1
+
+
+def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
+    tw = timebase.window(a, b)
+    iw = np.asarray(i[a:b], dtype=np.float64)
+    vw = np.asarray(v[a:b], dtype=np.float64)
+    n = iw.size
+    if opts.lowpass_hz is not None:
+        dt_w = (tw[-1] - tw[0]) / (n - 1)
+        iw = lowpass(iw, dt_w, opts.lowpass_hz)
+        vw = lowpass(vw, dt_w, opts.lowpass_hz)
+    flags: list[str] = []
+    end_local = min(plateau.end - a, n)
+
+    # Rough pass on the raw samples: where the current leaves the plateau and crosses zero.
+    k_half = ev.last_above(iw, 0.5 * level, 0, end_local)
+    if k_half is None:
+        return None
+    k_zero = ev.first_at_or_below(iw, 0.0, k_half, n)
+    if k_zero is None:
+        return _NEED_MORE if can_grow else None
+    fall = max(1, k_zero - k_half)
+
+    # Plateau just before the fall: IF and the noise level of both channels.
+    p_end = k_half - 2 * fall - 2
+    p_len = int(min(max(20 * fall, 64), 20_000))
+    p_start = max(0, p_end - p_len)
+    if p_end - p_start < 8:
+        flags.append(FLAG_SHORT_PLATEAU)
+        p_start, p_end = 0, max(1, k_half - fall // 2)
+    i_if = float(np.median(iw[p_start:p_end]))
+    sigma = ev.robust_sigma(iw[p_start:p_end])
+    sigma_v = ev.robust_sigma(vw[p_start:p_end])
+    if not i_if > 0:
+        return None
+    noisy = sigma > 1e-6 * i_if
+    width = min(_odd(fall / 10), 31) if noisy else 1
+    s = ev.moving_average(iw, width)
+    sigma_s = sigma / math.sqrt(width) if noisy else 0.0
+
+    # Refined fall: last locator sample above 0.5·IF before the first zero crossing.
+    k0 = ev.first_at_or_below(s, 0.0, k_half, n)
+    if k0 is None:
+        return _NEED_MORE if can_grow else None
+    k_half = ev.last_above(s, 0.5 * i_if, 0, k0)
+    if k_half is None:
+        return None
+    k0 = ev.first_at_or_below(s, 0.0, k_half, n)
+    band_if = min(2.0 * sigma, 0.1 * i_if) if noisy else 0.0
+    t_a, _ = ev.crossing_time(tw, iw, s, k_half + 1, 0.5 * i_if, band_if)
+    t0, slope_t0 = ev.crossing_time(tw, iw, s, k0, 0.0, band_if)
+
+    # The reverse-current minimum.
+    k_min = k0 + int(np.argmin(s[k0:]))
+    if s[k_min] > -max(4.0 * sigma_s, 1e-3 * i_if):
+        return _NEED_MORE if can_grow else None
+    if k_min >= n - 2 - width and can_grow:
+        return _NEED_MORE
+    # The peak may be much sharper than the fall (a snap): a narrow locator pins it down when
+    # no parabola fits the wide neighbourhood (see events.extremum).
+    width_pk = min(width, PEAK_LOCATOR_WIDTH)
+    s_pk = ev.moving_average(iw, width_pk)
+    lo_pk, hi_pk = max(k0, k_min - width), min(n, k_min + width + 1)
+    k_pk = lo_pk + int(np.argmin(s_pk[lo_pk:hi_pk]))
+    t_irrm, i_min = ev.extremum(
+        tw, iw, [(s, k_min, 2.0 * sigma, width // 2), (s_pk, k_pk, sigma, width_pk // 2)],
+        sigma if noisy else 0.0, 1,
+    )
+    k_min = min(k_min, k_pk)
+    irrm = -i_min
+    if not irrm > 0:
+        return None
+    dt_local = (tw[-1] - tw[0]) / (n - 1)
+    if noisy and irrm < 10.0 * sigma:
+        flags.append(FLAG_LOW_SNR)
+
+    # Rising crossings after the minimum. The recovery after the peak may be far faster than
+    # the forward-current fall (a snap), so the locator width here follows the rise time.
+    band_r = min(2.0 * sigma, 0.05 * irrm) if noisy else 0.0
+    band_end = min(2.0 * sigma, 0.5 * opts.integration_end_fraction * irrm) if noisy else 0.0
+    k_rise = ev.first_at_or_above(s_pk, -0.5 * irrm, k_min, n)
+    rise = (k_rise - k_min) if k_rise is not None else n - k_min
+    width_r = min(width, _odd(rise / 4))
+    s_r = ev.moving_average(iw, width_r) if width_r != width else s
+    k_tail = ev.first_at_or_above(s_r, -opts.fit_low * irrm, k_min, n)
+    tail = (k_tail - k_min) if k_tail is not None else n - k_min
+    width_end = min(width, _odd(tail / 4))
+    s_end = ev.moving_average(iw, width_end) if width_end != width else s
+
+    def rising(fraction: float, band: float, loc: np.ndarray = s_r) -> float | None:
+        k = ev.first_at_or_above(loc, -fraction * irrm, k_min, n)
+        if k is None or k == 0:
+            return None
+        return ev.crossing_time(tw, iw, loc, k, -fraction * irrm, band)[0]
+
+    t2 = rising(opts.integration_end_fraction, band_end, s_end)
+    if t2 is None and can_grow:
+        return _NEED_MORE
+    t_trr = None
+    if opts.trr_method == "extrapolate":
+        t_hi = rising(opts.fit_high, band_r)
+        t_lo = rising(opts.fit_low, band_r)
+        if t_hi is None or t_lo is None:
+            flags.append(FLAG_TRR_NOT_FOUND)
+        elif t_lo < t_hi:
+            flags.append(FLAG_TRR_LINE)
+        else:
+            t_trr = t_lo + (t_lo - t_hi) * opts.fit_low / (opts.fit_high - opts.fit_low)
+    else:
+        t_trr = rising(opts.trr_threshold_fraction, band_r)
+        if t_trr is None:
+            flags.append(FLAG_TRR_NOT_FOUND)
+
+    ta = t_irrm - t0
+    trr = t_trr - t0 if t_trr is not None else None
+    tb = trr - ta if trr is not None else None
+    softness = tb / ta if tb is not None and ta > 0 else None
+    if ta < MIN_SAMPLES_IN_TA * dt_local:
+        flags.append(FLAG_FEW_SAMPLES_TA)
+
+    # di/dt between +0.5·IF and -0.5·Irrm.
+    didt = None
+    kb = ev.first_at_or_below(s, -0.5 * irrm, k0, k_min + 1)
+    if kb is not None and kb > 0:
+        t_b, _ = ev.crossing_time(tw, iw, s, kb, -0.5 * irrm, band_r)
+        if t_b > t_a:
+            didt = (0.5 * i_if + 0.5 * irrm) / (t_b - t_a)
+
+    # Softness factor: slope at t0 over the steepest slope after the minimum.
+    rrsf = None
+    k_stop = np.searchsorted(tw, t2) if t2 is not None else n
+    h = max(1, width_r // 2)
+    if k_stop - k_min > 2 * h:
+        seg = slice(k_min, int(k_stop))
+        lo = np.arange(seg.start, seg.stop) - h
+        hi = np.arange(seg.start, seg.stop) + h
+        ok = (lo >= 0) & (hi < n)
+        lo, hi = lo[ok], hi[ok]
+        if lo.size:
+            slopes = (s_r[hi] - s_r[lo]) / (tw[hi] - tw[lo])
+            steepest = float(slopes.max())
+            if steepest > 0 and slope_t0 != 0.0:
+                rrsf = abs(slope_t0) / steepest
+    if rrsf is None:
+        flags.append(FLAG_RRSF)
+
+    # Charge and energy to t2.
+    qrr = err = None
+    if t2 is None:
+        flags.append(FLAG_INCOMPLETE)
+    else:
+        qrr = -ev.integrate(tw, iw, t0, t2)
+        err = ev.integrate(tw, vw * iw, t0, t2)
+
+    # Peak and steady reverse voltage.
+    t_last = float(tw[-1])
+    t_ref = t2 if t2 is not None else t_irrm
+    t_vrm_end = t_ref + (trr if trr is not None else max(t_ref - t0, 0.0))
+    vr_span = max(5.0 * (t_ref - t0), 32 * dt_local)
+    if t_vrm_end + vr_span > t_last and can_grow:
+        return _NEED_MORE
+    if t_vrm_end > t_last or t2 is None:
+        flags.append(FLAG_NEAR_END)
+    noisy_v = sigma_v > 1e-9 * max(1.0, float(np.max(np.abs(vw))))
+    width_v = width if noisy_v else 1
+    k_v0 = int(np.searchsorted(tw, t0))
+    k_v1 = int(np.searchsorted(tw, t_vrm_end, side="right"))
+    vrm = None
+    if k_v1 > k_v0:
+        sv = ev.moving_average(vw, width_v)
+        k_vmin = k_v0 + int(np.argmin(sv[k_v0:k_v1]))
+        sv_pk = ev.moving_average(vw, min(width_v, PEAK_LOCATOR_WIDTH))
+        lo_v, hi_v = max(k_v0, k_vmin - width_v), min(k_v1, k_vmin + width_v + 1)
+        k_vpk = lo_v + int(np.argmin(sv_pk[lo_v:hi_v]))
+        vrm = -ev.extremum(
+            tw, vw,
+            [(sv, k_vmin, 2.0 * sigma_v, width_v // 2),
+             (sv_pk, k_vpk, sigma_v, min(width_v, PEAK_LOCATOR_WIDTH) // 2)],
+            sigma_v if noisy_v else 0.0, 1,
+        )[1]
+    k_r1 = int(np.searchsorted(tw, t_vrm_end + vr_span, side="right"))
+    vr = None
+    if k_r1 - k_v1 >= 8:
+        vr = float(-np.median(vw[k_v1:k_r1]))
+    else:
+        flags.append(FLAG_VR)
+        if FLAG_NEAR_END not in flags:
+            flags.append(FLAG_NEAR_END)
+
+    return RecoveryMetrics(
+        if_A=i_if,
+        t0_s=t0,
+        irrm_A=irrm,
+        ta_s=ta,
+        tb_s=tb,
+        trr_s=trr,
+        softness=softness,
+        rrsf=rrsf,
+        qrr_C=qrr,
+        err_J=err,
+        didt_A_per_s=didt,
+        vrm_V=vrm,
+        vr_V=vr,
+        t_irrm_s=t_irrm,
+        t_trr_s=t_trr,
+        t2_s=t2,
+        flags=tuple(flags),
+    )
