@@ -1,0 +1,167 @@
+"""``benchrun demo [--out DIR]``: the whole workflow on the simulated bench, in about a minute.
+
+Starts the simulated bench in-process, runs the example sequence on an invented lot of
+KFR30-12 fast-recovery diodes (Korvane Power Components, invented) at 25 °C and 125 °C —
+two of the ten devices are outliers — grades the lot against the example limits, stores
+everything, and writes a signed acceptance report. With ``--with-sic`` it also tests a small
+lot of KSC20-12 SiC Schottky diodes and compares the recovery losses of the two parts.
+
+The signing key is a throwaway demo key made in DIR/keys on first use; its passphrase is
+taken from BENCHRUN_KEY_PASSPHRASE or is the demo default printed below — demo only, never
+for real reports.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+from benchrun.errors import ConfigError
+from benchrun.runner.execute import RunOptions, RunOutcome
+from benchrun.runner.launch import run_on_bench
+
+#: Passphrase of the throwaway demo signing key when BENCHRUN_KEY_PASSPHRASE is not set.
+#: DEMO ONLY: it is printed on the terminal and is not a secret.
+DEMO_PASSPHRASE = "demo-only-not-a-secret"
+DEMO_SIGNER = ("Q. Ashdown", "Quality Engineer (demo signature)",
+               "Korvane Power Components (invented, demo)")
+SEQUENCE_SI = "kfr30-12-demo.yaml"
+SEQUENCE_SIC = "ksc20-12-demo.yaml"
+BENCH = "bench-sim.yaml"
+
+
+def register(subparsers: Any) -> None:
+    parser = subparsers.add_parser(
+        "demo", help="run, grade and report an invented lot on the simulated bench",
+        description=__doc__.split("\n\n", 1)[1] if __doc__ else None,
+    )
+    parser.add_argument("--out", type=Path, default=Path("benchrun-demo"), metavar="DIR",
+                        help="output folder (default: ./benchrun-demo)")
+    parser.add_argument("--with-sic", action="store_true",
+                        help="also test a KSC20-12 SiC lot and compare recovery losses")
+    parser.add_argument("--no-progress", action="store_true", help="no live progress display")
+    parser.set_defaults(func=run)
+
+
+def sequences_dir() -> Path:
+    """The example files shipped beside the package (``sequences/`` of the source tree)."""
+    import benchrun
+
+    folder = Path(benchrun.__file__).resolve().parents[1] / "sequences"
+    if not (folder / SEQUENCE_SI).is_file():
+        raise ConfigError(f"example sequences not found in {folder}; run the demo from a "
+                          "source checkout of benchrun")
+    return folder
+
+
+def demo_signer(keys_dir: Path) -> tuple[Any, Path, str]:
+    """Load the demo signing identity, making it on first use. Returns (signer, cert, how)."""
+    from benchrun.report.keys import PASSPHRASE_ENV, load_signer, new_identity
+
+    passphrase = os.environ.get(PASSPHRASE_ENV) or DEMO_PASSPHRASE
+    how = (f"from {PASSPHRASE_ENV}" if os.environ.get(PASSPHRASE_ENV)
+           else f"demo default '{DEMO_PASSPHRASE}' (DEMO ONLY)")
+    name, role, org = DEMO_SIGNER
+    key = keys_dir / "q-ashdown.key.pem"
+    cert = keys_dir / "q-ashdown.cert.pem"
+    if not key.is_file() or not cert.is_file():
+        files = new_identity(name, keys_dir, passphrase, role=role, organisation=org,
+                             valid_days=365, overwrite=True)
+        key, cert = files.key_path, files.cert_path
+    return load_signer(key, cert, passphrase, role=role), cert, how
+
+
+def _run(sequence: Path, bench: Path, out: Path, progress: bool) -> RunOutcome:
+    options = RunOptions(out_dir=out, show_progress=progress)
+    return run_on_bench(sequence, bench, options)
+
+
+def _grade(outcome: RunOutcome) -> tuple[Any, Any]:
+    from benchrun.config.limits import load_limits
+    from benchrun.grading import grade_lot
+    from benchrun.store.rundata import LIMITS_FILE, load_run
+
+    run = load_run(outcome.run_dir)
+    lot = grade_lot(run.shots, load_limits(outcome.run_dir / LIMITS_FILE))
+    return run, lot
+
+
+def _losses(run: Any) -> Any:
+    from benchrun.loss import estimate_losses
+
+    freqs = run.manifest.get("switching_frequencies_Hz") or []
+    return estimate_losses(run.shots, freqs) if freqs else None
+
+
+def run(args: argparse.Namespace) -> int:
+    from benchrun.report.render import render_report
+
+    started = time.perf_counter()
+    out: Path = args.out.resolve()
+    out.mkdir(parents=True, exist_ok=True)
+    folder = sequences_dir()
+    progress = not args.no_progress and sys.stderr.isatty()
+    print("benchrun demo: simulated bench, invented parts and lots (Korvane Power Components)")
+    print(f"  sequence {folder / SEQUENCE_SI}\n  bench    {folder / BENCH}")
+
+    outcome = _run(folder / SEQUENCE_SI, folder / BENCH, out / "runs", progress)
+    run_data, lot = _grade(outcome)
+    loss = _losses(run_data)
+    signer, cert, how = demo_signer(out / "keys")
+    report = render_report(run_data, lot, outcome.run_dir / "report.pdf", signer=signer,
+                           loss=loss)
+
+    comparison = None
+    sic = None
+    if args.with_sic:
+        sic = _run(folder / SEQUENCE_SIC, folder / BENCH, out / "runs", progress)
+        sic_run, sic_lot = _grade(sic)
+        sic_loss = _losses(sic_run)
+        render_report(sic_run, sic_lot, sic.run_dir / "report.pdf", signer=signer,
+                      loss=sic_loss)
+        if loss is not None and sic_loss is not None:
+            from benchrun.loss import compare
+
+            comparison = compare(sic_loss, loss)
+
+    elapsed = time.perf_counter() - started
+    print()
+    print(f"lot {run_data.manifest.get('lot')} ({run_data.manifest.get('part')}): "
+          f"disposition {lot.disposition.upper()}")
+    for reason in lot.reasons:
+        print(f"  - {reason}")
+    for device in lot.devices:
+        print(f"  {device.serial:16s} {device.verdict}")
+    print()
+    print(f"run folder      {outcome.run_dir}")
+    print(f"  raw record    {outcome.run_dir / 'raw.h5'}")
+    print(f"  results DB    {outcome.store_url}")
+    print(f"  run log       {outcome.run_dir / 'run.log'}")
+    print(f"  manifest      {outcome.run_dir / 'run.json'}")
+    print(f"  report (signed PDF) {report}")
+    print(f"signing certificate {cert}  (key passphrase: {how})")
+    if outcome.safe_state is not None:
+        print(outcome.safe_state.describe())
+    if sic is not None:
+        print(f"SiC run folder  {sic.run_dir}  (report {sic.run_dir / 'report.pdf'})")
+    if comparison is not None:
+        _print_comparison(comparison)
+    print(f"verify with:    benchrun verify {report} --cert {cert} --data {outcome.run_dir}")
+    print(f"demo finished in {elapsed:.1f} s")
+    return 0
+
+
+def _print_comparison(comparison: Any) -> None:
+    rows = getattr(comparison, "rows", ())
+    if not rows:
+        print("loss comparison: no matching test conditions")
+        return
+    print("recovery loss comparison (energy per commutation, power at fsw):")
+    for row in rows:
+        print(f"  {row.part_a} vs {row.part_b} at {row.temperature_K - 273.15:g} degC, "
+              f"{row.vr_V:g} V, {row.if_A:g} A: {row.energy_a_J * 1e6:.1f} uJ vs "
+              f"{row.energy_b_J * 1e6:.1f} uJ")
