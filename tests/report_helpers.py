@@ -11,6 +11,7 @@ import shutil
 from pathlib import Path
 
 import numpy as np
+import pytest
 
 from benchrun.analysis.pipeline import ChannelData, ProbeCalibration, analyze_channels
 from benchrun.records import ShotResult, TestPoint
@@ -20,6 +21,39 @@ from benchrun.store.rundata import default_store_url, write_manifest
 
 ROOT = Path(__file__).resolve().parents[1]
 PASSPHRASE = "correct horse battery"
+
+#: Limits of the invented KFR30-12 for these synthetic captures (own copy, so changes to the
+#: demo limits file do not change what these tests expect).
+LIMITS_YAML = """\
+part: KFR30-12
+conditions:
+  - {name: 25C, temperature: 25 degC, forward_current: 30 A, reverse_voltage: 600 V}
+  - {name: 125C, temperature: 125 degC, forward_current: 30 A, reverse_voltage: 600 V}
+tolerances: {forward_current: 5 %, didt: 25 %, reverse_voltage: 5 %, temperature: 3 K}
+limits:
+  - {metric: vrm_V, max: 960 V}
+  - {metric: softness, min: 0.35}
+  - {metric: trr_s, condition: 25C, max: 250 ns}
+  - {metric: irrm_A, condition: 25C, max: 25 A}
+  - {metric: qrr_C, condition: 25C, max: 3.0 uC}
+  - {metric: err_J, condition: 25C, max: 1.0 mJ}
+  - {metric: trr_s, condition: 125C, max: 400 ns}
+  - {metric: irrm_A, condition: 125C, max: 35 A}
+  - {metric: qrr_C, condition: 125C, max: 6.5 uC}
+  - {metric: err_J, condition: 125C, max: 2.0 mJ}
+decision_rule: {rule: guarded, guard_factor: 1}
+uncertainty:
+  coverage_factor: 2
+  scope_vertical_accuracy: 1.5 %
+  current_sensor_tolerance: 1 %
+  voltage_probe_tolerance: 2 %
+  deskew: 0.5 ns
+bins:
+  metric: qrr_C
+  condition: 125C
+  classes: [{name: Q1, max: 4.5 uC}, {name: Q2, max: 5.5 uC}, {name: Q3, max: 6.5 uC}]
+lot: {acceptance_number: 0, indeterminate: nonconforming, invalid: nonconforming}
+"""
 
 POINTS = (
     TestPoint(index=0, temperature_K=298.15, bus_voltage_V=600.0, forward_current_A=30.0,
@@ -61,7 +95,7 @@ def build_run(tmp_path: Path, n_devices: int = 4, *, failing: tuple[int, ...] = 
     run_dir.mkdir(parents=True)
     shutil.copy(ROOT / "sequences" / "kfr30-12-demo.yaml", run_dir / "sequence.yaml")
     shutil.copy(ROOT / "sequences" / "bench-sim.yaml", run_dir / "bench.yaml")
-    shutil.copy(ROOT / "limits" / "KFR30-12.yaml", run_dir / "limits.yaml")
+    (run_dir / "limits.yaml").write_text(LIMITS_YAML, encoding="utf-8")
     url = default_store_url(run_dir)
     rng = np.random.default_rng(7)
     with RawRecord(run_dir / "raw.h5", "w") as raw, ResultsStore(url) as store:
@@ -114,3 +148,32 @@ def make_signer(tmp_path: Path):
     files = new_identity("Q. Ashdown", tmp_path / "keys", PASSPHRASE, role="Quality Engineer",
                          organisation="Korvane Power Components")
     return files, load_signer(files.key_path, files.cert_path, PASSPHRASE)
+
+
+class SignedRun:
+    """A rendered, signed report over a stored run (built once per test session)."""
+
+    def __init__(self, base: Path, n_devices: int, failing: tuple[int, ...]) -> None:
+        from benchrun.grading import grade_lot, load_limits
+        from benchrun.report.render import render_report
+        from benchrun.store.rundata import load_run
+
+        self.base = base
+        self.run_dir = build_run(base, n_devices, failing=failing)
+        self.identity, self.signer = make_signer(base)
+        self.run = load_run(self.run_dir)
+        self.lot = grade_lot(self.run.shots, load_limits(self.run.limits_path))
+        self.pdf = render_report(self.run, self.lot, self.run_dir / "report.pdf",
+                                 signer=self.signer)
+
+    def copy(self, dest: Path) -> Path:
+        """A private copy of the run folder (with its report) for tampering."""
+        target = dest / self.run_dir.name
+        shutil.copytree(self.run_dir, target)
+        return target
+
+
+@pytest.fixture(scope="session")
+def signed_run(tmp_path_factory) -> SignedRun:
+    """30 devices at 25 °C and 125 °C, two of them non-conforming, report signed."""
+    return SignedRun(tmp_path_factory.mktemp("signed-run"), 30, (4, 17))

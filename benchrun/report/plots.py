@@ -111,9 +111,9 @@ def waveform_figure(
     tw, vw, iw = _decimate((t[sel] - origin), v[sel], i[sel])
     t_scale, t_unit = nice_unit_scale(np.array([tw[0], tw[-1]]), "s")
 
-    fig = new_figure(width_pt, height_pt)
+    fig = new_figure(width_pt, height_pt, left=46, right=10, bottom=30, top=22, hspace_pt=10)
     ax_i, ax_v = fig.subplots(2, 1, sharex=True, height_ratios=(1.25, 1))
-    fig.suptitle(title, fontsize=9.5, fontweight="bold")
+    fig.suptitle(title, fontsize=9.5, fontweight="bold", y=1 - 4 / height_pt, va="top")
     ax_i.plot(tw * t_scale, iw, color=PLOT_CURRENT, lw=0.9, label="diode current i")
     ax_v.plot(tw * t_scale, vw, color=PLOT_VOLTAGE, lw=0.9, label="diode voltage v")
     for ax in (ax_i, ax_v):
@@ -179,7 +179,7 @@ def distribution_figure(
     limits
         Condition label → (min, max) limit, ``None`` where there is none.
     """
-    fig = new_figure(width_pt, height_pt)
+    fig = new_figure(width_pt, height_pt, left=38, right=8, bottom=28, top=16)
     ax = fig.add_subplot(1, 1, 1)
     every = [finite(vals) for vals in groups.values()]
     extra = [x for pair in limits.values() for x in pair if x is not None]
@@ -235,7 +235,7 @@ def trend_figure(
     per_device
         Serial → list of (temperature in K, value in SI units).
     """
-    fig = new_figure(width_pt, height_pt)
+    fig = new_figure(width_pt, height_pt, left=38, right=8, bottom=28, top=16)
     ax = fig.add_subplot(1, 1, 1)
     values = finite(v for pts in per_device.values() for _, v in pts)
     scale, shown = nice_unit_scale(values, unit)
@@ -275,7 +275,7 @@ def temperature_log_figure(
     shots
         (shot number, measured temperature K or None, requested temperature K).
     """
-    fig = new_figure(width_pt, height_pt)
+    fig = new_figure(width_pt, height_pt, left=44, right=10, bottom=28, top=8)
     ax = fig.add_subplot(1, 1, 1)
     order = [n for n, _, _ in shots]
     measured = [np.nan if m is None else m - 273.15 for _, m, _ in shots]
