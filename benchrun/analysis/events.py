@@ -252,8 +252,10 @@ def extremum(
     sigma
         Noise standard deviation; ``0`` (clean data) skips the fits.
     half_width
-        When no fit is accepted: the smallest raw sample within ``half_width`` of the last
-        locator's minimum.
+        When no fit is accepted: on noisy data the median of the raw samples within
+        ``half_width`` of the last locator's minimum (a median does not pick the noisiest
+        sample, and ignores the one sample a snap puts on the steep side); on clean data the
+        smallest raw sample there.
 
     Returns
     -------
@@ -290,6 +292,11 @@ def extremum(
         if np.polyval(np.polyder(coef, 2), uv) > 0.0 and rise >= 0.25 * band:
             return float(t_mid + uv * t_half), xv
     s, k, _, _ = locators[-1]
+    if sigma > 0.0 and half_width > 0:
+        # median of the samples under the narrow locator: no selection of the noisiest sample
+        lo = max(0, k - half_width)
+        hi = min(x.size, k + half_width + 1)
+        return float(t[k]), float(np.median(x[lo:hi]))
     lo = max(0, k - half_width)
     hi = min(x.size, k + half_width + 1)
     j = lo + int(np.argmin(x[lo:hi]))

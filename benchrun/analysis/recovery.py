@@ -361,7 +361,7 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
     k_pk = lo_pk + int(np.argmin(s_pk[lo_pk:hi_pk]))
     t_irrm, i_min = ev.extremum(
         tw, iw, [(s, k_min, 2.0 * sigma, width // 2), (s_pk, k_pk, sigma, width_pk // 2)],
-        sigma if noisy else 0.0, 1,
+        sigma if noisy else 0.0, width_pk // 2 if noisy else 1,
     )
     k_min = min(k_min, k_pk)
     irrm = -i_min
@@ -473,7 +473,8 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
             tw, vw,
             [(sv, k_vmin, 2.0 * sigma_v, width_v // 2),
              (sv_pk, k_vpk, sigma_v, min(width_v, PEAK_LOCATOR_WIDTH) // 2)],
-            sigma_v if noisy_v else 0.0, 1,
+            sigma_v if noisy_v else 0.0,
+            min(width_v, PEAK_LOCATOR_WIDTH) // 2 if noisy_v else 1,
         )[1]
     k_r1 = int(np.searchsorted(tw, t_vrm_end + vr_span, side="right"))
     vr = None
