@@ -18,11 +18,12 @@ import os
 import sys
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from benchrun.errors import ConfigError
-from benchrun.runner.execute import RunOptions, RunOutcome
-from benchrun.runner.launch import run_on_bench
+
+if TYPE_CHECKING:
+    from benchrun.runner.execute import RunOutcome
 
 #: Passphrase of the throwaway demo signing key when BENCHRUN_KEY_PASSPHRASE is not set.
 #: DEMO ONLY: it is printed on the terminal and is not a secret.
@@ -76,6 +77,9 @@ def demo_signer(keys_dir: Path) -> tuple[Any, Path, str]:
 
 
 def _run(sequence: Path, bench: Path, out: Path, progress: bool) -> RunOutcome:
+    from benchrun.runner.execute import RunOptions
+    from benchrun.runner.launch import run_on_bench
+
     options = RunOptions(out_dir=out, show_progress=progress)
     return run_on_bench(sequence, bench, options)
 

@@ -12,11 +12,12 @@ from __future__ import annotations
 import argparse
 import sys
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from benchrun.runner.execute import RunOptions, RunOutcome
-from benchrun.runner.launch import run_on_bench
 from benchrun.runner.simbench import DEFAULT_SPEEDUP
+
+if TYPE_CHECKING:
+    from benchrun.runner.execute import RunOutcome
 
 
 def register(subparsers: Any) -> None:
@@ -65,6 +66,9 @@ def print_outcome(outcome: RunOutcome) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from benchrun.runner.execute import RunOptions
+    from benchrun.runner.launch import run_on_bench
+
     resume: bool | Path = args.resume if args.resume is True else (
         Path(args.resume) if args.resume else False)
     options = RunOptions(

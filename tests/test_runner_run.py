@@ -1,0 +1,159 @@
+"""End-to-end runs on the simulated bench: stored shots, conditions, safe state, manifest."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from test_runner_support import BENCH, write_sequence
+
+from benchrun.analysis import analyze_channels
+from benchrun.config import load_bench, load_sequence
+from benchrun.errors import CalibrationOverdue, ConfigError, SafetyError
+from benchrun.runner.execute import RunOptions, run_sequence
+from benchrun.runner.shots import recovery_options
+from benchrun.runner.simbench import simulated_bench
+from benchrun.store.raw import RawRecord
+from benchrun.store.rundata import load_run
+
+
+def run_sim(seq_path, out, bench_path=BENCH, **kw):
+    bench = load_bench(bench_path)
+    seq = load_sequence(seq_path)
+    with simulated_bench(bench, seq) as sim:
+        options = RunOptions(out_dir=out, sim_resources=sim.resources, clock=sim.clock,
+                             ratings_lookup=sim.ratings, show_progress=False, **kw)
+        outcome = run_sequence(seq_path, bench_path, options)
+        state = (sim.bench.instruments["pulse"].output_on, sim.bench.supply.output_on,
+                 sim.bench.supply.bus_voltage())
+    return outcome, state
+
+
+@pytest.fixture(scope="module")
+def two_temperature_run(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("run")
+    seq = write_sequence(folder, repeats=2)
+    return run_sim(seq, folder / "out")
+
+
+@pytest.mark.slow
+def test_every_planned_shot_stored_once(two_temperature_run):
+    outcome, _ = two_temperature_run
+    assert outcome.status == "complete"
+    run = load_run(outcome.run_dir)
+    tests = {(s.serial, s.point.index, s.repeat) for s in run.shots if s.valid}
+    # 2 devices x 2 temperatures x 2 repeats, each with a valid shot
+    assert len(tests) == 8
+    identities = [(s.serial, s.point.index, s.repeat, s.attempt) for s in run.shots]
+    assert len(identities) == len(set(identities))
+    with RawRecord(outcome.run_dir / "raw.h5", "r") as raw:
+        assert sorted(raw.keys()) == sorted(s.raw_ref.split("/", 1)[1] for s in run.shots)
+
+
+@pytest.mark.slow
+def test_measured_conditions_hit_the_targets(two_temperature_run):
+    # the simulated inductor is 4 % off its nameplate: the trim must correct t1 so the
+    # simulator's physics (an independent circuit solution) delivers 30 A +- 5 %
+    outcome, _ = two_temperature_run
+    run = load_run(outcome.run_dir)
+    for shot in run.shots:
+        if not shot.valid:
+            continue
+        assert shot.conditions["if_A"] == pytest.approx(30.0, rel=0.05)
+        assert shot.conditions["vr_V"] == pytest.approx(600.0, rel=0.05)
+        assert abs(shot.conditions["temperature_K"] - shot.point.temperature_K) <= 1.0
+        assert shot.acquisition["adc_bits"] == pytest.approx(8.0, abs=0.01)
+    assert outcome.trim_shots >= 1
+
+
+@pytest.mark.slow
+def test_outlier_shows_more_stored_charge_and_heat_raises_it(two_temperature_run):
+    # physics: longer carrier lifetime (outlier 004) and higher temperature both raise Qrr
+    # (tau(T) grows with T, DESIGN §4); a runner that mixed up devices or points fails this
+    outcome, _ = two_temperature_run
+    run = load_run(outcome.run_dir)
+
+    def qrr(serial, celsius):
+        values = [s.metrics["qrr_C"] for s in run.shots if s.valid and s.serial == serial
+                  and abs(s.point.temperature_K - 273.15 - celsius) < 1]
+        return float(np.mean(values))
+
+    assert qrr("KFR-2611A-004", 25) > 1.2 * qrr("KFR-2611A-001", 25)
+    assert qrr("KFR-2611A-001", 125) > 1.3 * qrr("KFR-2611A-001", 25)
+
+
+@pytest.mark.slow
+def test_reanalysis_of_raw_record_reproduces_stored_metrics(two_temperature_run):
+    outcome, _ = two_temperature_run
+    run = load_run(outcome.run_dir)
+    seq = load_sequence(outcome.run_dir / "sequence.yaml")
+    with RawRecord(outcome.run_dir / "raw.h5", "r") as raw:
+        for shot in run.shots[:4]:
+            stored = raw.read_shot(shot.raw_ref)
+            again = analyze_channels(stored.t_start, stored.dt, stored.channels,
+                                     stored.probes, recovery_options(seq)).metrics()
+            for key, value in shot.metrics.items():
+                if value is not None:
+                    assert again[key] == value
+
+
+@pytest.mark.slow
+def test_safe_state_and_manifest(two_temperature_run):
+    outcome, (pulse_on, supply_on, bus_V) = two_temperature_run
+    assert not pulse_on and not supply_on
+    assert bus_V < 60.0  # IEC 61140 / IEC 62368-1 ES1 touch-safe limit
+    assert outcome.safe_state is not None and outcome.safe_state.reached
+    manifest = json.loads((outcome.run_dir / "run.json").read_text())
+    assert manifest["status"] == "complete"
+    assert set(manifest["instruments"]) == {"scope", "pulse", "supply", "thermal", "handler"}
+    assert manifest["safe_state"]["reached"] is True
+    assert set(manifest["files"]) >= {"raw.h5", "sequence.yaml", "bench.yaml", "limits.yaml"}
+    assert manifest["analysis_options"]["fit_high"] == 0.9
+    log = (outcome.run_dir / "run.log").read_text()
+    assert "stable at" in log and "safe state" in log
+
+
+@pytest.mark.parametrize(("old", "new"), [
+    ("limits: ", "limits: /nonexistent/"),                       # missing limits file
+    ("shot_spacing: 0.02 s", "shot_spacing: 0.02 s\n    repeat: 2"),  # unknown key
+])
+def test_bad_file_fires_nothing(tmp_path, old, new):
+    seq = write_sequence(tmp_path)
+    good = load_sequence(seq)
+    seq.write_text(seq.read_text().replace(old, new, 1))
+    with simulated_bench(load_bench(BENCH), good) as sim:
+        options = RunOptions(out_dir=tmp_path / "out", sim_resources=sim.resources,
+                             clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False)
+        with pytest.raises(ConfigError):
+            run_sequence(seq, BENCH, options)
+        assert sim.bench.shots == []
+        assert not sim.bench.supply.output_on
+    assert not (tmp_path / "out").exists()
+
+
+def test_unsafe_setting_refused_before_energising(tmp_path):
+    seq = write_sequence(tmp_path, temperatures="[25 degC, 175 degC]")
+    bench = load_bench(BENCH)
+    with simulated_bench(bench, load_sequence(seq)) as sim:
+        options = RunOptions(out_dir=tmp_path / "out", sim_resources=sim.resources,
+                             clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False)
+        with pytest.raises(SafetyError, match="Tj max"):
+            run_sequence(seq, BENCH, options)
+        assert sim.bench.shots == []  # nothing fired
+        assert not sim.bench.supply.output_on
+    assert not (tmp_path / "out").exists()
+
+
+def test_overdue_calibration_refused_then_overridden_and_recorded(tmp_path):
+    import datetime as dt
+
+    seq = write_sequence(tmp_path, devices="[KFR-2611A-002]", temperatures="[25 degC]")
+    late = dt.date(2031, 1, 2)  # bench-sim.yaml instruments are due 2030-12-31
+    with pytest.raises(CalibrationOverdue, match="overdue"):
+        run_sim(seq, tmp_path / "out", today=late)
+    outcome, _ = run_sim(seq, tmp_path / "out", today=late, allow_overdue_calibration=True)
+    manifest = json.loads((outcome.run_dir / "run.json").read_text())
+    assert manifest["allow_overdue_calibration"] is True
+    assert any("scope" in text for text in manifest["calibration"]["overdue_override"])
+    assert "OVERRIDDEN" in (outcome.run_dir / "run.log").read_text()

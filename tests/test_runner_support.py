@@ -1,0 +1,43 @@
+"""Shared helpers for the runner tests: small sequences on the simulated bench."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+BENCH = ROOT / "sequences" / "bench-sim.yaml"
+LIMITS = ROOT / "limits" / "KFR30-12.yaml"
+
+
+def write_sequence(folder: Path, *, devices: str = "[KFR-2611A-001, KFR-2611A-004]",
+                   temperatures: str = "[25 degC, 125 degC]", repeats: int = 1,
+                   extra: str = "", name: str = "seq.yaml") -> Path:
+    """A short KFR30-12 sequence (demo conditions) with thermal waits kept small."""
+    text = f"""\
+part: KFR30-12
+lot: L2611-A
+devices: {devices}
+limits: {LIMITS}
+test_points:
+  - label: nominal
+    bus_voltage: 600 V
+    forward_current: 30 A
+    temperatures: {temperatures}
+    gate_resistance: 10 ohm
+    repeats: {repeats}
+    shot_spacing: 0.02 s
+thermal: {{band: 1 K, dwell: 10 s, soak: 10 s, timeout: 1800 s, poll_interval: 2 s}}
+expected: {{irrm_fraction: 2.0, didt: 1000 A/us}}
+switch_voltage: true
+{extra}"""
+    path = folder / name
+    path.write_text(text)
+    return path
+
+
+def write_bench(folder: Path, *, scope_timeout: str = "2 s") -> Path:
+    """The simulated bench file with a shorter scope timeout (fault tests)."""
+    text = BENCH.read_text().replace("timeout: 10 s", f"timeout: {scope_timeout}")
+    path = folder / "bench.yaml"
+    path.write_text(text)
+    return path
