@@ -377,6 +377,8 @@ class ThermalController(_Driver):
 
     def output(self, on: bool) -> None:
         self._send("output", state=bool(on))
+        if on:
+            self.check_errors("switching the temperature control on")
 
 
 class Handler(_Driver):

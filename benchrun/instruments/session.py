@@ -27,6 +27,7 @@ the recording fake session of the tests) can stand in for it in the role drivers
 from __future__ import annotations
 
 import contextlib
+import os
 import select
 import socket
 from collections.abc import Callable
@@ -137,6 +138,13 @@ class InstrumentSession:
         self._inst = inst
         self._stale = False
         self._tune_backend()
+        sock = self._backend_socket()
+        if sock is not None:
+            # pyvisa-py reports a refused non-blocking connect as success; ask the socket
+            code = sock.getsockopt(socket.SOL_SOCKET, socket.SO_ERROR)
+            if code:
+                self.close()
+                raise ConnectionLost(f"cannot open {self.resource}: {os.strerror(code)}")
 
     def close(self) -> None:
         """Close the session (idempotent)."""

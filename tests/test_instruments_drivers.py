@@ -1,0 +1,235 @@
+"""Role drivers: the exact SCPI strings each call sends, per family (recording fake session).
+
+The expected strings are the command tables' own dialect (benchrun's generic SCPI, not any
+vendor's); IEEE 488.2 common commands (*IDN?, *RST, *CLS, *OPC?) per IEEE 488.2-1992 §10.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from benchrun.errors import InstrumentReportedError, ProtocolError
+from benchrun.instruments import scpi
+from benchrun.instruments.roles import (
+    BusSupply,
+    Handler,
+    InstrumentIdentity,
+    PulseSource,
+    Scope,
+    ThermalController,
+)
+
+
+class RecordingSession:
+    """Stands in for InstrumentSession: records what is sent, answers from a script."""
+
+    resource = "TCPIP0::fake::1::SOCKET"
+
+    def __init__(self, answers=None, blocks=None):
+        self.sent: list[str] = []
+        self.retry_flags: dict[str, bool] = {}
+        self.answers = {"*OPC?": ["1"]}
+        for key, value in (answers or {}).items():
+            self.answers[key] = list(value) if isinstance(value, list) else [value]
+        self.blocks = blocks or {}
+
+    def write(self, command, *, retry=True):
+        self.sent.append(command)
+        self.retry_flags[command] = retry
+
+    def query(self, command, *, retry=True):
+        self.sent.append(command)
+        if command.startswith("SYST"):
+            queue = self.answers.get(command, [])
+            return queue.pop(0) if queue else '0,"No error"'
+        queue = self.answers[command]
+        return queue.pop(0) if len(queue) > 1 else queue[0]
+
+    def query_block(self, command, *, terminator, retry=True):
+        self.sent.append(command)
+        self.last_terminator = terminator
+        return self.blocks[command]
+
+
+CONFIG = {
+    "channels": {"diode_voltage": (1600.0, -200.0, 100.0), "diode_current": (100.0, 0.0, 50.0)},
+    "sample_interval_s": 5e-10,
+    "record_length": 8000,
+    "t_start_s": 1.45e-5,
+    "trigger_source": "gate",
+    "trigger_level": 7.5,
+}
+
+
+def test_scope_generic_configure_strings():
+    session = RecordingSession()
+    Scope(session, "scope-generic").configure(**CONFIG)
+    assert session.sent == [
+        "CHANnel1:DISPlay 1", "CHANnel2:DISPlay 1", "CHANnel3:DISPlay 0", "CHANnel4:DISPlay 0",
+        "CHANnel1:PROBe 100", "CHANnel1:RANGe 1600", "CHANnel1:OFFSet -200",
+        "CHANnel2:PROBe 50", "CHANnel2:RANGe 100", "CHANnel2:OFFSet 0",
+        "ACQuire:SINTerval 5e-10", "ACQuire:POINts 8000", "TIMebase:STARt 1.45e-05",
+        "TRIGger:SOURce CHANnel4", "TRIGger:LEVel 7.5", "TRIGger:SLOPe POSitive",
+        "*OPC?", "SYSTem:ERRor?",
+    ]
+
+
+def test_scope_alt_configure_strings():
+    session = RecordingSession()
+    Scope(session, "scope-alt").configure(**CONFIG, trigger_slope="falling")
+    assert session.sent == [
+        "INPut1:STATe 1", "INPut2:STATe 1", "INPut3:STATe 0", "INPut4:STATe 0",
+        "INPut1:PGAin 0.01", "INPut1:VDIV 160", "INPut1:VOFFset -200",
+        "INPut2:PGAin 0.02", "INPut2:VDIV 10", "INPut2:VOFFset 0",
+        "SAMPle:RATE 2000000000", "SAMPle:LENGth 8000", "SAMPle:PRETrigger -1.45e-05",
+        "ARM:SOURce IN4", "ARM:THReshold 7.5", "ARM:EDGE DOWN",
+        "*OPC?", "SYSTem:ERRor:NEXT?",
+    ]
+
+
+def test_scope_arm_wait_and_read_generic():
+    codes = np.array([-128, -1, 0, 10, 127], dtype=np.int8)
+    session = RecordingSession(
+        answers={"ACQuire:DONE?": ["0", "1"], "WAVeform:XINCrement?": "5e-10",
+                 "WAVeform:XORigin?": "1.45e-05", "WAVeform:YINCrement?": "0.5",
+                 "WAVeform:YORigin?": "-20", "WAVeform:YREFerence?": "0"},
+        blocks={"WAVeform:DATA?": bytearray(codes.tobytes())},
+    )
+    scope = Scope(session, "scope-generic")
+    scope.configure(**CONFIG)
+    session.sent.clear()
+    scope.arm_single()
+    assert scope.wait_triggered(1.0, poll_s=0.0)
+    trace = scope.read_channel("diode_current")
+    assert session.sent == [
+        "SINGle", "*OPC?", "ACQuire:DONE?", "ACQuire:DONE?", "WAVeform:SOURce CHANnel2",
+        "WAVeform:XINCrement?", "WAVeform:XORigin?", "WAVeform:YINCrement?",
+        "WAVeform:YORigin?", "WAVeform:YREFerence?", "WAVeform:DATA?",
+    ]
+    assert session.last_terminator is True
+    assert trace.codes.dtype == np.int16
+    assert trace.codes.tolist() == [-128, -1, 0, 10, 127]
+    # probe units: code*0.5 - 20 (A); channel volts: divided by the 50 A/V probe
+    assert trace.gain == pytest.approx(0.5 / 50) and trace.offset == pytest.approx(-20 / 50)
+    assert trace.dt == 5e-10 and trace.t_start == 1.45e-05
+    assert (trace.code_min, trace.code_max) == (-128, 127)
+
+
+def test_scope_read_alt_big_endian_without_terminator():
+    codes = np.array([-32768, -256, 0, 2560, 32512], dtype=">i2")
+    session = RecordingSession(
+        answers={"TRACe1:VDIV?": "160", "TRACe1:VOFFset?": "-200", "TRACe1:TINTerval?": "5e-10",
+                 "TRACe1:TSTart?": "1e-6"},
+        blocks={"TRACe1:DATA?": bytearray(codes.tobytes())},
+    )
+    scope = Scope(session, "scope-alt")
+    scope.configure(**CONFIG)
+    session.sent.clear()
+    trace = scope.read_channel("diode_voltage")
+    assert session.sent == ["TRACe1:VDIV?", "TRACe1:VOFFset?", "TRACe1:TINTerval?",
+                            "TRACe1:TSTart?", "TRACe1:DATA?"]
+    assert session.last_terminator is False
+    assert trace.codes.tolist() == [-32768, -256, 0, 2560, 32512]
+    # volts/div over 6400 codes/div (probe units), then / 100 V/V probe
+    assert trace.gain == pytest.approx(160 / 6400 / 100)
+    assert trace.offset == pytest.approx(-2.0)
+
+
+def test_scope_wait_triggered_times_out():
+    session = RecordingSession(answers={"ACQuire:DONE?": "0"})
+    assert Scope(session, "scope-generic").wait_triggered(0.02, poll_s=0.005) is False
+
+
+def test_scope_odd_byte_count_is_protocol_error():
+    session = RecordingSession(
+        answers={"TRACe1:VDIV?": "1", "TRACe1:VOFFset?": "0", "TRACe1:TINTerval?": "1e-9",
+                 "TRACe1:TSTart?": "0"},
+        blocks={"TRACe1:DATA?": bytearray(b"\x00\x01\x02")})
+    with pytest.raises(ProtocolError, match="whole number"):
+        Scope(session, "scope-alt").read_channel(1)
+
+
+def test_pulse_double_and_single_pulse_strings():
+    session = RecordingSession()
+    pulse = PulseSource(session, "pulse-generic")
+    pulse.configure(1e-5, 5e-6, 3e-6)
+    pulse.set_gate_resistance(10)
+    pulse.output(True)
+    pulse.fire()
+    pulse.configure(2.5e-5)  # single-pulse trim shot
+    pulse.output(False)
+    assert session.sent == [
+        "PULSe:COUNt 2", "PULSe1:WIDTh 1e-05", "PULSe:GAP 5e-06", "PULSe2:WIDTh 3e-06",
+        "SYSTem:ERRor?", "GATE:RESistance 10", "SYSTem:ERRor?", "OUTPut 1", "SYSTem:ERRor?",
+        "PULSe:FIRE", "PULSe:COUNt 1", "PULSe1:WIDTh 2.5e-05", "SYSTem:ERRor?", "OUTPut 0",
+    ]
+    assert session.retry_flags["PULSe:FIRE"] is False  # a shot is never repeated silently
+
+
+def test_supply_thermal_handler_strings():
+    session = RecordingSession(answers={"MEASure:VOLTage?": "599.8", "OUTPut?": "1",
+                                        "MEASure:TEMPerature?": "125.02",
+                                        "SOURce:TEMPerature?": "125",
+                                        "DEVice:LIST?": "KFR-2611A-001,KFR-2611A-002",
+                                        "DEVice:SELect?": "KFR-2611A-002"})
+    supply = BusSupply(session, "supply-generic")
+    supply.set_current_limit(1.0)
+    supply.set_voltage(600)
+    supply.output(True)
+    assert supply.measure_voltage() == pytest.approx(599.8)
+    assert supply.is_output_on() is True
+    thermal = ThermalController(session, "thermal-generic")
+    thermal.set_temperature(398.15)
+    assert thermal.measure_temperature() == pytest.approx(398.17)
+    assert thermal.setpoint() == pytest.approx(398.15)
+    thermal.output(False)
+    handler = Handler(session, "handler-generic")
+    assert handler.list_devices() == ["KFR-2611A-001", "KFR-2611A-002"]
+    handler.select("KFR-2611A-002")
+    assert handler.selected() == "KFR-2611A-002"
+    assert session.sent == [
+        "SOURce:CURRent 1", "SYSTem:ERRor?", "SOURce:VOLTage 600", "SYSTem:ERRor?",
+        "OUTPut 1", "SYSTem:ERRor?", "MEASure:VOLTage?", "OUTPut?",
+        "SOURce:TEMPerature 125", "SYSTem:ERRor?", "MEASure:TEMPerature?",
+        "SOURce:TEMPerature?", "OUTPut 0",
+        "DEVice:LIST?", "DEVice:SELect KFR-2611A-002", "SYSTem:ERRor?", "DEVice:SELect?",
+    ]
+
+
+def test_identity_reset_and_error_drain():
+    session = RecordingSession(answers={
+        "*IDN?": "BENCHRUN-SIM,SUPPLY-1K5,SIM000003,3.3",
+        "SYSTem:ERRor?": ['-222,"Data out of range;volts 2000"', '-113,"Undefined header"',
+                          '0,"No error"'],
+    })
+    supply = BusSupply(session, "supply-generic")
+    assert supply.identity() == InstrumentIdentity(
+        "BENCHRUN-SIM", "SUPPLY-1K5", "SIM000003", "3.3", session.resource, "supply-generic")
+    supply.reset()
+    with pytest.raises(InstrumentReportedError, match="-222") as info:
+        supply.set_voltage(2000)
+    assert info.value.entries == [(-222, "Data out of range;volts 2000"),
+                                  (-113, "Undefined header")]
+    assert session.sent[:5] == ["*IDN?", "*RST", "*CLS", "*OPC?", "SOURce:VOLTage 2000"]
+
+
+def test_stuck_error_queue_does_not_loop_forever():
+    session = RecordingSession(answers={"SYSTem:ERRor?": ['-350,"Queue overflow"'] * 200})
+    with pytest.raises(ProtocolError, match="not empty"):
+        Handler(session, "handler-generic").drain_errors()
+
+
+def test_table_for_the_wrong_role_is_refused():
+    from benchrun.errors import ConfigError
+
+    with pytest.raises(ConfigError, match="role"):
+        Scope(RecordingSession(), "supply-generic")
+
+
+def test_block_payload_helpers_agree_with_driver_decoding():
+    # what the simulator sends for an int16 big-endian family decodes to the same codes
+    codes = np.arange(-5, 5, dtype=">i2")
+    block = scpi.encode_block(codes.tobytes(), terminator=False)
+    decoded = np.frombuffer(scpi.parse_block(block, terminator=False), dtype=">i2")
+    assert decoded.tolist() == list(range(-5, 5))
