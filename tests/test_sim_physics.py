@@ -237,3 +237,23 @@ def test_blocking_voltage_overshoot_and_settling():
     assert vr == pytest.approx(600.0 - float(SwitchModel().on_voltage(30.0)), abs=3.0)
     overshoot = -v.min() - vr
     assert 1.0 < overshoot < 200.0
+
+
+@pytest.mark.parametrize(
+    ("current", "rg"), [(1.0, 22.0), (30.0, 200.0)], ids=["pulse-shorter-than-turn-on", "slow-gate"]
+)
+def test_events_longer_than_the_pulses_are_carried_through(current, rg):
+    # a gate edge that arrives before the previous switching event has settled starts the next
+    # event from the full circuit state: waveforms stay continuous (inductor current cannot jump,
+    # basic circuit theory) and the shot completes
+    fx = Fixture()
+    timing = PulseTiming(first_pulse_for_current(fx, 600.0, current), 3e-6, 2e-6)
+    wf = simulate_double_pulse(fx, SwitchModel(gate_resistance_ohm=rg), DIODE, timing, 600.0, T25)
+    assert np.all(np.diff(wf.t) > 0)
+    assert np.all(np.isfinite(wf.v_diode)) and np.all(np.isfinite(wf.i_diode))
+    steps = np.abs(np.diff(wf.i_load))
+    assert steps.max() < 0.05 * max(current, 1.0)
+    assert wf.current_at_second_turn_on_A > 0.5 * current
+    # the diode ends up blocking the bus during the second pulse
+    k = int(np.searchsorted(wf.t, wf.t_second_off_s)) - 1
+    assert wf.v_diode[k] < -0.9 * 600.0

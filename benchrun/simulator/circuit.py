@@ -130,9 +130,18 @@ class SwitchModel:
         """Largest channel current at full gate drive, gm·(Vgg − Vth)."""
         return self.transconductance_S * (self.gate_on_V - self.threshold_V)
 
-    def on_voltage(self, current_A: np.ndarray | float) -> np.ndarray | float:
-        """Drain voltage of the fully-on switch carrying ``current_A`` (inverse of the tanh law)."""
-        imax = self.transconductance_S * (self.gate_on_V - self.threshold_V)
+    def on_voltage(
+        self, current_A: np.ndarray | float, gate_V: np.ndarray | float | None = None
+    ) -> np.ndarray | float:
+        """Drain voltage of the conducting switch carrying ``current_A`` (inverse tanh law).
+
+        ``gate_V`` is the gate-source voltage (default: the full drive ``gate_on_V``).
+        """
+        vgs = np.asarray(self.gate_on_V if gate_V is None else gate_V, dtype=float)
+        w = self.overdrive_smoothing_V
+        x = (vgs - self.threshold_V) / w
+        vov = np.where(x > 30.0, vgs - self.threshold_V, w * np.log1p(np.exp(np.minimum(x, 30.0))))
+        imax = np.maximum(self.transconductance_S * vov, 1e-9)
         ratio = np.clip(np.asarray(current_A, dtype=float) / imax, -0.999999, 0.999999)
         out = imax * self.on_resistance_ohm * np.arctanh(ratio)
         return float(out) if np.ndim(out) == 0 else out
@@ -211,6 +220,7 @@ class EventSolution:
     i_diode: np.ndarray  # current seen by the diode sensor
     v_diode: np.ndarray
     bus_charge_C: float
+    settled: bool
 
 
 def _window_outputs(c: EventCircuit, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -235,9 +245,15 @@ def solve_event(
     y0: np.ndarray,
     dt: float,
     expect_diode_on: bool,
-    max_duration_s: float = 8e-6,
+    t_limit: float = math.inf,
 ) -> EventSolution:
-    """Integrate one switching event from ``t0`` until it has settled."""
+    """Integrate one switching event from ``t0`` until it has settled or ``t_limit`` is reached.
+
+    Settled: the gate is past its Miller plateau, and over the last third of a chunk the diode
+    voltage, switch voltage and diode current vary by less than 0.2 % of the bus voltage and
+    0.3 % of the load current, with the diode carrying the load current (``expect_diode_on``)
+    or no current.
+    """
     rhs = _make_rhs(c)
     tau_gate = c.switch.gate_resistance_ohm * c.switch.ciss_F
     chunk = max(150e-9, 4.0 * tau_gate)
@@ -245,8 +261,11 @@ def solve_event(
     ts, ys = [np.array([t0])], [y0[None, :]]
     t_now, y_now = t0, y0
     swing = abs(c.switch.gate_on_V - c.switch.gate_off_V)
-    while True:
+    settled = False
+    while t_now < t_limit:
         grid = t_now + dt * np.arange(n_chunk + 1)
+        if grid[-1] >= t_limit:
+            grid = np.append(grid[grid < t_limit - 0.01 * dt], t_limit)
         sol, info = odeint(
             rhs, y_now, grid, rtol=1e-6, atol=_ATOL, mxstep=200000, full_output=True
         )
@@ -254,16 +273,15 @@ def solve_event(
             raise RuntimeError(f"circuit integration failed: {info['message']}")
         ts.append(grid[1:])
         ys.append(sol[1:])
-        t_now, y_now = grid[-1], sol[-1]
-        if t_now - t0 >= max_duration_s:
-            break
-        tail = sol[-max(n_chunk // 3, 8) :]
+        t_now, y_now = float(grid[-1]), sol[-1]
+        tail = sol[-max(len(grid) // 3, 8) :]
         i_d, _, v_d = _window_outputs(c, tail)
         IL = tail[:, 3]
         scale_i = 0.003 * max(abs(float(IL[-1])), 1.0)
         scale_v = 0.002 * abs(c.bus_V) + 0.05
         settled = (
-            abs(float(tail[-1, 0]) - c.gate_drive_V) < 0.25 * swing
+            len(grid) > n_chunk // 2
+            and abs(float(tail[-1, 0]) - c.gate_drive_V) < 0.25 * swing
             and np.ptp(v_d) < scale_v
             and np.ptp(tail[:, 1]) < scale_v
             and np.ptp(i_d) < scale_i
@@ -279,7 +297,9 @@ def solve_event(
     i_d, i_sensor, v_d = _window_outputs(c, y)
     i_bus = y[:, 3] - i_d
     charge = float(np.sum(0.5 * (i_bus[1:] + i_bus[:-1]) * np.diff(t)))
-    return EventSolution(t=t, y=y, i_d=i_d, i_diode=i_sensor, v_diode=v_d, bus_charge_C=charge)
+    return EventSolution(
+        t=t, y=y, i_d=i_d, i_diode=i_sensor, v_diode=v_d, bus_charge_C=charge, settled=settled
+    )
 
 
 # ---------------------------------------------------------------------------------------------

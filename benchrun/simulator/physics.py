@@ -206,31 +206,35 @@ def _on_stretch(
     jp: JunctionParams,
     t0: float,
     duration: float,
-    i0: float,
+    y0: np.ndarray,
     vc0: float,
     i_d0: float,
-    vgs0: float,
-) -> tuple[float, float]:
-    """Switch on, diode blocking: closed-form R-L-C ramp. Returns (current, bus V) at the end."""
+) -> tuple[np.ndarray, float]:
+    """Switch on, diode blocking: closed-form R-L-C ramp.  Returns (state, bus V) at the end."""
     n = 400
     tau = np.linspace(0.0, duration, n)
     L = fx.load_inductance_H + fx.stray_inductance_H
     R = fx.load_resistance_ohm + sw.on_resistance_ohm
-    i, didt, vc = rlc_discharge(i0, vc0, R, L, fx.bus_capacitance_F, tau)
-    v_sw = np.asarray(sw.on_voltage(i))
-    v_p = vc - fx.stray_inductance_H * didt
+    i, didt, vc = rlc_discharge(float(y0[3]), vc0, R, L, fx.bus_capacitance_F, tau)
+    gate = _gate_approach(sw, sw.gate_on_V, float(y0[0]), tau)
     tail_tc = jp.tail_time_constant_s
     i_d = i_d0 * np.exp(-tau / tail_tc) if tail_tc > 0 else np.full_like(tau, i_d0)
+    v_sw = np.asarray(sw.on_voltage(i - i_d, gate))
+    v_p = vc - fx.stray_inductance_H * didt
+    v_d = v_sw - v_p
     b.add(
         t=t0 + tau,
-        v_diode=v_sw - v_p,
+        v_diode=v_d,
         i_diode=i_d,
         v_switch=v_sw,
         i_switch=i - i_d,
-        gate=_gate_approach(sw, sw.gate_on_V, vgs0, tau),
+        gate=gate,
         i_load=i,
     )
-    return float(i[-1]), float(vc[-1])
+    q_end = -jp.tm_s * float(i_d[-1]) / jp.tau_s if jp.is_charge_control else 0.0
+    v_j = float(v_d[-1]) - jp.rs_ohm * float(i_d[-1])
+    y = np.array([gate[-1], v_sw[-1], i[-1] - i_d[-1], i[-1], v_j, q_end], dtype=float)
+    return y, float(vc[-1])
 
 
 def _off_stretch(
@@ -240,19 +244,18 @@ def _off_stretch(
     jp: JunctionParams,
     t0: float,
     duration: float,
-    i0: float,
+    y0: np.ndarray,
     vc: float,
-    q0: float,
-    vgs0: float,
-) -> tuple[float, float]:
+) -> np.ndarray:
     """Switch off, diode freewheeling: L·di/dt = −(R·i + VF(i)), VF linearised at i0.
 
     The stored charge obeys dqM/dt = i − qM/τ, solved exactly for i(t) = P·e^(−λt) + Q.
-    Returns (current, q = qM/τ) at the end.
+    Returns the circuit state at the end.
     """
     n = 200
     tau_t = np.linspace(0.0, duration, n)
     L, R = fx.load_inductance_H, fx.load_resistance_ohm
+    i0, q0 = float(y0[3]), float(y0[5])
     i_ref = max(i0, 1e-3)
     v0 = jp.forward_voltage(i_ref)
     r_d = (jp.forward_voltage(i_ref * 1.001) - v0) / (i_ref * 0.001)
@@ -275,16 +278,17 @@ def _off_stretch(
         v_j = jp.nvt_V * np.log1p(np.maximum(i / jp.is_A, -0.999999))
         q_end = 0.0
     v_d = v_j + jp.rs_ohm * i
+    gate = _gate_approach(sw, sw.gate_off_V, float(y0[0]), tau_t)
     b.add(
         t=t0 + tau_t,
         v_diode=v_d,
         i_diode=i,
         v_switch=vc + v_d,
         i_switch=np.zeros_like(i),
-        gate=_gate_approach(sw, sw.gate_off_V, vgs0, tau_t),
+        gate=gate,
         i_load=i,
     )
-    return float(i[-1]), q_end
+    return np.array([gate[-1], vc + v_d[-1], 0.0, i[-1], v_j[-1], q_end], dtype=float)
 
 
 def _fine_dt(switch: SwitchModel, fixture: Fixture, junction: JunctionParams) -> float:
@@ -309,7 +313,10 @@ def simulate_double_pulse(
     first pulse (load current ramps), first turn-off (diode takes the current), off time
     (diode freewheels, current droops by ≈ (VF + I·R)·t_off/L), second turn-on (reverse
     recovery of the diode under test, switch voltage collapse), second pulse, second turn-off,
-    and ``timing.post_s`` of freewheeling.  Cached: identical arguments return the same object.
+    and ``timing.post_s`` of freewheeling.  Each gate edge starts a switching event that is
+    integrated until it settles (then a closed form carries on to the next edge) or until the
+    next edge (then the next event starts from the full circuit state).  Cached: identical
+    arguments return the same object.
     """
     if bus_voltage_V <= 0:
         raise ValueError("bus voltage must be positive")
@@ -332,79 +339,47 @@ def simulate_double_pulse(
         gate=np.full(2, sw.gate_off_V),
         i_load=np.zeros(2),
     )
-
-    # first turn-on
-    w = solve_event(EventCircuit(fx, sw, jp, vc, sw.gate_on_V), 0.0, y, dt, expect_diode_on=False)
-    _window_to_builder(b, w)
-    vc -= w.bus_charge_C / fx.bus_capacitance_F
-    t_end = float(w.t[-1])
-    if t_end >= timing.first_pulse_s:
-        raise ValueError("first pulse shorter than the switch turn-on transient")
-    i_now, vc = _on_stretch(
-        b, fx, sw, jp, t_end, timing.first_pulse_s - t_end,
-        float(w.y[-1, 3]), vc, float(w.i_diode[-1]), float(w.y[-1, 0]),
-    )
-
-    # first turn-off
-    t1 = timing.first_pulse_s
-    i_first_off = i_now
-    y = np.array([sw.gate_on_V, float(sw.on_voltage(i_now)), i_now, i_now,
-                  float(sw.on_voltage(i_now)) - vc, 0.0])
-    w = solve_event(EventCircuit(fx, sw, jp, vc, sw.gate_off_V), t1, y, dt, expect_diode_on=True)
-    _window_to_builder(b, w)
-    vc -= w.bus_charge_C / fx.bus_capacitance_F
-    t_end = float(w.t[-1])
-    t2 = timing.second_on_s
-    if t_end >= t2:
-        raise ValueError("off time shorter than the switch turn-off transient")
-    i_now, q_now = _off_stretch(
-        b, fx, sw, jp, t_end, t2 - t_end, float(w.y[-1, 3]), vc, float(w.y[-1, 5]),
-        float(w.y[-1, 0]),
-    )
-
-    # second turn-on: the recovery under test
-    i_second_on = i_now
-    vj = jp.junction_voltage_forward(i_now, q_now if jp.is_charge_control else None)
-    y = np.array([sw.gate_off_V, vc + vj + jp.rs_ohm * i_now, 0.0, i_now, vj, q_now])
-    w = solve_event(EventCircuit(fx, sw, jp, vc, sw.gate_on_V), t2, y, dt, expect_diode_on=False)
-    _window_to_builder(b, w)
-    peak_reverse = float(max(0.0, -np.min(w.i_diode)))
-    vc_second_on = vc
-    vc -= w.bus_charge_C / fx.bus_capacitance_F
-    t_end = float(w.t[-1])
-    t3 = timing.second_off_s
-    if t_end >= t3:
-        raise ValueError("second pulse shorter than the recovery transient")
-    i_now, vc = _on_stretch(
-        b, fx, sw, jp, t_end, t3 - t_end, float(w.y[-1, 3]), vc, float(w.i_diode[-1]),
-        float(w.y[-1, 0]),
-    )
-
-    # second turn-off and freewheeling after the shot
-    y = np.array([sw.gate_on_V, float(sw.on_voltage(i_now)), i_now, i_now,
-                  float(sw.on_voltage(i_now)) - vc, 0.0])
-    w = solve_event(EventCircuit(fx, sw, jp, vc, sw.gate_off_V), t3, y, dt, expect_diode_on=True)
-    _window_to_builder(b, w)
-    vc -= w.bus_charge_C / fx.bus_capacitance_F
-    t_end = float(w.t[-1])
-    t_stop = t3 + max(timing.post_s, t_end - t3 + 1e-6)
-    _off_stretch(
-        b, fx, sw, jp, t_end, t_stop - t_end, float(w.y[-1, 3]), vc, float(w.y[-1, 5]),
-        float(w.y[-1, 0]),
-    )
+    t_stop = timing.second_off_s + timing.post_s
+    edges = (0.0, timing.first_pulse_s, timing.second_on_s, timing.second_off_s, t_stop)
+    facts: dict[str, float] = {}
+    for k in range(4):
+        switch_on = k % 2 == 0
+        drive = sw.gate_on_V if switch_on else sw.gate_off_V
+        if k == 1:
+            facts["i_first_off"] = float(y[3])
+        if k == 2:
+            facts["i_second_on"] = float(y[3])
+            facts["vc_second_on"] = vc
+        w = solve_event(
+            EventCircuit(fx, sw, jp, vc, drive), edges[k], y, dt,
+            expect_diode_on=not switch_on, t_limit=edges[k + 1],
+        )
+        _window_to_builder(b, w)
+        if k == 2:
+            facts["peak_reverse"] = float(max(0.0, -np.min(w.i_diode)))
+        vc -= w.bus_charge_C / fx.bus_capacitance_F
+        t_end = float(w.t[-1])
+        y = w.y[-1].copy()
+        if t_end < edges[k + 1]:
+            if switch_on:
+                y, vc = _on_stretch(
+                    b, fx, sw, jp, t_end, edges[k + 1] - t_end, y, vc, float(w.i_diode[-1])
+                )
+            else:
+                y = _off_stretch(b, fx, sw, jp, t_end, edges[k + 1] - t_end, y, vc)
 
     arrays = b.build()
     return CircuitWaveforms(
         **arrays,
         bus_voltage_V=float(bus_voltage_V),
         temperature_K=float(temperature_K),
-        current_at_first_turn_off_A=i_first_off,
-        current_at_second_turn_on_A=i_second_on,
-        bus_voltage_at_second_turn_on_V=vc_second_on,
-        peak_reverse_current_A=peak_reverse,
-        t_first_off_s=t1,
-        t_second_on_s=t2,
-        t_second_off_s=t3,
+        current_at_first_turn_off_A=facts["i_first_off"],
+        current_at_second_turn_on_A=facts["i_second_on"],
+        bus_voltage_at_second_turn_on_V=facts["vc_second_on"],
+        peak_reverse_current_A=facts["peak_reverse"],
+        t_first_off_s=timing.first_pulse_s,
+        t_second_on_s=timing.second_on_s,
+        t_second_off_s=timing.second_off_s,
     )
 
 
