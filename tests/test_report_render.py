@@ -92,7 +92,6 @@ def test_embedded_numbers_match_the_grades(signed_run):  # noqa: F811
 
 def test_private_key_never_appears_in_the_report(signed_run):  # noqa: F811
     from cryptography.hazmat.primitives import serialization
-
     from report_helpers import PASSPHRASE
 
     key = serialization.load_pem_private_key(signed_run.identity.key_path.read_bytes(),

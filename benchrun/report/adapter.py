@@ -30,7 +30,7 @@ from benchrun.report.content import (
     new_report_id,
 )
 from benchrun.report.keys import ReportSigner
-from benchrun.report.manifest import build_manifest
+from benchrun.report.manifest import build_manifest, code_digest
 from benchrun.report.plots import WaveformMarks
 from benchrun.units import format_si
 
@@ -339,6 +339,7 @@ def build_content(run: Any, lot: Any, signer: ReportSigner, *,
         shots=_shot_rows(run, lot),
         lot_grade=lot.to_dict(),
         analysis_options=options,
+        code_sha256=code_digest(),
     )
     return content
 

@@ -132,6 +132,7 @@ class ReportContent:
     lot_grade: dict[str, Any] = field(default_factory=dict)
     analysis_options: dict[str, Any] = field(default_factory=dict)
     limits_file: str = "limits.yaml"
+    code_sha256: str = ""
 
 
 _PREFIX = {"T": 1e12, "G": 1e9, "M": 1e6, "k": 1e3, "": 1.0, "m": 1e-3, "µ": 1e-6,
@@ -186,6 +187,7 @@ def attachment_dict(content: ReportContent) -> dict[str, Any]:
         "part": content.part,
         "lot": content.lot,
         "software_version": content.software_version,
+        "analysis_code_sha256": content.code_sha256,
         "disposition": content.disposition,
         "disposition_reasons": list(content.disposition_reasons),
         "signer": {

@@ -118,6 +118,24 @@ def row_digest(run: Any) -> tuple[str, str]:
     return shots_digest(run.shots), ROW_DIGEST_LOCAL
 
 
+def code_digest(packages: tuple[str, ...] = ("benchrun.analysis", "benchrun.grading")) -> str:
+    """SHA-256 over the source files of the packages that turn raw data into grades.
+
+    Recorded in the report so that a verifier can tell "the data changed" from "the software
+    that re-analyses them changed".
+    """
+    import importlib
+
+    digest = hashlib.sha256()
+    for name in packages:
+        module = importlib.import_module(name)
+        for folder in getattr(module, "__path__", []):
+            for path in sorted(Path(folder).rglob("*.py")):
+                digest.update(f"{name}/{path.relative_to(folder).as_posix()}\n".encode())
+                digest.update(path.read_bytes())
+    return digest.hexdigest()
+
+
 def build_manifest(run: Any) -> list[ManifestEntry]:
     """Hash the run's files (those present) and its result rows."""
     entries: list[ManifestEntry] = []

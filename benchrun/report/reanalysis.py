@@ -173,6 +173,12 @@ def reanalysis_check(attachment: dict[str, Any] | None, run: Any,
         what = (f"{shot_problems} shot disagreement(s)" if shot_problems else "shots agree")
         grade_issues = len(problems) - shot_problems
         summary = f"{what}; {grade_issues} grade disagreement(s)"
+        from benchrun.report.manifest import code_digest
+
+        recorded = attachment.get("analysis_code_sha256")
+        if recorded and recorded != code_digest():
+            summary += (" (note: the analysis/grading code now installed differs from the code "
+                        "that produced the report; re-run verification with that version)")
         return _check(False, f"{summary}: {problems[0]}", problems[:200])
     return _check(True, f"{len(rows)} shots re-analysed: every metric, grade, bin, device "
                         "verdict and the lot disposition reproduced")

@@ -212,4 +212,7 @@ def build_story(
     rows += [[m["name"], m["kind"], "" if m.get("size") is None else str(m["size"]),
               m["sha256"]] for m in content.manifest]
     story.append(sec.simple_table(rows, [42 * mm, 12 * mm, 18 * mm, w - 72 * mm]))
+    if content.code_sha256:
+        story.append(sec.P(f"Analysis and grading code (benchrun {content.software_version}) "
+                           f"SHA-256: {content.code_sha256}", "small"))
     return story
