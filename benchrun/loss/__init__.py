@@ -1,1 +1,20 @@
-"""benchrun.loss."""
+"""Recovery loss estimate: energy per commutation, average power, and part comparison.
+
+Public API::
+
+    from benchrun.loss import estimate_losses, compare, LossTable, Comparison
+"""
+
+from benchrun.loss.compare import Comparison, ComparisonRow, compare
+from benchrun.loss.estimate import LossGroup, LossRow, LossTable, estimate_losses, shot_energy
+
+__all__ = [
+    "Comparison",
+    "ComparisonRow",
+    "LossGroup",
+    "LossRow",
+    "LossTable",
+    "compare",
+    "estimate_losses",
+    "shot_energy",
+]
