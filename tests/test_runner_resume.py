@@ -1,0 +1,149 @@
+"""Crash safety: kill -9 mid-run then --resume, a crash between the raw record and the DB,
+and SIGTERM handled like Ctrl-C (safe state first). Real subprocesses on the simulated bench."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+from test_runner_support import BENCH, write_sequence
+
+from benchrun.config import load_bench, load_sequence
+from benchrun.runner.execute import RunOptions, run_sequence
+from benchrun.runner.simbench import simulated_bench
+from benchrun.store.raw import RawRecord
+from benchrun.store.results import ResultsStore
+from benchrun.store.rundata import load_run
+
+DEVICES = "[KFR-2611A-001, KFR-2611A-002, KFR-2611A-003, KFR-2611A-004]"
+
+
+def cli(*args: str) -> list[str]:
+    return [sys.executable, "-m", "benchrun.cli", *args]
+
+
+def stored_count(out: Path) -> int:
+    dbs = list(out.glob("*/results.db"))
+    if not dbs:
+        return 0
+    try:
+        with sqlite3.connect(f"file:{dbs[0]}?mode=ro", uri=True, timeout=1) as conn:
+            return int(conn.execute("select count(*) from shots").fetchone()[0])
+    except sqlite3.Error:
+        return 0
+
+
+def start_and_wait(seq: Path, out: Path, shots: int) -> subprocess.Popen:
+    proc = subprocess.Popen(cli("run", str(seq), "--bench", str(BENCH), "--out", str(out),
+                                "--no-progress"),
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 120
+    while stored_count(out) < shots:
+        assert proc.poll() is None, proc.communicate()
+        assert time.monotonic() < deadline, "the run did not store shots in time"
+        time.sleep(0.01)
+    return proc
+
+
+@pytest.mark.slow
+def test_kill_9_then_resume_loses_nothing_and_duplicates_nothing(tmp_path):
+    seq = write_sequence(tmp_path, devices=DEVICES, temperatures="[25 degC]", repeats=2)
+    out = tmp_path / "runs"
+    proc = start_and_wait(seq, out, shots=3)
+    assert proc.poll() is None, "the run ended before it could be killed"
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.communicate(timeout=30)
+    assert proc.returncode == -signal.SIGKILL
+    run_dir = next(out.iterdir())
+    before = {(s.serial, s.point.index, s.repeat, s.attempt): s
+              for s in load_run(run_dir).shots}
+    assert 3 <= len(before) < 8
+
+    done = subprocess.run(cli("run", str(seq), "--bench", str(BENCH), "--out", str(out),
+                              "--resume", "--no-progress"),
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert "complete" in done.stdout
+    assert [p.name for p in out.iterdir()] == [run_dir.name]  # resumed, not a new run
+
+    after = load_run(run_dir)
+    identities = [(s.serial, s.point.index, s.repeat, s.attempt) for s in after.shots]
+    assert len(identities) == len(set(identities))  # no duplicate
+    valid_tests = {(s.serial, s.point.index, s.repeat) for s in after.shots if s.valid}
+    assert len(valid_tests) == 4 * 2  # every planned test has its valid shot
+    for key, shot in before.items():  # nothing stored before the kill changed or vanished
+        kept = next(s for s in after.shots
+                    if (s.serial, s.point.index, s.repeat, s.attempt) == key)
+        assert kept.to_dict() == shot.to_dict()
+    with RawRecord(run_dir / "raw.h5", "r") as raw:  # every raw shot is in the DB and back
+        assert sorted(raw.keys()) == sorted(s.raw_ref.split("/", 1)[1] for s in after.shots)
+    manifest = json.loads((run_dir / "run.json").read_text())
+    assert manifest["status"] == "complete"
+    assert len(manifest["resumes"]) == 1
+
+
+class Crash(BaseException):
+    """Stands for the process dying between the raw-record write and the DB commit."""
+
+
+@pytest.mark.slow
+def test_shot_in_raw_record_only_is_recovered_not_refired(tmp_path, monkeypatch):
+    seq = write_sequence(tmp_path, devices="[KFR-2611A-001, KFR-2611A-002]",
+                         temperatures="[25 degC]", repeats=2)
+    out = tmp_path / "runs"
+    original = ResultsStore.add_shot
+    calls = {"n": 0}
+
+    def crashing(self, shot):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise Crash()
+        return original(self, shot)
+
+    bench = load_bench(BENCH)
+    sequence = load_sequence(seq)
+    with simulated_bench(bench, sequence) as sim:
+        options = RunOptions(out_dir=out, sim_resources=sim.resources, clock=sim.clock,
+                             ratings_lookup=sim.ratings, show_progress=False)
+        monkeypatch.setattr(ResultsStore, "add_shot", crashing)
+        with pytest.raises(Crash):
+            run_sequence(seq, BENCH, options)
+        assert not sim.bench.supply.output_on  # safe state even on a crash
+        monkeypatch.setattr(ResultsStore, "add_shot", original)
+        fired_before = len(sim.bench.shots)
+        resumed = RunOptions(out_dir=out, resume=True, sim_resources=sim.resources,
+                             clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False)
+        outcome = run_sequence(seq, BENCH, resumed)
+        fired_after = len(sim.bench.shots)
+    assert outcome.status == "complete"
+    assert outcome.shots_recovered == 1
+    run = load_run(outcome.run_dir)
+    assert len({(s.serial, s.repeat) for s in run.shots if s.valid}) == 4
+    # the recovered shot was not fired again: the resumed session fired one trim shot (t1 is
+    # not kept across sessions) plus the one remaining test (4 tests, 3 already stored)
+    stored_now = outcome.shots_stored
+    assert stored_now == 1
+    assert fired_after - fired_before == stored_now + outcome.trim_shots
+
+
+@pytest.mark.slow
+def test_sigterm_reaches_the_safe_state_and_is_recorded(tmp_path):
+    seq = write_sequence(tmp_path, devices=DEVICES, temperatures="[25 degC]", repeats=2)
+    out = tmp_path / "runs"
+    proc = start_and_wait(seq, out, shots=2)
+    proc.send_signal(signal.SIGTERM)
+    stdout, stderr = proc.communicate(timeout=60)
+    assert proc.returncode == 130, stderr
+    run_dir = next(out.iterdir())
+    manifest = json.loads((run_dir / "run.json").read_text())
+    assert manifest["status"] == "interrupted"
+    assert manifest["safe_state"]["reached"] is True
+    assert manifest["safe_state"]["bus_voltage_V"] < 60.0  # IEC 61140 / IEC 62368-1 ES1
+    assert "safe state" in stdout
