@@ -163,8 +163,8 @@ def build_story(
     story += sec.non_conforming_list(content.devices)
     story += sec.section("6  Lot statistics")
     story.append(sec.simple_table(content.statistics_table,
-                                  [34 * mm, 16 * mm, 10 * mm, 26 * mm, 22 * mm, 24 * mm, 24 * mm,
-                                   w - 156 * mm]))
+                                  [34 * mm, 19 * mm, 9 * mm, 25 * mm, 22 * mm, 24 * mm, 24 * mm,
+                                   w - 157 * mm]))
 
     figures = [distribution_figure(d["label"], d["unit"], d["groups"], d["limits"],
                                    width_pt=w / 2 - 4, height_pt=150)
