@@ -20,9 +20,14 @@ import numpy as np
 
 from benchrun.analysis.conditioning import codes_to_volts, deskew, detect_clipping, scale
 from benchrun.analysis.recovery import RecoveryMetrics, RecoveryOptions, analyze_recovery
+from benchrun.analysis.switching import (
+    analyze_switch_turn_on,
+    switch_current_from_diode,
+    switching_estimate,
+)
 from benchrun.errors import ConfigError, InputDataError
 
-if TYPE_CHECKING:  # defined by benchrun.analysis.switching
+if TYPE_CHECKING:
     from benchrun.analysis.switching import SwitchingMetrics
 
 #: Channel names the pipeline knows.
@@ -84,7 +89,8 @@ class ShotAnalysis:
     recovery
         Diode recovery metrics.
     switching
-        Switch turn-on metrics when a switch-voltage channel was captured, else None.
+        Switch turn-on metrics: measured when a switch-voltage channel was captured, else
+        only the labelled ``VR·Qrr`` estimate (``SwitchingMetrics.is_estimate``).
     flags
         Union of the recovery, switching and conditioning flags (ordered, no repeats).
     """
@@ -171,11 +177,20 @@ def analyze_channels(
     diode_flags = conditioning_flags[DIODE_VOLTAGE] + conditioning_flags[DIODE_CURRENT]
     if diode_flags:
         recovery = replace(recovery, flags=_merge_flags(diode_flags, recovery.flags))
-    # Switch turn-on metrics join here (benchrun.analysis.switching) when a switch-voltage
-    # channel is present; until then the shot carries recovery metrics only.
-    switching = None
+    # Switch turn-on metrics (benchrun.analysis.switching): measured when a switch-voltage
+    # channel is present (switch current = IF − diode current during the commutation), else
+    # only the VR·Qrr estimate, whose "estimate only" flag stays inside the switching result.
+    switch_flags: tuple[str, ...] = ()
+    if SWITCH_VOLTAGE in physical and recovery.if_A is not None:
+        i_sw = switch_current_from_diode(physical[DIODE_CURRENT], recovery.if_A)
+        switching = analyze_switch_turn_on(
+            None, physical[SWITCH_VOLTAGE], i_sw, recovery, dt=dt, t_start=t_start
+        )
+        switch_flags = switching.flags
+    else:
+        switching = switching_estimate(recovery)
     return ShotAnalysis(
         recovery=recovery,
         switching=switching,
-        flags=_merge_flags(recovery.flags, *conditioning_flags.values()),
+        flags=_merge_flags(recovery.flags, switch_flags, *conditioning_flags.values()),
     )
