@@ -119,8 +119,8 @@ def test_silicon_recovery_matches_ngspice(temperature_K, rg, current_A):
     )
     assert ours["ifwd"] == pytest.approx(ref["ifwd"], rel=0.01)
     assert ours["t0"] == pytest.approx(ref["t0"], abs=1e-9)
-    assert ours["imin"] == pytest.approx(ref["imin"], rel=0.03)  # Irrm
-    assert ours["qneg"] == pytest.approx(ref["qneg"], rel=0.03)  # Qrr
+    assert ours["imin"] == pytest.approx(ref["imin"], rel=0.02)  # Irrm
+    assert ours["qneg"] == pytest.approx(ref["qneg"], rel=0.02)  # Qrr
 
 
 def test_schottky_capacitive_recovery_matches_ngspice():

@@ -298,7 +298,7 @@ def _fine_dt(switch: SwitchModel, fixture: Fixture, junction: JunctionParams) ->
     return float(min(0.1e-9, period / 40.0))
 
 
-@functools.lru_cache(maxsize=64)
+@functools.lru_cache(maxsize=16)  # a shot holds a few MB of waveforms
 def simulate_double_pulse(
     fixture: Fixture,
     switch: SwitchModel,
@@ -322,6 +322,8 @@ def simulate_double_pulse(
         raise ValueError("bus voltage must be positive")
     if min(timing.first_pulse_s, timing.off_time_s, timing.second_pulse_s) <= 0:
         raise ValueError("pulse widths and off time must be positive")
+    if timing.post_s < 0:
+        raise ValueError("post_s must not be negative")
     fx, sw = fixture, switch
     jp = diode.at_temperature(temperature_K)
     dt = _fine_dt(sw, fx, jp)
