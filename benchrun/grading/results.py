@@ -1,0 +1,144 @@
+"""Result records of grading: :class:`MetricGrade`, :class:`DeviceGrade`, :class:`LotGrade`.
+
+Frozen dataclasses with deterministic, JSON-safe ``to_dict()`` (verification compares these
+dictionaries exactly).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+from benchrun.grading.lot import LotStatistics
+from benchrun.grading.uncertainty import UncertaintyBudget
+
+
+@dataclass(frozen=True)
+class MetricGrade:
+    """Grade of one metric of one device at one condition."""
+
+    metric: str
+    condition: str
+    unit: str
+    value: float | None
+    n: int
+    expanded_uncertainty: float | None
+    combined_uncertainty: float | None
+    coverage_factor: float
+    lower: float | None
+    upper: float | None
+    acceptance_lower: float | None
+    acceptance_upper: float | None
+    guard_band: float | None
+    outcome: str
+    statement: str
+    reason: str
+    budget: UncertaintyBudget | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "metric": self.metric,
+            "condition": self.condition,
+            "unit": self.unit,
+            "value": self.value,
+            "n": self.n,
+            "U": self.expanded_uncertainty,
+            "u_c": self.combined_uncertainty,
+            "k": self.coverage_factor,
+            "lower": self.lower,
+            "upper": self.upper,
+            "acceptance_lower": self.acceptance_lower,
+            "acceptance_upper": self.acceptance_upper,
+            "guard_band": self.guard_band,
+            "outcome": self.outcome,
+            "statement": self.statement,
+            "reason": self.reason,
+            "budget": None if self.budget is None else self.budget.to_dict(),
+        }
+
+
+@dataclass(frozen=True)
+class DeviceGrade:
+    """Verdict of one device: the worst of its metric outcomes, its bin and why."""
+
+    serial: str
+    verdict: str
+    bin: str | None
+    grades: tuple[MetricGrade, ...]
+    reasons: tuple[str, ...]
+    values: dict[str, dict[str, float]] = field(default_factory=dict)
+    shots: dict[str, dict[str, int]] = field(default_factory=dict)
+    invalid_shots: tuple[str, ...] = ()
+    ratios: dict[str, float] = field(default_factory=dict)
+
+    def grade(self, metric: str, condition: str) -> MetricGrade:
+        """The grade of ``metric`` at ``condition``."""
+        for item in self.grades:
+            if item.metric == metric and item.condition == condition:
+                return item
+        raise KeyError((metric, condition))
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "serial": self.serial,
+            "verdict": self.verdict,
+            "bin": self.bin,
+            "grades": [g.to_dict() for g in self.grades],
+            "reasons": list(self.reasons),
+            "values": {c: dict(v) for c, v in self.values.items()},
+            "shots": {c: dict(v) for c, v in self.shots.items()},
+            "invalid_shots": list(self.invalid_shots),
+            "ratios": dict(self.ratios),
+        }
+
+
+@dataclass(frozen=True)
+class LotGrade:
+    """Grades of every device, the lot disposition with its reasons, statistics, budgets."""
+
+    part: str
+    lots: tuple[str, ...]
+    run_ids: tuple[str, ...]
+    conditions: tuple[dict[str, Any], ...]
+    devices: list[DeviceGrade]
+    disposition: str
+    reasons: tuple[str, ...]
+    statistics: LotStatistics
+    budgets: dict[str, UncertaintyBudget]
+    decision_rule: str
+    lot_rule: str
+
+    def device(self, serial: str) -> DeviceGrade:
+        """The grade of the device ``serial``."""
+        for item in self.devices:
+            if item.serial == serial:
+                return item
+        raise KeyError(serial)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe, deterministic dictionary (non-finite floats become ``None``)."""
+        data = {
+            "part": self.part,
+            "lots": list(self.lots),
+            "run_ids": list(self.run_ids),
+            "conditions": [dict(c) for c in self.conditions],
+            "devices": [d.to_dict() for d in self.devices],
+            "disposition": self.disposition,
+            "reasons": list(self.reasons),
+            "statistics": self.statistics.to_dict(),
+            "budgets": {key: b.to_dict() for key, b in self.budgets.items()},
+            "decision_rule": self.decision_rule,
+            "lot_rule": self.lot_rule,
+        }
+        return _json_safe(data)
+
+
+def _json_safe(value: Any) -> Any:
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    return value
