@@ -18,7 +18,6 @@ from collections import Counter
 from pathlib import Path
 
 import pytest
-from pg_fixture import pg_cluster, postgres_url  # noqa: F401  (pytest fixtures)
 
 from benchrun.store import RawRecord, ResultsStore
 
@@ -129,7 +128,7 @@ def test_kill_9_loses_only_the_shot_in_flight(tmp_path, request, backend):
     kills = 0
     # kill after this many acknowledged shots of each session, then wait this long (s) so the
     # signal lands somewhere inside the next shot's HDF5 write or database commit
-    for kill_after, delay in ((2, 0.0), (3, 0.002), (4, 0.006), (3, 0.0)):
+    for kill_after, delay in ((2, 0.0), (3, 0.002), (4, 0.006)):
         child = _start_child(script, raw_path, url)
         assert child.stdout is not None
         seen = 0

@@ -280,3 +280,15 @@ def test_second_writer_process_is_refused(tmp_path):
     free = subprocess.run([sys.executable, "-c", code, str(path)], capture_output=True,
                           text=True, timeout=60)  # fmt: skip
     assert free.returncode == 0, free.stdout + free.stderr
+
+
+def test_numpy_values_in_attrs_are_stored_as_plain_json(tmp_path):
+    attrs = {"adc_bits": np.int64(8), "range_V": np.float32(0.5), "taps": np.arange(3),
+             "ok": np.bool_(True), "pair": (1, 2)}  # fmt: skip
+    with RawRecord(tmp_path / "raw.h5") as raw:
+        raw.append_shot("000000", 0.0, 1e-9, make_channels(), make_probes(), attrs)
+        shot = raw.read_shot("000000")  # also checks the stored digest
+    assert shot.attrs == {"adc_bits": 8, "range_V": 0.5, "taps": [0, 1, 2], "ok": True,
+                          "pair": [1, 2]}  # fmt: skip
+    with RawRecord(tmp_path / "raw.h5") as raw, pytest.raises(StoreError, match="JSON"):
+        raw.append_shot("000001", 0.0, 1e-9, make_channels(), make_probes(), {"x": object()})

@@ -7,7 +7,6 @@ import struct
 
 import pytest
 import sqlalchemy as sa
-from pg_fixture import pg_cluster, postgres_url  # noqa: F401  (pytest fixtures)
 from store_helpers import make_shot
 
 from benchrun.errors import StoreError
@@ -199,7 +198,7 @@ def test_second_store_object_sees_committed_rows(store_url):
 
 
 @pytest.mark.postgres
-def test_row_digest_is_the_same_on_sqlite_and_postgresql(tmp_path, postgres_url):  # noqa: F811
+def test_row_digest_is_the_same_on_sqlite_and_postgresql(tmp_path, postgres_url):
     digests = []
     for url in (f"sqlite:///{tmp_path / 'r.db'}", postgres_url):
         with ResultsStore(url) as s:
@@ -239,3 +238,17 @@ def test_sqlite_is_in_wal_mode_with_full_sync(tmp_path):
         # PRAGMA synchronous: 2 = FULL (SQLite documentation, "PRAGMA synchronous")
         assert conn.exec_driver_sql("PRAGMA synchronous").scalar() == 2
         assert conn.exec_driver_sql("PRAGMA foreign_keys").scalar() == 1
+
+
+def test_numpy_scalars_in_a_shot_are_stored_as_plain_numbers(store):
+    import numpy as np
+
+    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    base = make_shot()
+    acquisition = {"adc_bits": np.int64(8), "sample_interval_s": np.float64(2e-10)}
+    shot = ShotResult(**{**base.__dict__, "acquisition": acquisition})
+    assert store.add_shot(shot) is True
+    assert store.add_shot(shot) is False
+    (back,) = store.shots("R-0001")
+    assert back.acquisition == {"adc_bits": 8, "sample_interval_s": 2e-10}
+    assert type(back.acquisition["adc_bits"]) is int

@@ -5,7 +5,6 @@ from __future__ import annotations
 import json
 
 import pytest
-from pg_fixture import pg_cluster, postgres_url  # noqa: F401  (pytest fixtures)
 from store_helpers import make_channels, make_probes, make_shot
 
 from benchrun.errors import StoreError
@@ -135,7 +134,7 @@ def test_load_run_errors(tmp_path):
 
 
 @pytest.mark.postgres
-def test_load_run_folder_with_postgresql_store(tmp_path, postgres_url):  # noqa: F811
+def test_load_run_folder_with_postgresql_store(tmp_path, postgres_url):
     run_dir = tmp_path / "R-0001"
     _, shots = _make_run_folder(run_dir, store_url=postgres_url)
     assert not (run_dir / "results.db").exists()

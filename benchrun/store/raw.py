@@ -43,6 +43,7 @@ import numpy as np
 
 from benchrun import __version__
 from benchrun.errors import StoreError
+from benchrun.store.canonical import canonical_json
 
 
 @dataclass(frozen=True)
@@ -142,14 +143,6 @@ class RawShot:
         return shot_digest(self.t_start, self.dt, self.channels, self.probes, self.attrs)
 
 
-def _json(value: Any) -> str:
-    """Canonical JSON (sorted keys, no spaces); floats as ``repr`` so they round-trip exactly."""
-    try:
-        return json.dumps(value, sort_keys=True, separators=(",", ":"), allow_nan=True)
-    except (TypeError, ValueError) as exc:
-        raise StoreError(f"value cannot be stored as JSON: {exc}") from exc
-
-
 def shot_digest(
     t_start: float,
     dt: float,
@@ -188,7 +181,7 @@ def shot_digest(
         },
         "attrs": dict(attrs),
     }
-    h = hashlib.sha256(_json(header).encode())
+    h = hashlib.sha256(canonical_json(header).encode())
     for name in sorted(channels):
         codes = np.asarray(channels[name].codes)
         h.update(name.encode() + b"\0")
@@ -392,7 +385,7 @@ class RawRecord:
             if isinstance(value, str | int | float | bool):
                 f.attrs[name] = value
             else:
-                f.attrs[f"{name}_json"] = _json(value)
+                f.attrs[f"{name}_json"] = canonical_json(value)
         self.flush()
 
     # -- shots ---------------------------------------------------------------------------
@@ -481,10 +474,10 @@ class RawRecord:
                 )
             arrays[name] = codes
         digest = shot_digest(t_start, dt, channels, probes, attrs)
-        probes_json = _json(
+        probes_json = canonical_json(
             {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)} for n, p in probes.items()}
         )
-        attrs_json = _json(attrs)
+        attrs_json = canonical_json(attrs)
         shots = self._shots
         try:
             if key in shots:

@@ -41,11 +41,11 @@ from sqlalchemy.exc import ArgumentError, IntegrityError, NoSuchModuleError, SQL
 
 from benchrun.errors import StoreError
 from benchrun.records import ShotResult
+from benchrun.store.canonical import canonical_json
 from benchrun.store.schema import (
     SHOT_COLUMNS,
     ReportRecord,
     RunRecord,
-    canonical_json,
     metadata,
     reports_table,
     runs_table,

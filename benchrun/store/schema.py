@@ -8,7 +8,6 @@ backend stores exactly the characters written and floats round-trip bit-exactly.
 from __future__ import annotations
 
 import datetime as _dt
-import json
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -24,8 +23,6 @@ from sqlalchemy import (
     Text,
     UniqueConstraint,
 )
-
-from benchrun.errors import StoreError
 
 metadata = MetaData()
 
@@ -90,14 +87,6 @@ SHOT_COLUMNS = (
 def utc_now() -> str:
     """The current time as an ISO 8601 UTC string."""
     return _dt.datetime.now(_dt.UTC).isoformat()
-
-
-def canonical_json(value: Any) -> str:
-    """Canonical JSON: sorted keys, no spaces, floats as ``repr`` (exact round trip)."""
-    try:
-        return json.dumps(value, sort_keys=True, separators=(",", ":"), allow_nan=True)
-    except (TypeError, ValueError) as exc:
-        raise StoreError(f"value cannot be stored as JSON: {exc}") from exc
 
 
 @dataclass(frozen=True)
