@@ -22,7 +22,9 @@ def register(subparsers: Any) -> None:
     parser = subparsers.add_parser(
         "grade",
         help="grade stored results against a limits file",
-        description=__doc__.split("\n\n", 1)[1] if __doc__ else None,
+        description="RESULTS is a run folder or a results database URL. Without --limits the "
+        "run folder's limits.yaml (the limits the run was made with) is used; pass a changed "
+        "limits file to see how the same measurements grade against it.",
     )
     parser.add_argument("results", metavar="RESULTS", help="run folder or results database URL")
     parser.add_argument("--limits", metavar="FILE", help="limits file (default: the run's)")
