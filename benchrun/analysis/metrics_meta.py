@@ -57,6 +57,14 @@ _TABLE = (
     ("t2_s", "s", "t2", "absolute end of the Qrr / Err integration"),
     ("eon_J", "J", "Eon", "switch turn-on energy"),
     ("eon_recovery_J", "J", "Eon(rec)", "part of the switch turn-on energy due to diode recovery"),
+    ("eon_ideal_J", "J", "Eon(ideal)",
+     "switch turn-on energy modelled for a charge-free diode at the same di/dt and dv/dt"),
+    ("eon_recovery_estimate_J", "J", "VR·Qrr",
+     "estimate of the recovery-caused switch energy, VR·Qrr (common practice)"),
+    ("t_eon_start_s", "s", "t(Eon start)",
+     "absolute start of the Eon window: switch current rises through 10 % of IF"),
+    ("t_eon_end_s", "s", "t(Eon end)",
+     "absolute end of the Eon window: switch voltage falls through 2 % of its off-state value"),
 )
 
 #: Metric key → :class:`MetricMeta`.
