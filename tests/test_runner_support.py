@@ -35,9 +35,11 @@ switch_voltage: true
     return path
 
 
-def write_bench(folder: Path, *, scope_timeout: str = "2 s") -> Path:
-    """The simulated bench file with a shorter scope timeout (fault tests)."""
-    text = BENCH.read_text().replace("timeout: 10 s", f"timeout: {scope_timeout}")
+def write_bench(folder: Path, *, timeout: str = "1 s") -> Path:
+    """The simulated bench file with short I/O timeouts for every instrument (fault tests)."""
+    text = BENCH.read_text().replace(", timeout: 10 s", "")
+    text = text.replace("2030-12-31}", f"2030-12-31, timeout: {timeout}}}")
+    text = text.replace("handler-generic}", f"handler-generic, timeout: {timeout}}}")
     path = folder / "bench.yaml"
     path.write_text(text)
     return path
