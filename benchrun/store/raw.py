@@ -46,35 +46,14 @@ from benchrun.errors import StoreError
 from benchrun.store.canonical import canonical_json
 
 
-@dataclass(frozen=True)
-class _FallbackChannelData:
-    """Same fields as :class:`benchrun.analysis.pipeline.ChannelData` (used only without it)."""
-
-    codes: np.ndarray
-    gain: float
-    offset: float
-    code_min: int
-    code_max: int
-
-
-@dataclass(frozen=True)
-class _FallbackProbeCalibration:
-    """Same fields as :class:`benchrun.analysis.pipeline.ProbeCalibration`."""
-
-    scale: float
-    deskew_s: float = 0.0
-
-
 def scaling_types() -> tuple[type, type]:
     """``(ChannelData, ProbeCalibration)`` of :mod:`benchrun.analysis.pipeline`.
 
     Imported on first use, not at import time, so that opening a store does not load
-    the signal-processing stack (scipy) a report listing does not need.
+    the signal-processing stack (scipy) that listing reports does not need.
     """
-    try:
-        from benchrun.analysis.pipeline import ChannelData, ProbeCalibration
-    except ImportError:  # pragma: no cover - only while the analysis package is incomplete
-        return _FallbackChannelData, _FallbackProbeCalibration
+    from benchrun.analysis.pipeline import ChannelData, ProbeCalibration
+
     return ChannelData, ProbeCalibration
 
 
