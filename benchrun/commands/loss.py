@@ -112,7 +112,7 @@ def render_text(table: LossTable, *, run_id: str = "") -> str:
         for g in table.groups:
             if (g.part, g.lot) != (part, lot):
                 continue
-            row = [format_si(g.temperature_K, "K"), format_si(g.vr_nominal_V, "V", 3),
+            row = [format_si(g.temperature_K, "K", 3), format_si(g.vr_nominal_V, "V", 3),
                    format_si(g.if_nominal_A, "A", 3), str(g.n_devices), g.basis,
                    _j(g.err_mean_J), _j(g.switch_mean_J), _j(g.energy_mean_J),
                    _j(g.energy_max_J)]

@@ -1,0 +1,116 @@
+"""Report section: what the measured recovery costs in a converter.
+
+``loss_flowables(loss_table, styles)`` returns reportlab flowables for the report's loss
+section (the report adds the section heading): the model, the assumptions it rests on, and a
+table per part/lot with energy per commutation and average power at the switching frequencies
+the sequence names.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+from xml.sax.saxutils import escape
+
+from reportlab.lib.styles import ParagraphStyle, getSampleStyleSheet
+from reportlab.platypus import Flowable, KeepTogether, LongTable, Paragraph, Spacer, TableStyle
+
+from benchrun.loss.estimate import BASIS_ESTIMATE, BASIS_MEASURED, BASIS_MIXED, LossTable
+from benchrun.units import format_si
+
+#: The assumptions printed with every loss estimate.
+ASSUMPTIONS = (
+    "Same conditions as tested: the figures hold at the measured temperature, reverse "
+    "voltage, forward current and di/dt of each row, with this fixture's switch and loop.",
+    "No scaling to other voltages or currents: a value at another operating point is not "
+    "derived from these rows unless a measured sweep covers it.",
+    "Between measured points of a sweep, values may be interpolated linearly; nothing is "
+    "extrapolated outside the measured range.",
+    "Average power P = fsw·E assumes one recovery per switching period at the tested "
+    "conditions (hard-switched commutation, continuous conduction).",
+    "Only the recovery-related losses are counted: the diode's Err and the switch energy the "
+    "recovery causes. Conduction losses and the switch's own (charge-free) turn-on energy "
+    "are not part of this estimate.",
+)
+
+BASIS_TEXT = {
+    BASIS_MEASURED: "measured: switch Eon over the window 10 % of IF (current rising) to 2 % "
+    "of the off-state voltage (voltage falling), IEC 60747-9 practice, minus the Eon modelled "
+    "for a charge-free diode (measured current rise, then a linear voltage fall at the "
+    "measured dv/dt while the switch carries IF); an upper-side figure",
+    BASIS_ESTIMATE: "estimate: VR·Qrr (the recovered charge passes the switch while it holds "
+    "about the bus voltage); no switch-voltage channel was captured",
+    BASIS_MIXED: "mixed: some devices measured, some estimated",
+}
+
+
+def _style(styles: Mapping[str, ParagraphStyle] | Any, name: str, fallback: str) -> Any:
+    try:
+        return styles[name]
+    except (KeyError, TypeError):
+        return getSampleStyleSheet()[fallback]
+
+
+def _table(rows: list[list[str]]) -> LongTable:
+    from benchrun.report.sections import base_table_style
+    from benchrun.report.styles import register_fonts
+
+    register_fonts()  # the table style names the report's fonts
+    table = LongTable(rows, repeatRows=1, hAlign="LEFT")
+    commands = base_table_style(len(rows), font_size=7.0)
+    commands.append(("ALIGN", (3, 1), (-1, -1), "RIGHT"))
+    table.setStyle(TableStyle(commands))
+    return table
+
+
+def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] | Any) -> list:
+    """Flowables of the loss section.
+
+    Parameters
+    ----------
+    loss_table
+        :func:`benchrun.loss.estimate_losses` result at the sequence's frequencies.
+    styles
+        Paragraph styles by name (``body``, ``small``, ``h3``); reportlab's sample styles are
+        used for any name missing.
+    """
+    body = _style(styles, "body", "BodyText")
+    small = _style(styles, "small", "BodyText")
+    h3 = _style(styles, "h3", "Heading3")
+    freqs = ", ".join(format_si(f, "Hz", digits=3) for f in loss_table.fsw_hz)
+    out: list[Flowable] = [
+        Paragraph(escape(
+            "Energy lost per commutation because of the diode's reverse recovery, "
+            "E = Err + the switch turn-on energy the recovery causes, and the average power "
+            f"P = fsw·E at {freqs or 'no frequency'}. Means and maxima over the devices of "
+            "each part and lot at each test point (valid shots only)."), body),
+        Spacer(1, 3),
+        Paragraph("Assumptions", h3),
+    ]
+    out += [Paragraph(escape(f"• {text}"), small) for text in ASSUMPTIONS]
+    used = loss_table.bases
+    out.append(Paragraph("Basis of the switch energy", h3))
+    out += [Paragraph(escape(f"• {BASIS_TEXT[b]}"), small) for b in used if b in BASIS_TEXT]
+    if not loss_table.groups:
+        out.append(Paragraph("No usable shots: no valid shot with Err and a switch-energy "
+                             "figure.", body))
+    for part, lot in loss_table.parts:
+        header = ["T", "VR", "IF", "devices", "basis", "Err", "Esw,rec", "E mean", "E max"]
+        header += [f"P @{format_si(f, 'Hz', digits=3)} mean / max" for f in loss_table.fsw_hz]
+        rows = [header]
+        for g in loss_table.groups:
+            if (g.part, g.lot) != (part, lot):
+                continue
+            row = [format_si(g.temperature_K, "K", 3), format_si(g.vr_nominal_V, "V", 3),
+                   format_si(g.if_nominal_A, "A", 3), str(g.n_devices), g.basis,
+                   format_si(g.err_mean_J, "J", 3), format_si(g.switch_mean_J, "J", 3),
+                   format_si(g.energy_mean_J, "J", 3), format_si(g.energy_max_J, "J", 3)]
+            row += [f"{format_si(m, 'W', 3)} / {format_si(x, 'W', 3)}"
+                    for m, x in zip(g.power_mean_W, g.power_max_W, strict=True)]
+            rows.append(row)
+        out.append(KeepTogether([Paragraph(escape(f"{part}, lot {lot}"), h3),
+                                 _table(rows)]))
+    for reason in loss_table.skipped:
+        out.append(Paragraph(escape(f"Left out: {reason}."), small))
+    return out
+

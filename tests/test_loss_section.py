@@ -1,0 +1,70 @@
+"""The report's loss section renders and says what it rests on.
+
+Reference: poppler's ``pdftotext`` (an independent PDF reader) extracts the rendered text.
+"""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+
+import pytest
+from reportlab.lib.pagesizes import A4
+from reportlab.lib.styles import getSampleStyleSheet
+from reportlab.platypus import SimpleDocTemplate
+
+from benchrun.loss import estimate_losses
+from benchrun.records import ShotResult, TestPoint
+from benchrun.report.loss_section import ASSUMPTIONS, loss_flowables
+
+
+def _shot(serial, temp, err, rec, est=None):
+    return ShotResult(
+        run_id="R-1", part="KFR30-12", lot="L2611-A", serial=serial,
+        point=TestPoint(index=0, temperature_K=temp, bus_voltage_V=600.0,
+                        forward_current_A=30.0),
+        repeat=0, attempt=0, timestamp="2031-01-01T00:00:00Z",
+        conditions={"if_A": 30.0, "didt_A_per_s": 5e8, "vr_V": 600.0, "temperature_K": temp},
+        metrics={"err_J": err, "eon_recovery_J": rec, "eon_recovery_estimate_J": est},
+    )
+
+
+def _table():
+    shots = [_shot("A1", 298.15, 500e-6, 1.0e-3), _shot("A2", 298.15, 520e-6, 1.1e-3),
+             _shot("A1", 398.15, 900e-6, None, 2.2e-3)]
+    return estimate_losses(shots, [20e3, 50e3])
+
+
+def _render(tmp_path, styles):
+    pdf = tmp_path / "loss.pdf"
+    SimpleDocTemplate(str(pdf), pagesize=A4).build(loss_flowables(_table(), styles))
+    return pdf
+
+
+@pytest.mark.skipif(shutil.which("pdftotext") is None, reason="poppler-utils not installed")
+def test_section_text_in_pdf(tmp_path):
+    from benchrun.report.styles import paragraph_styles
+
+    pdf = _render(tmp_path, paragraph_styles())
+    text = subprocess.run(["pdftotext", "-layout", str(pdf), "-"], capture_output=True,
+                          text=True, timeout=30, check=True).stdout
+    flat = " ".join(text.split())
+    assert "KFR30-12, lot L2611-A" in flat
+    assert "20 kHz" in flat and "50 kHz" in flat
+    # 25 °C group: E mean = (1.5 mJ + 1.62 mJ)/2 = 1.56 mJ → 31.2 W at 20 kHz, 78 W at 50 kHz
+    assert "1.56 mJ" in flat and "31.2 W" in flat and "78 W" in flat
+    # 125 °C rests on the VR·Qrr estimate and says so
+    assert "estimate" in flat and "VR·Qrr" in flat
+    for sentence in ASSUMPTIONS:
+        assert " ".join(sentence.split()[:6]) in flat
+
+
+def test_section_with_plain_reportlab_styles(tmp_path):
+    pdf = _render(tmp_path, getSampleStyleSheet())
+    assert pdf.stat().st_size > 1000
+
+
+def test_empty_table_says_so():
+    table = estimate_losses([], [20e3])
+    texts = [getattr(f, "text", "") for f in loss_flowables(table, getSampleStyleSheet())]
+    assert any("No usable shots" in t for t in texts)
