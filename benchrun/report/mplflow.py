@@ -154,6 +154,56 @@ class CanvasRenderer(RendererBase):
             canvas.drawPath(pdf_path, stroke=int(stroke), fill=int(fill))
         canvas.restoreState()
 
+    def draw_markers(self, gc: GraphicsContextBase, marker_path: MplPath, marker_trans: Any,
+                     path: MplPath, trans: Any, rgbFace: Any = None) -> None:
+        """All markers of a line as one PDF path (one fill/stroke operation)."""
+        canvas = self.canvas
+        marker = [(code, np.asarray(v, dtype=float)) for v, code in
+                  marker_path.iter_segments(marker_trans, simplify=False, curves=True)]
+        points = [tuple(v[-2:]) for v, code in path.iter_segments(trans, simplify=False)
+                  if code != MplPath.CLOSEPOLY]
+        if not points or not marker:
+            return
+        canvas.saveState()
+        self._apply_clip(gc)
+        stroke = self._stroke_style(gc)
+        fill = False
+        if rgbFace is not None:
+            face = tuple(rgbFace)
+            alpha = gc.get_alpha() if gc.get_forced_alpha() else (face[3] if len(face) > 3 else 1)
+            if alpha > 0:
+                canvas.setFillColorRGB(*face[:3], alpha=alpha)
+                fill = True
+        if stroke or fill:
+            pdf_path = canvas.beginPath()
+            for x, y in points:
+                if not (np.isfinite(x) and np.isfinite(y)):
+                    continue
+                if not (-5 <= x <= self.width + 5 and -5 <= y <= self.height + 5):
+                    continue
+                last = (x, y)
+                for code, v in marker:
+                    if code == MplPath.MOVETO:
+                        last = (x + v[0], y + v[1])
+                        pdf_path.moveTo(*last)
+                    elif code == MplPath.LINETO:
+                        last = (x + v[0], y + v[1])
+                        pdf_path.lineTo(*last)
+                    elif code == MplPath.CURVE3:
+                        cx, cy, ex, ey = x + v[0], y + v[1], x + v[2], y + v[3]
+                        pdf_path.curveTo(last[0] + 2 / 3 * (cx - last[0]),
+                                         last[1] + 2 / 3 * (cy - last[1]),
+                                         ex + 2 / 3 * (cx - ex), ey + 2 / 3 * (cy - ey), ex, ey)
+                        last = (ex, ey)
+                    elif code == MplPath.CURVE4:
+                        pdf_path.curveTo(x + v[0], y + v[1], x + v[2], y + v[3],
+                                         x + v[4], y + v[5])
+                        last = (x + v[4], y + v[5])
+                    elif code == MplPath.CLOSEPOLY:
+                        pdf_path.close()
+            canvas.drawPath(pdf_path, stroke=int(stroke), fill=int(fill))
+        canvas.restoreState()
+
     def draw_text(self, gc: GraphicsContextBase, x: float, y: float, s: str, prop: Any,
                   angle: float, ismath: Any = False, mtext: Any = None) -> None:
         text = _plain(s)

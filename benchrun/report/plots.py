@@ -240,15 +240,21 @@ def trend_figure(
     values = finite(v for pts in per_device.values() for _, v in pts)
     scale, shown = nice_unit_scale(values, unit)
     by_temp: dict[float, list[float]] = {}
+    xs: list[float] = []
+    ys: list[float] = []
     for points in per_device.values():
         pts = sorted((t, v) for t, v in points if v is not None and np.isfinite(v))
         if not pts:
             continue
-        temps = [t - 273.15 for t, _ in pts]
-        ax.plot(temps, [v * scale for _, v in pts], color="#9aa3ad", lw=0.4, marker=".",
-                ms=2)
+        # every device's line in one polyline, separated by NaN: one artist for the whole lot
+        xs += [t - 273.15 for t, _ in pts] + [np.nan]
+        ys += [v * scale for _, v in pts] + [np.nan]
         for t, v in pts:
             by_temp.setdefault(round(t, 1), []).append(v)
+    if xs:
+        few = len(per_device) <= 60
+        ax.plot(xs, ys, color="#9aa3ad", lw=0.4, marker="." if few else None, ms=2,
+                label=f"devices (n={len(per_device)})")
     if by_temp:
         temps = sorted(by_temp)
         ax.plot([t - 273.15 for t in temps], [np.mean(by_temp[t]) * scale for t in temps],
