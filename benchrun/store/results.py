@@ -114,7 +114,11 @@ class ResultsStore:
         try:
             engine: Engine = create_engine(self.url, pool_pre_ping=self.backend != "sqlite")
         except (ArgumentError, NoSuchModuleError, ImportError) as exc:
-            raise StoreError(f"cannot use database URL {self.public_url}: {exc}") from exc
+            hint = ""
+            if isinstance(exc, ImportError) and self.backend == "postgresql":
+                hint = (" (pip install 'benchrun[postgres]' installs psycopg 3, used by "
+                        "postgresql:// and postgresql+psycopg:// URLs)")
+            raise StoreError(f"cannot use database URL {self.public_url}: {exc}{hint}") from exc
         if self.backend == "sqlite":
             event.listen(engine, "connect", _set_sqlite_pragmas)
         self._engine = engine
