@@ -224,7 +224,9 @@ def plan_ranges(point: TestPoint, sequence: SequenceConfig, bench: BenchConfig
                 ) -> dict[str, SignalRange]:
     """Scope full-scale windows from the expected waveform extremes.
 
-    - diode current: from −1.2·Irrm(expected) to 1.3·IF (Irrm expected = ``irrm_fraction``·IF);
+    - diode current: from −1.2·Irrm(expected) to 1.3·IF (Irrm expected = ``irrm_fraction``·IF),
+      or to 1.1× the current the diode takes over after the second pulse (IF + VR·t2/L),
+      whichever is higher, so the end of the record does not clip;
     - diode voltage: from −1.1·(VR + overshoot) to +max(5 % of VR, 20 V); the overshoot is
       Ls·di/dt times a margin, or 25 % of VR when no di/dt is known (common practice);
     - switch voltage: from −5 % of VR to 1.1·(VR + overshoot); gate: ±20 V.
@@ -232,13 +234,14 @@ def plan_ranges(point: TestPoint, sequence: SequenceConfig, bench: BenchConfig
     IF = point.forward_current_A
     VR = point.bus_voltage_V
     irrm = sequence.expected.irrm_fraction * IF
+    after = IF + VR * sequence.timing.second_pulse / bench.fixture.load_inductance
     slope = expected_didt(point, sequence)
     if slope is not None:
         overshoot = bench.fixture.stray_inductance * slope * sequence.expected.overshoot_margin
     else:
         overshoot = 0.25 * VR
     ranges = {
-        "diode_current": SignalRange("diode_current", -1.2 * irrm, 1.3 * IF),
+        "diode_current": SignalRange("diode_current", -1.2 * irrm, max(1.3 * IF, 1.1 * after)),
         "diode_voltage": SignalRange("diode_voltage", -1.1 * (VR + overshoot),
                                      max(0.05 * VR, 20.0)),
         "switch_voltage": SignalRange("switch_voltage", -0.05 * VR, 1.1 * (VR + overshoot)),
