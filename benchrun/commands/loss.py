@@ -142,7 +142,7 @@ def render_comparison(comparison: Comparison, *, other_run_id: str = "") -> str:
         rows = [header]
         for r in comparison.rows:
             row = [f"{r.part_a} {r.lot_a}", f"{r.part_b} {r.lot_b}",
-                   format_si(r.temperature_K, "K"), format_si(r.vr_V, "V", 3),
+                   format_si(r.temperature_K, "K", 3), format_si(r.vr_V, "V", 3),
                    format_si(r.if_A, "A", 3), _j(r.energy_a_J), _j(r.energy_b_J)]
             for saving, pct in zip(r.saving_W, r.saving_pct, strict=True):
                 row += [_w(saving), "—" if pct is None else f"{pct:.1f}"]
