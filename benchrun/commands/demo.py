@@ -3,8 +3,9 @@
 Starts the simulated bench in-process, runs the example sequence on an invented lot of
 KFR30-12 fast-recovery diodes (Korvane Power Components, invented) at 25 °C and 125 °C —
 two of the ten devices are outliers — grades the lot against the example limits, stores
-everything, and writes a signed acceptance report. With ``--with-sic`` it also tests a small
-lot of KSC20-12 SiC Schottky diodes and compares the recovery losses of the two parts.
+everything, and writes a signed acceptance report. It then tests a small lot of KSC20-12 SiC
+Schottky diodes at the same conditions and compares the recovery losses of the two parts
+(``--no-sic`` skips this).
 
 The signing key is a throwaway demo key made in DIR/keys on first use; its passphrase is
 taken from BENCHRUN_KEY_PASSPHRASE or is the demo default printed below — demo only, never
@@ -42,8 +43,8 @@ def register(subparsers: Any) -> None:
     )
     parser.add_argument("--out", type=Path, default=Path("benchrun-demo"), metavar="DIR",
                         help="output folder (default: ./benchrun-demo)")
-    parser.add_argument("--with-sic", action="store_true",
-                        help="also test a KSC20-12 SiC lot and compare recovery losses")
+    parser.add_argument("--no-sic", action="store_true",
+                        help="skip the KSC20-12 SiC lot and the loss comparison")
     parser.add_argument("--no-progress", action="store_true", help="no live progress display")
     parser.set_defaults(func=run)
 
@@ -121,7 +122,7 @@ def run(args: argparse.Namespace) -> int:
 
     comparison = None
     sic = None
-    if args.with_sic:
+    if not args.no_sic:
         sic = _run(folder / SEQUENCE_SIC, folder / BENCH, out / "runs", progress)
         sic_run, sic_lot = _grade(sic)
         sic_loss = _losses(sic_run)
@@ -164,8 +165,12 @@ def _print_comparison(comparison: Any) -> None:
     if not rows:
         print("loss comparison: no matching test conditions")
         return
-    print("recovery loss comparison (energy per commutation, power at fsw):")
+    print("recovery loss per commutation (Err + switch energy caused by the recovery) and "
+          "average power P = fsw*E:")
     for row in rows:
+        powers = ", ".join(
+            f"{f / 1e3:g} kHz: {pa:.2f} W vs {pb:.2f} W"
+            for f, pa, pb in zip(comparison.fsw_hz, row.power_a_W, row.power_b_W, strict=True))
         print(f"  {row.part_a} vs {row.part_b} at {row.temperature_K - 273.15:g} degC, "
               f"{row.vr_V:g} V, {row.if_A:g} A: {row.energy_a_J * 1e6:.1f} uJ vs "
-              f"{row.energy_b_J * 1e6:.1f} uJ")
+              f"{row.energy_b_J * 1e6:.1f} uJ ({powers})")
