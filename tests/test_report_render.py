@@ -66,7 +66,7 @@ def test_device_table_repeats_its_header_on_every_page(signed_run):  # noqa: F81
     table_pages = [p for p in pages if "L2611-A-0" in p and "Verdict" in p and "Bin" in p]
     assert len(table_pages) >= 2  # 60 rows do not fit one landscape page
     for page in table_pages:
-        assert re.search(r"Serial\s+Condition\s+trr \(s\)", page)
+        assert re.search(r"Serial\s+Condition\s+trr\s+Qrr", page)
 
 
 def test_figures_are_vector_graphics(signed_run):  # noqa: F811

@@ -27,6 +27,7 @@ from benchrun.report.content import (
     ReportContent,
     WaveformRequest,
     fmt,
+    label_unit,
     new_report_id,
 )
 from benchrun.report.keys import ReportSigner
@@ -181,8 +182,8 @@ def _budget_table(lot: Any) -> list[list[str]]:
     rows = [["Metric @ condition", "Contributor", "Evaluation", "u(xᵢ)", "|cᵢ|·u(xᵢ)"]]
     for key, budget in lot.budgets.items():
         metric, _, condition = key.partition("@")
-        unit = METRIC_LABELS.get(metric, (metric, ""))[1]
-        label = f"{METRIC_LABELS.get(metric, (metric, ''))[0]} @ {condition}"
+        unit = label_unit(metric)[1]
+        label = f"{label_unit(metric)[0]} @ {condition}"
         for k, c in enumerate(budget.contributors):
             rows.append([label if k == 0 else "", c.name, c.evaluation,
                          _u_text(c.standard_uncertainty, c.input_unit),
@@ -238,7 +239,7 @@ def _figures(run: Any, lot: Any, columns: list[str]) -> tuple[list, list, list]:
     names = {c.get("point_index"): c["name"] for c in lot.conditions}
     dists, trends = [], []
     for key in columns:
-        label, unit = METRIC_LABELS.get(key, (key, ""))
+        label, unit = label_unit(key)
         groups: dict[str, list[float | None]] = {}
         per_device: dict[str, list[tuple[float, float]]] = {}
         for s in run.shots:
@@ -347,7 +348,7 @@ def build_content(run: Any, lot: Any, signer: ReportSigner, *,
 def _statistics_table(stats: Any) -> list[list[str]]:
     rows = [["Metric", "Condition", "n", "Mean", "σ", "Min", "Max", "Cpk"]]
     for m in stats.metrics:
-        label, unit = METRIC_LABELS.get(m.metric, (m.metric, ""))
+        label, unit = label_unit(m.metric)
         rows.append([label, m.condition, str(m.n), fmt(m.mean, unit, 4),
                      fmt(m.std, unit, 3), fmt(m.minimum, unit, 4),
                      fmt(m.maximum, unit, 4),
@@ -356,11 +357,11 @@ def _statistics_table(stats: Any) -> list[list[str]]:
         rows.append(["yield", "", str(stats.count), f"{stats.yield_fraction * 100:.1f} %",
                      "", "", "", ""])
     for r in stats.ratios:
-        label, _ = METRIC_LABELS.get(r.metric, (r.metric, ""))
+        label, _ = label_unit(r.metric)
         rows.append([f"{label} ratio {r.hot}/{r.cold}", "", str(len(r.per_device)),
                      "—" if r.mean is None else f"{r.mean:.3f}", "", "", "", ""])
     for o in stats.outliers[:40]:
-        label, unit = METRIC_LABELS.get(o.metric, (o.metric, ""))
+        label, unit = label_unit(o.metric)
         rows.append([f"outlier {o.serial}", o.condition, "", f"{label} "
                      f"{fmt(o.value, unit, 4)}", f"z = {o.z:.1f}", "", "", ""])
     return rows

@@ -41,6 +41,21 @@ METRIC_LABELS: dict[str, tuple[str, str]] = {
     "t2_s": ("t2", "s"),
 }
 
+_SUFFIX_UNITS = (("_A_per_s", "A/s"), ("_J", "J"), ("_C", "C"), ("_s", "s"), ("_A", "A"),
+                 ("_V", "V"), ("_W", "W"), ("_K", "K"))
+
+
+def label_unit(key: str) -> tuple[str, str]:
+    """Display label and SI unit of a metric key; unknown keys get their unit from the
+    ``_<unit>`` suffix naming convention of the analysis results (``eon_J`` → J)."""
+    if key in METRIC_LABELS:
+        return METRIC_LABELS[key]
+    for suffix, unit in _SUFFIX_UNITS:
+        if key.endswith(suffix):
+            return key[: -len(suffix)].replace("_", " "), unit
+    return key.replace("_", " "), ""
+
+
 #: Definitions printed in the report (DESIGN §3; fractions filled from the analysis options).
 METRIC_DEFINITIONS: dict[str, str] = {
     "if_A": "forward current on the plateau just before commutation",

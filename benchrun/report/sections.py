@@ -23,7 +23,7 @@ from reportlab.platypus import (
     TableStyle,
 )
 
-from benchrun.report.content import METRIC_LABELS, DeviceLine, ReportContent, value_with_u
+from benchrun.report.content import DeviceLine, ReportContent, label_unit, value_with_u
 from benchrun.report.styles import (
     FONT_BOLD,
     FONT_REGULAR,
@@ -148,8 +148,7 @@ def device_table(content: ReportContent, width: float) -> Flowable:
     """
     keys = content.metric_columns
     header = ["Serial", "Condition"] + [
-        f"{METRIC_LABELS.get(k, (k, ''))[0]}" + (f" ({METRIC_LABELS[k][1]})"
-                                                 if METRIC_LABELS.get(k, ("", ""))[1] else "")
+        label_unit(k)[0]  # every cell carries its own (prefixed) unit
         for k in keys
     ] + ["Bin", "Verdict"]
     rows: list[list[str]] = [header]
@@ -158,7 +157,7 @@ def device_table(content: ReportContent, width: float) -> Flowable:
         row = [line.serial, line.condition]
         for c, key in enumerate(keys, start=2):
             cell = line.cells.get(key)
-            unit = METRIC_LABELS.get(key, (key, ""))[1]
+            unit = label_unit(key)[1]
             row.append(_cell_text(cell, unit))
             if cell is not None and cell.grade in ("non-conforming", "indeterminate", "invalid"):
                 bg, fg = VERDICT_COLOURS[cell.grade]
@@ -195,7 +194,7 @@ def non_conforming_list(devices: Sequence[DeviceLine]) -> list[Flowable]:
     rows = [["Serial", "Condition", "Verdict", "Metrics not conforming", "Note"]]
     for d in bad:
         which = [
-            f"{METRIC_LABELS.get(k, (k, ''))[0]}: {c.grade}"
+            f"{label_unit(k)[0]}: {c.grade}"
             for k, c in d.cells.items()
             if c.grade and c.grade != "conforming"
         ]
