@@ -95,21 +95,31 @@ def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] |
         out.append(Paragraph("No usable shots: no valid shot with Err and a switch-energy "
                              "figure.", body))
     for part, lot in loss_table.parts:
-        header = ["T", "VR", "IF", "devices", "basis", "Err", "Esw,rec", "E mean", "E max"]
-        header += [f"P @{format_si(f, 'Hz', digits=3)} mean / max" for f in loss_table.fsw_hz]
-        rows = [header]
-        for g in loss_table.groups:
-            if (g.part, g.lot) != (part, lot):
-                continue
-            row = [format_si(g.temperature_K, "K", 3), format_si(g.vr_nominal_V, "V", 3),
-                   format_si(g.if_nominal_A, "A", 3), str(g.n_devices), g.basis,
-                   format_si(g.err_mean_J, "J", 3), format_si(g.switch_mean_J, "J", 3),
-                   format_si(g.energy_mean_J, "J", 3), format_si(g.energy_max_J, "J", 3)]
-            row += [f"{format_si(m, 'W', 3)} / {format_si(x, 'W', 3)}"
-                    for m, x in zip(g.power_mean_W, g.power_max_W, strict=True)]
-            rows.append(row)
-        out.append(KeepTogether([Paragraph(escape(f"{part}, lot {lot}"), h3),
-                                 _table(rows)]))
+        groups = [g for g in loss_table.groups if (g.part, g.lot) == (part, lot)]
+        energy_rows = [["T", "VR", "IF", "devices", "basis", "Err", "Esw,rec", "E mean",
+                        "E max"]]
+        power_rows = [["T", "VR", "IF"] + [f"P @{format_si(f, 'Hz', digits=3)}"
+                                           for f in loss_table.fsw_hz]]
+        for g in groups:
+            condition = [format_si(g.temperature_K, "K", 3), format_si(g.vr_nominal_V, "V", 3),
+                         format_si(g.if_nominal_A, "A", 3)]
+            energy_rows.append([
+                *condition, str(g.n_devices), g.basis, format_si(g.err_mean_J, "J", 3),
+                format_si(g.switch_mean_J, "J", 3), format_si(g.energy_mean_J, "J", 3),
+                format_si(g.energy_max_J, "J", 3)])
+            power_rows.append([*condition, *(
+                f"{format_si(m, 'W', 3)} / {format_si(x, 'W', 3)}"
+                for m, x in zip(g.power_mean_W, g.power_max_W, strict=True))])
+        out.append(KeepTogether([
+            Paragraph(escape(f"{part}, lot {lot}"), h3),
+            Paragraph("Energy per commutation (mean over devices; E max: worst device)", small),
+            _table(energy_rows),
+            Spacer(1, 4),
+            Paragraph("Average power P = fsw·E, mean / worst device", small),
+            _table(power_rows),
+        ]))
+    if loss_table.skipped:
+        out.append(Spacer(1, 4))
     for reason in loss_table.skipped:
         out.append(Paragraph(escape(f"Left out: {reason}."), small))
     return out
