@@ -157,3 +157,17 @@ def test_overdue_calibration_refused_then_overridden_and_recorded(tmp_path):
     assert manifest["allow_overdue_calibration"] is True
     assert any("scope" in text for text in manifest["calibration"]["overdue_override"])
     assert "OVERRIDDEN" in (outcome.run_dir / "run.log").read_text()
+
+
+@pytest.mark.slow
+def test_low_voltage_trim_hits_the_current(tmp_path):
+    # trim shots at 100 V with the test's t1 (six times less stored energy), then the
+    # inductance found there sets t1 for 600 V: the RL model of DESIGN §4 carries over
+    seq = write_sequence(tmp_path, devices="[KFR-2611A-003]", temperatures="[25 degC]",
+                         extra="trim: {mode: low_voltage, bus_voltage: 100 V, tolerance: 2 %}\n")
+    outcome, state = run_sim(seq, tmp_path / "out")
+    assert outcome.status == "complete" and outcome.trim_shots >= 1
+    shot = load_run(outcome.run_dir).shots[0]
+    assert shot.valid
+    assert shot.conditions["if_A"] == pytest.approx(30.0, rel=0.05)
+    assert state[2] < 60.0
