@@ -38,6 +38,8 @@ LEAVE_FRACTION = 0.3
 MIN_PLATEAU_FRACTION = 0.05
 #: Cap on the samples searched on either side of a crossing or extremum band.
 BAND_CAP = 4096
+#: Cap on the samples either side of a crossing used for its least-squares line.
+CROSSING_CAP = 64
 
 
 @dataclass(frozen=True)
@@ -209,6 +211,7 @@ def crossing_time(
     k = int(min(max(k, 1), x.size - 1))
     if band > 0.0:
         lo, hi = _band_extent(s, k - 1, k, lambda y: np.abs(y - level) <= band)
+        lo, hi = max(lo, k - 1 - CROSSING_CAP), min(hi, k + CROSSING_CAP)
         if hi - lo + 1 >= 4:
             tt = t[lo : hi + 1]
             t_mid = 0.5 * (tt[0] + tt[-1])

@@ -321,7 +321,9 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
     # Plateau just before the fall: IF and the noise level of both channels.
     p_end = k_half - 2 * fall - 2
     p_len = int(min(max(20 * fall, 64), 20_000))
-    p_start = max(0, p_end - p_len)
+    # stay on the plateau: skip its first quarter (turn-off ringing) and what precedes it
+    start_local = max(0, plateau.start - a)
+    p_start = max(p_end - p_len, start_local + max(0, p_end - start_local) // 4)
     if p_end - p_start < 8:
         flags.append(FLAG_SHORT_PLATEAU)
         p_start, p_end = 0, max(1, k_half - fall // 2)

@@ -200,9 +200,9 @@ class _Time:
         return min(max(k, 0), self.n - 1)
 
 
-def _validate(t, v_sw, i_sw, dt, t_start) -> tuple[np.ndarray, np.ndarray, _Time]:
+def _validate(t, v_sw, i_sw, dt, t_start) -> tuple[np.ndarray, Any, _Time]:
     v = np.asarray(v_sw)
-    i = np.asarray(i_sw)
+    i = i_sw if isinstance(i_sw, SwitchCurrentFromDiode) else np.asarray(i_sw)
     for name, x in (("switch voltage", v), ("switch current", i)):
         if x.ndim != 1:
             raise InputDataError(f"{name} must be a 1-D array, got shape {x.shape}")
@@ -258,12 +258,38 @@ def integrate_product(
     return float(np.sum(h * (2 * v0 * i0 + v0 * i1 + v1 * i0 + 2 * v1 * i1)) / 6.0)
 
 
-def switch_current_from_diode(i_diode: np.ndarray, if_A: float) -> np.ndarray:
+class SwitchCurrentFromDiode:
+    """``IF − i_diode`` evaluated only on the samples read (no pass over a long record).
+
+    Indexing and slicing give float64 values; ``np.asarray`` gives the whole array.
+    """
+
+    def __init__(self, i_diode: np.ndarray, if_A: float) -> None:
+        self.i_diode = np.asarray(i_diode)
+        self.if_A = float(if_A)
+        self.shape = self.i_diode.shape
+        self.ndim = self.i_diode.ndim
+        self.size = self.i_diode.size
+        self.dtype = np.dtype(np.float64)
+
+    def __len__(self) -> int:
+        return len(self.i_diode)
+
+    def __getitem__(self, index: Any) -> Any:
+        return self.if_A - np.asarray(self.i_diode[index], dtype=np.float64)
+
+    def __array__(self, dtype: Any = None, copy: Any = None) -> np.ndarray:
+        out = self.if_A - np.asarray(self.i_diode, dtype=np.float64)
+        return out if dtype is None else out.astype(dtype)
+
+
+def switch_current_from_diode(i_diode: np.ndarray, if_A: float) -> SwitchCurrentFromDiode:
     """Switch current during the commutation, ``IF − i_diode`` (Kirchhoff, load current ≈ IF).
 
-    Valid only around the commutation whose plateau current is ``if_A``.
+    Valid only around the commutation whose plateau current is ``if_A``. Evaluated lazily,
+    on the samples the analysis reads.
     """
-    return float(if_A) - np.asarray(i_diode, dtype=np.float64)
+    return SwitchCurrentFromDiode(i_diode, if_A)
 
 
 def _estimate(recovery: RecoveryLike) -> float | None:
