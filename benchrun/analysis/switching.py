@@ -325,7 +325,7 @@ def switching_estimate(
 def analyze_switch_turn_on(
     t: np.ndarray | None,
     v_sw: np.ndarray,
-    i_sw: np.ndarray,
+    i_sw: np.ndarray | SwitchCurrentFromDiode,
     recovery: RecoveryLike,
     options: SwitchingOptions | None = None,
     *,
