@@ -35,7 +35,8 @@ from benchrun.report.manifest import build_manifest, code_digest
 from benchrun.report.plots import WaveformMarks
 from benchrun.units import format_si
 
-COMPANY_DEFAULT = "Korvane Power Components"
+#: Company shown when neither the run manifest nor the signer certificate names one.
+COMPANY_DEFAULT = ""
 
 #: At most this many failing devices get a waveform plot each (the rest are listed by name).
 MAX_FAILING_PLOTS = 60

@@ -187,8 +187,11 @@ def value_with_u(value: float, expanded_u: float | None, unit: str, digits: int 
 
 
 def new_report_id(run_id: str, when: _dt.datetime) -> str:
-    """Report identifier: run id plus the UTC minute it was issued."""
-    return f"RPT-{run_id}-{when.strftime('%Y%m%dT%H%M%SZ')}"
+    """Report identifier: run id, the UTC second it was issued and 4 random hex digits (two
+    reports of one run issued in the same second still get different identifiers)."""
+    import secrets
+
+    return f"RPT-{run_id}-{when.strftime('%Y%m%dT%H%M%SZ')}-{secrets.token_hex(2)}"
 
 
 def attachment_dict(content: ReportContent) -> dict[str, Any]:

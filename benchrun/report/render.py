@@ -17,6 +17,7 @@ from typing import Any
 
 from reportlab.lib.pagesizes import A4, landscape
 from reportlab.lib.units import mm
+from reportlab.pdfbase.pdfmetrics import stringWidth
 from reportlab.pdfgen.canvas import Canvas
 from reportlab.platypus import (
     BaseDocTemplate,
@@ -103,14 +104,18 @@ def _page_decor(content: ReportContent) -> Callable[[Canvas, Any], None]:
         canvas.setLineWidth(0.5)
         canvas.line(PAGE_MARGIN, height - 12 * mm, width - PAGE_MARGIN, height - 12 * mm)
         canvas.line(PAGE_MARGIN, 14 * mm, width - PAGE_MARGIN, 14 * mm)
-        canvas.setFont(FONT_BOLD, 7.5)
         canvas.setFillColor(MUTED)
+        right = f"Lot acceptance report {content.report_id}"
+        room = width - 2 * PAGE_MARGIN - 12
+        size = 7.5
+        while size > 5 and (stringWidth(content.company, FONT_BOLD, size)
+                            + stringWidth(right, FONT_REGULAR, size)) > room:
+            size -= 0.25
+        canvas.setFont(FONT_BOLD, size)
         canvas.drawString(PAGE_MARGIN, height - 10.5 * mm, content.company)
+        canvas.setFont(FONT_REGULAR, size)
+        canvas.drawRightString(width - PAGE_MARGIN, height - 10.5 * mm, right)
         canvas.setFont(FONT_REGULAR, 7.5)
-        canvas.drawRightString(
-            width - PAGE_MARGIN, height - 10.5 * mm,
-            f"Lot acceptance report {content.report_id}",
-        )
         canvas.drawString(
             PAGE_MARGIN, 10 * mm,
             f"Part {content.part} · lot {content.lot} · disposition {content.disposition.upper()}",

@@ -61,7 +61,7 @@ def _pair_figures(figures: list[Any], width: float) -> list[Flowable]:
 def _cover(content: ReportContent, signature_slot: Flowable, width: float) -> list[Flowable]:
     counts = content.counts
     story: list[Flowable] = [
-        sec.P(content.company, "title"),
+        sec.P(content.company or "Acceptance report", "title"),
         sec.P("Reverse-recovery lot acceptance report", "subtitle"),
         sec.key_value_table(
             [
