@@ -99,7 +99,7 @@ def find_plateaus(i: np.ndarray) -> tuple[list[Plateau], float, int]:
     """
     n = i.size
     step = coarse_step(n)
-    coarse = np.asarray(i[::step], dtype=np.float64)
+    coarse = np.ascontiguousarray(i[::step], dtype=np.float64)
     low_env = _erode3(coarse)
     level = float(low_env.max()) if coarse.size else 0.0
     if not level > 0.0:
