@@ -122,13 +122,15 @@ def test_ranges_cover_expected_values(bench, sequence):
 def test_points_and_firing_order(sequence):
     points = expand_points(sequence)
     assert [p.index for p in points] == list(range(len(points)))
-    assert [p.temperature_K for p in points] == pytest.approx([298.15, 398.15])
+    # the demo has a 30 A point and a 20 A loss-reference point, both at 25 and 125 degC:
+    # every point of the first temperature comes before any of the second
+    assert [p.temperature_K for p in points] == pytest.approx([298.15, 298.15, 398.15, 398.15])
     steps = plan_run(sequence, ["A1", "A2", "A3"])
     assert len(steps) == 2
     shots = steps[0].shots
-    repeats = sequence.test_points[0].repeats
-    assert len(shots) == 3 * repeats
-    assert [s.serial for s in shots[:repeats]] == ["A1"] * repeats
+    per_device = sum(spec.repeats for spec in sequence.test_points)
+    assert len(shots) == 3 * per_device
+    assert [s.serial for s in shots[:per_device]] == ["A1"] * per_device  # device by device
     ids = [s.identity for step in steps for s in step.shots]
     assert len(ids) == len(set(ids))
 
