@@ -31,8 +31,8 @@ import numpy as np
 #: Coarse pass length: records longer than this are examined on a strided view first.
 COARSE_TARGET = 131_072
 #: Hysteresis thresholds as fractions of the coarse plateau level (common practice).
-ENTER_FRACTION = 0.6
-LEAVE_FRACTION = 0.3
+ENTER_FRACTION = 0.3
+LEAVE_FRACTION = 0.15
 #: Plateaus shorter than this fraction of the longest one are treated as ringing, not as a
 #: freewheel interval (common practice).
 MIN_PLATEAU_FRACTION = 0.05
@@ -54,12 +54,15 @@ class Plateau:
         Start of the following plateau, or the record length.
     ends_in_record
         False when the plateau runs to the end of the record (no commutation follows).
+    level
+        Coarse level of this plateau (median of its coarse samples).
     """
 
     start: int
     end: int
     next_start: int
     ends_in_record: bool
+    level: float
 
 
 def _erode3(x: np.ndarray) -> np.ndarray:
@@ -132,6 +135,7 @@ def find_plateaus(i: np.ndarray) -> tuple[list[Plateau], float, int]:
                 end=int(min(e * step, n)),
                 next_start=int(nxt),
                 ends_in_record=bool(e < coarse.size),
+                level=float(np.median(coarse[s:e])),
             )
         )
     return plateaus, level, step

@@ -252,7 +252,7 @@ def analyze_recovery(
     """
     opts = options or RecoveryOptions()
     v, i, timebase = _validate(t, v, i, dt, t_start)
-    plateaus, level, _step = ev.find_plateaus(i)
+    plateaus, _level, _step = ev.find_plateaus(i)
     if not plateaus:
         raise NoEventError(
             "no forward-current plateau in the record (is the current anode → cathode positive?)"
@@ -264,7 +264,7 @@ def analyze_recovery(
     ordered = candidates if opts.commutation >= 0 else candidates[::-1]
     found = 0
     for plateau in ordered:
-        metrics = _analyze_plateau_end(plateau, level, v, i, timebase, opts)
+        metrics = _analyze_plateau_end(plateau, plateau.level, v, i, timebase, opts)
         if metrics is None:
             continue
         if found == wanted:
