@@ -31,7 +31,7 @@ from benchrun.runner.plan import (
 )
 from benchrun.runner.progress import RunProgress
 from benchrun.runner.safety import check_shot
-from benchrun.runner.shots import ShotContext, build_result, probes_for, shot_key
+from benchrun.runner.shots import ShotContext, build_result, narrowest, probes_for, shot_key
 from benchrun.store.results import utc_now
 
 if TYPE_CHECKING:
@@ -298,7 +298,8 @@ class ShotCycle:
             timestamp=measured["timestamp"], temperature_K=measured["temperature_K"],
             bus_voltage_V=measured["bus_V"],
         )  # fmt: skip
-        channels = {name: trace.to_channel_data() for name, trace in capture.traces.items()}
+        channels = {name: narrowest(trace.to_channel_data())
+                    for name, trace in capture.traces.items()}
         probes = {name: self.probes[name] for name in channels}
         settings = {
             "first_pulse_s": plan.first_pulse_s, "off_time_s": plan.off_time_s,
