@@ -171,3 +171,36 @@ def test_low_voltage_trim_hits_the_current(tmp_path):
     assert shot.valid
     assert shot.conditions["if_A"] == pytest.approx(30.0, rel=0.05)
     assert state[2] < 60.0
+
+
+@pytest.mark.slow
+def test_results_in_another_database(tmp_path):
+    seq = write_sequence(tmp_path, devices="[KFR-2611A-005]", temperatures="[25 degC]")
+    url = f"sqlite:///{tmp_path / 'shared.db'}"
+    outcome, _ = run_sim(seq, tmp_path / "out", db_url=url)
+    assert not (outcome.run_dir / "results.db").exists()
+    manifest = json.loads((outcome.run_dir / "run.json").read_text())
+    assert manifest["store_url"] == url
+    run = load_run(outcome.run_dir)  # found through the manifest
+    assert len(run.shots) == 1 and run.shots[0].valid
+
+
+@pytest.mark.slow
+def test_bleeder_failure_is_reported_loudly(tmp_path, monkeypatch):
+    # the bench file says 20 kOhm, the fixture's bleeder has gone open (20 MOhm): the bus
+    # holds its charge (RC = 2000 s) and the runner must not claim a safe state
+    import dataclasses
+
+    from benchrun.runner import simbench
+
+    real = simbench.sim_fixture
+    monkeypatch.setattr(simbench, "sim_fixture", lambda bench: dataclasses.replace(
+        real(bench), bleeder_resistance_ohm=20e6))
+    seq = write_sequence(tmp_path, devices="[KFR-2611A-005]", temperatures="[25 degC]")
+    with pytest.raises(SafetyError, match="DANGER"):
+        run_sim(seq, tmp_path / "out")
+    run_dir = next((tmp_path / "out").iterdir())
+    manifest = json.loads((run_dir / "run.json").read_text())
+    assert manifest["safe_state"]["reached"] is False
+    assert manifest["safe_state"]["bus_voltage_V"] > 60.0
+    assert "SAFE STATE NOT CONFIRMED" in (run_dir / "run.log").read_text()
