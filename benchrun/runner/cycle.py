@@ -124,7 +124,7 @@ class ShotCycle:
         point = planned.point
         spacing = self._spec(point).shot_spacing
         self.progress.shooting(planned.serial, point.temperature_K,
-                               f"{point.label} #{planned.repeat + 1}")
+                               f"{point.label.split(' @ ')[0]} #{planned.repeat + 1}")
         self.station.select(planned.serial)
         self._trim(point)
         attempt = self.store.next_attempt(self.outcome.run_id, planned.serial, point.index,

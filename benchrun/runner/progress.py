@@ -80,7 +80,7 @@ class RunProgress:
         if self.enabled:
             self._progress = Progress(
                 TextColumn("{task.description}"),
-                BarColumn(),
+                BarColumn(bar_width=20),
                 MofNCompleteColumn(),
                 TextColumn("shots"),
                 TimeElapsedColumn(),
