@@ -309,7 +309,7 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
                 write_manifest(run_dir, manifest)
                 store.update_run(run_id, status="running", manifest=manifest)
             try:
-                with RawRecord(run_dir / RAW_FILE, "a") as raw:
+                with RawRecord(run_dir / RAW_FILE, "a", compression=None) as raw:
                     _execute(prep, options, outcome, manifest, store, raw)
             finally:
                 _record_files(outcome, manifest, store)
