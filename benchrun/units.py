@@ -114,6 +114,8 @@ def parse_quantity(value: Any, dimension: str, *, field: str | None = None) -> f
         raise UnitError(f"cannot read {value!r} as a {dimension}", field=field)
     number = float(match.group(1))
     unit_text = _normalise_unit(match.group(2))
+    if dimension == "temperature_difference" and unit_text == "degC":
+        unit_text = "delta_degC"  # "3 degC" as a tolerance is a difference of 3 K
     target = DIMENSIONS[dimension]
     if not unit_text:
         if dimension == "dimensionless":

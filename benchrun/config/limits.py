@@ -42,8 +42,10 @@ from benchrun.analysis.metrics_meta import METRICS
 from benchrun.config.loader import (
     Current,
     CurrentSlope,
+    Fraction,
     StrictModel,
     Temperature,
+    TemperatureBand,
     Voltage,
     read_yaml,
     validate,
@@ -89,33 +91,6 @@ def metric_unit(metric: str) -> str:
     return METRIC_UNITS.get(metric, ("", ""))[1]
 
 
-def _fraction(value: Any) -> float:
-    try:
-        result = parse_quantity(value, "dimensionless")
-    except UnitError as exc:
-        raise ValueError(exc.message) from None
-    if not 0 <= result < 1:
-        raise ValueError(f"a relative value must lie between 0 and 100 %, got {value!r}")
-    return result
-
-
-def _temperature_band(value: Any) -> float:
-    if isinstance(value, str):
-        text = value.strip()
-        # a tolerance written "3 degC" means a temperature difference of 3 K
-        for suffix in ("degC", "°C", "℃"):
-            if text.endswith(suffix) and not text.endswith("delta_degC"):
-                text = text[: -len(suffix)] + "K"
-        value = text
-    try:
-        result = parse_quantity(value, "temperature_difference")
-    except UnitError as exc:
-        raise ValueError(exc.message) from None
-    if result <= 0:
-        raise ValueError("a temperature tolerance must be positive")
-    return result
-
-
 def _time_bound(value: Any) -> float:
     try:
         result = parse_quantity(value, "time")
@@ -126,10 +101,6 @@ def _time_bound(value: Any) -> float:
     return result
 
 
-#: A relative value: ``"5 %"`` or ``0.05``.
-Fraction = Annotated[float, BeforeValidator(_fraction)]
-#: A temperature difference: ``"3 K"`` (``"3 degC"`` is read as a difference).
-TemperatureBand = Annotated[float, BeforeValidator(_temperature_band)]
 #: A non-negative time bound: ``"0.5 ns"``.
 TimeBound = Annotated[float, BeforeValidator(_time_bound)]
 

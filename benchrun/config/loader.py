@@ -43,6 +43,19 @@ def quantity(dimension: str) -> Any:
     return Annotated[float, BeforeValidator(_quantity_parser(dimension))]
 
 
+def _bounded(dimension: str, *, low: float, high: float | None, low_inclusive: bool, what: str):
+    parse = _quantity_parser(dimension)
+
+    def check(value: Any) -> float:
+        result = parse(value)
+        above_low = result >= low if low_inclusive else result > low
+        if not above_low or (high is not None and result >= high):
+            raise ValueError(what.format(value=value))
+        return result
+
+    return check
+
+
 Voltage = quantity("voltage")
 Current = quantity("current")
 Time = quantity("time")
@@ -56,6 +69,19 @@ Resistance = quantity("resistance")
 CurrentSlope = quantity("current_slope")
 Temperature = quantity("temperature")
 TemperatureDifference = quantity("temperature_difference")
+
+#: A relative value in [0, 1): ``"5 %"`` or ``0.05``.
+Fraction = Annotated[float, BeforeValidator(_bounded(
+    "dimensionless", low=0.0, high=1.0, low_inclusive=True,
+    what="a relative value must lie between 0 and 100 %, got {value!r}"))]
+#: A relative tolerance in (0, 1): ``"5 %"`` or ``0.05``.
+Tolerance = Annotated[float, BeforeValidator(_bounded(
+    "dimensionless", low=0.0, high=1.0, low_inclusive=False,
+    what="a relative tolerance must lie between 0 and 100 %, got {value!r}"))]
+#: A positive temperature difference: ``"3 K"`` (``"3 degC"`` is read as a difference).
+TemperatureBand = Annotated[float, BeforeValidator(_bounded(
+    "temperature_difference", low=0.0, high=None, low_inclusive=False,
+    what="a temperature tolerance must be positive, got {value!r}"))]
 
 
 class _LineLoader(yaml.SafeLoader):

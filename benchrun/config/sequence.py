@@ -23,9 +23,9 @@ and bands are temperature *differences* (``"3 K"``; ``"3 degC"`` is read as a di
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Any, Literal
 
-from pydantic import BeforeValidator, Field, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
 
 from benchrun.config.loader import (
     Current,
@@ -34,45 +34,15 @@ from benchrun.config.loader import (
     Resistance,
     StrictModel,
     Temperature,
+    TemperatureBand,
     Time,
+    Tolerance,
     Voltage,
     load_model,
 )
-from benchrun.errors import UnitError
-from benchrun.units import parse_quantity
-
-
-def _fraction(value: Any) -> float:
-    try:
-        result = parse_quantity(value, "dimensionless")
-    except UnitError as exc:
-        raise ValueError(exc.message) from None
-    if not 0 < result < 1:
-        raise ValueError(f"a relative tolerance must lie between 0 and 100 %, got {value!r}")
-    return result
-
-
-def _temperature_difference(value: Any) -> float:
-    if isinstance(value, str):
-        text = value.strip()
-        # a tolerance written "3 degC" or "3 °C" means a difference of 3 K
-        for suffix in ("degC", "°C", "℃"):
-            if text.endswith(suffix) and not text.endswith("delta_degC"):
-                text = text[: -len(suffix)] + "K"
-        value = text
-    try:
-        result = parse_quantity(value, "temperature_difference")
-    except UnitError as exc:
-        raise ValueError(exc.message) from None
-    if result <= 0:
-        raise ValueError("a temperature tolerance must be positive")
-    return result
-
 
 #: A relative tolerance: "5 %" or 0.05.
-Fraction = Annotated[float, BeforeValidator(_fraction)]
-#: A temperature difference: "3 K" (or "3 degC", read as a difference).
-TemperatureBand = Annotated[float, BeforeValidator(_temperature_difference)]
+Fraction = Tolerance
 
 
 class PartRatings(StrictModel):
