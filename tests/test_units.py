@@ -49,3 +49,11 @@ def test_format_si():
     assert format_si(1.23e-7, "s") == "123 ns"
     assert format_si(3.2e-6, "C") == "3.2 µC"
     assert format_si(None, "A") == "—"
+
+
+def test_temperature_difference_reads_degc_as_a_difference():
+    # a 3 °C band is a 3 K difference (SI Brochure 9th ed., 2.3.1: an interval of 1 °C = 1 K)
+    assert parse_quantity("3 degC", "temperature_difference") == 3.0
+    assert parse_quantity("3 K", "temperature_difference") == 3.0
+    # ... while a temperature itself is offset
+    assert parse_quantity("3 degC", "temperature") == 276.15
