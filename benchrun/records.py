@@ -7,6 +7,7 @@ All values are SI floats (kelvin for temperatures).
 
 from __future__ import annotations
 
+import math
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
@@ -88,3 +89,14 @@ class ShotResult:
         values["point"] = TestPoint(**values["point"])
         values["flags"] = tuple(values.get("flags", ()))
         return cls(**values)
+
+
+def json_safe(value: Any) -> Any:
+    """``value`` with non-finite floats replaced by ``None`` and tuples by lists (for JSON)."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {str(k): json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [json_safe(v) for v in value]
+    return value

@@ -6,12 +6,12 @@ dictionaries exactly).
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any
 
 from benchrun.grading.lot import LotStatistics
 from benchrun.grading.uncertainty import UncertaintyBudget
+from benchrun.records import json_safe
 
 
 @dataclass(frozen=True)
@@ -131,14 +131,6 @@ class LotGrade:
             "decision_rule": self.decision_rule,
             "lot_rule": self.lot_rule,
         }
-        return _json_safe(data)
+        return json_safe(data)
 
 
-def _json_safe(value: Any) -> Any:
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, dict):
-        return {str(k): _json_safe(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_json_safe(v) for v in value]
-    return value

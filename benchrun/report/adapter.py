@@ -18,6 +18,7 @@ import numpy as np
 
 from benchrun import __version__
 from benchrun.errors import BenchrunError
+from benchrun.records import json_safe
 from benchrun.report.content import (
     METRIC_DEFINITIONS,
     METRIC_LABELS,
@@ -215,20 +216,10 @@ def _device_lines(lot: Any) -> tuple[list[DeviceLine], list[str]]:
     return lines, columns
 
 
-def _json_safe(value: Any) -> Any:
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, dict):
-        return {str(k): _json_safe(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_json_safe(v) for v in value]
-    return value
-
-
 def _shot_rows(run: Any, lot: Any) -> list[dict[str, Any]]:
     """Every shot as ``ShotResult.to_dict()`` plus its condition name (JSON-safe)."""
     by_index = {c.get("point_index"): c["name"] for c in lot.conditions}
-    return [_json_safe({**s.to_dict(), "condition": by_index.get(s.point.index, "")})
+    return [json_safe({**s.to_dict(), "condition": by_index.get(s.point.index, "")})
             for s in run.shots]
 
 
