@@ -261,8 +261,9 @@ def extremum(
     half_width
         When no fit is accepted: on noisy data the median of the raw samples within
         ``half_width`` of the last locator's minimum (a median does not pick the noisiest
-        sample, and ignores the one sample a snap puts on the steep side); on clean data the
-        smallest raw sample there.
+        sample, and ignores the one sample a snap puts on the steep side) unless the smallest
+        raw sample there lies more than 4 sigma below that median (a peak only a sample or two
+        wide); on clean data the smallest raw sample there.
 
     Returns
     -------
@@ -300,10 +301,16 @@ def extremum(
             return float(t_mid + uv * t_half), xv
     s, k, _, _ = locators[-1]
     if sigma > 0.0 and half_width > 0:
-        # median of the samples under the narrow locator: no selection of the noisiest sample
+        # median of the samples under the narrow locator: no selection of the noisiest sample;
+        # but a peak narrower than the locator (one or two samples of a snap) that stands
+        # out of that median by more than 4 sigma is signal, not noise: its raw sample counts
         lo = max(0, k - half_width)
         hi = min(x.size, k + half_width + 1)
-        return float(t[k]), float(np.median(x[lo:hi]))
+        j = lo + int(np.argmin(x[lo:hi]))
+        median = float(np.median(x[lo:hi]))
+        if x[j] < median - 4.0 * sigma:
+            return float(t[j]), float(x[j])
+        return float(t[k]), median
     lo = max(0, k - half_width)
     hi = min(x.size, k + half_width + 1)
     j = lo + int(np.argmin(x[lo:hi]))
@@ -327,21 +334,50 @@ def integrate(t: np.ndarray, y: np.ndarray, t_from: float, t_to: float) -> float
     return float(np.sum((yy[1:] + yy[:-1]) * np.diff(tt)) * 0.5)
 
 
+#: Width of the moving average a plateau is detrended with before its noise is measured.
+NOISE_DETREND_WIDTH = 15
+
+
 def robust_sigma(x: np.ndarray) -> float:
     """Noise standard deviation of a plateau.
 
-    Residuals of a straight line (removing a slow droop) are screened with the MAD (Hampel's
-    estimator, common practice): the standard deviation of the residuals within 4 MAD-sigmas
-    is returned, which ignores spikes but, unlike the MAD alone, is not stuck to multiples of
-    the ADC step on quantised data.
+    The plateau is detrended by a centred moving average over :data:`NOISE_DETREND_WIDTH`
+    samples, which removes its level, a droop, and ringing or ripple much slower than the
+    average (a decaying turn-off oscillation is signal, not noise). The residuals are screened
+    at 4 sigmas (the larger of the MAD estimate, Hampel's, and an iteratively clipped standard
+    deviation; common practice) and the standard deviation of those kept is returned, scaled
+    for the part of white noise the average itself takes out. Rare spikes are dropped, and
+    unlike the MAD alone the estimate is not stuck to multiples of the ADC step on quantised
+    data where most residuals sit near one code. Short stretches fall back to the residuals
+    of a straight line.
     """
     if x.size < 8:
         return 0.0
-    k = np.arange(x.size, dtype=np.float64)
-    slope, intercept = np.polyfit(k, x, 1)
-    resid = x - (slope * k + intercept)
-    centre = np.median(resid)
-    mad_sigma = 1.4826 * float(np.median(np.abs(resid - centre)))
-    spread = max(mad_sigma, float(np.std(resid)) * 1e-3)
-    kept = resid[np.abs(resid - centre) <= 4.0 * spread]
-    return float(np.std(kept)) if kept.size >= 8 else mad_sigma
+    x = np.asarray(x, dtype=np.float64)
+    w = NOISE_DETREND_WIDTH
+    if x.size >= w + 8:
+        csum = np.concatenate(([0.0], np.cumsum(x)))
+        mean = (csum[w:] - csum[:-w]) / w
+        resid = x[w // 2 : w // 2 + mean.size] - mean
+        gain = math.sqrt(1.0 - 1.0 / w)  # residual std of white noise after the average
+    else:
+        k = np.arange(x.size, dtype=np.float64)
+        slope, intercept = np.polyfit(k, x, 1)
+        resid = x - (slope * k + intercept)
+        gain = 1.0
+    centre = float(np.median(resid))
+    dev = np.abs(resid - centre)
+    mad_sigma = 1.4826 * float(np.median(dev))
+    # On quantised data with little noise most residuals sit near one code and the MAD
+    # understates the spread; a standard deviation clipped iteratively at 4 sigma does not,
+    # and still drops rare spikes. The larger of the two is kept.
+    spread = float(np.std(resid))
+    for _ in range(4):
+        kept = resid[dev <= 4.0 * spread]
+        if kept.size < 8:
+            break
+        spread = float(np.std(kept))
+    spread = max(spread, mad_sigma)
+    kept = resid[dev <= 4.0 * spread]
+    sigma = float(np.std(kept)) if kept.size >= 8 else spread
+    return sigma / gain

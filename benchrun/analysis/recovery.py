@@ -297,6 +297,38 @@ def _odd(n: float) -> int:
     return k if k % 2 else k + 1
 
 
+def _minimum(tw, x, s, s_pk, lo, hi, k_wide, width, width_pk, sigma, noisy):
+    """Minimum of the raw samples ``x[lo:hi]``: ``(time, value, index)``.
+
+    ``s`` is the wide locator (``width`` samples, robust on noise) and ``k_wide`` its
+    minimum; ``s_pk`` a narrow one (``width_pk`` samples). The narrow locator looks near the
+    wide minimum, so a rounded peak is measured by the fits of :func:`events.extremum`. A
+    peak much narrower than the wide locator (a snap, or the voltage spike of a stray
+    inductance) is flattened by it and may lose against a broader but shallower dip
+    elsewhere; when the narrow locator's minimum over the whole range lies deeper than the
+    one near ``k_wide`` by more than 4 of its noise sigmas, that sharp peak is the extremum;
+    and a single raw sample more than 5 noise sigmas beyond the located value (a peak one or
+    two samples wide, which both locators flatten) is taken as it is.
+    """
+    lo_pk, hi_pk = max(lo, k_wide - width), min(hi, k_wide + width + 1)
+    k_pk = lo_pk + int(np.argmin(s_pk[lo_pk:hi_pk]))
+    locators = [(s, k_wide, 2.0 * sigma, width // 2), (s_pk, k_pk, sigma, width_pk // 2)]
+    if noisy and width > width_pk:
+        k_sharp = lo + int(np.argmin(s_pk[lo:hi]))
+        if s_pk[k_sharp] < s_pk[k_pk] - 4.0 * sigma / math.sqrt(width_pk):
+            locators = [(s_pk, k_sharp, sigma, width_pk // 2)]
+            k_wide = k_pk = k_sharp
+    t_x, value = ev.extremum(tw, x, locators, sigma if noisy else 0.0,
+                             width_pk // 2 if noisy else 1)
+    if noisy:
+        # a peak one or two samples wide is flattened even by the narrow locator; a raw
+        # sample more than 5 noise sigmas beyond the located peak is that peak, not noise
+        k_raw = lo + int(np.argmin(x[lo:hi]))
+        if x[k_raw] < value - 5.0 * sigma:
+            return float(tw[k_raw]), float(x[k_raw]), k_raw
+    return t_x, value, min(k_wide, k_pk)
+
+
 def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
     tw = timebase.window(a, b)
     iw = np.asarray(i[a:b], dtype=np.float64)
@@ -355,17 +387,11 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
         return _NEED_MORE if can_grow else None
     if k_min >= n - 2 - width and can_grow:
         return _NEED_MORE
-    # The peak may be much sharper than the fall (a snap): a narrow locator pins it down when
-    # no parabola fits the wide neighbourhood (see events.extremum).
+    # The peak may be much sharper than the fall (a snap): see _minimum.
     width_pk = min(width, PEAK_LOCATOR_WIDTH)
     s_pk = ev.moving_average(iw, width_pk)
-    lo_pk, hi_pk = max(k0, k_min - width), min(n, k_min + width + 1)
-    k_pk = lo_pk + int(np.argmin(s_pk[lo_pk:hi_pk]))
-    t_irrm, i_min = ev.extremum(
-        tw, iw, [(s, k_min, 2.0 * sigma, width // 2), (s_pk, k_pk, sigma, width_pk // 2)],
-        sigma if noisy else 0.0, width_pk // 2 if noisy else 1,
-    )
-    k_min = min(k_min, k_pk)
+    t_irrm, i_min, k_min = _minimum(tw, iw, s, s_pk, k0, n, k_min, width, width_pk,
+                                    sigma, noisy)
     irrm = -i_min
     if not irrm > 0:
         return None
@@ -468,16 +494,10 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
     if k_v1 > k_v0:
         sv = ev.moving_average(vw, width_v)
         k_vmin = k_v0 + int(np.argmin(sv[k_v0:k_v1]))
-        sv_pk = ev.moving_average(vw, min(width_v, PEAK_LOCATOR_WIDTH))
-        lo_v, hi_v = max(k_v0, k_vmin - width_v), min(k_v1, k_vmin + width_v + 1)
-        k_vpk = lo_v + int(np.argmin(sv_pk[lo_v:hi_v]))
-        vrm = -ev.extremum(
-            tw, vw,
-            [(sv, k_vmin, 2.0 * sigma_v, width_v // 2),
-             (sv_pk, k_vpk, sigma_v, min(width_v, PEAK_LOCATOR_WIDTH) // 2)],
-            sigma_v if noisy_v else 0.0,
-            min(width_v, PEAK_LOCATOR_WIDTH) // 2 if noisy_v else 1,
-        )[1]
+        width_vpk = min(width_v, PEAK_LOCATOR_WIDTH)
+        sv_pk = ev.moving_average(vw, width_vpk)
+        vrm = -_minimum(tw, vw, sv, sv_pk, k_v0, k_v1, k_vmin, width_v, width_vpk,
+                        sigma_v, noisy_v)[1]
     k_r1 = int(np.searchsorted(tw, t_vrm_end + vr_span, side="right"))
     vr = None
     if k_r1 - k_v1 >= 8:
