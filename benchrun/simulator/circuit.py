@@ -177,7 +177,20 @@ def _channel_current(sw: SwitchModel, vgs: float, vds: float) -> float:
     return imax * math.tanh(vds / (imax * sw.on_resistance_ohm)) + vds * 1e-9
 
 
+_EXP_LIMIT = 80.0
+_EXP_AT_LIMIT = math.exp(_EXP_LIMIT)
+
+
 def _make_rhs(c: EventCircuit):
+    """Right-hand side f(y, t) and Jacobian ∂f/∂y of the event circuit.
+
+    Written on plain Python floats (``y.tolist()``) with every parameter bound locally: the
+    integrator calls these thousands of times per event, and numpy scalar arithmetic costs
+    about three times as much.  The equations are those of the module docstring; the junction
+    current and capacitance are :meth:`JunctionParams.junction_current` and
+    :meth:`JunctionParams.capacitance` written out (``limited_exp`` continued linearly above
+    its limit, the capacitance linearised above FC·Vj).
+    """
     fx, sw, jp = c.fixture, c.switch, c.junction
     Rp, Rs = fx.stray_damping_resistance_ohm, jp.rs_ohm
     Ls, L, R = fx.stray_inductance_H, fx.load_inductance_H, fx.load_resistance_ohm
@@ -187,26 +200,114 @@ def _make_rhs(c: EventCircuit):
     a12 = -sw.cgd_F
     a22 = sw.cds_F + sw.cgd_F
     det = a11 * a22 - a12 * a12
+    g11, g12, g22 = a22 / det, -a12 / det, a11 / det  # inverse of the capacitance matrix
     k_rs = 1.0 + Rs / Rp
-    junction_current = jp.junction_current
-    capacitance = jp.capacitance
+    inv_k = 1.0 / k_rs
+    inv_rpk = 1.0 / (Rp * k_rs)
+    # junction
+    charge_control = jp.is_charge_control
+    nvt = jp.nvt_V
+    inv_nvt = 1.0 / nvt
+    tau, tm = jp.tau_s, jp.tm_s
+    if charge_control:
+        c_e = jp.is_A * tau / tm  # ij = c_e·e − c_q·q
+        c_q = tau / tm
+        inv_tau = 1.0 / tau
+    else:
+        c_e, c_q, inv_tau = jp.is_A, 0.0, 0.0
+    cj0, vj_v, m_exp, fc = jp.cj0_F, jp.vj_V, jp.m, jp.fc
+    v_lin = fc * vj_v
+    c_lin0 = cj0 / (1.0 - fc) ** (1.0 + m_exp) * (1.0 - fc * (1.0 + m_exp))
+    c_lin1 = cj0 / (1.0 - fc) ** (1.0 + m_exp) * m_exp / vj_v
+    # switch channel
+    w_ov, vth, gm = sw.overdrive_smoothing_V, sw.threshold_V, sw.transconductance_S
+    ron = sw.on_resistance_ohm
+    exp, log1p, tanh = math.exp, math.log1p, math.tanh
+    exp_limit, exp_at_limit = _EXP_LIMIT, _EXP_AT_LIMIT
 
     def rhs(y, _t):
-        vgs, vsw, iLs, IL, vj, q = y
-        ij, dq = junction_current(vj, q)
-        i_d = (IL - iLs - (vj - vsw + Vbus) / Rp) / k_rs
+        vgs, vsw, iLs, IL, vj, q = y.tolist()
+        x = vj * inv_nvt
+        ex = exp(x) if x <= exp_limit else exp_at_limit * (1.0 + x - exp_limit)
+        ij = c_e * (ex - 1.0) - c_q * q
+        cap = cj0 / (1.0 - vj / vj_v) ** m_exp if vj < v_lin else c_lin0 + c_lin1 * vj
+        i_d = (IL - iLs) * inv_k - (vj - vsw + Vbus) * inv_rpk
         v_d = vj + Rs * i_d
-        dvj = (i_d - ij) / (capacitance(vj) + Cpar)
-        dIL = (-v_d - R * IL) / L
-        diLs = (v_d - vsw + Vbus) / Ls
-        ich = _channel_current(sw, vgs, vsw)
+        xg = (vgs - vth) / w_ov
+        vov = vgs - vth if xg > 30.0 else w_ov * log1p(exp(xg))
+        imax = gm * vov
+        ich = vsw * 1e-9 if imax < 1e-12 else imax * tanh(vsw / (imax * ron)) + vsw * 1e-9
         b1 = (Vgg - vgs) / Rg
         b2 = IL - i_d - ich
-        dvgs = (a22 * b1 - a12 * b2) / det
-        dvsw = (a11 * b2 - a12 * b1) / det
-        return [dvgs, dvsw, diLs, dIL, dvj, dq]
+        return [
+            g11 * b1 + g12 * b2,
+            g12 * b1 + g22 * b2,
+            (v_d - vsw + Vbus) / Ls,
+            (-v_d - R * IL) / L,
+            (i_d - ij) / (cap + Cpar),
+            (ij - q) * inv_tau,
+        ]
 
-    return rhs
+    def jac(y, _t):
+        vgs, vsw, iLs, IL, vj, q = y.tolist()
+        x = vj * inv_nvt
+        if x <= exp_limit:
+            ex = exp(x)
+            dex = ex * inv_nvt
+        else:
+            ex = exp_at_limit * (1.0 + x - exp_limit)
+            dex = exp_at_limit * inv_nvt
+        ij = c_e * (ex - 1.0) - c_q * q
+        dij_dvj = c_e * dex
+        if vj < v_lin:
+            base = 1.0 - vj / vj_v
+            cap = cj0 / base**m_exp
+            dcap = cap * m_exp / (vj_v * base)
+        else:
+            cap = c_lin0 + c_lin1 * vj
+            dcap = c_lin1
+        ctot = cap + Cpar
+        i_d = (IL - iLs) * inv_k - (vj - vsw + Vbus) * inv_rpk
+        # ∂i_d/∂(vsw, iLs, IL, vj) and ∂v_d/∂(...)
+        did_vsw, did_ils, did_il, did_vj = inv_rpk, -inv_k, inv_k, -inv_rpk
+        xg = (vgs - vth) / w_ov
+        if xg > 30.0:
+            vov, dvov = vgs - vth, 1.0
+        else:
+            eg = exp(xg)
+            vov, dvov = w_ov * log1p(eg), eg / (1.0 + eg)
+        imax = gm * vov
+        if imax < 1e-12:
+            dich_vgs, dich_vsw = 0.0, 1e-9
+        else:
+            u = vsw / (imax * ron)
+            th = tanh(u)
+            sech2 = 1.0 - th * th
+            dich_vgs = gm * dvov * (th - u * sech2)
+            dich_vsw = sech2 / ron + 1e-9
+        # b2 = IL − i_d − ich
+        db2 = (
+            -dich_vgs,
+            -did_vsw - dich_vsw,
+            -did_ils,
+            1.0 - did_il,
+            -did_vj,
+            0.0,
+        )
+        db1_vgs = -1.0 / Rg
+        row0 = [g11 * db1_vgs + g12 * db2[0]] + [g12 * d for d in db2[1:]]
+        row1 = [g12 * db1_vgs + g22 * db2[0]] + [g22 * d for d in db2[1:]]
+        dvd = (0.0, Rs * did_vsw, Rs * did_ils, Rs * did_il, 1.0 + Rs * did_vj, 0.0)
+        row2 = [0.0, (dvd[1] - 1.0) / Ls, dvd[2] / Ls, dvd[3] / Ls, dvd[4] / Ls, 0.0]
+        row3 = [0.0, -dvd[1] / L, -dvd[2] / L, (-dvd[3] - R) / L, -dvd[4] / L, 0.0]
+        dvj_dvj = (did_vj - dij_dvj) / ctot - (i_d - ij) * dcap / (ctot * ctot)
+        row4 = [
+            0.0, did_vsw / ctot, did_ils / ctot, did_il / ctot, dvj_dvj, c_q / ctot,
+        ]
+        row5 = [0.0, 0.0, 0.0, 0.0, dij_dvj * inv_tau, (-c_q - 1.0) * inv_tau]
+        return [row0, row1, row2, row3, row4, row5]
+
+    return rhs, jac
 
 
 _ATOL = np.array([1e-4, 1e-3, 1e-4, 1e-4, 1e-4, 1e-5])
@@ -254,7 +355,7 @@ def solve_event(
     0.3 % of the load current, with the diode carrying the load current (``expect_diode_on``)
     or no current.
     """
-    rhs = _make_rhs(c)
+    rhs, jac = _make_rhs(c)
     tau_gate = c.switch.gate_resistance_ohm * c.switch.ciss_F
     chunk = max(150e-9, 4.0 * tau_gate)
     n_chunk = max(round(chunk / dt), 16)
@@ -267,7 +368,7 @@ def solve_event(
         if grid[-1] >= t_limit:
             grid = np.append(grid[grid < t_limit - 0.01 * dt], t_limit)
         sol, info = odeint(
-            rhs, y_now, grid, rtol=1e-6, atol=_ATOL, mxstep=200000, full_output=True
+            rhs, y_now, grid, Dfun=jac, rtol=1e-6, atol=_ATOL, mxstep=200000, full_output=True
         )
         if info["message"] != "Integration successful.":
             raise RuntimeError(f"circuit integration failed: {info['message']}")
