@@ -10,7 +10,7 @@
   range clip at the ADC limits.  Gaussian noise of ``noise_lsb`` rms (in LSB) is added before
   rounding.  The normal deviates are drawn by inverse-transform sampling through a 2^16-entry
   table of the normal quantile function (scipy.special.ndtri at the cell midpoints): exact in
-  distribution to 16-bit probability resolution (tails cut at ±4.3 σ), about three times faster
+  distribution to 16-bit probability resolution (tails cut at ±4.3 σ), several times faster
   than drawing float normals for a million-sample record.
 """
 
@@ -123,13 +123,27 @@ _NORMAL_TABLE = ndtri((np.arange(65536) + 0.5) / 65536.0).astype(np.float32)
 _NORMAL_TABLE.flags.writeable = False
 
 
-def standard_normal_fast(rng: np.random.Generator, n: int) -> np.ndarray:
-    """``n`` standard normal deviates (float32) by inverse-transform sampling from a table."""
-    return _NORMAL_TABLE[rng.integers(0, 65536, n, dtype=np.uint16)]
+def _uniform_uint16(rng: np.random.Generator, n: int) -> np.ndarray:
+    """``n`` independent uniform 16-bit integers: each 64-bit generator output gives four."""
+    words = rng.bit_generator.random_raw((n + 3) // 4)
+    return words.view(np.uint16)[:n]
 
 
-@functools.lru_cache(maxsize=8)
+def standard_normal_fast(
+    rng: np.random.Generator, n: int, out: np.ndarray | None = None
+) -> np.ndarray:
+    """``n`` standard normal deviates (float32) by inverse-transform sampling from a table.
+
+    The table index is a uniform 16-bit integer taken straight from the generator's 64-bit
+    output words (four per word).  ``out`` (float32, length ``n``) receives the deviates when
+    given.
+    """
+    return np.take(_NORMAL_TABLE, _uniform_uint16(rng, n), out=out)
+
+
+@functools.lru_cache(maxsize=4)
 def _sample_index(n: int) -> np.ndarray:
+    """0, 1, ..., n − 1 as floats (the sample instants in units of the sample interval)."""
     k = np.arange(n, dtype=float)
     k.flags.writeable = False
     return k
@@ -160,26 +174,31 @@ def digitize(
     ``rng`` supplies the noise; when None a generator seeded with ``acquisition.seed`` is used.
     The filtered physical waveform is cached on ``waveforms``; each call redoes only the
     resampling, noise and quantisation.
+
+    The work on the simulator's own (non-uniform, much shorter) time grid is done there: the
+    waveform is converted to ADC code units (value − offset)/gain and its instants to sample
+    numbers (t − t_start + skew)/Δt, so the record is one linear interpolation at the sample
+    numbers 0..n−1 (linear interpolation commutes with these affine maps), then noise,
+    rounding and clipping in place.
     """
     if rng is None:
         rng = np.random.default_rng(acquisition.seed)
     code_max = 2 ** (acquisition.adc_bits - 1) - 1
     code_min = -(2 ** (acquisition.adc_bits - 1))
     n = acquisition.record_length
-    t_rel = _sample_index(n)
+    k = _sample_index(n)
+    noise = np.empty(n, dtype=np.float32) if acquisition.noise_lsb > 0 else None
     out: dict[str, DigitizedChannel] = {}
     for name, (span, offset) in acquisition.channel_ranges.items():
         y = _filtered(waveforms, name, acquisition.bandwidth_hz.get(name))
         gain = span / (code_max - code_min)
         skew = acquisition.skew_s.get(name, 0.0)
-        # sample instants t_k − skew, built in place to save memory traffic
-        t_query = t_rel * acquisition.sample_interval_s
-        t_query += acquisition.t_start_s - skew
-        analog = np.interp(t_query, waveforms.t, y)
-        analog -= offset
-        analog *= 1.0 / gain
-        if acquisition.noise_lsb > 0:
-            noise = standard_normal_fast(rng, n)
+        # a channel with skew s shows at sample k the signal at t_k − s
+        x_samples = (waveforms.t - (acquisition.t_start_s - skew)) / acquisition.sample_interval_s
+        y_codes = (y - offset) * (1.0 / gain)
+        analog = np.interp(k, x_samples, y_codes)
+        if noise is not None:
+            standard_normal_fast(rng, n, out=noise)
             if acquisition.noise_lsb != 1.0:
                 noise *= np.float32(acquisition.noise_lsb)
             analog += noise
