@@ -33,9 +33,10 @@ COARSE_TARGET = 131_072
 #: Hysteresis thresholds as fractions of the coarse plateau level (common practice).
 ENTER_FRACTION = 0.3
 LEAVE_FRACTION = 0.15
-#: Plateaus shorter than this fraction of the longest one are treated as ringing, not as a
-#: freewheel interval (common practice).
-MIN_PLATEAU_FRACTION = 0.05
+#: Runs above the hysteresis holding less than this fraction of the largest run's charge
+#: (median level × duration) are ringing lobes or spikes, not a freewheel interval (common
+#: practice).
+MIN_PLATEAU_FRACTION = 0.2
 #: Cap on the samples searched on either side of a crossing or extremum band.
 BAND_CAP = 4096
 #: Cap on the samples either side of a crossing used for its least-squares line.
@@ -86,27 +87,73 @@ def coarse_step(n: int) -> int:
     return max(1, n // COARSE_TARGET)
 
 
-def find_plateaus(i: np.ndarray) -> tuple[list[Plateau], float, int]:
-    """Find the forward-current plateaus of a record.
+def held_level(coarse: np.ndarray) -> tuple[float, float]:
+    """Level the signal holds longest: the tallest-by-widest rectangle under the curve.
 
-    Parameters
-    ----------
-    i
-        Diode current, anode → cathode positive (any float dtype; not copied in full).
+    For block sizes 1, 2, 4, ... coarse samples the signal is min-pooled (after a
+    three-sample erosion, so single-sample spikes do not count); the largest block minimum
+    times the block size is the "charge" of the best rectangle of that width. The level of
+    the best rectangle over all sizes is returned with its area (level × samples).
 
-    Returns
-    -------
-    plateaus, level, step
-        The plateaus in time order, the coarse plateau level (robust maximum: the largest value
-        held for three consecutive coarse samples) and the coarse stride used.
+    A freewheel plateau wins over ringing lobes or a reverse-recovery peak that are taller
+    but far shorter (the plateau's charge IF·t exceeds them), and over a small offset held
+    for long (common practice; no published source).
     """
+    m = _erode3(coarse)
+    best_area, best_level = 0.0, 0.0
+    size = 1
+    while m.size:
+        level = float(m.max())
+        if level > 0.0 and level * size > best_area:
+            best_area, best_level = level * size, level
+        if m.size < 2:
+            break
+        half = m.size // 2
+        m = np.minimum(m[0 : 2 * half : 2], m[1 : 2 * half : 2])
+        size *= 2
+    return best_level, best_area
+
+
+@dataclass(frozen=True)
+class PlateauScan:
+    """Result of :func:`scan_plateaus`.
+
+    Attributes
+    ----------
+    plateaus
+        Forward-current plateaus in time order.
+    level
+        Held level of the record (see :func:`held_level`), the reference of the hysteresis.
+    step
+        Coarse stride.
+    area, reverse_area, reverse_level
+        Held-level areas (level × coarse samples) of the current and of the negated current,
+        and the negated current's held level: a reversed current probe shows a reverse
+        plateau that dominates.
+    """
+
+    plateaus: list[Plateau]
+    level: float
+    step: int
+    area: float
+    reverse_area: float
+    reverse_level: float
+
+
+def scan_plateaus(i: np.ndarray) -> PlateauScan:
+    """Find the forward-current plateaus of a record (see :func:`find_plateaus`)."""
     n = i.size
     step = coarse_step(n)
     coarse = np.ascontiguousarray(i[::step], dtype=np.float64)
-    low_env = _erode3(coarse)
-    level = float(low_env.max()) if coarse.size else 0.0
+    level, area = held_level(coarse)
+    reverse_level, reverse_area = held_level(-coarse)
+
+    def result(plateaus: list[Plateau]) -> PlateauScan:
+        return PlateauScan(plateaus, level, step, area, reverse_area, reverse_level)
+
     if not level > 0.0:
-        return [], level, step
+        return result([])
+    low_env = _erode3(coarse)
     high_env = _dilate3(coarse)
     enter = low_env > ENTER_FRACTION * level
     leave = high_env < LEAVE_FRACTION * level
@@ -121,13 +168,16 @@ def find_plateaus(i: np.ndarray) -> tuple[list[Plateau], float, int]:
         starts.insert(0, 0)
     if state[-1]:
         ends.append(coarse.size)
-    runs = [(s, e) for s, e in zip(starts, ends, strict=True)]
+    runs = [(s, e, float(np.median(coarse[s:e]))) for s, e in zip(starts, ends, strict=True)]
     if not runs:
-        return [], level, step
-    longest = max(e - s for s, e in runs)
-    runs = [(s, e) for s, e in runs if e - s >= max(1, MIN_PLATEAU_FRACTION * longest)]
+        return result([])
+    # a plateau carries a sizeable part of the largest plateau's charge (level × duration);
+    # ringing lobes and spikes above the hysteresis thresholds do not
+    largest = max(lv * (e - s) for s, e, lv in runs)
+    runs = [(s, e, lv) for s, e, lv in runs
+            if e - s >= 1 and lv * (e - s) >= MIN_PLATEAU_FRACTION * largest]
     plateaus = []
-    for k, (s, e) in enumerate(runs):
+    for k, (s, e, lv) in enumerate(runs):
         nxt = runs[k + 1][0] * step if k + 1 < len(runs) else n
         plateaus.append(
             Plateau(
@@ -135,10 +185,29 @@ def find_plateaus(i: np.ndarray) -> tuple[list[Plateau], float, int]:
                 end=int(min(e * step, n)),
                 next_start=int(nxt),
                 ends_in_record=bool(e < coarse.size),
-                level=float(np.median(coarse[s:e])),
+                level=lv,
             )
         )
-    return plateaus, level, step
+    return result(plateaus)
+
+
+def find_plateaus(i: np.ndarray) -> tuple[list[Plateau], float, int]:
+    """Find the forward-current plateaus of a record.
+
+    Parameters
+    ----------
+    i
+        Diode current, anode → cathode positive (any float dtype; not copied in full).
+
+    Returns
+    -------
+    plateaus, level, step
+        The plateaus in time order, the held level of the record (:func:`held_level`) and
+        the coarse stride used. Runs above the hysteresis whose charge (median × duration)
+        is below :data:`MIN_PLATEAU_FRACTION` of the largest run's are ringing, not plateaus.
+    """
+    scan = scan_plateaus(i)
+    return scan.plateaus, scan.level, scan.step
 
 
 def moving_average(x: np.ndarray, width: int) -> np.ndarray:

@@ -55,6 +55,11 @@ MIN_SAMPLES_IN_TA = 10
 #: Locator width (samples) used to pin down the reverse-current peak on noisy data.
 PEAK_LOCATOR_WIDTH = 5
 
+#: A record whose negated current holds a level with more than this many times the charge
+#: (level × duration) of any positive level is taken as a reversed current probe: a freewheel
+#: plateau carries far more charge than the recovery's reverse peak (common practice).
+REVERSED_AREA_RATIO = 2.0
+
 FLAG_SHORT_PLATEAU = "short_plateau"
 FLAG_FEW_SAMPLES_TA = "few_samples_in_ta"
 FLAG_NEAR_END = "event_near_record_end"
@@ -252,7 +257,14 @@ def analyze_recovery(
     """
     opts = options or RecoveryOptions()
     v, i, timebase = _validate(t, v, i, dt, t_start)
-    plateaus, _level, _step = ev.find_plateaus(i)
+    scan = ev.scan_plateaus(i)
+    plateaus = scan.plateaus
+    if scan.reverse_area > REVERSED_AREA_RATIO * scan.area:
+        raise NoEventError(
+            f"the current looks reversed: it holds about {-scan.reverse_level:.4g} A far longer "
+            "than any positive level (check the current probe's direction: forward current "
+            "anode → cathode must be positive; or remove a large negative offset)"
+        )
     if not plateaus:
         raise NoEventError(
             "no forward-current plateau in the record (is the current anode → cathode positive?)"
