@@ -21,6 +21,7 @@ COMMAND_MODULES = (
     "sim",
     "analyze",
     "grade",
+    "report",
     "loss",
     "keys",
     "verify",

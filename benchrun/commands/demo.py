@@ -21,6 +21,7 @@ import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from benchrun.commands.report import print_lot
 from benchrun.errors import ConfigError
 
 if TYPE_CHECKING:
@@ -85,25 +86,8 @@ def _run(sequence: Path, bench: Path, out: Path, progress: bool) -> RunOutcome:
     return run_on_bench(sequence, bench, options)
 
 
-def _grade(outcome: RunOutcome) -> tuple[Any, Any]:
-    from benchrun.config.limits import load_limits
-    from benchrun.grading import grade_lot
-    from benchrun.store.rundata import LIMITS_FILE, load_run
-
-    run = load_run(outcome.run_dir)
-    lot = grade_lot(run.shots, load_limits(outcome.run_dir / LIMITS_FILE))
-    return run, lot
-
-
-def _losses(run: Any) -> Any:
-    from benchrun.loss import estimate_losses
-
-    freqs = run.manifest.get("switching_frequencies_Hz") or []
-    return estimate_losses(run.shots, freqs) if freqs else None
-
-
 def run(args: argparse.Namespace) -> int:
-    from benchrun.report.render import render_report
+    from benchrun.report.publish import publish_report
 
     started = time.perf_counter()
     out: Path = args.out.resolve()
@@ -113,21 +97,16 @@ def run(args: argparse.Namespace) -> int:
     print("benchrun demo: simulated bench, invented parts and lots (Korvane Power Components)")
     print(f"  sequence {folder / SEQUENCE_SI}\n  bench    {folder / BENCH}")
 
-    outcome = _run(folder / SEQUENCE_SI, folder / BENCH, out / "runs", progress)
-    run_data, lot = _grade(outcome)
-    loss = _losses(run_data)
     signer, cert, how = demo_signer(out / "keys")
-    report = render_report(run_data, lot, outcome.run_dir / "report.pdf", signer=signer,
-                           loss=loss)
+    outcome = _run(folder / SEQUENCE_SI, folder / BENCH, out / "runs", progress)
+    published = publish_report(outcome.run_dir, signer)
+    lot, loss, report = published.lot, published.loss, published.path
 
     comparison = None
     sic = None
     if not args.no_sic:
         sic = _run(folder / SEQUENCE_SIC, folder / BENCH, out / "runs", progress)
-        sic_run, sic_lot = _grade(sic)
-        sic_loss = _losses(sic_run)
-        render_report(sic_run, sic_lot, sic.run_dir / "report.pdf", signer=signer,
-                      loss=sic_loss)
+        sic_loss = publish_report(sic.run_dir, signer).loss
         if loss is not None and sic_loss is not None:
             from benchrun.loss import compare
 
@@ -135,12 +114,7 @@ def run(args: argparse.Namespace) -> int:
 
     elapsed = time.perf_counter() - started
     print()
-    print(f"lot {run_data.manifest.get('lot')} ({run_data.manifest.get('part')}): "
-          f"disposition {lot.disposition.upper()}")
-    for reason in lot.reasons:
-        print(f"  - {reason}")
-    for device in lot.devices:
-        print(f"  {device.serial:16s} {device.verdict}")
+    print_lot(lot)
     print()
     print(f"run folder      {outcome.run_dir}")
     print(f"  raw record    {outcome.run_dir / 'raw.h5'}")

@@ -4,7 +4,9 @@ Runs a test sequence unattended: checks every file and every planned setting bef
 is energised, then fires, stores and analyses every shot. Resources written ``sim`` in the
 bench file are served by an in-process simulated bench. After a crash or Ctrl-C,
 ``--resume`` continues the newest unfinished run of the same part and lot in DIR (or the run
-folder given) at the first untested point.
+folder given) at the first untested point. With a signing identity (``--sign-key`` and
+``--sign-cert``, or ``--sign-p12``) a complete run is graded and its signed report written;
+the identity is loaded before anything is energised, so a wrong passphrase costs no shots.
 """
 
 from __future__ import annotations
@@ -14,6 +16,7 @@ import sys
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from benchrun.commands.report import add_signer_arguments, print_lot
 from benchrun.runner.simbench import DEFAULT_SPEEDUP
 
 if TYPE_CHECKING:
@@ -40,6 +43,7 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--sim-speedup", type=float, default=DEFAULT_SPEEDUP,
                         help="clock speed-up of the simulated bench (sim resources only)")
     parser.add_argument("--sim-seed", type=int, default=1, help="noise seed of the simulator")
+    add_signer_arguments(parser, prefix="sign-")
     parser.set_defaults(func=run)
 
 
@@ -79,6 +83,20 @@ def run(args: argparse.Namespace) -> int:
         show_progress=not args.no_progress and sys.stderr.isatty(),
         on_finish=print_outcome,
     )
+    signer = None
+    if args.sign_key or args.sign_cert or args.sign_p12:
+        from benchrun.report.publish import load_signer_from_files
+
+        signer = load_signer_from_files(key=args.sign_key, cert=args.sign_cert,
+                                        p12=args.sign_p12, role=args.sign_role)
     outcome = run_on_bench(args.sequence, args.bench, options, sim_speedup=args.sim_speedup,
                            sim_seed=args.sim_seed)
-    return 0 if outcome.status == "complete" else 1
+    if outcome.status != "complete":
+        return 1
+    if signer is not None:
+        from benchrun.report.publish import publish_report
+
+        published = publish_report(outcome.run_dir, signer)
+        print_lot(published.lot)
+        print(f"  report:      {published.path} (signed)")
+    return 0

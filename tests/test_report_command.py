@@ -1,0 +1,77 @@
+"""``benchrun report``: grade a stored run and sign its report from the command line.
+
+The outcome is checked with the auditor's own tool (``benchrun verify``), and poppler's
+``pdftotext`` (an outside PDF reader) must find the disposition in the written PDF.
+"""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+
+import pytest
+from report_helpers import PASSPHRASE, build_run
+
+from benchrun.cli import main
+from benchrun.report.keys import PASSPHRASE_ENV, new_identity
+from benchrun.report.verify import verify_report
+
+
+@pytest.fixture()
+def identity(tmp_path):
+    return new_identity("T. Okonkwo", tmp_path / "keys", PASSPHRASE, role="Test Engineer")
+
+
+def test_report_command_signs_a_report_that_verifies(tmp_path, identity, monkeypatch, capsys):
+    run_dir = build_run(tmp_path, n_devices=3, failing=(1,))
+    monkeypatch.setenv(PASSPHRASE_ENV, PASSPHRASE)
+    code = main(["report", str(run_dir), "--key", str(identity.key_path),
+                 "--cert", str(identity.cert_path), "--role", "Test Engineer"])
+    out = capsys.readouterr().out
+    assert code == 0
+    # device 2 is above its Irrm limit at 25 °C (report_helpers) → the lot is rejected
+    assert "disposition REJECT" in out
+    assert "L2611-A-002" in out
+    pdf = run_dir / "report.pdf"
+    result = verify_report(pdf, cert=identity.cert_path)
+    assert result.ok, [c.to_dict() for c in result.checks]
+    if shutil.which("pdftotext"):
+        text = subprocess.run(["pdftotext", str(pdf), "-"], capture_output=True, text=True,
+                              timeout=60, check=True).stdout
+        assert "REJECT" in text
+
+
+def test_report_command_needs_a_complete_identity(tmp_path, identity, monkeypatch, capsys):
+    run_dir = build_run(tmp_path, n_devices=2, failing=())
+    monkeypatch.setenv(PASSPHRASE_ENV, PASSPHRASE)
+    code = main(["report", str(run_dir), "--key", str(identity.key_path)])
+    assert code == 2
+    assert "--cert" in capsys.readouterr().err
+    assert not (run_dir / "report.pdf").exists()
+
+
+def test_report_command_refuses_a_wrong_passphrase(tmp_path, identity, monkeypatch, capsys):
+    run_dir = build_run(tmp_path, n_devices=2, failing=())
+    monkeypatch.setenv(PASSPHRASE_ENV, "not the passphrase")
+    code = main(["report", str(run_dir), "--key", str(identity.key_path),
+                 "--cert", str(identity.cert_path)])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert "wrong passphrase" in err
+    assert "not the passphrase" not in err
+    assert not (run_dir / "report.pdf").exists()
+
+
+def test_run_loads_the_signer_before_anything_fires(tmp_path, identity, monkeypatch, capsys):
+    # a wrong passphrase must surface before the bench is touched: no run folder is made
+    from report_helpers import ROOT
+
+    monkeypatch.setenv(PASSPHRASE_ENV, "not the passphrase")
+    out = tmp_path / "runs"
+    code = main(["run", str(ROOT / "sequences" / "ksc20-12-demo.yaml"),
+                 "--bench", str(ROOT / "sequences" / "bench-sim.yaml"), "--out", str(out),
+                 "--no-progress", "--sign-key", str(identity.key_path),
+                 "--sign-cert", str(identity.cert_path)])
+    assert code == 2
+    assert "wrong passphrase" in capsys.readouterr().err
+    assert not out.exists() or not any(out.iterdir())
