@@ -35,7 +35,7 @@ estimators are plain interpolation and plain sample extrema.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, field, fields, replace
 from typing import Any
 
 import numpy as np
@@ -46,6 +46,12 @@ from benchrun.errors import ConfigError, InputDataError, NoEventError
 
 #: Fewest samples accepted for a record.
 MIN_SAMPLES = 16
+#: A time array whose largest step exceeds its smallest by this factor is non-uniform (a
+#: variable-step simulator's output) and is resampled; below it, timestamp rounding.
+UNIFORM_TOLERANCE = 1.1
+#: Limits on the points of the uniform grid a non-uniform record is resampled onto.
+MIN_RESAMPLED = 1 << 20
+MAX_RESAMPLED = 1 << 24
 #: Samples looked back before the end of the plateau (enough for the fall and a plateau).
 PLATEAU_LOOKBACK = 60_000
 #: First span after the plateau examined; grown by 4× until the event is complete.
@@ -159,10 +165,12 @@ class RecoveryMetrics:
 class _TimeBase:
     """Times of the record, given as an array or as ``t_start + k·dt``."""
 
-    def __init__(self, t: np.ndarray | None, dt: float | None, t_start: float) -> None:
+    def __init__(self, t: np.ndarray | None, dt: float | None, t_start: float,
+                 uniform: bool = True) -> None:
         self.t = t
         self.dt = dt
         self.t_start = t_start
+        self.uniform = uniform
 
     def window(self, a: int, b: int) -> np.ndarray:
         if self.t is not None:
@@ -181,14 +189,34 @@ def _check_finite(name: str, x: np.ndarray) -> None:
     raise InputDataError(f"{name} values are too large to be physical")
 
 
-def _check_increasing(t: np.ndarray) -> None:
+def _check_increasing(t: np.ndarray) -> tuple[float, float]:
+    """Raise unless ``t`` strictly increases; return the smallest and largest step."""
     chunk = 1 << 20
+    lo, hi = math.inf, 0.0
     for a in range(0, t.size - 1, chunk):
         seg = t[a : a + chunk + 1]
-        ok = seg[1:] > seg[:-1]
+        steps = seg[1:] - seg[:-1]
+        ok = steps > 0
         if not ok.all():
             k = a + int(np.argmin(ok)) + 1
             raise InputDataError(f"time is not strictly increasing at sample {k}")
+        lo, hi = min(lo, float(steps.min())), max(hi, float(steps.max()))
+    return lo, hi
+
+
+def _uniform_grid(t: np.ndarray) -> tuple[float, int]:
+    """Step and length of the uniform grid a non-uniform record is resampled onto.
+
+    The step is the 10th percentile of the record's steps (a variable-step simulator takes
+    its small steps where the waveform changes fast, so this keeps the detail of the event),
+    but not so fine that the grid holds more than ``4·n`` points (at least MIN_RESAMPLED,
+    at most MAX_RESAMPLED): breakpoints make a simulator take a few tiny steps too.
+    """
+    span = float(t[-1] - t[0])
+    steps = np.diff(t)
+    step = float(np.quantile(steps, 0.1))
+    step = max(step, span / (min(max(4 * t.size, MIN_RESAMPLED), MAX_RESAMPLED) - 1))
+    return step, math.floor(span / step) + 1
 
 
 def _validate(t, v, i, dt, t_start) -> tuple[np.ndarray, np.ndarray, _TimeBase]:
@@ -210,7 +238,9 @@ def _validate(t, v, i, dt, t_start) -> tuple[np.ndarray, np.ndarray, _TimeBase]:
         if t.ndim != 1 or t.size != i.size:
             raise InputDataError(f"time has shape {t.shape}, expected ({i.size},)")
         _check_finite("time", t)
-        _check_increasing(t)
+        lo, hi = _check_increasing(t)
+        if hi > UNIFORM_TOLERANCE * lo:
+            return v, i, _TimeBase(t, None, 0.0, uniform=False)
         return v, i, _TimeBase(t, None, 0.0)
     if dt is None or not (math.isfinite(dt) and dt > 0):
         raise InputDataError(f"give a time array or a sample interval dt > 0, got dt={dt!r}")
@@ -257,6 +287,45 @@ def analyze_recovery(
     """
     opts = options or RecoveryOptions()
     v, i, timebase = _validate(t, v, i, dt, t_start)
+    if not timebase.uniform:
+        return _analyze_nonuniform(timebase.t, v, i, opts)
+    return _analyze_record(v, i, timebase, opts)
+
+
+def _analyze_nonuniform(t: np.ndarray, v: np.ndarray, i: np.ndarray,
+                        opts: RecoveryOptions) -> RecoveryMetrics:
+    """Variable-step record (a circuit simulator's output): resampled onto a uniform grid.
+
+    Event location and the crossings work on the grid (linear interpolation between the
+    given points, as a simulator's own measurements do); Qrr and Err are then the exact
+    trapezoidal integrals over the given points between t0 and t2, and the
+    ``few_samples_in_ta`` flag counts the given points, not the grid's.
+    """
+    step, count = _uniform_grid(t)
+    grid = t[0] + step * np.arange(count, dtype=np.float64)
+    v_u = np.interp(grid, t, np.asarray(v, dtype=np.float64))
+    i_u = np.interp(grid, t, np.asarray(i, dtype=np.float64))
+    m = _analyze_record(v_u, i_u, _TimeBase(None, step, float(t[0])), opts)
+    changes: dict[str, Any] = {}
+    flags = [f for f in m.flags if f != FLAG_FEW_SAMPLES_TA]
+    if m.t0_s is not None and m.t_irrm_s is not None:
+        a, b = np.searchsorted(t, [m.t0_s, m.t_irrm_s])
+        if b - a < MIN_SAMPLES_IN_TA:
+            flags.append(FLAG_FEW_SAMPLES_TA)
+    if m.qrr_C is not None and m.t0_s is not None and m.t2_s is not None:
+        a = max(0, int(np.searchsorted(t, m.t0_s)) - 1)
+        b = min(t.size, int(np.searchsorted(t, m.t2_s)) + 1)
+        tw = t[a : b + 1]
+        iw = np.asarray(i[a : b + 1], dtype=np.float64)
+        vw = np.asarray(v[a : b + 1], dtype=np.float64)
+        changes["qrr_C"] = -ev.integrate(tw, iw, m.t0_s, m.t2_s)
+        changes["err_J"] = ev.integrate(tw, vw * iw, m.t0_s, m.t2_s)
+    return replace(m, flags=tuple(flags), **changes)
+
+
+def _analyze_record(v: np.ndarray, i: np.ndarray, timebase: _TimeBase,
+                    opts: RecoveryOptions) -> RecoveryMetrics:
+    """Locate the commutation asked for and measure it."""
     scan = ev.scan_plateaus(i)
     plateaus = scan.plateaus
     if scan.reverse_area > REVERSED_AREA_RATIO * scan.area:
@@ -290,18 +359,23 @@ def analyze_recovery(
 
 
 _NEED_MORE = object()
+_NEED_LOOKBACK = object()
 
 
 def _analyze_plateau_end(plateau, level, v, i, timebase, opts) -> RecoveryMetrics | None:
-    a = max(plateau.start, plateau.end - PLATEAU_LOOKBACK)
+    lookback = PLATEAU_LOOKBACK
     hard_stop = plateau.next_start
     span = INITIAL_SPAN + 4 * ev.coarse_step(i.size)
     while True:
+        a = max(plateau.start, plateau.end - lookback)
         b = min(hard_stop, plateau.end + span)
         result = _measure_window(a, b, b < hard_stop, plateau, level, v, i, timebase, opts)
-        if result is not _NEED_MORE:
+        if result is _NEED_LOOKBACK:
+            lookback *= 4
+        elif result is _NEED_MORE:
+            span *= 4
+        else:
             return result
-        span *= 4
 
 
 def _odd(n: float) -> int:
@@ -354,9 +428,10 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
     end_local = min(plateau.end - a, n)
 
     # Rough pass on the raw samples: where the current leaves the plateau and crosses zero.
+    cut = a > plateau.start  # the window starts inside the plateau
     k_half = ev.last_above(iw, 0.5 * level, 0, end_local)
     if k_half is None:
-        return None
+        return _NEED_LOOKBACK if cut else None
     k_zero = ev.first_at_or_below(iw, 0.0, k_half, n)
     if k_zero is None:
         return _NEED_MORE if can_grow else None
@@ -365,6 +440,8 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
     # Plateau just before the fall: IF and the noise level of both channels.
     p_end = k_half - 2 * fall - 2
     p_len = int(min(max(20 * fall, 64), 20_000))
+    if cut and p_end < p_len:
+        return _NEED_LOOKBACK  # a slow fall: look further back for the plateau
     # stay on the plateau: skip its first quarter (turn-off ringing) and what precedes it
     start_local = max(0, plateau.start - a)
     p_start = max(p_end - p_len, start_local + max(0, p_end - start_local) // 4)
