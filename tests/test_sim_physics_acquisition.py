@@ -125,3 +125,34 @@ def test_invalid_settings_rejected():
         AcquisitionSettings(0.0, 100, 0.0, {"gate": (10.0, 0.0)})
     with pytest.raises(ValueError):
         AcquisitionSettings(1e-9, 100, 0.0, {"gate": (-10.0, 0.0)})
+
+
+@pytest.mark.parametrize(
+    ("t_start", "length"), [(-20e-9, 200_003), (-2e-6, 150_000), (0.5e-6, 70_001)],
+    ids=["inside", "starts-before-the-waveform", "ends-after-the-waveform"],
+)
+def test_record_equals_plain_interpolation_of_the_filtered_waveform(t_start, length):
+    # digitize works block by block in ADC-code units on the simulator's own grid; without
+    # noise the record must be the textbook sequence: sample the (filtered) waveform at
+    # t_k − skew by linear interpolation (numpy.interp as the reference), scale to codes,
+    # round, clip.  Rounding ties may differ by floating-point order: allow 1 code on 0.01 %.
+    wf = step_waveforms(level=100.0, t_stop=1e-6)
+    acq = AcquisitionSettings(
+        sample_interval_s=13e-12, record_length=length, t_start_s=t_start,
+        channel_ranges={"diode_voltage": (150.0, 40.0), "diode_current": (90.0, 10.0)},
+        bandwidth_hz={"diode_voltage": 150e6}, skew_s={"diode_current": 1.7e-9},
+        noise_lsb=0.0,
+    )
+    out = digitize(wf, acq)
+    t = acq.time_axis()
+    for name, (span, offset) in acq.channel_ranges.items():
+        bw = acq.bandwidth_hz.get(name)
+        y = wf.channel(name) if bw is None else lowpass_first_order(
+            wf.t, wf.channel(name), 1.0 / (2 * np.pi * bw)
+        )
+        gain = span / 255.0
+        analog = np.interp(t - acq.skew_s.get(name, 0.0), wf.t, y)
+        expected = np.clip(np.rint((analog - offset) / gain), -128, 127)
+        diff = np.abs(out[name].codes - expected)
+        assert diff.max() <= 1
+        assert np.count_nonzero(diff) <= 1e-4 * length

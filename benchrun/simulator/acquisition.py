@@ -164,6 +164,9 @@ def _filtered(waveforms: CircuitWaveforms, name: str, bandwidth: float | None) -
     return y
 
 
+_BLOCK = 1 << 15  # samples per block: the block's working arrays stay in the CPU cache
+
+
 def digitize(
     waveforms: CircuitWaveforms,
     acquisition: AcquisitionSettings,
@@ -177,9 +180,11 @@ def digitize(
 
     The work on the simulator's own (non-uniform, much shorter) time grid is done there: the
     waveform is converted to ADC code units (value − offset)/gain and its instants to sample
-    numbers (t − t_start + skew)/Δt, so the record is one linear interpolation at the sample
-    numbers 0..n−1 (linear interpolation commutes with these affine maps), then noise,
-    rounding and clipping in place.
+    numbers (t − t_start + skew)/Δt, so the record is a linear interpolation at the sample
+    numbers 0..n−1 (linear interpolation commutes with these affine maps).  The record is
+    then made block by block — interpolation, noise, rounding, clipping, conversion to codes —
+    so the intermediate arrays stay small and in cache; the codes do not depend on the block
+    size (the noise is drawn from the generator in the same order).
     """
     if rng is None:
         rng = np.random.default_rng(acquisition.seed)
@@ -187,7 +192,10 @@ def digitize(
     code_min = -(2 ** (acquisition.adc_bits - 1))
     n = acquisition.record_length
     k = _sample_index(n)
-    noise = np.empty(n, dtype=np.float32) if acquisition.noise_lsb > 0 else None
+    starts = np.arange(0, n, _BLOCK)
+    ends = np.minimum(starts + _BLOCK, n)
+    noise = np.empty(min(n, _BLOCK), dtype=np.float32) if acquisition.noise_lsb > 0 else None
+    noise_scale = np.float32(acquisition.noise_lsb)
     out: dict[str, DigitizedChannel] = {}
     for name, (span, offset) in acquisition.channel_ranges.items():
         y = _filtered(waveforms, name, acquisition.bandwidth_hz.get(name))
@@ -196,16 +204,24 @@ def digitize(
         # a channel with skew s shows at sample k the signal at t_k − s
         x_samples = (waveforms.t - (acquisition.t_start_s - skew)) / acquisition.sample_interval_s
         y_codes = (y - offset) * (1.0 / gain)
-        analog = np.interp(k, x_samples, y_codes)
-        if noise is not None:
-            standard_normal_fast(rng, n, out=noise)
-            if acquisition.noise_lsb != 1.0:
-                noise *= np.float32(acquisition.noise_lsb)
-            analog += noise
-        np.rint(analog, out=analog)
-        np.clip(analog, code_min, code_max, out=analog)
+        # simulator points bracketing each block (np.interp holds the end values outside)
+        first = np.maximum(np.searchsorted(x_samples, starts, side="right") - 1, 0)
+        last = np.searchsorted(x_samples, ends - 1, side="left") + 1
+        codes = np.empty(n, dtype=np.int16)
+        for s, e, j0, j1 in zip(
+            starts.tolist(), ends.tolist(), first.tolist(), last.tolist(), strict=True
+        ):
+            block = np.interp(k[s:e], x_samples[j0:j1], y_codes[j0:j1])
+            if noise is not None:
+                z = standard_normal_fast(rng, e - s, out=noise[: e - s])
+                if noise_scale != 1.0:
+                    z *= noise_scale
+                block += z
+            np.rint(block, out=block)
+            np.clip(block, code_min, code_max, out=block)
+            codes[s:e] = block
         out[name] = DigitizedChannel(
-            codes=analog.astype(np.int16),
+            codes=codes,
             gain=float(gain),
             offset=float(offset),
             code_min=code_min,
