@@ -12,6 +12,8 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import re
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -40,37 +42,167 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.set_defaults(func=run)
 
 
-def _column(frame, spec: str, role: str, path: Path) -> np.ndarray:
-    columns = [str(c) for c in frame.columns]
-    if spec in columns:
-        name = frame.columns[columns.index(spec)]
-    elif spec.lstrip("-").isdigit() and 0 <= int(spec) < len(columns):
-        name = frame.columns[int(spec)]
-    else:
-        raise InputDataError(
-            f"{path}: no {role} column {spec!r} (columns: {', '.join(columns)})"
-        )
-    import pandas as pd
+#: Lines read to find the delimiter, the header and the first data row.
+SNIFF_LINES = 200
+#: Consecutive numeric rows that mark the start of the data.
+DATA_RUN = 5
+#: Unit suffixes recognised in a header such as ``Time (us)`` or ``i_f [mA]``, by role.
+UNIT_SCALES = {
+    "time": {"s": 1.0, "ms": 1e-3, "us": 1e-6, "µs": 1e-6, "μs": 1e-6, "ns": 1e-9,
+             "ps": 1e-12},
+    "voltage": {"v": 1.0, "mv": 1e-3, "kv": 1e3},
+    "current": {"a": 1.0, "ma": 1e-3, "ka": 1e3},
+}
+_UNIT = re.compile(r"[(\[]\s*([A-Za-zµμ]+)\s*[)\]]\s*$")
+_DELIMITERS = (",", ";", "\t", None)  # None: runs of white space
 
-    values = pd.to_numeric(frame[name], errors="coerce").to_numpy(dtype=np.float64)
-    bad = np.flatnonzero(~np.isfinite(values))
-    if bad.size:
-        row = int(bad[0]) + 2  # 1-based line number, after the header line
+
+def _split(line: str, delimiter: str | None) -> list[str]:
+    fields = line.split(delimiter)
+    while fields and not fields[-1].strip():
+        fields.pop()  # a trailing delimiter
+    return [f.strip().strip('"').strip("'").strip() for f in fields]
+
+
+def _number(text: str, decimal_comma: bool) -> bool:
+    if decimal_comma:
+        text = text.replace(",", ".")
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _split_header(line: str, delimiter: str | None, count: int) -> list[str] | None:
+    """Header names; delimiters inside quotes or brackets (``V(anode,cathode)``) do not split."""
+    names = _split(line, delimiter)
+    if len(names) == count:
+        return names
+    if delimiter is None:
+        return None
+    fields, depth, quote, current = [], 0, "", []
+    for char in line.rstrip("\r\n"):
+        if quote:
+            quote = "" if char == quote else quote
+        elif char in "\"'":
+            quote = char
+        elif char in "([{":
+            depth += 1
+        elif char in ")]}":
+            depth = max(0, depth - 1)
+        elif char == delimiter and depth == 0:
+            fields.append("".join(current))
+            current = []
+            continue
+        current.append(char)
+    fields.append("".join(current))
+    names = [f.strip().strip('"').strip("'").strip() for f in fields]
+    while names and not names[-1]:
+        names.pop()
+    return names if len(names) == count else None
+
+
+@dataclass(frozen=True)
+class _Layout:
+    delimiter: str | None
+    decimal_comma: bool
+    first_data_line: int  # 0-based line index of the first data row
+    columns: int
+    names: list[str] | None
+
+
+def _sniff(path: Path, lines: list[str]) -> _Layout:
+    """Delimiter, header and first data row from the first lines of the file.
+
+    Metadata lines before the header are skipped: the data start at the first run of
+    :data:`DATA_RUN` lines (or all remaining lines) that are numeric with the same number of
+    fields (at least two); the line just before, when not numeric, is the header.
+    """
+    best: _Layout | None = None
+    for delimiter in _DELIMITERS:
+        for decimal_comma in (False, True) if delimiter != "," else (False,):
+            rows = [_split(line, delimiter) for line in lines]
+            numeric = [len(r) >= 2 and all(_number(f, decimal_comma) for f in r) for r in rows]
+            for k in range(len(rows)):
+                run = range(k, min(len(rows), k + DATA_RUN))
+                if not all(numeric[j] and len(rows[j]) == len(rows[k]) for j in run):
+                    continue
+                names = None
+                if k > 0 and not numeric[k - 1]:
+                    names = _split_header(lines[k - 1], delimiter, len(rows[k]))
+                layout = _Layout(delimiter, decimal_comma, k, len(rows[k]), names)
+                if best is None or (layout.columns, layout.names is not None) > (
+                    best.columns, best.names is not None
+                ):
+                    best = layout
+                break
+    if best is None:
         raise InputDataError(
-            f"{path}: {role} column {str(name)!r} has a missing or non-numeric value at line {row}"
+            f"{path}: no rows of numbers found (expected a header line, then rows of "
+            "time, voltage and current separated by commas, semicolons, tabs or spaces)"
         )
-    return values
+    return best
+
+
+def _column_index(layout: _Layout, spec: str, role: str, path: Path) -> tuple[int, float]:
+    """Column index and unit scale for ``--time/--voltage/--current``."""
+    names = layout.names or []
+    index = None
+    if spec in names:
+        index = names.index(spec)
+    else:
+        folded = [n.casefold() for n in names]
+        if spec.strip().casefold() in folded:
+            index = folded.index(spec.strip().casefold())
+        elif spec.lstrip("-").isdigit() and 0 <= int(spec) < layout.columns:
+            index = int(spec)
+    if index is None:
+        shown = ", ".join(names) if names else f"{layout.columns} unnamed columns"
+        raise InputDataError(f"{path}: no {role} column {spec!r} (columns: {shown})")
+    scale = 1.0
+    if names:
+        match = _UNIT.search(names[index])
+        if match:
+            scale = UNIT_SCALES[role].get(match.group(1).casefold().replace("μ", "µ"), 1.0)
+    return index, scale
 
 
 def read_capture(path: Path, time: str, voltage: str, current: str):
-    """Read (t, v, i) from a CSV file; raises InputDataError with one clear line."""
+    """Read (t, v, i) in SI units from a CSV file; raises InputDataError with one clear line.
+
+    The delimiter (comma, semicolon, tab or white space; a decimal comma with the others),
+    metadata lines before the header, and the header itself are found from the first lines.
+    A unit in brackets at the end of a column name (``Time (us)``, ``I [mA]``) scales the
+    column to SI.
+    """
     import pandas as pd
 
     try:
-        frame = pd.read_csv(path)
+        with open(path, encoding="utf-8-sig", errors="replace") as handle:
+            head = [line for _, line in zip(range(SNIFF_LINES), handle, strict=False)]
     except FileNotFoundError:
         raise InputDataError(f"{path}: no such file") from None
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError,
+    except OSError as exc:
+        raise InputDataError(f"{path}: cannot read ({exc.strerror or exc})") from exc
+    layout = _sniff(path, [line.rstrip("\r\n") for line in head])
+    picks = [
+        (role, *_column_index(layout, spec, role, path))
+        for role, spec in (("time", time), ("voltage", voltage), ("current", current))
+    ]
+    try:
+        frame = pd.read_csv(
+            path,
+            sep=layout.delimiter if layout.delimiter is not None else r"\s+",
+            decimal="," if layout.decimal_comma else ".",
+            header=None,
+            skiprows=layout.first_data_line,
+            usecols=sorted({index for _, index, _ in picks}),
+            encoding="utf-8-sig",
+            skip_blank_lines=True,
+            engine="c",
+        )
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError, ValueError,
             OSError) as exc:
         message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputDataError(f"{path}: not a readable CSV file ({message})") from exc
@@ -78,12 +210,21 @@ def read_capture(path: Path, time: str, voltage: str, current: str):
         raise InputDataError(
             f"{path}: too short: {len(frame)} data rows, need at least {MIN_SAMPLES}"
         )
-    t = _column(frame, time, "time", path)
-    v = _column(frame, voltage, "voltage", path)
-    i = _column(frame, current, "current", path)
+    out = []
+    for role, index, scale in picks:
+        values = pd.to_numeric(frame[index], errors="coerce").to_numpy(dtype=np.float64)
+        bad = np.flatnonzero(~np.isfinite(values))
+        if bad.size:
+            row = layout.first_data_line + int(bad[0]) + 1  # 1-based line number
+            name = layout.names[index] if layout.names else f"column {index}"
+            raise InputDataError(
+                f"{path}: {role} column {name!r} has a missing or non-numeric value at line {row}"
+            )
+        out.append(values * scale if scale != 1.0 else values)
+    t, v, i = out
     steps = np.diff(t)
     if not np.all(steps > 0):
-        row = int(np.argmin(steps > 0)) + 3
+        row = layout.first_data_line + int(np.argmin(steps > 0)) + 2
         raise InputDataError(f"{path}: time is not strictly increasing at line {row}")
     return t, v, i
 
