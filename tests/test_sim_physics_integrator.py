@@ -153,6 +153,7 @@ def test_analytic_jacobian_matches_central_differences():
                     h = 1e-6 * max(abs(y[j]), 1e-3)
                     e = np.zeros(6)
                     e[j] = h
-                    numeric[:, j] = (np.array(rhs(y + e, 0.0)) - np.array(rhs(y - e, 0.0))) / (2 * h)
+                    upper, lower = np.array(rhs(y + e, 0.0)), np.array(rhs(y - e, 0.0))
+                    numeric[:, j] = (upper - lower) / (2 * h)
                 scale = np.abs(numeric).max(axis=1, keepdims=True) + 1e-30
                 assert np.max(np.abs(analytic - numeric) / scale) < 1e-4

@@ -28,9 +28,10 @@ Circuit (high-side diode under test freewheeling the load inductor, low-side swi
   circuit equations, so the measured di/dt is close to, not identical with, the formula.
 
 A switching event is integrated by LSODA (scipy.integrate.odeint: automatic switching between
-stiff BDF and non-stiff Adams methods) on a fine uniform output grid, in chunks, until the
-transient has settled.  State: gate voltage, switch voltage, stray-inductor current, load
-current, junction voltage, stored charge / τ.  The bus voltage is held constant over an event
+stiff BDF and non-stiff Adams methods), given the analytic Jacobian of the circuit equations,
+on a fine uniform output grid, in chunks, until the transient has settled.  State: gate
+voltage, switch voltage, stray-inductor current, load current, junction voltage, stored
+charge / τ.  The bus voltage is held constant over an event
 (the charge drawn is returned so the caller can update it).
 """
 
