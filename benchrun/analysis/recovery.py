@@ -30,6 +30,12 @@ data a light centred moving average (width ≈ 1/10 of the forward-current fall,
 is used only to *locate* crossings and the minimum; values are measured on the raw samples by
 least-squares lines / parabolas through the samples inside the noise band. On clean data the
 estimators are plain interpolation and plain sample extrema.
+
+Ringing after the peak: the trr crossings and t2 are the *first* rising crossings after the
+minimum, so later ringing cycles never move them, and VRM is taken over t0 … t2 + trr only
+(as defined above). A non-uniform time array (a variable-step simulator's output) is
+resampled onto a uniform grid for the event location and crossings; Qrr and Err are then the
+exact trapezoidal integrals over the given points.
 """
 
 from __future__ import annotations
@@ -263,7 +269,9 @@ def analyze_recovery(
     Parameters
     ----------
     t
-        Sample times [s], strictly increasing; or ``None`` with ``dt`` and ``t_start``.
+        Sample times [s], strictly increasing, uniform or not (variable-step simulator
+        output is resampled, see the module docstring); or ``None`` with ``dt`` and
+        ``t_start``.
     v
         Anode-to-cathode voltage [V].
     i
@@ -283,7 +291,8 @@ def analyze_recovery(
     InputDataError
         Arrays of the wrong shape, too short, non-finite, or time not increasing.
     NoEventError
-        No forward-current plateau followed by a current reversal in the record.
+        No forward-current plateau followed by a current reversal in the record, or a
+        current that looks reversed (a negative level held far longer than any positive).
     """
     opts = options or RecoveryOptions()
     v, i, timebase = _validate(t, v, i, dt, t_start)
