@@ -97,3 +97,18 @@ def test_other_fit_fractions_still_extrapolate_a_straight_line():
     t, v, i, *_ = triangular(20.0, 200e6, 40e-9, 30e-9, 300.0, 0.1e-9)
     got = analyze_recovery(t, v, i, RecoveryOptions(fit_high=0.75, fit_low=0.5))
     assert got.trr_s == pytest.approx(70e-9, rel=1e-9)
+
+
+def test_sample_interval_forms_agree_with_time_array():
+    # the same triangle given as a time array, as a scalar sample interval, and as dt=
+    IF, didt, ta, tb, VR = 40.0, 400e6, 50e-9, 20e-9, 600.0
+    dt = 0.1e-9
+    t, v, i, _, _, _ = triangular(IF, didt, ta, tb, VR, dt)
+    with_array = analyze_recovery(t, v, i)
+    with_scalar = analyze_recovery(dt, v, i, t_start=float(t[0]))
+    with_keyword = analyze_recovery(None, v, i, dt=dt, t_start=float(t[0]))
+    for got in (with_scalar, with_keyword):
+        assert got.irrm_A == pytest.approx(ta * didt, rel=1e-9)  # Irrm = ta·di/dt
+        assert got.trr_s == pytest.approx(with_array.trr_s, rel=1e-9)
+        assert got.t0_s == pytest.approx(with_array.t0_s, abs=1e-15)
+        assert got.qrr_C == pytest.approx(with_array.qrr_C, rel=1e-9)

@@ -239,6 +239,10 @@ def _validate(t, v, i, dt, t_start) -> tuple[np.ndarray, np.ndarray, _TimeBase]:
         raise InputDataError(f"record too short: {i.size} samples, need at least {MIN_SAMPLES}")
     _check_finite("voltage", v)
     _check_finite("current", i)
+    if t is not None and np.ndim(t) == 0:  # a scalar t is the sample interval
+        if dt is not None:
+            raise InputDataError("give the sample interval either as t or as dt, not both")
+        t, dt = None, float(t)
     if t is not None:
         t = np.asarray(t, dtype=np.float64)
         if t.ndim != 1 or t.size != i.size:
@@ -256,7 +260,7 @@ def _validate(t, v, i, dt, t_start) -> tuple[np.ndarray, np.ndarray, _TimeBase]:
 
 
 def analyze_recovery(
-    t: np.ndarray | None,
+    t: np.ndarray | float | None,
     v: np.ndarray,
     i: np.ndarray,
     options: RecoveryOptions | None = None,
@@ -270,8 +274,8 @@ def analyze_recovery(
     ----------
     t
         Sample times [s], strictly increasing, uniform or not (variable-step simulator
-        output is resampled, see the module docstring); or ``None`` with ``dt`` and
-        ``t_start``.
+        output is resampled, see the module docstring); or the sample interval [s] as a
+        scalar, with ``t_start``; or ``None`` with ``dt`` and ``t_start``.
     v
         Anode-to-cathode voltage [V].
     i
