@@ -18,11 +18,23 @@ stored, so re-analysis of the record reproduces the runner's numbers exactly.
 Crash safety
 ------------
 A shot is written as: group → datasets → attributes → ``complete = True`` last, then the file
-is flushed (``H5Fflush``) and ``fsync``-ed before :meth:`RawRecord.append_shot` returns. A
-``kill -9`` at any moment therefore loses at most the shot in flight: a group left without the
-``complete`` mark is invisible to :meth:`RawRecord.keys` and is deleted when the file is next
-opened for writing. The file uses the earliest HDF5 file format (superblock version 0), which
-has no "file open for writing" status flag, so it reopens after a crash without ``h5clear``.
+is flushed (``H5Fflush``: everything handed to the operating system) before
+:meth:`RawRecord.append_shot` returns. A ``kill -9`` at any moment therefore loses at most the
+shot in flight: a group left without the ``complete`` mark is invisible to
+:meth:`RawRecord.keys` and is deleted when the file is next opened for writing. The file uses
+the earliest HDF5 file format (superblock version 0), which has no "file open for writing"
+status flag, so it reopens after a crash without ``h5clear``.
+
+Durability (``durability=``):
+
+``"power-loss"`` (default)
+    every flush is followed by ``fsync``: a returned shot survives a power cut or an
+    operating-system crash too (as far as the disk honours the sync).
+``"process"``
+    flush only (data handed to the operating system, which writes it back on its own): a
+    returned shot survives the *process* being killed (``kill -9``, a crash of Python), not a
+    power cut. Cheaper per shot; choose it only for a bench on a UPS or where a lost shot is
+    simply fired again.
 """
 
 from __future__ import annotations
@@ -34,6 +46,7 @@ import json
 import os
 import re
 from collections.abc import Iterator, Mapping
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
@@ -66,6 +79,56 @@ SHOTS_GROUP = "shots"
 
 _KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
 _CHUNK_BYTES = 256 * 1024
+
+#: Durability: every flush is also ``fsync``-ed (survives power loss). The default.
+DURABILITY_POWER_LOSS = "power-loss"
+#: Durability: flushes hand the data to the operating system only (survives ``kill -9``).
+DURABILITY_PROCESS = "process"
+DURABILITY_MODES = (DURABILITY_POWER_LOSS, DURABILITY_PROCESS)
+
+
+def check_durability(durability: str) -> str:
+    """``durability`` if it is one of :data:`DURABILITY_MODES`, else StoreError."""
+    if durability not in DURABILITY_MODES:
+        raise StoreError(f"durability must be one of {', '.join(DURABILITY_MODES)}, "
+                         f"not {durability!r}")
+    return durability
+
+
+_SCALAR_SPACE = h5py.h5s.create(h5py.h5s.SCALAR)
+#: (numpy dtype, HDF5 file type) per attribute kind: what h5py's ``attrs[name] = value``
+#: stores for a Python bool, int, float and str
+_ATTR_TYPES = {
+    kind: (dtype, h5py.h5t.py_create(dtype, logical=True))
+    for kind, dtype in (("bool", np.dtype(bool)), ("int", np.dtype(np.int64)),
+                        ("float", np.dtype(np.float64)), ("str", h5py.string_dtype()))
+}
+
+
+def _write_new_attrs(obj: Any, values: Mapping[str, str | int | float | bool]) -> None:
+    """Write attributes on an object created a moment ago (none of the names exist yet).
+
+    Stores exactly what ``obj.attrs[name] = value`` stores (HDF5 enum bool, int64, float64,
+    variable-length UTF-8 string), through the low-level API: h5py's high-level path checks
+    for an existing attribute and builds the types again for every value, which costs more
+    than the write itself for the ~20 small attributes of a shot.
+    """
+    oid = obj.id
+    for name, value in values.items():
+        if isinstance(value, bool | np.bool_):
+            kind, value = "bool", bool(value)
+        elif isinstance(value, str):
+            kind = "str"
+        elif isinstance(value, int | np.integer):
+            kind, value = "int", int(value)
+        else:
+            kind, value = "float", float(value)
+        dtype, htype = _ATTR_TYPES[kind]
+        attr = h5py.h5a.create(oid, name.encode(), htype, _SCALAR_SPACE)
+        try:
+            attr.write(np.array(value, dtype=dtype))
+        finally:
+            attr.close()
 
 
 class ChannelLike(Protocol):
@@ -186,6 +249,11 @@ def file_sha256(path: str | os.PathLike[str], chunk_size: int = 1 << 20) -> str:
     return h.hexdigest()
 
 
+def shot_ref(key: str) -> str:
+    """The reference :meth:`RawRecord.append_shot` returns for ``key`` (``"shots/<key>"``)."""
+    return f"{SHOTS_GROUP}/{_key_of(key)}"
+
+
 def _key_of(key_or_ref: str) -> str:
     key = key_or_ref.removeprefix("/").removeprefix(f"{SHOTS_GROUP}/")
     if not _KEY_RE.match(key):
@@ -226,6 +294,10 @@ class RawRecord:
     compression
         ``"gzip"`` (level 1 with byte shuffle: standard HDF5 filters any HDF5 reader has, about
         3x smaller for 8-bit captures) or ``None``. Only affects newly written shots.
+    durability
+        ``"power-loss"`` (default: every flush is ``fsync``-ed) or ``"process"`` (flushes
+        reach the operating system only: safe against ``kill -9``, not against power loss);
+        see the module docstring.
 
     Raises
     ------
@@ -245,6 +317,7 @@ class RawRecord:
         mode: str = "a",
         *,
         compression: str | None = "gzip",
+        durability: str = DURABILITY_POWER_LOSS,
     ) -> None:
         if mode not in ("r", "a", "w"):
             raise StoreError(f"raw record mode must be 'r', 'a' or 'w', not {mode!r}")
@@ -253,7 +326,10 @@ class RawRecord:
         self.path = Path(path)
         self.mode = mode
         self.compression = compression
+        self.durability = check_durability(durability)
         self._file: h5py.File | None = None
+        self._syncer: ThreadPoolExecutor | None = None  # background fsync (see append_shot)
+        self._pending_sync: Future[None] | None = None
         self._next_number: int | None = None  # cache of next_key(); None = not yet scanned
         self._open()
 
@@ -307,8 +383,13 @@ class RawRecord:
             with contextlib.suppress(Exception):
                 if self.mode != "r":
                     self.flush()
+            with contextlib.suppress(Exception):
+                self.wait_durable()
             self._file.close()
             self._file = None
+        if self._syncer is not None:
+            self._syncer.shutdown(wait=True)
+            self._syncer = None
 
     def __enter__(self) -> RawRecord:
         return self
@@ -326,16 +407,45 @@ class RawRecord:
     def _shots(self) -> h5py.Group:
         return self._f[SHOTS_GROUP]
 
-    def flush(self) -> None:
-        """Write everything to the operating system (``H5Fflush``) and ``fsync`` it to disk."""
+    def flush(self, *, wait: bool = True) -> None:
+        """Write everything to the operating system (``H5Fflush``) and, with durability
+        ``"power-loss"``, ``fsync`` it to disk.
+
+        With ``wait=False`` the ``fsync`` runs on a background thread (it holds no lock
+        Python code needs, so the caller's work goes on meanwhile); :meth:`wait_durable`
+        waits for it, and so does every later write, flush and :meth:`close`.
+        """
+        self.wait_durable()
         f = self._f
         try:
             f.flush()
-            fd = f.id.get_vfd_handle()
-            if isinstance(fd, int) and fd >= 0:
-                os.fsync(fd)
         except (OSError, ValueError) as exc:
             raise StoreError(f"cannot flush raw record {self.path}: {exc}") from exc
+        if self.durability != DURABILITY_POWER_LOSS:
+            return
+        fd = f.id.get_vfd_handle()
+        if not (isinstance(fd, int) and fd >= 0):
+            return
+        if wait:
+            self._fsync(fd)
+            return
+        if self._syncer is None:
+            self._syncer = ThreadPoolExecutor(max_workers=1, thread_name_prefix="raw-fsync")
+        self._pending_sync = self._syncer.submit(self._fsync, fd)
+
+    def _fsync(self, fd: int) -> None:
+        try:
+            os.fsync(fd)
+        except OSError as exc:
+            raise StoreError(f"cannot sync raw record {self.path} to disk: {exc}") from exc
+
+    def wait_durable(self) -> None:
+        """Return once everything flushed so far is durable (a background ``fsync`` of
+        ``append_shot(..., wait=False)`` finished). Raises StoreError when that sync
+        failed."""
+        pending, self._pending_sync = self._pending_sync, None
+        if pending is not None:
+            pending.result()
 
     # -- run-level attributes ------------------------------------------------------------
     @property
@@ -404,8 +514,9 @@ class RawRecord:
         attrs: Mapping[str, Any] | None = None,
         *,
         replace: bool = False,
+        wait: bool = True,
     ) -> str:
-        """Store one shot and make it durable before returning.
+        """Store one shot and make it durable (see ``durability``) before returning.
 
         Parameters
         ----------
@@ -423,6 +534,12 @@ class RawRecord:
             identities ... Floats round-trip exactly.
         replace
             Overwrite a complete shot stored under the same key (otherwise an error).
+        wait
+            True: return once the shot is durable. False: return once the shot is handed to
+            the operating system (a ``kill -9`` cannot lose it) and let the ``fsync`` of
+            durability ``"power-loss"`` finish on a background thread; call
+            :meth:`wait_durable` before relying on the shot surviving a power loss (for
+            example before recording it elsewhere).
 
         Returns
         -------
@@ -435,6 +552,7 @@ class RawRecord:
             Bad key or data, key already used, read-only record, or a write failure.
         """
         self._require_writable()
+        self.wait_durable()  # the previous shot's background sync, if any
         key = _key_of(key)
         attrs = dict(attrs or {})
         if not channels:
@@ -476,21 +594,18 @@ class RawRecord:
                         "chunks": (chunk,),
                     }
                 ds = group.create_dataset(name, data=codes, **options)
-                ds.attrs["gain"] = float(ch.gain)
-                ds.attrs["offset"] = float(ch.offset)
-                ds.attrs["code_min"] = int(ch.code_min)
-                ds.attrs["code_max"] = int(ch.code_max)
-            group.attrs["t_start_s"] = float(t_start)
-            group.attrs["dt_s"] = float(dt)
-            group.attrs["probes_json"] = probes_json
-            group.attrs["attrs_json"] = attrs_json
-            group.attrs["content_sha256"] = digest
-            group.attrs["complete"] = True
+                _write_new_attrs(ds, {"gain": float(ch.gain), "offset": float(ch.offset),
+                                      "code_min": int(ch.code_min),
+                                      "code_max": int(ch.code_max)})
+            _write_new_attrs(group, {"t_start_s": float(t_start), "dt_s": float(dt),
+                                     "probes_json": probes_json, "attrs_json": attrs_json,
+                                     "content_sha256": digest})
+            _write_new_attrs(group, {"complete": True})  # last: the shot is now visible
         except StoreError:
             raise
         except (OSError, ValueError, TypeError, KeyError) as exc:
             raise StoreError(f"cannot write shot {key} to {self.path}: {exc}") from exc
-        self.flush()
+        self.flush(wait=wait)
         if key.isdigit() and self._next_number is not None:
             self._next_number = max(self._next_number, int(key) + 1)
         return f"{SHOTS_GROUP}/{key}"

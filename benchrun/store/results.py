@@ -17,9 +17,15 @@ A SQLite file is the default (``sqlite:///<run_dir>/results.db``); a PostgreSQL 
     ``created``, ``signer``, ``disposition``, ``details`` (JSON text).
 
 Every write is its own transaction, committed before the method returns. SQLite runs in WAL
-mode with ``synchronous=FULL`` so a committed shot survives a crash or power loss (SQLite
-documentation, "Write-Ahead Logging" and "PRAGMA synchronous"). Every SQLAlchemy error is
-translated to :class:`~benchrun.errors.StoreError`.
+mode; with ``durability="power-loss"`` (the default) ``synchronous=FULL``, so a committed
+shot survives a crash or power loss; with ``durability="process"`` ``synchronous=NORMAL``,
+which in WAL mode skips the sync at each commit: a committed shot survives the *process*
+being killed but may roll back after a power loss or operating-system crash, and the
+database stays consistent either way (SQLite documentation, "Write-Ahead Logging" and
+"PRAGMA synchronous": "transactions are durable across application crashes regardless of
+the synchronous setting or journal mode"). A PostgreSQL server keeps its own durability
+settings in both modes (a commit is acknowledged by the server, so killing the bench process
+loses nothing). Every SQLAlchemy error is translated to :class:`~benchrun.errors.StoreError`.
 
 Times are ISO 8601 UTC strings; they sort chronologically as text on every backend.
 """
@@ -42,6 +48,7 @@ from sqlalchemy.exc import ArgumentError, IntegrityError, NoSuchModuleError, SQL
 from benchrun.errors import StoreError
 from benchrun.records import ShotResult
 from benchrun.store.canonical import canonical_json
+from benchrun.store.raw import DURABILITY_POWER_LOSS, check_durability
 from benchrun.store.schema import (
     SHOT_COLUMNS,
     ReportRecord,
@@ -67,15 +74,21 @@ def normalize_url(url: str) -> str:
     return url
 
 
-def _set_sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
-    cursor = dbapi_connection.cursor()
-    try:
-        cursor.execute("PRAGMA journal_mode=WAL")
-        cursor.execute("PRAGMA synchronous=FULL")
-        cursor.execute("PRAGMA foreign_keys=ON")
-        cursor.execute("PRAGMA busy_timeout=10000")
-    finally:
-        cursor.close()
+def _sqlite_pragmas(durability: str) -> Any:
+    """A connect hook setting WAL mode and the sync level of ``durability``."""
+    synchronous = "FULL" if durability == DURABILITY_POWER_LOSS else "NORMAL"
+
+    def set_pragmas(dbapi_connection: Any, _record: Any) -> None:
+        cursor = dbapi_connection.cursor()
+        try:
+            cursor.execute("PRAGMA journal_mode=WAL")
+            cursor.execute(f"PRAGMA synchronous={synchronous}")
+            cursor.execute("PRAGMA foreign_keys=ON")
+            cursor.execute("PRAGMA busy_timeout=10000")
+        finally:
+            cursor.close()
+
+    return set_pragmas
 
 
 class ResultsStore:
@@ -90,6 +103,9 @@ class ResultsStore:
         written to ``run.json``: libpq reads ``PGPASSWORD`` and ``~/.pgpass``.
     create
         Create missing tables (default). The SQLite file's folder must exist.
+    durability
+        ``"power-loss"`` (default) or ``"process"``: how far a committed write must have gone
+        before a method returns (see the module docstring; only SQLite is affected).
 
     Raises
     ------
@@ -97,8 +113,10 @@ class ResultsStore:
         Bad URL, missing driver, unreachable server or any database error.
     """
 
-    def __init__(self, url: str, *, create: bool = True) -> None:
+    def __init__(self, url: str, *, create: bool = True,
+                 durability: str = DURABILITY_POWER_LOSS) -> None:
         self.url = normalize_url(str(url))
+        self.durability = check_durability(durability)
         try:
             parsed = make_url(self.url)
         except ArgumentError as exc:
@@ -120,8 +138,9 @@ class ResultsStore:
                         "postgresql:// and postgresql+psycopg:// URLs)")
             raise StoreError(f"cannot use database URL {self.public_url}: {exc}{hint}") from exc
         if self.backend == "sqlite":
-            event.listen(engine, "connect", _set_sqlite_pragmas)
+            event.listen(engine, "connect", _sqlite_pragmas(self.durability))
         self._engine = engine
+        self._insert_shot = insert(shots_table)  # compiled once, reused for every shot
         if create:
             with self._errors(f"cannot prepare the results tables in {self.public_url}"):
                 try:
@@ -329,7 +348,7 @@ class ResultsStore:
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         try:
             with self._engine.begin() as conn:
-                conn.execute(insert(shots_table).values(**row))
+                conn.execute(self._insert_shot, row)
             return True
         except IntegrityError as exc:
             with self._begin("cannot check an existing shot") as conn:
@@ -391,6 +410,20 @@ class ResultsStore:
         if max_attempts is None:
             return set(attempts)
         return {k for k, v in attempts.items() if any(v) or len(v) >= max_attempts}
+
+    def next_attempts(self, run_id: str) -> dict[tuple[str, int, int], int]:
+        """``{(serial, point_index, repeat): next attempt number}`` of every test of a run
+        with a stored shot (one query; a test not listed starts at attempt 0)."""
+        c = shots_table.c
+        with self._begin(f"cannot read the shots of run {run_id!r}") as conn:
+            rows = conn.execute(
+                select(c.serial, c.point_index, c.repeat, c.attempt).where(c.run_id == run_id)
+            ).all()
+        out: dict[tuple[str, int, int], int] = {}
+        for serial, point_index, repeat, attempt in rows:
+            key = (serial, int(point_index), int(repeat))
+            out[key] = max(out.get(key, 0), int(attempt) + 1)
+        return out
 
     def next_attempt(self, run_id: str, serial: str, point_index: int, repeat: int) -> int:
         """The attempt number for the next shot of this test (0 when none is stored)."""
