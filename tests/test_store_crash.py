@@ -166,6 +166,9 @@ def test_kill_9_loses_only_the_shot_in_flight(tmp_path, request, backend):
     _check_store(raw_path, url, acknowledged)
     with ResultsStore(url) as store, RawRecord(raw_path, "r") as raw:
         shots = store.shots(RUN_ID)
-        assert len(shots) == SERIALS * POINTS * REPEATS == len(acknowledged)
+        assert len(shots) == SERIALS * POINTS * REPEATS
+        # a kill that lands after a commit completed but before the child printed its line
+        # leaves a stored shot nobody acknowledged (at most one per kill); never the reverse
+        assert len(shots) - kills <= len(acknowledged) <= len(shots)
         # raw shots without a row can only come from a kill between the two writes
         assert len(shots) <= len(raw.keys()) <= len(shots) + kills
