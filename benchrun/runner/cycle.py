@@ -1,9 +1,12 @@
 """The shot cycle: settle a temperature, trim the first pulse, fire, store, verify, retry.
 
-Every shot goes to the raw record (flushed and fsync-ed) and then to the results DB (its own
-committed transaction) before the next shot is fired, so a crash loses at most the shot in
-flight. An instrument fault during a shot is retried once with every setting sent again; a
-second fault ends the run (the caller brings the bench to the safe state). An *invalid* shot
+Every shot goes to the raw record (flushed, and fsync-ed unless the run's durability is
+``"process"``) and then to the results DB (its own committed transaction) before the next
+shot is fired, so a crash loses at most the shot in flight. The raw record's ``fsync`` runs on
+a background thread while the shot is analysed; the DB row is written only once the raw shot
+is durable. An instrument fault during a shot is retried once with every
+setting sent again; a second fault ends the run (the caller brings the bench to the safe
+state). An *invalid* shot
 (measured conditions out of tolerance, no event, clipped diode channel) is stored and fired
 again up to ``retry_invalid`` times, with the first pulse corrected from the measured current
 or the scope ranges widened after clipping.
@@ -73,6 +76,8 @@ class ShotCycle:
         self.inductance: float | None = None
         self.progress = RunProgress(0, enabled=False)
         self.max_attempts = 1 + self.sequence.retry_invalid
+        #: next attempt number per (serial, point index, repeat); loaded from the DB once
+        self._attempts: dict[tuple[str, int, int], int] | None = None
 
     # --- resume ----------------------------------------------------------------------------
 
@@ -127,8 +132,7 @@ class ShotCycle:
                                f"{point.label.split(' @ ')[0]} #{planned.repeat + 1}")
         self.station.select(planned.serial)
         self._trim(point)
-        attempt = self.store.next_attempt(self.outcome.run_id, planned.serial, point.index,
-                                          planned.repeat)
+        attempt = self._next_attempt(planned.serial, point.index, planned.repeat)
         result = None
         while attempt < self.max_attempts:
             result = self._fire_and_store(planned, attempt)
@@ -142,6 +146,14 @@ class ShotCycle:
         if spacing > 0:
             self.station.clock.sleep(spacing)
         return result
+
+    def _next_attempt(self, serial: str, point_index: int, repeat: int) -> int:
+        """Attempt number of the next shot of a test: read from the DB once (shots stored by
+        an interrupted run count), then counted here (this process is the run's only
+        writer)."""
+        if self._attempts is None:
+            self._attempts = self.store.next_attempts(self.outcome.run_id)
+        return self._attempts.get((serial, point_index, repeat), 0)
 
     def _spec(self, point: TestPoint) -> Any:
         from benchrun.runner.plan import expand_with_specs
@@ -309,11 +321,16 @@ class ShotCycle:
             "ranges": {name: [r.low, r.high] for name, r in ranges.items()},
         }  # fmt: skip
         key = shot_key(point.index, planned.serial, planned.repeat, attempt)
+        # handed to the OS now (kill -9 safe); its fsync runs while the shot is analysed
         ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
-                                   context.attrs(settings))
+                                   context.attrs(settings), wait=False)
         result = build_result(context, capture.t_start, capture.dt, channels, probes,
                               self.sequence, ref)
-        self.store.add_shot(result)
+        self.raw.wait_durable()
+        self.store.add_shot(result)  # only once the raw shot is durable
+        if self._attempts is not None:
+            identity = (planned.serial, point.index, planned.repeat)
+            self._attempts[identity] = max(self._attempts.get(identity, 0), attempt + 1)
         self._learn(point, result)
         self.outcome.shots_stored += 1
         self.outcome.shots_valid += int(result.valid)

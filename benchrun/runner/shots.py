@@ -13,7 +13,6 @@ import math
 import re
 from collections.abc import Mapping
 from dataclasses import dataclass
-from functools import reduce
 from typing import Any
 
 import numpy as np
@@ -77,9 +76,15 @@ def adc_bits(channel: ChannelData) -> float:
     A family that left-justifies an 8-bit ADC into 16-bit words has a code step of 256;
     the step is the greatest common divisor of the differences between codes seen.
     """
-    codes = np.unique(np.asarray(channel.codes, dtype=np.int64))
-    diffs = np.diff(codes)
-    step = int(reduce(math.gcd, diffs.tolist(), 0)) if diffs.size else 1
+    codes = np.asarray(channel.codes)
+    if codes.size and codes.dtype.kind in "iu" and codes.dtype.itemsize <= 2:
+        # the values present, sorted, from a histogram: no sort of the whole record
+        low = int(codes.min())
+        values = np.flatnonzero(np.bincount((codes.astype(np.int32) - low).ravel())) + low
+    else:
+        values = np.unique(codes.astype(np.int64))
+    diffs = np.diff(values)
+    step = int(np.gcd.reduce(diffs)) if diffs.size else 1
     step = max(step, 1)
     levels = (channel.code_max - channel.code_min) / step + 1
     return round(math.log2(max(levels, 2.0)), 2)
