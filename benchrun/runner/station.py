@@ -79,10 +79,16 @@ class Station:
             self.close()
             raise
         self.identities: dict[str, InstrumentIdentity] = {}
+        # What was last sent to (or read from) the instruments, so that an unchanged setting
+        # costs no round trip. Forgotten after an instrument fault (forget_settings) and
+        # whenever any session had to reconnect (the instrument may have restarted).
         self._scope_setup: tuple | None = None
         self._pulse_setup: tuple | None = None
         self._gate: float | None = None
         self._voltage: float | None = None
+        self._supply_on = False
+        self._pulse_on = False
+        self._epoch = self._reconnects()
 
     # --- lifecycle -----------------------------------------------------------------------
 
@@ -122,31 +128,57 @@ class Station:
     def handler(self) -> Any | None:
         return self.drivers.get("handler")
 
+    def _reconnects(self) -> tuple[int, ...]:
+        return tuple(int(getattr(d.session, "reconnects", 0)) for d in self.drivers.values())
+
+    def _check_sessions(self) -> None:
+        """Forget the remembered settings when any session reconnected since they were
+        sent: the instrument may have restarted and lost them."""
+        epoch = self._reconnects()
+        if epoch != self._epoch:
+            log.info("an instrument connection was re-opened: sending every setting again")
+            self.forget_settings()
+            self._epoch = epoch
+
     # --- bus -------------------------------------------------------------------------------
 
     def energise(self, volts: float, *, tolerance: float = 0.01) -> float:
         """Supply on at ``volts``; wait until the measured bus is within tolerance.
 
         Returns the measured bus voltage. Raises RunError when it is not reached within the
-        bench's discharge timeout (the same allowance for charging).
+        bench's discharge timeout (the same allowance for charging). The supply's output
+        state is asked when the station has not switched it on itself, and again whenever
+        the bus is still out of tolerance after one poll (a supply that switched itself off
+        is switched on again, as before every shot).
         """
+        self._check_sessions()
         if self._voltage != volts:
             self.supply.set_voltage(volts)
             self._voltage = volts
-        if not self.supply.is_output_on():
-            self.supply.output(True)
+        if not self._supply_on:
+            self._ensure_supply_on()
         band = max(tolerance * volts, 1.0)
         deadline = self.clock.monotonic() + self.bench.safety.discharge_timeout
+        polls = 0
         while True:
             measured = self.supply.measure_voltage()
             if abs(measured - volts) <= band:
                 return measured
             if self.clock.monotonic() > deadline:
                 raise RunError(f"bus voltage {measured:.1f} V did not reach {volts:g} V")
+            if polls == 1:
+                self._ensure_supply_on()
+            polls += 1
             self.clock.sleep(BUS_POLL_S)
+
+    def _ensure_supply_on(self) -> None:
+        if not self.supply.is_output_on():
+            self.supply.output(True)
+        self._supply_on = True
 
     def discharge(self) -> float:
         """Supply off; wait until the measured bus is touch-safe. Returns the voltage."""
+        self._supply_on = False
         self.supply.output(False)
         limit = self.bench.safety.touch_safe_voltage
         deadline = self.clock.monotonic() + self.bench.safety.discharge_timeout
@@ -171,8 +203,11 @@ class Station:
         """Put ``serial`` in the fixture; the bus is discharged first (no handling live)."""
         if self.handler is None:
             return
+        # asked before every shot, never remembered: the device in the fixture must be the
+        # one the shot is recorded for
         if self.handler.selected() == serial:
             return
+        self._pulse_on = False
         self.pulse.output(False)
         volts = self.discharge()
         log.info("bus at %.1f V; handler selects %s", volts, serial)
@@ -224,6 +259,7 @@ class Station:
     def configure_scope(self, plan: PulsePlan, ranges: dict[str, SignalRange],
                         bus_voltage_V: float) -> None:
         """Ranges, sampling and trigger; only sent when they changed."""
+        self._check_sessions()
         probes = self.bench.probes
         channels = {name: (r.span, r.center, probes[name].scale) for name, r in ranges.items()}
         # trigger on the first turn-on: the diode voltage falls to -VR when the switch closes
@@ -239,6 +275,7 @@ class Station:
     def configure_pulse(self, plan: PulsePlan, gate_resistance_ohm: float | None,
                         *, single: bool = False) -> None:
         """Pulse timing and gate resistance; only sent when they changed."""
+        self._check_sessions()
         if gate_resistance_ohm is not None and gate_resistance_ohm != self._gate:
             self.pulse.set_gate_resistance(gate_resistance_ohm)
             self._gate = gate_resistance_ohm
@@ -249,10 +286,18 @@ class Station:
             self._pulse_setup = setup
 
     def fire(self, channels: list[str], trigger_timeout_s: float) -> Capture:
-        """Arm, fire, wait for the trigger and read every channel."""
+        """Arm, fire, wait for the trigger and read every channel.
+
+        The pulse output is asked for (and switched on) unless the station switched it on
+        itself since the last fault or reconnect.
+        """
+        self._check_sessions()
         self.scope.arm_single()
-        if not self.pulse.is_output_on():
-            self.pulse.output(True)
+        self._check_sessions()  # arming may have re-opened a connection
+        if not self._pulse_on:
+            if not self.pulse.is_output_on():
+                self.pulse.output(True)
+            self._pulse_on = True
         self.pulse.fire()
         if not self.scope.wait_triggered(trigger_timeout_s):
             raise InstrumentTimeout(f"the scope did not trigger within {trigger_timeout_s:g} s "
@@ -262,16 +307,20 @@ class Station:
         return Capture(first.t_start, first.dt, traces)
 
     def forget_settings(self) -> None:
-        """After an instrument fault: send every setting again before the next shot."""
+        """After an instrument fault: send (or ask) every setting again before the next
+        shot."""
         self._scope_setup = None
         self._pulse_setup = None
         self._gate = None
         self._voltage = None
+        self._supply_on = False
+        self._pulse_on = False
 
     # --- safe state -----------------------------------------------------------------------------
 
     def make_safe(self) -> SafeStateReport:
         """Pulse output off, supply off, wait for a touch-safe bus (never raises)."""
+        self.forget_settings()
         extra = ()
         if self.thermal is not None:
             thermal = self.thermal
