@@ -251,14 +251,21 @@ class Scope(_Driver):
         return bool(self._ask("acquisition_done"))
 
     def wait_triggered(self, timeout_s: float, poll_s: float = 0.002) -> bool:
-        """Poll until the armed acquisition completed; False when it did not within timeout."""
-        deadline = time.monotonic() + timeout_s
+        """Poll until the armed acquisition completed; False when it did not within timeout.
+
+        The interval between polls grows with the time already waited (a tenth of it, from
+        ``poll_s / 8`` up to ``poll_s``): a quick acquisition is seen soon after it completed,
+        a long one is not asked about hundreds of times.
+        """
+        start = time.monotonic()
+        deadline = start + timeout_s
         while True:
             if self.acquisition_done():
                 return True
-            if time.monotonic() >= deadline:
+            now = time.monotonic()
+            if now >= deadline:
                 return False
-            time.sleep(poll_s)
+            time.sleep(min(poll_s, max(poll_s / 8, 0.1 * (now - start)), deadline - now))
 
     def read_channel(self, name: str | int) -> ChannelTrace:
         """Transfer one channel of the last acquisition (binary block) with its scaling."""
