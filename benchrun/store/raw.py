@@ -330,6 +330,7 @@ class RawRecord:
         self._file: h5py.File | None = None
         self._syncer: ThreadPoolExecutor | None = None  # background fsync (see append_shot)
         self._pending_sync: Future[None] | None = None
+        self._shots_group: h5py.Group | None = None
         self._next_number: int | None = None  # cache of next_key(); None = not yet scanned
         self._open()
 
@@ -385,6 +386,7 @@ class RawRecord:
                     self.flush()
             with contextlib.suppress(Exception):
                 self.wait_durable()
+            self._shots_group = None
             self._file.close()
             self._file = None
         if self._syncer is not None:
@@ -405,7 +407,10 @@ class RawRecord:
 
     @property
     def _shots(self) -> h5py.Group:
-        return self._f[SHOTS_GROUP]
+        group = self._shots_group
+        if group is None:  # looked up once per open file, not per shot (reset by close)
+            group = self._shots_group = self._f[SHOTS_GROUP]
+        return group
 
     def flush(self, *, wait: bool = True) -> None:
         """Write everything to the operating system (``H5Fflush``) and, with durability

@@ -269,7 +269,10 @@ class ResultsStore:
     # -- shots ---------------------------------------------------------------------------
     @staticmethod
     def _shot_row(shot: ShotResult) -> dict[str, Any]:
-        data = shot.to_dict()
+        # the values of shot.to_dict(), without its deep copy (everything is serialised here)
+        data = {f.name: getattr(shot, f.name) for f in fields(shot)}
+        data["point"] = {f.name: getattr(shot.point, f.name) for f in fields(shot.point)}
+        data["flags"] = list(shot.flags)
         point = data["point"]
         extra = {k: v for k, v in data.items() if k not in SHOT_COLUMNS}
         return {
