@@ -23,31 +23,52 @@ Turn-on energy ``eon_J``
     the piecewise-linear interpolants of the samples: on a segment of length h,
     ``∫ v·i = h·(2·v0·i0 + v0·i1 + v1·i0 + 2·v1·i1)/6``.
 Ideal-diode turn-on ``eon_ideal_J`` (our model; stated on the report)
-    The energy the switch would dissipate with a diode that has no stored charge, at the same
-    di/dt and dv/dt:
+    The energy the same switch would dissipate with a diode that holds no charge. Basis: the
+    inductive-load turn-on of a MOS-gated switch (gate-charge description: Baliga, *Fundamentals
+    of Power Semiconductor Devices*, ch. 6; idealised turn-on waveforms with diode recovery:
+    Mohan, Undeland, Robbins, *Power Electronics*, ch. 2 and 22 — from memory). While the
+    current rises the gate charges Ciss, ``di/dt = gm·Ig/Ciss``; the voltage falls once the
+    gate current goes into the Miller capacitance. With an ideal diode that happens when the
+    switch current reaches the load current ``IL`` (= IF). With a real diode the gate goes on
+    charging until the current stops rising (the diode starts to support voltage) and gives
+    that charge back as the current decays. At a given switch voltage the Miller charge is the
+    same with either diode, so the real switch reaches each voltage level later by the time
+    the gate needed to raise the current from IL to its present value at the rise rate:
 
-    * current rise (from ``t_eon_start_s`` to the diode current's zero crossing ``t0``): taken
-      as measured — until t0 the diode still conducts forward, so recovery plays no part yet and
-      the measured rise already has the real di/dt and the real stray-inductance voltage drop;
-    * voltage fall: with an ideal diode the switch voltage would start falling at t0, from its
-      value ``V0 = v_sw(t0)``, while the switch carries just the load current IF; modelled as a
-      linear fall at the measured rate ``dv/dt`` down to the window end
-      ``Vend = voltage_end_fraction·Voff``, which contributes ``IF·(V0² − Vend²)/(2·dv/dt)``.
-      ``dv/dt`` is measured on the real fall between ``fall_high_fraction·V0`` and
-      ``fall_low_fraction·V0`` (60 % → 20 %): this band keeps a recovery snap or a
-      capacitive slow-down at the top of the fall, and the low-voltage tail at the bottom,
-      out of the rate. The band is our choice, checked against ngspice runs of the same
-      circuit with a charge-free diode (tests/test_switching_ngspice.py).
+        ``ΔT(t) = (i_sw(t) − IL) / (di/dt)``    (first order in the gate-charge balance)
 
-    For a linear (Miller-plateau-limited) voltage fall the model is exact. What it leaves out
-    is counted in the recovery part, so that part is an upper-side figure: a delay between
-    the end of the current rise and the start of the voltage fall, the charging of fixture
-    capacitance across the diode, and a fall that slows down near the end.
+    ``di/dt`` is the commutation rate (``recovery.didt_A_per_s``; measured on the switch
+    current when absent). The model is then:
+
+    * current rise (``t_eon_start_s`` → the diode current's zero crossing ``t0``): as measured —
+      until t0 the diode conducts forward and recovery plays no part;
+    * voltage fall: for each voltage level ``v`` below ``V0 = v_sw(t0)`` the real switch falls
+      through it (first passage) at ``T(v)`` carrying ``i_sw``; the ideal switch falls through
+      it at ``T(v) − ΔT`` carrying IL. ``IL·∫ v dt`` over these ideal level-crossing times, down
+      to the window end ``Vend``, is the ideal fall energy (exact trapezoids: on a sampled
+      segment v and the ideal time are both linear);
+    * where the circuit, not the gate, drives the fall (a snappy diode pulls the switch voltage
+      down through the loop inductance: a 5 % band of the fall traversed faster than
+      ``forced_rate_factor`` × the duration-weighted median rate), the gate-charge relation
+      does not hold there (the switch's output-capacitance current is not the load current);
+      the ideal level-crossing times are then bounded by the physics of a Miller fall that
+      never speeds up as the voltage falls (Cgd grows at low voltage): ``T_ideal(y)/y`` is made
+      non-decreasing in the fall depth ``y = V0 − v``.
+
+    Checked against ngspice runs of the same double-pulse circuits with a charge-free diode
+    (tests/test_switching_ngspice.py). Second-order effects left out: the gate current is
+    lower while the switch carries the extra current (adds delay: the recovery part comes out
+    somewhat low when Irrm is comparable to the switch's current headroom gm·(Vgg − Vplateau)),
+    a square-law channel (less gate charge per ampere: somewhat high), and the current of the
+    switch's output capacitance during a fall much faster than the gate-driven one.
 
 Recovery part ``eon_recovery_J``
-    ``eon_J − eon_ideal_J``: the extra switch energy caused by the recovery current and by the
-    delay of the voltage fall while the diode recovers (ta). For a SiC Schottky diode it is the
-    energy of charging the diode capacitance. A negative value is kept and flagged.
+    ``eon_J − eon_ideal_J`` = ``∫ v_sw·(i_sw − IL) dt`` over the fall (the recovery or
+    displacement current passing the switch at the voltage it holds) + ``IL·∫ ΔT dv`` (the
+    load current held longer at each voltage level). For a capacitive (SiC Schottky) diode the
+    first term is about ``Vbus·Qc − Ec`` (charge drawn from the bus minus the energy left in
+    the diode capacitance), the second the delay of the fall while the switch current rises to
+    supply the displacement current. A negative value is kept and flagged.
 Estimate ``eon_recovery_estimate_J``
     ``VR·Qrr`` (``recovery.vr_V × recovery.qrr_C``): the recovered charge passes through the
     switch while it still holds about the bus voltage (common practice; an upper-side estimate
@@ -74,11 +95,16 @@ FLAG_FALL_NOT_FOUND = "switch_voltage_fall_not_found"
 FLAG_VOFF_FROM_DIODE = "switch_off_voltage_from_diode"
 FLAG_NEGATIVE = "eon_recovery_negative"
 FLAG_NO_ESTIMATE = "eon_recovery_estimate_unavailable"
+FLAG_DIDT_NOT_FOUND = "switch_didt_not_found"
 
 #: Fewest samples used to read the switch's off-state voltage (common practice).
 MIN_OFF_SAMPLES = 8
 #: First forward span searched for the window end; grown by 4× until found.
 INITIAL_SPAN = 65_536
+#: Bands the voltage fall is divided into to find circuit-driven parts (5 % each).
+FALL_BANDS = 20
+#: Top bands left out of the reference (median) fall rate: they hold the current-rise delay.
+REFERENCE_SKIP_BANDS = 2
 
 
 class RecoveryLike(Protocol):
@@ -101,17 +127,17 @@ class SwitchingOptions:
         Window start: switch current rises through this fraction of IF (0.10).
     voltage_end_fraction
         Window end: switch voltage falls through this fraction of its off-state voltage (0.02).
-    fall_high_fraction, fall_low_fraction
-        Levels, as fractions of ``v_sw(t0)``, between which the voltage-fall rate is measured
-        (0.6 / 0.2: away from a snap at the top and a tail at the bottom of the fall).
+    forced_rate_factor
+        A 5 % band of the voltage fall traversed faster than this multiple of the fall's
+        duration-weighted median rate is taken as driven by the circuit (diode snap through
+        the loop inductance), not by the gate (3.0; our choice, see the module docstring).
     off_voltage_V
         Use this switch off-state (bus) voltage instead of reading it from the capture.
     """
 
     current_start_fraction: float = 0.10
     voltage_end_fraction: float = 0.02
-    fall_high_fraction: float = 0.6
-    fall_low_fraction: float = 0.2
+    forced_rate_factor: float = 3.0
     off_voltage_V: float | None = None
 
     def __post_init__(self) -> None:
@@ -119,12 +145,9 @@ class SwitchingOptions:
             value = getattr(self, name)
             if not 0.0 < value < 1.0:
                 raise ConfigError(f"must be between 0 and 1, got {value!r}", field=name)
-        if not 0.0 < self.fall_low_fraction < self.fall_high_fraction < 1.0:
-            raise ConfigError(
-                "need 0 < fall_low_fraction < fall_high_fraction < 1, got "
-                f"{self.fall_low_fraction} and {self.fall_high_fraction}",
-                field="fall_low_fraction/fall_high_fraction",
-            )
+        if not (math.isfinite(self.forced_rate_factor) and self.forced_rate_factor > 1.0):
+            raise ConfigError(f"must be a number above 1, got {self.forced_rate_factor!r}",
+                              field="forced_rate_factor")
         if self.off_voltage_V is not None and not (
             math.isfinite(self.off_voltage_V) and self.off_voltage_V > 0
         ):
@@ -136,9 +159,11 @@ class SwitchingOptions:
 class SwitchingMetrics:
     """Result of :func:`analyze_switch_turn_on` (SI units; ``None`` where not found).
 
-    ``voff_V`` is the switch off-state voltage the window end refers to and ``dvdt_V_per_s``
-    the measured voltage-fall rate used by the ideal-diode model; both are kept as attributes
-    for the report and are not part of :meth:`to_dict`.
+    ``voff_V`` is the switch off-state voltage the window end refers to, ``dvdt_V_per_s`` the
+    duration-weighted median rate of the measured voltage fall, ``didt_A_per_s`` the
+    commutation rate the ideal-diode model used and ``fall_forced`` whether part of the fall
+    was found circuit-driven (see the module docstring); these are attributes for the report,
+    not part of :meth:`to_dict`.
     """
 
     eon_J: float | None
@@ -149,6 +174,8 @@ class SwitchingMetrics:
     t_eon_end_s: float | None
     voff_V: float | None = None
     dvdt_V_per_s: float | None = None
+    didt_A_per_s: float | None = None
+    fall_forced: bool = False
     flags: tuple[str, ...] = field(default=())
 
     #: Keys of :meth:`to_dict` besides ``flags``.
@@ -409,14 +436,18 @@ def analyze_switch_turn_on(
     iw = np.asarray(i[a:b], dtype=np.float64)
     eon = integrate_product(tw, vw, iw, t_a, t_b)
 
-    # --- ideal-diode turn-on: measured rise to t0, linear fall at the measured dv/dt ---------
+    # --- ideal-diode turn-on: measured rise to t0, gate-charge-shifted fall (docstring) -----
     e_rise = integrate_product(tw, vw, iw, t_a, min(t0, t_b))
-    v0 = _interp_at(t0, tw, vw)
-    dvdt = _fall_rate(tw, vw, t0, t_b, v0, opts)
-    if dvdt is None:
-        flags.append(FLAG_FALL_NOT_FOUND)
+    didt = _commutation_rate(recovery, tw, iw, t0, if_A)
+    if didt is None:
+        flags.append(FLAG_DIDT_NOT_FOUND)
         return result(eon_J=eon, t_eon_start_s=t_a, t_eon_end_s=t_b, voff_V=voff)
-    e_fall = if_A * max(v0 * v0 - level_v * level_v, 0.0) / (2.0 * dvdt)
+    fall = _ideal_fall(tw, vw, iw, t0, t_b, if_A, level_v, didt, opts)
+    if fall is None:
+        flags.append(FLAG_FALL_NOT_FOUND)
+        return result(eon_J=eon, t_eon_start_s=t_a, t_eon_end_s=t_b, voff_V=voff,
+                      didt_A_per_s=didt)
+    e_fall, dvdt, forced = fall
     eon_ideal = e_rise + e_fall
     eon_recovery = eon - eon_ideal
     if eon_recovery < 0:
@@ -429,6 +460,8 @@ def analyze_switch_turn_on(
         t_eon_end_s=t_b,
         voff_V=voff,
         dvdt_V_per_s=dvdt,
+        didt_A_per_s=didt,
+        fall_forced=forced,
     )
 
 
@@ -509,30 +542,92 @@ def _off_voltage(
     return None
 
 
-def _fall_rate(
-    tw: np.ndarray, vw: np.ndarray, t0: float, t_end: float, v0: float, opts: SwitchingOptions
+def _commutation_rate(
+    recovery: RecoveryLike, tw: np.ndarray, iw: np.ndarray, t0: float, if_A: float
 ) -> float | None:
-    """Voltage-fall rate between ``fall_high·V0`` and ``fall_low·V0`` on the final fall (V/s)."""
-    if not v0 > 0:
+    """Switch-current rise rate at the commutation (A/s).
+
+    ``recovery.didt_A_per_s`` when known (measured across t0); else the mean rate of the
+    switch current from 50 % of IF to t0.
+    """
+    didt = getattr(recovery, "didt_A_per_s", None)
+    if didt is not None and math.isfinite(didt) and didt > 0:
+        return float(didt)
+    k0 = int(np.searchsorted(tw, t0, side="right")) - 1
+    below = np.flatnonzero(iw[: k0 + 1] < 0.5 * if_A)
+    if not below.size or below[-1] + 1 >= tw.size:
         return None
-    hi = opts.fall_high_fraction * v0
-    lo = opts.fall_low_fraction * v0
-    m = np.flatnonzero(tw >= t0)
-    if m.size < 2:
+    j = int(below[-1])
+    t_half = _crossing(tw[j], tw[j + 1], iw[j], iw[j + 1], 0.5 * if_A)
+    if not t0 > t_half:
         return None
-    k = int(m[0])
-    below = np.flatnonzero(vw[k:] <= lo)
-    if not below.size:
+    return 0.5 * if_A / (t0 - t_half)
+
+
+def _ideal_fall(
+    tw: np.ndarray,
+    vw: np.ndarray,
+    iw: np.ndarray,
+    t0: float,
+    t_end: float,
+    if_A: float,
+    v_end: float,
+    didt: float,
+    opts: SwitchingOptions,
+) -> tuple[float, float, bool] | None:
+    """Ideal-diode fall energy ``IL·∫ v dt``, the median fall rate and the forced-fall finding.
+
+    Works on the first passages of the measured fall through each voltage level (the samples
+    that set a new running minimum, plus t0 and the window end), shifted earlier by
+    ``ΔT = (i_sw − IL)/(di/dt)`` (module docstring).
+    """
+    inner = (tw > t0) & (tw < t_end)
+    t = np.concatenate(([t0], tw[inner], [t_end]))
+    v = np.concatenate(([np.interp(t0, tw, vw)], vw[inner], [v_end]))
+    i = np.concatenate(([np.interp(t0, tw, iw)], iw[inner], [np.interp(t_end, tw, iw)]))
+    v0 = float(v[0])
+    if not v0 > v_end:
         return None
-    k_lo = k + int(below[0])
-    if k_lo == 0:
+    # first passages: samples where the running minimum falls (below V0)
+    running = np.minimum.accumulate(v)
+    new_min = np.concatenate(([True], running[1:] < running[:-1]))
+    keep = new_min & (v <= v0)
+    t, v, i = t[keep], v[keep], i[keep]
+    if t.size < 2:
         return None
-    t_lo = _crossing(tw[k_lo - 1], tw[k_lo], vw[k_lo - 1], vw[k_lo], lo)
-    above = np.flatnonzero(vw[:k_lo] >= hi)
-    if not above.size:
-        return None
-    k_hi = int(above[-1])
-    t_hi = _crossing(tw[k_hi], tw[k_hi + 1], vw[k_hi], vw[k_hi + 1], hi)
-    if t_lo <= t_hi:
-        return None
-    return float((hi - lo) / (t_lo - t_hi))
+    depth = v0 - v  # y = V0 − v, increasing, 0 at t0
+    elapsed = t - t0
+    t_ideal = elapsed - (i - if_A) / didt
+    t_ideal[0] = 0.0
+
+    rate, forced = _forced_bands(depth, elapsed, opts.forced_rate_factor)
+    if forced:
+        # a Miller fall never speeds up as the voltage falls: T_ideal(y)/y non-decreasing
+        slope = t_ideal[1:] / depth[1:]
+        slope = np.minimum.accumulate(slope[::-1])[::-1]
+        t_ideal[1:] = np.minimum(t_ideal[1:], depth[1:] * slope)
+    t_ideal = np.maximum.accumulate(np.maximum(t_ideal, 0.0))
+    energy = if_A * float(np.sum(0.5 * (v[1:] + v[:-1]) * np.diff(t_ideal)))
+    return energy, rate, forced
+
+
+def _forced_bands(depth: np.ndarray, elapsed: np.ndarray, factor: float) -> tuple[float, bool]:
+    """Median fall rate (duration-weighted, top bands left out) and whether any band is forced.
+
+    The fall ``0 … depth[-1]`` is cut into :data:`FALL_BANDS` equal voltage bands; the time
+    the measured fall takes across each is read from the first-passage curve.
+    """
+    total = float(depth[-1])
+    edges = np.linspace(0.0, total, FALL_BANDS + 1)
+    times = np.interp(edges, depth, elapsed)
+    dur = np.diff(times)
+    width = total / FALL_BANDS
+    rate = np.full(FALL_BANDS, np.inf)
+    np.divide(width, dur, out=rate, where=dur > 0)
+    ref_rate, ref_dur = rate[REFERENCE_SKIP_BANDS:], dur[REFERENCE_SKIP_BANDS:]
+    order = np.argsort(ref_rate)
+    cumulative = np.cumsum(ref_dur[order])
+    if not cumulative[-1] > 0:
+        return math.inf, False
+    median = float(ref_rate[order][int(np.searchsorted(cumulative, 0.5 * cumulative[-1]))])
+    return median, bool(np.any(rate > factor * median))
