@@ -25,6 +25,13 @@ setting cost only digitising and transfer. Both cases are measured and printed: 
 each device is shot once per condition) and *cached* (repeats at one condition, the least
 favourable case for the ratio).
 
+Both durability modes of the store are measured (``RunOptions.durability``):
+*power-loss* (the default: every shot's raw record and results row are synced to disk before
+the next shot; the raw record's ``fsync`` runs while the shot is analysed) and *process*
+(every shot handed to the operating system before the next shot: safe against ``kill -9``,
+not against a power cut). The run folders go to the system temp folder or ``--out-dir``;
+the disk under it sets the cost of every sync.
+
 Goal: overhead < 10 % of the acquisition time. Prints the figures and a breakdown; the
 machine's load average is printed too (other processes on the machine inflate both).
 
