@@ -71,9 +71,12 @@ Recovery part ``eon_recovery_J``
     supply the displacement current. A negative value is kept and flagged.
 Estimate ``eon_recovery_estimate_J``
     ``VR·Qrr`` (``recovery.vr_V × recovery.qrr_C``): the recovered charge passes through the
-    switch while it still holds about the bus voltage (common practice; an upper-side estimate
-    because the switch voltage starts falling during tb). Always computed when Qrr and VR are
-    known; it is the only switch figure when no switch-voltage channel was captured, flagged
+    switch while it still holds about the bus voltage (common practice, e.g. the ``Qrr·VDD``
+    term of datasheet-based MOSFET loss budgets — from memory). Only an estimate: it counts
+    the charge recovered during tb at the full voltage (high side) and leaves out the load
+    current held at the bus voltage while the fall is delayed (low side), so it can be above
+    or below the measured part. Always computed when Qrr and VR are known; it is the only
+    switch figure when no switch-voltage channel was captured, flagged
     :data:`FLAG_ESTIMATE_ONLY`.
 """
 
