@@ -302,7 +302,19 @@ class Scope(_Driver):
         return {name: self.read_channel(name) for name in names}
 
 
-class PulseSource(_Driver):
+class _SwitchedOutput(_Driver):
+    """A driver whose instrument has an output that is switched on and off."""
+
+    def output(self, on: bool) -> None:
+        self._send("output", state=bool(on))
+        if on:
+            self.check_errors("switching the output on")
+
+    def is_output_on(self) -> bool:
+        return bool(self._ask("output_state"))
+
+
+class PulseSource(_SwitchedOutput):
     """Double-pulse gate driver."""
 
     role = "pulse"
@@ -324,20 +336,12 @@ class PulseSource(_Driver):
         self._send("gate_resistance", ohm=float(ohm))
         self.check_errors("setting the gate resistance")
 
-    def output(self, on: bool) -> None:
-        self._send("output", state=bool(on))
-        if on:
-            self.check_errors("switching the output on")
-
-    def is_output_on(self) -> bool:
-        return bool(self._ask("output_state"))
-
     def fire(self) -> None:
         """Fire one pulse train. Never repeated by the session after a dropped connection."""
         self._send("fire", retry=False)
 
 
-class BusSupply(_Driver):
+class BusSupply(_SwitchedOutput):
     """DC bus supply."""
 
     role = "supply"
@@ -349,14 +353,6 @@ class BusSupply(_Driver):
     def set_current_limit(self, amps: float) -> None:
         self._send("current_limit", amps=float(amps))
         self.check_errors("setting the current limit")
-
-    def output(self, on: bool) -> None:
-        self._send("output", state=bool(on))
-        if on:
-            self.check_errors("switching the output on")
-
-    def is_output_on(self) -> bool:
-        return bool(self._ask("output_state"))
 
     def measure_voltage(self) -> float:
         """Measured voltage at the output terminals (bus voltage), V."""
