@@ -132,8 +132,8 @@ class CanvasRenderer(RendererBase):
                 last = start
 
     # --- drawing ----------------------------------------------------------------------------
-    def draw_path(self, gc: GraphicsContextBase, path: MplPath, transform: Any,
-                  rgbFace: Any = None) -> None:
+    def _begin_drawing(self, gc: GraphicsContextBase, rgbFace: Any) -> tuple[bool, bool]:
+        """Save the canvas state, apply clip, stroke and fill; returns (stroke, fill)."""
         canvas = self.canvas
         canvas.saveState()
         self._apply_clip(gc)
@@ -145,6 +145,12 @@ class CanvasRenderer(RendererBase):
             if alpha > 0:
                 canvas.setFillColorRGB(*face[:3], alpha=alpha)
                 fill = True
+        return bool(stroke), fill
+
+    def draw_path(self, gc: GraphicsContextBase, path: MplPath, transform: Any,
+                  rgbFace: Any = None) -> None:
+        canvas = self.canvas
+        stroke, fill = self._begin_drawing(gc, rgbFace)
         if stroke or fill:
             pdf_path = canvas.beginPath()
             # long open polylines (waveforms) are simplified and clipped by matplotlib itself
@@ -164,16 +170,7 @@ class CanvasRenderer(RendererBase):
                   if code != MplPath.CLOSEPOLY]
         if not points or not marker:
             return
-        canvas.saveState()
-        self._apply_clip(gc)
-        stroke = self._stroke_style(gc)
-        fill = False
-        if rgbFace is not None:
-            face = tuple(rgbFace)
-            alpha = gc.get_alpha() if gc.get_forced_alpha() else (face[3] if len(face) > 3 else 1)
-            if alpha > 0:
-                canvas.setFillColorRGB(*face[:3], alpha=alpha)
-                fill = True
+        stroke, fill = self._begin_drawing(gc, rgbFace)
         if stroke or fill:
             pdf_path = canvas.beginPath()
             for x, y in points:
