@@ -35,11 +35,18 @@ switch_voltage: true
     return path
 
 
-def write_bench(folder: Path, *, timeout: str = "1 s") -> Path:
-    """The simulated bench file with short I/O timeouts for every instrument (fault tests)."""
+def write_bench(folder: Path, *, timeout: str = "10 s", scope_timeout: str | None = None
+                ) -> Path:
+    """The simulated bench file with the I/O timeout ``timeout`` for every instrument, the
+    scope's ``scope_timeout`` when given (fault tests that wait out a timeout keep it short)."""
     text = BENCH.read_text().replace(", timeout: 10 s", "")
     text = text.replace("2030-12-31}", f"2030-12-31, timeout: {timeout}}}")
     text = text.replace("handler-generic}", f"handler-generic, timeout: {timeout}}}")
+    if scope_timeout is not None:
+        text = text.replace(f"scope-generic,  calibration_due: 2030-12-31, timeout: {timeout}}}",
+                            f"scope-generic,  calibration_due: 2030-12-31, "
+                            f"timeout: {scope_timeout}}}")
+        assert f"timeout: {scope_timeout}}}" in text
     path = folder / "bench.yaml"
     path.write_text(text)
     return path

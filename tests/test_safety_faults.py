@@ -19,11 +19,22 @@ from benchrun.runner.execute import RunOptions, run_sequence
 from benchrun.runner.simbench import simulated_bench
 from benchrun.store.rundata import load_run
 
+#: Wait for a trigger that must come (returns as soon as the capture is there).
+TRIGGER_WAIT_S = 30.0
 
-def run_with_fault(tmp_path, role, apply, *, temperatures="[25 degC]", thermal=""):
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures=temperatures,
+
+def run_with_fault(tmp_path, role, apply, *, temperatures="[25 degC]", thermal="",
+                   devices="[KFR-2611A-001]", scope_timeout=None,
+                   trigger_timeout_s=TRIGGER_WAIT_S):
+    """Run a short sequence; ``apply`` switches the fault on after the first stored shot.
+
+    I/O timeouts are generous (a loaded machine must not add faults of its own); a case
+    that has to wait out a timeout shortens only what it waits for (``scope_timeout``,
+    ``trigger_timeout_s``).
+    """
+    seq = write_sequence(tmp_path, devices=devices, temperatures=temperatures,
                          repeats=2, extra=thermal)
-    bench_path = write_bench(tmp_path)
+    bench_path = write_bench(tmp_path, scope_timeout=scope_timeout)
     sequence = load_sequence(seq)
     with simulated_bench(load_bench(bench_path), sequence) as sim:
         count = {"n": 0}
@@ -35,7 +46,7 @@ def run_with_fault(tmp_path, role, apply, *, temperatures="[25 degC]", thermal="
 
         options = RunOptions(out_dir=tmp_path / "out", sim_resources=sim.resources,
                              clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False,
-                             trigger_timeout_s=1.0, on_stored=inject)
+                             trigger_timeout_s=trigger_timeout_s, on_stored=inject)
         error = None
         outcome = None
         try:
@@ -59,19 +70,21 @@ def assert_safe_and_recorded(safe, run_dir, status):
 
 
 @pytest.mark.parametrize(
-    ("role", "apply"),
+    ("role", "apply", "options"),
     [
-        ("scope", lambda f: f.set(drop_connections=1)),
-        ("pulse", lambda f: f.set(drop_connections=1)),
-        ("supply", lambda f: f.set(drop_connections=1)),
-        ("pulse", lambda f: f.inject_errors([(-222, "width out of range")])),
-        ("scope", lambda f: f.inject_errors([(-113, "undefined header")])),
+        ("scope", lambda f: f.set(drop_connections=1), {}),
+        # the drop swallows the fire command (never repeated): the shot shows up as a missing
+        # trigger, so only the trigger wait ends that attempt (150x a healthy trigger's ~20 ms)
+        ("pulse", lambda f: f.set(drop_connections=1), {"trigger_timeout_s": 3.0}),
+        ("supply", lambda f: f.set(drop_connections=1), {}),
+        ("pulse", lambda f: f.inject_errors([(-222, "width out of range")]), {}),
+        ("scope", lambda f: f.inject_errors([(-113, "undefined header")]), {}),
     ],
     ids=["scope-drop", "pulse-drop", "supply-drop", "pulse-error-queue", "scope-error-queue"],
 )
 @pytest.mark.slow
-def test_transient_fault_is_retried(tmp_path, role, apply):
-    outcome, error, safe, run_dir = run_with_fault(tmp_path, role, apply)
+def test_transient_fault_is_retried(tmp_path, role, apply, options):
+    outcome, error, safe, run_dir = run_with_fault(tmp_path, role, apply, **options)
     assert error is None, error
     assert outcome.status == "complete"
     assert len({s.repeat for s in load_run(run_dir).shots if s.valid}) == 2
@@ -79,20 +92,27 @@ def test_transient_fault_is_retried(tmp_path, role, apply):
 
 
 @pytest.mark.parametrize(
-    ("role", "apply", "message"),
+    ("role", "apply", "message", "options"),
     [
-        ("scope", lambda f: f.set(no_trigger=True), "did not trigger"),
-        ("scope", lambda f: f.set(garble_block_header=True), "block"),
-        ("scope", lambda f: f.set(truncate_block=True), "truncated"),
-        ("scope", lambda f: f.set(delay_s=1.5), "no answer"),
-        ("handler", lambda f: f.set(drop_connections=-1), "connection"),
+        # no trigger ever: only the trigger wait ends each attempt (kept short)
+        ("scope", lambda f: f.set(no_trigger=True), "did not trigger",
+         {"trigger_timeout_s": 1.0}),
+        ("scope", lambda f: f.set(garble_block_header=True), "block", {}),
+        # half a block, then nothing: only the scope's I/O timeout ends the read
+        ("scope", lambda f: f.set(truncate_block=True), "truncated", {"scope_timeout": "1 s"}),
+        # every answer 1.5 s late: past the scope's 1 s timeout whatever the load
+        ("scope", lambda f: f.set(delay_s=1.5), "no answer", {"scope_timeout": "1 s"}),
+        # two devices: the handler is needed to change the device whatever the station
+        # remembers about the one in the fixture
+        ("handler", lambda f: f.set(drop_connections=-1), "connection",
+         {"devices": "[KFR-2611A-001, KFR-2611A-002]"}),
     ],
     ids=["no-trigger", "garbled-header", "truncated-block", "late-answers", "handler-gone"],
 )
 @pytest.mark.slow
 def test_persistent_fault_is_a_clear_error_with_the_bench_safe(tmp_path, role, apply,
-                                                               message):
-    _, error, safe, run_dir = run_with_fault(tmp_path, role, apply)
+                                                               message, options):
+    _, error, safe, run_dir = run_with_fault(tmp_path, role, apply, **options)
     assert error is not None and message in str(error).lower()
     assert_safe_and_recorded(safe, run_dir, "aborted")
     if role == "scope":  # a shot-level fault is retried once before giving up

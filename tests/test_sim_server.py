@@ -28,7 +28,13 @@ from benchrun.simulator.server import SimulatedBench
 
 FIXTURE = types.SimpleNamespace(bus_capacitance_F=1e-3, bleeder_resistance_ohm=2e3)
 CATALOG = {"K-0001": None, "K-0002": None}
-TIMEOUT_S = 0.3
+#: I/O timeout of the sessions: generous, so that a loaded machine never turns a slow answer
+#: into a timeout (a healthy answer takes milliseconds; a dropped connection is seen at once)
+TIMEOUT_S = 10.0
+#: Timeout of the one session that is meant to time out (a late answer, a truncated block)
+SHORT_TIMEOUT_S = 0.3
+#: Waits for a trigger that must come (return as soon as it does)
+TRIGGER_WAIT_S = 30.0
 
 SCOPE_CHANNELS = {"diode_voltage": (1600.0, -200.0, 100.0),
                   "diode_current": (400.0, 0.0, 50.0),
@@ -92,13 +98,13 @@ def test_identify_every_instrument(drivers, bench):
 @pytest.mark.parametrize("family", ["scope-generic", "scope-alt"])
 def test_shot_codes_arrive_unchanged_for_both_families(family):
     with _bench(family) as b:
-        d = {role: connect(role, res, family if role == "scope" else None, timeout_s=2.0)
+        d = {role: connect(role, res, family if role == "scope" else None, timeout_s=TIMEOUT_S)
              for role, res in b.resources.items()}
         _prepare_shot(d)
         _wait_bus(d["supply"], 600.0)
         d["scope"].arm_single()
         d["pulse"].fire()
-        assert d["scope"].wait_triggered(2.0)
+        assert d["scope"].wait_triggered(TRIGGER_WAIT_S)
         traces = d["scope"].read_channels(["diode_voltage", "diode_current"])
         # the same samples computed directly from the pattern, quantised by the same ADC rule
         setup = b.acquisition_setup()
@@ -182,10 +188,12 @@ def test_thermal_first_order_lag(drivers, bench):
 
 def test_delayed_answer_times_out_then_session_recovers(drivers, bench):
     supply = drivers["supply"]
-    bench.faults["supply"].set(delay_s=3 * TIMEOUT_S)
+    supply.session.timeout_s = SHORT_TIMEOUT_S
+    bench.faults["supply"].set(delay_s=3 * SHORT_TIMEOUT_S)  # cannot arrive in time, any load
     with pytest.raises(InstrumentTimeout, match="no answer"):
         supply.measure_voltage()
     bench.faults["supply"].clear()
+    supply.session.timeout_s = TIMEOUT_S
     # the late answer must not be taken for the next one: the session reopened
     assert supply.is_output_on() is False
     assert supply.session.reconnects >= 1
@@ -227,13 +235,17 @@ def test_garbled_block_header_is_protocol_error(drivers, bench):
     _wait_bus(drivers["supply"], 600.0)
     drivers["scope"].arm_single()
     drivers["pulse"].fire()
-    assert drivers["scope"].wait_triggered(2.0)
+    assert drivers["scope"].wait_triggered(TRIGGER_WAIT_S)
     bench.faults["scope"].set(garble_block_header=True)
     with pytest.raises(ProtocolError, match="digit"):
         drivers["scope"].read_channel("diode_current")
     bench.faults["scope"].set(garble_block_header=False, truncate_block=True)
+    # the rest of the block never comes: only the timeout ends the read (kept short here;
+    # the header and the first half arrive long before it)
+    drivers["scope"].session.timeout_s = 1.0
     with pytest.raises(ProtocolError, match="truncated"):
         drivers["scope"].read_channel("diode_current")
+    drivers["scope"].session.timeout_s = TIMEOUT_S
     bench.faults["scope"].clear()
     assert len(drivers["scope"].read_channel("diode_current").codes) == 20_000
 
@@ -305,7 +317,8 @@ def test_sim_command_prints_resources(capsys):
     thread = threading.Thread(target=sim.run, args=(args, stop))
     thread.start()
     stop.set()
-    thread.join(timeout=10)
+    thread.join(timeout=60)
+    assert not thread.is_alive()
     out = capsys.readouterr().out
     for role in ("scope", "pulse", "supply", "thermal", "handler"):
         assert f"{role}" in out

@@ -184,7 +184,7 @@ class InstrumentSession:
 
     def query(self, command: str, *, retry: bool = True) -> str:
         """Send a query and return the text answer without its terminator."""
-        return self._run(command, lambda inst: inst.query(command), retry)
+        return self._run(command, lambda inst: self._query(inst, command), retry)
 
     def query_block(self, command: str, *, terminator: bool, retry: bool = True) -> bytearray:
         """Send a query answered by a definite-length block; return the payload bytes.
@@ -200,9 +200,42 @@ class InstrumentSession:
 
     # --- internals ---------------------------------------------------------------------------
 
+    def _query(self, inst: pyvisa.resources.MessageBasedResource, command: str) -> str:
+        inst.write(command)
+        self._await_answer()
+        return inst.read()
+
+    def _await_answer(self) -> None:
+        """Wait for the first byte of an answer; a connection the peer closed is a drop at once.
+
+        pyvisa-py's read keeps polling a socket that reached end-of-file until the I/O
+        timeout, so a dropped connection would only be seen after the whole timeout. Waiting
+        here with ``select`` sees the end-of-file (or reset) as soon as it arrives. No
+        answer within the timeout is a timeout, as from pyvisa. Other backends: no wait.
+        """
+        sock = self._backend_socket()
+        if sock is None or self._backend_buffered():
+            return
+        try:
+            readable, _, _ = select.select([sock], [], [], self._timeout_s)
+            if readable and sock.recv(1, socket.MSG_PEEK) == b"":
+                raise _Dropped()
+        except (OSError, ValueError) as exc:
+            raise _Dropped() from exc
+        if not readable:
+            raise pyvisa.errors.VisaIOError(pyvisa.constants.StatusCode.error_timeout)
+
+    def _backend_buffered(self) -> bool:
+        """True when the pyvisa-py session already holds received bytes not yet read."""
+        inst = self._inst
+        sessions = getattr(inst.visalib, "sessions", None) if inst is not None else None
+        backend = sessions.get(inst.session) if isinstance(sessions, dict) else None
+        return bool(getattr(backend, "_pending_buffer", b""))
+
     def _read_block(self, inst: pyvisa.resources.MessageBasedResource, command: str,
                     terminator: bool) -> bytearray:
         inst.write(command)
+        self._await_answer()
         saved = inst.read_termination
         inst.read_termination = None
         try:
