@@ -25,8 +25,44 @@ from benchrun.store.rundata import load_run
 DEVICES = "[KFR-2611A-001, KFR-2611A-002, KFR-2611A-003, KFR-2611A-004]"
 
 
+#: The stored shot after which a run that is to be killed holds still (see held_cli).
+HOLD_AFTER = 5
+
+#: ``benchrun`` (its ``main``) with one change: after its HOLD_AFTER-th committed results row
+#: the run waits until it is killed or terminated, so a slow test process can never find the
+#: run already finished; the kill still lands wherever the run is between the shot the test
+#: waited for and that one.
+HELD_RUN = """
+import sys
+import time
+
+from benchrun import cli
+from benchrun.store.results import ResultsStore
+
+hold_after = int(sys.argv[1])
+original = ResultsStore.add_shot
+stored = {"n": 0}
+
+
+def add_shot(self, shot):
+    result = original(self, shot)
+    stored["n"] += 1
+    while stored["n"] >= hold_after:
+        time.sleep(0.5)
+    return result
+
+
+ResultsStore.add_shot = add_shot
+sys.exit(cli.main(sys.argv[2:]))
+"""
+
+
 def cli(*args: str) -> list[str]:
     return [sys.executable, "-m", "benchrun.cli", *args]
+
+
+def held_cli(*args: str) -> list[str]:
+    return [sys.executable, "-c", HELD_RUN, str(HOLD_AFTER), *args]
 
 
 def stored_count(out: Path) -> int:
@@ -41,8 +77,9 @@ def stored_count(out: Path) -> int:
 
 
 def start_and_wait(seq: Path, out: Path, shots: int) -> subprocess.Popen:
-    proc = subprocess.Popen(cli("run", str(seq), "--bench", str(BENCH), "--out", str(out),
-                                "--no-progress"),
+    assert shots < HOLD_AFTER
+    proc = subprocess.Popen(held_cli("run", str(seq), "--bench", str(BENCH), "--out", str(out),
+                                     "--no-progress"),
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     deadline = time.monotonic() + 120
     while stored_count(out) < shots:
@@ -64,7 +101,7 @@ def test_kill_9_then_resume_loses_nothing_and_duplicates_nothing(tmp_path):
     run_dir = next(out.iterdir())
     before = {(s.serial, s.point.index, s.repeat, s.attempt): s
               for s in load_run(run_dir).shots}
-    assert 3 <= len(before) < 8
+    assert 3 <= len(before) <= HOLD_AFTER < 8
 
     done = subprocess.run(cli("run", str(seq), "--bench", str(BENCH), "--out", str(out),
                               "--resume", "--no-progress"),
