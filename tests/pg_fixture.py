@@ -29,6 +29,7 @@ from pathlib import Path
 import pytest
 
 _TIMEOUT_S = 60
+_START_ATTEMPTS = 3
 
 
 def _find_bin_dir() -> Path | None:
@@ -94,7 +95,6 @@ def pg_cluster() -> Iterator[PgCluster]:
         entry = pwd.getpwnam("postgres")
         os.chown(base, entry.pw_uid, entry.pw_gid)
     os.chmod(base, 0o700)
-    port = _free_port()
     started = False
     try:
         subprocess.run(
@@ -102,13 +102,19 @@ def pg_cluster() -> Iterator[PgCluster]:
              "-E", "UTF8", "--no-sync"],
             check=True, capture_output=True, timeout=_TIMEOUT_S,
         )  # fmt: skip
-        options = f"-p {port} -k {base} -c listen_addresses=127.0.0.1 -c fsync=off"
-        result = subprocess.run(
-            [*prefix, str(bin_dir / "pg_ctl"), "-D", str(data), "-l", str(log), "-o", options,
-             "-w", "-t", str(_TIMEOUT_S), "start"],
-            capture_output=True, text=True, timeout=_TIMEOUT_S + 10,
-        )  # fmt: skip
-        started = result.returncode == 0
+        # the free port can be taken by another process before the server binds it: a new
+        # port is tried when the start fails
+        for _ in range(_START_ATTEMPTS):
+            port = _free_port()
+            options = f"-p {port} -k {base} -c listen_addresses=127.0.0.1 -c fsync=off"
+            result = subprocess.run(
+                [*prefix, str(bin_dir / "pg_ctl"), "-D", str(data), "-l", str(log), "-o",
+                 options, "-w", "-t", str(_TIMEOUT_S), "start"],
+                capture_output=True, text=True, timeout=_TIMEOUT_S + 10,
+            )  # fmt: skip
+            started = result.returncode == 0
+            if started:
+                break
         if not started:
             server_log = log.read_text(errors="replace") if log.exists() else ""
             pytest.fail(f"PostgreSQL did not start: {result.stderr}\n{server_log}")
