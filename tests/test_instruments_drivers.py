@@ -100,7 +100,7 @@ def test_scope_arm_wait_and_read_generic():
     scope.configure(**CONFIG)
     session.sent.clear()
     scope.arm_single()
-    assert scope.wait_triggered(1.0, poll_s=0.0)
+    assert scope.wait_triggered(30.0, poll_s=0.0)  # done at the second poll
     trace = scope.read_channel("diode_current")
     assert session.sent == [
         "SINGle", "*OPC?", "ACQuire:DONE?", "ACQuire:DONE?", "WAVeform:SOURce CHANnel2",
