@@ -13,6 +13,8 @@
 * translates pyvisa and socket errors into :mod:`benchrun.errors` with ``raise ... from exc``:
   :class:`~benchrun.errors.InstrumentTimeout`, :class:`~benchrun.errors.ConnectionLost`,
   :class:`~benchrun.errors.ProtocolError`,
+* sees a dropped connection as soon as the peer's end-of-file arrives (pyvisa-py alone
+  would wait out the whole I/O timeout),
 * makes one reconnect attempt when the connection dropped, and repeats the interrupted
   operation once if the caller marked it repeatable (``retry=True``; a ``fire`` is not);
   repeatable writes sent since the last answered query are repeated too (a dropped
