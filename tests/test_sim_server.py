@@ -169,7 +169,10 @@ def test_bleeder_discharge_follows_rc(drivers, bench):
 def test_thermal_first_order_lag(drivers, bench):
     thermal = drivers["thermal"]
     thermal.set_temperature(398.15)
-    thermal.output(True)  # checks the error queue: the query also syncs with the server
+    thermal.output(True)
+    # *OPC? answered on the same connection: the server has run both commands, so the state
+    # read below is the one they set (whatever the driver does after a write)
+    thermal.operation_complete()
     sim = bench.thermal
     t0 = bench.now()
     T0 = sim.temperature(t0)
