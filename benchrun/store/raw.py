@@ -19,9 +19,13 @@ Crash safety
 ------------
 A shot is written as: group → datasets → attributes → ``complete = True`` last, then the file
 is flushed (``H5Fflush``: everything handed to the operating system) before
-:meth:`RawRecord.append_shot` returns. A ``kill -9`` at any moment therefore loses at most the
-shot in flight: a group left without the ``complete`` mark is invisible to
-:meth:`RawRecord.keys` and is deleted when the file is next opened for writing. The file uses
+:meth:`RawRecord.append_shot` returns. The group is created unlinked and flushed before it is
+linked under ``/shots``: HDF5 may hand a changed link table to the operating system before the
+header of the object it points to, and a ``kill -9`` in between would leave a link that cannot
+be opened, deleted or replaced. A ``kill -9`` at any moment therefore loses at most the
+shot in flight: a group left without the ``complete`` mark (or one that cannot be opened) is
+invisible to :meth:`RawRecord.keys` and is deleted, where HDF5 can, when the file is next
+opened for writing. The file uses
 the earliest HDF5 file format (superblock version 0), which has no "file open for writing"
 status flag, so it reopens after a crash without ``h5clear``.
 
@@ -103,6 +107,17 @@ _ATTR_TYPES = {
     for kind, dtype in (("bool", np.dtype(bool)), ("int", np.dtype(np.int64)),
                         ("float", np.dtype(np.float64)), ("str", h5py.string_dtype()))
 }
+
+
+def _is_complete(group: Any) -> bool:
+    """True for a shot group with the ``complete`` mark. A group h5py cannot open (``None``:
+    a link to an object a crash left unwritten) or whose attributes cannot be read is not."""
+    if group is None:
+        return False
+    try:
+        return bool(group.attrs.get("complete", False))
+    except (OSError, KeyError, ValueError):
+        return False
 
 
 def _write_new_attrs(obj: Any, values: Mapping[str, str | int | float | bool]) -> None:
@@ -372,9 +387,12 @@ class RawRecord:
 
     def _drop_incomplete(self) -> None:
         shots = self._shots
-        stale = [k for k, g in shots.items() if not bool(g.attrs.get("complete", False))]
+        stale = [k for k, g in shots.items() if not _is_complete(g)]
         for key in stale:
-            del shots[key]
+            # a link to an object that was never written cannot be deleted (HDF5 needs the
+            # object's header for that): it stays, invisible like every incomplete shot
+            with contextlib.suppress(KeyError, OSError, ValueError):
+                del shots[key]
         if stale:
             self.flush()
 
@@ -489,12 +507,11 @@ class RawRecord:
 
     def keys(self) -> list[str]:
         """Keys of every complete shot, sorted."""
-        return sorted(k for k, g in self._shots.items() if bool(g.attrs.get("complete", False)))
+        return sorted(k for k, g in self._shots.items() if _is_complete(g))
 
     def __contains__(self, key_or_ref: str) -> bool:
         key = _key_of(key_or_ref)
-        g = self._shots.get(key)
-        return g is not None and bool(g.attrs.get("complete", False))
+        return _is_complete(self._shots.get(key))
 
     def __len__(self) -> int:
         return len(self.keys())
@@ -583,10 +600,11 @@ class RawRecord:
         shots = self._shots
         try:
             if key in shots:
-                if bool(shots[key].attrs.get("complete", False)) and not replace:
+                if _is_complete(shots.get(key)) and not replace:
                     raise StoreError(f"shot {key} is already in raw record {self.path}")
                 del shots[key]
-            group = shots.create_group(key)
+            # unlinked until complete and flushed (module docstring, "Crash safety")
+            group = h5py.Group(h5py.h5g.create(self._f.id, None))
             for name, codes in arrays.items():
                 ch = channels[name]
                 options: dict[str, Any] = {}
@@ -605,7 +623,9 @@ class RawRecord:
             _write_new_attrs(group, {"t_start_s": float(t_start), "dt_s": float(dt),
                                      "probes_json": probes_json, "attrs_json": attrs_json,
                                      "content_sha256": digest})
-            _write_new_attrs(group, {"complete": True})  # last: the shot is now visible
+            _write_new_attrs(group, {"complete": True})
+            self._f.flush()  # the shot's objects reach the file before the link to them
+            shots[key] = group  # last: the shot is now visible
         except StoreError:
             raise
         except (OSError, ValueError, TypeError, KeyError) as exc:
@@ -633,7 +653,7 @@ class RawRecord:
         """
         key = _key_of(key_or_ref)
         group = self._shots.get(key)
-        if group is None or not bool(group.attrs.get("complete", False)):
+        if not _is_complete(group):
             raise StoreError(f"no shot {key!r} in raw record {self.path}")
         ChannelData, ProbeCalibration = scaling_types()
         try:
