@@ -220,12 +220,18 @@ class InstrumentSession:
             return
         try:
             readable, _, _ = select.select([sock], [], [], self._timeout_s)
-            if readable and sock.recv(1, socket.MSG_PEEK) == b"":
-                raise _Dropped()
-        except (OSError, ValueError) as exc:
+        except ValueError:  # a descriptor select cannot watch: the wait is left to pyvisa
+            return
+        except OSError as exc:
             raise _Dropped() from exc
         if not readable:
             raise pyvisa.errors.VisaIOError(pyvisa.constants.StatusCode.error_timeout)
+        try:
+            closed = sock.recv(1, socket.MSG_PEEK) == b""
+        except OSError as exc:  # reset by the peer
+            raise _Dropped() from exc
+        if closed:
+            raise _Dropped()
 
     def _backend_buffered(self) -> bool:
         """True when the pyvisa-py session already holds received bytes not yet read."""
