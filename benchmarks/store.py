@@ -6,7 +6,13 @@ once with gzip (level 1 + shuffle, the default) and once uncompressed, and store
 number of result rows in a SQLite results database (WAL, synchronous=FULL) and, with ``--db``,
 in any other database URL. Prints milliseconds per shot and bytes per shot.
 
-Run: ``python benchmarks/store.py [--shots N] [--samples N] [--channels N] [--db URL]``
+Then times the runner's own case: every shot is written before the next one fires, so the
+cost of one append is per-shot overhead. ``--runner-appends`` appends of 3 channels x 16617
+int8 codes, uncompressed, in each durability mode (``"process"``: flushes only;
+``"power-loss"``: flushes + ``fsync``), median milliseconds per append.
+
+Run: ``python benchmarks/store.py [--shots N] [--samples N] [--channels N] [--db URL]
+[--runner-appends N]``
 """
 
 from __future__ import annotations
@@ -63,6 +69,32 @@ def bench_raw(folder: Path, shots: int, n_channels: int, n: int, compression: st
     return statistics.median(times), path.stat().st_size / shots
 
 
+RUNNER_CHANNELS = ("diode_voltage", "diode_current", "gate")
+RUNNER_SAMPLES = 16617
+
+
+def bench_runner_case(folder: Path, appends: int, durability: str) -> float:
+    """Median seconds per ``append_shot`` of 3 x 16617 int8 codes, uncompressed."""
+    rng = np.random.default_rng(2)
+    probes = {name: _Probe(100.0, 1e-9) for name in RUNNER_CHANNELS}
+    data = [
+        {name: _Channel(rng.integers(-128, 128, RUNNER_SAMPLES).astype(np.int8), 0.01, -0.2,
+                        -128, 127) for name in RUNNER_CHANNELS}
+        for _ in range(8)
+    ]
+    path = folder / f"runner-{durability}.h5"
+    times = []
+    with RawRecord(path, "w", compression=None, durability=durability) as raw:
+        for i in range(appends):
+            attrs = {"serial": f"S{i:04d}", "point_index": i % 4, "repeat": 0, "attempt": 0,
+                     "timestamp": "2031-04-02T10:00:00+00:00",
+                     "settings": {"bus_voltage_V": 600.0, "forward_current_A": 30.0}}
+            t0 = time.perf_counter()
+            raw.append_shot(raw.next_key(), -2e-6, 2.5e-10, data[i % len(data)], probes, attrs)
+            times.append(time.perf_counter() - t0)
+    return statistics.median(times)
+
+
 def bench_db(url: str, shots: int) -> float:
     times = []
     with ResultsStore(url) as store:
@@ -90,6 +122,8 @@ def main() -> None:
     parser.add_argument("--samples", type=int, default=50_000)
     parser.add_argument("--channels", type=int, default=4)
     parser.add_argument("--db", default=None, help="extra database URL to time")
+    parser.add_argument("--runner-appends", type=int, default=200,
+                        help="appends timed for the runner's case (median of these)")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
@@ -104,6 +138,12 @@ def main() -> None:
         if args.db:
             other = bench_db(args.db, args.shots)
             print(f"results row ({args.db.split(':')[0]}): {other * 1e3:.2f} ms/shot")
+        appends = max(50, args.runner_appends)
+        for durability in ("process", "power-loss"):
+            median = bench_runner_case(folder, appends, durability)
+            print(f"runner case, {len(RUNNER_CHANNELS)} x {RUNNER_SAMPLES} int8, uncompressed, "
+                  f"durability {durability}: {median * 1e3:.3f} ms/append "
+                  f"(median of {appends})")
 
 
 if __name__ == "__main__":
