@@ -38,7 +38,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from benchrun.errors import ConfigError, InstrumentReportedError, ProtocolError
+from benchrun.errors import ConfigError, InstrumentError, InstrumentReportedError, ProtocolError
 from benchrun.instruments import scpi
 from benchrun.instruments.commands import CommandTable, evaluate, load_table
 from benchrun.instruments.session import DEFAULT_VISA_LIBRARY, InstrumentSession, Transport
@@ -312,6 +312,24 @@ class _SwitchedOutput(_Driver):
 
     def is_output_on(self) -> bool:
         return bool(self._ask("output_state"))
+
+    def switch_off(self, attempts: int = 2) -> None:
+        """Output off, confirmed by reading the state back; the command is sent again when
+        the instrument still reports the output on (a dropped connection can swallow a
+        command without any error at the sender).
+
+        Raises
+        ------
+        InstrumentError
+            The output still reads on after ``attempts`` off commands, or the state cannot
+            be read.
+        """
+        for _ in range(attempts):
+            self.output(False)
+            if not self.is_output_on():
+                return
+        raise InstrumentError(f"{self.session.resource}: the output still reads on after "
+                              f"{attempts} off commands")
 
 
 class PulseSource(_SwitchedOutput):

@@ -326,8 +326,9 @@ class Station:
             thermal = self.thermal
             extra = (lambda: thermal.output(False),)
         return make_safe(
-            (lambda: self.pulse.output(False)) if "pulse" in self.drivers else None,
-            (lambda: self.supply.output(False)) if "supply" in self.drivers else None,
+            # switched off and read back: a command lost on the way must not pass for done
+            self.pulse.switch_off if "pulse" in self.drivers else None,
+            self.supply.switch_off if "supply" in self.drivers else None,
             (lambda: self.supply.measure_voltage()) if "supply" in self.drivers else None,
             touch_safe_V=self.bench.safety.touch_safe_voltage,
             timeout_s=self.bench.safety.discharge_timeout,
