@@ -102,11 +102,48 @@ def check_durability(durability: str) -> str:
 _SCALAR_SPACE = h5py.h5s.create(h5py.h5s.SCALAR)
 #: (numpy dtype, HDF5 file type) per attribute kind: what h5py's ``attrs[name] = value``
 #: stores for a Python bool, int, float and str
+#: (numpy dtype, HDF5 file type, memory type for the write) per attribute kind: what h5py's
+#: ``attrs[name] = value`` stores for a Python bool, int, float and str. For the numbers the
+#: memory type is the file type, so HDF5 copies the value without setting up a conversion;
+#: a string goes through h5py's own conversion from Python objects (``None``: h5py's default).
 _ATTR_TYPES = {
-    kind: (dtype, h5py.h5t.py_create(dtype, logical=True))
+    kind: (dtype, htype, None if kind == "str" else htype)
     for kind, dtype in (("bool", np.dtype(bool)), ("int", np.dtype(np.int64)),
                         ("float", np.dtype(np.float64)), ("str", h5py.string_dtype()))
+    for htype in (h5py.h5t.py_create(dtype, logical=True),)
 }
+
+
+#: Link creation properties h5py's ``group[name] = obj`` uses for an ASCII name (shot keys
+#: and channel names are ASCII, see ``_KEY_RE``), made once instead of per link.
+_LCPL_ASCII = h5py.h5p.create(h5py.h5p.LINK_CREATE)
+_LCPL_ASCII.set_create_intermediate_group(True)
+_LCPL_ASCII.set_char_encoding(h5py.h5t.CSET_ASCII)
+#: HDF5 file type per codes dtype: what h5py's ``create_dataset(data=codes)`` stores
+_CODE_TYPES: dict[np.dtype, Any] = {}
+
+
+def _code_type(dtype: np.dtype) -> Any:
+    htype = _CODE_TYPES.get(dtype)
+    if htype is None:
+        htype = _CODE_TYPES[dtype] = h5py.h5t.py_create(dtype, logical=True)
+    return htype
+
+
+def _codes_create_plist(compression: str | None, size: int, itemsize: int) -> Any:
+    """Dataset creation properties of one channel's codes: exactly what h5py's
+    ``create_dataset(name, data=codes, compression="gzip", compression_opts=1,
+    shuffle=True, chunks=(chunk,))`` (or, uncompressed, ``create_dataset(name, data=codes)``)
+    sets: optional chunking with byte shuffle then deflate level 1, no object timestamps,
+    attribute creation order not tracked."""
+    dcpl = h5py.h5p.create(h5py.h5p.DATASET_CREATE)
+    if compression == "gzip" and size:
+        dcpl.set_chunk((max(1, min(size, _CHUNK_BYTES // itemsize)),))
+        dcpl.set_shuffle()
+        dcpl.set_deflate(1)
+    dcpl.set_obj_track_times(False)
+    dcpl.set_attr_creation_order(0)
+    return dcpl
 
 
 def _is_complete(group: Any) -> bool:
@@ -128,7 +165,7 @@ def _write_new_attrs(obj: Any, values: Mapping[str, str | int | float | bool]) -
     for an existing attribute and builds the types again for every value, which costs more
     than the write itself for the ~20 small attributes of a shot.
     """
-    oid = obj.id
+    oid = obj.id if isinstance(obj, h5py.HLObject) else obj  # h5py object or low-level id
     for name, value in values.items():
         if isinstance(value, bool | np.bool_):
             kind, value = "bool", bool(value)
@@ -138,10 +175,10 @@ def _write_new_attrs(obj: Any, values: Mapping[str, str | int | float | bool]) -
             kind, value = "int", int(value)
         else:
             kind, value = "float", float(value)
-        dtype, htype = _ATTR_TYPES[kind]
+        dtype, htype, mtype = _ATTR_TYPES[kind]
         attr = h5py.h5a.create(oid, name.encode(), htype, _SCALAR_SPACE)
         try:
-            attr.write(np.array(value, dtype=dtype))
+            attr.write(np.array(value, dtype=dtype), mtype=mtype)
         finally:
             attr.close()
 
@@ -347,6 +384,9 @@ class RawRecord:
         self._pending_sync: Future[None] | None = None
         self._shots_group: h5py.Group | None = None
         self._next_number: int | None = None  # cache of next_key(); None = not yet scanned
+        # per (length, itemsize): dataset creation properties and data space of the codes,
+        # made once per record instead of once per channel and shot
+        self._codes_layout: dict[tuple[int, int], tuple[Any, Any]] = {}
         self._open()
 
     # -- opening and closing -------------------------------------------------------------
@@ -591,7 +631,7 @@ class RawRecord:
                     f"shot {key}: channel {name!r} codes must be a 1-D int8/int16 array, "
                     f"got {codes.dtype} with shape {codes.shape}"
                 )
-            arrays[name] = codes
+            arrays[name] = np.ascontiguousarray(codes)
         digest = shot_digest(t_start, dt, channels, probes, attrs)
         probes_json = canonical_json(
             {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)} for n, p in probes.items()}
@@ -604,19 +644,13 @@ class RawRecord:
                     raise StoreError(f"shot {key} is already in raw record {self.path}")
                 del shots[key]
             # unlinked until complete and flushed (module docstring, "Crash safety")
-            group = h5py.Group(h5py.h5g.create(self._f.id, None))
+            group = h5py.h5g.create(self._f.id, None)
             for name, codes in arrays.items():
                 ch = channels[name]
-                options: dict[str, Any] = {}
-                if self.compression == "gzip" and codes.size:
-                    chunk = max(1, min(codes.size, _CHUNK_BYTES // codes.dtype.itemsize))
-                    options = {
-                        "compression": "gzip",
-                        "compression_opts": 1,
-                        "shuffle": True,
-                        "chunks": (chunk,),
-                    }
-                ds = group.create_dataset(name, data=codes, **options)
+                dcpl, space = self._codes_plist_and_space(codes)
+                ds = h5py.h5d.create(group, name.encode(), _code_type(codes.dtype), space,
+                                     dcpl=dcpl)
+                ds.write(h5py.h5s.ALL, h5py.h5s.ALL, codes)
                 _write_new_attrs(ds, {"gain": float(ch.gain), "offset": float(ch.offset),
                                       "code_min": int(ch.code_min),
                                       "code_max": int(ch.code_max)})
@@ -625,7 +659,8 @@ class RawRecord:
                                      "content_sha256": digest})
             _write_new_attrs(group, {"complete": True})
             self._f.flush()  # the shot's objects reach the file before the link to them
-            shots[key] = group  # last: the shot is now visible
+            # last: the shot is now visible (what ``shots[key] = group`` does)
+            h5py.h5o.link(group, shots.id, key.encode(), lcpl=_LCPL_ASCII)
         except StoreError:
             raise
         except (OSError, ValueError, TypeError, KeyError) as exc:
@@ -634,6 +669,14 @@ class RawRecord:
         if key.isdigit() and self._next_number is not None:
             self._next_number = max(self._next_number, int(key) + 1)
         return f"{SHOTS_GROUP}/{key}"
+
+    def _codes_plist_and_space(self, codes: np.ndarray) -> tuple[Any, Any]:
+        layout_key = (codes.size, codes.dtype.itemsize)
+        layout = self._codes_layout.get(layout_key)
+        if layout is None:
+            dcpl = _codes_create_plist(self.compression, codes.size, codes.dtype.itemsize)
+            layout = self._codes_layout[layout_key] = (dcpl, h5py.h5s.create_simple(codes.shape))
+        return layout
 
     def read_shot(self, key_or_ref: str, *, verify: bool = True) -> RawShot:
         """Read one complete shot back.
