@@ -12,10 +12,10 @@ from __future__ import annotations
 import h5py
 import numpy as np
 import pytest
+from store_helpers import make_channels, make_probes
 
 from benchrun.store import RawRecord
 from benchrun.store.raw import _CHUNK_BYTES
-from tests.store_helpers import make_channels, make_probes
 
 
 def _dcpl_facts(ds: h5py.Dataset) -> dict[str, object]:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import json
 import struct
 
 import h5py
@@ -57,7 +58,7 @@ def test_round_trip_is_exact(tmp_path, compression):
         shot = raw.read_shot(ref)
     assert run["run_id"] == "R-1"
     assert run["identities"] == {"scope": ["a", "b"]}
-    assert run["format_version"] == 1
+    assert run["format_version"] == 2  # scaling of every channel in the group's channels_json
     assert "software_version" in run
     assert _bits(shot.t_start) == _bits(-2.0e-6 / 3.0)
     assert _bits(shot.dt) == _bits(2.5e-10)
@@ -77,16 +78,26 @@ def test_round_trip_is_exact(tmp_path, compression):
 
 
 def test_records_are_plain_hdf5(tmp_path):
-    """Any HDF5 reader sees the codes and scaling under /shots/<key>/<channel>."""
+    """Any HDF5 reader sees the codes under /shots/<key>/<channel> and their scaling in the
+    shot group's channels_json (plain JSON), as the module docstring describes."""
     channels = make_channels(2)
     path = tmp_path / "raw.h5"
     with RawRecord(path) as raw:
         raw.append_shot("000000", 0.0, 1e-9, channels, make_probes(), {})
     with h5py.File(path, "r") as f:
-        ds = f["shots/000000/diode_current"]
+        group = f["shots/000000"]
+        ds = group["diode_current"]
         np.testing.assert_array_equal(ds[()], channels["diode_current"].codes)
-        assert ds.attrs["gain"] == channels["diode_current"].gain
-        assert f["shots/000000"].attrs["dt_s"] == 1e-9
+        scaling = json.loads(group.attrs["channels_json"])
+        assert set(scaling) == set(group) == set(channels)
+        for name, ch in channels.items():
+            assert scaling[name] == {"gain": ch.gain, "offset": ch.offset,
+                                     "code_min": ch.code_min, "code_max": ch.code_max}
+        volts = ds[()] * scaling["diode_current"]["gain"] + scaling["diode_current"]["offset"]
+        assert volts[0] == channels["diode_current"].codes[0] * 2.0**-15 + 5e-324
+        assert group.attrs["dt_s"] == 1e-9
+        assert bool(group.attrs["complete"])
+        assert f.attrs["format_version"] == 2
 
 
 def test_keys_next_key_and_duplicates(tmp_path):
@@ -266,10 +277,31 @@ def test_changed_attribute_is_detected(tmp_path):
     path = tmp_path / "raw.h5"
     with RawRecord(path) as raw:
         raw.append_shot("000000", 0.0, 1e-9, make_channels(), make_probes(), {"serial": "S1"})
+        raw.append_shot("000001", 0.0, 1e-9, make_channels(), make_probes(), {"serial": "S2"})
     with h5py.File(path, "r+") as f:
-        f["shots/000000/diode_voltage"].attrs["gain"] = 0.3
-    with RawRecord(path, "r") as raw, pytest.raises(StoreError, match="SHA-256"):
-        raw.read_shot("000000")
+        group = f["shots/000000"]
+        scaling = json.loads(group.attrs["channels_json"])
+        scaling["diode_voltage"]["gain"] = 0.3
+        group.attrs["channels_json"] = json.dumps(scaling)
+        f["shots/000001"].attrs["dt_s"] = 2e-9
+    with RawRecord(path, "r") as raw:
+        for key in ("000000", "000001"):
+            with pytest.raises(StoreError, match="SHA-256"):
+                raw.read_shot(key)
+        assert raw.damaged_keys() == ["000000", "000001"]
+
+
+def test_scaling_that_does_not_name_the_datasets_cannot_be_read(tmp_path):
+    path = tmp_path / "raw.h5"
+    with RawRecord(path) as raw:
+        raw.append_shot("000000", 0.0, 1e-9, make_channels(), make_probes(), {})
+    with h5py.File(path, "r+") as f:
+        group = f["shots/000000"]
+        scaling = json.loads(group.attrs["channels_json"])
+        del scaling["gate"]
+        group.attrs["channels_json"] = json.dumps(scaling)
+    with RawRecord(path, "r") as raw, pytest.raises(StoreError, match="cannot be read"):
+        raw.read_shot("000000", verify=False)
 
 
 def test_read_shot_gives_the_analysis_pipeline_types(tmp_path):

@@ -1,19 +1,33 @@
 """The raw record: every shot's ADC codes, scaling and settings in one HDF5 file per run.
 
-Layout (HDF5, readable by any HDF5 tool)::
+Layout (HDF5, readable by any HDF5 tool; format_version 2)::
 
     /                       attrs: format, format_version, software_version, created,
                                    run_id and any other run-level attribute (JSON strings
                                    for non-scalar values, see :meth:`RawRecord.run_attrs`)
-    /shots/<key>/           attrs: t_start_s, dt_s, probes_json, attrs_json,
-                                   content_sha256, complete
+    /shots/<key>/           attrs: t_start_s, dt_s (float64, seconds),
+                                   channels_json, probes_json, attrs_json (JSON text),
+                                   content_sha256 (hex), complete (bool)
     /shots/<key>/<channel>  int8 / int16 dataset: ADC codes exactly as captured
-                            attrs: gain, offset, code_min, code_max
 
-Physical channel volts are ``codes * gain + offset`` (the scope's own scaling recipe), the
-physical quantity is channel volts times the probe ``scale``; see
-:mod:`benchrun.analysis.pipeline`. Codes are never rescaled or resampled before they are
-stored, so re-analysis of the record reproduces the runner's numbers exactly.
+``channels_json`` maps each channel (dataset) name of the shot to its scaling,
+``{"<channel>": {"gain": ..., "offset": ..., "code_min": ..., "code_max": ...}}``;
+``probes_json`` maps it to ``{"scale": ..., "deskew_s": ...}``; floats in the JSON read back
+bit-exactly (see :mod:`benchrun.store.canonical`). Physical channel volts are
+``codes * gain + offset`` (the scope's own scaling recipe), the physical quantity is channel
+volts times the probe ``scale``; see :mod:`benchrun.analysis.pipeline`. Codes are never
+rescaled or resampled before they are stored, so re-analysis of the record reproduces the
+runner's numbers exactly.
+
+Format 1 (``format_version`` 1, records written before format 2) kept the scaling as four
+attributes of each channel dataset (``gain``, ``offset`` float64; ``code_min``,
+``code_max`` int64) and had no ``channels_json``; everything else is the same. A shot's
+layout is told by its own attributes (``channels_json`` present or not), so
+:meth:`RawRecord.read_shot` reads both, also in one file: appending to a format-1 record
+writes format-2 shots and, with the first of them, sets its ``format_version`` to 2. One
+attribute instead of four per channel is what makes format 2: each HDF5 attribute costs an
+object-header update per shot. ``content_sha256`` (:func:`shot_digest`) is computed from the
+shot's content, not from its layout, so it is the same in both formats.
 
 Crash safety
 ------------
@@ -76,8 +90,8 @@ def scaling_types() -> tuple[type, type]:
 
 #: Value of the root ``format`` attribute: identifies a benchrun raw record.
 FORMAT_NAME = "benchrun-raw-record"
-#: Layout version of the raw record written by this module.
-FORMAT_VERSION = 1
+#: Layout version of the raw record written by this module (module docstring; 1 is read too).
+FORMAT_VERSION = 2
 #: Group holding one subgroup per shot.
 SHOTS_GROUP = "shots"
 
@@ -163,7 +177,8 @@ def _write_new_attrs(obj: Any, values: Mapping[str, str | int | float | bool]) -
     Stores exactly what ``obj.attrs[name] = value`` stores (HDF5 enum bool, int64, float64,
     variable-length UTF-8 string), through the low-level API: h5py's high-level path checks
     for an existing attribute and builds the types again for every value, which costs more
-    than the write itself for the ~20 small attributes of a shot.
+    than the write itself for the small attributes of a shot. ``obj`` is an h5py object or
+    a low-level object identifier.
     """
     oid = obj.id if isinstance(obj, h5py.HLObject) else obj  # h5py object or low-level id
     for name, value in values.items():
@@ -315,6 +330,23 @@ def _key_of(key_or_ref: str) -> str:
     return key
 
 
+def _stored_channels(group: h5py.Group) -> dict[str, tuple[np.ndarray, Mapping[str, Any]]]:
+    """Channel name → (codes, scaling with ``gain``, ``offset``, ``code_min``, ``code_max``)
+    of a stored shot, in either layout (module docstring): format 2 keeps every channel's
+    scaling in the group's ``channels_json``, format 1 in attributes of each dataset.
+
+    Raises KeyError when the scaling and the datasets do not name the same channels.
+    """
+    scaling_json = group.attrs.get("channels_json")
+    if scaling_json is None:  # format 1
+        return {name: (ds[()], ds.attrs) for name, ds in group.items()}
+    scaling = json.loads(_attr_str(scaling_json))
+    if set(scaling) != set(group):
+        raise KeyError(f"channels_json names {sorted(scaling)}, the shot holds datasets "
+                       f"{sorted(group)}")
+    return {name: (ds[()], scaling[name]) for name, ds in group.items()}
+
+
 def _fsync_dir(folder: Path) -> None:
     try:
         fd = os.open(folder, os.O_RDONLY)
@@ -387,6 +419,7 @@ class RawRecord:
         # per (length, itemsize): dataset creation properties and data space of the codes,
         # made once per record instead of once per channel and shot
         self._codes_layout: dict[tuple[int, int], tuple[Any, Any]] = {}
+        self._layout_marked = False  # root format_version says shots may be in format 2
         self._open()
 
     # -- opening and closing -------------------------------------------------------------
@@ -416,6 +449,7 @@ class RawRecord:
             f.attrs["software_version"] = __version__
             f.attrs["created"] = _dt.datetime.now(_dt.UTC).isoformat()
             f.create_group(SHOTS_GROUP)
+            self._layout_marked = True
             self.flush()
             _fsync_dir(path.parent)  # the new file's directory entry is durable too
             return
@@ -637,8 +671,15 @@ class RawRecord:
             {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)} for n, p in probes.items()}
         )
         attrs_json = canonical_json(attrs)
+        channels_json = canonical_json({
+            name: {"gain": float(ch.gain), "offset": float(ch.offset),
+                   "code_min": int(ch.code_min), "code_max": int(ch.code_max)}
+            for name, ch in channels.items()
+        })
         shots = self._shots
         try:
+            if not self._layout_marked:
+                self._mark_layout()
             if key in shots:
                 if _is_complete(shots.get(key)) and not replace:
                     raise StoreError(f"shot {key} is already in raw record {self.path}")
@@ -646,18 +687,17 @@ class RawRecord:
             # unlinked until complete and flushed (module docstring, "Crash safety")
             group = h5py.h5g.create(self._f.id, None)
             for name, codes in arrays.items():
-                ch = channels[name]
                 dcpl, space = self._codes_plist_and_space(codes)
                 ds = h5py.h5d.create(group, name.encode(), _code_type(codes.dtype), space,
                                      dcpl=dcpl)
                 ds.write(h5py.h5s.ALL, h5py.h5s.ALL, codes)
-                _write_new_attrs(ds, {"gain": float(ch.gain), "offset": float(ch.offset),
-                                      "code_min": int(ch.code_min),
-                                      "code_max": int(ch.code_max)})
+            # one attribute for every channel's scaling (format 2): each HDF5 attribute
+            # costs an object-header update, and a shot used to have four per channel
             _write_new_attrs(group, {"t_start_s": float(t_start), "dt_s": float(dt),
+                                     "channels_json": channels_json,
                                      "probes_json": probes_json, "attrs_json": attrs_json,
-                                     "content_sha256": digest})
-            _write_new_attrs(group, {"complete": True})
+                                     "content_sha256": digest,
+                                     "complete": True})  # the mark last
             self._f.flush()  # the shot's objects reach the file before the link to them
             # last: the shot is now visible (what ``shots[key] = group`` does)
             h5py.h5o.link(group, shots.id, key.encode(), lcpl=_LCPL_ASCII)
@@ -669,6 +709,16 @@ class RawRecord:
         if key.isdigit() and self._next_number is not None:
             self._next_number = max(self._next_number, int(key) + 1)
         return f"{SHOTS_GROUP}/{key}"
+
+    def _mark_layout(self) -> None:
+        """Before the first shot written into a record of an older format: raise its root
+        ``format_version`` to :data:`FORMAT_VERSION`, in place (one attribute value of the
+        same type and size), so the file says which shot layouts it may hold."""
+        attrs = self._f.attrs
+        stored = attrs.get("format_version")
+        if isinstance(stored, int | np.integer) and int(stored) < FORMAT_VERSION:
+            attrs.modify("format_version", np.int64(FORMAT_VERSION))
+        self._layout_marked = True
 
     def _codes_plist_and_space(self, codes: np.ndarray) -> tuple[Any, Any]:
         layout_key = (codes.size, codes.dtype.itemsize)
@@ -701,13 +751,13 @@ class RawRecord:
         ChannelData, ProbeCalibration = scaling_types()
         try:
             channels: dict[str, Any] = {}
-            for name, ds in group.items():
+            for name, (codes, scaling) in _stored_channels(group).items():
                 channels[name] = ChannelData(
-                    codes=ds[()],
-                    gain=float(ds.attrs["gain"]),
-                    offset=float(ds.attrs["offset"]),
-                    code_min=int(ds.attrs["code_min"]),
-                    code_max=int(ds.attrs["code_max"]),
+                    codes=codes,
+                    gain=float(scaling["gain"]),
+                    offset=float(scaling["offset"]),
+                    code_min=int(scaling["code_min"]),
+                    code_max=int(scaling["code_max"]),
                 )
             probes = {
                 name: ProbeCalibration(scale=float(p["scale"]), deskew_s=float(p["deskew_s"]))
