@@ -1,10 +1,13 @@
 """Unit, display name and description of every metric key (used by the CLI, limits and report).
 
 Keys are those of ``RecoveryMetrics.to_dict()`` and ``SwitchingMetrics``; values are SI.
+``MetricMeta.intervals`` names the recovery time intervals a metric needs resolved by the
+sample interval (see :mod:`benchrun.analysis.resolution`).
 """
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 from benchrun.errors import GradingError
@@ -24,12 +27,18 @@ class MetricMeta:
         Short display name (``"Qrr"``).
     description
         One line with the definition and its source.
+    intervals
+        Recovery time intervals (``"ta"``, ``"tb"``, ``"trr"``) that must span enough
+        samples for this metric to be resolved; a capture that under-samples one of them
+        carries the ``undersampled_recovery`` flag naming the metric
+        (:mod:`benchrun.analysis.resolution`). Empty for metrics that do not depend on them.
     """
 
     key: str
     unit: str
     name: str
     description: str
+    intervals: tuple[str, ...] = ()
 
 
 _TABLE = (
@@ -67,8 +76,39 @@ _TABLE = (
      "absolute end of the Eon window: switch voltage falls through 2 % of its off-state value"),
 )
 
+#: The recovery time intervals each metric needs resolved (linear-interpolation timing
+#: argument, :mod:`benchrun.analysis.resolution`):
+#:
+#: - ``irrm_A``: a peak whose far side is much steeper (a snap) falls between samples; the
+#:   highest sample misses it by up to the fall slope × dt, relative error ≈ dt/ta.
+#: - ``ta_s``, ``tb_s``, ``trr_s``: each end instant is known to about one sample interval.
+#: - ``softness`` = tb/ta carries the errors of both.
+#: - ``rrsf``: its denominator, the steepest slope after the peak (≈ Irrm/tb), is a slope
+#:   across tb taken between samples.
+#: - ``qrr_C``: trapezoids over t0 … t2 cut the peak's corner, an error of order
+#:   Irrm·dt against Irrm·trr/2.
+#: - ``err_J``, ``vrm_V``: the diode voltage builds up, and the stray-inductance overshoot
+#:   Ls·|di/dt| occurs, while the current falls back during tb; over one or two
+#:   samples the product v·i and the overshoot peak are not sampled.
+#:
+#: Absolute instants (``t0_s``, ``t_irrm_s``...) are off by at most about one sample whatever
+#: the intervals, and ``didt_A_per_s`` is measured across the forward-current fall.
+_INTERVALS: dict[str, tuple[str, ...]] = {
+    "irrm_A": ("ta",),
+    "ta_s": ("ta",),
+    "tb_s": ("tb",),
+    "trr_s": ("trr",),
+    "softness": ("ta", "tb"),
+    "rrsf": ("tb",),
+    "qrr_C": ("trr",),
+    "err_J": ("tb",),
+    "vrm_V": ("tb",),
+}
+
 #: Metric key → :class:`MetricMeta`.
-METRICS: dict[str, MetricMeta] = {k: MetricMeta(k, u, n, d) for k, u, n, d in _TABLE}
+METRICS: dict[str, MetricMeta] = {
+    k: MetricMeta(k, u, n, d, _INTERVALS.get(k, ())) for k, u, n, d in _TABLE
+}
 
 
 def meta(key: str) -> MetricMeta:
@@ -88,3 +128,11 @@ def unit_of(key: str) -> str:
 def display_name(key: str) -> str:
     """Short display name of a metric key."""
     return meta(key).name
+
+
+def metrics_needing(intervals: Iterable[str]) -> tuple[str, ...]:
+    """Metric keys (in table order) that need any of ``intervals`` (``"ta"``, ``"tb"``,
+    ``"trr"``) resolved by the sampling: the metrics an under-sampled interval leaves
+    unresolved."""
+    wanted = set(intervals)
+    return tuple(m.key for m in METRICS.values() if wanted.intersection(m.intervals))

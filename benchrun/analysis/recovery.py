@@ -36,6 +36,12 @@ minimum, so later ringing cycles never move them, and VRM is taken over t0 … t
 (as defined above). A non-uniform time array (a variable-step simulator's output) is
 resampled onto a uniform grid for the event location and crossings; Qrr and Err are then the
 exact trapezoidal integrals over the given points.
+
+Sampling: when ta, tb or trr spans fewer than 10 sample intervals (for a non-uniform
+record, steps of the grid it is measured on) the values are still reported, but the result
+carries the flag ``undersampled_recovery: <interval> spans <n> samples (need >= 10); not
+resolved: <metric keys>`` (the count and its sources in :mod:`benchrun.analysis.resolution`).
+It only warns. ``few_samples_in_ta`` (same count, ta only) is kept as it was.
 """
 
 from __future__ import annotations
@@ -48,16 +54,23 @@ import numpy as np
 
 from benchrun.analysis import events as ev
 from benchrun.analysis.conditioning import lowpass
-from benchrun.errors import ConfigError, InputDataError, NoEventError
+from benchrun.analysis.resolution import (
+    FLAG_UNDERSAMPLED,
+    recovery_spans,
+    undersampled_flag,
+)
+from benchrun.analysis.timebase import (
+    MAX_RESAMPLED,
+    MIN_RESAMPLED,
+    MIN_SAMPLES,
+    UNIFORM_TOLERANCE,
+    TimeBase,
+    event_step,
+    uniform_grid,
+    validate_record,
+)
+from benchrun.errors import ConfigError, NoEventError
 
-#: Fewest samples accepted for a record.
-MIN_SAMPLES = 16
-#: A time array whose largest step exceeds its smallest by this factor is non-uniform (a
-#: variable-step simulator's output) and is resampled; below it, timestamp rounding.
-UNIFORM_TOLERANCE = 1.1
-#: Limits on the points of the uniform grid a non-uniform record is resampled onto.
-MIN_RESAMPLED = 1 << 20
-MAX_RESAMPLED = 1 << 24
 #: Samples looked back before the end of the plateau (enough for the fall and a plateau).
 PLATEAU_LOOKBACK = 60_000
 #: First span after the plateau examined; grown by 4× until the event is complete.
@@ -81,6 +94,13 @@ FLAG_TRR_LINE = "trr_line_no_crossing"
 FLAG_RRSF = "rrsf_not_found"
 FLAG_LOW_SNR = "low_signal_to_noise"
 FLAG_VR = "reverse_voltage_not_found"
+
+# Names importable from here (input limits live in timebase.py, the sampling check in
+# resolution.py).
+__all__ = [
+    "FLAG_UNDERSAMPLED", "MAX_RESAMPLED", "MIN_RESAMPLED", "MIN_SAMPLES", "MIN_SAMPLES_IN_TA",
+    "UNIFORM_TOLERANCE", "RecoveryMetrics", "RecoveryOptions", "analyze_recovery",
+]
 
 
 @dataclass(frozen=True)
@@ -168,97 +188,6 @@ class RecoveryMetrics:
         return tuple(f.name for f in fields(cls) if f.name != "flags")
 
 
-class _TimeBase:
-    """Times of the record, given as an array or as ``t_start + k·dt``."""
-
-    def __init__(self, t: np.ndarray | None, dt: float | None, t_start: float,
-                 uniform: bool = True) -> None:
-        self.t = t
-        self.dt = dt
-        self.t_start = t_start
-        self.uniform = uniform
-
-    def window(self, a: int, b: int) -> np.ndarray:
-        if self.t is not None:
-            return np.asarray(self.t[a:b], dtype=np.float64)
-        return self.t_start + self.dt * np.arange(a, b, dtype=np.float64)
-
-
-def _check_finite(name: str, x: np.ndarray) -> None:
-    if np.issubdtype(x.dtype, np.integer):
-        return
-    if math.isfinite(float(np.sum(x))):
-        return
-    bad = np.flatnonzero(~np.isfinite(x))
-    if bad.size:
-        raise InputDataError(f"{name} has a non-finite value (NaN or inf) at sample {bad[0]}")
-    raise InputDataError(f"{name} values are too large to be physical")
-
-
-def _check_increasing(t: np.ndarray) -> tuple[float, float]:
-    """Raise unless ``t`` strictly increases; return the smallest and largest step."""
-    chunk = 1 << 20
-    lo, hi = math.inf, 0.0
-    for a in range(0, t.size - 1, chunk):
-        seg = t[a : a + chunk + 1]
-        steps = seg[1:] - seg[:-1]
-        ok = steps > 0
-        if not ok.all():
-            k = a + int(np.argmin(ok)) + 1
-            raise InputDataError(f"time is not strictly increasing at sample {k}")
-        lo, hi = min(lo, float(steps.min())), max(hi, float(steps.max()))
-    return lo, hi
-
-
-def _uniform_grid(t: np.ndarray) -> tuple[float, int]:
-    """Step and length of the uniform grid a non-uniform record is resampled onto.
-
-    The step is the 10th percentile of the record's steps (a variable-step simulator takes
-    its small steps where the waveform changes fast, so this keeps the detail of the event),
-    but not so fine that the grid holds more than ``4·n`` points (at least MIN_RESAMPLED,
-    at most MAX_RESAMPLED): breakpoints make a simulator take a few tiny steps too.
-    """
-    span = float(t[-1] - t[0])
-    steps = np.diff(t)
-    step = float(np.quantile(steps, 0.1))
-    step = max(step, span / (min(max(4 * t.size, MIN_RESAMPLED), MAX_RESAMPLED) - 1))
-    return step, math.floor(span / step) + 1
-
-
-def _validate(t, v, i, dt, t_start) -> tuple[np.ndarray, np.ndarray, _TimeBase]:
-    v = np.asarray(v)
-    i = np.asarray(i)
-    for name, x in (("voltage", v), ("current", i)):
-        if x.ndim != 1:
-            raise InputDataError(f"{name} must be a 1-D array, got shape {x.shape}")
-        if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
-            raise InputDataError(f"{name} must be numeric, got dtype {x.dtype}")
-    if v.size != i.size:
-        raise InputDataError(f"voltage has {v.size} samples but current has {i.size}")
-    if i.size < MIN_SAMPLES:
-        raise InputDataError(f"record too short: {i.size} samples, need at least {MIN_SAMPLES}")
-    _check_finite("voltage", v)
-    _check_finite("current", i)
-    if t is not None and np.ndim(t) == 0:  # a scalar t is the sample interval
-        if dt is not None:
-            raise InputDataError("give the sample interval either as t or as dt, not both")
-        t, dt = None, float(t)
-    if t is not None:
-        t = np.asarray(t, dtype=np.float64)
-        if t.ndim != 1 or t.size != i.size:
-            raise InputDataError(f"time has shape {t.shape}, expected ({i.size},)")
-        _check_finite("time", t)
-        lo, hi = _check_increasing(t)
-        if hi > UNIFORM_TOLERANCE * lo:
-            return v, i, _TimeBase(t, None, 0.0, uniform=False)
-        return v, i, _TimeBase(t, None, 0.0)
-    if dt is None or not (math.isfinite(dt) and dt > 0):
-        raise InputDataError(f"give a time array or a sample interval dt > 0, got dt={dt!r}")
-    if not math.isfinite(t_start):
-        raise InputDataError(f"t_start must be finite, got {t_start!r}")
-    return v, i, _TimeBase(None, float(dt), float(t_start))
-
-
 def analyze_recovery(
     t: np.ndarray | float | None,
     v: np.ndarray,
@@ -299,7 +228,7 @@ def analyze_recovery(
         current that looks reversed (a negative level held far longer than any positive).
     """
     opts = options or RecoveryOptions()
-    v, i, timebase = _validate(t, v, i, dt, t_start)
+    v, i, timebase = validate_record(t, v, i, dt, t_start)
     if not timebase.uniform:
         return _analyze_nonuniform(timebase.t, v, i, opts)
     return _analyze_record(v, i, timebase, opts)
@@ -310,15 +239,30 @@ def _analyze_nonuniform(t: np.ndarray, v: np.ndarray, i: np.ndarray,
     """Variable-step record (a circuit simulator's output): resampled onto a uniform grid.
 
     Event location and the crossings work on the grid (linear interpolation between the
-    given points, as a simulator's own measurements do); Qrr and Err are then the exact
-    trapezoidal integrals over the given points between t0 and t2, and the
-    ``few_samples_in_ta`` flag counts the given points, not the grid's.
+    given points, as a simulator's own measurements do); where the grid is coarse for the
+    recovery found, the record is analysed again on a finer one
+    (:func:`benchrun.analysis.timebase.event_step`). Qrr and Err are then the exact
+    trapezoidal integrals over the given points between t0 and t2. ``few_samples_in_ta``
+    counts the given points; ``undersampled_recovery`` counts the grid's steps: the record
+    is the piecewise-linear waveform its points define (a variable-step simulator places
+    them by its local-truncation-error control, Nagel's SPICE2 (1975), from memory), so only
+    the grid it is measured on can under-sample it (when the point budget caps the grid).
     """
-    step, count = _uniform_grid(t)
-    grid = t[0] + step * np.arange(count, dtype=np.float64)
-    v_u = np.interp(grid, t, np.asarray(v, dtype=np.float64))
-    i_u = np.interp(grid, t, np.asarray(i, dtype=np.float64))
-    m = _analyze_record(v_u, i_u, _TimeBase(None, step, float(t[0])), opts)
+
+    def on_grid(step: float) -> RecoveryMetrics:
+        grid = t[0] + step * np.arange(math.floor((t[-1] - t[0]) / step) + 1, dtype=np.float64)
+        v_u = np.interp(grid, t, np.asarray(v, dtype=np.float64))
+        i_u = np.interp(grid, t, np.asarray(i, dtype=np.float64))
+        return _analyze_record(v_u, i_u, TimeBase(None, step, float(t[0])), opts)
+
+    step, _ = uniform_grid(t)
+    m = on_grid(step)
+    end = m.t_trr_s if m.t_trr_s is not None else m.t2_s
+    if m.t0_s is not None and m.t_irrm_s is not None and end is not None:
+        shortest = min(m.t_irrm_s - m.t0_s, end - m.t_irrm_s)
+        fine = event_step(t, m.t_irrm_s, end, max(shortest, 0.0), step)
+        if fine is not None:
+            m = on_grid(fine)
     changes: dict[str, Any] = {}
     flags = [f for f in m.flags if f != FLAG_FEW_SAMPLES_TA]
     if m.t0_s is not None and m.t_irrm_s is not None:
@@ -336,7 +280,7 @@ def _analyze_nonuniform(t: np.ndarray, v: np.ndarray, i: np.ndarray,
     return replace(m, flags=tuple(flags), **changes)
 
 
-def _analyze_record(v: np.ndarray, i: np.ndarray, timebase: _TimeBase,
+def _analyze_record(v: np.ndarray, i: np.ndarray, timebase: TimeBase,
                     opts: RecoveryOptions) -> RecoveryMetrics:
     """Locate the commutation asked for and measure it."""
     scan = ev.scan_plateaus(i)
@@ -544,6 +488,10 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
     softness = tb / ta if tb is not None and ta > 0 else None
     if ta < MIN_SAMPLES_IN_TA * dt_local:
         flags.append(FLAG_FEW_SAMPLES_TA)
+    # ta, tb, trr spanning too few samples to be resolved (benchrun.analysis.resolution)
+    sampling = undersampled_flag(recovery_spans(t0, t_irrm, t_trr, dt_local))
+    if sampling is not None:
+        flags.append(sampling)
 
     # di/dt between +0.5·IF and -0.5·Irrm.
     didt = None
