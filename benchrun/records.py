@@ -14,6 +14,11 @@ from typing import Any
 #: Keys of ``ShotResult.conditions`` (measured test conditions of one shot).
 CONDITION_KEYS = ("if_A", "didt_A_per_s", "vr_V", "temperature_K")
 
+#: The only flag of a shot recorded before its analysis finished (the shot is in the raw
+#: record; its metrics follow). A run interrupted at that moment completes the shot from the
+#: raw record on ``--resume``. Such a shot is not valid.
+FLAG_ANALYSIS_PENDING = "analysis_pending"
+
 
 @dataclass(frozen=True)
 class TestPoint:
@@ -77,6 +82,12 @@ class ShotResult:
     valid: bool = True
     raw_ref: str = ""
     acquisition: dict[str, float] = field(default_factory=dict)
+
+    @property
+    def pending(self) -> bool:
+        """True for a shot recorded before its analysis finished
+        (:data:`FLAG_ANALYSIS_PENDING`)."""
+        return FLAG_ANALYSIS_PENDING in self.flags
 
     def to_dict(self) -> dict[str, Any]:
         data = asdict(self)

@@ -25,15 +25,18 @@ TRIGGER_WAIT_S = 30.0
 
 def run_with_fault(tmp_path, role, apply, *, temperatures="[25 degC]", thermal="",
                    devices="[KFR-2611A-001]", scope_timeout=None,
-                   trigger_timeout_s=TRIGGER_WAIT_S):
+                   trigger_timeout_s=TRIGGER_WAIT_S, repeats=3):
     """Run a short sequence; ``apply`` switches the fault on after the first stored shot.
+
+    The runner reads a shot's analysed result (and calls ``on_stored``) once the next shot of
+    the device has fired, so with three repeats the fault meets the third shot.
 
     I/O timeouts are generous (a loaded machine must not add faults of its own); a case
     that has to wait out a timeout shortens only what it waits for (``scope_timeout``,
     ``trigger_timeout_s``).
     """
     seq = write_sequence(tmp_path, devices=devices, temperatures=temperatures,
-                         repeats=2, extra=thermal)
+                         repeats=repeats, extra=thermal)
     bench_path = write_bench(tmp_path, scope_timeout=scope_timeout)
     sequence = load_sequence(seq)
     with simulated_bench(load_bench(bench_path), sequence) as sim:
@@ -87,7 +90,19 @@ def test_transient_fault_is_retried(tmp_path, role, apply, options):
     outcome, error, safe, run_dir = run_with_fault(tmp_path, role, apply, **options)
     assert error is None, error
     assert outcome.status == "complete"
-    assert len({s.repeat for s in load_run(run_dir).shots if s.valid}) == 2
+    assert len({s.repeat for s in load_run(run_dir).shots if s.valid}) == 3
+    assert_safe_and_recorded(safe, run_dir, "complete")
+
+
+@pytest.mark.slow
+def test_safe_state_sends_a_lost_off_command_again(tmp_path):
+    # one shot: the fault is switched on after it, so the first command the pulse source
+    # gets afterwards is the safe state's "output off", which the dropped connection
+    # swallows; the safe state reads the output back and switches it off again
+    outcome, error, safe, run_dir = run_with_fault(
+        tmp_path, "pulse", lambda f: f.set(drop_connections=1), repeats=1)
+    assert error is None, error
+    assert outcome.status == "complete"
     assert_safe_and_recorded(safe, run_dir, "complete")
 
 

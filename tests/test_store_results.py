@@ -104,6 +104,30 @@ def test_add_shot_is_idempotent_and_refuses_conflicts(store):
     assert store.shots("R-0001") == [shot]
 
 
+def test_complete_shot_replaces_only_a_pending_row(store):
+    import dataclasses
+
+    from benchrun.records import FLAG_ANALYSIS_PENDING
+
+    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    analysed = make_shot()
+    pending = dataclasses.replace(analysed, metrics={}, flags=(FLAG_ANALYSIS_PENDING,),
+                                  valid=False, acquisition={})
+    assert pending.pending and not analysed.pending
+    with pytest.raises(StoreError, match="not stored"):
+        store.complete_shot(analysed)
+    store.add_shot(pending)
+    assert store.shots("R-0001") == [pending]
+    with pytest.raises(StoreError, match="analysed shot"):
+        store.complete_shot(pending)
+    assert store.complete_shot(analysed) is True
+    assert store.shots("R-0001") == [analysed]
+    assert store.complete_shot(analysed) is False  # a resumed run repeating the last step
+    with pytest.raises(StoreError, match="different analysed shot"):
+        store.complete_shot(make_shot(trr=2e-7))
+    assert store.shots("R-0001") == [analysed]
+
+
 def test_add_shot_needs_its_run(store):
     with pytest.raises(StoreError, match="create_run"):
         store.add_shot(make_shot(run_id="R-missing"))

@@ -15,6 +15,8 @@ or the scope ranges widened after clipping.
 from __future__ import annotations
 
 import logging
+from collections import deque
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -35,6 +37,7 @@ from benchrun.runner.plan import (
 from benchrun.runner.progress import RunProgress
 from benchrun.runner.safety import check_shot
 from benchrun.runner.shots import ShotContext, build_result, narrowest, probes_for, shot_key
+from benchrun.runner.writer import CapturedShot, ShotTicket, ShotWriter
 from benchrun.store.results import utc_now
 
 if TYPE_CHECKING:
@@ -49,6 +52,19 @@ log = logging.getLogger("benchrun.runner")
 WIDEN_FACTOR = 2.0
 #: Headroom over the largest reverse-recovery current measured so far at a point.
 IRRM_HEADROOM = 1.3
+
+
+@dataclass(frozen=True)
+class _InFlight:
+    """A fired shot whose analysed result has not been read yet."""
+
+    planned: PlannedShot
+    attempt: int
+    ticket: ShotTicket
+    #: the first pulse it was fired with, s
+    first_pulse_s: float
+    #: range widening factors of its diode channels when it was fired
+    widen: dict[str, float]
 
 
 class ShotCycle:
@@ -78,6 +94,24 @@ class ShotCycle:
         self.max_attempts = 1 + self.sequence.retry_invalid
         #: next attempt number per (serial, point index, repeat); loaded from the DB once
         self._attempts: dict[tuple[str, int, int], int] | None = None
+        #: stores and analyses every fired shot on its own thread (runner/writer.py)
+        self.writer = ShotWriter(raw, store, self.sequence)
+        #: (clock time, shot spacing) of the last shot fired
+        self._last_fire: tuple[float, float] | None = None
+        #: the last shot fired, until its result is read
+        self._flight: _InFlight | None = None
+
+    def close(self) -> None:
+        """Finish storing and analysing every fired shot (called on every exit path, after
+        the safe state) and count a shot the run ended before reading."""
+        self.writer.close()
+        flight, self._flight = self._flight, None
+        if flight is None or flight.ticket.stored.exception() is not None:
+            return
+        self.outcome.shots_stored += 1
+        analysed = flight.ticket.analysed
+        if analysed.exception() is None:
+            self.outcome.shots_valid += int(analysed.result().valid)
 
     # --- resume ----------------------------------------------------------------------------
 
@@ -87,21 +121,28 @@ class ShotCycle:
         return {(index, serial, repeat) for serial, index, repeat in keys}
 
     def recover_orphans(self) -> int:
-        """Store shots that reached the raw record but not the DB before a crash."""
-        stored = {(s.serial, s.point.index, s.repeat, s.attempt)
+        """Complete shots a crash left unfinished: in the raw record but not in the DB, or
+        recorded in the DB as pending (not yet analysed). Returns how many."""
+        stored = {(s.serial, s.point.index, s.repeat, s.attempt): s
                   for s in self.store.shots(self.outcome.run_id)}
         recovered = 0
         for key in list(self.raw):
             shot = self.raw.read_shot(key)
             context = ShotContext.from_attrs(shot.attrs)
             identity = (context.serial, context.point.index, context.repeat, context.attempt)
-            if context.run_id != self.outcome.run_id or identity in stored:
+            row = stored.get(identity)
+            if context.run_id != self.outcome.run_id or (row is not None and not row.pending):
                 continue
             result = build_result(context, shot.t_start, shot.dt, shot.channels, shot.probes,
                                   self.sequence, shot.raw_ref)
-            self.store.add_shot(result)
+            if row is None:
+                self.store.add_shot(result)
+                log.info("resume: shot %s was in the raw record only; analysed and stored",
+                         key)
+            else:
+                self.store.complete_shot(result)
+                log.info("resume: shot %s was stored before its analysis; analysed", key)
             recovered += 1
-            log.info("resume: shot %s was in the raw record only; analysed and stored", key)
         self.outcome.shots_recovered += recovered
         return recovered
 
@@ -120,32 +161,69 @@ class ShotCycle:
         self.station.settle(kelvin, band=thermal.band, dwell=thermal.dwell, soak=thermal.soak,
                             timeout=thermal.timeout, poll=thermal.poll_interval,
                             on_reading=show)
-        for planned in shots:
-            self.run_shot(planned)
+        self.run_tests(shots)
 
-    # --- one test (shot with its retries) ----------------------------------------------------
+    # --- tests: fire, store, conclude ----------------------------------------------------------
 
-    def run_shot(self, planned: PlannedShot) -> ShotResult | None:
-        point = planned.point
-        spacing = self._spec(point).shot_spacing
-        self.progress.shooting(planned.serial, point.temperature_K,
-                               f"{point.label.split(' @ ')[0]} #{planned.repeat + 1}")
-        self.station.select(planned.serial)
-        self._trim(point)
-        attempt = self._next_attempt(planned.serial, point.index, planned.repeat)
-        result = None
-        while attempt < self.max_attempts:
-            result = self._fire_and_store(planned, attempt)
-            if result.valid:
-                break
+    def run_tests(self, shots: list[PlannedShot]) -> None:
+        """Fire every test of ``shots`` (with its retries), one shot's analysis overlapping
+        the next acquisition.
+
+        A shot is concluded (its analysed result read, a retry queued when it is invalid)
+        once the next shot of the same device and trimmed point is fired, or before anything
+        else happens: a device change, a trim, the end of the list. A retry is fired next,
+        on the same device.
+        """
+        todo = deque(shots)
+        while todo or self._flight is not None:
+            flight = self._flight
+            if flight is not None and not (todo and self._may_overlap(flight.planned, todo[0])):
+                self._flight = None
+                self._conclude(flight, todo)
+                continue
+            planned = todo.popleft()
+            point = planned.point
+            attempt = self._next_attempt(planned.serial, point.index, planned.repeat)
+            if attempt >= self.max_attempts:  # (resumed) every attempt already stored
+                self.progress.advance()
+                continue
+            self.progress.shooting(planned.serial, point.temperature_K,
+                                   f"{point.label.split(' @ ')[0]} #{planned.repeat + 1}")
+            self.station.select(planned.serial)
+            self._trim(point)
+            self._flight = self._fire(planned, attempt)
+            if flight is not None:
+                self._conclude(flight, todo)
+
+    def _may_overlap(self, previous: PlannedShot, upcoming: PlannedShot) -> bool:
+        """Whether ``upcoming`` may fire before ``previous`` is concluded: same device (a
+        retry of ``previous`` needs no device change) and no trim needed."""
+        return (upcoming.serial == previous.serial
+                and upcoming.point.index in self.first_pulse)
+
+    def _conclude(self, flight: _InFlight, todo: deque[PlannedShot]) -> None:
+        """Read a fired shot's analysed result; learn from it; queue its retry when it is
+        invalid and attempts remain, else count its test as done."""
+        planned, point = flight.planned, flight.planned.point
+        result = flight.ticket.result()
+        self._learn(point, result)
+        self.outcome.shots_stored += 1
+        self.outcome.shots_valid += int(result.valid)
+        if result.valid and result.conditions.get("if_A"):
+            deviation = result.conditions["if_A"] / point.forward_current_A - 1.0
+            if abs(deviation) > 0.5 * self.sequence.tolerances.forward_current:
+                self._correct(point, float(result.conditions["if_A"]), flight.first_pulse_s)
+        if self.options.on_stored is not None:
+            self.options.on_stored(result)
+        if not result.valid:
             log.warning("%s %s repeat %d attempt %d invalid: %s", planned.serial, point.label,
-                        planned.repeat, attempt, "; ".join(result.flags))
-            self._adjust_after(point, result)
-            attempt += 1
+                        planned.repeat, flight.attempt, "; ".join(result.flags))
+            self._adjust_after(flight, result)
+            if self._next_attempt(planned.serial, point.index,
+                                  planned.repeat) < self.max_attempts:
+                todo.appendleft(planned)
+                return
         self.progress.advance()
-        if spacing > 0:
-            self.station.clock.sleep(spacing)
-        return result
 
     def _next_attempt(self, serial: str, point_index: int, repeat: int) -> int:
         """Attempt number of the next shot of a test: read from the DB once (shots stored by
@@ -191,19 +269,25 @@ class ShotCycle:
         if irrm is not None and irrm > 0:
             self.irrm_seen[point.index] = max(self.irrm_seen.get(point.index, 0.0), irrm)
 
-    def _adjust_after(self, point: TestPoint, result: ShotResult) -> None:
+    def _adjust_after(self, flight: _InFlight, result: ShotResult) -> None:
+        """Widen a clipped channel's range and correct t1 from the measured current, both
+        from the settings *that shot* was fired with (a shot fired before the adjustment of
+        an earlier one must not adjust twice)."""
+        point = flight.planned.point
         for name in ("diode_current", "diode_voltage"):
             if f"clipped_{name}" in result.flags:
                 key = (point.index, name)
-                self.widen[key] = self.widen.get(key, 1.0) * WIDEN_FACTOR
+                factor = flight.widen.get(name, 1.0) * WIDEN_FACTOR
+                self.widen[key] = max(self.widen.get(key, 1.0), factor)
                 log.info("%s clipped: widening its range at %s by %g", name, point.label,
                          WIDEN_FACTOR)
         measured = result.conditions.get("if_A")
         if measured:
-            self._correct(point, float(measured))
+            self._correct(point, float(measured), flight.first_pulse_s)
 
-    def _correct(self, point: TestPoint, measured_A: float) -> None:
-        plan = self._plan(point)
+    def _correct(self, point: TestPoint, measured_A: float, fired_t1: float) -> None:
+        """New t1 for ``point`` from the current a shot fired with ``fired_t1`` reached."""
+        plan = self._plan(point).with_first_pulse(fired_t1)
         t1, L_eff = corrected_first_pulse(plan, point, measured_A, point.bus_voltage_V,
                                           self.bench.fixture)
         self.first_pulse[point.index] = t1
@@ -288,7 +372,19 @@ class ShotCycle:
             self.station.forget_settings()
         return action()
 
-    def _fire_and_store(self, planned: PlannedShot, attempt: int) -> ShotResult:
+    def _wait_spacing(self) -> None:
+        """Keep the previous shot's spacing (its test point's ``shot_spacing``) between two
+        shots."""
+        if self._last_fire is None:
+            return
+        fired_at, spacing = self._last_fire
+        left = fired_at + spacing - self.station.clock.monotonic()
+        if left > 0:
+            self.station.clock.sleep(left)
+
+    def _fire(self, planned: PlannedShot, attempt: int) -> _InFlight:
+        """Configure, fire and capture one shot; hand it to the writer. Returns once the
+        capture is read (the previous shot is stored before this one fires)."""
         point = planned.point
         plan = self._plan(point)
         check_shot(plan, point, self.bench)
@@ -300,7 +396,10 @@ class ShotCycle:
             measured["bus_V"] = self.station.energise(point.bus_voltage_V)
             self.station.configure_scope(plan, ranges, point.bus_voltage_V)
             measured["temperature_K"] = self.station.temperature()
+            self.writer.wait_stored()  # the previous shot is durable in both stores
+            self._wait_spacing()
             measured["timestamp"] = utc_now()
+            self._last_fire = (self.station.clock.monotonic(), self._spec(point).shot_spacing)
             return self.station.fire(self.channel_names, self.options.trigger_timeout_s)
 
         capture = self._with_retry(shoot, f"shot {planned.serial} {point.label}")
@@ -312,7 +411,6 @@ class ShotCycle:
         )  # fmt: skip
         channels = {name: narrowest(trace.to_channel_data())
                     for name, trace in capture.traces.items()}
-        probes = {name: self.probes[name] for name in channels}
         settings = {
             "first_pulse_s": plan.first_pulse_s, "off_time_s": plan.off_time_s,
             "second_pulse_s": plan.second_pulse_s, "record_start_s": plan.record_start_s,
@@ -321,23 +419,12 @@ class ShotCycle:
             "ranges": {name: [r.low, r.high] for name, r in ranges.items()},
         }  # fmt: skip
         key = shot_key(point.index, planned.serial, planned.repeat, attempt)
-        # handed to the OS now (kill -9 safe); its fsync runs while the shot is analysed
-        ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
-                                   context.attrs(settings), wait=False)
-        result = build_result(context, capture.t_start, capture.dt, channels, probes,
-                              self.sequence, ref)
-        self.raw.wait_durable()
-        self.store.add_shot(result)  # only once the raw shot is durable
+        ticket = self.writer.submit(CapturedShot(
+            key, context, capture.t_start, capture.dt, channels,
+            {name: self.probes[name] for name in channels}, settings))
         if self._attempts is not None:
             identity = (planned.serial, point.index, planned.repeat)
             self._attempts[identity] = max(self._attempts.get(identity, 0), attempt + 1)
-        self._learn(point, result)
-        self.outcome.shots_stored += 1
-        self.outcome.shots_valid += int(result.valid)
-        if result.valid and result.conditions.get("if_A"):
-            deviation = result.conditions["if_A"] / point.forward_current_A - 1.0
-            if abs(deviation) > 0.5 * self.sequence.tolerances.forward_current:
-                self._correct(point, float(result.conditions["if_A"]))
-        if self.options.on_stored is not None:
-            self.options.on_stored(result)
-        return result
+        widen = {name: self.widen.get((point.index, name), 1.0)
+                 for name in ("diode_current", "diode_voltage")}
+        return _InFlight(planned, attempt, ticket, plan.first_pulse_s, widen)

@@ -337,6 +337,7 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
              manifest: dict[str, Any], store: ResultsStore, raw: RawRecord) -> None:
     resources = resolve_resources(prep.bench, options.sim_resources)
     station: Station | None = None
+    cycle: ShotCycle | None = None
     error: BaseException | None = None
     try:
         station = Station(prep.bench, resources, options.clock)
@@ -377,6 +378,8 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         if station is not None:
             outcome.safe_state = _safe(station)
             station.close()
+        if cycle is not None:
+            cycle.close()  # shots fired before the end are stored and analysed
         _finish(outcome, manifest, store)
     if error is not None:
         log.error("run %s %s: %s", outcome.run_id, outcome.status, outcome.error)

@@ -7,7 +7,9 @@ A SQLite file is the default (``sqlite:///<run_dir>/results.db``); a PostgreSQL 
     one row per run: ``run_id`` (key), ``part``, ``lot``, ``started``, ``finished``,
     ``status``, ``manifest`` (JSON text).
 ``shots``
-    one row per analysed shot; unique on ``(run_id, serial, point_index, repeat, attempt)`` so a
+    one row per shot: analysed, or *pending* (recorded before its analysis finished, flag
+    ``analysis_pending``; :meth:`ResultsStore.complete_shot` replaces it by the analysed
+    shot); unique on ``(run_id, serial, point_index, repeat, attempt)`` so a
     resumed run can never store a shot twice. Dict-valued fields of
     :class:`~benchrun.records.ShotResult` are JSON text (floats written with ``repr``, so they
     round-trip bit-exactly on every backend); the target columns ``temperature_K``,
@@ -46,7 +48,7 @@ from sqlalchemy.engine import Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, IntegrityError, NoSuchModuleError, SQLAlchemyError
 
 from benchrun.errors import StoreError
-from benchrun.records import ShotResult
+from benchrun.records import FLAG_ANALYSIS_PENDING, ShotResult
 from benchrun.store.canonical import canonical_json
 from benchrun.store.raw import DURABILITY_POWER_LOSS, check_durability
 from benchrun.store.schema import (
@@ -374,6 +376,51 @@ class ResultsStore:
             ) from exc
         except SQLAlchemyError as exc:
             raise StoreError(f"cannot store shot {key}: {exc}") from exc
+
+    def complete_shot(self, shot: ShotResult) -> bool:
+        """Replace the *pending* row of ``shot``'s identity (stored by :meth:`add_shot` with
+        the single flag :data:`~benchrun.records.FLAG_ANALYSIS_PENDING` before the shot was
+        analysed) by the analysed ``shot``, in one committed transaction.
+
+        Idempotent: completing with the identical analysed shot again does nothing.
+
+        Returns
+        -------
+        bool
+            True when the pending row was replaced, False when the identical row was already
+            there.
+
+        Raises
+        ------
+        StoreError
+            No row of that identity, a *different* analysed shot already stored under it,
+            ``shot`` itself still pending, or a database error.
+        """
+        if shot.pending:
+            raise StoreError("complete_shot needs an analysed shot, not a pending one")
+        row = self._shot_row(shot)
+        key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
+        c = shots_table.c
+        with self._begin(f"cannot complete shot {key}") as conn:
+            replaced = conn.execute(
+                update(shots_table)
+                .where(c.run_id == key[0], c.serial == key[1], c.point_index == key[2],
+                       c.repeat == key[3], c.attempt == key[4],
+                       c.flags == canonical_json([FLAG_ANALYSIS_PENDING]))
+                .values(**row)
+            ).rowcount
+            existing = None if replaced else self._stored_row(conn, key)
+        if replaced:
+            return True
+        if existing is None:
+            raise StoreError(f"cannot complete shot {key}: it is not stored")
+        stored = {k: v for k, v in existing._mapping.items() if k != "id"}
+        if _same_row(stored, row):
+            return False
+        raise StoreError(
+            f"cannot complete shot {key}: a different analysed shot is already stored for run "
+            f"{key[0]!r}, serial {key[1]!r}, point {key[2]}, repeat {key[3]}, attempt {key[4]}"
+        )
 
     def shots(self, run_id: str) -> list[ShotResult]:
         """Every shot of a run, in the order they were stored."""

@@ -1,0 +1,148 @@
+"""Storing and analysing captured shots on one background thread, in the order fired.
+
+The shot cycle hands every capture to :class:`ShotWriter` and goes on preparing the next
+shot (device check, bus read-back, temperature) while the worker thread
+
+1. writes the shot to the raw record and makes it durable (the run's durability mode),
+2. records it in the results DB as *pending*: its identity, raw reference, timestamp and the
+   conditions measured outside the capture, with the single flag
+   :data:`~benchrun.records.FLAG_ANALYSIS_PENDING`, committed.
+
+The shot is then *stored*. The cycle waits for that (:meth:`ShotWriter.wait_stored`) before
+it fires the next shot, so every shot is in the raw record and in the results DB before the
+next one fires. The worker goes on:
+
+3. analyses the shot and checks its measured conditions
+   (:func:`benchrun.runner.shots.build_result`),
+4. replaces the pending row by the analysed shot (:meth:`ResultsStore.complete_shot`).
+
+Steps 3 and 4 overlap the next acquisition; the cycle reads the analysed result
+(:meth:`ShotTicket.result`) before it decides on a retry. A crash between steps 2 and 4 leaves a
+pending row, which ``--resume`` completes from the raw record before it fires anything
+(the same path as a shot that reached only the raw record).
+
+A failure of the worker (a store error) is raised in the cycle's thread by the next
+:meth:`ShotWriter.wait_stored` or :meth:`ShotTicket.result`; the run then ends in the safe
+state like any other error.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Mapping
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
+
+from benchrun.records import FLAG_ANALYSIS_PENDING, ShotResult
+from benchrun.runner.shots import ShotContext, build_result
+
+if TYPE_CHECKING:
+    from benchrun.analysis import ChannelData, ProbeCalibration
+    from benchrun.config.sequence import SequenceConfig
+    from benchrun.store.raw import RawRecord
+    from benchrun.store.results import ResultsStore
+
+log = logging.getLogger("benchrun.runner")
+
+
+@dataclass(frozen=True)
+class CapturedShot:
+    """One capture as fired, with everything the raw record and the analysis need."""
+
+    key: str
+    context: ShotContext
+    t_start: float
+    dt: float
+    channels: Mapping[str, ChannelData]
+    probes: Mapping[str, ProbeCalibration]
+    settings: dict[str, Any]
+
+
+@dataclass
+class ShotTicket:
+    """Progress of one submitted shot: *stored* (raw record and DB) and *analysed*."""
+
+    shot: CapturedShot
+    stored: Future[str] = field(default_factory=Future)
+    analysed: Future[ShotResult] = field(default_factory=Future)
+
+    def wait_stored(self) -> str:
+        """Block until the shot is durable in the raw record and recorded in the DB; returns
+        its raw reference. Raises the worker's error."""
+        return self.stored.result()
+
+    def result(self) -> ShotResult:
+        """Block until the shot is analysed and its DB row completed. Raises the worker's
+        error."""
+        return self.analysed.result()
+
+
+def pending_result(context: ShotContext, raw_ref: str) -> ShotResult:
+    """The DB row of a shot recorded before its analysis: no metrics, not valid, flagged."""
+    return ShotResult(
+        run_id=context.run_id, part=context.part, lot=context.lot, serial=context.serial,
+        point=context.point, repeat=context.repeat, attempt=context.attempt,
+        timestamp=context.timestamp,
+        conditions={"if_A": None, "didt_A_per_s": None, "vr_V": None,
+                    "temperature_K": context.temperature_K},
+        metrics={}, flags=(FLAG_ANALYSIS_PENDING,), valid=False, raw_ref=raw_ref,
+    )  # fmt: skip
+
+
+class ShotWriter:
+    """Stores, then analyses, submitted shots on one worker thread (module docstring).
+
+    Parameters
+    ----------
+    raw, store
+        The run's raw record and results store; while shots are in flight only the worker
+        writes to them.
+    sequence
+        The run's sequence (analysis options and condition tolerances).
+    """
+
+    def __init__(self, raw: RawRecord, store: ResultsStore, sequence: SequenceConfig) -> None:
+        self.raw = raw
+        self.store = store
+        self.sequence = sequence
+        self._worker = ThreadPoolExecutor(max_workers=1, thread_name_prefix="shot-writer")
+        self._last: ShotTicket | None = None
+
+    def submit(self, shot: CapturedShot) -> ShotTicket:
+        """Queue a shot; returns at once."""
+        ticket = ShotTicket(shot)
+        self._worker.submit(self._work, ticket)
+        self._last = ticket
+        return ticket
+
+    def wait_stored(self) -> None:
+        """Block until every submitted shot is stored (shots are handled in order)."""
+        if self._last is not None:
+            self._last.wait_stored()
+
+    def close(self) -> None:
+        """Finish every submitted shot (stored and analysed), then stop the worker. Errors
+        stay with the tickets."""
+        self._worker.shutdown(wait=True)
+
+    def _work(self, ticket: ShotTicket) -> None:
+        shot = ticket.shot
+        try:
+            ref = self.raw.append_shot(shot.key, shot.t_start, shot.dt, shot.channels,
+                                       shot.probes, shot.context.attrs(shot.settings))
+            self.store.add_shot(pending_result(shot.context, ref))
+        except BaseException as exc:  # handed to the cycle's thread
+            ticket.stored.set_exception(exc)
+            ticket.analysed.set_exception(exc)
+            return
+        ticket.stored.set_result(ref)
+        try:
+            result = build_result(shot.context, shot.t_start, shot.dt, shot.channels,
+                                  shot.probes, self.sequence, ref)
+            self.store.complete_shot(result)
+        except BaseException as exc:  # handed to the cycle's thread
+            log.error("shot %s: analysis or its DB row failed: %s", shot.key, exc)
+            ticket.analysed.set_exception(exc)
+            return
+        ticket.analysed.set_result(result)
