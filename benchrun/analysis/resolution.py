@@ -17,9 +17,11 @@ Why 10 samples (``MIN_SAMPLES_PER_INTERVAL``)
   instant is known only to within the sample interval dt, i.e. ±dt/2. The two ends of an
   interval n samples long then give a worst-case relative error of dt/(n·dt) = 1/n: n ≥ 10
   keeps it within 10 % (common practice for the 10 % figure). In GUM terms (JCGM 100:2008,
-  F.2.2.1, resolution of a digital indication: u = δ/√12 per instant) the interval's
-  standard uncertainty is dt/√6 and its expanded uncertainty (k = 2) 0.82·dt, at most 8 %
-  at n = 10.
+  F.2.2.1, clause number from memory: resolution of a digital indication, u = δ/√12 per
+  instant) the interval's standard uncertainty is dt/√6 and its expanded uncertainty
+  (k = 2) 0.82·dt, at most 8 % at n = 10. On a triangular recovery with its corners off the
+  grid the worst tb error over grid phases is below 1/n at n = 10 and 20 and above 10 % at
+  n = 5 (tests/test_undersampled_recovery.py).
 - The trr definition itself. The IEC 60747-2 extrapolation line passes through the point
   where the current rises through 0.9·Irrm; on a straight tb ramp that point lies
   (1 − 0.9)·tb after the peak. Linear interpolation finds it on the ramp, not across the
@@ -35,6 +37,10 @@ A record given as a non-uniform time array (a variable-step simulator's output) 
 piecewise-linear waveform its points define, measured on a uniform grid refined for the
 event (:func:`benchrun.analysis.timebase.event_step`); there the samples counted are the
 grid's steps, and the flag appears only when the grid's point budget keeps it too coarse.
+
+The count is taken on the *measured* interval. Sampling can only smear a sharp edge over
+the samples bracketing it, so an under-sampled snap measures at most about two samples
+longer than it is: a measured span of 10 or more means a true span of at least about 8.
 
 Whether the flag makes a shot invalid: it does not. It warns; the shot's validity follows
 from its measured conditions, clipping and missing metrics only (``DEVELOPERS.md``).
