@@ -233,3 +233,32 @@ def test_block_payload_helpers_agree_with_driver_decoding():
     block = scpi.encode_block(codes.tobytes(), terminator=False)
     decoded = np.frombuffer(scpi.parse_block(block, terminator=False), dtype=">i2")
     assert decoded.tolist() == list(range(-5, 5))
+
+
+def test_trigger_wait_with_an_expected_duration_asks_few_times():
+    # the scope is left alone for 80 % of the expected acquisition time, then asked every
+    # 1 % of it: an acquisition as long as expected is seen with about 20 queries, where the
+    # growing-interval rule alone asks every 2 ms (common practice: poll near the end)
+    import time as _time
+
+    from benchrun.instruments import roles
+
+    class FakeScope:
+        wait_triggered = roles.Scope.wait_triggered
+
+        def __init__(self, duration_s):
+            self.done_at = _time.monotonic() + duration_s
+            self.asked = 0
+
+        def acquisition_done(self):
+            self.asked += 1
+            return _time.monotonic() >= self.done_at
+
+    expected = FakeScope(0.06)
+    assert expected.wait_triggered(2.0, expected_s=0.06)
+    plain = FakeScope(0.06)
+    assert plain.wait_triggered(2.0)
+    assert expected.asked < plain.asked
+    assert expected.asked <= 2 + int(0.2 * 0.06 / (0.01 * 0.06)) + 3
+    never = FakeScope(10.0)
+    assert never.wait_triggered(0.05, expected_s=0.06) is False

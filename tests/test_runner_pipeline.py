@@ -152,3 +152,29 @@ def test_shot_stored_before_its_analysis_is_completed_on_resume(tmp_path, monkey
     assert refired == outcome.shots_stored == 3 - len(before)
     with RawRecord(run_dir / "raw.h5", "r") as raw:
         assert sorted(raw.keys()) == sorted(s.raw_ref.split("/", 1)[1] for s in after)
+
+
+@pytest.mark.slow
+def test_device_swapped_behind_the_runner_is_selected_again_before_firing(tmp_path):
+    # the device check runs beside the bus set-up on every shot; a device the handler moved
+    # on its own (here: the simulated handler is told another serial is in the fixture)
+    # must be caught before the next shot fires, never recorded under the wrong serial
+    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
+                         repeats=3)
+    sequence = load_sequence(seq)
+    with simulated_bench(load_bench(BENCH), sequence) as sim:
+        count = {"n": 0}
+
+        def swap(result):
+            count["n"] += 1
+            if count["n"] == 1:
+                sim.bench.handler.selected = "KFR-2611A-002"
+
+        options = RunOptions(out_dir=tmp_path / "out", sim_resources=sim.resources,
+                             clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False,
+                             on_stored=swap)
+        outcome = run_sequence(seq, BENCH, options)
+        fired_serials = {c.serial for c in sim.bench.shots}
+    assert outcome.status == "complete" and count["n"] == 3
+    assert fired_serials == {"KFR-2611A-001"}
+    assert "selecting it again" in (outcome.run_dir / "run.log").read_text()

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import logging
 from collections import deque
+from concurrent import futures
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -392,10 +393,22 @@ class ShotCycle:
         measured: dict[str, Any] = {}
 
         def shoot() -> Capture:
-            self.station.configure_pulse(plan, point.gate_resistance_ohm)
-            measured["bus_V"] = self.station.energise(point.bus_voltage_V)
-            self.station.configure_scope(plan, ranges, point.bus_voltage_V)
-            measured["temperature_K"] = self.station.temperature()
+            # the device check and the temperature are asked on helper threads while the bus
+            # is set up and read back here (three instruments, three connections)
+            device = self.station.in_parallel(lambda: self.station.is_selected(planned.serial))
+            temperature = self.station.in_parallel(self.station.temperature)
+            try:
+                self.station.configure_pulse(plan, point.gate_resistance_ohm)
+                measured["bus_V"] = self.station.energise(point.bus_voltage_V)
+                self.station.configure_scope(plan, ranges, point.bus_voltage_V)
+            finally:  # never leave a query running on a connection a retry will use
+                futures.wait((device, temperature))
+            measured["temperature_K"] = temperature.result()
+            if not device.result():
+                log.warning("the handler does not report %s in the fixture: selecting it "
+                            "again", planned.serial)
+                self.station.select(planned.serial)
+                measured["bus_V"] = self.station.energise(point.bus_voltage_V)
             self.writer.wait_stored()  # the previous shot is durable in both stores
             self._wait_spacing()
             measured["timestamp"] = utc_now()

@@ -10,9 +10,12 @@ temperature, fire one pulse train and read the capture. The safe state is
 from __future__ import annotations
 
 import logging
+import time
+from collections import deque
 from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, TypeVar
 
 from benchrun.config.bench import BenchConfig
 from benchrun.errors import InstrumentTimeout, RunError
@@ -20,6 +23,8 @@ from benchrun.instruments.roles import ChannelTrace, InstrumentIdentity, connect
 from benchrun.runner.conditions import StabilityTracker
 from benchrun.runner.plan import PulsePlan, SignalRange
 from benchrun.runner.safety import Clock, SafeStateReport, make_safe
+
+T = TypeVar("T")
 
 log = logging.getLogger("benchrun.runner")
 
@@ -89,6 +94,11 @@ class Station:
         self._supply_on = False
         self._pulse_on = False
         self._epoch = self._reconnects()
+        #: the serial this station put in the fixture (confirmed with the handler every shot)
+        self._selected: str | None = None
+        #: wall-clock durations of the last acquisitions (fire to record), for the trigger wait
+        self._acquisitions: deque[float] = deque(maxlen=3)
+        self._helpers: ThreadPoolExecutor | None = None
 
     # --- lifecycle -----------------------------------------------------------------------
 
@@ -102,7 +112,18 @@ class Station:
                      ident.model, ident.serial, ident.firmware, ident.resource, ident.family)
         return dict(self.identities)
 
+    def in_parallel(self, call: Callable[[], T]) -> Future[T]:
+        """Run ``call`` on a helper thread (a query to an instrument the caller's thread does
+        not talk to meanwhile: every instrument has its own connection, so queries to
+        different instruments overlap instead of queueing)."""
+        if self._helpers is None:
+            self._helpers = ThreadPoolExecutor(max_workers=2, thread_name_prefix="station")
+        return self._helpers.submit(call)
+
     def close(self) -> None:
+        if self._helpers is not None:
+            self._helpers.shutdown(wait=True)
+            self._helpers = None
         for driver in self.drivers.values():
             close = getattr(driver.session, "close", None)
             if close is not None:
@@ -200,12 +221,17 @@ class Station:
         return list(self.handler.list_devices())
 
     def select(self, serial: str) -> None:
-        """Put ``serial`` in the fixture; the bus is discharged first (no handling live)."""
-        if self.handler is None:
+        """Put ``serial`` in the fixture; the bus is discharged first (no handling live).
+
+        When this station put ``serial`` in the fixture itself, nothing is asked here: every
+        shot confirms the device with the handler (:meth:`is_selected`, asked while the bus is
+        set up) and selects it again when the handler reports another one.
+        """
+        if self.handler is None or self._selected == serial:
             return
-        # asked before every shot, never remembered: the device in the fixture must be the
-        # one the shot is recorded for
+        self._selected = None
         if self.handler.selected() == serial:
+            self._selected = serial
             return
         self._pulse_on = False
         self.pulse.output(False)
@@ -213,6 +239,17 @@ class Station:
         log.info("bus at %.1f V; handler selects %s", volts, serial)
         self.handler.select(serial)
         self._voltage = None
+        self._selected = serial
+
+    def is_selected(self, serial: str) -> bool:
+        """Whether the handler reports ``serial`` in the fixture (True without a handler).
+        A False forgets the remembered selection, so the next :meth:`select` moves it."""
+        if self.handler is None:
+            return True
+        if self.handler.selected() == serial:
+            return True
+        self._selected = None
+        return False
 
     def settle(self, kelvin: float, *, band: float, dwell: float, soak: float,
                timeout: float, poll: float,
@@ -299,9 +336,12 @@ class Station:
                 self.pulse.output(True)
             self._pulse_on = True
         self.pulse.fire()
-        if not self.scope.wait_triggered(trigger_timeout_s):
+        fired = time.monotonic()
+        expected = min(self._acquisitions) if self._acquisitions else None
+        if not self.scope.wait_triggered(trigger_timeout_s, expected_s=expected):
             raise InstrumentTimeout(f"the scope did not trigger within {trigger_timeout_s:g} s "
                                     "of firing")
+        self._acquisitions.append(time.monotonic() - fired)
         traces = self.scope.read_channels(channels)
         first = next(iter(traces.values()))
         return Capture(first.t_start, first.dt, traces)
@@ -315,6 +355,8 @@ class Station:
         self._voltage = None
         self._supply_on = False
         self._pulse_on = False
+        self._selected = None
+        self._acquisitions.clear()
 
     # --- safe state -----------------------------------------------------------------------------
 
