@@ -15,7 +15,7 @@ import pytest
 from store_helpers import make_channels, make_probes
 
 from benchrun.store import RawRecord
-from benchrun.store.raw import _CHUNK_BYTES
+from benchrun.store.raw import _CHUNK_BYTES, _WRITE_METADATA_CACHE_BYTES
 
 
 def _dcpl_facts(ds: h5py.Dataset) -> dict[str, object]:
@@ -87,3 +87,20 @@ def test_empty_channel_round_trips(tmp_path):
         shot = raw.read_shot("000000")
     assert {name: ch.codes.size for name, ch in shot.channels.items()} == {
         name: 0 for name in channels}
+
+
+def test_writer_metadata_cache_is_fixed_and_bounded(tmp_path):
+    """Every H5Fflush walks the whole metadata cache: a record open for writing keeps it at a
+    fixed size however many shots it holds; a reader keeps HDF5's default cache."""
+    path = tmp_path / "raw.h5"
+    channels, probes = make_channels(n=500), make_probes()
+    with RawRecord(path, "w", compression=None, durability="process") as raw:
+        config = raw._f.id.get_mdc_config()
+        assert (config.incr_mode, config.flash_incr_mode, config.decr_mode) == (0, 0, 0)
+        for n in range(150):
+            raw.append_shot(f"{n:06d}", 0.0, 1e-9, channels, probes, {"n": n})
+        max_size, _, cur_size, _ = raw._f.id.get_mdc_size()
+        assert max_size == _WRITE_METADATA_CACHE_BYTES >= cur_size
+    with RawRecord(path, "r") as raw, h5py.File(path, "r") as plain:
+        assert raw._f.id.get_mdc_config().max_size == plain.id.get_mdc_config().max_size
+        assert raw.read_shot("000149").attrs == {"n": 149}

@@ -160,6 +160,29 @@ def _codes_create_plist(compression: str | None, size: int, itemsize: int) -> An
     return dcpl
 
 
+#: Metadata cache of a record open for writing, bytes (fixed; HDF5's default adapts from
+#: 2 MiB). Every ``H5Fflush`` walks all entries in the cache, clean or dirty, to list the
+#: dirty ones, and the default cache keeps ~6000 entries of past shots, which made each
+#: flush several times dearer than its writes (and dearer the longer the run). This size
+#: holds a shot's own objects and the ``/shots`` index many times over.
+_WRITE_METADATA_CACHE_BYTES = 256 * 1024
+
+
+def _fix_metadata_cache(f: h5py.File, size: int = _WRITE_METADATA_CACHE_BYTES) -> None:
+    """Give ``f`` a metadata cache of fixed ``size`` bytes (HDF5 ``H5Fset_mdc_config``).
+
+    A smaller cache only evicts (clean) entries of older shots sooner; what a flush writes,
+    and when, is unchanged. Mode 0 is ``H5C_incr__off``, ``H5C_flash_incr__off`` and
+    ``H5C_decr__off`` of HDF5's ``H5Cpublic.h``: no automatic resizing.
+    """
+    config = f.id.get_mdc_config()
+    config.set_initial_size = True
+    config.initial_size = config.max_size = size
+    config.min_size = min(config.min_size, size)
+    config.incr_mode = config.flash_incr_mode = config.decr_mode = 0
+    f.id.set_mdc_config(config)
+
+
 def _is_complete(group: Any) -> bool:
     """True for a shot group with the ``complete`` mark. A group h5py cannot open (``None``:
     a link to an object a crash left unwritten) or whose attributes cannot be read is not."""
@@ -443,6 +466,8 @@ class RawRecord:
                 "open for writing in another process"
             ) from exc
         f = self._file
+        if self.mode != "r":
+            _fix_metadata_cache(f)
         if fresh:
             f.attrs["format"] = FORMAT_NAME
             f.attrs["format_version"] = FORMAT_VERSION
