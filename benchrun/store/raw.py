@@ -119,9 +119,10 @@ _SCALAR_SPACE = h5py.h5s.create(h5py.h5s.SCALAR)
 #: (numpy dtype, HDF5 file type, memory type for the write) per attribute kind: what h5py's
 #: ``attrs[name] = value`` stores for a Python bool, int, float and str. For the numbers the
 #: memory type is the file type, so HDF5 copies the value without setting up a conversion;
-#: a string goes through h5py's own conversion from Python objects (``None``: h5py's default).
+#: a string goes through h5py's own conversion from Python objects, from the memory type
+#: h5py would build for it on every write (``py_create`` of the array's dtype), built once.
 _ATTR_TYPES = {
-    kind: (dtype, htype, None if kind == "str" else htype)
+    kind: (dtype, htype, h5py.h5t.py_create(dtype) if kind == "str" else htype)
     for kind, dtype in (("bool", np.dtype(bool)), ("int", np.dtype(np.int64)),
                         ("float", np.dtype(np.float64)), ("str", h5py.string_dtype()))
     for htype in (h5py.h5t.py_create(dtype, logical=True),)
@@ -705,7 +706,7 @@ class RawRecord:
         try:
             if not self._layout_marked:
                 self._mark_layout()
-            if key in shots:
+            if shots.id.links.exists(key.encode()):  # ``key in shots``, without h5py's path walk
                 if _is_complete(shots.get(key)) and not replace:
                     raise StoreError(f"shot {key} is already in raw record {self.path}")
                 del shots[key]
@@ -713,9 +714,9 @@ class RawRecord:
             group = h5py.h5g.create(self._f.id, None)
             for name, codes in arrays.items():
                 dcpl, space = self._codes_plist_and_space(codes)
-                ds = h5py.h5d.create(group, name.encode(), _code_type(codes.dtype), space,
-                                     dcpl=dcpl)
-                ds.write(h5py.h5s.ALL, h5py.h5s.ALL, codes)
+                htype = _code_type(codes.dtype)  # integer codes: memory type = file type
+                ds = h5py.h5d.create(group, name.encode(), htype, space, dcpl=dcpl)
+                ds.write(h5py.h5s.ALL, h5py.h5s.ALL, codes, mtype=htype)
             # one attribute for every channel's scaling (format 2): each HDF5 attribute
             # costs an object-header update, and a shot used to have four per channel
             _write_new_attrs(group, {"t_start_s": float(t_start), "dt_s": float(dt),
