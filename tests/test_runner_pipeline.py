@@ -15,7 +15,6 @@ import pytest
 from test_runner_support import BENCH, write_sequence
 
 from benchrun.config import load_bench, load_sequence
-from benchrun.runner import station as station_module
 from benchrun.runner.execute import RunOptions, run_sequence
 from benchrun.runner.simbench import simulated_bench
 from benchrun.simulator import server as server_module
@@ -47,14 +46,16 @@ def test_every_shot_is_in_the_db_before_the_next_fires(tmp_path, monkeypatch):
                          temperatures="[25 degC]", repeats=3)
     out = tmp_path / "out"
     seen: list[tuple[int, int]] = []  # (double-pulse shots fired before, DB rows) per fire
-    original = station_module.Station.fire
+    original = server_module.SimulatedBench.fire
 
-    def fire(self, channels, trigger_timeout_s):
-        if len(channels) > 1:  # a double-pulse shot (a trim shot reads one channel)
+    def fire(self, timing, gate_resistance_ohm):
+        # the simulated pulse source received the fire command: what the DB holds now was
+        # committed before the runner sent it
+        if timing[1] > 0:  # a double-pulse shot (a trim shot has no second pulse)
             seen.append((len(seen), _rows(out)))
-        return original(self, channels, trigger_timeout_s)
+        return original(self, timing, gate_resistance_ohm)
 
-    monkeypatch.setattr(station_module.Station, "fire", fire)
+    monkeypatch.setattr(server_module.SimulatedBench, "fire", fire)
     outcome, _ = _run(tmp_path, seq)
     assert outcome.status == "complete"
     assert len(seen) == 6

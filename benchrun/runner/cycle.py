@@ -393,27 +393,43 @@ class ShotCycle:
         measured: dict[str, Any] = {}
 
         def shoot() -> Capture:
-            # the device check and the temperature are asked on helper threads while the bus
-            # is set up and read back here (three instruments, three connections)
+            # the device check is asked on a helper thread while the bus is set up and read
+            # back here (two instruments, two connections), and the writer thread stores the
+            # previous shot meanwhile
             device = self.station.in_parallel(lambda: self.station.is_selected(planned.serial))
-            temperature = self.station.in_parallel(self.station.temperature)
             try:
                 self.station.configure_pulse(plan, point.gate_resistance_ohm)
                 measured["bus_V"] = self.station.energise(point.bus_voltage_V)
                 self.station.configure_scope(plan, ranges, point.bus_voltage_V)
             finally:  # never leave a query running on a connection a retry will use
-                futures.wait((device, temperature))
-            measured["temperature_K"] = temperature.result()
+                futures.wait((device,))
             if not device.result():
                 log.warning("the handler does not report %s in the fixture: selecting it "
                             "again", planned.serial)
                 self.station.select(planned.serial)
                 measured["bus_V"] = self.station.energise(point.bus_voltage_V)
-            self.writer.wait_stored()  # the previous shot is durable in both stores
-            self._wait_spacing()
-            measured["timestamp"] = utc_now()
-            self._last_fire = (self.station.clock.monotonic(), self._spec(point).shot_spacing)
-            return self.station.fire(self.channel_names, self.options.trigger_timeout_s)
+            during: list[futures.Future[float | None]] = []
+
+            def before_fire() -> None:
+                self.writer.wait_stored()  # the previous shot is durable in both stores
+                self._wait_spacing()
+                measured["timestamp"] = utc_now()
+                self._last_fire = (self.station.clock.monotonic(),
+                                   self._spec(point).shot_spacing)
+
+            def on_fired() -> None:
+                # the previous shot's analysis, and the temperature read-back (the device's
+                # temperature cannot move within an acquisition), run while the scope acquires
+                self.writer.release()
+                during.append(self.station.in_parallel(self.station.temperature))
+
+            try:
+                capture = self.station.fire(self.channel_names, self.options.trigger_timeout_s,
+                                            before_fire=before_fire, on_fired=on_fired)
+            finally:
+                futures.wait(during)
+            measured["temperature_K"] = during[0].result()
+            return capture
 
         capture = self._with_retry(shoot, f"shot {planned.serial} {point.label}")
         context = ShotContext(

@@ -322,11 +322,15 @@ class Station:
             self.pulse.configure(*setup)
             self._pulse_setup = setup
 
-    def fire(self, channels: list[str], trigger_timeout_s: float) -> Capture:
+    def fire(self, channels: list[str], trigger_timeout_s: float, *,
+             before_fire: Callable[[], None] | None = None,
+             on_fired: Callable[[], None] | None = None) -> Capture:
         """Arm, fire, wait for the trigger and read every channel.
 
-        The pulse output is asked for (and switched on) unless the station switched it on
-        itself since the last fault or reconnect.
+        ``before_fire`` is called once the scope is armed, just before the fire command (the
+        last chance to hold the shot back); ``on_fired`` the moment the fire command has been
+        sent. The pulse output is asked for (and switched on) unless the station switched it
+        on itself since the last fault or reconnect.
         """
         self._check_sessions()
         self.scope.arm_single()
@@ -335,8 +339,12 @@ class Station:
             if not self.pulse.is_output_on():
                 self.pulse.output(True)
             self._pulse_on = True
+        if before_fire is not None:
+            before_fire()
         self.pulse.fire()
         fired = time.monotonic()
+        if on_fired is not None:
+            on_fired()
         expected = min(self._acquisitions) if self._acquisitions else None
         if not self.scope.wait_triggered(trigger_timeout_s, expected_s=expected):
             raise InstrumentTimeout(f"the scope did not trigger within {trigger_timeout_s:g} s "

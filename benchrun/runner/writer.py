@@ -16,7 +16,10 @@ next one fires. The worker goes on:
    (:func:`benchrun.runner.shots.build_result`),
 4. replaces the pending row by the analysed shot (:meth:`ResultsStore.complete_shot`).
 
-Steps 3 and 4 overlap the next acquisition; the cycle reads the analysed result
+Steps 3 and 4 wait until the next shot has fired (:meth:`ShotWriter.release`, called by the
+cycle the moment the pulse source fires; or until the result is asked for), so they run
+while the scope acquires and do not compete with the cycle's own instrument round trips
+before the fire for the interpreter. The cycle reads the analysed result
 (:meth:`ShotTicket.result`) before it decides on a retry. A crash between steps 2 and 4 leaves a
 pending row, which ``--resume`` completes from the raw record before it fires anything
 (the same path as a shot that reached only the raw record).
@@ -29,6 +32,7 @@ state like any other error.
 from __future__ import annotations
 
 import logging
+import threading
 from collections.abc import Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -64,6 +68,8 @@ class ShotTicket:
     """Progress of one submitted shot: *stored* (raw record and DB) and *analysed*."""
 
     shot: CapturedShot
+    index: int = 0
+    writer: ShotWriter | None = None
     stored: Future[str] = field(default_factory=Future)
     analysed: Future[ShotResult] = field(default_factory=Future)
 
@@ -73,8 +79,10 @@ class ShotTicket:
         return self.stored.result()
 
     def result(self) -> ShotResult:
-        """Block until the shot is analysed and its DB row completed. Raises the worker's
-        error."""
+        """Block until the shot is analysed and its DB row completed (its analysis is
+        released now if it was not yet). Raises the worker's error."""
+        if self.writer is not None:
+            self.writer.release(self.index)
         return self.analysed.result()
 
 
@@ -108,13 +116,25 @@ class ShotWriter:
         self.sequence = sequence
         self._worker = ThreadPoolExecutor(max_workers=1, thread_name_prefix="shot-writer")
         self._last: ShotTicket | None = None
+        self._submitted = 0
+        self._released = -1  # shots up to this index may be analysed
+        self._gate = threading.Condition()
 
     def submit(self, shot: CapturedShot) -> ShotTicket:
         """Queue a shot; returns at once."""
-        ticket = ShotTicket(shot)
+        ticket = ShotTicket(shot, self._submitted, self)
+        self._submitted += 1
         self._worker.submit(self._work, ticket)
         self._last = ticket
         return ticket
+
+    def release(self, upto: int | None = None) -> None:
+        """Let the analysis of every shot submitted so far (or up to index ``upto``) start."""
+        with self._gate:
+            last = self._submitted - 1 if upto is None else upto
+            if last > self._released:
+                self._released = last
+                self._gate.notify_all()
 
     def wait_stored(self) -> None:
         """Block until every submitted shot is stored (shots are handled in order)."""
@@ -124,6 +144,7 @@ class ShotWriter:
     def close(self) -> None:
         """Finish every submitted shot (stored and analysed), then stop the worker. Errors
         stay with the tickets."""
+        self.release()
         self._worker.shutdown(wait=True)
 
     def _work(self, ticket: ShotTicket) -> None:
@@ -137,6 +158,8 @@ class ShotWriter:
             ticket.analysed.set_exception(exc)
             return
         ticket.stored.set_result(ref)
+        with self._gate:
+            self._gate.wait_for(lambda: self._released >= ticket.index)
         try:
             result = build_result(shot.context, shot.t_start, shot.dt, shot.channels,
                                   shot.probes, self.sequence, ref)
