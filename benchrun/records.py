@@ -19,6 +19,20 @@ CONDITION_KEYS = ("if_A", "didt_A_per_s", "vr_V", "temperature_K")
 #: raw record on ``--resume``. Such a shot is not valid.
 FLAG_ANALYSIS_PENDING = "analysis_pending"
 
+#: Starts of the flags that make a shot invalid whatever its measured conditions (the runner's
+#: ``build_result``): no event found, required metrics missing, a clipped diode channel, not
+#: analysed yet. Every other flag is a condition flag (``"condition:..."``) or a warning.
+INVALIDATING_FLAGS = ("analysis_failed", "metrics_missing", "clipped_diode",
+                      FLAG_ANALYSIS_PENDING)
+
+
+def invalid_for_conditions_only(flags: tuple[str, ...] | list[str]) -> bool:
+    """Whether an invalid shot carrying ``flags`` was invalid only for its measured
+    conditions: at least one condition flag and no invalidating flag (warnings, such as an
+    under-resolved recovery, do not count)."""
+    return (any(f.startswith("condition:") for f in flags)
+            and not any(f.startswith(INVALIDATING_FLAGS) for f in flags))
+
 
 @dataclass(frozen=True)
 class TestPoint:

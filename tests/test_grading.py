@@ -110,6 +110,18 @@ def test_condition_flags_are_judged_again_by_the_limits_tolerances(tmp_path, lim
     # an analysis failure is never re-admitted
     broken = replace(flagged, flags=("no_event",))
     assert grade_lot([broken, shot("S030", HOT, 0)], wider).device("S030").verdict == "invalid"
+    # a warning beside the condition flag does not stop the re-judging (the runner's
+    # build_result makes a shot invalid only for its conditions, missing metrics, a clipped
+    # diode channel or a pending analysis) ...
+    warned = replace(flagged, flags=(*flagged.flags, "undersampled_recovery: tb spans 2.5 "
+                                     "samples (need >= 10); not resolved: tb_s"))
+    assert grade_lot([warned, shot("S030", HOT, 0)], wider).device("S030").verdict == (
+        "conforming")
+    # ... an invalidating flag does
+    for reason in ("clipped_diode_current", "metrics_missing: trr_s", "analysis_pending"):
+        bad = replace(flagged, flags=(*flagged.flags, reason))
+        assert grade_lot([bad, shot("S030", HOT, 0)], wider).device("S030").verdict == (
+            "invalid"), reason
 
 
 def test_missing_required_condition_makes_the_device_invalid(limits):

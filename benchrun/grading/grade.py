@@ -58,11 +58,8 @@ from benchrun.grading.uncertainty import (
     rectangular,
     triangular,
 )
-from benchrun.records import ShotResult, TestPoint
+from benchrun.records import ShotResult, TestPoint, invalid_for_conditions_only
 from benchrun.units import format_si
-
-#: Prefix of the runner's condition-check flags (``benchrun.runner.conditions``).
-CONDITION_FLAG = "condition:"
 
 #: Acquisition facts combined over a device's shots by taking the largest (conservative).
 ACQUISITION_KEYS = ("sample_interval_s", "current_range_A", "voltage_range_V", "adc_bits")
@@ -98,13 +95,14 @@ def point_matches(point: TestPoint, condition: Condition, tol: Tolerances) -> bo
 def shot_problems(shot: ShotResult, condition: Condition, tol: Tolerances) -> list[str]:
     """Why a shot cannot be graded at ``condition`` (empty when it is valid).
 
-    A shot the runner marked invalid stays invalid, unless every flag it carries is a
-    condition flag (``"condition:..."``): then its measured conditions are judged again
-    against the limits file's tolerances, so regrading with other tolerances takes effect.
+    A shot the runner marked invalid stays invalid, unless it was invalid for its measured
+    conditions only (:func:`benchrun.records.invalid_for_conditions_only`: a condition flag
+    ``"condition:..."``, no invalidating flag; warnings do not count): then its measured
+    conditions are judged again against the limits file's tolerances, so regrading with
+    other tolerances takes effect.
     """
     problems: list[str] = []
-    condition_only = bool(shot.flags) and all(f.startswith(CONDITION_FLAG) for f in shot.flags)
-    if not shot.valid and not condition_only:
+    if not shot.valid and not invalid_for_conditions_only(shot.flags):
         flags = f" ({', '.join(shot.flags)})" if shot.flags else ""
         problems.append(f"marked invalid at acquisition{flags}")
     point = shot.point
