@@ -179,3 +179,23 @@ def test_device_swapped_behind_the_runner_is_selected_again_before_firing(tmp_pa
     assert outcome.status == "complete" and count["n"] == 3
     assert fired_serials == {"KFR-2611A-001"}
     assert "selecting it again" in (outcome.run_dir / "run.log").read_text()
+
+
+@pytest.mark.slow
+def test_durability_is_chosen_on_the_command_line_and_recorded(tmp_path, capsys):
+    from benchrun import cli
+    from benchrun.commands.run import DURABILITY_CHOICES
+    from benchrun.store.raw import DURABILITY_MODES
+
+    assert DURABILITY_CHOICES == DURABILITY_MODES
+    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]")
+    out = tmp_path / "runs"
+    code = cli.main(["run", str(seq), "--bench", str(BENCH), "--out", str(out),
+                     "--durability", "process", "--no-progress"])
+    assert code == 0, capsys.readouterr()
+    import json
+
+    manifest = json.loads((next(out.iterdir()) / "run.json").read_text())
+    assert manifest["durability"] == "process"
+    with pytest.raises(SystemExit):
+        cli.main(["run", str(seq), "--bench", str(BENCH), "--durability", "sometimes"])

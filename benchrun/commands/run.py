@@ -7,6 +7,8 @@ bench file are served by an in-process simulated bench. After a crash or Ctrl-C,
 folder given) at the first untested point. With a signing identity (``--sign-key`` and
 ``--sign-cert``, or ``--sign-p12``) a complete run is graded and its signed report written;
 the identity is loaded before anything is energised, so a wrong passphrase costs no shots.
+``--durability process`` writes each shot only as far as the operating system before the next
+shot fires (faster; survives the program being killed, not a power cut).
 """
 
 from __future__ import annotations
@@ -18,6 +20,9 @@ from typing import TYPE_CHECKING, Any
 
 from benchrun.commands.report import add_signer_arguments, print_lot
 from benchrun.runner.simbench import DEFAULT_SPEEDUP
+
+#: ``benchrun.store.raw.DURABILITY_MODES`` (the store is not imported to build the parser).
+DURABILITY_CHOICES = ("power-loss", "process")
 
 if TYPE_CHECKING:
     from benchrun.runner.execute import RunOutcome
@@ -39,6 +44,11 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--allow-overdue-calibration", action="store_true",
                         help="run with instruments past their calibration date "
                              "(recorded in the run manifest)")
+    parser.add_argument("--durability", choices=DURABILITY_CHOICES, default=DURABILITY_CHOICES[0],
+                        help="how far every shot is written before the next one fires: "
+                             "'power-loss' (default: synced to disk, survives a power cut) "
+                             "or 'process' (handed to the operating system: survives the "
+                             "program being killed, not a power cut or system crash)")
     parser.add_argument("--no-progress", action="store_true", help="no live progress display")
     parser.add_argument("--sim-speedup", type=float, default=DEFAULT_SPEEDUP,
                         help="clock speed-up of the simulated bench (sim resources only)")
@@ -80,6 +90,7 @@ def run(args: argparse.Namespace) -> int:
         resume=resume,
         db_url=args.db,
         allow_overdue_calibration=args.allow_overdue_calibration,
+        durability=args.durability,
         show_progress=not args.no_progress and sys.stderr.isatty(),
         on_finish=print_outcome,
     )
