@@ -114,8 +114,6 @@ def check_durability(durability: str) -> str:
 
 
 _SCALAR_SPACE = h5py.h5s.create(h5py.h5s.SCALAR)
-#: (numpy dtype, HDF5 file type) per attribute kind: what h5py's ``attrs[name] = value``
-#: stores for a Python bool, int, float and str
 #: (numpy dtype, HDF5 file type, memory type for the write) per attribute kind: what h5py's
 #: ``attrs[name] = value`` stores for a Python bool, int, float and str. For the numbers the
 #: memory type is the file type, so HDF5 copies the value without setting up a conversion;
@@ -704,12 +702,12 @@ class RawRecord:
         })
         shots = self._shots
         try:
-            if not self._layout_marked:
-                self._mark_layout()
             if shots.id.links.exists(key.encode()):  # ``key in shots``, without h5py's path walk
                 if _is_complete(shots.get(key)) and not replace:
                     raise StoreError(f"shot {key} is already in raw record {self.path}")
                 del shots[key]
+            if not self._layout_marked:
+                self._mark_layout()
             # unlinked until complete and flushed (module docstring, "Crash safety")
             group = h5py.h5g.create(self._f.id, None)
             for name, codes in arrays.items():
@@ -717,8 +715,7 @@ class RawRecord:
                 htype = _code_type(codes.dtype)  # integer codes: memory type = file type
                 ds = h5py.h5d.create(group, name.encode(), htype, space, dcpl=dcpl)
                 ds.write(h5py.h5s.ALL, h5py.h5s.ALL, codes, mtype=htype)
-            # one attribute for every channel's scaling (format 2): each HDF5 attribute
-            # costs an object-header update, and a shot used to have four per channel
+            # format 2: one attribute holds every channel's scaling
             _write_new_attrs(group, {"t_start_s": float(t_start), "dt_s": float(dt),
                                      "channels_json": channels_json,
                                      "probes_json": probes_json, "attrs_json": attrs_json,
