@@ -16,9 +16,11 @@ Definitions (per shot, wall clock):
   bench spends in the scope: arming the scope (``SINGle`` + ``*OPC?``), the fire command,
   the wait from firing until the scope holds the record (on the simulated bench: the circuit
   simulation and digitising of the shot), and the transfer of every channel (waveform source
-  select, scaling preamble queries, binary block). The end of the acquisition is taken from
-  the simulated scope itself (the instant it stores the record), so the tool's own polling
-  latency after that instant is *not* counted as acquisition.
+  select, scaling preamble queries, binary block). The end of the wait is taken from the
+  simulated scope itself: the instant it first answers a status query with "acquisition
+  complete" (the simulated instruments share one lock with the circuit solver, so a query
+  sent during the solve is answered when the solve ends, as a busy real scope answers late);
+  the time from that answer to the tool acting on it is *trigger polling latency*, overhead.
 * overhead = per-shot time - acquisition: everything else on the runner's critical path —
   device-selection check, pulse/scope configuration (sent only when changed) with their
   error-queue drains, bus set-up and read-back, temperature read-back, trigger polling
@@ -96,20 +98,31 @@ switch_voltage: true
 
 
 def _instrument_bench(sim_bench, fresh: bool, last_done) -> None:
-    """Patch one simulated bench: record when the scope holds a record (``last_done``, a
-    shared double of ``time.perf_counter()``, the same clock in every process on Linux) and,
-    for *fresh*, clear the circuit-solution cache before every shot."""
+    """Patch one simulated bench: record when the scope first reports a completed
+    acquisition (``last_done``, a shared double of ``time.perf_counter()``, the same clock in
+    every process on Linux) and, for *fresh*, clear the circuit-solution cache before every
+    shot."""
     from benchrun.simulator import instruments_sim, physics
 
     scope_cls = instruments_sim.SimScope
     original_complete = scope_cls.complete_acquisition
+    original_done = scope_cls.op_acquisition_done
+    reported = {"done": True}
 
     def complete(self, *a, **k):
         result = original_complete(self, *a, **k)
-        last_done.value = time.perf_counter()  # the scope holds the record now
+        reported["done"] = False
         return result
 
+    def done(self, *a, **k):
+        answer = original_done(self, *a, **k)
+        if answer and not reported["done"]:  # the scope says "complete" for the first time
+            reported["done"] = True
+            last_done.value = time.perf_counter()
+        return answer
+
     scope_cls.complete_acquisition = complete
+    scope_cls.op_acquisition_done = done
     if fresh:
         original_fire = type(sim_bench).fire
 
@@ -321,14 +334,16 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
                 points = len(next(iter(shot.channels.values())).codes)
                 channels = len(shot.channels)
 
-    # steady state: intervals between consecutive concluded shots (first shot excluded).
+    # steady state: intervals between consecutive concluded shots; the first shot (after the
+    # trim shots) and the last (concluded with no shot after it: the pipeline drains) are
+    # left out.
     # Headline: median over the shots (robust against other processes on the machine) and
     # mean; the breakdown uses means.
-    intervals = [b - a for a, b in itertools.pairwise(stamps[1:])]
+    intervals = [b - a for a, b in itertools.pairwise(stamps[1:-1])]
     n = len(intervals)
     labels = sorted(spent)
     per_shot = {label: [b.get(label, 0.0) - a.get(label, 0.0)
-                        for a, b in itertools.pairwise(snapshots[1:])] for label in labels}
+                        for a, b in itertools.pairwise(snapshots[1:-1])] for label in labels}
     acq_shots = [sum(per_shot[label][i] for label in ACQ_PARTS if label in per_shot)
                  for i in range(n)]
     overheads = [t - a for t, a in zip(intervals, acq_shots, strict=True)]
@@ -363,6 +378,13 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
         print(f"  {label:46s} {mean_ms(label):7.2f}")
         rest -= mean_ms(label)
     print(f"  {'everything else (bookkeeping, progress, log)':46s} {rest:7.2f}")
+    if args.per_shot:
+        print("per shot (ms): overhead, then each critical-path part")
+        print("  overhead " + " ".join(f"{x * 1e3:5.2f}" for x in overheads))
+        for label in labels:
+            if label not in ACQ_PARTS and label not in background:
+                print(f"  {label[:30]:30s} "
+                      + " ".join(f"{x * 1e3:5.2f}" for x in per_shot[label]))
     print("writer thread, overlapping the next acquisition (mean ms per shot):")
     for label in (*BACKGROUND, "writer thread total"):
         print(f"  {label:46s} {mean_ms(label):7.2f}")
@@ -376,6 +398,8 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--repeats", type=int, default=20)
     parser.add_argument("--sample-interval", default="1 ns")
+    parser.add_argument("--per-shot", action="store_true",
+                        help="also print every shot's overhead and its critical-path parts")
     parser.add_argument("--in-process", action="store_true",
                         help="run the simulated bench in this process (shares the "
                         "interpreter lock with the runner)")

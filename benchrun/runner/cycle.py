@@ -1,16 +1,16 @@
 """The shot cycle: settle a temperature, trim the first pulse, fire, store, verify, retry.
 
 Every shot goes to the raw record (flushed, and fsync-ed unless the run's durability is
-``"process"``) and then to the results DB (its own committed transaction) before the next
-shot is fired, so a crash loses at most the shot in flight. The raw record's ``fsync`` runs on
-a background thread while the shot is analysed; the DB row is written only once the raw shot
-is durable. An instrument fault during a shot is retried once with every
-setting sent again; a second fault ends the run (the caller brings the bench to the safe
-state). An *invalid* shot
-(measured conditions out of tolerance, no event, clipped diode channel) is stored and fired
-again up to ``retry_invalid`` times, with the first pulse corrected from the measured current
-or the scope ranges widened after clipping.
-"""
+``"process"``) and then to the results DB (a committed *pending* row) before the next shot
+is fired, so a crash loses at most the shot in flight; the writer thread
+(:mod:`benchrun.runner.writer`) does both, then analyses the shot while the next one is
+acquired and completes its row. The results rows are not synced to disk on their own: the
+synced raw record holds everything a row is made of, and ``--resume`` rebuilds a row a power
+cut rolled back. An instrument fault during a shot is retried once with every setting sent
+again; a second fault ends the run (the caller brings the bench to the safe state). An
+*invalid* shot (measured conditions out of tolerance, no event, clipped diode channel) is
+stored and fired again up to ``retry_invalid`` times, with the first pulse corrected from the
+measured current or the scope ranges widened after clipping."""
 
 from __future__ import annotations
 
@@ -39,13 +39,13 @@ from benchrun.runner.progress import RunProgress
 from benchrun.runner.safety import check_shot
 from benchrun.runner.shots import ShotContext, build_result, narrowest, probes_for, shot_key
 from benchrun.runner.writer import CapturedShot, ShotTicket, ShotWriter
-from benchrun.store.results import utc_now
+from benchrun.store.raw import DURABILITY_PROCESS
+from benchrun.store.results import ResultsStore, utc_now
 
 if TYPE_CHECKING:
     from benchrun.runner.execute import PreparedRun, RunOptions, RunOutcome
     from benchrun.runner.station import Capture, Station
     from benchrun.store.raw import RawRecord
-    from benchrun.store.results import ResultsStore
 
 log = logging.getLogger("benchrun.runner")
 
@@ -95,8 +95,13 @@ class ShotCycle:
         self.max_attempts = 1 + self.sequence.retry_invalid
         #: next attempt number per (serial, point index, repeat); loaded from the DB once
         self._attempts: dict[tuple[str, int, int], int] | None = None
-        #: stores and analyses every fired shot on its own thread (runner/writer.py)
-        self.writer = ShotWriter(raw, store, self.sequence)
+        #: stores and analyses every fired shot on its own thread (runner/writer.py). Its
+        #: results rows are committed without a disk sync of their own whatever the run's
+        #: durability: the raw record (synced per shot in "power-loss" mode) holds everything
+        #: a row is made of, and a row a power cut rolled back is rebuilt from it on --resume
+        #: (recover_orphans), so one sync per shot keeps every shot.
+        self._rows = ResultsStore(store.url, create=False, durability=DURABILITY_PROCESS)
+        self.writer = ShotWriter(raw, self._rows, self.sequence)
         #: (clock time, shot spacing) of the last shot fired
         self._last_fire: tuple[float, float] | None = None
         #: the last shot fired, until its result is read
@@ -106,6 +111,7 @@ class ShotCycle:
         """Finish storing and analysing every fired shot (called on every exit path, after
         the safe state) and count a shot the run ended before reading."""
         self.writer.close()
+        self._rows.close()
         flight, self._flight = self._flight, None
         if flight is None or flight.ticket.stored.exception() is not None:
             return

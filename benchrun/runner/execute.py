@@ -24,7 +24,6 @@ import hashlib
 import logging
 import shutil
 import signal
-import sys
 import threading
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -62,9 +61,6 @@ from benchrun.store.rundata import (
     store_url_for,
     write_manifest,
 )
-
-#: Interpreter thread switch interval during a run, s (see run_sequence).
-SWITCH_INTERVAL_S = 0.0005
 
 log = logging.getLogger("benchrun.runner")
 
@@ -302,11 +298,6 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
     old_term = None
     if threading.current_thread() is threading.main_thread():
         old_term = signal.signal(signal.SIGTERM, _raise_terminated)
-    # the shot cycle's instrument round trips run beside the writer thread's analysis: a
-    # short interpreter switch interval lets a waiting answer be handled within about half a
-    # millisecond instead of up to the default 5 ms
-    old_switch = sys.getswitchinterval()
-    sys.setswitchinterval(min(old_switch, SWITCH_INTERVAL_S))
     try:
         log.info("%s run %s: %s lot %s, sequence %s, bench %s",
                  "resuming" if resumed else "starting", run_id, prep.sequence.part,
@@ -334,7 +325,6 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
             finally:
                 _record_files(outcome, manifest, store)
     finally:
-        sys.setswitchinterval(old_switch)
         if old_term is not None:
             signal.signal(signal.SIGTERM, old_term)
         close_run_log(handler)
