@@ -67,7 +67,7 @@ from collections.abc import Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Protocol
+from typing import TYPE_CHECKING, Any, Protocol
 
 import h5py
 import numpy as np
@@ -75,6 +75,9 @@ import numpy as np
 from benchrun import __version__
 from benchrun.errors import StoreError
 from benchrun.store.canonical import canonical_json
+
+if TYPE_CHECKING:
+    from benchrun.store.raw_shot import RawShotBuilder
 
 
 def scaling_types() -> tuple[type, type]:
@@ -671,67 +674,36 @@ class RawRecord:
         StoreError
             Bad key or data, key already used, read-only record, or a write failure.
         """
-        self._require_writable()
-        self.wait_durable()  # the previous shot's background sync, if any
-        key = _key_of(key)
-        attrs = dict(attrs or {})
-        if not channels:
-            raise StoreError(f"shot {key}: no channels to store")
-        if not (np.isfinite(t_start) and np.isfinite(dt) and dt > 0):
-            raise StoreError(f"shot {key}: t_start must be finite and dt positive")
-        arrays: dict[str, np.ndarray] = {}
-        for name, ch in channels.items():
-            if not _KEY_RE.match(name):
-                raise StoreError(f"shot {key}: invalid channel name {name!r}")
-            codes = np.asarray(ch.codes)
-            if codes.ndim != 1 or codes.dtype.kind not in "iu" or codes.dtype.itemsize > 2:
-                raise StoreError(
-                    f"shot {key}: channel {name!r} codes must be a 1-D int8/int16 array, "
-                    f"got {codes.dtype} with shape {codes.shape}"
-                )
-            arrays[name] = np.ascontiguousarray(codes)
-        digest = shot_digest(t_start, dt, channels, probes, attrs)
-        probes_json = canonical_json(
-            {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)} for n, p in probes.items()}
-        )
-        attrs_json = canonical_json(attrs)
-        channels_json = canonical_json({
-            name: {"gain": float(ch.gain), "offset": float(ch.offset),
-                   "code_min": int(ch.code_min), "code_max": int(ch.code_max)}
-            for name, ch in channels.items()
-        })
-        shots = self._shots
-        try:
-            if shots.id.links.exists(key.encode()):  # ``key in shots``, without h5py's path walk
-                if _is_complete(shots.get(key)) and not replace:
-                    raise StoreError(f"shot {key} is already in raw record {self.path}")
-                del shots[key]
-            if not self._layout_marked:
-                self._mark_layout()
-            # unlinked until complete and flushed (module docstring, "Crash safety")
-            group = h5py.h5g.create(self._f.id, None)
-            for name, codes in arrays.items():
-                dcpl, space = self._codes_plist_and_space(codes)
-                htype = _code_type(codes.dtype)  # integer codes: memory type = file type
-                ds = h5py.h5d.create(group, name.encode(), htype, space, dcpl=dcpl)
-                ds.write(h5py.h5s.ALL, h5py.h5s.ALL, codes, mtype=htype)
-            # format 2: one attribute holds every channel's scaling
-            _write_new_attrs(group, {"t_start_s": float(t_start), "dt_s": float(dt),
-                                     "channels_json": channels_json,
-                                     "probes_json": probes_json, "attrs_json": attrs_json,
-                                     "content_sha256": digest,
-                                     "complete": True})  # the mark last
-            self._f.flush()  # the shot's objects reach the file before the link to them
-            # last: the shot is now visible (what ``shots[key] = group`` does)
-            h5py.h5o.link(group, shots.id, key.encode(), lcpl=_LCPL_ASCII)
-        except StoreError:
-            raise
-        except (OSError, ValueError, TypeError, KeyError) as exc:
-            raise StoreError(f"cannot write shot {key} to {self.path}: {exc}") from exc
-        self.flush(wait=wait)
+        builder = self.begin_shot(key, replace=replace)
+        for name, channel in channels.items():
+            builder.add_channel(name, channel)
+        return builder.finish(t_start, dt, probes, attrs, wait=wait)
+
+    def begin_shot(self, key: str, *, replace: bool = False) -> RawShotBuilder:
+        """Start a shot written channel by channel (as a scope transfers them): returns a
+        :class:`~benchrun.store.raw_shot.RawShotBuilder`; ``add_channel`` each channel, then
+        ``finish`` links the shot exactly as :meth:`append_shot` does (which is this, all
+        at once). Until ``finish`` the shot is invisible; one never finished leaves nothing
+        visible.
+
+        Raises
+        ------
+        StoreError
+            Bad key, key already used (unless ``replace``), read-only record.
+        """
+        from benchrun.store.raw_shot import RawShotBuilder
+
+        return RawShotBuilder(self, key, replace=replace)
+
+    def _link_shot(self, group: Any, key: str) -> None:
+        """Make a complete, flushed shot group visible under /shots (crash-safe order)."""
+        self._f.flush()  # the shot's objects reach the file before the link to them
+        # last: the shot is now visible (what ``shots[key] = group`` does)
+        h5py.h5o.link(group, self._shots.id, key.encode(), lcpl=_LCPL_ASCII)
+
+    def _shot_written(self, key: str) -> None:
         if key.isdigit() and self._next_number is not None:
             self._next_number = max(self._next_number, int(key) + 1)
-        return f"{SHOTS_GROUP}/{key}"
 
     def _mark_layout(self) -> None:
         """Before the first shot written into a record of an older format: raise its root

@@ -1,0 +1,126 @@
+"""Writing one shot of the raw record channel by channel.
+
+:meth:`RawRecord.begin_shot` returns a :class:`RawShotBuilder`: each channel is written as it
+arrives (the runner hands them over while the scope transfers the next one), and
+:meth:`RawShotBuilder.finish` writes the shot's attributes and links it under ``/shots`` in
+the crash-safe order of the module :mod:`benchrun.store.raw` ("Crash safety"): the group is
+created unlinked, completed, flushed, and only then linked and flushed again. A shot never
+finished stays unlinked: nothing of it is visible, after a crash or not.
+:meth:`RawRecord.append_shot` is this, all at once; the layout written (format 2) is
+documented in :mod:`benchrun.store.raw`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import TYPE_CHECKING, Any
+
+import h5py
+import numpy as np
+
+from benchrun.errors import StoreError
+from benchrun.store import raw as _raw
+from benchrun.store.canonical import canonical_json
+
+if TYPE_CHECKING:
+    from benchrun.store.raw import ChannelLike, ProbeLike, RawRecord
+
+
+class RawShotBuilder:
+    """One shot being written (see the module docstring); use from one thread at a time.
+
+    Raises
+    ------
+    StoreError
+        (on creation) bad key, a complete shot already stored under it (unless
+        ``replace``), read-only record.
+    """
+
+    def __init__(self, record: RawRecord, key: str, *, replace: bool = False) -> None:
+        record._require_writable()
+        record.wait_durable()  # the previous shot's background sync, if any
+        self.record = record
+        self.key = _raw._key_of(key)
+        self.replace = replace
+        self._check_free()
+        self._channels: dict[str, ChannelLike] = {}
+        self._finished = False
+        try:
+            if not record._layout_marked:
+                record._mark_layout()
+            # unlinked until complete and flushed
+            self._group = h5py.h5g.create(record._f.id, None)
+        except (OSError, ValueError, TypeError, KeyError) as exc:
+            raise StoreError(f"cannot write shot {self.key} to {record.path}: {exc}") from exc
+
+    def _check_free(self) -> bool:
+        """True when a (complete or dangling) link holds the key and may be replaced."""
+        shots = self.record._shots
+        if not shots.id.links.exists(self.key.encode()):  # without h5py's path walk
+            return False
+        if _raw._is_complete(shots.get(self.key)) and not self.replace:
+            raise StoreError(f"shot {self.key} is already in raw record {self.record.path}")
+        return True
+
+    def add_channel(self, name: str, channel: ChannelLike) -> None:
+        """Write one channel's codes (scaling goes with the shot's attributes at finish)."""
+        if self._finished:
+            raise StoreError(f"shot {self.key} is already finished")
+        if not _raw._KEY_RE.match(name) or name in self._channels:
+            raise StoreError(f"shot {self.key}: invalid or repeated channel name {name!r}")
+        codes = np.asarray(channel.codes)
+        if codes.ndim != 1 or codes.dtype.kind not in "iu" or codes.dtype.itemsize > 2:
+            raise StoreError(
+                f"shot {self.key}: channel {name!r} codes must be a 1-D int8/int16 array, "
+                f"got {codes.dtype} with shape {codes.shape}"
+            )
+        codes = np.ascontiguousarray(codes)
+        try:
+            dcpl, space = self.record._codes_plist_and_space(codes)
+            htype = _raw._code_type(codes.dtype)  # integer codes: memory type = file type
+            ds = h5py.h5d.create(self._group, name.encode(), htype, space, dcpl=dcpl)
+            ds.write(h5py.h5s.ALL, h5py.h5s.ALL, codes, mtype=htype)
+        except (OSError, ValueError, TypeError, KeyError) as exc:
+            raise StoreError(f"cannot write shot {self.key} to {self.record.path}: "
+                             f"{exc}") from exc
+        self._channels[name] = channel
+
+    def finish(self, t_start: float, dt: float, probes: Mapping[str, ProbeLike],
+               attrs: Mapping[str, Any] | None = None, *, wait: bool = True) -> str:
+        """Write the shot's attributes, link it and make it durable; returns its reference
+        (``"shots/<key>"``). ``wait`` as in :meth:`RawRecord.append_shot`."""
+        record, key = self.record, self.key
+        if self._finished:
+            raise StoreError(f"shot {key} is already finished")
+        attrs = dict(attrs or {})
+        channels = self._channels
+        if not channels:
+            raise StoreError(f"shot {key}: no channels to store")
+        if not (np.isfinite(t_start) and np.isfinite(dt) and dt > 0):
+            raise StoreError(f"shot {key}: t_start must be finite and dt positive")
+        digest = _raw.shot_digest(t_start, dt, channels, probes, attrs)
+        probes_json = canonical_json(
+            {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)} for n, p in probes.items()}
+        )
+        channels_json = canonical_json({
+            name: {"gain": float(ch.gain), "offset": float(ch.offset),
+                   "code_min": int(ch.code_min), "code_max": int(ch.code_max)}
+            for name, ch in channels.items()
+        })
+        try:
+            # format 2: one attribute holds every channel's scaling
+            _raw._write_new_attrs(self._group, {
+                "t_start_s": float(t_start), "dt_s": float(dt), "channels_json": channels_json,
+                "probes_json": probes_json, "attrs_json": canonical_json(attrs),
+                "content_sha256": digest, "complete": True})  # the mark last
+            if self._check_free():
+                del record._shots[key]
+            record._link_shot(self._group, key)
+        except StoreError:
+            raise
+        except (OSError, ValueError, TypeError, KeyError) as exc:
+            raise StoreError(f"cannot write shot {key} to {record.path}: {exc}") from exc
+        self._finished = True
+        record.flush(wait=wait)
+        record._shot_written(key)
+        return f"{_raw.SHOTS_GROUP}/{key}"
