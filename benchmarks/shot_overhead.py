@@ -28,9 +28,11 @@ Definitions (per shot, wall clock):
   committed: the runner never fires before that), reading the previous shot's analysed
   result, attempt bookkeeping, progress and logging.
 
-The runner's writer thread stores each shot (raw record, pending results row), then analyses
-it and completes its row while the next shot is acquired (benchrun/runner/writer.py). Its
-work is printed separately; only the part the main thread waits for is overhead.
+The runner's writer thread stores each shot (each channel written to the raw record while the
+next is transferred; then the shot's attributes and link, with the pending results row on a
+second thread beside it), then analyses it and completes its row while the next shot is
+acquired (benchrun/runner/writer.py). Its work is printed separately; only the part the main
+thread waits for is overhead.
 
 The simulator caches its circuit solution per shot condition, so repeated shots at one
 setting cost only digitising and transfer. Both cases are measured and printed: *fresh*
@@ -72,7 +74,9 @@ sys.path.insert(0, str(ROOT))  # measure the tree this script belongs to
 ACQ_PARTS = ("arm scope (SINGle, *OPC?)", "fire command", "fire -> record in scope",
              "waveform preamble (source, scaling)", "waveform blocks")
 TRIGGER_POLL = "trigger polling latency"
-BACKGROUND = ("raw record write (durable)", "results DB: pending row",
+BACKGROUND = ("raw record: each channel, during the transfer",
+              "raw record: finish (attributes, flush, link, sync)",
+              "results DB: pending row (beside the finish)",
               "analysis + condition check", "results DB: completed row")
 BENCH_PATH = ROOT / "sequences" / "bench-sim.yaml"
 
@@ -292,15 +296,18 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
     timed(writer.ShotWriter, "wait_stored", "waiting: previous shot stored")
     timed(writer.ShotTicket, "result", "waiting: previous shot analysed")
     # --- the writer thread (overlaps the next acquisition) ---
-    timed(RawRecord, "append_shot", BACKGROUND[0])
+    from benchrun.store.raw_shot import RawShotBuilder
+
+    timed(RawShotBuilder, "add_channel", BACKGROUND[0])
+    timed(RawShotBuilder, "finish", BACKGROUND[1])
     timed(station.Station, "is_selected", "device check (helper thread)")
     timed(station.Station, "temperature", "temperature read-back (helper thread)")
-    timed(ResultsStore, "add_shot", BACKGROUND[1])
+    timed(ResultsStore, "add_shot", BACKGROUND[2])
     timed(cycle.ShotWriter, "_work", "writer thread total")
     from benchrun.runner import writer as writer_module
 
-    timed(writer_module, "build_result", BACKGROUND[2])
-    timed(ResultsStore, "complete_shot", BACKGROUND[3])
+    timed(writer_module, "build_result", BACKGROUND[3])
+    timed(ResultsStore, "complete_shot", BACKGROUND[4])
 
     case = (f"{'fresh' if fresh else 'cached'} circuit solution per shot, durability "
             f"{durability or 'default'}, simulated bench "

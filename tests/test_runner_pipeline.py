@@ -42,24 +42,40 @@ def _run(tmp_path, seq, **extra):
 
 @pytest.mark.slow
 def test_every_shot_is_in_the_db_before_the_next_fires(tmp_path, monkeypatch):
+    from benchrun.runner.writer import ShotWriter
+
     seq = write_sequence(tmp_path, devices="[KFR-2611A-001, KFR-2611A-002]",
                          temperatures="[25 degC]", repeats=3)
     out = tmp_path / "out"
-    seen: list[tuple[int, int]] = []  # (double-pulse shots fired before, DB rows) per fire
+    tickets = []
+    original_submit = ShotWriter.submit
+
+    def submit(self, shot):
+        ticket = original_submit(self, shot)
+        tickets.append(ticket)
+        return ticket
+
+    # at each double-pulse fire: (shots submitted before, of them stored (raw record durable,
+    # row committed), DB rows)
+    seen: list[tuple[int, int, int]] = []
     original = server_module.SimulatedBench.fire
 
     def fire(self, timing, gate_resistance_ohm):
-        # the simulated pulse source received the fire command: what the DB holds now was
-        # committed before the runner sent it
+        # the simulated pulse source received the fire command: what is stored now was
+        # stored before the runner sent it
         if timing[1] > 0:  # a double-pulse shot (a trim shot has no second pulse)
-            seen.append((len(seen), _rows(out)))
+            done = sum(1 for t in tickets if t.stored.done() and t.stored.exception() is None)
+            seen.append((len(tickets), done, _rows(out)))
         return original(self, timing, gate_resistance_ohm)
 
+    monkeypatch.setattr(ShotWriter, "submit", submit)
     monkeypatch.setattr(server_module.SimulatedBench, "fire", fire)
     outcome, _ = _run(tmp_path, seq)
     assert outcome.status == "complete"
-    assert len(seen) == 6
-    assert all(rows == fired for fired, rows in seen), seen
+    assert [submitted for submitted, _, _ in seen] == list(range(6))
+    assert all(stored == submitted for submitted, stored, _ in seen), seen
+    # every earlier shot has its row; this shot's pending row may already be there too
+    assert all(submitted <= rows <= submitted + 1 for submitted, _, rows in seen), seen
     run = load_run(outcome.run_dir)
     assert len(run.shots) == 6 and not any(s.pending for s in run.shots)
     assert all(s.valid and s.metrics["qrr_C"] > 0 for s in run.shots)
@@ -133,6 +149,7 @@ def test_shot_stored_before_its_analysis_is_completed_on_resume(tmp_path, monkey
         pending = [s for s in before if s.pending]
         assert len(pending) == 1 and pending[0].repeat == 1
         assert not pending[0].valid and pending[0].metrics == {}
+        assert pending[0].conditions["temperature_K"] is None  # recorded at the fire
         fired_before = len(sim.bench.shots)
         resumed = RunOptions(out_dir=out, resume=True, sim_resources=sim.resources,
                              clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False)
@@ -199,3 +216,49 @@ def test_durability_is_chosen_on_the_command_line_and_recorded(tmp_path, capsys)
     assert manifest["durability"] == "process"
     with pytest.raises(SystemExit):
         cli.main(["run", str(seq), "--bench", str(BENCH), "--durability", "sometimes"])
+
+
+@pytest.mark.slow
+def test_row_recorded_beside_a_raw_entry_that_never_landed_is_discarded_on_resume(
+        tmp_path, monkeypatch):
+    # the pending row is committed beside the raw entry's last step; a crash in that step
+    # leaves a row naming a raw entry that never became visible: the shot was in flight,
+    # so the resumed run discards the row and fires that test again
+    from benchrun.store.raw_shot import RawShotBuilder
+
+    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
+                         repeats=3)
+    out = tmp_path / "out"
+    original = RawShotBuilder.finish
+    calls = {"n": 0}
+
+    def crashing(self, *a, **k):
+        calls["n"] += 1
+        if calls["n"] == 2:
+            raise Crash()
+        return original(self, *a, **k)
+
+    sequence = load_sequence(seq)
+    with simulated_bench(load_bench(BENCH), sequence) as sim:
+        options = RunOptions(out_dir=out, sim_resources=sim.resources, clock=sim.clock,
+                             ratings_lookup=sim.ratings, show_progress=False)
+        monkeypatch.setattr(RawShotBuilder, "finish", crashing)
+        with pytest.raises(Crash):
+            run_sequence(seq, BENCH, options)
+        monkeypatch.setattr(RawShotBuilder, "finish", original)
+        run_dir = next(out.iterdir())
+        before = load_run(run_dir).shots
+        with RawRecord(run_dir / "raw.h5", "r") as raw:
+            in_raw = set(raw.keys())
+        orphan_rows = [s for s in before if s.raw_ref.split("/", 1)[1] not in in_raw]
+        assert [(s.repeat, s.pending) for s in orphan_rows] == [(1, True)]
+        resumed = RunOptions(out_dir=out, resume=True, sim_resources=sim.resources,
+                             clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False)
+        outcome = run_sequence(seq, BENCH, resumed)
+    assert outcome.status == "complete"
+    after = load_run(run_dir).shots
+    assert sorted((s.repeat, s.attempt) for s in after) == [(0, 0), (1, 0), (2, 0)]
+    assert all(s.valid and not s.pending for s in after)
+    with RawRecord(run_dir / "raw.h5", "r") as raw:
+        assert sorted(raw.keys()) == sorted(s.raw_ref.split("/", 1)[1] for s in after)
+    assert "never reached the raw record" in (run_dir / "run.log").read_text()

@@ -128,6 +128,23 @@ def test_complete_shot_replaces_only_a_pending_row(store):
     assert store.shots("R-0001") == [analysed]
 
 
+def test_discard_pending_shot_deletes_only_a_pending_row(store):
+    import dataclasses
+
+    from benchrun.records import FLAG_ANALYSIS_PENDING
+
+    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    analysed = make_shot()
+    pending = dataclasses.replace(make_shot(repeat=1), metrics={},
+                                  flags=(FLAG_ANALYSIS_PENDING,), valid=False, acquisition={})
+    store.add_shot(analysed)
+    store.add_shot(pending)
+    assert store.discard_pending_shot(analysed) is False  # analysed rows are never touched
+    assert store.discard_pending_shot(pending) is True
+    assert store.discard_pending_shot(pending) is False
+    assert store.shots("R-0001") == [analysed]
+
+
 def test_add_shot_needs_its_run(store):
     with pytest.raises(StoreError, match="create_run"):
         store.add_shot(make_shot(run_id="R-missing"))

@@ -129,9 +129,19 @@ class ShotCycle:
 
     def recover_orphans(self) -> int:
         """Complete shots a crash left unfinished: in the raw record but not in the DB, or
-        recorded in the DB as pending (not yet analysed). Returns how many."""
+        recorded in the DB as pending (not yet analysed); discard a pending row whose raw
+        entry never became visible (its test is fired again). Returns how many were
+        completed."""
         stored = {(s.serial, s.point.index, s.repeat, s.attempt): s
                   for s in self.store.shots(self.outcome.run_id)}
+        keys = set(self.raw.keys())
+        for shot in stored.values():
+            if shot.pending and shot.raw_ref.split("/", 1)[-1] not in keys:
+                # recorded beside a raw entry the crash kept from becoming visible: the shot
+                # was in flight; its test is fired again
+                self.store.discard_pending_shot(shot)
+                log.info("resume: shot %s never reached the raw record; it is fired again",
+                         shot.raw_ref)
         recovered = 0
         for key in list(self.raw):
             shot = self.raw.read_shot(key)
@@ -397,24 +407,38 @@ class ShotCycle:
         check_shot(plan, point, self.bench)
         ranges = self._ranges(point)
         measured: dict[str, Any] = {}
+        key = shot_key(point.index, planned.serial, planned.repeat, attempt)
+        channels: dict[str, Any] = {}
+        streamed: dict[str, Any] = {}
+
+        def context_with(temperature_K: float | None) -> ShotContext:
+            return ShotContext(
+                run_id=self.outcome.run_id, part=self.sequence.part, lot=self.sequence.lot,
+                serial=planned.serial, point=point, repeat=planned.repeat, attempt=attempt,
+                timestamp=measured["timestamp"], temperature_K=temperature_K,
+                bus_voltage_V=measured["bus_V"],
+            )  # fmt: skip
 
         def shoot() -> Capture:
-            # the device check is asked on a helper thread while the bus is set up and read
-            # back here (two instruments, two connections), and the writer thread stores the
-            # previous shot meanwhile
-            device = self.station.in_parallel(lambda: self.station.is_selected(planned.serial))
-            try:
-                self.station.configure_pulse(plan, point.gate_resistance_ohm)
-                measured["bus_V"] = self.station.energise(point.bus_voltage_V)
-                self.station.configure_scope(plan, ranges, point.bus_voltage_V)
-            finally:  # never leave a query running on a connection a retry will use
-                futures.wait((device,))
-            if not device.result():
+            # the writer thread stores the previous shot meanwhile
+            selected = self.station.is_selected(planned.serial)
+            self.station.configure_pulse(plan, point.gate_resistance_ohm)
+            measured["bus_V"] = self.station.energise(point.bus_voltage_V)
+            self.station.configure_scope(plan, ranges, point.bus_voltage_V)
+            if not selected:
                 log.warning("the handler does not report %s in the fixture: selecting it "
                             "again", planned.serial)
                 self.station.select(planned.serial)
                 measured["bus_V"] = self.station.energise(point.bus_voltage_V)
             during: list[futures.Future[float | None]] = []
+            # each channel goes to the raw record while the next one is transferred
+            stream = self.writer.start(key)  # a retried shot starts a new, unlinked entry
+            streamed["stream"] = stream
+            channels.clear()
+
+            def on_channel(name: str, trace: Any) -> None:
+                channel = channels[name] = narrowest(trace.to_channel_data())
+                stream.add(name, channel)
 
             def before_fire() -> None:
                 self.writer.wait_stored()  # the previous shot is durable in both stores
@@ -424,28 +448,25 @@ class ShotCycle:
                                    self._spec(point).shot_spacing)
 
             def on_fired() -> None:
-                # the previous shot's analysis, and the temperature read-back (the device's
-                # temperature cannot move within an acquisition), run while the scope acquires
+                # while the scope acquires: this shot's pending results row, the previous
+                # shot's analysis, and the temperature read-back (the device's temperature
+                # cannot move within an acquisition)
+                streamed["row"] = self.writer.record_fired(context_with(None))
                 self.writer.release()
                 during.append(self.station.in_parallel(self.station.temperature))
 
             try:
                 capture = self.station.fire(self.channel_names, self.options.trigger_timeout_s,
-                                            before_fire=before_fire, on_fired=on_fired)
+                                            before_fire=before_fire, on_fired=on_fired,
+                                            on_channel=on_channel)
             finally:
                 futures.wait(during)
             measured["temperature_K"] = during[0].result()
             return capture
 
         capture = self._with_retry(shoot, f"shot {planned.serial} {point.label}")
-        context = ShotContext(
-            run_id=self.outcome.run_id, part=self.sequence.part, lot=self.sequence.lot,
-            serial=planned.serial, point=point, repeat=planned.repeat, attempt=attempt,
-            timestamp=measured["timestamp"], temperature_K=measured["temperature_K"],
-            bus_voltage_V=measured["bus_V"],
-        )  # fmt: skip
-        channels = {name: narrowest(trace.to_channel_data())
-                    for name, trace in capture.traces.items()}
+        context = context_with(measured["temperature_K"])
+        assert list(channels) == list(capture.traces)
         settings = {
             "first_pulse_s": plan.first_pulse_s, "off_time_s": plan.off_time_s,
             "second_pulse_s": plan.second_pulse_s, "record_start_s": plan.record_start_s,
@@ -453,10 +474,10 @@ class ShotCycle:
             "gate_resistance_ohm": point.gate_resistance_ohm,
             "ranges": {name: [r.low, r.high] for name, r in ranges.items()},
         }  # fmt: skip
-        key = shot_key(point.index, planned.serial, planned.repeat, attempt)
         ticket = self.writer.submit(CapturedShot(
             key, context, capture.t_start, capture.dt, channels,
-            {name: self.probes[name] for name in channels}, settings))
+            {name: self.probes[name] for name in channels}, settings, streamed["stream"],
+            streamed["row"]))
         if self._attempts is not None:
             identity = (planned.serial, point.index, planned.repeat)
             self._attempts[identity] = max(self._attempts.get(identity, 0), attempt + 1)

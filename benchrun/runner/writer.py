@@ -3,10 +3,17 @@
 The shot cycle hands every capture to :class:`ShotWriter` and goes on preparing the next
 shot (device check, bus read-back, temperature) while the worker thread
 
-1. writes the shot to the raw record and makes it durable (the run's durability mode),
-2. records it in the results DB as *pending*: its identity, raw reference, timestamp and the
-   conditions measured outside the capture, with the single flag
-   :data:`~benchrun.records.FLAG_ANALYSIS_PENDING`, committed.
+1. writes the shot to the raw record and makes it durable (the run's durability mode): each
+   channel as soon as the scope has transferred it (:meth:`ShotWriter.start`, while the next
+   channel is transferred), then the shot's attributes and its link,
+2. has recorded it in the results DB as *pending*: its identity, raw reference, timestamp
+   and bus voltage, with the single flag :data:`~benchrun.records.FLAG_ANALYSIS_PENDING`,
+   committed. The cycle asks for this row the moment the shot fires
+   (:meth:`ShotWriter.record_fired`), so it is written on a second thread while the scope
+   acquires; it names the raw reference before the raw entry is linked, and both must be
+   done before the shot counts as stored. A crash in between can leave a pending row whose
+   raw entry never became visible: ``--resume`` discards that row and fires the test again
+   (the shot was in flight; nothing stored is lost).
 
 The shot is then *stored*. The cycle waits for that (:meth:`ShotWriter.wait_stored`) before
 it fires the next shot, so every shot is in the raw record and in the results DB before the
@@ -35,24 +42,58 @@ import logging
 import threading
 from collections.abc import Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import wait as futures_wait
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 from benchrun.records import FLAG_ANALYSIS_PENDING, ShotResult
-from benchrun.runner.shots import ShotContext, build_result
+from benchrun.runner.shots import ShotContext, build_result, shot_key
+from benchrun.store.raw import shot_ref
 
 if TYPE_CHECKING:
     from benchrun.analysis import ChannelData, ProbeCalibration
     from benchrun.config.sequence import SequenceConfig
     from benchrun.store.raw import RawRecord
+    from benchrun.store.raw_shot import RawShotBuilder
     from benchrun.store.results import ResultsStore
 
 log = logging.getLogger("benchrun.runner")
 
 
+class ShotStream:
+    """A shot's raw-record entry being written channel by channel on the writer thread
+    (:meth:`ShotWriter.start`); an error is kept and raised when the shot is stored."""
+
+    def __init__(self, writer: ShotWriter, key: str) -> None:
+        self.writer = writer
+        self.key = key
+        self.builder: RawShotBuilder | None = None
+        self.error: BaseException | None = None
+        writer._worker.submit(self._guarded, self._begin)
+
+    def add(self, name: str, channel: ChannelData) -> None:
+        """Queue one channel's write."""
+        self.writer._worker.submit(self._guarded, lambda: self._add(name, channel))
+
+    def _begin(self) -> None:
+        self.builder = self.writer.raw.begin_shot(self.key)
+
+    def _add(self, name: str, channel: ChannelData) -> None:
+        assert self.builder is not None
+        self.builder.add_channel(name, channel)
+
+    def _guarded(self, step: Any) -> None:
+        if self.error is None:
+            try:
+                step()
+            except BaseException as exc:  # raised where the shot is stored
+                self.error = exc
+
+
 @dataclass(frozen=True)
 class CapturedShot:
-    """One capture as fired, with everything the raw record and the analysis need."""
+    """One capture as fired, with everything the raw record and the analysis need;
+    ``stream`` holds its channels when they were written as they arrived."""
 
     key: str
     context: ShotContext
@@ -61,6 +102,8 @@ class CapturedShot:
     channels: Mapping[str, ChannelData]
     probes: Mapping[str, ProbeCalibration]
     settings: dict[str, Any]
+    stream: ShotStream | None = None
+    row: Future[None] | None = None
 
 
 @dataclass
@@ -115,10 +158,26 @@ class ShotWriter:
         self.store = store
         self.sequence = sequence
         self._worker = ThreadPoolExecutor(max_workers=1, thread_name_prefix="shot-writer")
+        self._rows = ThreadPoolExecutor(max_workers=1, thread_name_prefix="shot-rows")
         self._last: ShotTicket | None = None
         self._submitted = 0
         self._released = -1  # shots up to this index may be analysed
         self._gate = threading.Condition()
+
+    def start(self, key: str) -> ShotStream:
+        """Begin a shot's raw-record entry; ``add`` its channels as they arrive, then
+        :meth:`submit` the shot with ``stream=`` this."""
+        return ShotStream(self, key)
+
+    def record_fired(self, context: ShotContext) -> Future[None]:
+        """Commit the pending row of a shot that has just fired (on the rows thread); pass
+        the returned future as ``CapturedShot.row``."""
+        pending = pending_result(context, shot_ref(self._key(context)))
+        return self._rows.submit(self.store.record_pending, pending)
+
+    @staticmethod
+    def _key(context: ShotContext) -> str:
+        return shot_key(context.point.index, context.serial, context.repeat, context.attempt)
 
     def submit(self, shot: CapturedShot) -> ShotTicket:
         """Queue a shot; returns at once."""
@@ -146,14 +205,31 @@ class ShotWriter:
         stay with the tickets."""
         self.release()
         self._worker.shutdown(wait=True)
+        self._rows.shutdown(wait=True)
 
     def _work(self, ticket: ShotTicket) -> None:
         shot = ticket.shot
+        row: Future[Any] | None = shot.row
         try:
-            ref = self.raw.append_shot(shot.key, shot.t_start, shot.dt, shot.channels,
-                                       shot.probes, shot.context.attrs(shot.settings))
-            self.store.add_shot(pending_result(shot.context, ref))
+            attrs = shot.context.attrs(shot.settings)
+            ref = shot_ref(shot.key)
+            if row is None:
+                row = self._rows.submit(self.store.record_pending,
+                                        pending_result(shot.context, ref))
+            stream = shot.stream
+            if stream is None:
+                written = self.raw.append_shot(shot.key, shot.t_start, shot.dt,
+                                               shot.channels, shot.probes, attrs)
+            else:
+                if stream.error is not None:
+                    raise stream.error
+                assert stream.builder is not None and stream.key == shot.key
+                written = stream.builder.finish(shot.t_start, shot.dt, shot.probes, attrs)
+            assert written == ref
+            row.result()
         except BaseException as exc:  # handed to the cycle's thread
+            if row is not None:
+                futures_wait((row,))
             ticket.stored.set_exception(exc)
             ticket.analysed.set_exception(exc)
             return

@@ -43,7 +43,7 @@ from dataclasses import fields
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import create_engine, event, insert, select, update
+from sqlalchemy import create_engine, delete, event, insert, select, update
 from sqlalchemy.engine import Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, IntegrityError, NoSuchModuleError, SQLAlchemyError
 
@@ -421,6 +421,51 @@ class ResultsStore:
             f"cannot complete shot {key}: a different analysed shot is already stored for run "
             f"{key[0]!r}, serial {key[1]!r}, point {key[2]}, repeat {key[3]}, attempt {key[4]}"
         )
+
+    def record_pending(self, shot: ShotResult) -> None:
+        """Store a *pending* row (``shot.pending``), replacing a pending row of the same
+        identity (a shot fired again after an instrument fault), in one committed
+        transaction.
+
+        Raises
+        ------
+        StoreError
+            ``shot`` is not pending, an analysed shot is stored under its identity, the run
+            does not exist, or a database error.
+        """
+        if not shot.pending:
+            raise StoreError("record_pending needs a pending shot")
+        row = self._shot_row(shot)
+        c = shots_table.c
+        key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
+        try:
+            with self._engine.begin() as conn:
+                conn.execute(delete(shots_table).where(
+                    c.run_id == key[0], c.serial == key[1], c.point_index == key[2],
+                    c.repeat == key[3], c.attempt == key[4],
+                    c.flags == canonical_json([FLAG_ANALYSIS_PENDING])))
+                conn.execute(self._insert_shot, row)
+        except IntegrityError as exc:
+            raise StoreError(f"cannot record pending shot {key}: an analysed shot is stored "
+                             f"under it, or run {key[0]!r} does not exist") from exc
+        except SQLAlchemyError as exc:
+            raise StoreError(f"cannot record pending shot {key}: {exc}") from exc
+
+    def discard_pending_shot(self, shot: ShotResult) -> bool:
+        """Delete the *pending* row of ``shot``'s identity (a shot recorded while its raw
+        entry was being written, which a crash kept from ever becoming visible). Returns
+        whether a row was deleted; an analysed row is never touched."""
+        c = shots_table.c
+        key = (shot.run_id, shot.serial, int(shot.point.index), int(shot.repeat),
+               int(shot.attempt))
+        with self._begin(f"cannot discard pending shot {key}") as conn:
+            deleted = conn.execute(
+                delete(shots_table).where(
+                    c.run_id == key[0], c.serial == key[1], c.point_index == key[2],
+                    c.repeat == key[3], c.attempt == key[4],
+                    c.flags == canonical_json([FLAG_ANALYSIS_PENDING]))
+            ).rowcount
+        return bool(deleted)
 
     def shots(self, run_id: str) -> list[ShotResult]:
         """Every shot of a run, in the order they were stored."""
