@@ -28,11 +28,12 @@ Definitions (per shot, wall clock):
   committed: the runner never fires before that), reading the previous shot's analysed
   result, attempt bookkeeping, progress and logging.
 
-The runner's writer thread stores each shot (each channel written to the raw record while the
-next is transferred; then the shot's attributes and link, with the pending results row on a
-second thread beside it), then analyses it and completes its row while the next shot is
-acquired (benchrun/runner/writer.py). Its work is printed separately; only the part the main
-thread waits for is overhead.
+The runner's writer thread stores each shot in the raw record (its pending results row was
+committed on a second thread from the moment the shot fired), then analyses it and completes
+its row while the next shot is acquired (benchrun/runner/writer.py). Its work is printed
+separately; only the part the main thread waits for is overhead. (Writing each channel as it
+arrives was tried and dropped: it moved about as much time into the transfer, counted as
+acquisition, as it took off the overhead.)
 
 The simulator caches its circuit solution per shot condition, so repeated shots at one
 setting cost only digitising and transfer. Both cases are measured and printed: *fresh*
@@ -74,9 +75,8 @@ sys.path.insert(0, str(ROOT))  # measure the tree this script belongs to
 ACQ_PARTS = ("arm scope (SINGle, *OPC?)", "fire command", "fire -> record in scope",
              "waveform preamble (source, scaling)", "waveform blocks")
 TRIGGER_POLL = "trigger polling latency"
-BACKGROUND = ("raw record: each channel, during the transfer",
-              "raw record: finish (attributes, flush, link, sync)",
-              "results DB: pending row (beside the finish)",
+BACKGROUND = ("raw record write (durable)",
+              "results DB: pending row (from the fire on)",
               "analysis + condition check", "results DB: completed row")
 BENCH_PATH = ROOT / "sequences" / "bench-sim.yaml"
 
@@ -296,18 +296,15 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
     timed(writer.ShotWriter, "wait_stored", "waiting: previous shot stored")
     timed(writer.ShotTicket, "result", "waiting: previous shot analysed")
     # --- the writer thread (overlaps the next acquisition) ---
-    from benchrun.store.raw_shot import RawShotBuilder
-
-    timed(RawShotBuilder, "add_channel", BACKGROUND[0])
-    timed(RawShotBuilder, "finish", BACKGROUND[1])
+    timed(RawRecord, "append_shot", BACKGROUND[0])
     timed(station.Station, "is_selected", "device check (helper thread)")
     timed(station.Station, "temperature", "temperature read-back (helper thread)")
-    timed(ResultsStore, "add_shot", BACKGROUND[2])
+    timed(ResultsStore, "record_pending", BACKGROUND[1])
     timed(cycle.ShotWriter, "_work", "writer thread total")
     from benchrun.runner import writer as writer_module
 
-    timed(writer_module, "build_result", BACKGROUND[3])
-    timed(ResultsStore, "complete_shot", BACKGROUND[4])
+    timed(writer_module, "build_result", BACKGROUND[2])
+    timed(ResultsStore, "complete_shot", BACKGROUND[3])
 
     case = (f"{'fresh' if fresh else 'cached'} circuit solution per shot, durability "
             f"{durability or 'default'}, simulated bench "

@@ -173,10 +173,11 @@ def test_shot_stored_before_its_analysis_is_completed_on_resume(tmp_path, monkey
 
 
 @pytest.mark.slow
-def test_device_swapped_behind_the_runner_is_selected_again_before_firing(tmp_path):
-    # the device check runs beside the bus set-up on every shot; a device the handler moved
-    # on its own (here: the simulated handler is told another serial is in the fixture)
-    # must be caught before the next shot fires, never recorded under the wrong serial
+def test_device_swapped_behind_the_runner_is_never_recorded_under_the_wrong_serial(tmp_path):
+    # the handler is asked for the device in the fixture during every shot; a device the
+    # handler moved on its own (here: the simulated handler is told another serial is in the
+    # fixture) must be caught at the next shot: that capture is dropped, the device selected
+    # again and the shot fired again, so nothing is recorded under the wrong serial
     seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
                          repeats=3)
     sequence = load_sequence(seq)
@@ -192,10 +193,15 @@ def test_device_swapped_behind_the_runner_is_selected_again_before_firing(tmp_pa
                              clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False,
                              on_stored=swap)
         outcome = run_sequence(seq, BENCH, options)
-        fired_serials = {c.serial for c in sim.bench.shots}
+        fired = [c.serial for c in sim.bench.shots if c.off_time_s > 0]
     assert outcome.status == "complete" and count["n"] == 3
-    assert fired_serials == {"KFR-2611A-001"}
-    assert "selecting it again" in (outcome.run_dir / "run.log").read_text()
+    # one double-pulse shot hit the swapped device; it was not stored
+    assert fired.count("KFR-2611A-002") == 1 and len(fired) == 4
+    run = load_run(outcome.run_dir)
+    assert sorted(s.repeat for s in run.shots) == [0, 1, 2] and all(s.valid for s in run.shots)
+    with RawRecord(outcome.run_dir / "raw.h5", "r") as raw:
+        assert len(raw.keys()) == 3
+    assert "capture is dropped" in (outcome.run_dir / "run.log").read_text()
 
 
 @pytest.mark.slow

@@ -33,7 +33,6 @@ Common to every driver
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
 from dataclasses import asdict, dataclass
 from typing import Any, ClassVar
 
@@ -313,17 +312,8 @@ class Scope(_Driver):
             dt=evaluate(wf.dt, names),
         )
 
-    def read_channels(self, names: list[str],
-                      on_channel: Callable[[str, ChannelTrace], None] | None = None
-                      ) -> dict[str, ChannelTrace]:
-        """Transfer channels in order; ``on_channel(name, trace)`` is called as each one
-        arrives (before the next is asked for)."""
-        traces = {}
-        for name in names:
-            traces[name] = trace = self.read_channel(name)
-            if on_channel is not None:
-                on_channel(name, trace)
-        return traces
+    def read_channels(self, names: list[str]) -> dict[str, ChannelTrace]:
+        return {name: self.read_channel(name) for name in names}
 
 
 class _SwitchedOutput(_Driver):

@@ -408,7 +408,6 @@ class ShotCycle:
         ranges = self._ranges(point)
         measured: dict[str, Any] = {}
         key = shot_key(point.index, planned.serial, planned.repeat, attempt)
-        channels: dict[str, Any] = {}
         streamed: dict[str, Any] = {}
 
         def context_with(temperature_K: float | None) -> ShotContext:
@@ -420,25 +419,19 @@ class ShotCycle:
             )  # fmt: skip
 
         def shoot() -> Capture:
+            while True:
+                capture = shoot_once()
+                if capture is not None:
+                    return capture
+
+        def shoot_once() -> Capture | None:
+            """One shot; None when the handler did not report the device in the fixture
+            during it (the capture is dropped and the device selected again)."""
             # the writer thread stores the previous shot meanwhile
-            selected = self.station.is_selected(planned.serial)
             self.station.configure_pulse(plan, point.gate_resistance_ohm)
             measured["bus_V"] = self.station.energise(point.bus_voltage_V)
             self.station.configure_scope(plan, ranges, point.bus_voltage_V)
-            if not selected:
-                log.warning("the handler does not report %s in the fixture: selecting it "
-                            "again", planned.serial)
-                self.station.select(planned.serial)
-                measured["bus_V"] = self.station.energise(point.bus_voltage_V)
-            during: list[futures.Future[float | None]] = []
-            # each channel goes to the raw record while the next one is transferred
-            stream = self.writer.start(key)  # a retried shot starts a new, unlinked entry
-            streamed["stream"] = stream
-            channels.clear()
-
-            def on_channel(name: str, trace: Any) -> None:
-                channel = channels[name] = narrowest(trace.to_channel_data())
-                stream.add(name, channel)
+            during: list[futures.Future[Any]] = []
 
             def before_fire() -> None:
                 self.writer.wait_stored()  # the previous shot is durable in both stores
@@ -449,24 +442,34 @@ class ShotCycle:
 
             def on_fired() -> None:
                 # while the scope acquires: this shot's pending results row, the previous
-                # shot's analysis, and the temperature read-back (the device's temperature
-                # cannot move within an acquisition)
+                # shot's analysis, the temperature read-back (the device's temperature cannot
+                # move within an acquisition) and the handler's word on the device in the
+                # fixture during the shot (the station put it there and has not moved it
+                # since; select() checked it before the first shot on it)
                 streamed["row"] = self.writer.record_fired(context_with(None))
                 self.writer.release()
                 during.append(self.station.in_parallel(self.station.temperature))
+                during.append(self.station.in_parallel(
+                    lambda: self.station.is_selected(planned.serial)))
 
             try:
                 capture = self.station.fire(self.channel_names, self.options.trigger_timeout_s,
-                                            before_fire=before_fire, on_fired=on_fired,
-                                            on_channel=on_channel)
-            finally:
+                                            before_fire=before_fire, on_fired=on_fired)
+            finally:  # never leave a query running on a connection a retry will use
                 futures.wait(during)
             measured["temperature_K"] = during[0].result()
-            return capture
+            if during[1].result():
+                return capture
+            log.warning("the handler did not report %s in the fixture during the shot: the "
+                        "capture is dropped, the device selected again and the shot fired "
+                        "again", planned.serial)
+            self.station.select(planned.serial)
+            return None
 
         capture = self._with_retry(shoot, f"shot {planned.serial} {point.label}")
         context = context_with(measured["temperature_K"])
-        assert list(channels) == list(capture.traces)
+        channels = {name: narrowest(trace.to_channel_data())
+                    for name, trace in capture.traces.items()}
         settings = {
             "first_pulse_s": plan.first_pulse_s, "off_time_s": plan.off_time_s,
             "second_pulse_s": plan.second_pulse_s, "record_start_s": plan.record_start_s,
@@ -476,8 +479,7 @@ class ShotCycle:
         }  # fmt: skip
         ticket = self.writer.submit(CapturedShot(
             key, context, capture.t_start, capture.dt, channels,
-            {name: self.probes[name] for name in channels}, settings, streamed["stream"],
-            streamed["row"]))
+            {name: self.probes[name] for name in channels}, settings, streamed["row"]))
         if self._attempts is not None:
             identity = (planned.serial, point.index, planned.repeat)
             self._attempts[identity] = max(self._attempts.get(identity, 0), attempt + 1)

@@ -324,15 +324,13 @@ class Station:
 
     def fire(self, channels: list[str], trigger_timeout_s: float, *,
              before_fire: Callable[[], None] | None = None,
-             on_fired: Callable[[], None] | None = None,
-             on_channel: Callable[[str, ChannelTrace], None] | None = None) -> Capture:
+             on_fired: Callable[[], None] | None = None) -> Capture:
         """Arm, fire, wait for the trigger and read every channel.
 
         ``before_fire`` is called once the scope is armed, just before the fire command (the
         last chance to hold the shot back); ``on_fired`` the moment the fire command has been
-        sent; ``on_channel(name, trace)`` as each channel arrives. The pulse output is
-        asked for (and switched on) unless the station switched it on itself since the last
-        fault or reconnect.
+        sent. The pulse output is asked for (and switched on) unless the station switched it
+        on itself since the last fault or reconnect.
         """
         self._check_sessions()
         self.scope.arm_single()
@@ -352,7 +350,7 @@ class Station:
             raise InstrumentTimeout(f"the scope did not trigger within {trigger_timeout_s:g} s "
                                     "of firing")
         self._acquisitions.append(time.monotonic() - fired)
-        traces = self.scope.read_channels(channels, on_channel)
+        traces = self.scope.read_channels(channels)
         first = next(iter(traces.values()))
         return Capture(first.t_start, first.dt, traces)
 

@@ -3,9 +3,7 @@
 The shot cycle hands every capture to :class:`ShotWriter` and goes on preparing the next
 shot (device check, bus read-back, temperature) while the worker thread
 
-1. writes the shot to the raw record and makes it durable (the run's durability mode): each
-   channel as soon as the scope has transferred it (:meth:`ShotWriter.start`, while the next
-   channel is transferred), then the shot's attributes and its link,
+1. writes the shot to the raw record and makes it durable (the run's durability mode),
 2. has recorded it in the results DB as *pending*: its identity, raw reference, timestamp
    and bus voltage, with the single flag :data:`~benchrun.records.FLAG_ANALYSIS_PENDING`,
    committed. The cycle asks for this row the moment the shot fires
@@ -54,46 +52,15 @@ if TYPE_CHECKING:
     from benchrun.analysis import ChannelData, ProbeCalibration
     from benchrun.config.sequence import SequenceConfig
     from benchrun.store.raw import RawRecord
-    from benchrun.store.raw_shot import RawShotBuilder
     from benchrun.store.results import ResultsStore
 
 log = logging.getLogger("benchrun.runner")
 
 
-class ShotStream:
-    """A shot's raw-record entry being written channel by channel on the writer thread
-    (:meth:`ShotWriter.start`); an error is kept and raised when the shot is stored."""
-
-    def __init__(self, writer: ShotWriter, key: str) -> None:
-        self.writer = writer
-        self.key = key
-        self.builder: RawShotBuilder | None = None
-        self.error: BaseException | None = None
-        writer._worker.submit(self._guarded, self._begin)
-
-    def add(self, name: str, channel: ChannelData) -> None:
-        """Queue one channel's write."""
-        self.writer._worker.submit(self._guarded, lambda: self._add(name, channel))
-
-    def _begin(self) -> None:
-        self.builder = self.writer.raw.begin_shot(self.key)
-
-    def _add(self, name: str, channel: ChannelData) -> None:
-        assert self.builder is not None
-        self.builder.add_channel(name, channel)
-
-    def _guarded(self, step: Any) -> None:
-        if self.error is None:
-            try:
-                step()
-            except BaseException as exc:  # raised where the shot is stored
-                self.error = exc
-
-
 @dataclass(frozen=True)
 class CapturedShot:
-    """One capture as fired, with everything the raw record and the analysis need;
-    ``stream`` holds its channels when they were written as they arrived."""
+    """One capture as fired, with everything the raw record and the analysis need; ``row``
+    is the future of its pending results row (:meth:`ShotWriter.record_fired`)."""
 
     key: str
     context: ShotContext
@@ -102,7 +69,6 @@ class CapturedShot:
     channels: Mapping[str, ChannelData]
     probes: Mapping[str, ProbeCalibration]
     settings: dict[str, Any]
-    stream: ShotStream | None = None
     row: Future[None] | None = None
 
 
@@ -164,11 +130,6 @@ class ShotWriter:
         self._released = -1  # shots up to this index may be analysed
         self._gate = threading.Condition()
 
-    def start(self, key: str) -> ShotStream:
-        """Begin a shot's raw-record entry; ``add`` its channels as they arrive, then
-        :meth:`submit` the shot with ``stream=`` this."""
-        return ShotStream(self, key)
-
     def record_fired(self, context: ShotContext) -> Future[None]:
         """Commit the pending row of a shot that has just fired (on the rows thread); pass
         the returned future as ``CapturedShot.row``."""
@@ -216,15 +177,8 @@ class ShotWriter:
             if row is None:
                 row = self._rows.submit(self.store.record_pending,
                                         pending_result(shot.context, ref))
-            stream = shot.stream
-            if stream is None:
-                written = self.raw.append_shot(shot.key, shot.t_start, shot.dt,
-                                               shot.channels, shot.probes, attrs)
-            else:
-                if stream.error is not None:
-                    raise stream.error
-                assert stream.builder is not None and stream.key == shot.key
-                written = stream.builder.finish(shot.t_start, shot.dt, shot.probes, attrs)
+            written = self.raw.append_shot(shot.key, shot.t_start, shot.dt, shot.channels,
+                                           shot.probes, attrs)
             assert written == ref
             row.result()
         except BaseException as exc:  # handed to the cycle's thread
