@@ -24,16 +24,18 @@ Definitions (per shot, wall clock):
 * overhead = per-shot time - acquisition: everything else on the runner's critical path —
   device-selection check, pulse/scope configuration (sent only when changed) with their
   error-queue drains, bus set-up and read-back, temperature read-back, trigger polling
-  latency, waiting until the previous shot is stored (raw record durable and its results row
-  committed: the runner never fires before that), reading the previous shot's analysed
-  result, attempt bookkeeping, progress and logging.
+  latency, the raw-record write, waiting until the previous shot is stored (raw record synced
+  in "power-loss" mode and its results row committed: the runner never fires before that),
+  reading the previous shot's analysed result, attempt bookkeeping, progress and logging.
 
-The runner's writer thread stores each shot in the raw record (its pending results row was
-committed on a second thread from the moment the shot fired), then analyses it and completes
-its row while the next shot is acquired (benchrun/runner/writer.py). Its work is printed
-separately; only the part the main thread waits for is overhead. (Writing each channel as it
-arrives was tried and dropped: it moved about as much time into the transfer, counted as
-acquisition, as it took off the overhead.)
+The runner writes each shot to the raw record itself (the sync of "power-loss" mode runs on
+the record's own thread while the next shot is prepared); its pending results row is
+committed on a second thread from the moment the shot fires; the writer thread analyses it
+and completes the row while the next shot is acquired (benchrun/runner/writer.py). That
+background work is printed separately; only what the main thread spends or waits for is
+overhead. (Tried and dropped because they moved time into the acquisition parts rather than
+saving it: writing each channel as it arrives, during the transfer; writing the raw record
+on a thread beside the arming.)
 
 The simulator caches its circuit solution per shot condition, so repeated shots at one
 setting cost only digitising and transfer. Both cases are measured and printed: *fresh*
@@ -75,8 +77,7 @@ sys.path.insert(0, str(ROOT))  # measure the tree this script belongs to
 ACQ_PARTS = ("arm scope (SINGle, *OPC?)", "fire command", "fire -> record in scope",
              "waveform preamble (source, scaling)", "waveform blocks")
 TRIGGER_POLL = "trigger polling latency"
-BACKGROUND = ("raw record write (durable)",
-              "results DB: pending row (from the fire on)",
+BACKGROUND = ("results DB: pending row (from the fire on)",
               "analysis + condition check", "results DB: completed row")
 BENCH_PATH = ROOT / "sequences" / "bench-sim.yaml"
 
@@ -296,15 +297,15 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
     timed(writer.ShotWriter, "wait_stored", "waiting: previous shot stored")
     timed(writer.ShotTicket, "result", "waiting: previous shot analysed")
     # --- the writer thread (overlaps the next acquisition) ---
-    timed(RawRecord, "append_shot", BACKGROUND[0])
+    timed(RawRecord, "append_shot", "raw record write (to the OS; sync in background)")
     timed(station.Station, "is_selected", "device check (helper thread)")
     timed(station.Station, "temperature", "temperature read-back (helper thread)")
-    timed(ResultsStore, "record_pending", BACKGROUND[1])
+    timed(ResultsStore, "record_pending", BACKGROUND[0])
     timed(cycle.ShotWriter, "_work", "writer thread total")
     from benchrun.runner import writer as writer_module
 
-    timed(writer_module, "build_result", BACKGROUND[2])
-    timed(ResultsStore, "complete_shot", BACKGROUND[3])
+    timed(writer_module, "build_result", BACKGROUND[1])
+    timed(ResultsStore, "complete_shot", BACKGROUND[2])
 
     case = (f"{'fresh' if fresh else 'cached'} circuit solution per shot, durability "
             f"{durability or 'default'}, simulated bench "
@@ -389,7 +390,7 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
             if label not in ACQ_PARTS and label not in background:
                 print(f"  {label[:30]:30s} "
                       + " ".join(f"{x * 1e3:5.2f}" for x in per_shot[label]))
-    print("writer thread, overlapping the next acquisition (mean ms per shot):")
+    print("writer and rows threads, overlapping the next acquisition (mean ms per shot):")
     for label in (*BACKGROUND, "writer thread total"):
         print(f"  {label:46s} {mean_ms(label):7.2f}")
     print("station helper threads, beside the bus set-up or the acquisition (mean ms per shot):")

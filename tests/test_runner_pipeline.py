@@ -55,8 +55,22 @@ def test_every_shot_is_in_the_db_before_the_next_fires(tmp_path, monkeypatch):
         tickets.append(ticket)
         return ticket
 
-    # at each double-pulse fire: (shots submitted before, of them stored (raw record durable,
-    # row committed), DB rows)
+    appended: list[str] = []
+    durable = {"upto": 0}  # shots appended before the last completed wait_durable()
+    original_append, original_durable = RawRecord.append_shot, RawRecord.wait_durable
+
+    def append_shot(self, *a, **k):
+        ref = original_append(self, *a, **k)
+        appended.append(ref)
+        return ref
+
+    def wait_durable(self):
+        upto = len(appended)
+        original_durable(self)
+        durable["upto"] = max(durable["upto"], upto)
+
+    # at each double-pulse fire: (shots submitted before, of them stored (raw record synced
+    # by a finished wait_durable, row committed), DB rows)
     seen: list[tuple[int, int, int]] = []
     original = server_module.SimulatedBench.fire
 
@@ -65,10 +79,12 @@ def test_every_shot_is_in_the_db_before_the_next_fires(tmp_path, monkeypatch):
         # stored before the runner sent it
         if timing[1] > 0:  # a double-pulse shot (a trim shot has no second pulse)
             done = sum(1 for t in tickets if t.stored.done() and t.stored.exception() is None)
-            seen.append((len(tickets), done, _rows(out)))
+            seen.append((len(tickets), min(done, durable["upto"]), _rows(out)))
         return original(self, timing, gate_resistance_ohm)
 
     monkeypatch.setattr(ShotWriter, "submit", submit)
+    monkeypatch.setattr(RawRecord, "append_shot", append_shot)
+    monkeypatch.setattr(RawRecord, "wait_durable", wait_durable)
     monkeypatch.setattr(server_module.SimulatedBench, "fire", fire)
     outcome, _ = _run(tmp_path, seq)
     assert outcome.status == "complete"

@@ -363,7 +363,8 @@ class ShotCycle:
             self.station.configure_pulse(plan, point.gate_resistance_ohm, single=True)
             self.station.energise(volts)
             self.station.configure_scope(plan, ranges, volts)
-            return self.station.fire(["diode_current"], self.options.trigger_timeout_s)
+            return self.station.fire(["diode_current"], self.options.trigger_timeout_s,
+                                     before_fire=self.writer.wait_stored)
 
         capture = self._with_retry(shoot, "trim shot")
         self.outcome.trim_shots += 1
@@ -407,7 +408,6 @@ class ShotCycle:
         check_shot(plan, point, self.bench)
         ranges = self._ranges(point)
         measured: dict[str, Any] = {}
-        key = shot_key(point.index, planned.serial, planned.repeat, attempt)
         streamed: dict[str, Any] = {}
 
         def context_with(temperature_K: float | None) -> ShotContext:
@@ -427,7 +427,7 @@ class ShotCycle:
         def shoot_once() -> Capture | None:
             """One shot; None when the handler did not report the device in the fixture
             during it (the capture is dropped and the device selected again)."""
-            # the writer thread stores the previous shot meanwhile
+            # the previous shot's fsync ("power-loss" mode) runs meanwhile
             self.station.configure_pulse(plan, point.gate_resistance_ohm)
             measured["bus_V"] = self.station.energise(point.bus_voltage_V)
             self.station.configure_scope(plan, ranges, point.bus_voltage_V)
@@ -477,9 +477,14 @@ class ShotCycle:
             "gate_resistance_ohm": point.gate_resistance_ohm,
             "ranges": {name: [r.low, r.high] for name, r in ranges.items()},
         }  # fmt: skip
-        ticket = self.writer.submit(CapturedShot(
-            key, context, capture.t_start, capture.dt, channels,
-            {name: self.probes[name] for name in channels}, settings, streamed["row"]))
+        probes = {name: self.probes[name] for name in channels}
+        # handed to the operating system now (safe against kill -9); the fsync of
+        # "power-loss" mode runs on the record's thread until the next fire waits for it
+        key = shot_key(point.index, planned.serial, planned.repeat, attempt)
+        ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
+                                   context.attrs(settings), wait=False)
+        ticket = self.writer.submit(CapturedShot(ref, context, capture.t_start, capture.dt,
+                                                 channels, probes, streamed["row"]))
         if self._attempts is not None:
             identity = (planned.serial, point.index, planned.repeat)
             self._attempts[identity] = max(self._attempts.get(identity, 0), attempt + 1)

@@ -1,35 +1,34 @@
-"""Storing and analysing captured shots on one background thread, in the order fired.
+"""Storing and analysing shots beside the acquisition of the next one.
 
-The shot cycle hands every capture to :class:`ShotWriter` and goes on preparing the next
-shot (device check, bus read-back, temperature) while the worker thread
+A shot is *stored* when it is durable in the raw record and recorded in the results DB; the
+shot cycle fires the next shot only once the previous one is stored
+(:meth:`ShotWriter.wait_stored`). The work is split so that little of it stands between two
+shots:
 
-1. writes the shot to the raw record and makes it durable (the run's durability mode),
-2. has recorded it in the results DB as *pending*: its identity, raw reference, timestamp
-   and bus voltage, with the single flag :data:`~benchrun.records.FLAG_ANALYSIS_PENDING`,
-   committed. The cycle asks for this row the moment the shot fires
-   (:meth:`ShotWriter.record_fired`), so it is written on a second thread while the scope
-   acquires; it names the raw reference before the raw entry is linked, and both must be
-   done before the shot counts as stored. A crash in between can leave a pending row whose
-   raw entry never became visible: ``--resume`` discards that row and fires the test again
-   (the shot was in flight; nothing stored is lost).
+1. The moment a shot fires, its *pending* results row is committed on the rows thread
+   (:meth:`ShotWriter.record_fired`): identity, raw reference, timestamp, bus voltage, the
+   single flag :data:`~benchrun.records.FLAG_ANALYSIS_PENDING`, not valid, no metrics. This
+   runs while the scope acquires.
+2. Once the capture is read, the cycle writes it to the raw record itself
+   (``RawRecord.append_shot(..., wait=False)``: handed to the operating system at once; the
+   ``fsync`` of "power-loss" mode runs on the record's own thread while the next shot is
+   prepared and armed) and hands the shot to :meth:`ShotWriter.submit`.
+3. :meth:`ShotWriter.wait_stored`, just before the next fire, waits for that ``fsync`` and for
+   the pending row.
+4. The writer thread analyses the shot and checks its measured conditions
+   (:func:`benchrun.runner.shots.build_result`), then replaces the pending row by the analysed
+   shot (:meth:`ResultsStore.complete_shot`). It starts when the next shot fires
+   (:meth:`ShotWriter.release`, called by the cycle at the fire; or when the result is asked
+   for), so it runs while the scope acquires, not beside the cycle's own round trips. The
+   cycle reads the analysed result (:meth:`ShotTicket.result`) before it decides on a retry.
 
-The shot is then *stored*. The cycle waits for that (:meth:`ShotWriter.wait_stored`) before
-it fires the next shot, so every shot is in the raw record and in the results DB before the
-next one fires. The worker goes on:
+Crash safety: a crash after step 1 but before the raw entry became visible leaves a pending
+row without raw data: ``--resume`` discards it and fires that test again (the shot was in
+flight; nothing stored is lost). A crash between steps 2 and 4 leaves a pending row (or, if
+the row was rolled back, only the raw entry): ``--resume`` analyses the raw entry and
+completes the row before it fires anything (``ShotCycle.recover_orphans``).
 
-3. analyses the shot and checks its measured conditions
-   (:func:`benchrun.runner.shots.build_result`),
-4. replaces the pending row by the analysed shot (:meth:`ResultsStore.complete_shot`).
-
-Steps 3 and 4 wait until the next shot has fired (:meth:`ShotWriter.release`, called by the
-cycle the moment the pulse source fires; or until the result is asked for), so they run
-while the scope acquires and do not compete with the cycle's own instrument round trips
-before the fire for the interpreter. The cycle reads the analysed result
-(:meth:`ShotTicket.result`) before it decides on a retry. A crash between steps 2 and 4 leaves a
-pending row, which ``--resume`` completes from the raw record before it fires anything
-(the same path as a shot that reached only the raw record).
-
-A failure of the worker (a store error) is raised in the cycle's thread by the next
+A failure of either thread (a store error) is raised in the cycle's thread by the next
 :meth:`ShotWriter.wait_stored` or :meth:`ShotTicket.result`; the run then ends in the safe
 state like any other error.
 """
@@ -40,9 +39,8 @@ import logging
 import threading
 from collections.abc import Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
-from concurrent.futures import wait as futures_wait
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 from benchrun.records import FLAG_ANALYSIS_PENDING, ShotResult
 from benchrun.runner.shots import ShotContext, build_result, shot_key
@@ -59,33 +57,29 @@ log = logging.getLogger("benchrun.runner")
 
 @dataclass(frozen=True)
 class CapturedShot:
-    """One capture as fired, with everything the raw record and the analysis need; ``row``
-    is the future of its pending results row (:meth:`ShotWriter.record_fired`)."""
+    """One capture as fired and written to the raw record (``raw_ref``), with what the
+    analysis needs; ``row`` is the future of its pending results row
+    (:meth:`ShotWriter.record_fired`)."""
 
-    key: str
+    raw_ref: str
     context: ShotContext
     t_start: float
     dt: float
     channels: Mapping[str, ChannelData]
     probes: Mapping[str, ProbeCalibration]
-    settings: dict[str, Any]
-    row: Future[None] | None = None
+    row: Future[None]
 
 
 @dataclass
 class ShotTicket:
-    """Progress of one submitted shot: *stored* (raw record and DB) and *analysed*."""
+    """Progress of one submitted shot: its row recorded (*stored*, with the raw record's
+    sync) and *analysed*."""
 
     shot: CapturedShot
     index: int = 0
     writer: ShotWriter | None = None
     stored: Future[str] = field(default_factory=Future)
     analysed: Future[ShotResult] = field(default_factory=Future)
-
-    def wait_stored(self) -> str:
-        """Block until the shot is durable in the raw record and recorded in the DB; returns
-        its raw reference. Raises the worker's error."""
-        return self.stored.result()
 
     def result(self) -> ShotResult:
         """Block until the shot is analysed and its DB row completed (its analysis is
@@ -107,14 +101,21 @@ def pending_result(context: ShotContext, raw_ref: str) -> ShotResult:
     )  # fmt: skip
 
 
+def raw_ref_of(context: ShotContext) -> str:
+    """The raw reference of a shot: ``shots/<shot_key>``."""
+    return shot_ref(shot_key(context.point.index, context.serial, context.repeat,
+                             context.attempt))
+
+
 class ShotWriter:
-    """Stores, then analyses, submitted shots on one worker thread (module docstring).
+    """Records pending rows, then analyses submitted shots, each on its own thread (module
+    docstring).
 
     Parameters
     ----------
     raw, store
-        The run's raw record and results store; while shots are in flight only the worker
-        writes to them.
+        The run's raw record (the cycle writes it; :meth:`wait_stored` waits for its sync) and
+        the results store the rows go to.
     sequence
         The run's sequence (analysis options and condition tolerances).
     """
@@ -133,15 +134,11 @@ class ShotWriter:
     def record_fired(self, context: ShotContext) -> Future[None]:
         """Commit the pending row of a shot that has just fired (on the rows thread); pass
         the returned future as ``CapturedShot.row``."""
-        pending = pending_result(context, shot_ref(self._key(context)))
+        pending = pending_result(context, raw_ref_of(context))
         return self._rows.submit(self.store.record_pending, pending)
 
-    @staticmethod
-    def _key(context: ShotContext) -> str:
-        return shot_key(context.point.index, context.serial, context.repeat, context.attempt)
-
     def submit(self, shot: CapturedShot) -> ShotTicket:
-        """Queue a shot; returns at once."""
+        """Queue a shot written to the raw record for its analysis; returns at once."""
         ticket = ShotTicket(shot, self._submitted, self)
         self._submitted += 1
         self._worker.submit(self._work, ticket)
@@ -149,7 +146,8 @@ class ShotWriter:
         return ticket
 
     def release(self, upto: int | None = None) -> None:
-        """Let the analysis of every shot submitted so far (or up to index ``upto``) start."""
+        """Let the analysis of every shot submitted so far (or up to index ``upto``)
+        start."""
         with self._gate:
             last = self._submitted - 1 if upto is None else upto
             if last > self._released:
@@ -157,12 +155,14 @@ class ShotWriter:
                 self._gate.notify_all()
 
     def wait_stored(self) -> None:
-        """Block until every submitted shot is stored (shots are handled in order)."""
+        """Block until every submitted shot is stored: durable in the raw record (its sync
+        in "power-loss" mode) and its pending row committed."""
+        self.raw.wait_durable()
         if self._last is not None:
-            self._last.wait_stored()
+            self._last.stored.result()
 
     def close(self) -> None:
-        """Finish every submitted shot (stored and analysed), then stop the worker. Errors
+        """Finish every submitted shot (stored and analysed), then stop both threads. Errors
         stay with the tickets."""
         self.release()
         self._worker.shutdown(wait=True)
@@ -170,32 +170,21 @@ class ShotWriter:
 
     def _work(self, ticket: ShotTicket) -> None:
         shot = ticket.shot
-        row: Future[Any] | None = shot.row
         try:
-            attrs = shot.context.attrs(shot.settings)
-            ref = shot_ref(shot.key)
-            if row is None:
-                row = self._rows.submit(self.store.record_pending,
-                                        pending_result(shot.context, ref))
-            written = self.raw.append_shot(shot.key, shot.t_start, shot.dt, shot.channels,
-                                           shot.probes, attrs)
-            assert written == ref
-            row.result()
+            shot.row.result()
         except BaseException as exc:  # handed to the cycle's thread
-            if row is not None:
-                futures_wait((row,))
             ticket.stored.set_exception(exc)
             ticket.analysed.set_exception(exc)
             return
-        ticket.stored.set_result(ref)
+        ticket.stored.set_result(shot.raw_ref)
         with self._gate:
             self._gate.wait_for(lambda: self._released >= ticket.index)
         try:
             result = build_result(shot.context, shot.t_start, shot.dt, shot.channels,
-                                  shot.probes, self.sequence, ref)
+                                  shot.probes, self.sequence, shot.raw_ref)
             self.store.complete_shot(result)
         except BaseException as exc:  # handed to the cycle's thread
-            log.error("shot %s: analysis or its DB row failed: %s", shot.key, exc)
+            log.error("shot %s: analysis or its DB row failed: %s", shot.raw_ref, exc)
             ticket.analysed.set_exception(exc)
             return
         ticket.analysed.set_result(result)
