@@ -59,7 +59,6 @@ from __future__ import annotations
 
 import contextlib
 import datetime as _dt
-import hashlib
 import json
 import os
 import re
@@ -75,6 +74,17 @@ import numpy as np
 from benchrun import __version__
 from benchrun.errors import StoreError
 from benchrun.store.canonical import canonical_json
+from benchrun.store.digests import file_sha256 as file_sha256  # re-exported
+from benchrun.store.digests import shot_digest
+from benchrun.store.h5low import (  # noqa: F401 (names the write path and tests reach here)
+    _CHUNK_BYTES,
+    _LCPL_ASCII,
+    _WRITE_METADATA_CACHE_BYTES,
+    _code_type,
+    _codes_create_plist,
+    _fix_metadata_cache,
+    _write_new_attrs,
+)
 
 if TYPE_CHECKING:
     from benchrun.store.raw_shot import RawShotBuilder
@@ -99,7 +109,6 @@ FORMAT_VERSION = 2
 SHOTS_GROUP = "shots"
 
 _KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
-_CHUNK_BYTES = 256 * 1024
 
 #: Durability: every flush is also ``fsync``-ed (survives power loss). The default.
 DURABILITY_POWER_LOSS = "power-loss"
@@ -116,75 +125,6 @@ def check_durability(durability: str) -> str:
     return durability
 
 
-_SCALAR_SPACE = h5py.h5s.create(h5py.h5s.SCALAR)
-#: (numpy dtype, HDF5 file type, memory type for the write) per attribute kind: what h5py's
-#: ``attrs[name] = value`` stores for a Python bool, int, float and str. For the numbers the
-#: memory type is the file type, so HDF5 copies the value without setting up a conversion;
-#: a string goes through h5py's own conversion from Python objects, from the memory type
-#: h5py would build for it on every write (``py_create`` of the array's dtype), built once.
-_ATTR_TYPES = {
-    kind: (dtype, htype, h5py.h5t.py_create(dtype) if kind == "str" else htype)
-    for kind, dtype in (("bool", np.dtype(bool)), ("int", np.dtype(np.int64)),
-                        ("float", np.dtype(np.float64)), ("str", h5py.string_dtype()))
-    for htype in (h5py.h5t.py_create(dtype, logical=True),)
-}
-
-
-#: Link creation properties h5py's ``group[name] = obj`` uses for an ASCII name (shot keys
-#: and channel names are ASCII, see ``_KEY_RE``), made once instead of per link.
-_LCPL_ASCII = h5py.h5p.create(h5py.h5p.LINK_CREATE)
-_LCPL_ASCII.set_create_intermediate_group(True)
-_LCPL_ASCII.set_char_encoding(h5py.h5t.CSET_ASCII)
-#: HDF5 file type per codes dtype: what h5py's ``create_dataset(data=codes)`` stores
-_CODE_TYPES: dict[np.dtype, Any] = {}
-
-
-def _code_type(dtype: np.dtype) -> Any:
-    htype = _CODE_TYPES.get(dtype)
-    if htype is None:
-        htype = _CODE_TYPES[dtype] = h5py.h5t.py_create(dtype, logical=True)
-    return htype
-
-
-def _codes_create_plist(compression: str | None, size: int, itemsize: int) -> Any:
-    """Dataset creation properties of one channel's codes: exactly what h5py's
-    ``create_dataset(name, data=codes, compression="gzip", compression_opts=1,
-    shuffle=True, chunks=(chunk,))`` (or, uncompressed, ``create_dataset(name, data=codes)``)
-    sets: optional chunking with byte shuffle then deflate level 1, no object timestamps,
-    attribute creation order not tracked."""
-    dcpl = h5py.h5p.create(h5py.h5p.DATASET_CREATE)
-    if compression == "gzip" and size:
-        dcpl.set_chunk((max(1, min(size, _CHUNK_BYTES // itemsize)),))
-        dcpl.set_shuffle()
-        dcpl.set_deflate(1)
-    dcpl.set_obj_track_times(False)
-    dcpl.set_attr_creation_order(0)
-    return dcpl
-
-
-#: Metadata cache of a record open for writing, bytes (fixed; HDF5's default adapts from
-#: 2 MiB). Every ``H5Fflush`` walks all entries in the cache, clean or dirty, to list the
-#: dirty ones, and the default cache keeps ~6000 entries of past shots, which made each
-#: flush several times dearer than its writes (and dearer the longer the run). This size
-#: holds a shot's own objects and the ``/shots`` index many times over.
-_WRITE_METADATA_CACHE_BYTES = 256 * 1024
-
-
-def _fix_metadata_cache(f: h5py.File, size: int = _WRITE_METADATA_CACHE_BYTES) -> None:
-    """Give ``f`` a metadata cache of fixed ``size`` bytes (HDF5 ``H5Fset_mdc_config``).
-
-    A smaller cache only evicts (clean) entries of older shots sooner; what a flush writes,
-    and when, is unchanged. Mode 0 is ``H5C_incr__off``, ``H5C_flash_incr__off`` and
-    ``H5C_decr__off`` of HDF5's ``H5Cpublic.h``: no automatic resizing.
-    """
-    config = f.id.get_mdc_config()
-    config.set_initial_size = True
-    config.initial_size = config.max_size = size
-    config.min_size = min(config.min_size, size)
-    config.incr_mode = config.flash_incr_mode = config.decr_mode = 0
-    f.id.set_mdc_config(config)
-
-
 def _is_complete(group: Any) -> bool:
     """True for a shot group with the ``complete`` mark. A group h5py cannot open (``None``:
     a link to an object a crash left unwritten) or whose attributes cannot be read is not."""
@@ -194,33 +134,6 @@ def _is_complete(group: Any) -> bool:
         return bool(group.attrs.get("complete", False))
     except (OSError, KeyError, ValueError):
         return False
-
-
-def _write_new_attrs(obj: Any, values: Mapping[str, str | int | float | bool]) -> None:
-    """Write attributes on an object created a moment ago (none of the names exist yet).
-
-    Stores exactly what ``obj.attrs[name] = value`` stores (HDF5 enum bool, int64, float64,
-    variable-length UTF-8 string), through the low-level API: h5py's high-level path checks
-    for an existing attribute and builds the types again for every value, which costs more
-    than the write itself for the small attributes of a shot. ``obj`` is an h5py object or
-    a low-level object identifier.
-    """
-    oid = obj.id if isinstance(obj, h5py.HLObject) else obj  # h5py object or low-level id
-    for name, value in values.items():
-        if isinstance(value, bool | np.bool_):
-            kind, value = "bool", bool(value)
-        elif isinstance(value, str):
-            kind = "str"
-        elif isinstance(value, int | np.integer):
-            kind, value = "int", int(value)
-        else:
-            kind, value = "float", float(value)
-        dtype, htype, mtype = _ATTR_TYPES[kind]
-        attr = h5py.h5a.create(oid, name.encode(), htype, _SCALAR_SPACE)
-        try:
-            attr.write(np.array(value, dtype=dtype), mtype=mtype)
-        finally:
-            attr.close()
 
 
 class ChannelLike(Protocol):
@@ -275,70 +188,6 @@ class RawShot:
     def digest(self) -> str:
         """SHA-256 of the shot's content, see :func:`shot_digest`."""
         return shot_digest(self.t_start, self.dt, self.channels, self.probes, self.attrs)
-
-
-def shot_digest(
-    t_start: float,
-    dt: float,
-    channels: Mapping[str, ChannelLike],
-    probes: Mapping[str, ProbeLike],
-    attrs: Mapping[str, Any],
-) -> str:
-    """SHA-256 (hex) over a shot's timing, scaling, probes, attributes and raw codes.
-
-    The header is canonical JSON (sorted keys); then, per channel in name order, the dtype
-    string and the little-endian code bytes. Stored with every shot so a changed byte in a
-    waveform is found by :meth:`RawRecord.read_shot` even when the file still opens.
-
-    Returns
-    -------
-    str
-        64 hex digits.
-    """
-    header = {
-        "t_start": float(t_start),
-        "dt": float(dt),
-        "channels": {
-            name: {
-                "gain": float(ch.gain),
-                "offset": float(ch.offset),
-                "code_min": int(ch.code_min),
-                "code_max": int(ch.code_max),
-                "dtype": np.asarray(ch.codes).dtype.newbyteorder("<").str,
-                "length": int(np.asarray(ch.codes).size),
-            }
-            for name, ch in channels.items()
-        },
-        "probes": {
-            name: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)}
-            for name, p in probes.items()
-        },
-        "attrs": dict(attrs),
-    }
-    h = hashlib.sha256(canonical_json(header).encode())
-    for name in sorted(channels):
-        codes = np.asarray(channels[name].codes)
-        h.update(name.encode() + b"\0")
-        h.update(np.ascontiguousarray(codes, dtype=codes.dtype.newbyteorder("<")).tobytes())
-    return h.hexdigest()
-
-
-def file_sha256(path: str | os.PathLike[str], chunk_size: int = 1 << 20) -> str:
-    """SHA-256 (hex) of a file's bytes (FIPS 180-4), read in chunks.
-
-    Raises
-    ------
-    StoreError
-        The file cannot be read.
-    """
-    h = hashlib.sha256()
-    try:
-        with open(path, "rb") as fh:
-            while block := fh.read(chunk_size):
-                h.update(block)
-    except OSError as exc:
-        raise StoreError(f"cannot read {path} to hash it: {exc}") from exc
-    return h.hexdigest()
 
 
 def shot_ref(key: str) -> str:
