@@ -12,7 +12,7 @@ from __future__ import annotations
 import sqlite3
 
 import pytest
-from test_runner_support import BENCH, write_sequence
+from test_runner_support import BENCH, crashing_on_call, write_sequence
 
 from benchrun.config import load_bench, load_sequence
 from benchrun.runner.execute import RunOptions, run_sequence
@@ -142,13 +142,7 @@ def test_shot_stored_before_its_analysis_is_completed_on_resume(tmp_path, monkey
                          repeats=3)
     out = tmp_path / "out"
     original = ResultsStore.complete_shot
-    calls = {"n": 0}
-
-    def crashing(self, shot):
-        calls["n"] += 1
-        if calls["n"] == 2:
-            raise Crash()
-        return original(self, shot)
+    crashing = crashing_on_call(original, 2, Crash)
 
     bench = load_bench(BENCH)
     sequence = load_sequence(seq)
@@ -252,13 +246,7 @@ def test_row_recorded_beside_a_raw_entry_that_never_landed_is_discarded_on_resum
                          repeats=3)
     out = tmp_path / "out"
     original = RawShotBuilder.finish
-    calls = {"n": 0}
-
-    def crashing(self, *a, **k):
-        calls["n"] += 1
-        if calls["n"] == 2:
-            raise Crash()
-        return original(self, *a, **k)
+    crashing = crashing_on_call(original, 2, Crash)
 
     sequence = load_sequence(seq)
     with simulated_bench(load_bench(BENCH), sequence) as sim:

@@ -13,7 +13,7 @@ import time
 from pathlib import Path
 
 import pytest
-from test_runner_support import BENCH, write_sequence
+from test_runner_support import BENCH, crashing_on_call, write_sequence
 
 from benchrun.config import load_bench, load_sequence
 from benchrun.runner.execute import RunOptions, run_sequence
@@ -148,13 +148,7 @@ def test_shot_in_raw_record_only_is_recovered_not_refired(tmp_path, monkeypatch)
     out = tmp_path / "runs"
     # the shot's results row is recorded (as pending) by ResultsStore.record_pending
     original = ResultsStore.record_pending
-    calls = {"n": 0}
-
-    def crashing(self, shot):
-        calls["n"] += 1
-        if calls["n"] == 3:
-            raise Crash()
-        return original(self, shot)
+    crashing = crashing_on_call(original, 3, Crash)
 
     bench = load_bench(BENCH)
     sequence = load_sequence(seq)

@@ -50,3 +50,17 @@ def write_bench(folder: Path, *, timeout: str = "10 s", scope_timeout: str | Non
     path = folder / "bench.yaml"
     path.write_text(text)
     return path
+
+
+def crashing_on_call(original, n: int, crash: type[BaseException]):
+    """A stand-in for method ``original`` that raises ``crash()`` on its ``n``-th call (the
+    process dying at that point) and calls through otherwise."""
+    calls = {"n": 0}
+
+    def stand_in(self, *args, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == n:
+            raise crash()
+        return original(self, *args, **kwargs)
+
+    return stand_in

@@ -321,17 +321,7 @@ class ResultsStore:
         return ShotResult.from_dict(data)
 
     def _stored_row(self, conn: Connection, key: tuple[str, str, int, int, int]) -> Any:
-        c = shots_table.c
-        run_id, serial, point_index, repeat, attempt = key
-        return conn.execute(
-            select(shots_table).where(
-                c.run_id == run_id,
-                c.serial == serial,
-                c.point_index == point_index,
-                c.repeat == repeat,
-                c.attempt == attempt,
-            )
-        ).first()
+        return conn.execute(select(shots_table).where(*_identity(key))).first()
 
     def add_shot(self, shot: ShotResult) -> bool:
         """Store one shot in its own transaction, committed before returning.
@@ -400,13 +390,10 @@ class ResultsStore:
             raise StoreError("complete_shot needs an analysed shot, not a pending one")
         row = self._shot_row(shot)
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
-        c = shots_table.c
         with self._begin(f"cannot complete shot {key}") as conn:
             replaced = conn.execute(
                 update(shots_table)
-                .where(c.run_id == key[0], c.serial == key[1], c.point_index == key[2],
-                       c.repeat == key[3], c.attempt == key[4],
-                       c.flags == canonical_json([FLAG_ANALYSIS_PENDING]))
+                .where(*_identity(key, pending=True))
                 .values(**row)
             ).rowcount
             existing = None if replaced else self._stored_row(conn, key)
@@ -436,14 +423,10 @@ class ResultsStore:
         if not shot.pending:
             raise StoreError("record_pending needs a pending shot")
         row = self._shot_row(shot)
-        c = shots_table.c
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         try:
             with self._engine.begin() as conn:
-                conn.execute(delete(shots_table).where(
-                    c.run_id == key[0], c.serial == key[1], c.point_index == key[2],
-                    c.repeat == key[3], c.attempt == key[4],
-                    c.flags == canonical_json([FLAG_ANALYSIS_PENDING])))
+                conn.execute(delete(shots_table).where(*_identity(key, pending=True)))
                 conn.execute(self._insert_shot, row)
         except IntegrityError as exc:
             raise StoreError(f"cannot record pending shot {key}: an analysed shot is stored "
@@ -455,16 +438,11 @@ class ResultsStore:
         """Delete the *pending* row of ``shot``'s identity (a shot recorded while its raw
         entry was being written, which a crash kept from ever becoming visible). Returns
         whether a row was deleted; an analysed row is never touched."""
-        c = shots_table.c
         key = (shot.run_id, shot.serial, int(shot.point.index), int(shot.repeat),
                int(shot.attempt))
         with self._begin(f"cannot discard pending shot {key}") as conn:
             deleted = conn.execute(
-                delete(shots_table).where(
-                    c.run_id == key[0], c.serial == key[1], c.point_index == key[2],
-                    c.repeat == key[3], c.attempt == key[4],
-                    c.flags == canonical_json([FLAG_ANALYSIS_PENDING]))
-            ).rowcount
+                delete(shots_table).where(*_identity(key, pending=True))).rowcount
         return bool(deleted)
 
     def shots(self, run_id: str) -> list[ShotResult]:
@@ -618,6 +596,17 @@ class ResultsStore:
         values = dict(row)
         values["details"] = json.loads(values["details"])
         return ReportRecord(**values)
+
+
+def _identity(key: tuple[str, str, int, int, int], *, pending: bool = False) -> list[Any]:
+    """WHERE clauses selecting the shot row ``(run_id, serial, point_index, repeat,
+    attempt)``; with ``pending``, only while it is a pending row."""
+    c = shots_table.c
+    clauses = [c.run_id == key[0], c.serial == key[1], c.point_index == key[2],
+               c.repeat == key[3], c.attempt == key[4]]
+    if pending:
+        clauses.append(c.flags == canonical_json([FLAG_ANALYSIS_PENDING]))
+    return clauses
 
 
 def _query_float(value: Any) -> float | None:
