@@ -56,17 +56,21 @@ def _shot(seed: int = 0) -> tuple[dict[str, Channel], dict[str, Probe]]:
     return channels, {name: Probe(100.0, 1e-9) for name in channels}
 
 
+#: The call the raw record syncs a shot with (fdatasync where the platform has it).
+SYNC = "fdatasync" if hasattr(os, "fdatasync") else "fsync"
+
+
 @pytest.fixture
 def fsync_calls(monkeypatch):
-    """Every os.fsync call: (file descriptor, name of the calling thread)."""
+    """Every per-shot sync call: (file descriptor, name of the calling thread)."""
     calls: list[tuple[int, str]] = []
-    real = os.fsync
+    real = getattr(os, SYNC)
 
     def counting(fd):
         calls.append((fd, threading.current_thread().name))
         return real(fd)
 
-    monkeypatch.setattr(os, "fsync", counting)
+    monkeypatch.setattr(os, SYNC, counting)
     return calls
 
 
@@ -96,7 +100,7 @@ def test_background_sync_is_awaited_and_its_failure_reported(tmp_path, fsync_cal
         def failing(fd):
             raise OSError(5, "Input/output error")
 
-        monkeypatch.setattr(os, "fsync", failing)
+        monkeypatch.setattr(os, SYNC, failing)
         raw.append_shot("s1", 0.0, 1e-9, channels, probes, {"n": 1}, wait=False)
         with pytest.raises(StoreError, match="cannot sync"):
             raw.wait_durable()
@@ -110,7 +114,7 @@ def test_next_write_waits_for_a_pending_sync(tmp_path, monkeypatch):
     channels, probes = _shot()
     order: list[str] = []
     release = threading.Event()
-    real = os.fsync
+    real = getattr(os, SYNC)
 
     def slow(fd):
         release.wait(5.0)
@@ -118,7 +122,7 @@ def test_next_write_waits_for_a_pending_sync(tmp_path, monkeypatch):
         return real(fd)
 
     with RawRecord(tmp_path / "raw.h5", "w") as raw:
-        monkeypatch.setattr(os, "fsync", slow)
+        monkeypatch.setattr(os, SYNC, slow)
         raw.append_shot("s0", 0.0, 1e-9, channels, probes, {}, wait=False)
         threading.Timer(0.05, release.set).start()
         raw.append_shot("s1", 0.0, 1e-9, channels, probes, {}, wait=False)  # waits for s0's

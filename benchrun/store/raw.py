@@ -407,8 +407,12 @@ class RawRecord:
         self._pending_sync = self._syncer.submit(self._fsync, fd)
 
     def _fsync(self, fd: int) -> None:
+        # fdatasync (POSIX): the data and the metadata needed to read it back (the file's
+        # size), without the modification time: the same durability for the record, one
+        # metadata write less per shot; fsync where the platform has no fdatasync
+        sync = getattr(os, "fdatasync", os.fsync)
         try:
-            os.fsync(fd)
+            sync(fd)
         except OSError as exc:
             raise StoreError(f"cannot sync raw record {self.path} to disk: {exc}") from exc
 
