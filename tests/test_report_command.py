@@ -75,3 +75,36 @@ def test_run_loads_the_signer_before_anything_fires(tmp_path, identity, monkeypa
     assert code == 2
     assert "wrong passphrase" in capsys.readouterr().err
     assert not out.exists() or not any(out.iterdir())
+
+
+def test_shots_not_yet_analysed_are_left_out_with_a_warning(tmp_path, identity, monkeypatch,
+                                                           capsys):
+    # a run stopped between a shot and its analysis holds a pending results row (its raw
+    # entry may not exist): grading and the report leave it out and say so, and the report
+    # still verifies (re-analysis never meets the pending row)
+    import dataclasses
+
+    from benchrun.records import FLAG_ANALYSIS_PENDING
+    from benchrun.store.results import ResultsStore
+    from benchrun.store.rundata import default_store_url, load_run
+
+    run_dir = build_run(tmp_path, n_devices=2, failing=())
+    stored = load_run(run_dir).shots
+    pending = dataclasses.replace(stored[0], repeat=1, metrics={}, valid=False,
+                                  flags=(FLAG_ANALYSIS_PENDING,), acquisition={},
+                                  raw_ref="shots/999999")
+    with ResultsStore(default_store_url(run_dir)) as store:
+        store.record_pending(pending)
+    run = load_run(run_dir)
+    assert run.pending == [pending] and len(run.shots) == len(stored)
+
+    assert main(["grade", str(run_dir)]) == 0
+    assert "1 shot(s) of run R-DEMO-0001 were recorded but not analysed" in (
+        capsys.readouterr().err)
+    monkeypatch.setenv(PASSPHRASE_ENV, PASSPHRASE)
+    code = main(["report", str(run_dir), "--key", str(identity.key_path),
+                 "--cert", str(identity.cert_path), "--role", "Test Engineer"])
+    captured = capsys.readouterr()
+    assert code == 0 and "--resume" in captured.err
+    result = verify_report(run_dir / "report.pdf", cert=identity.cert_path)
+    assert result.ok, [c.to_dict() for c in result.checks]

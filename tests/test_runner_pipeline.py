@@ -93,7 +93,7 @@ def test_every_shot_is_in_the_db_before_the_next_fires(tmp_path, monkeypatch):
     # every earlier shot has its row; this shot's pending row may already be there too
     assert all(submitted <= rows <= submitted + 1 for submitted, _, rows in seen), seen
     run = load_run(outcome.run_dir)
-    assert len(run.shots) == 6 and not any(s.pending for s in run.shots)
+    assert len(run.shots) == 6 and not run.pending
     assert all(s.valid and s.metrics["qrr_C"] > 0 for s in run.shots)
 
 
@@ -155,8 +155,10 @@ def test_shot_stored_before_its_analysis_is_completed_on_resume(tmp_path, monkey
         assert not sim.bench.supply.output_on  # safe state even on a crash
         monkeypatch.setattr(ResultsStore, "complete_shot", original)
         run_dir = next(out.iterdir())
-        before = load_run(run_dir).shots
-        pending = [s for s in before if s.pending]
+        stopped = load_run(run_dir)
+        before = stopped.shots + stopped.pending
+        pending = stopped.pending
+        assert not any(s.pending for s in stopped.shots)  # grading sees analysed shots only
         assert len(pending) == 1 and pending[0].repeat == 1
         assert not pending[0].valid and pending[0].metrics == {}
         assert pending[0].conditions["temperature_K"] is None  # recorded at the fire
@@ -167,8 +169,9 @@ def test_shot_stored_before_its_analysis_is_completed_on_resume(tmp_path, monkey
         fired_after = len(sim.bench.shots)
     assert outcome.status == "complete"
     assert outcome.shots_recovered == 1
-    after = load_run(run_dir).shots
-    assert not any(s.pending for s in after)
+    finished = load_run(run_dir)
+    after = finished.shots
+    assert not finished.pending
     identities = [(s.repeat, s.attempt) for s in after]
     assert len(identities) == len(set(identities))
     completed = next(s for s in after if (s.repeat, s.attempt) == (1, 0))
@@ -257,7 +260,8 @@ def test_row_recorded_beside_a_raw_entry_that_never_landed_is_discarded_on_resum
             run_sequence(seq, BENCH, options)
         monkeypatch.setattr(RawShotBuilder, "finish", original)
         run_dir = next(out.iterdir())
-        before = load_run(run_dir).shots
+        stopped = load_run(run_dir)
+        before = stopped.shots + stopped.pending
         with RawRecord(run_dir / "raw.h5", "r") as raw:
             in_raw = set(raw.keys())
         orphan_rows = [s for s in before if s.raw_ref.split("/", 1)[1] not in in_raw]
@@ -266,9 +270,10 @@ def test_row_recorded_beside_a_raw_entry_that_never_landed_is_discarded_on_resum
                              clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False)
         outcome = run_sequence(seq, BENCH, resumed)
     assert outcome.status == "complete"
-    after = load_run(run_dir).shots
+    finished = load_run(run_dir)
+    after = finished.shots
     assert sorted((s.repeat, s.attempt) for s in after) == [(0, 0), (1, 0), (2, 0)]
-    assert all(s.valid and not s.pending for s in after)
+    assert all(s.valid for s in after) and not finished.pending
     with RawRecord(run_dir / "raw.h5", "r") as raw:
         assert sorted(raw.keys()) == sorted(s.raw_ref.split("/", 1)[1] for s in after)
     assert "never reached the raw record" in (run_dir / "run.log").read_text()

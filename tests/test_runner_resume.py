@@ -99,8 +99,9 @@ def test_kill_9_then_resume_loses_nothing_and_duplicates_nothing(tmp_path):
     proc.communicate(timeout=30)
     assert proc.returncode == -signal.SIGKILL
     run_dir = next(out.iterdir())
+    killed = load_run(run_dir)
     before = {(s.serial, s.point.index, s.repeat, s.attempt): s
-              for s in load_run(run_dir).shots}
+              for s in killed.shots + killed.pending}
     with RawRecord(run_dir / "raw.h5", "r") as raw:
         raw_before = set(raw.keys())
     # at most: HOLD_AFTER analysed rows plus the pending row of the shot fired after them
@@ -129,7 +130,7 @@ def test_kill_9_then_resume_loses_nothing_and_duplicates_nothing(tmp_path):
                 assert kept.timestamp == shot.timestamp
         else:
             assert kept.to_dict() == shot.to_dict()
-    assert not any(s.pending for s in after.shots)
+    assert not after.pending and not any(s.pending for s in after.shots)
     with RawRecord(run_dir / "raw.h5", "r") as raw:  # every raw shot is in the DB and back
         assert sorted(raw.keys()) == sorted(s.raw_ref.split("/", 1)[1] for s in after.shots)
     manifest = json.loads((run_dir / "run.json").read_text())

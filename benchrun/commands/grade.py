@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -45,9 +46,11 @@ def _limits_for(args: argparse.Namespace, run: Any) -> tuple[LimitsSpec, Path]:
 
 
 def run(args: argparse.Namespace) -> int:
-    from benchrun.store.rundata import load_run
+    from benchrun.store.rundata import load_run, pending_warning
 
     data = load_run(args.results, args.run_id)
+    if (warning := pending_warning(data)) is not None:
+        print(warning, file=sys.stderr)
     limits, path = _limits_for(args, data)
     lot = grade_lot(data.shots, limits)
     if args.json:

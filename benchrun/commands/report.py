@@ -9,6 +9,7 @@ environment variable BENCHRUN_KEY_PASSPHRASE or asked on the terminal.
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -65,6 +66,10 @@ def run(args: argparse.Namespace) -> int:
     published = publish_report(args.results, signer, run_id=args.run_id,
                                limits_path=args.limits, out_pdf=args.out,
                                switching_frequencies_Hz=freqs)
+    from benchrun.store.rundata import pending_warning
+
+    if (warning := pending_warning(published.run)) is not None:
+        print(warning, file=sys.stderr)
     print_lot(published.lot)
     print(f"limits   {published.limits_path}")
     print(f"report   {published.path} (signed)")

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import json
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -58,13 +58,17 @@ class RunData:
     manifest
         ``run.json`` of the run folder, or the manifest kept in the database.
     shots
-        Every stored shot, in the order stored.
+        Every stored, analysed shot, in the order stored.
     run_dir
         The run folder, or ``None`` when loaded from a database without a reachable folder.
     store_url
         Database URL the shots came from (without password).
     run
         The ``runs`` table row (status, start and end), when available.
+    pending
+        Shots recorded but not analysed yet (``ShotResult.pending``: the run stopped between
+        a shot and its analysis; ``benchrun run --resume`` completes them). They are kept out
+        of ``shots``, so grading and reports see only analysed shots.
     """
 
     run_id: str
@@ -73,6 +77,7 @@ class RunData:
     run_dir: Path | None
     store_url: str
     run: RunRecord | None = None
+    pending: list[ShotResult] = field(default_factory=list)
 
     def _file(self, name: str) -> Path | None:
         return None if self.run_dir is None else self.run_dir / name
@@ -249,11 +254,21 @@ def _load_from_store(
     return RunData(
         run_id=run_id,
         manifest=manifest,
-        shots=shots,
+        shots=[s for s in shots if not s.pending],
         run_dir=run_dir,
         store_url=public_url,
         run=record,
+        pending=[s for s in shots if s.pending],
     )
+
+
+def pending_warning(run: RunData) -> str | None:
+    """A line for the user when a run holds shots not analysed yet (None otherwise)."""
+    if not run.pending:
+        return None
+    return (f"warning: {len(run.pending)} shot(s) of run {run.run_id} were recorded but not "
+            "analysed (the run stopped between a shot and its analysis) and are left out; "
+            "'benchrun run SEQUENCE --bench BENCH --resume' completes them")
 
 
 def load_run(source: str | os.PathLike[str], run_id: str | None = None) -> RunData:
