@@ -22,11 +22,13 @@ Definitions (per shot, wall clock):
   sent during the solve is answered when the solve ends, as a busy real scope answers late);
   the time from that answer to the tool acting on it is *trigger polling latency*, overhead.
 * overhead = per-shot time - acquisition: everything else on the runner's critical path —
-  device-selection check, pulse/scope configuration (sent only when changed) with their
-  error-queue drains, bus set-up and read-back, temperature read-back, trigger polling
-  latency, the raw-record write, waiting until the previous shot is stored (raw record synced
-  in "power-loss" mode and its results row committed: the runner never fires before that),
-  reading the previous shot's analysed result, attempt bookkeeping, progress and logging.
+  pulse/scope configuration (sent only when changed) with their error-queue drains, bus
+  set-up and read-back, trigger polling latency, the raw-record write, waiting until the
+  previous shot is stored (raw record synced in "power-loss" mode and its results row
+  committed: the runner never fires before that), reading the previous shot's analysed
+  result, device re-selection when needed, attempt bookkeeping, progress and logging (the
+  device check and the temperature read-back are asked during the acquisition, on helper
+  threads: what the main thread waits for them counts too).
 
 The runner writes each shot to the raw record itself (the sync of "power-loss" mode runs on
 the record's own thread while the next shot is prepared); its pending results row is
@@ -44,9 +46,10 @@ each device is shot once per condition) and *cached* (repeats at one condition, 
 favourable case for the ratio).
 
 Both durability modes of the store are measured (``RunOptions.durability``):
-*power-loss* (the default: every shot's raw record and results row are synced to disk before
-the next shot) and *process* (every shot handed to the operating system before the next
-shot: safe against ``kill -9``, not against a power cut). The run folders go to the system
+*power-loss* (the default: every shot's raw record is synced to disk before the next shot;
+results rows are committed, and rebuilt from the raw record after a power cut) and *process*
+(every shot handed to the operating system before the next shot: safe against ``kill -9``,
+not against a power cut). The run folders go to the system
 temp folder or ``--out-dir``; the disk under it sets the cost of every sync.
 
 Goal: overhead < 10 % of the acquisition time. Prints the figures and a breakdown; the
