@@ -18,7 +18,6 @@ import signal
 import subprocess
 import sys
 import threading
-from dataclasses import dataclass
 from pathlib import Path
 
 import h5py
@@ -26,27 +25,14 @@ import numpy as np
 import pytest
 from sqlalchemy import text
 
+from benchrun.analysis import ChannelData as Channel
+from benchrun.analysis import ProbeCalibration as Probe
 from benchrun.errors import StoreError
 from benchrun.records import ShotResult, TestPoint
 from benchrun.store import RawRecord, ResultsStore
 from benchrun.store.raw import _write_new_attrs, shot_ref
 
 REPO = Path(__file__).resolve().parents[1]
-
-
-@dataclass(frozen=True)
-class Channel:
-    codes: np.ndarray
-    gain: float
-    offset: float
-    code_min: int
-    code_max: int
-
-
-@dataclass(frozen=True)
-class Probe:
-    scale: float
-    deskew_s: float = 0.0
 
 
 def _shot(seed: int = 0) -> tuple[dict[str, Channel], dict[str, Probe]]:

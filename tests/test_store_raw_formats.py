@@ -16,30 +16,15 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import json
-from dataclasses import dataclass
 
 import h5py
 import numpy as np
 import pytest
 
+from benchrun.analysis import ChannelData as Channel
+from benchrun.analysis import ProbeCalibration as Probe
 from benchrun.errors import StoreError
 from benchrun.store.raw import RawRecord, file_sha256, shot_digest
-
-
-@dataclass(frozen=True)
-class Channel:
-    codes: np.ndarray
-    gain: float
-    offset: float
-    code_min: int
-    code_max: int
-
-
-@dataclass(frozen=True)
-class Probe:
-    scale: float
-    deskew_s: float = 0.0
-
 
 T_START, DT = -2.0e-6 / 3.0, 2.5e-10
 CHANNELS = {
