@@ -31,6 +31,7 @@ from benchrun.runner.plan import (
     corrected_first_pulse,
     droop,
     effective_inductance,
+    expand_with_specs,
     first_pulse_width,
     plan_pulses,
     plan_ranges,
@@ -93,6 +94,8 @@ class ShotCycle:
         self.inductance: float | None = None
         self.progress = RunProgress(0, enabled=False)
         self.max_attempts = 1 + self.sequence.retry_invalid
+        #: the sequence's test-point spec behind each point index (shot spacing ...)
+        self._specs = {p.index: spec for p, spec in expand_with_specs(self.sequence)}
         #: next attempt number per (serial, point index, repeat); loaded from the DB once
         self._attempts: dict[tuple[str, int, int], int] | None = None
         #: stores and analyses every fired shot on its own thread (runner/writer.py). Its
@@ -251,10 +254,6 @@ class ShotCycle:
         return self._attempts.get((serial, point_index, repeat), 0)
 
     def _spec(self, point: TestPoint) -> Any:
-        from benchrun.runner.plan import expand_with_specs
-
-        if not hasattr(self, "_specs"):
-            self._specs = {p.index: s for p, s in expand_with_specs(self.sequence)}
         return self._specs[point.index]
 
     def _plan(self, point: TestPoint) -> PulsePlan:

@@ -129,6 +129,12 @@ class ShotContext:
             "bus_voltage_V": self.bus_voltage_V, "settings": settings,
         }  # fmt: skip
 
+    def identity(self) -> dict[str, Any]:
+        """The ``ShotResult`` fields this context fixes (who, where, when)."""
+        return {"run_id": self.run_id, "part": self.part, "lot": self.lot,
+                "serial": self.serial, "point": self.point, "repeat": self.repeat,
+                "attempt": self.attempt, "timestamp": self.timestamp}
+
     @classmethod
     def from_attrs(cls, attrs: Mapping[str, Any]) -> ShotContext:
         return cls(
@@ -160,14 +166,7 @@ def build_result(context: ShotContext, t_start: float, dt: float,
     clipped = any(f.startswith("clipped_diode") for f in flags)
     valid = check.valid and not missing and not clipped
     return ShotResult(
-        run_id=context.run_id,
-        part=context.part,
-        lot=context.lot,
-        serial=context.serial,
-        point=context.point,
-        repeat=context.repeat,
-        attempt=context.attempt,
-        timestamp=context.timestamp,
+        **context.identity(),
         conditions=conditions,
         metrics=metrics,
         flags=tuple(dict.fromkeys(all_flags)),

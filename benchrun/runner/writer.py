@@ -92,9 +92,7 @@ class ShotTicket:
 def pending_result(context: ShotContext, raw_ref: str) -> ShotResult:
     """The DB row of a shot recorded before its analysis: no metrics, not valid, flagged."""
     return ShotResult(
-        run_id=context.run_id, part=context.part, lot=context.lot, serial=context.serial,
-        point=context.point, repeat=context.repeat, attempt=context.attempt,
-        timestamp=context.timestamp,
+        **context.identity(),
         conditions={"if_A": None, "didt_A_per_s": None, "vr_V": None,
                     "temperature_K": context.temperature_K},
         metrics={}, flags=(FLAG_ANALYSIS_PENDING,), valid=False, raw_ref=raw_ref,
