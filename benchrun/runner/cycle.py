@@ -407,7 +407,7 @@ class ShotCycle:
         check_shot(plan, point, self.bench)
         ranges = self._ranges(point)
         measured: dict[str, Any] = {}
-        streamed: dict[str, Any] = {}
+        fired: dict[str, Any] = {}  # the pending row of the shot as fired
 
         def context_with(temperature_K: float | None) -> ShotContext:
             return ShotContext(
@@ -445,7 +445,7 @@ class ShotCycle:
                 # move within an acquisition) and the handler's word on the device in the
                 # fixture during the shot (the station put it there and has not moved it
                 # since; select() checked it before the first shot on it)
-                streamed["row"] = self.writer.record_fired(context_with(None))
+                fired["row"] = self.writer.record_fired(context_with(None))
                 self.writer.release()
                 during.append(self.station.in_parallel(self.station.temperature))
                 during.append(self.station.in_parallel(
@@ -483,7 +483,7 @@ class ShotCycle:
         ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
                                    context.attrs(settings), wait=False)
         ticket = self.writer.submit(CapturedShot(ref, context, capture.t_start, capture.dt,
-                                                 channels, probes, streamed["row"]))
+                                                 channels, probes, fired["row"]))
         if self._attempts is not None:
             identity = (planned.serial, point.index, planned.repeat)
             self._attempts[identity] = max(self._attempts.get(identity, 0), attempt + 1)
