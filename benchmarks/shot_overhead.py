@@ -19,11 +19,16 @@ Definitions (per shot, wall clock):
   select, scaling preamble queries, binary block). The end of the wait is taken from the
   simulated scope itself: the instant it first answers a status query with "acquisition
   complete" (the simulated instruments share one lock with the circuit solver, so a query
-  sent during the solve is answered when the solve ends, as a busy real scope answers late);
-  the time from that answer to the tool acting on it is *trigger polling latency*, overhead.
+  sent during the solve is answered when the solve ends, as a busy real scope answers late),
+  or the instant the record was complete if the runner only started waiting after it; the
+  time from there to the tool acting on it is *trigger polling latency*, overhead.
+  The wait counts from the fire command: work the runner starts between the fire command and
+  its wait for the trigger overlaps the acquisition (and is latency when it outlasts it).
 * overhead = per-shot time - acquisition: everything else on the runner's critical path —
   pulse/scope configuration (sent only when changed) with their error-queue drains, bus
-  set-up and read-back, trigger polling latency, the raw-record write, waiting until the
+  set-up and read-back (the read-back of a shot at an unchanged set-point starts on a helper
+  thread once the previous shot's record is in the scope: what the main thread waits for it
+  counts), trigger polling latency, the raw-record write, waiting until the
   previous shot is stored (raw record synced in "power-loss" mode and its results row
   committed: the runner never fires before that), reading the previous shot's analysed
   result, device re-selection when needed, attempt bookkeeping, progress and logging (the
@@ -106,10 +111,10 @@ switch_voltage: true
 
 
 def _instrument_bench(sim_bench, fresh: bool, last_done) -> None:
-    """Patch one simulated bench: record when the scope first reports a completed
-    acquisition (``last_done``, a shared double of ``time.perf_counter()``, the same clock in
-    every process on Linux) and, for *fresh*, clear the circuit-solution cache before every
-    shot."""
+    """Patch one simulated bench: record when the scope's last acquisition completed and
+    when the scope first reported it completed (``last_done[0]`` and ``[1]``, shared doubles
+    of ``time.perf_counter()``, the same clock in every process on Linux) and, for *fresh*,
+    clear the circuit-solution cache before every shot."""
     from benchrun.simulator import instruments_sim, physics
 
     scope_cls = instruments_sim.SimScope
@@ -119,6 +124,7 @@ def _instrument_bench(sim_bench, fresh: bool, last_done) -> None:
 
     def complete(self, *a, **k):
         result = original_complete(self, *a, **k)
+        last_done[0] = time.perf_counter()
         reported["done"] = False
         return result
 
@@ -126,7 +132,7 @@ def _instrument_bench(sim_bench, fresh: bool, last_done) -> None:
         answer = original_done(self, *a, **k)
         if answer and not reported["done"]:  # the scope says "complete" for the first time
             reported["done"] = True
-            last_done.value = time.perf_counter()
+            last_done[1] = time.perf_counter()
         return answer
 
     scope_cls.complete_acquisition = complete
@@ -222,12 +228,14 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
         patched.append((owner, name, original))
         setattr(owner, name, make(original))
 
-    def timed(owner, name, label, *, main_only=False):
+    def timed(owner, name, label, *, main_only=False, helpers_only=False):
         """Time calls of ``owner.name`` under ``label``; with ``main_only``, calls from other
-        threads under ``label (helper thread)``."""
+        threads under ``label (helper thread)``; with ``helpers_only``, only those."""
         def make(original):
             def wrapper(*a, **k):
-                if main_only and threading.current_thread() is not main_thread:
+                if helpers_only and threading.current_thread() is main_thread:
+                    return original(*a, **k)
+                if (main_only or helpers_only) and threading.current_thread() is not main_thread:
                     # helper threads: timed apart, never on the critical path's list
                     t0 = time.perf_counter()
                     try:
@@ -245,21 +253,43 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
 
     # --- acquisition: the instruments' own work ---
     timed(roles.Scope, "arm_single", ACQ_PARTS[0])
-    timed(roles.PulseSource, "fire", ACQ_PARTS[1])
-    last_done = multiprocessing.get_context("spawn").Value("d", 0.0, lock=False)
+    last_done = multiprocessing.get_context("spawn").Array("d", 2, lock=False)
+    fired = {"at": 0.0}  # when the last fire command was sent
+
+    def make_fire(original):
+        def wrapper(*a, **k):
+            t0 = time.perf_counter()
+            try:
+                return original(*a, **k)
+            finally:
+                fired["at"] = time.perf_counter()
+                add(ACQ_PARTS[1], fired["at"] - t0)
+        return wrapper
 
     def make_wait(original):
+        # the acquisition runs from the fire command on; what the runner does between the
+        # fire command and this wait (starting the work that overlaps the acquisition) is
+        # overhead only where the scope was done before the runner started waiting
         def wrapper(self, *a, **k):
             t0 = time.perf_counter()
             try:
                 return original(self, *a, **k)
             finally:
                 t1 = time.perf_counter()
-                done = last_done.value if last_done.value > t0 else t1
-                done = min(max(done, t0), t1)
-                add(ACQ_PARTS[2], done - t0)
+                start = fired["at"] if 0.0 < fired["at"] <= t0 else t0
+                completed, answered = last_done[0], last_done[1]
+                if completed <= start:  # not this shot's acquisition (none recorded)
+                    done = t1
+                elif completed < t0:  # done before the runner asked: the rest is latency
+                    done = completed
+                else:  # the runner's query was waiting: the scope's answer ends it
+                    done = answered if answered >= completed else t1
+                done = min(max(done, start), t1)
+                add(ACQ_PARTS[2], done - start)
                 add(TRIGGER_POLL, t1 - done)
         return wrapper
+
+    patch(roles.PulseSource, "fire", make_fire)
 
     patch(roles.Scope, "wait_triggered", make_wait)
     block = {"t": 0.0}
@@ -303,6 +333,7 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
     timed(RawRecord, "append_shot", "raw record write (to the OS; sync in background)")
     timed(station.Station, "is_selected", "device check (helper thread)")
     timed(station.Station, "temperature", "temperature read-back (helper thread)")
+    timed(station.Station, "_energise_now", "bus read-back ahead", helpers_only=True)
     timed(ResultsStore, "record_pending", BACKGROUND[0])
     timed(cycle.ShotWriter, "_work", "writer thread total")
     from benchrun.runner import writer as writer_module
