@@ -262,3 +262,34 @@ def test_trigger_wait_with_an_expected_duration_asks_few_times():
     assert expected.asked <= 2 + int(0.2 * 0.06 / (0.01 * 0.06)) + 3
     never = FakeScope(10.0)
     assert never.wait_triggered(0.05, expected_s=0.06) is False
+
+
+def test_trigger_wait_counts_from_the_fire():
+    # ``since`` = when the acquisition was started: work done between the fire command and
+    # the wait (the runner starts its work that overlaps the acquisition there) must not
+    # push the first poll after 80 % of the expected time further out
+    import time as _time
+
+    from benchrun.instruments import roles
+
+    class FakeScope:
+        wait_triggered = roles.Scope.wait_triggered
+
+        def __init__(self, done_at):
+            self.done_at = done_at
+
+        def acquisition_done(self):
+            return _time.monotonic() >= self.done_at
+
+    fired = _time.monotonic()
+    scope = FakeScope(fired + 0.30)
+    _time.sleep(0.25)  # busy until shortly before the expected end
+    assert scope.wait_triggered(5.0, expected_s=0.30, since=fired)
+    late = _time.monotonic() - scope.done_at
+    # from the fire: polled every 1 % of 0.30 s from 0.24 s on; counted from the call it
+    # would have slept until 0.25 + 0.24 s
+    assert late < 0.1, late
+    never = FakeScope(fired + 10.0)
+    started = _time.monotonic()
+    assert never.wait_triggered(0.3, expected_s=0.30, since=started - 0.25) is False
+    assert _time.monotonic() - started < 0.2  # the timeout counts from the fire too

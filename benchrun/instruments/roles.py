@@ -251,7 +251,7 @@ class Scope(_Driver):
         return bool(self._ask("acquisition_done"))
 
     def wait_triggered(self, timeout_s: float, poll_s: float = 0.002,
-                       expected_s: float | None = None) -> bool:
+                       expected_s: float | None = None, since: float | None = None) -> bool:
         """Poll until the armed acquisition completed; False when it did not within timeout.
 
         Without ``expected_s`` the interval between polls grows with the time already waited
@@ -261,9 +261,10 @@ class Scope(_Driver):
         then left alone until 80 % of that time, then asked every 1 % of it (within
         ``poll_s / 8`` to ``poll_s``) until twice that time has passed, then as without it:
         an acquisition as long as the recent ones is seen within about 1 % of its duration,
-        at fewer queries than the growing interval needs.
+        at fewer queries than the growing interval needs. ``since``: the ``time.monotonic()``
+        at which the acquisition was started (default: now); the times above count from it.
         """
-        start = time.monotonic()
+        start = time.monotonic() if since is None else since
         deadline = start + timeout_s
         fast = poll_s / 8
         while True:

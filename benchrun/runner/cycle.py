@@ -89,6 +89,8 @@ class ShotCycle:
             names.append("gate")
         self.channel_names = names
         self.first_pulse: dict[int, float] = {}
+        #: per point index: (inductance, t1, plan) of the last plan made
+        self._plans: dict[int, tuple[float | None, float | None, PulsePlan]] = {}
         self.widen: dict[tuple[int, str], float] = {}
         self.irrm_seen: dict[int, float] = {}
         self.inductance: float | None = None
@@ -257,9 +259,16 @@ class ShotCycle:
         return self._specs[point.index]
 
     def _plan(self, point: TestPoint) -> PulsePlan:
-        plan = plan_pulses(point, self.sequence, self.bench.fixture, self.inductance)
         t1 = self.first_pulse.get(point.index)
-        return plan if t1 is None else plan.with_first_pulse(t1)
+        made = self._plans.get(point.index)
+        if made is not None and made[:2] == (self.inductance, t1):
+            return made[2]
+        # a pure function of the point and the corrections so far: made again only when a
+        # correction changed
+        plan = plan_pulses(point, self.sequence, self.bench.fixture, self.inductance)
+        plan = plan if t1 is None else plan.with_first_pulse(t1)
+        self._plans[point.index] = (self.inductance, t1, plan)
+        return plan
 
     def _ranges(self, point: TestPoint, scale_V: float = 1.0) -> dict[str, SignalRange]:
         """Scope windows: planned from expectations, the current window's negative side
@@ -451,9 +460,15 @@ class ShotCycle:
                 during.append(self.station.in_parallel(
                     lambda: self.station.is_selected(planned.serial)))
 
+            def read_bus_ahead() -> None:
+                # the next shot's bus read-back (most shots follow one at the same bus
+                # voltage), on a helper thread while this shot is read and stored
+                self.station.read_bus_ahead(point.bus_voltage_V)
+
             try:
                 capture = self.station.fire(self.channel_names, self.options.trigger_timeout_s,
-                                            before_fire=before_fire, on_fired=on_fired)
+                                            before_fire=before_fire, on_fired=on_fired,
+                                            on_triggered=read_bus_ahead)
             finally:  # never leave a query running on a connection a retry will use
                 futures.wait(during)
             measured["temperature_K"] = during[0].result()
