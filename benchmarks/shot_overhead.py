@@ -26,9 +26,7 @@ Definitions (per shot, wall clock):
   its wait for the trigger overlaps the acquisition (and is latency when it outlasts it).
 * overhead = per-shot time - acquisition: everything else on the runner's critical path —
   pulse/scope configuration (sent only when changed) with their error-queue drains, bus
-  set-up and read-back (the read-back of a shot at an unchanged set-point starts on a helper
-  thread once the previous shot's record is in the scope: what the main thread waits for it
-  counts), trigger polling latency, the raw-record write, waiting until the
+  set-up and read-back, trigger polling latency, the raw-record write, waiting until the
   previous shot is stored (raw record synced in "power-loss" mode and its results row
   committed: the runner never fires before that), reading the previous shot's analysed
   result, device re-selection when needed, attempt bookkeeping, progress and logging (the
@@ -228,14 +226,12 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
         patched.append((owner, name, original))
         setattr(owner, name, make(original))
 
-    def timed(owner, name, label, *, main_only=False, helpers_only=False):
+    def timed(owner, name, label, *, main_only=False):
         """Time calls of ``owner.name`` under ``label``; with ``main_only``, calls from other
-        threads under ``label (helper thread)``; with ``helpers_only``, only those."""
+        threads under ``label (helper thread)``."""
         def make(original):
             def wrapper(*a, **k):
-                if helpers_only and threading.current_thread() is main_thread:
-                    return original(*a, **k)
-                if (main_only or helpers_only) and threading.current_thread() is not main_thread:
+                if main_only and threading.current_thread() is not main_thread:
                     # helper threads: timed apart, never on the critical path's list
                     t0 = time.perf_counter()
                     try:
@@ -333,7 +329,6 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
     timed(RawRecord, "append_shot", "raw record write (to the OS; sync in background)")
     timed(station.Station, "is_selected", "device check (helper thread)")
     timed(station.Station, "temperature", "temperature read-back (helper thread)")
-    timed(station.Station, "_energise_now", "bus read-back ahead", helpers_only=True)
     timed(ResultsStore, "record_pending", BACKGROUND[0])
     timed(cycle.ShotWriter, "_work", "writer thread total")
     from benchrun.runner import writer as writer_module

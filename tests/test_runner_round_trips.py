@@ -78,8 +78,7 @@ def test_steady_shots_send_no_settings_and_a_reconnect_sends_them_again(tmp_path
         assert commands["pulse"] == Counter({"PULSe:FIRE": 1})  # output state remembered
         assert commands["thermal"] == Counter({"MEASure:TEMPerature?": 1})
         assert commands["handler"] == Counter({"DEVice:SELect?": 1})  # asked every shot
-        # one bus read-back per shot (started ahead on a helper thread, taken by the next
-        # shot), no set-point sent again
+        # one bus read-back per shot, no set-point sent again
         assert commands["supply"] == Counter({"MEASure:VOLTage?": 1})
         assert commands["scope"]["WAVeform:DATA?"] == 3
     # every steady shot sends the same scope commands (ACQuire:DONE? polls may differ)

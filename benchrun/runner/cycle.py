@@ -460,15 +460,9 @@ class ShotCycle:
                 during.append(self.station.in_parallel(
                     lambda: self.station.is_selected(planned.serial)))
 
-            def read_bus_ahead() -> None:
-                # the next shot's bus read-back (most shots follow one at the same bus
-                # voltage), on a helper thread while this shot is read and stored
-                self.station.read_bus_ahead(point.bus_voltage_V)
-
             try:
                 capture = self.station.fire(self.channel_names, self.options.trigger_timeout_s,
-                                            before_fire=before_fire, on_fired=on_fired,
-                                            on_triggered=read_bus_ahead)
+                                            before_fire=before_fire, on_fired=on_fired)
             finally:  # never leave a query running on a connection a retry will use
                 futures.wait(during)
             measured["temperature_K"] = during[0].result()

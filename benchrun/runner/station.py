@@ -13,7 +13,6 @@ import logging
 import time
 from collections import deque
 from collections.abc import Callable
-from concurrent import futures
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any, TypeVar
@@ -100,8 +99,6 @@ class Station:
         #: wall-clock durations of the last acquisitions (fire to record), for the trigger wait
         self._acquisitions: deque[float] = deque(maxlen=3)
         self._helpers: ThreadPoolExecutor | None = None
-        #: ((volts, tolerance), future) of a bus read-back started ahead (read_bus_ahead)
-        self._bus_ahead: tuple[tuple[float, float], Future[float]] | None = None
 
     # --- lifecycle -----------------------------------------------------------------------
 
@@ -120,7 +117,7 @@ class Station:
         not talk to meanwhile: every instrument has its own connection, so queries to
         different instruments overlap instead of queueing)."""
         if self._helpers is None:
-            self._helpers = ThreadPoolExecutor(max_workers=3, thread_name_prefix="station")
+            self._helpers = ThreadPoolExecutor(max_workers=2, thread_name_prefix="station")
         return self._helpers.submit(call)
 
     def close(self) -> None:
@@ -176,36 +173,6 @@ class Station:
         is switched on again, as before every shot).
         """
         self._check_sessions()
-        ahead = self._take_bus_ahead()
-        if ahead is not None:
-            if ahead[0] == (volts, tolerance):
-                return ahead[1].result()
-            futures.wait([ahead[1]])  # read for another set-point: its outcome is dropped
-        return self._energise_now(volts, tolerance)
-
-    def read_bus_ahead(self, volts: float, *, tolerance: float = 0.01) -> None:
-        """Start the next :meth:`energise` now, on a helper thread, when nothing but a
-        read-back of the bus is due (the set-point ``volts`` already sent, the supply on):
-        the caller's thread goes on with other work meanwhile (reading and storing the last
-        shot), and
-        ``energise(volts)`` then takes the result. Any other use of the supply waits for
-        it first (and a reconnect drops it: settings are sent again)."""
-        self._check_sessions()
-        if self._bus_ahead is None and self._voltage == volts and self._supply_on:
-            self._bus_ahead = ((volts, tolerance),
-                               self.in_parallel(lambda: self._energise_now(volts, tolerance)))
-
-    def _take_bus_ahead(self) -> tuple[tuple[float, float], Future[float]] | None:
-        ahead, self._bus_ahead = self._bus_ahead, None
-        return ahead
-
-    def _settle_bus_ahead(self) -> None:
-        """Wait for a bus read-back started ahead and drop it (the supply is used next)."""
-        ahead = self._take_bus_ahead()
-        if ahead is not None:
-            futures.wait([ahead[1]])
-
-    def _energise_now(self, volts: float, tolerance: float) -> float:
         if self._voltage != volts:
             self.supply.set_voltage(volts)
             self._voltage = volts
@@ -232,7 +199,6 @@ class Station:
 
     def discharge(self) -> float:
         """Supply off; wait until the measured bus is touch-safe. Returns the voltage."""
-        self._settle_bus_ahead()
         self._supply_on = False
         self.supply.output(False)
         limit = self.bench.safety.touch_safe_voltage
@@ -358,15 +324,13 @@ class Station:
 
     def fire(self, channels: list[str], trigger_timeout_s: float, *,
              before_fire: Callable[[], None] | None = None,
-             on_fired: Callable[[], None] | None = None,
-             on_triggered: Callable[[], None] | None = None) -> Capture:
+             on_fired: Callable[[], None] | None = None) -> Capture:
         """Arm, fire, wait for the trigger and read every channel.
 
         ``before_fire`` is called once the scope is armed, just before the fire command (the
         last chance to hold the shot back); ``on_fired`` the moment the fire command has been
-        sent; ``on_triggered`` once the scope holds the record, before it is read. The pulse
-        output is asked for (and switched on) unless the station switched it on itself since
-        the last fault or reconnect.
+        sent. The pulse output is asked for (and switched on) unless the station switched it
+        on itself since the last fault or reconnect.
         """
         self._check_sessions()
         self.scope.arm_single()
@@ -386,8 +350,6 @@ class Station:
             raise InstrumentTimeout(f"the scope did not trigger within {trigger_timeout_s:g} s "
                                     "of firing")
         self._acquisitions.append(time.monotonic() - fired)
-        if on_triggered is not None:
-            on_triggered()
         traces = self.scope.read_channels(channels)
         first = next(iter(traces.values()))
         return Capture(first.t_start, first.dt, traces)
@@ -395,7 +357,6 @@ class Station:
     def forget_settings(self) -> None:
         """After an instrument fault: send (or ask) every setting again before the next
         shot."""
-        self._settle_bus_ahead()
         self._scope_setup = None
         self._pulse_setup = None
         self._gate = None
