@@ -39,8 +39,11 @@ committed on a second thread from the moment the shot fires; the writer thread a
 and completes the row while the next shot is acquired (benchrun/runner/writer.py). That
 background work is printed separately; only what the main thread spends or waits for is
 overhead. (Tried and dropped because they moved time into the acquisition parts rather than
-saving it: writing each channel as it arrives, during the transfer; writing the raw record
-on a thread beside the arming.)
+saving it, judged on the whole shot cycle: writing each channel as it arrives, during the
+transfer; writing the raw record on a thread beside the arming; reading the next shot's bus
+voltage on a helper thread during the transfer or the write; creating the shot's HDF5 objects
+while the scope acquires. Python threads share one interpreter lock, and the per-shot write
+is a few hundred microseconds of cold-cache library calls wherever it is placed.)
 
 The simulator caches its circuit solution per shot condition, so repeated shots at one
 setting cost only digitising and transfer. Both cases are measured and printed: *fresh*
