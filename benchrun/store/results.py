@@ -35,8 +35,6 @@ Times are ISO 8601 UTC strings; they sort chronologically as text on every backe
 from __future__ import annotations
 
 import hashlib
-import json
-import math
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import fields
@@ -48,11 +46,18 @@ from sqlalchemy.engine import Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, IntegrityError, NoSuchModuleError, SQLAlchemyError
 
 from benchrun.errors import StoreError
-from benchrun.records import FLAG_ANALYSIS_PENDING, ShotResult
+from benchrun.records import ShotResult
 from benchrun.store.canonical import canonical_json
 from benchrun.store.raw import DURABILITY_POWER_LOSS, check_durability
+from benchrun.store.rows import (
+    identity,
+    report_record,
+    run_record,
+    same_row,
+    shot_from_row,
+    shot_row,
+)
 from benchrun.store.schema import (
-    SHOT_COLUMNS,
     ReportRecord,
     RunRecord,
     metadata,
@@ -218,7 +223,7 @@ class ResultsStore:
         """The run's row, or ``None`` when there is no such run."""
         with self._begin(f"cannot read run {run_id!r}") as conn:
             row = conn.execute(select(runs_table).where(runs_table.c.run_id == run_id)).first()
-        return None if row is None else self._run_record(row._mapping)
+        return None if row is None else run_record(row._mapping)
 
     def update_run(
         self,
@@ -254,74 +259,11 @@ class ResultsStore:
             rows = conn.execute(
                 select(runs_table).order_by(runs_table.c.started, runs_table.c.run_id)
             ).all()
-        return [self._run_record(r._mapping) for r in rows]
-
-    @staticmethod
-    def _run_record(row: Any) -> RunRecord:
-        return RunRecord(
-            run_id=row["run_id"],
-            part=row["part"],
-            lot=row["lot"],
-            started=row["started"],
-            finished=row["finished"],
-            status=row["status"],
-            manifest=json.loads(row["manifest"]),
-        )
+        return [run_record(r._mapping) for r in rows]
 
     # -- shots ---------------------------------------------------------------------------
-    @staticmethod
-    def _shot_row(shot: ShotResult) -> dict[str, Any]:
-        # the values of shot.to_dict(), without its deep copy (everything is serialised here)
-        data = {f.name: getattr(shot, f.name) for f in fields(shot)}
-        data["point"] = {f.name: getattr(shot.point, f.name) for f in fields(shot.point)}
-        data["flags"] = list(shot.flags)
-        point = data["point"]
-        extra = {k: v for k, v in data.items() if k not in SHOT_COLUMNS}
-        return {
-            "run_id": shot.run_id,
-            "part": shot.part,
-            "lot": shot.lot,
-            "serial": shot.serial,
-            "point_index": int(shot.point.index),
-            "repeat": int(shot.repeat),
-            "attempt": int(shot.attempt),
-            "timestamp": shot.timestamp,
-            "temperature_K": _query_float(point.get("temperature_K")),
-            "bus_voltage_V": _query_float(point.get("bus_voltage_V")),
-            "forward_current_A": _query_float(point.get("forward_current_A")),
-            "point": canonical_json(point),
-            "conditions": canonical_json(data["conditions"]),
-            "metrics": canonical_json(data["metrics"]),
-            "flags": canonical_json(data["flags"]),
-            "valid": bool(shot.valid),
-            "raw_ref": shot.raw_ref,
-            "acquisition": canonical_json(data["acquisition"]),
-            "extra": canonical_json(extra),
-        }
-
-    @staticmethod
-    def _shot_from_row(row: Any) -> ShotResult:
-        data: dict[str, Any] = json.loads(row["extra"])
-        data.update(
-            run_id=row["run_id"],
-            part=row["part"],
-            lot=row["lot"],
-            serial=row["serial"],
-            repeat=row["repeat"],
-            attempt=row["attempt"],
-            timestamp=row["timestamp"],
-            point=json.loads(row["point"]),
-            conditions=json.loads(row["conditions"]),
-            metrics=json.loads(row["metrics"]),
-            flags=json.loads(row["flags"]),
-            valid=bool(row["valid"]),
-            raw_ref=row["raw_ref"],
-            acquisition=json.loads(row["acquisition"]),
-        )
-        return ShotResult.from_dict(data)
-
     def _stored_row(self, conn: Connection, key: tuple[str, str, int, int, int]) -> Any:
-        return conn.execute(select(shots_table).where(*_identity(key))).first()
+        return conn.execute(select(shots_table).where(*identity(key))).first()
 
     def add_shot(self, shot: ShotResult) -> bool:
         """Store one shot in its own transaction, committed before returning.
@@ -339,7 +281,7 @@ class ResultsStore:
             The run does not exist, a *different* shot is already stored under the same
             ``(run_id, serial, point_index, repeat, attempt)``, or a database error.
         """
-        row = self._shot_row(shot)
+        row = shot_row(shot)
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         try:
             with self._engine.begin() as conn:
@@ -358,7 +300,7 @@ class ResultsStore:
                     ) from exc
                 raise StoreError(f"cannot store shot {key}: {exc}") from exc
             stored = {k: v for k, v in existing._mapping.items() if k != "id"}
-            if _same_row(stored, row):
+            if same_row(stored, row):
                 return False
             raise StoreError(
                 f"a different shot is already stored for run {key[0]!r}, serial {key[1]!r}, "
@@ -388,12 +330,12 @@ class ResultsStore:
         """
         if shot.pending:
             raise StoreError("complete_shot needs an analysed shot, not a pending one")
-        row = self._shot_row(shot)
+        row = shot_row(shot)
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         with self._begin(f"cannot complete shot {key}") as conn:
             replaced = conn.execute(
                 update(shots_table)
-                .where(*_identity(key, pending=True))
+                .where(*identity(key, pending=True))
                 .values(**row)
             ).rowcount
             existing = None if replaced else self._stored_row(conn, key)
@@ -402,7 +344,7 @@ class ResultsStore:
         if existing is None:
             raise StoreError(f"cannot complete shot {key}: it is not stored")
         stored = {k: v for k, v in existing._mapping.items() if k != "id"}
-        if _same_row(stored, row):
+        if same_row(stored, row):
             return False
         raise StoreError(
             f"cannot complete shot {key}: a different analysed shot is already stored for run "
@@ -422,11 +364,11 @@ class ResultsStore:
         """
         if not shot.pending:
             raise StoreError("record_pending needs a pending shot")
-        row = self._shot_row(shot)
+        row = shot_row(shot)
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         try:
             with self._engine.begin() as conn:
-                conn.execute(delete(shots_table).where(*_identity(key, pending=True)))
+                conn.execute(delete(shots_table).where(*identity(key, pending=True)))
                 conn.execute(self._insert_shot, row)
         except IntegrityError as exc:
             raise StoreError(f"cannot record pending shot {key}: an analysed shot is stored "
@@ -442,7 +384,7 @@ class ResultsStore:
                int(shot.attempt))
         with self._begin(f"cannot discard pending shot {key}") as conn:
             deleted = conn.execute(
-                delete(shots_table).where(*_identity(key, pending=True))).rowcount
+                delete(shots_table).where(*identity(key, pending=True))).rowcount
         return bool(deleted)
 
     def shots(self, run_id: str) -> list[ShotResult]:
@@ -454,7 +396,7 @@ class ResultsStore:
                 .order_by(shots_table.c.id)
             ).all()
         try:
-            return [self._shot_from_row(r._mapping) for r in rows]
+            return [shot_from_row(r._mapping) for r in rows]
         except (ValueError, TypeError, KeyError) as exc:
             raise StoreError(f"a stored shot of run {run_id!r} cannot be decoded: {exc}") from exc
 
@@ -581,7 +523,7 @@ class ResultsStore:
             query = query.where(reports_table.c.run_id == run_id)
         with self._begin("cannot list reports") as conn:
             rows = conn.execute(query).all()
-        return [self._report_record(r._mapping) for r in rows]
+        return [report_record(r._mapping) for r in rows]
 
     def report(self, report_id: str) -> ReportRecord | None:
         """One report's row, or ``None`` when there is no such report."""
@@ -589,45 +531,8 @@ class ResultsStore:
             row = conn.execute(
                 select(reports_table).where(reports_table.c.report_id == report_id)
             ).first()
-        return None if row is None else self._report_record(row._mapping)
+        return None if row is None else report_record(row._mapping)
 
-    @staticmethod
-    def _report_record(row: Any) -> ReportRecord:
-        values = dict(row)
-        values["details"] = json.loads(values["details"])
-        return ReportRecord(**values)
-
-
-def _identity(key: tuple[str, str, int, int, int], *, pending: bool = False) -> list[Any]:
-    """WHERE clauses selecting the shot row ``(run_id, serial, point_index, repeat,
-    attempt)``; with ``pending``, only while it is a pending row."""
-    c = shots_table.c
-    clauses = [c.run_id == key[0], c.serial == key[1], c.point_index == key[2],
-               c.repeat == key[3], c.attempt == key[4]]
-    if pending:
-        clauses.append(c.flags == canonical_json([FLAG_ANALYSIS_PENDING]))
-    return clauses
-
-
-def _query_float(value: Any) -> float | None:
-    """A target value for the query-only columns (SQLite cannot hold NaN: stored as NULL)."""
-    if value is None:
-        return None
-    number = float(value)
-    return number if math.isfinite(number) else None
-
-
-def _same_row(stored: dict[str, Any], row: dict[str, Any]) -> bool:
-    if set(stored) != set(row):
-        return False
-    for key, value in row.items():
-        other = stored[key]
-        if key == "valid":
-            if bool(other) != bool(value):
-                return False
-        elif other != value:
-            return False
-    return True
 
 
 __all__ = [
