@@ -88,6 +88,13 @@ from typing import Any, Protocol
 
 import numpy as np
 
+from benchrun.analysis.switch_edges import (
+    SampleTimes,
+    commutation_rate,
+    first_falling,
+    forced_bands,
+    start_crossing,
+)
 from benchrun.errors import ConfigError, InputDataError
 
 FLAG_ESTIMATE_ONLY = "switch_energy_estimate_only"
@@ -102,13 +109,6 @@ FLAG_DIDT_NOT_FOUND = "switch_didt_not_found"
 
 #: Fewest samples used to read the switch's off-state voltage (common practice).
 MIN_OFF_SAMPLES = 8
-#: First forward span searched for the window end; grown by 4× until found.
-INITIAL_SPAN = 65_536
-#: Bands the voltage fall is divided into to find circuit-driven parts (5 % each).
-FALL_BANDS = 20
-#: Top bands left out of the reference (median) fall rate: they hold the current-rise delay.
-REFERENCE_SKIP_BANDS = 2
-
 
 class RecoveryLike(Protocol):
     """What this module reads from :class:`benchrun.analysis.recovery.RecoveryMetrics`."""
@@ -207,30 +207,7 @@ class SwitchingMetrics:
 # helpers
 
 
-class _Time:
-    """Sample times as an array, or as ``t_start + k·dt``."""
-
-    def __init__(self, t: np.ndarray | None, dt: float | None, t_start: float, n: int) -> None:
-        self.t = t
-        self.dt = dt
-        self.t_start = t_start
-        self.n = n
-
-    def at(self, a: int, b: int) -> np.ndarray:
-        if self.t is not None:
-            return np.asarray(self.t[a:b], dtype=np.float64)
-        return self.t_start + self.dt * np.arange(a, b, dtype=np.float64)
-
-    def index_before(self, time: float) -> int:
-        """Largest index k with t[k] <= time (clamped to the record)."""
-        if self.t is not None:
-            k = int(np.searchsorted(self.t, time, side="right")) - 1
-        else:
-            k = math.floor((time - self.t_start) / self.dt)
-        return min(max(k, 0), self.n - 1)
-
-
-def _validate(t, v_sw, i_sw, dt, t_start) -> tuple[np.ndarray, Any, _Time]:
+def _validate(t, v_sw, i_sw, dt, t_start) -> tuple[np.ndarray, Any, SampleTimes]:
     v = np.asarray(v_sw)
     i = i_sw if isinstance(i_sw, SwitchCurrentFromDiode) else np.asarray(i_sw)
     for name, x in (("switch voltage", v), ("switch current", i)):
@@ -248,21 +225,10 @@ def _validate(t, v_sw, i_sw, dt, t_start) -> tuple[np.ndarray, Any, _Time]:
             raise InputDataError(f"time has shape {t.shape}, expected ({v.size},)")
         if not np.all(np.diff(t) > 0):
             raise InputDataError("time is not strictly increasing")
-        return v, i, _Time(t, None, 0.0, v.size)
+        return v, i, SampleTimes(t, None, 0.0, v.size)
     if dt is None or not (math.isfinite(dt) and dt > 0):
         raise InputDataError(f"give a time array or a sample interval dt > 0, got dt={dt!r}")
-    return v, i, _Time(None, float(dt), float(t_start), v.size)
-
-
-def _interp_at(time: float, tw: np.ndarray, xw: np.ndarray) -> float:
-    return float(np.interp(time, tw, xw))
-
-
-def _crossing(t0: float, t1: float, x0: float, x1: float, level: float) -> float:
-    t0, t1, x0, x1 = float(t0), float(t1), float(x0), float(x1)
-    if x1 == x0:
-        return t1
-    return t0 + (level - x0) * (t1 - t0) / (x1 - x0)
+    return v, i, SampleTimes(None, float(dt), float(t_start), v.size)
 
 
 def integrate_product(
@@ -413,7 +379,7 @@ def analyze_switch_turn_on(
 
     # --- window start: last rising crossing of f·IF before t0 --------------------------------
     level_i = opts.current_start_fraction * if_A
-    start = _start_crossing(i, time, k0, t0, level_i)
+    start = start_crossing(i, time, k0, t0, level_i)
     if start is None:
         flags.append(FLAG_START_NOT_FOUND)
         return result()
@@ -426,7 +392,7 @@ def analyze_switch_turn_on(
 
     # --- window end: first falling crossing of f·Voff after t0 --------------------------------
     level_v = opts.voltage_end_fraction * voff
-    end = _first_falling(v, time, k0, level_v)
+    end = first_falling(v, time, k0, level_v)
     if end is None:
         flags.append(FLAG_END_NOT_FOUND)
         return result(t_eon_start_s=t_a)
@@ -441,7 +407,7 @@ def analyze_switch_turn_on(
 
     # --- ideal-diode turn-on: measured rise to t0, gate-charge-shifted fall (docstring) -----
     e_rise = integrate_product(tw, vw, iw, t_a, min(t0, t_b))
-    didt = _commutation_rate(recovery, tw, iw, t0, if_A)
+    didt = commutation_rate(getattr(recovery, "didt_A_per_s", None), tw, iw, t0, if_A)
     if didt is None:
         flags.append(FLAG_DIDT_NOT_FOUND)
         return result(eon_J=eon, t_eon_start_s=t_a, t_eon_end_s=t_b, voff_V=voff)
@@ -468,52 +434,9 @@ def analyze_switch_turn_on(
     )
 
 
-def _start_crossing(
-    i: np.ndarray, time: _Time, k0: int, t0: float, level: float
-) -> tuple[float, int] | None:
-    """Last rising crossing of ``level`` by the switch current at or before t0."""
-    span = 4096
-    hi = k0 + 1
-    while True:
-        lo = max(hi - span, 0)
-        seg = np.asarray(i[lo : hi + 1], dtype=np.float64)
-        below = np.flatnonzero(seg[:-1] < level) if seg.size > 1 else np.array([], dtype=int)
-        if below.size:
-            j = lo + int(below[-1])
-            if j + 1 > k0 + 1:
-                return None
-            tw = time.at(j, j + 2)
-            x0, x1 = float(i[j]), float(i[j + 1])
-            if x1 < level:  # the sample after t0 is still below: no rise before t0
-                return None
-            return float(_crossing(tw[0], tw[1], x0, x1, level)), j
-        if lo == 0:
-            return None
-        span *= 4
-
-
-def _first_falling(v: np.ndarray, time: _Time, k0: int, level: float) -> tuple[float, int] | None:
-    """First instant after sample k0 at which ``v`` falls through ``level``."""
-    span = INITIAL_SPAN
-    a = k0
-    while a < time.n - 1:
-        b = min(a + span, time.n)
-        seg = np.asarray(v[a:b], dtype=np.float64)
-        hits = np.flatnonzero(seg <= level)
-        if hits.size:
-            k = a + int(hits[0])
-            if k == k0:
-                return None  # already below at t0: not a turn-on of a blocking switch
-            tw = time.at(k - 1, k + 1)
-            return float(_crossing(tw[0], tw[1], float(v[k - 1]), float(v[k]), level)), k
-        a = b - 1
-        span *= 4
-    return None
-
-
 def _off_voltage(
     v: np.ndarray,
-    time: _Time,
+    time: SampleTimes,
     k_start: int,
     rise_s: float,
     opts: SwitchingOptions,
@@ -543,28 +466,6 @@ def _off_voltage(
         return float(vr)
     flags.append(FLAG_END_NOT_FOUND)
     return None
-
-
-def _commutation_rate(
-    recovery: RecoveryLike, tw: np.ndarray, iw: np.ndarray, t0: float, if_A: float
-) -> float | None:
-    """Switch-current rise rate at the commutation (A/s).
-
-    ``recovery.didt_A_per_s`` when known (measured across t0); else the mean rate of the
-    switch current from 50 % of IF to t0.
-    """
-    didt = getattr(recovery, "didt_A_per_s", None)
-    if didt is not None and math.isfinite(didt) and didt > 0:
-        return float(didt)
-    k0 = int(np.searchsorted(tw, t0, side="right")) - 1
-    below = np.flatnonzero(iw[: k0 + 1] < 0.5 * if_A)
-    if not below.size or below[-1] + 1 >= tw.size:
-        return None
-    j = int(below[-1])
-    t_half = _crossing(tw[j], tw[j + 1], iw[j], iw[j + 1], 0.5 * if_A)
-    if not t0 > t_half:
-        return None
-    return 0.5 * if_A / (t0 - t_half)
 
 
 def _ideal_fall(
@@ -603,7 +504,7 @@ def _ideal_fall(
     t_ideal = elapsed - (i - if_A) / didt
     t_ideal[0] = 0.0
 
-    rate, forced = _forced_bands(depth, elapsed, opts.forced_rate_factor)
+    rate, forced = forced_bands(depth, elapsed, opts.forced_rate_factor)
     if forced:
         # a Miller fall never speeds up as the voltage falls: T_ideal(y)/y non-decreasing
         slope = t_ideal[1:] / depth[1:]
@@ -612,25 +513,3 @@ def _ideal_fall(
     t_ideal = np.maximum.accumulate(np.maximum(t_ideal, 0.0))
     energy = if_A * float(np.sum(0.5 * (v[1:] + v[:-1]) * np.diff(t_ideal)))
     return energy, rate, forced
-
-
-def _forced_bands(depth: np.ndarray, elapsed: np.ndarray, factor: float) -> tuple[float, bool]:
-    """Median fall rate (duration-weighted, top bands left out) and whether any band is forced.
-
-    The fall ``0 … depth[-1]`` is cut into :data:`FALL_BANDS` equal voltage bands; the time
-    the measured fall takes across each is read from the first-passage curve.
-    """
-    total = float(depth[-1])
-    edges = np.linspace(0.0, total, FALL_BANDS + 1)
-    times = np.interp(edges, depth, elapsed)
-    dur = np.diff(times)
-    width = total / FALL_BANDS
-    rate = np.full(FALL_BANDS, np.inf)
-    np.divide(width, dur, out=rate, where=dur > 0)
-    ref_rate, ref_dur = rate[REFERENCE_SKIP_BANDS:], dur[REFERENCE_SKIP_BANDS:]
-    order = np.argsort(ref_rate)
-    cumulative = np.cumsum(ref_dur[order])
-    if not cumulative[-1] > 0:
-        return math.inf, False
-    median = float(ref_rate[order][int(np.searchsorted(cumulative, 0.5 * cumulative[-1]))])
-    return median, bool(np.any(rate > factor * median))
