@@ -15,11 +15,11 @@ from benchrun.errors import ConfigError
 from benchrun.instruments.commands import (
     COMMON_COMMANDS,
     ROLE_COMMANDS,
-    evaluate,
     families,
     load_table,
     table_from_dict,
 )
+from benchrun.instruments.expressions import evaluate
 
 SHIPPED = families()
 

@@ -40,7 +40,8 @@ import numpy as np
 
 from benchrun.errors import ConfigError, InstrumentError, InstrumentReportedError, ProtocolError
 from benchrun.instruments import scpi
-from benchrun.instruments.commands import CommandTable, evaluate, load_table
+from benchrun.instruments.commands import CommandTable, load_table
+from benchrun.instruments.expressions import evaluate
 from benchrun.instruments.session import DEFAULT_VISA_LIBRARY, InstrumentSession, Transport
 
 #: Which scope input each analysis channel is wired to on the standard fixture.

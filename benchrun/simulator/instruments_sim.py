@@ -26,7 +26,8 @@ from typing import Any, Protocol
 import numpy as np
 
 from benchrun.instruments import scpi
-from benchrun.instruments.commands import CommandSpec, CommandTable, WaveformSpec, evaluate
+from benchrun.instruments.commands import CommandSpec, CommandTable, WaveformSpec
+from benchrun.instruments.expressions import evaluate
 from benchrun.simulator.faults import FaultSwitches
 
 ERROR_QUEUE_LENGTH = 16
