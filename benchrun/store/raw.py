@@ -64,7 +64,6 @@ import os
 import re
 from collections.abc import Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Protocol
 
@@ -75,7 +74,7 @@ from benchrun import __version__
 from benchrun.errors import StoreError
 from benchrun.store.canonical import canonical_json
 from benchrun.store.digests import file_sha256 as file_sha256  # re-exported
-from benchrun.store.digests import shot_digest
+from benchrun.store.digests import shot_digest as shot_digest  # re-exported
 from benchrun.store.h5low import (  # noqa: F401 (names the write path and tests reach here)
     _CHUNK_BYTES,
     _LCPL_ASCII,
@@ -85,28 +84,22 @@ from benchrun.store.h5low import (  # noqa: F401 (names the write path and tests
     _fix_metadata_cache,
     _write_new_attrs,
 )
+from benchrun.store.raw_read import (  # noqa: F401 (RawShot, scaling_types re-exported)
+    SHOTS_GROUP,
+    RawShot,
+    _attr_str,
+    read_shot_group,
+    scaling_types,
+)
 
 if TYPE_CHECKING:
     from benchrun.store.raw_shot import RawShotBuilder
-
-
-def scaling_types() -> tuple[type, type]:
-    """``(ChannelData, ProbeCalibration)`` of :mod:`benchrun.analysis.pipeline`.
-
-    Imported on first use, not at import time, so that opening a store does not load
-    the signal-processing stack (scipy) that listing reports does not need.
-    """
-    from benchrun.analysis.pipeline import ChannelData, ProbeCalibration
-
-    return ChannelData, ProbeCalibration
 
 
 #: Value of the root ``format`` attribute: identifies a benchrun raw record.
 FORMAT_NAME = "benchrun-raw-record"
 #: Layout version of the raw record written by this module (module docstring; 1 is read too).
 FORMAT_VERSION = 2
-#: Group holding one subgroup per shot.
-SHOTS_GROUP = "shots"
 
 _KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
 
@@ -153,43 +146,6 @@ class ProbeLike(Protocol):
     deskew_s: float
 
 
-@dataclass(frozen=True)
-class RawShot:
-    """One shot read back from the raw record.
-
-    Attributes
-    ----------
-    key
-        Shot key (the name of its group below ``/shots``).
-    t_start, dt
-        Time of the first sample relative to the trigger and the sample interval, seconds.
-    channels
-        Channel name → :class:`benchrun.analysis.pipeline.ChannelData` with the codes
-        exactly as stored.
-    probes
-        Channel name → :class:`benchrun.analysis.pipeline.ProbeCalibration`.
-    attrs
-        The shot attributes given to :meth:`RawRecord.append_shot` (settings, serial, point,
-        timestamp, instrument identities ...), as JSON round-trips them.
-    """
-
-    key: str
-    t_start: float
-    dt: float
-    channels: dict[str, Any]
-    probes: dict[str, Any]
-    attrs: dict[str, Any] = field(default_factory=dict)
-
-    @property
-    def raw_ref(self) -> str:
-        """Reference to this shot as stored in ``ShotResult.raw_ref`` (``"shots/<key>"``)."""
-        return f"{SHOTS_GROUP}/{self.key}"
-
-    def digest(self) -> str:
-        """SHA-256 of the shot's content, see :func:`shot_digest`."""
-        return shot_digest(self.t_start, self.dt, self.channels, self.probes, self.attrs)
-
-
 def shot_ref(key: str) -> str:
     """The reference :meth:`RawRecord.append_shot` returns for ``key`` (``"shots/<key>"``)."""
     return f"{SHOTS_GROUP}/{_key_of(key)}"
@@ -204,23 +160,6 @@ def _key_of(key_or_ref: str) -> str:
     return key
 
 
-def _stored_channels(group: h5py.Group) -> dict[str, tuple[np.ndarray, Mapping[str, Any]]]:
-    """Channel name → (codes, scaling with ``gain``, ``offset``, ``code_min``, ``code_max``)
-    of a stored shot, in either layout (module docstring): format 2 keeps every channel's
-    scaling in the group's ``channels_json``, format 1 in attributes of each dataset.
-
-    Raises KeyError when the scaling and the datasets do not name the same channels.
-    """
-    scaling_json = group.attrs.get("channels_json")
-    if scaling_json is None:  # format 1
-        return {name: (ds[()], ds.attrs) for name, ds in group.items()}
-    scaling = json.loads(_attr_str(scaling_json))
-    if set(scaling) != set(group):
-        raise KeyError(f"channels_json names {sorted(scaling)}, the shot holds datasets "
-                       f"{sorted(group)}")
-    return {name: (ds[()], scaling[name]) for name, ds in group.items()}
-
-
 def _fsync_dir(folder: Path) -> None:
     try:
         fd = os.open(folder, os.O_RDONLY)
@@ -232,10 +171,6 @@ def _fsync_dir(folder: Path) -> None:
         pass  # some file systems cannot sync a directory; the file itself is synced
     finally:
         os.close(fd)
-
-
-def _attr_str(value: Any) -> str:
-    return value.decode() if isinstance(value, bytes) else str(value)
 
 
 class RawRecord:
@@ -596,38 +531,7 @@ class RawRecord:
         group = self._shots.get(key)
         if not _is_complete(group):
             raise StoreError(f"no shot {key!r} in raw record {self.path}")
-        ChannelData, ProbeCalibration = scaling_types()
-        try:
-            channels: dict[str, Any] = {}
-            for name, (codes, scaling) in _stored_channels(group).items():
-                channels[name] = ChannelData(
-                    codes=codes,
-                    gain=float(scaling["gain"]),
-                    offset=float(scaling["offset"]),
-                    code_min=int(scaling["code_min"]),
-                    code_max=int(scaling["code_max"]),
-                )
-            probes = {
-                name: ProbeCalibration(scale=float(p["scale"]), deskew_s=float(p["deskew_s"]))
-                for name, p in json.loads(_attr_str(group.attrs["probes_json"])).items()
-            }
-            shot = RawShot(
-                key=key,
-                t_start=float(group.attrs["t_start_s"]),
-                dt=float(group.attrs["dt_s"]),
-                channels=channels,
-                probes=probes,
-                attrs=json.loads(_attr_str(group.attrs["attrs_json"])),
-            )
-            stored_digest = _attr_str(group.attrs["content_sha256"])
-        except (OSError, KeyError, ValueError, TypeError) as exc:
-            raise StoreError(f"shot {key} in {self.path} cannot be read: {exc}") from exc
-        if verify and shot.digest() != stored_digest:
-            raise StoreError(
-                f"shot {key} in {self.path} does not match the SHA-256 recorded when it was "
-                "written: the raw data were changed or damaged"
-            )
-        return shot
+        return read_shot_group(group, key, self.path, verify=verify)
 
     def damaged_keys(self) -> list[str]:
         """Keys of complete shots that cannot be read or whose content hash does not match."""
