@@ -49,7 +49,8 @@ _TABLE = (
     ("tb_s", "s", "tb", "trr - ta"),
     ("trr_s", "s", "trr",
      "reverse-recovery time: t0 to the zero crossing of the line through 0.9·Irrm and "
-     "0.25·Irrm after the peak (IEC 60747-2 extrapolation)"),
+     "0.25·Irrm after the peak by default (the extrapolation of IEC 60747-2 / JESD282-B, "
+     "points set by the test specification)"),
     ("softness", "", "S", "softness tb/ta"),
     ("rrsf", "", "RRSF",
      "reverse-recovery softness factor |di/dt at t0| / |steepest di/dt after the peak| "

@@ -8,10 +8,14 @@ Definitions (all results positive magnitudes, SI units; times by linear interpol
 - ``ta_s``: time from t0 to the current minimum.
 - ``trr_s``: t0 to the zero crossing of the straight line through the points where the current,
   after its minimum, rises through ``-fit_high·Irrm`` and ``-fit_low·Irrm`` (0.9 / 0.25 by
-  default): the extrapolation method of IEC 60747-2 (rectifier diodes, reverse recovery time).
-  With ``trr_method="threshold"`` the end is the instant the current rises through
-  ``-trr_threshold_fraction·Irrm`` (the "current reaches a set value" criterion JEDEC also
-  allows).
+  default). This is alternative 2 of the JEDEC dictionary's "reverse recovery time (trr)"
+  (JESD282-B; its note: IEC 60747-2 has alternatives 2 and 3), the extrapolated current
+  reaching zero, "with respect to specified points A and B": the standard leaves the points
+  to the test specification. The defaults are the design's choice (from memory of IEC 60747-2
+  practice); specifications that use 0.75 / 0.50 set ``fit_high`` / ``fit_low``. With
+  ``trr_method="threshold"`` the end is the instant the current rises through
+  ``-trr_threshold_fraction·Irrm``: alternative 3 of the same definition, "the reverse current
+  reaches a specified low value IR(REC)".
 - ``tb_s = trr - ta`` and ``softness = tb / ta``.
 - ``rrsf``: reverse-recovery softness factor in the JEDEC (JESD24 / JESD282 style) sense,
   ``|di/dt at t0| / |steepest di/dt after the minimum|``.
@@ -110,12 +114,16 @@ class RecoveryOptions:
     Attributes
     ----------
     fit_high, fit_low
-        Fractions of Irrm defining the trr extrapolation line (IEC 60747-2: 0.9 and 0.25).
+        Fractions of Irrm defining the trr extrapolation line, points A and B of the JEDEC
+        definition (JESD282-B, alternative 2; the values are the test specification's: 0.9
+        and 0.25 by default, from memory of IEC 60747-2 practice).
     trr_method
         ``"extrapolate"`` (line through the two points) or ``"threshold"`` (current rises
         through ``-trr_threshold_fraction·Irrm``).
     trr_threshold_fraction
-        End criterion of the threshold method (0.25 from memory of JEDEC practice).
+        End criterion of the threshold method, IR(REC) / Irrm of the JEDEC definition
+        (JESD282-B, alternative 3: "a specified low value"; 0.25 by default, common practice
+        — set it to the value of the test specification).
     integration_end_fraction
         Qrr / Err integration end, fraction of Irrm (0.02, IEC 60747-9 practice).
     commutation
