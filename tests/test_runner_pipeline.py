@@ -12,7 +12,7 @@ from __future__ import annotations
 import sqlite3
 
 import pytest
-from test_runner_support import BENCH, crashing_on_call, write_sequence
+from test_runner_support import BENCH, run_until_crash, write_sequence
 
 from benchrun.config import load_bench, load_sequence
 from benchrun.runner.execute import RunOptions, run_sequence
@@ -141,19 +141,9 @@ def test_shot_stored_before_its_analysis_is_completed_on_resume(tmp_path, monkey
     seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
                          repeats=3)
     out = tmp_path / "out"
-    original = ResultsStore.complete_shot
-    crashing = crashing_on_call(original, 2, Crash)
-
-    bench = load_bench(BENCH)
-    sequence = load_sequence(seq)
-    with simulated_bench(bench, sequence) as sim:
-        options = RunOptions(out_dir=out, sim_resources=sim.resources, clock=sim.clock,
-                             ratings_lookup=sim.ratings, show_progress=False)
-        monkeypatch.setattr(ResultsStore, "complete_shot", crashing)
-        with pytest.raises(Crash):
-            run_sequence(seq, BENCH, options)
-        assert not sim.bench.supply.output_on  # safe state even on a crash
-        monkeypatch.setattr(ResultsStore, "complete_shot", original)
+    with simulated_bench(load_bench(BENCH), load_sequence(seq)) as sim:
+        resumed = run_until_crash(seq, out, sim, monkeypatch, ResultsStore, "complete_shot",
+                                  2, Crash)
         run_dir = next(out.iterdir())
         stopped = load_run(run_dir)
         before = stopped.shots + stopped.pending
@@ -163,8 +153,6 @@ def test_shot_stored_before_its_analysis_is_completed_on_resume(tmp_path, monkey
         assert not pending[0].valid and pending[0].metrics == {}
         assert pending[0].conditions["temperature_K"] is None  # recorded at the fire
         fired_before = len(sim.bench.shots)
-        resumed = RunOptions(out_dir=out, resume=True, sim_resources=sim.resources,
-                             clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False)
         outcome = run_sequence(seq, BENCH, resumed)
         fired_after = len(sim.bench.shots)
     assert outcome.status == "complete"
@@ -248,17 +236,9 @@ def test_row_recorded_beside_a_raw_entry_that_never_landed_is_discarded_on_resum
     seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
                          repeats=3)
     out = tmp_path / "out"
-    original = RawShotBuilder.finish
-    crashing = crashing_on_call(original, 2, Crash)
-
-    sequence = load_sequence(seq)
-    with simulated_bench(load_bench(BENCH), sequence) as sim:
-        options = RunOptions(out_dir=out, sim_resources=sim.resources, clock=sim.clock,
-                             ratings_lookup=sim.ratings, show_progress=False)
-        monkeypatch.setattr(RawShotBuilder, "finish", crashing)
-        with pytest.raises(Crash):
-            run_sequence(seq, BENCH, options)
-        monkeypatch.setattr(RawShotBuilder, "finish", original)
+    with simulated_bench(load_bench(BENCH), load_sequence(seq)) as sim:
+        resumed = run_until_crash(seq, out, sim, monkeypatch, RawShotBuilder, "finish", 2,
+                                  Crash)
         run_dir = next(out.iterdir())
         stopped = load_run(run_dir)
         before = stopped.shots + stopped.pending
@@ -266,8 +246,6 @@ def test_row_recorded_beside_a_raw_entry_that_never_landed_is_discarded_on_resum
             in_raw = set(raw.keys())
         orphan_rows = [s for s in before if s.raw_ref.split("/", 1)[1] not in in_raw]
         assert [(s.repeat, s.pending) for s in orphan_rows] == [(1, True)]
-        resumed = RunOptions(out_dir=out, resume=True, sim_resources=sim.resources,
-                             clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False)
         outcome = run_sequence(seq, BENCH, resumed)
     assert outcome.status == "complete"
     finished = load_run(run_dir)

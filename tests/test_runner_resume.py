@@ -13,10 +13,10 @@ import time
 from pathlib import Path
 
 import pytest
-from test_runner_support import BENCH, crashing_on_call, write_sequence
+from test_runner_support import BENCH, run_until_crash, write_sequence
 
 from benchrun.config import load_bench, load_sequence
-from benchrun.runner.execute import RunOptions, run_sequence
+from benchrun.runner.execute import run_sequence
 from benchrun.runner.simbench import simulated_bench
 from benchrun.store.raw import RawRecord
 from benchrun.store.results import ResultsStore
@@ -147,23 +147,11 @@ def test_shot_in_raw_record_only_is_recovered_not_refired(tmp_path, monkeypatch)
     seq = write_sequence(tmp_path, devices="[KFR-2611A-001, KFR-2611A-002]",
                          temperatures="[25 degC]", repeats=2)
     out = tmp_path / "runs"
-    # the shot's results row is recorded (as pending) by ResultsStore.record_pending
-    original = ResultsStore.record_pending
-    crashing = crashing_on_call(original, 3, Crash)
-
-    bench = load_bench(BENCH)
-    sequence = load_sequence(seq)
-    with simulated_bench(bench, sequence) as sim:
-        options = RunOptions(out_dir=out, sim_resources=sim.resources, clock=sim.clock,
-                             ratings_lookup=sim.ratings, show_progress=False)
-        monkeypatch.setattr(ResultsStore, "record_pending", crashing)
-        with pytest.raises(Crash):
-            run_sequence(seq, BENCH, options)
-        assert not sim.bench.supply.output_on  # safe state even on a crash
-        monkeypatch.setattr(ResultsStore, "record_pending", original)
+    with simulated_bench(load_bench(BENCH), load_sequence(seq)) as sim:
+        # the shot's results row is recorded (as pending) by ResultsStore.record_pending
+        resumed = run_until_crash(seq, out, sim, monkeypatch, ResultsStore, "record_pending",
+                                  3, Crash)
         fired_before = len(sim.bench.shots)
-        resumed = RunOptions(out_dir=out, resume=True, sim_resources=sim.resources,
-                             clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False)
         outcome = run_sequence(seq, BENCH, resumed)
         fired_after = len(sim.bench.shots)
     assert outcome.status == "complete"

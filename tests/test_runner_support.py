@@ -64,3 +64,25 @@ def crashing_on_call(original, n: int, crash: type[BaseException]):
         return original(self, *args, **kwargs)
 
     return stand_in
+
+
+def run_until_crash(seq: Path, out: Path, sim, monkeypatch, owner, name: str, n: int,
+                    crash: type[BaseException]):
+    """Run ``seq`` on the running simulated bench ``sim`` with ``owner.name`` raising
+    ``crash()`` on its ``n``-th call (the process dying there); check that the run ends in
+    it with the bus supply off, put the method back and return the options that resume the
+    run on the same bench."""
+    import pytest
+
+    from benchrun.runner.execute import RunOptions, run_sequence
+
+    original = getattr(owner, name)
+    options = RunOptions(out_dir=out, sim_resources=sim.resources, clock=sim.clock,
+                         ratings_lookup=sim.ratings, show_progress=False)
+    monkeypatch.setattr(owner, name, crashing_on_call(original, n, crash))
+    with pytest.raises(crash):
+        run_sequence(seq, BENCH, options)
+    assert not sim.bench.supply.output_on  # safe state even on a crash
+    monkeypatch.setattr(owner, name, original)
+    return RunOptions(out_dir=out, resume=True, sim_resources=sim.resources, clock=sim.clock,
+                      ratings_lookup=sim.ratings, show_progress=False)
