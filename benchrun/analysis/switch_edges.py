@@ -8,6 +8,8 @@ import math
 
 import numpy as np
 
+from benchrun.analysis.timebase import TimeBase
+
 #: First forward span searched for the window end; grown by 4× until found.
 INITIAL_SPAN = 65_536
 #: Bands the voltage fall is divided into to find circuit-driven parts (5 % each).
@@ -16,19 +18,13 @@ FALL_BANDS = 20
 REFERENCE_SKIP_BANDS = 2
 
 
-class SampleTimes:
-    """Sample times as an array, or as ``t_start + k·dt``."""
+class SampleTimes(TimeBase):
+    """A record's sample times (:class:`~benchrun.analysis.timebase.TimeBase`) and its
+    length ``n``, for finding the sample before an instant."""
 
     def __init__(self, t: np.ndarray | None, dt: float | None, t_start: float, n: int) -> None:
-        self.t = t
-        self.dt = dt
-        self.t_start = t_start
+        super().__init__(t, dt, t_start)
         self.n = n
-
-    def at(self, a: int, b: int) -> np.ndarray:
-        if self.t is not None:
-            return np.asarray(self.t[a:b], dtype=np.float64)
-        return self.t_start + self.dt * np.arange(a, b, dtype=np.float64)
 
     def index_before(self, time: float) -> int:
         """Largest index k with t[k] <= time (clamped to the record)."""
@@ -64,7 +60,7 @@ def start_crossing(
             j = lo + int(below[-1])
             if j + 1 > k0 + 1:
                 return None
-            tw = time.at(j, j + 2)
+            tw = time.window(j, j + 2)
             x0, x1 = float(i[j]), float(i[j + 1])
             if x1 < level:  # the sample after t0 is still below: no rise before t0
                 return None
@@ -87,7 +83,7 @@ def first_falling(v: np.ndarray, time: SampleTimes, k0: int, level: float
             k = a + int(hits[0])
             if k == k0:
                 return None  # already below at t0: not a turn-on of a blocking switch
-            tw = time.at(k - 1, k + 1)
+            tw = time.window(k - 1, k + 1)
             return float(crossing(tw[0], tw[1], float(v[k - 1]), float(v[k]), level)), k
         a = b - 1
         span *= 4

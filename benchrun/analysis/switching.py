@@ -400,7 +400,7 @@ def analyze_switch_turn_on(
 
     a = max(k_a - 1, 0)
     b = min(k_b + 2, time.n)
-    tw = time.at(a, b)
+    tw = time.window(a, b)
     vw = np.asarray(v[a:b], dtype=np.float64)
     iw = np.asarray(i[a:b], dtype=np.float64)
     eon = integrate_product(tw, vw, iw, t_a, t_b)
@@ -450,7 +450,7 @@ def _off_voltage(
     """
     if opts.off_voltage_V is not None:
         return float(opts.off_voltage_V)
-    tk = float(time.at(k_start, k_start + 1)[0])
+    tk = float(time.window(k_start, k_start + 1)[0])
     k_hi = time.index_before(tk - 0.25 * max(rise_s, 0.0))
     k_lo = time.index_before(tk - 3.0 * max(rise_s, 0.0))
     k_lo = min(k_lo, k_hi - MIN_OFF_SAMPLES + 1)
