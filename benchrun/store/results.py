@@ -51,6 +51,7 @@ from benchrun.store.canonical import canonical_json
 from benchrun.store.raw import DURABILITY_POWER_LOSS, check_durability
 from benchrun.store.rows import (
     identity,
+    identity_params,
     report_record,
     run_record,
     same_row,
@@ -147,7 +148,11 @@ class ResultsStore:
         if self.backend == "sqlite":
             event.listen(engine, "connect", _sqlite_pragmas(self.durability))
         self._engine = engine
-        self._insert_shot = insert(shots_table)  # compiled once, reused for every shot
+        # statements built once and reused for every shot (the identity as parameters)
+        self._insert_shot = insert(shots_table)
+        self._select_shot = select(shots_table).where(*identity())
+        self._update_pending = update(shots_table).where(*identity(pending=True))
+        self._delete_pending = delete(shots_table).where(*identity(pending=True))
         if create:
             with self._errors(f"cannot prepare the results tables in {self.public_url}"):
                 try:
@@ -263,7 +268,7 @@ class ResultsStore:
 
     # -- shots ---------------------------------------------------------------------------
     def _stored_row(self, conn: Connection, key: tuple[str, str, int, int, int]) -> Any:
-        return conn.execute(select(shots_table).where(*identity(key))).first()
+        return conn.execute(self._select_shot, identity_params(key)).first()
 
     def add_shot(self, shot: ShotResult) -> bool:
         """Store one shot in its own transaction, committed before returning.
@@ -333,11 +338,8 @@ class ResultsStore:
         row = shot_row(shot)
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         with self._begin(f"cannot complete shot {key}") as conn:
-            replaced = conn.execute(
-                update(shots_table)
-                .where(*identity(key, pending=True))
-                .values(**row)
-            ).rowcount
+            replaced = conn.execute(self._update_pending,
+                                    {**row, **identity_params(key)}).rowcount
             existing = None if replaced else self._stored_row(conn, key)
         if replaced:
             return True
@@ -368,7 +370,7 @@ class ResultsStore:
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         try:
             with self._engine.begin() as conn:
-                conn.execute(delete(shots_table).where(*identity(key, pending=True)))
+                conn.execute(self._delete_pending, identity_params(key))
                 conn.execute(self._insert_shot, row)
         except IntegrityError as exc:
             raise StoreError(f"cannot record pending shot {key}: an analysed shot is stored "
@@ -383,8 +385,7 @@ class ResultsStore:
         key = (shot.run_id, shot.serial, int(shot.point.index), int(shot.repeat),
                int(shot.attempt))
         with self._begin(f"cannot discard pending shot {key}") as conn:
-            deleted = conn.execute(
-                delete(shots_table).where(*identity(key, pending=True))).rowcount
+            deleted = conn.execute(self._delete_pending, identity_params(key)).rowcount
         return bool(deleted)
 
     def shots(self, run_id: str) -> list[ShotResult]:

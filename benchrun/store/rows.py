@@ -8,6 +8,8 @@ import math
 from dataclasses import fields
 from typing import Any
 
+from sqlalchemy import bindparam
+
 from benchrun.records import FLAG_ANALYSIS_PENDING, ShotResult
 from benchrun.store.canonical import canonical_json
 from benchrun.store.schema import SHOT_COLUMNS, ReportRecord, RunRecord, shots_table
@@ -85,15 +87,25 @@ def report_record(row: Any) -> ReportRecord:
     return ReportRecord(**values)
 
 
-def identity(key: tuple[str, str, int, int, int], *, pending: bool = False) -> list[Any]:
-    """WHERE clauses selecting the shot row ``(run_id, serial, point_index, repeat,
-    attempt)``; with ``pending``, only while it is a pending row."""
+#: the columns that identify a shot row (unique together)
+IDENTITY_COLUMNS = ("run_id", "serial", "point_index", "repeat", "attempt")
+
+
+def identity(*, pending: bool = False) -> list[Any]:
+    """WHERE clauses selecting one shot row, its identity given as the statement parameters
+    :func:`identity_params` makes; with ``pending``, only while it is a pending row. Built
+    once per statement (the statement is then reused), not once per shot."""
     c = shots_table.c
-    clauses = [c.run_id == key[0], c.serial == key[1], c.point_index == key[2],
-               c.repeat == key[3], c.attempt == key[4]]
+    clauses = [c[name] == bindparam(f"key_{name}") for name in IDENTITY_COLUMNS]
     if pending:
         clauses.append(c.flags == canonical_json([FLAG_ANALYSIS_PENDING]))
     return clauses
+
+
+def identity_params(key: tuple[str, str, int, int, int]) -> dict[str, Any]:
+    """Statement parameters of :func:`identity` for the shot ``(run_id, serial,
+    point_index, repeat, attempt)``."""
+    return {f"key_{name}": value for name, value in zip(IDENTITY_COLUMNS, key, strict=True)}
 
 
 def query_float(value: Any) -> float | None:
