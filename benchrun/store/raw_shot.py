@@ -1,7 +1,7 @@
 """Writing one shot of the raw record channel by channel.
 
-:meth:`RawRecord.begin_shot` returns a :class:`RawShotBuilder`: each channel is written as it
-arrives (the runner hands them over while the scope transfers the next one), and
+:meth:`RawRecord.begin_shot` returns a :class:`RawShotBuilder`: each channel is written with
+:meth:`RawShotBuilder.add_channel` (a caller may hand them over as they arrive), and
 :meth:`RawShotBuilder.finish` writes the shot's attributes and links it under ``/shots`` in
 the crash-safe order of the module :mod:`benchrun.store.raw` ("Crash safety"): the group is
 created unlinked, completed, flushed, and only then linked and flushed again. A shot never
