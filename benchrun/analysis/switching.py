@@ -95,6 +95,7 @@ from benchrun.analysis.switch_edges import (
     forced_bands,
     start_crossing,
 )
+from benchrun.analysis.timebase import check_signals
 from benchrun.errors import ConfigError, InputDataError
 
 FLAG_ESTIMATE_ONLY = "switch_energy_estimate_only"
@@ -210,13 +211,7 @@ class SwitchingMetrics:
 def _validate(t, v_sw, i_sw, dt, t_start) -> tuple[np.ndarray, Any, SampleTimes]:
     v = np.asarray(v_sw)
     i = i_sw if isinstance(i_sw, SwitchCurrentFromDiode) else np.asarray(i_sw)
-    for name, x in (("switch voltage", v), ("switch current", i)):
-        if x.ndim != 1:
-            raise InputDataError(f"{name} must be a 1-D array, got shape {x.shape}")
-        if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
-            raise InputDataError(f"{name} must be numeric, got dtype {x.dtype}")
-    if v.size != i.size:
-        raise InputDataError(f"switch voltage has {v.size} samples but current has {i.size}")
+    check_signals(("switch voltage", v), ("switch current", i))
     if v.size < 4:
         raise InputDataError(f"switch record too short: {v.size} samples")
     if t is not None:

@@ -7,6 +7,7 @@ or ``t_start + k·dt``; :func:`validate_record` checks the arrays and says which
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 
@@ -111,6 +112,19 @@ def event_step(t: np.ndarray, start: float, end: float, shortest: float,
     return fine if fine * REFINE_FACTOR < step else None
 
 
+def check_signals(voltage: tuple[str, Any], current: tuple[str, Any]) -> None:
+    """Raise :class:`InputDataError` unless the named voltage and current are 1-D, numeric
+    and of one length (anything with ``ndim``, ``dtype`` and ``size``)."""
+    for name, x in (voltage, current):
+        if x.ndim != 1:
+            raise InputDataError(f"{name} must be a 1-D array, got shape {x.shape}")
+        if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
+            raise InputDataError(f"{name} must be numeric, got dtype {x.dtype}")
+    if voltage[1].size != current[1].size:
+        raise InputDataError(f"{voltage[0]} has {voltage[1].size} samples but current has "
+                             f"{current[1].size}")
+
+
 def validate_record(t, v, i, dt, t_start) -> tuple[np.ndarray, np.ndarray, TimeBase]:
     """Checked voltage and current arrays and their :class:`TimeBase`.
 
@@ -121,13 +135,7 @@ def validate_record(t, v, i, dt, t_start) -> tuple[np.ndarray, np.ndarray, TimeB
     """
     v = np.asarray(v)
     i = np.asarray(i)
-    for name, x in (("voltage", v), ("current", i)):
-        if x.ndim != 1:
-            raise InputDataError(f"{name} must be a 1-D array, got shape {x.shape}")
-        if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
-            raise InputDataError(f"{name} must be numeric, got dtype {x.dtype}")
-    if v.size != i.size:
-        raise InputDataError(f"voltage has {v.size} samples but current has {i.size}")
+    check_signals(("voltage", v), ("current", i))
     if i.size < MIN_SAMPLES:
         raise InputDataError(f"record too short: {i.size} samples, need at least {MIN_SAMPLES}")
     _check_finite("voltage", v)
