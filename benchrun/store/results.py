@@ -54,9 +54,9 @@ from benchrun.store.rows import (
     identity_params,
     report_record,
     run_record,
-    same_row,
     shot_from_row,
     shot_row,
+    stored_is,
 )
 from benchrun.store.schema import (
     ReportRecord,
@@ -304,8 +304,7 @@ class ResultsStore:
                         f"run {shot.run_id!r} is not in {self.public_url}; create_run first"
                     ) from exc
                 raise StoreError(f"cannot store shot {key}: {exc}") from exc
-            stored = {k: v for k, v in existing._mapping.items() if k != "id"}
-            if same_row(stored, row):
+            if stored_is(existing, row):
                 return False
             raise StoreError(
                 f"a different shot is already stored for run {key[0]!r}, serial {key[1]!r}, "
@@ -345,8 +344,7 @@ class ResultsStore:
             return True
         if existing is None:
             raise StoreError(f"cannot complete shot {key}: it is not stored")
-        stored = {k: v for k, v in existing._mapping.items() if k != "id"}
-        if same_row(stored, row):
+        if stored_is(existing, row):
             return False
         raise StoreError(
             f"cannot complete shot {key}: a different analysed shot is already stored for run "

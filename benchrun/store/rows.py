@@ -116,6 +116,12 @@ def query_float(value: Any) -> float | None:
     return number if math.isfinite(number) else None
 
 
+def stored_is(existing: Any, row: dict[str, Any]) -> bool:
+    """True when the stored ``shots`` row ``existing`` (a result row, its ``id`` aside)
+    holds exactly the values of ``row``."""
+    return same_row({k: v for k, v in existing._mapping.items() if k != "id"}, row)
+
+
 def same_row(stored: dict[str, Any], row: dict[str, Any]) -> bool:
     """True when a stored ``shots`` row holds exactly the values of ``row``."""
     if set(stored) != set(row):
