@@ -230,15 +230,16 @@ def test_row_recorded_beside_a_raw_entry_that_never_landed_is_discarded_on_resum
         tmp_path, monkeypatch):
     # the pending row is committed beside the raw entry's last step; a crash in that step
     # leaves a row naming a raw entry that never became visible: the shot was in flight,
-    # so the resumed run discards the row and fires that test again
-    from benchrun.store.raw_shot import RawShotBuilder
+    # so the resumed run discards the row and fires that test again. The raw entry's last
+    # step is the write of its slot header: the 4th positional write (codes, then header,
+    # per shot)
+    from benchrun.store.raw_slots import SlotStore
 
     seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
                          repeats=3)
     out = tmp_path / "out"
     with simulated_bench(load_bench(BENCH), load_sequence(seq)) as sim:
-        resumed = run_until_crash(seq, out, sim, monkeypatch, RawShotBuilder, "finish", 2,
-                                  Crash)
+        resumed = run_until_crash(seq, out, sim, monkeypatch, SlotStore, "_pwrite", 4, Crash)
         run_dir = next(out.iterdir())
         stopped = load_run(run_dir)
         before = stopped.shots + stopped.pending

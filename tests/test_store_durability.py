@@ -217,11 +217,12 @@ class Probe:
     deskew_s: float = 0.0
 
 
-raw_path, url, durability = sys.argv[1:4]
+raw_path, url, durability, compression = sys.argv[1:5]
 rng = np.random.default_rng(0)
 probes = {"diode_voltage": Probe(100.0), "diode_current": Probe(100.0)}
 with ResultsStore(url, durability=durability) as store, \
-        RawRecord(raw_path, durability=durability) as raw:
+        RawRecord(raw_path, durability=durability,
+                  compression=None if compression == "none" else compression) as raw:
     if store.get_run("R") is None:
         store.create_run("R", "KFR30-12", "L2611-A")
     done = store.tested_keys("R")
@@ -250,15 +251,18 @@ print("DONE", flush=True)
 """
 
 
+@pytest.mark.parametrize("compression", ["gzip", "none"])  # shot groups, slots
 @pytest.mark.parametrize("durability", ["process", "power-loss"])
-def test_kill_9_in_every_durability_mode_loses_nothing_acknowledged(tmp_path, durability):
+def test_kill_9_in_every_durability_mode_loses_nothing_acknowledged(tmp_path, durability,
+                                                                     compression):
     script = tmp_path / "writer.py"
     script.write_text(WRITER)
     raw_path, url = tmp_path / "raw.h5", f"sqlite:///{tmp_path / 'results.db'}"
     env = {**os.environ, "PYTHONPATH": str(REPO)}  # the tree under test, not an install
     acknowledged: dict[int, str] = {}
     for kill_after in (3, 5, 8):
-        child = subprocess.Popen([sys.executable, str(script), str(raw_path), url, durability],
+        child = subprocess.Popen([sys.executable, str(script), str(raw_path), url, durability,
+                                  compression],
                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                                  env=env)
         assert child.stdout is not None

@@ -58,7 +58,7 @@ def test_round_trip_is_exact(tmp_path, compression):
         shot = raw.read_shot(ref)
     assert run["run_id"] == "R-1"
     assert run["identities"] == {"scope": ["a", "b"]}
-    assert run["format_version"] == 2  # scaling of every channel in the group's channels_json
+    assert run["format_version"] == 3  # slots (uncompressed) or groups with channels_json
     assert "software_version" in run
     assert _bits(shot.t_start) == _bits(-2.0e-6 / 3.0)
     assert _bits(shot.dt) == _bits(2.5e-10)
@@ -97,7 +97,7 @@ def test_records_are_plain_hdf5(tmp_path):
         assert volts[0] == channels["diode_current"].codes[0] * 2.0**-15 + 5e-324
         assert group.attrs["dt_s"] == 1e-9
         assert bool(group.attrs["complete"])
-        assert f.attrs["format_version"] == 2
+        assert f.attrs["format_version"] == 3
 
 
 def test_keys_next_key_and_duplicates(tmp_path):
@@ -250,14 +250,38 @@ def test_damaged_or_foreign_files_raise_store_error(tmp_path):
             raw.read_shot(key)
 
 
-def test_flipped_waveform_byte_is_detected(tmp_path):
+def _offset_of_codes(path, key, channel):
+    """File offset of a stored channel's first code (uncompressed shot group or slot)."""
+    with h5py.File(path, "r") as f:
+        if key in f["shots"]:
+            return f[f"shots/{key}/{channel}"].id.get_offset()
+        block = f["slots/b000000"]
+        for slot, row in enumerate(block["header"][()]):
+            header = json.loads(row.tobytes().split(b"\0", 1)[0] or b"{}")
+            if header.get("key") == key:
+                names = [ch["name"] for ch in header["channels"]]
+                codes = block["codes"]
+                _, n_channels, length = codes.shape
+                return codes.id.get_offset() + codes.dtype.itemsize * length * (
+                    slot * n_channels + names.index(channel))
+    raise KeyError(key)
+
+
+@pytest.mark.parametrize("layout", ["slot", "group"])
+def test_flipped_waveform_byte_is_detected(tmp_path, layout):
     path = tmp_path / "raw.h5"
     with RawRecord(path, compression=None) as raw:
-        raw.append_shot("000000", 0.0, 1e-9, make_channels(), make_probes(), {"serial": "S1"})
-        raw.append_shot("000001", 0.0, 1e-9, make_channels(1), make_probes(), {"serial": "S2"})
+        for key, seed, serial in (("000000", 0, "S1"), ("000001", 1, "S2")):
+            if layout == "slot":  # what append_shot does with an uncompressed record
+                raw.append_shot(key, 0.0, 1e-9, make_channels(seed), make_probes(),
+                                {"serial": serial})
+                continue
+            builder = raw.begin_shot(key)  # a shot group, uncompressed
+            for name, ch in make_channels(seed).items():
+                builder.add_channel(name, ch)
+            builder.finish(0.0, 1e-9, make_probes(), {"serial": serial})
+    offset = _offset_of_codes(path, "000001", "diode_current")
     before = file_sha256(path)
-    with h5py.File(path, "r") as f:
-        offset = f["shots/000001/diode_current"].id.get_offset()
     data = bytearray(path.read_bytes())
     data[offset + 101] ^= 0x01
     path.write_bytes(bytes(data))

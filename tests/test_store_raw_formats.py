@@ -147,26 +147,34 @@ def test_changed_format_1_scaling_is_detected(tmp_path):
         raw.read_shot("000000", verify=False)
 
 
-def test_continuing_a_format_1_record_writes_format_2_shots(tmp_path):
+@pytest.mark.parametrize("compression", ["gzip", None])
+def test_continuing_a_format_1_record_writes_current_shots(tmp_path, compression):
     path = tmp_path / "raw.h5"
     write_format_1_record(path, {"000000": (T_START, DT, CHANNELS, PROBES, ATTRS)})
     untouched = file_sha256(path)
     with RawRecord(path, "a") as raw:  # opened for writing, nothing appended
         assert raw.keys() == ["000000"]
     assert file_sha256(path) == untouched  # the format mark waits for a shot
-    with RawRecord(path, "a", compression=None, durability="process") as raw:
+    # one length for both channels (int8 and big-endian int16): a slot when uncompressed
+    channels = {"vd": Channel(CHANNELS["vd"].codes[:4], 0.1 + 0.2, -1.0 / 3.0, -128, 127),
+                "id": CHANNELS["id"]}
+    with RawRecord(path, "a", compression=compression, durability="process") as raw:
         assert raw.next_key() == "000001"
-        raw.append_shot("000001", 0.0, 1e-9, CHANNELS, PROBES, {"n": 1})
+        raw.append_shot("000001", 0.0, 1e-9, channels, PROBES, {"n": 1})
     with h5py.File(path, "r") as f:
-        assert f.attrs["format_version"] == 2  # the file may now hold format-2 shots
+        assert f.attrs["format_version"] == 3  # the file may now hold format-2/3 shots
         assert f.attrs["format_version"].dtype == np.int64  # same type, changed in place
-        old, new = f["shots/000000"], f["shots/000001"]
+        old = f["shots/000000"]
         assert "channels_json" not in old.attrs and "gain" in old["vd"].attrs
-        assert "channels_json" in new.attrs and len(new["vd"].attrs) == 0
-        assert new.attrs["content_sha256"] == documented_digest(0.0, 1e-9, CHANNELS, PROBES,
-                                                                {"n": 1})
+        if compression is None:  # format 3: a slot
+            assert list(f["shots"]) == ["000000"] and "b000000" in f["slots"]
+        else:  # a format-2 shot group
+            new = f["shots/000001"]
+            assert "channels_json" in new.attrs and len(new["vd"].attrs) == 0
+            assert new.attrs["content_sha256"] == documented_digest(0.0, 1e-9, channels,
+                                                                    PROBES, {"n": 1})
     with RawRecord(path, "r") as raw:
         assert raw.keys() == ["000000", "000001"]
         assert raw.damaged_keys() == []
         _assert_same_shot(raw.read_shot("000000"), T_START, DT, CHANNELS, PROBES, ATTRS)
-        _assert_same_shot(raw.read_shot("000001"), 0.0, 1e-9, CHANNELS, PROBES, {"n": 1})
+        _assert_same_shot(raw.read_shot("000001"), 0.0, 1e-9, channels, PROBES, {"n": 1})

@@ -91,6 +91,7 @@ from benchrun.store.raw_read import (  # noqa: F401 (RawShot, scaling_types re-e
     read_shot_group,
     scaling_types,
 )
+from benchrun.store.raw_slots import SlotStore, block_dtype
 
 if TYPE_CHECKING:
     from benchrun.store.raw_shot import RawShotBuilder
@@ -98,8 +99,9 @@ if TYPE_CHECKING:
 
 #: Value of the root ``format`` attribute: identifies a benchrun raw record.
 FORMAT_NAME = "benchrun-raw-record"
-#: Layout version of the raw record written by this module (module docstring; 1 is read too).
-FORMAT_VERSION = 2
+#: Layout version of the raw record written by this module (module docstring; 1 and 2 are
+#: read too).
+FORMAT_VERSION = 3
 
 _KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
 
@@ -116,6 +118,26 @@ def check_durability(durability: str) -> str:
         raise StoreError(f"durability must be one of {', '.join(DURABILITY_MODES)}, "
                          f"not {durability!r}")
     return durability
+
+
+def checked_codes(key: str, name: str, channel: ChannelLike) -> np.ndarray:
+    """The channel's codes as a contiguous 1-D int8/int16/uint8/uint16 array; StoreError
+    for a bad channel name or codes of another kind."""
+    if not _KEY_RE.match(name):
+        raise StoreError(f"shot {key}: invalid channel name {name!r}")
+    codes = np.asarray(channel.codes)
+    if codes.ndim != 1 or codes.dtype.kind not in "iu" or codes.dtype.itemsize > 2:
+        raise StoreError(
+            f"shot {key}: channel {name!r} codes must be a 1-D int8/int16 array, "
+            f"got {codes.dtype} with shape {codes.shape}"
+        )
+    return np.ascontiguousarray(codes)
+
+
+def scaling_of(channel: ChannelLike) -> dict[str, float | int]:
+    """A channel's scaling as stored: ``gain``, ``offset``, ``code_min``, ``code_max``."""
+    return {"gain": float(channel.gain), "offset": float(channel.offset),
+            "code_min": int(channel.code_min), "code_max": int(channel.code_max)}
 
 
 def _is_complete(group: Any) -> bool:
@@ -228,7 +250,8 @@ class RawRecord:
         # per (length, itemsize): dataset creation properties and data space of the codes,
         # made once per record instead of once per channel and shot
         self._codes_layout: dict[tuple[int, int], tuple[Any, Any]] = {}
-        self._layout_marked = False  # root format_version says shots may be in format 2
+        self._layout_marked = False  # root format_version says which layouts may be present
+        self._slot_store: SlotStore | None = None
         self._open()
 
     # -- opening and closing -------------------------------------------------------------
@@ -263,12 +286,21 @@ class RawRecord:
             self._layout_marked = True
             self.flush()
             _fsync_dir(path.parent)  # the new file's directory entry is durable too
-            return
-        if _attr_str(f.attrs.get("format", "")) != FORMAT_NAME or SHOTS_GROUP not in f:
+        elif _attr_str(f.attrs.get("format", "")) != FORMAT_NAME or SHOTS_GROUP not in f:
             self.close()
             raise StoreError(f"{path} is an HDF5 file but not a benchrun raw record")
-        if self.mode != "r":
+        elif int(f.attrs.get("format_version", 1)) > FORMAT_VERSION:
+            version = int(f.attrs["format_version"])
+            self.close()
+            raise StoreError(f"raw record {path} is in format {version}, written by a newer "
+                             f"benchrun (this one reads formats 1 to {FORMAT_VERSION})")
+        elif self.mode != "r":
             self._drop_incomplete()
+        try:
+            self._slot_store = SlotStore(f, path, writable=self.mode != "r")
+        except StoreError:
+            self.close()
+            raise
 
     def _drop_incomplete(self) -> None:
         shots = self._shots
@@ -290,6 +322,7 @@ class RawRecord:
             with contextlib.suppress(Exception):
                 self.wait_durable()
             self._shots_group = None
+            self._slot_store = None
             self._file.close()
             self._file = None
         if self._syncer is not None:
@@ -307,6 +340,12 @@ class RawRecord:
         if self._file is None:
             raise StoreError(f"raw record {self.path} is closed")
         return self._file
+
+    @property
+    def _slots(self) -> SlotStore:
+        if self._slot_store is None:
+            raise StoreError(f"raw record {self.path} is closed")
+        return self._slot_store
 
     @property
     def _shots(self) -> h5py.Group:
@@ -329,9 +368,14 @@ class RawRecord:
             f.flush()
         except (OSError, ValueError) as exc:
             raise StoreError(f"cannot flush raw record {self.path}: {exc}") from exc
+        self._sync(wait=wait)
+
+    def _sync(self, *, wait: bool) -> None:
+        """With durability ``"power-loss"``: ``fsync`` what the operating system holds (on
+        the background thread with ``wait=False``, see :meth:`flush`)."""
         if self.durability != DURABILITY_POWER_LOSS:
             return
-        fd = f.id.get_vfd_handle()
+        fd = self._f.id.get_vfd_handle()
         if not (isinstance(fd, int) and fd >= 0):
             return
         if wait:
@@ -396,11 +440,12 @@ class RawRecord:
 
     def keys(self) -> list[str]:
         """Keys of every complete shot, sorted."""
-        return sorted(k for k, g in self._shots.items() if _is_complete(g))
+        in_groups = {k for k, g in self._shots.items() if _is_complete(g)}
+        return sorted(in_groups.union(self._slots.keys()))
 
     def __contains__(self, key_or_ref: str) -> bool:
         key = _key_of(key_or_ref)
-        return _is_complete(self._shots.get(key))
+        return key in self._slots or _is_complete(self._shots.get(key))
 
     def __len__(self) -> int:
         return len(self.keys())
@@ -411,7 +456,7 @@ class RawRecord:
     def next_key(self) -> str:
         """A fresh sequential key (``"000000"``, ``"000001"``, ...) after every stored one."""
         if self._next_number is None:
-            numbers = [int(k) for k in self._shots if k.isdigit()]
+            numbers = [int(k) for k in (*self._shots, *self._slots.keys()) if k.isdigit()]
             self._next_number = (max(numbers) + 1) if numbers else 0
         return f"{self._next_number:06d}"
 
@@ -462,10 +507,49 @@ class RawRecord:
         StoreError
             Bad key or data, key already used, read-only record, or a write failure.
         """
+        if self.compression is None:
+            dtype = block_dtype([np.asarray(ch.codes).dtype for ch in channels.values()])
+            lengths = {np.asarray(ch.codes).size for ch in channels.values()}
+            if dtype is not None and len(lengths) == 1 and 0 not in lengths:
+                return self._append_to_slot(key, t_start, dt, channels, probes, attrs,
+                                            dtype, replace=replace, wait=wait)
         builder = self.begin_shot(key, replace=replace)
         for name, channel in channels.items():
             builder.add_channel(name, channel)
         return builder.finish(t_start, dt, probes, attrs, wait=wait)
+
+    def _append_to_slot(self, key: str, t_start: float, dt: float,
+                        channels: Mapping[str, ChannelLike], probes: Mapping[str, ProbeLike],
+                        attrs: Mapping[str, Any] | None, dtype: np.dtype, *, replace: bool,
+                        wait: bool) -> str:
+        """:meth:`append_shot` into a slot (format 3, :mod:`benchrun.store.raw_slots`): two
+        positional writes, no HDF5 call; durable as a shot group would be."""
+        self._require_writable()
+        self.wait_durable()  # the previous shot's background sync, if any
+        key = _key_of(key)
+        attrs = dict(attrs or {})
+        if not (np.isfinite(t_start) and np.isfinite(dt) and dt > 0):
+            raise StoreError(f"shot {key}: t_start must be finite and dt positive")
+        stored = {name: (checked_codes(key, name, ch), scaling_of(ch))
+                  for name, ch in channels.items()}
+        in_group = self._shots.id.links.exists(key.encode())
+        if (key in self._slots or (in_group and _is_complete(self._shots.get(key)))) \
+                and not replace:
+            raise StoreError(f"shot {key} is already in raw record {self.path}")
+        if not self._layout_marked:
+            self._mark_layout()
+        digest = shot_digest(t_start, dt, channels, probes, attrs)
+        plain_probes = {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)}
+                        for n, p in probes.items()}
+        self._slots.write(key, t_start, dt, stored, plain_probes, attrs, digest, dtype)
+        if in_group:  # replaced: the group version goes (after the slot is written)
+            with contextlib.suppress(KeyError, OSError, ValueError):
+                del self._shots[key]
+            self.flush(wait=wait)
+        else:
+            self._sync(wait=wait)  # HDF5's own metadata did not change: nothing to flush
+        self._shot_written(key)
+        return shot_ref(key)
 
     def begin_shot(self, key: str, *, replace: bool = False) -> RawShotBuilder:
         """Start a shot written channel by channel (as a scope transfers them): returns a
@@ -528,6 +612,8 @@ class RawRecord:
             what was written.
         """
         key = _key_of(key_or_ref)
+        if key in self._slots:
+            return self._slots.read(key, verify=verify)
         group = self._shots.get(key)
         if not _is_complete(group):
             raise StoreError(f"no shot {key!r} in raw record {self.path}")

@@ -97,32 +97,48 @@ def read_shot_group(group: h5py.Group, key: str, path: Path, *, verify: bool = T
     StoreError
         Unreadable data, or (``verify``) content that differs from what was written.
     """
-    ChannelData, ProbeCalibration = scaling_types()
     try:
-        channels: dict[str, Any] = {}
-        for name, (codes, scaling) in _stored_channels(group).items():
-            channels[name] = ChannelData(
-                codes=codes,
-                gain=float(scaling["gain"]),
-                offset=float(scaling["offset"]),
-                code_min=int(scaling["code_min"]),
-                code_max=int(scaling["code_max"]),
-            )
-        probes = {
-            name: ProbeCalibration(scale=float(p["scale"]), deskew_s=float(p["deskew_s"]))
-            for name, p in json.loads(_attr_str(group.attrs["probes_json"])).items()
-        }
-        shot = RawShot(
-            key=key,
-            t_start=float(group.attrs["t_start_s"]),
-            dt=float(group.attrs["dt_s"]),
-            channels=channels,
-            probes=probes,
-            attrs=json.loads(_attr_str(group.attrs["attrs_json"])),
-        )
-        stored_digest = _attr_str(group.attrs["content_sha256"])
+        attrs = group.attrs
+        return make_shot(key, path, float(attrs["t_start_s"]), float(attrs["dt_s"]),
+                         _stored_channels(group),
+                         json.loads(_attr_str(attrs["probes_json"])),
+                         json.loads(_attr_str(attrs["attrs_json"])),
+                         _attr_str(attrs["content_sha256"]), verify=verify)
     except (OSError, KeyError, ValueError, TypeError) as exc:
         raise StoreError(f"shot {key} in {path} cannot be read: {exc}") from exc
+
+
+def make_shot(key: str, path: Path, t_start: float, dt: float,
+              channels: Mapping[str, tuple[np.ndarray, Mapping[str, Any]]],
+              probes: Mapping[str, Mapping[str, Any]], attrs: dict[str, Any],
+              stored_digest: str, *, verify: bool = True) -> RawShot:
+    """A :class:`RawShot` from what one layout stored: channel name → (codes, scaling with
+    ``gain``, ``offset``, ``code_min``, ``code_max``), probe name → ``scale`` and
+    ``deskew_s``; with ``verify``, checked against the digest stored with it.
+
+    Raises
+    ------
+    KeyError, ValueError, TypeError
+        A scaling or probe field is missing or not a number (the caller names the shot).
+    StoreError
+        (``verify``) The content differs from what was written.
+    """
+    ChannelData, ProbeCalibration = scaling_types()
+    shot = RawShot(
+        key=key,
+        t_start=t_start,
+        dt=dt,
+        channels={
+            name: ChannelData(codes=codes, gain=float(scaling["gain"]),
+                              offset=float(scaling["offset"]),
+                              code_min=int(scaling["code_min"]),
+                              code_max=int(scaling["code_max"]))
+            for name, (codes, scaling) in channels.items()
+        },
+        probes={name: ProbeCalibration(scale=float(p["scale"]), deskew_s=float(p["deskew_s"]))
+                for name, p in probes.items()},
+        attrs=attrs,
+    )
     if verify and shot.digest() != stored_digest:
         raise StoreError(
             f"shot {key} in {path} does not match the SHA-256 recorded when it was "

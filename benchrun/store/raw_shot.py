@@ -55,6 +55,8 @@ class RawShotBuilder:
 
     def _check_free(self) -> bool:
         """True when a (complete or dangling) link holds the key and may be replaced."""
+        if self.key in self.record._slots and not self.replace:
+            raise StoreError(f"shot {self.key} is already in raw record {self.record.path}")
         shots = self.record._shots
         if not shots.id.links.exists(self.key.encode()):  # without h5py's path walk
             return False
@@ -66,15 +68,9 @@ class RawShotBuilder:
         """Write one channel's codes (scaling goes with the shot's attributes at finish)."""
         if self._finished:
             raise StoreError(f"shot {self.key} is already finished")
-        if not _raw._KEY_RE.match(name) or name in self._channels:
+        if name in self._channels:
             raise StoreError(f"shot {self.key}: invalid or repeated channel name {name!r}")
-        codes = np.asarray(channel.codes)
-        if codes.ndim != 1 or codes.dtype.kind not in "iu" or codes.dtype.itemsize > 2:
-            raise StoreError(
-                f"shot {self.key}: channel {name!r} codes must be a 1-D int8/int16 array, "
-                f"got {codes.dtype} with shape {codes.shape}"
-            )
-        codes = np.ascontiguousarray(codes)
+        codes = _raw.checked_codes(self.key, name, channel)
         try:
             dcpl, space = self.record._codes_plist_and_space(codes)
             htype = _raw._code_type(codes.dtype)  # integer codes: memory type = file type
@@ -102,11 +98,8 @@ class RawShotBuilder:
         probes_json = canonical_json(
             {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)} for n, p in probes.items()}
         )
-        channels_json = canonical_json({
-            name: {"gain": float(ch.gain), "offset": float(ch.offset),
-                   "code_min": int(ch.code_min), "code_max": int(ch.code_max)}
-            for name, ch in channels.items()
-        })
+        channels_json = canonical_json({name: _raw.scaling_of(ch)
+                                        for name, ch in channels.items()})
         try:
             # format 2: one attribute holds every channel's scaling
             _raw._write_new_attrs(self._group, {
@@ -122,5 +115,7 @@ class RawShotBuilder:
             raise StoreError(f"cannot write shot {key} to {record.path}: {exc}") from exc
         self._finished = True
         record.flush(wait=wait)
+        if key in record._slots:  # replaced: the slot version goes once the group is in
+            record._slots.drop(key)
         record._shot_written(key)
         return f"{_raw.SHOTS_GROUP}/{key}"

@@ -1,0 +1,367 @@
+"""Shots in preallocated slots (raw record format 3): the per-shot write without HDF5
+metadata changes.
+
+Creating a group, datasets and attributes for every shot costs about a millisecond of HDF5
+library work per shot, most of it cold-cache work after the idle time of an acquisition, on
+the runner's critical path. An uncompressed record instead keeps its shots in *blocks* of
+slots allocated ahead::
+
+    /slots/<block>/codes    int8 / int16 / uint8 / uint16 dataset (slots, channels, points):
+                            slot s, row r = the codes of channel r of the shot in slot s,
+                            exactly as captured (a narrower signed channel is widened to the
+                            block's type, and codes of the other byte order turned, and both
+                            given back as captured on reading: the header keeps each type)
+    /slots/<block>/header   uint8 dataset (slots, width): slot s = the shot's header, UTF-8
+                            canonical JSON ended by a NUL byte; zero bytes = an empty slot
+
+Both are contiguous datasets whose file space HDF5 allocates when the block is created
+(allocation time *early*, fill time *never*), so the file offset of every slot is fixed. A
+shot is two positional writes into that space at those offsets, codes first, header last:
+no HDF5 object is created or changed, HDF5's metadata stays as the block's creation flushed
+it, and any HDF5 reader still sees every slot through the two datasets. The header is::
+
+    {"key": ..., "seq": n, "t_start_s": ..., "dt_s": ...,
+     "channels": [{"name": ..., "dtype": "|i1", "gain": ..., "offset": ...,
+                   "code_min": ..., "code_max": ...}, ...],      (row order)
+     "probes": {"<channel>": {"scale": ..., "deskew_s": ...}},
+     "attrs": {...}, "content_sha256": "<hex>"}
+
+``seq`` numbers the shots in the order written; a key written again (``replace``) is the
+slot with the highest ``seq``. ``content_sha256`` is :func:`~benchrun.store.digests.shot_digest`
+over the content, the same as in the group layouts.
+
+Crash safety: a slot's header is written after its codes, so a ``kill -9`` leaves either a
+complete slot or an empty (or partly written, unreadable) header, which is ignored. A power
+cut can also lose codes whose header reached the disk; only the shot written after the last
+completed sync can be affected (the record syncs every shot before the next one is written
+in durability ``"power-loss"``), so on opening for writing (a resumed run), the newest
+slot's digest is checked and a slot that fails it is cleared: its shot is fired again. Read
+only, such a slot is listed and reported as damaged (what it is: its content was lost).
+Blocks are created as every shot group is (:mod:`benchrun.store.raw`, "Crash safety"):
+unlinked, flushed, then linked and flushed again.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import h5py
+import numpy as np
+
+from benchrun.errors import StoreError
+from benchrun.store.canonical import canonical_json
+from benchrun.store.h5low import _LCPL_ASCII
+from benchrun.store.raw_read import RawShot, make_shot
+
+log = logging.getLogger("benchrun.store")
+
+#: Group holding the blocks of slots.
+SLOTS_GROUP = "slots"
+#: Smallest header width, bytes (a shot's header is about 1.5 kB; a wider one gets a block
+#: of its own with room for twice its size).
+MIN_HEADER_BYTES = 4096
+#: Slots of the first block of a shape; each further block of that shape has twice as many,
+#: up to :data:`MAX_BLOCK_SLOTS`.
+FIRST_BLOCK_SLOTS = 16
+MAX_BLOCK_SLOTS = 256
+#: Code types a block can hold (little-endian, as the file stores them).
+_SIGNED = (np.dtype("i1"), np.dtype("<i2"))
+_BLOCK_TYPES = (*_SIGNED, np.dtype("u1"), np.dtype("<u2"))
+
+
+def block_dtype(dtypes: list[np.dtype]) -> np.dtype | None:
+    """The code type of a block for channels of ``dtypes`` (None: they need a shot group):
+    one type, or signed 8/16-bit codes together in the wider one."""
+    kinds = {np.dtype(d).newbyteorder("<") for d in dtypes}
+    if len(kinds) == 1 and next(iter(kinds)) in _BLOCK_TYPES:
+        return next(iter(kinds))
+    if kinds <= set(_SIGNED):
+        return np.dtype("<i2")
+    return None
+
+
+@dataclass
+class _Block:
+    """One block of slots and where its slots lie in the file."""
+
+    name: str
+    n_slots: int
+    n_channels: int
+    length: int
+    dtype: np.dtype
+    width: int
+    codes_offset: int
+    header_offset: int
+    #: slots in use (filled in order)
+    used: int = 0
+
+    @property
+    def row_bytes(self) -> int:
+        return self.n_channels * self.length * self.dtype.itemsize
+
+    def fits(self, n_channels: int, length: int, dtype: np.dtype, header_bytes: int) -> bool:
+        return (self.used < self.n_slots and self.n_channels == n_channels
+                and self.length == length and self.dtype == dtype
+                and header_bytes <= self.width)
+
+
+class SlotStore:
+    """The slots of one open raw record: index, reading and writing.
+
+    Parameters
+    ----------
+    f
+        The open HDF5 file (sec2 driver: its file descriptor is used for the slot I/O).
+    path
+        The file's path, for messages.
+    writable
+        Whether blocks may be created and slots written (and a damaged newest slot cleared).
+
+    Raises
+    ------
+    StoreError
+        A block whose datasets are not contiguous and allocated (the file was rewritten by a
+        tool that changed the layout: read it with a copy of the original instead).
+    """
+
+    def __init__(self, f: h5py.File, path: Path, *, writable: bool) -> None:
+        self._f = f
+        self.path = path
+        self.writable = writable
+        self.blocks: list[_Block] = []
+        #: key → (block, slot, seq) of the newest slot of every key
+        self.index: dict[str, tuple[_Block, int, int]] = {}
+        self._next_seq = 0
+        self._load()
+
+    # --- file access ------------------------------------------------------------------------
+    def _fd(self) -> int:
+        fd = self._f.id.get_vfd_handle()
+        if not (isinstance(fd, int) and fd >= 0):
+            raise StoreError(f"raw record {self.path}: no file descriptor for slot I/O")
+        return fd
+
+    def _pread(self, offset: int, nbytes: int) -> bytes:
+        """Bytes at ``offset``; space HDF5 allocated beyond the end of the file reads as
+        zeros (it was never written)."""
+        fd, parts, got = self._fd(), [], 0
+        while got < nbytes:
+            part = os.pread(fd, nbytes - got, offset + got)
+            if not part:
+                break
+            parts.append(part)
+            got += len(part)
+        data = b"".join(parts)
+        return data + bytes(nbytes - len(data))
+
+    def _pwrite(self, offset: int, data: bytes | memoryview) -> None:
+        fd, view = self._fd(), memoryview(data).cast("B")
+        try:
+            while view:
+                written = os.pwrite(fd, view, offset)
+                view, offset = view[written:], offset + written
+        except OSError as exc:
+            raise StoreError(f"cannot write to raw record {self.path}: {exc}") from exc
+
+    # --- loading ----------------------------------------------------------------------------
+    def _load(self) -> None:
+        group = self._f.get(SLOTS_GROUP)
+        if group is None:
+            return
+        newest: tuple[int, str] | None = None
+        for name in sorted(group):
+            block = self._open_block(name, group[name])
+            self.blocks.append(block)
+            raw = np.frombuffer(self._pread(block.header_offset, block.n_slots * block.width),
+                                dtype=np.uint8).reshape(block.n_slots, block.width)
+            filled = np.flatnonzero(raw[:, 0])
+            block.used = int(filled[-1]) + 1 if filled.size else 0
+            for slot in filled:
+                header = _parse_header(raw[slot].tobytes())
+                if header is None:
+                    continue  # a header a crash left half-written: an empty slot
+                key, seq = header["key"], int(header["seq"])
+                self._next_seq = max(self._next_seq, seq + 1)
+                known = self.index.get(key)
+                if known is None or known[2] < seq:
+                    self.index[key] = (block, int(slot), seq)
+                if newest is None or seq > newest[0]:
+                    newest = (seq, key)
+        if self.writable and newest is not None and self.index[newest[1]][2] == newest[0]:
+            self._check_newest(newest[1])
+
+    def _open_block(self, name: str, group: h5py.Group) -> _Block:
+        try:
+            codes, header = group["codes"], group["header"]
+            codes_offset, header_offset = codes.id.get_offset(), header.id.get_offset()
+            n_slots, n_channels, length = codes.shape
+            width = header.shape[1]
+            dtype = codes.dtype.newbyteorder("<")
+        except (KeyError, ValueError, TypeError, OSError) as exc:
+            raise StoreError(f"raw record {self.path}: slot block {name} cannot be read "
+                             f"({exc})") from exc
+        if codes_offset is None or header_offset is None or dtype not in _BLOCK_TYPES or \
+                header.shape[0] != n_slots or codes.dtype != dtype:
+            raise StoreError(f"raw record {self.path}: slot block {name} is not in the layout "
+                             "benchrun writes (contiguous, allocated, little-endian)")
+        return _Block(name, n_slots, n_channels, length, dtype, width, codes_offset,
+                      header_offset)
+
+    def _check_newest(self, key: str) -> None:
+        """The newest slot is the only one a power cut can have left with a header but not
+        its codes: keep it only when its content matches its digest (a writable record)."""
+        try:
+            self.read(key, verify=True)
+            return
+        except StoreError:
+            pass
+        block, slot, _ = self.index.pop(key)
+        log.warning("raw record %s: the newest shot %s does not match its SHA-256 (its data "
+                    "did not reach the disk before a power cut?): its slot is cleared and the "
+                    "shot counts as not written", self.path, key)
+        self._pwrite(block.header_offset + slot * block.width, b"\0")
+        # an older slot of the same key (written before a replace) is the key's shot again
+        older = [(seq, b, s) for b in self.blocks for s, seq, k in self._headers_of(b)
+                 if k == key and (b is not block or s != slot)]
+        if older:
+            seq, b, s = max(older, key=lambda item: item[0])
+            self.index[key] = (b, s, seq)
+
+    def _headers_of(self, block: _Block) -> list[tuple[int, int, str]]:
+        out = []
+        for slot in range(block.used):
+            header = _parse_header(self._pread(block.header_offset + slot * block.width,
+                                               block.width))
+            if header is not None:
+                out.append((slot, int(header["seq"]), header["key"]))
+        return out
+
+    # --- reading ----------------------------------------------------------------------------
+    def __contains__(self, key: str) -> bool:
+        return key in self.index
+
+    def keys(self) -> list[str]:
+        return list(self.index)
+
+    def read(self, key: str, *, verify: bool = True) -> RawShot:
+        """The shot in the newest slot of ``key`` (KeyError when there is none).
+
+        Raises
+        ------
+        StoreError
+            Unreadable header or data, or (``verify``) content that differs from what was
+            written.
+        """
+        block, slot, _ = self.index[key]
+        header = _parse_header(self._pread(block.header_offset + slot * block.width,
+                                           block.width))
+        try:
+            if header is None or header["key"] != key:
+                raise ValueError("the slot's header is unreadable or names another shot")
+            rows = np.frombuffer(
+                self._pread(block.codes_offset + slot * block.row_bytes, block.row_bytes),
+                dtype=block.dtype).reshape(block.n_channels, block.length)
+            described = header["channels"]
+            if len(described) != block.n_channels:
+                raise ValueError(f"{len(described)} channels described, {block.n_channels} "
+                                 "stored")
+            channels = {
+                ch["name"]: (rows[r].astype(np.dtype(ch["dtype"]), copy=True), ch)
+                for r, ch in enumerate(described)
+            }
+            return make_shot(key, self.path, float(header["t_start_s"]),
+                             float(header["dt_s"]), channels, header["probes"],
+                             header["attrs"], str(header["content_sha256"]), verify=verify)
+        except (KeyError, ValueError, TypeError) as exc:
+            raise StoreError(f"shot {key} in {self.path} cannot be read: {exc}") from exc
+
+    # --- writing ----------------------------------------------------------------------------
+    def drop(self, key: str) -> None:
+        """Clear every slot of ``key`` (a shot group replaces it)."""
+        self.index.pop(key, None)
+        for block in self.blocks:
+            for slot, _, k in self._headers_of(block):
+                if k == key:
+                    self._pwrite(block.header_offset + slot * block.width, b"\0")
+
+    def write(self, key: str, t_start: float, dt: float,
+              channels: Mapping[str, tuple[np.ndarray, Mapping[str, Any]]],
+              probes: Mapping[str, Any], attrs: Mapping[str, Any], digest: str,
+              dtype: np.dtype) -> None:
+        """Write one shot into the next free slot of a block of its shape (created when
+        there is none): codes first, header last. ``channels``: name → (1-D codes of one
+        common length, scaling dict); ``dtype`` from :func:`block_dtype`."""
+        seq = self._next_seq
+        header = canonical_json({
+            "key": key, "seq": seq, "t_start_s": float(t_start), "dt_s": float(dt),
+            "channels": [{"name": name, "dtype": codes.dtype.str, **scaling}
+                         for name, (codes, scaling) in channels.items()],
+            "probes": probes, "attrs": attrs, "content_sha256": digest,
+        }).encode() + b"\0"
+        length = next(iter(channels.values()))[0].size
+        block = next((b for b in self.blocks
+                      if b.fits(len(channels), length, dtype, len(header))), None)
+        if block is None:
+            block = self._new_block(len(channels), length, dtype, len(header))
+        rows = np.empty((len(channels), length), dtype=dtype)
+        for r, (codes, _) in enumerate(channels.values()):
+            rows[r] = codes
+        slot = block.used
+        self._pwrite(block.codes_offset + slot * block.row_bytes, rows.data)
+        self._pwrite(block.header_offset + slot * block.width, header)  # the shot is now in
+        block.used += 1
+        self.index[key] = (block, slot, seq)
+        self._next_seq = seq + 1
+
+    def _new_block(self, n_channels: int, length: int, dtype: np.dtype,
+                   header_bytes: int) -> _Block:
+        same = [b for b in self.blocks
+                if (b.n_channels, b.length, b.dtype) == (n_channels, length, dtype)]
+        n_slots = min(MAX_BLOCK_SLOTS, 2 * same[-1].n_slots) if same else FIRST_BLOCK_SLOTS
+        width = max(MIN_HEADER_BYTES, 1 << (2 * header_bytes - 1).bit_length())
+        f = self._f
+        name = f"b{len(self.blocks):06d}"
+        try:
+            dcpl = h5py.h5p.create(h5py.h5p.DATASET_CREATE)
+            dcpl.set_alloc_time(h5py.h5d.ALLOC_TIME_EARLY)  # the file space exists now
+            dcpl.set_fill_time(h5py.h5d.FILL_TIME_NEVER)  # and HDF5 never writes it
+            dcpl.set_obj_track_times(False)
+            group = h5py.h5g.create(f.id, None)  # unlinked until written and flushed
+            for ds_name, htype, shape in (
+                    (b"codes", h5py.h5t.py_create(dtype), (n_slots, n_channels, length)),
+                    (b"header", h5py.h5t.py_create(np.dtype("u1")), (n_slots, width))):
+                ds = h5py.h5d.create(f.id, None, htype, h5py.h5s.create_simple(shape),
+                                     dcpl=dcpl)
+                h5py.h5o.link(ds, group, ds_name, lcpl=_LCPL_ASCII)
+            f.flush()  # the block's objects reach the file before the link to them
+            slots = f.get(SLOTS_GROUP)
+            if slots is None:
+                slots = f.create_group(SLOTS_GROUP)
+            h5py.h5o.link(group, slots.id, name.encode(), lcpl=_LCPL_ASCII)
+            f.flush()
+            block = self._open_block(name, slots[name])
+        except (OSError, ValueError, TypeError, KeyError) as exc:
+            raise StoreError(f"cannot add a block of slots to {self.path}: {exc}") from exc
+        self.blocks.append(block)
+        return block
+
+
+def _parse_header(row: bytes) -> dict[str, Any] | None:
+    """A slot's header, or None for an empty or unreadable one."""
+    end = row.find(b"\0")
+    if end <= 0:
+        return None
+    try:
+        header = json.loads(row[:end].decode())
+    except (UnicodeDecodeError, ValueError):
+        return None
+    if not isinstance(header, dict) or not isinstance(header.get("key"), str) or \
+            not isinstance(header.get("seq"), int):
+        return None
+    return header

@@ -1,0 +1,206 @@
+"""Raw record format 3: shots of an uncompressed record in preallocated slots.
+
+The layout is checked with h5py (the outside reference: any HDF5 reader must see every
+slot through the two datasets of a block), and the crash cases are made the way a crash
+leaves them: a header never written, a header whose codes a power cut lost.
+"""
+
+from __future__ import annotations
+
+import json
+
+import h5py
+import numpy as np
+import pytest
+from store_helpers import make_channels, make_probes
+
+from benchrun.analysis.pipeline import ChannelData
+from benchrun.errors import StoreError
+from benchrun.store import raw_slots
+from benchrun.store.raw import FORMAT_VERSION, RawRecord
+from benchrun.store.raw_slots import FIRST_BLOCK_SLOTS, SLOTS_GROUP, SlotStore
+
+
+def _same_shot(got, channels) -> None:
+    assert set(got.channels) == set(channels)
+    for name, ch in channels.items():
+        assert got.channels[name].codes.dtype == ch.codes.dtype
+        np.testing.assert_array_equal(got.channels[name].codes, ch.codes)
+
+
+def _write(path, n, *, start=0, **kwargs):
+    with RawRecord(path, "a", compression=None, **kwargs) as raw:
+        for k in range(start, start + n):
+            raw.append_shot(f"{k:06d}", 0.0, 1e-9, make_channels(k, 500), make_probes(),
+                            {"k": k})
+
+
+def test_uncompressed_shots_go_to_slots_any_hdf5_reader_can_read(tmp_path):
+    path = tmp_path / "raw.h5"
+    channels = make_channels(1, 700)  # int16 and int8 channels: an int16 block
+    with RawRecord(path, "w", compression=None) as raw:
+        raw.append_shot("000000", -1e-6, 2.5e-10, channels, make_probes(), {"serial": "S1"})
+    with h5py.File(path, "r") as f:
+        assert f.attrs["format_version"] == FORMAT_VERSION == 3
+        assert list(f["shots"]) == []  # no shot group
+        block = f[SLOTS_GROUP]["b000000"]
+        codes, header = block["codes"], block["header"]
+        assert codes.shape == (FIRST_BLOCK_SLOTS, 3, 700) and codes.dtype == np.int16
+        text = header[0].tobytes().split(b"\0", 1)[0]
+        described = json.loads(text)
+        assert described["key"] == "000000" and described["attrs"] == {"serial": "S1"}
+        for row, ch in enumerate(described["channels"]):
+            original = channels[ch["name"]]
+            np.testing.assert_array_equal(codes[0, row], original.codes)
+            assert np.dtype(ch["dtype"]) == original.codes.dtype
+            assert ch["gain"] == original.gain
+        assert not header[1].any()  # the next slot is empty
+    with RawRecord(path, "r") as raw:
+        shot = raw.read_shot("shots/000000")
+    _same_shot(shot, channels)
+    assert shot.t_start == -1e-6 and shot.dt == 2.5e-10
+
+
+def test_blocks_grow_and_a_reopened_record_continues_in_its_block(tmp_path):
+    path = tmp_path / "raw.h5"
+    _write(path, 20)
+    _write(path, 30, start=20)  # the second block (32 slots) is half full on reopening
+    with RawRecord(path, "r") as raw:
+        assert raw.keys() == [f"{k:06d}" for k in range(50)]
+        assert raw.next_key() == "000050"
+        for k in (0, 15, 16, 19, 20, 49):
+            shot = raw.read_shot(f"{k:06d}")
+            assert shot.attrs == {"k": k}
+            _same_shot(shot, make_channels(k, 500))
+    with h5py.File(path, "r") as f:
+        sizes = [f[SLOTS_GROUP][b]["codes"].shape[0] for b in sorted(f[SLOTS_GROUP])]
+    assert sizes == [16, 32, 64]
+
+
+def test_duplicate_replace_and_layout_fallbacks(tmp_path):
+    path = tmp_path / "raw.h5"
+    with RawRecord(path, "w", compression=None) as raw:
+        raw.append_shot("a", 0.0, 1e-9, make_channels(1, 300), make_probes(), {"v": 1})
+        with pytest.raises(StoreError, match="already"):
+            raw.append_shot("a", 0.0, 1e-9, make_channels(1, 300), make_probes(), {})
+        raw.append_shot("a", 0.0, 1e-9, make_channels(2, 300), make_probes(), {"v": 2},
+                        replace=True)
+        # unequal lengths cannot share a slot: a shot group
+        uneven = {**make_channels(3, 300), "gate": ChannelData(
+            np.zeros(10, np.int8), 1.0, 0.0, -128, 127)}
+        raw.append_shot("b", 0.0, 1e-9, uneven, make_probes(), {})
+        # a shot group replaced by a slot, a slot replaced by a streamed shot group
+        raw.append_shot("b", 0.0, 1e-9, make_channels(4, 300), make_probes(), {"v": 4},
+                        replace=True)
+        builder = raw.begin_shot("a", replace=True)
+        for name, ch in make_channels(5, 300).items():
+            builder.add_channel(name, ch)
+        builder.finish(0.0, 1e-9, make_probes(), {"v": 5})
+    with RawRecord(path, "r") as raw:
+        assert raw.keys() == ["a", "b"]
+        assert raw.read_shot("a").attrs == {"v": 5}
+        assert raw.read_shot("b").attrs == {"v": 4}
+        _same_shot(raw.read_shot("b"), make_channels(4, 300))
+    with h5py.File(path, "r") as f:
+        assert list(f["shots"]) == ["a"]
+
+
+def test_wide_header_gets_a_wider_block(tmp_path):
+    path = tmp_path / "raw.h5"
+    with RawRecord(path, "w", compression=None) as raw:
+        raw.append_shot("s0", 0.0, 1e-9, make_channels(1, 100), make_probes(), {})
+        raw.append_shot("s1", 0.0, 1e-9, make_channels(1, 100), make_probes(),
+                        {"note": "x" * 9000})
+        assert raw.read_shot("s1").attrs == {"note": "x" * 9000}
+    with h5py.File(path, "r") as f:
+        widths = [f[SLOTS_GROUP][b]["header"].shape[1] for b in sorted(f[SLOTS_GROUP])]
+    assert widths[0] == raw_slots.MIN_HEADER_BYTES and widths[1] >= 2 * 9000
+
+
+def test_shot_whose_header_was_never_written_is_invisible_and_its_slot_reused(
+        tmp_path, monkeypatch):
+    path = tmp_path / "raw.h5"
+    _write(path, 2)
+    original = SlotStore._pwrite
+    calls = []
+
+    def crash_on_header(self, offset, data):
+        calls.append(offset)
+        if len(calls) == 2:  # codes written, the process dies before the header
+            raise KeyboardInterrupt
+        return original(self, offset, data)
+
+    monkeypatch.setattr(SlotStore, "_pwrite", crash_on_header)
+    with pytest.raises(KeyboardInterrupt), RawRecord(path, "a", compression=None) as raw:
+        raw.append_shot("000002", 0.0, 1e-9, make_channels(2, 500), make_probes(), {})
+    monkeypatch.setattr(SlotStore, "_pwrite", original)
+    with RawRecord(path, "a", compression=None) as raw:
+        assert raw.keys() == ["000000", "000001"]
+        raw.append_shot("000002", 0.0, 1e-9, make_channels(7, 500), make_probes(), {"k": 7})
+    with RawRecord(path, "r") as raw:
+        _same_shot(raw.read_shot("000002"), make_channels(7, 500))
+    with h5py.File(path, "r") as f:  # the same slot, not a new one
+        assert f[SLOTS_GROUP]["b000000"]["header"][3].sum() == 0
+
+
+def _clear_codes(path, slot):
+    with h5py.File(path, "r+") as f:
+        f[SLOTS_GROUP]["b000000"]["codes"][slot] = 0
+
+
+def test_newest_slot_whose_codes_a_power_cut_lost_is_dropped(tmp_path):
+    path = tmp_path / "raw.h5"
+    _write(path, 3)
+    _clear_codes(path, 2)  # its header reached the disk, its codes did not
+    with RawRecord(path, "r") as raw:  # read only: listed, and found damaged
+        assert raw.keys() == ["000000", "000001", "000002"]
+        assert raw.damaged_keys() == ["000002"]
+    with RawRecord(path, "a", compression=None) as raw:  # resumed: cleared, fired again
+        assert raw.keys() == ["000000", "000001"]
+        assert raw.next_key() == "000002"
+    with h5py.File(path, "r") as f:
+        assert f[SLOTS_GROUP]["b000000"]["header"][2, 0] == 0
+
+
+def test_changed_older_slot_is_damaged_not_dropped(tmp_path):
+    path = tmp_path / "raw.h5"
+    _write(path, 3)
+    with h5py.File(path, "r+") as f:
+        codes = f[SLOTS_GROUP]["b000000"]["codes"]
+        row = codes[1]
+        row[0, 5] ^= 1
+        codes[1] = row
+    with RawRecord(path, "r") as raw:
+        assert raw.keys() == ["000000", "000001", "000002"]
+        assert raw.damaged_keys() == ["000001"]
+        with pytest.raises(StoreError, match="SHA-256"):
+            raw.read_shot("000001")
+        assert raw.read_shot("000001", verify=False).attrs == {"k": 1}
+
+
+def test_record_of_a_newer_format_is_refused(tmp_path):
+    path = tmp_path / "raw.h5"
+    _write(path, 1)
+    with h5py.File(path, "r+") as f:
+        f.attrs["format_version"] = FORMAT_VERSION + 1
+    with pytest.raises(StoreError, match="newer"):
+        RawRecord(path, "r")
+
+
+def test_slot_write_hands_the_shot_to_the_os_at_once(tmp_path):
+    """Durability "process": no HDF5 flush per shot, yet another reader sees every shot as
+    soon as append_shot returned (the slot's bytes are in the operating system)."""
+    import subprocess
+    import sys
+
+    path = tmp_path / "raw.h5"
+    probe = ("import h5py, sys\n"
+             "with h5py.File(sys.argv[1], 'r', locking=False) as f:\n"
+             "    h = f['slots/b000000/header']\n"
+             "    print(sum(1 for row in h[()] if row[0]))")
+    with RawRecord(path, "w", compression=None, durability="process") as raw:
+        for k in range(3):
+            raw.append_shot(f"{k:06d}", 0.0, 1e-9, make_channels(k, 200), make_probes(), {})
+            seen = subprocess.run([sys.executable, "-c", probe, str(path)], check=True,
+                                  capture_output=True, text=True).stdout.strip()
+            assert seen == str(k + 1)
