@@ -204,3 +204,18 @@ def test_slot_write_hands_the_shot_to_the_os_at_once(tmp_path):
             seen = subprocess.run([sys.executable, "-c", probe, str(path)], check=True,
                                   capture_output=True, text=True).stdout.strip()
             assert seen == str(k + 1)
+
+
+@pytest.mark.parametrize("rest", [{}, {"t_start": -1e-6, "dt": 1e-9}, {"b": [1, {"z": 0.1}]}])
+@pytest.mark.parametrize("attrs", [{}, {"serial": "S1", "µ": [1.5, None]}])
+def test_attrs_json_spliced_in_equals_canonical_json_of_the_whole(rest, attrs):
+    # the reference is canonical_json itself (json.dumps with sorted keys) of the whole object
+    from benchrun.store.canonical import canonical_json
+    from benchrun.store.digests import shot_digest, with_attrs_json
+
+    assert with_attrs_json(canonical_json(rest), canonical_json(attrs)) == \
+        canonical_json({**rest, "attrs": attrs})
+    channels, probes = make_channels(3, 50), make_probes()
+    assert shot_digest(0.0, 1e-9, channels, probes, attrs,
+                       attrs_json=canonical_json(attrs)) == \
+        shot_digest(0.0, 1e-9, channels, probes, attrs)

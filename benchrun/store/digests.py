@@ -23,12 +23,16 @@ def shot_digest(
     channels: Mapping[str, ChannelLike],
     probes: Mapping[str, ProbeLike],
     attrs: Mapping[str, Any],
+    *,
+    attrs_json: str | None = None,
 ) -> str:
     """SHA-256 (hex) over a shot's timing, scaling, probes, attributes and raw codes.
 
     The header is canonical JSON (sorted keys); then, per channel in name order, the dtype
     string and the little-endian code bytes. Stored with every shot so a changed byte in a
     waveform is found by :meth:`RawRecord.read_shot` even when the file still opens.
+    ``attrs_json``: ``canonical_json(attrs)`` when the caller has it already (the same
+    digest, one serialisation less).
 
     Returns
     -------
@@ -53,14 +57,22 @@ def shot_digest(
             name: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)}
             for name, p in probes.items()
         },
-        "attrs": dict(attrs),
     }
-    h = hashlib.sha256(canonical_json(header).encode())
+    h = hashlib.sha256(with_attrs_json(
+        canonical_json(header), canonical_json(dict(attrs)) if attrs_json is None else attrs_json
+    ).encode())
     for name in sorted(channels):
         codes = np.asarray(channels[name].codes)
         h.update(name.encode() + b"\0")
         h.update(np.ascontiguousarray(codes, dtype=codes.dtype.newbyteorder("<")).tobytes())
     return h.hexdigest()
+
+
+def with_attrs_json(text: str, attrs_json: str) -> str:
+    """Canonical JSON of an object with an ``"attrs"`` member added, from the canonical JSON
+    ``text`` of the object without it (whose keys all sort after ``"attrs"``) and that of
+    the member's value: what :func:`canonical_json` of the whole object gives."""
+    return f'{{"attrs":{attrs_json}' + ("," + text[1:] if text != "{}" else "}")
 
 
 def file_sha256(path: str | os.PathLike[str], chunk_size: int = 1 << 20) -> str:

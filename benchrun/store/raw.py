@@ -538,10 +538,11 @@ class RawRecord:
             raise StoreError(f"shot {key} is already in raw record {self.path}")
         if not self._layout_marked:
             self._mark_layout()
-        digest = shot_digest(t_start, dt, channels, probes, attrs)
+        attrs_json = canonical_json(attrs)
+        digest = shot_digest(t_start, dt, channels, probes, attrs, attrs_json=attrs_json)
         plain_probes = {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)}
                         for n, p in probes.items()}
-        self._slots.write(key, t_start, dt, stored, plain_probes, attrs, digest, dtype)
+        self._slots.write(key, t_start, dt, stored, plain_probes, attrs_json, digest, dtype)
         if in_group:  # replaced: the group version goes (after the slot is written)
             with contextlib.suppress(KeyError, OSError, ValueError):
                 del self._shots[key]

@@ -94,7 +94,8 @@ class RawShotBuilder:
             raise StoreError(f"shot {key}: no channels to store")
         if not (np.isfinite(t_start) and np.isfinite(dt) and dt > 0):
             raise StoreError(f"shot {key}: t_start must be finite and dt positive")
-        digest = _raw.shot_digest(t_start, dt, channels, probes, attrs)
+        attrs_json = canonical_json(attrs)
+        digest = _raw.shot_digest(t_start, dt, channels, probes, attrs, attrs_json=attrs_json)
         probes_json = canonical_json(
             {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)} for n, p in probes.items()}
         )
@@ -104,7 +105,7 @@ class RawShotBuilder:
             # format 2: one attribute holds every channel's scaling
             _raw._write_new_attrs(self._group, {
                 "t_start_s": float(t_start), "dt_s": float(dt), "channels_json": channels_json,
-                "probes_json": probes_json, "attrs_json": canonical_json(attrs),
+                "probes_json": probes_json, "attrs_json": attrs_json,
                 "content_sha256": digest, "complete": True})  # the mark last
             if self._check_free():
                 del record._shots[key]

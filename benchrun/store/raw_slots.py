@@ -56,6 +56,7 @@ import numpy as np
 
 from benchrun.errors import StoreError
 from benchrun.store.canonical import canonical_json
+from benchrun.store.digests import with_attrs_json
 from benchrun.store.h5low import _LCPL_ASCII
 from benchrun.store.raw_read import RawShot, make_shot
 
@@ -138,19 +139,20 @@ class SlotStore:
         #: key → (block, slot, seq) of the newest slot of every key
         self.index: dict[str, tuple[_Block, int, int]] = {}
         self._next_seq = 0
+        fd = f.id.get_vfd_handle()  # the file's descriptor while it is open (sec2 driver)
+        self._fd = fd if isinstance(fd, int) and fd >= 0 else None
         self._load()
 
     # --- file access ------------------------------------------------------------------------
-    def _fd(self) -> int:
-        fd = self._f.id.get_vfd_handle()
-        if not (isinstance(fd, int) and fd >= 0):
+    def _descriptor(self) -> int:
+        if self._fd is None:
             raise StoreError(f"raw record {self.path}: no file descriptor for slot I/O")
-        return fd
+        return self._fd
 
     def _pread(self, offset: int, nbytes: int) -> bytes:
         """Bytes at ``offset``; space HDF5 allocated beyond the end of the file reads as
         zeros (it was never written)."""
-        fd, parts, got = self._fd(), [], 0
+        fd, parts, got = self._descriptor(), [], 0
         while got < nbytes:
             part = os.pread(fd, nbytes - got, offset + got)
             if not part:
@@ -161,7 +163,7 @@ class SlotStore:
         return data + bytes(nbytes - len(data))
 
     def _pwrite(self, offset: int, data: bytes | memoryview) -> None:
-        fd, view = self._fd(), memoryview(data).cast("B")
+        fd, view = self._descriptor(), memoryview(data).cast("B")
         try:
             while view:
                 written = os.pwrite(fd, view, offset)
@@ -292,18 +294,19 @@ class SlotStore:
 
     def write(self, key: str, t_start: float, dt: float,
               channels: Mapping[str, tuple[np.ndarray, Mapping[str, Any]]],
-              probes: Mapping[str, Any], attrs: Mapping[str, Any], digest: str,
+              probes: Mapping[str, Any], attrs_json: str, digest: str,
               dtype: np.dtype) -> None:
         """Write one shot into the next free slot of a block of its shape (created when
         there is none): codes first, header last. ``channels``: name → (1-D codes of one
-        common length, scaling dict); ``dtype`` from :func:`block_dtype`."""
+        common length, scaling dict); ``attrs_json``: canonical JSON of the shot attributes;
+        ``dtype`` from :func:`block_dtype`."""
         seq = self._next_seq
-        header = canonical_json({
+        header = with_attrs_json(canonical_json({
             "key": key, "seq": seq, "t_start_s": float(t_start), "dt_s": float(dt),
             "channels": [{"name": name, "dtype": codes.dtype.str, **scaling}
                          for name, (codes, scaling) in channels.items()],
-            "probes": probes, "attrs": attrs, "content_sha256": digest,
-        }).encode() + b"\0"
+            "probes": probes, "content_sha256": digest,
+        }), attrs_json).encode() + b"\0"
         length = next(iter(channels.values()))[0].size
         block = next((b for b in self.blocks
                       if b.fits(len(channels), length, dtype, len(header))), None)
