@@ -42,8 +42,11 @@ overhead. (Tried and dropped because they moved time into the acquisition parts 
 saving it, judged on the whole shot cycle: writing each channel as it arrives, during the
 transfer; writing the raw record on a thread beside the arming; reading the next shot's bus
 voltage on a helper thread during the transfer or the write; creating the shot's HDF5 objects
-while the scope acquires. Python threads share one interpreter lock, and the per-shot write
-is a few hundred microseconds of cold-cache library calls wherever it is placed.)
+while the scope acquires. Python threads share one interpreter lock, and a per-shot write
+through the HDF5 library was about a millisecond of cold-cache calls wherever it was placed.
+What did cut it: the runner's uncompressed record keeps its shots in preallocated slots, raw
+record format 3 (benchrun/store/raw_slots.py), so a shot is two positional writes and no
+HDF5 object is made per shot.)
 
 The simulator caches its circuit solution per shot condition, so repeated shots at one
 setting cost only digitising and transfer. Both cases are measured and printed: *fresh*

@@ -219,3 +219,21 @@ def test_attrs_json_spliced_in_equals_canonical_json_of_the_whole(rest, attrs):
     assert shot_digest(0.0, 1e-9, channels, probes, attrs,
                        attrs_json=canonical_json(attrs)) == \
         shot_digest(0.0, 1e-9, channels, probes, attrs)
+
+
+def test_without_positional_io_slots_are_read_through_hdf5_and_shots_go_to_groups(
+        tmp_path, monkeypatch):
+    # a platform without os.pwrite (Windows): the record still reads, and appends shot groups
+    import os
+
+    path = tmp_path / "raw.h5"
+    _write(path, 3)
+    monkeypatch.delattr(os, "pwrite")
+    with RawRecord(path, "r") as raw:
+        for k in range(3):
+            _same_shot(raw.read_shot(f"{k:06d}"), make_channels(k, 500))
+    _write(path, 1, start=3)
+    with h5py.File(path, "r") as f:
+        assert list(f["shots"]) == ["000003"]
+    with RawRecord(path, "r") as raw:
+        assert raw.keys() == [f"{k:06d}" for k in range(4)] and raw.damaged_keys() == []

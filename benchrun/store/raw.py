@@ -1,47 +1,58 @@
 """The raw record: every shot's ADC codes, scaling and settings in one HDF5 file per run.
 
-Layout (HDF5, readable by any HDF5 tool; format_version 2)::
+Layout (HDF5, readable by any HDF5 tool; format_version 3)::
 
     /                       attrs: format, format_version, software_version, created,
                                    run_id and any other run-level attribute (JSON strings
                                    for non-scalar values, see :meth:`RawRecord.run_attrs`)
-    /shots/<key>/           attrs: t_start_s, dt_s (float64, seconds),
-                                   channels_json, probes_json, attrs_json (JSON text),
-                                   content_sha256 (hex), complete (bool)
+    /slots/<block>/codes    shots of an uncompressed record: preallocated slots of ADC codes
+    /slots/<block>/header   and one JSON header per slot (format 3, :mod:`.raw_slots`)
+    /shots/<key>/           a shot group (format 2): attrs t_start_s, dt_s (float64,
+                                   seconds), channels_json, probes_json, attrs_json (JSON
+                                   text), content_sha256 (hex), complete (bool)
     /shots/<key>/<channel>  int8 / int16 dataset: ADC codes exactly as captured
+
+Where a shot goes: :meth:`RawRecord.append_shot` writes a shot of an uncompressed record
+(``compression=None``, what the runner writes) into a slot when its channels share one
+length and a code type a block can hold (:func:`~benchrun.store.raw_slots.block_dtype`):
+two positional writes, no HDF5 object created per shot. A compressed record (gzip, chunked
+datasets), a shot whose channels differ in length, and a shot written channel by channel
+(:meth:`RawRecord.begin_shot`) get a shot group. :meth:`RawRecord.keys` and
+:meth:`RawRecord.read_shot` see both the same way; a key is in one place only.
 
 ``channels_json`` maps each channel (dataset) name of the shot to its scaling,
 ``{"<channel>": {"gain": ..., "offset": ..., "code_min": ..., "code_max": ...}}``;
 ``probes_json`` maps it to ``{"scale": ..., "deskew_s": ...}``; floats in the JSON read back
-bit-exactly (see :mod:`benchrun.store.canonical`). Physical channel volts are
+bit-exactly (see :mod:`benchrun.store.canonical`). A slot header holds the same fields
+(:mod:`benchrun.store.raw_slots`). Physical channel volts are
 ``codes * gain + offset`` (the scope's own scaling recipe), the physical quantity is channel
 volts times the probe ``scale``; see :mod:`benchrun.analysis.pipeline`. Codes are never
 rescaled or resampled before they are stored, so re-analysis of the record reproduces the
 runner's numbers exactly.
 
-Format 1 (``format_version`` 1, records written before format 2) kept the scaling as four
-attributes of each channel dataset (``gain``, ``offset`` float64; ``code_min``,
-``code_max`` int64) and had no ``channels_json``; everything else is the same. A shot's
-layout is told by its own attributes (``channels_json`` present or not), so
-:meth:`RawRecord.read_shot` reads both, also in one file: appending to a format-1 record
-writes format-2 shots and, with the first of them, sets its ``format_version`` to 2. One
-attribute instead of four per channel is what makes format 2: each HDF5 attribute costs an
-object-header update per shot. ``content_sha256`` (:func:`shot_digest`) is computed from the
-shot's content, not from its layout, so it is the same in both formats.
+Older formats, still read: format 1 kept the scaling as four attributes of each channel
+dataset (``gain``, ``offset`` float64; ``code_min``, ``code_max`` int64) and had no
+``channels_json``; format 2 is the shot group above, and had no slots. A shot's layout is
+told by where it is and by its own attributes, so :meth:`RawRecord.read_shot` reads all of
+them, also in one file: appending to an older record writes current shots and, with the
+first of them, raises its ``format_version`` to 3. A record of a newer format than this
+module writes is refused. ``content_sha256`` (:func:`shot_digest`) is computed from the
+shot's content, not from its layout, so it is the same in every format.
 
 Crash safety
 ------------
-A shot is written as: group → datasets → attributes → ``complete = True`` last, then the file
-is flushed (``H5Fflush``: everything handed to the operating system) before
-:meth:`RawRecord.append_shot` returns. The group is created unlinked and flushed before it is
-linked under ``/shots``: HDF5 may hand a changed link table to the operating system before the
-header of the object it points to, and a ``kill -9`` in between would leave a link that cannot
-be opened, deleted or replaced. A ``kill -9`` at any moment therefore loses at most the
-shot in flight: a group left without the ``complete`` mark (or one that cannot be opened) is
-invisible to :meth:`RawRecord.keys` and is deleted, where HDF5 can, when the file is next
-opened for writing. The file uses
-the earliest HDF5 file format (superblock version 0), which has no "file open for writing"
-status flag, so it reopens after a crash without ``h5clear``.
+A shot in a slot: see :mod:`benchrun.store.raw_slots` (codes first, header last; blocks are
+created as shot groups are). A shot group is written as: group → datasets → attributes →
+``complete = True`` last, then the file is flushed (``H5Fflush``: everything handed to the
+operating system) before :meth:`RawRecord.append_shot` returns. The group is created unlinked
+and flushed before it is linked under ``/shots``: HDF5 may hand a changed link table to the
+operating system before the header of the object it points to, and a ``kill -9`` in between
+would leave a link that cannot be opened, deleted or replaced. A ``kill -9`` at any moment
+therefore loses at most the shot in flight: a group left without the ``complete`` mark (or
+one that cannot be opened) is invisible to :meth:`RawRecord.keys` and is deleted, where HDF5
+can, when the file is next opened for writing. The file uses the earliest HDF5 file format
+(superblock version 0), which has no "file open for writing" status flag, so it reopens
+after a crash without ``h5clear``.
 
 Durability (``durability=``):
 
@@ -61,7 +72,6 @@ import contextlib
 import datetime as _dt
 import json
 import os
-import re
 from collections.abc import Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
@@ -91,6 +101,7 @@ from benchrun.store.raw_read import (  # noqa: F401 (RawShot, scaling_types re-e
     read_shot_group,
     scaling_types,
 )
+from benchrun.store.raw_slots import KEY_RE as _KEY_RE
 from benchrun.store.raw_slots import SlotStore, block_dtype
 
 if TYPE_CHECKING:
@@ -103,7 +114,6 @@ FORMAT_NAME = "benchrun-raw-record"
 #: read too).
 FORMAT_VERSION = 3
 
-_KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
 
 #: Durability: every flush is also ``fsync``-ed (survives power loss). The default.
 DURABILITY_POWER_LOSS = "power-loss"
@@ -118,26 +128,6 @@ def check_durability(durability: str) -> str:
         raise StoreError(f"durability must be one of {', '.join(DURABILITY_MODES)}, "
                          f"not {durability!r}")
     return durability
-
-
-def checked_codes(key: str, name: str, channel: ChannelLike) -> np.ndarray:
-    """The channel's codes as a contiguous 1-D int8/int16/uint8/uint16 array; StoreError
-    for a bad channel name or codes of another kind."""
-    if not _KEY_RE.match(name):
-        raise StoreError(f"shot {key}: invalid channel name {name!r}")
-    codes = np.asarray(channel.codes)
-    if codes.ndim != 1 or codes.dtype.kind not in "iu" or codes.dtype.itemsize > 2:
-        raise StoreError(
-            f"shot {key}: channel {name!r} codes must be a 1-D int8/int16 array, "
-            f"got {codes.dtype} with shape {codes.shape}"
-        )
-    return np.ascontiguousarray(codes)
-
-
-def scaling_of(channel: ChannelLike) -> dict[str, float | int]:
-    """A channel's scaling as stored: ``gain``, ``offset``, ``code_min``, ``code_max``."""
-    return {"gain": float(channel.gain), "offset": float(channel.offset),
-            "code_min": int(channel.code_min), "code_max": int(channel.code_max)}
 
 
 def _is_complete(group: Any) -> bool:
@@ -507,7 +497,7 @@ class RawRecord:
         StoreError
             Bad key or data, key already used, read-only record, or a write failure.
         """
-        if self.compression is None:
+        if self.compression is None and self._slots.direct:
             dtype = block_dtype([np.asarray(ch.codes).dtype for ch in channels.values()])
             lengths = {np.asarray(ch.codes).size for ch in channels.values()}
             if dtype is not None and len(lengths) == 1 and 0 not in lengths:
@@ -527,22 +517,13 @@ class RawRecord:
         self._require_writable()
         self.wait_durable()  # the previous shot's background sync, if any
         key = _key_of(key)
-        attrs = dict(attrs or {})
-        if not (np.isfinite(t_start) and np.isfinite(dt) and dt > 0):
-            raise StoreError(f"shot {key}: t_start must be finite and dt positive")
-        stored = {name: (checked_codes(key, name, ch), scaling_of(ch))
-                  for name, ch in channels.items()}
         in_group = self._shots.id.links.exists(key.encode())
         if (key in self._slots or (in_group and _is_complete(self._shots.get(key)))) \
                 and not replace:
             raise StoreError(f"shot {key} is already in raw record {self.path}")
         if not self._layout_marked:
             self._mark_layout()
-        attrs_json = canonical_json(attrs)
-        digest = shot_digest(t_start, dt, channels, probes, attrs, attrs_json=attrs_json)
-        plain_probes = {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)}
-                        for n, p in probes.items()}
-        self._slots.write(key, t_start, dt, stored, plain_probes, attrs_json, digest, dtype)
+        self._slots.write(key, t_start, dt, channels, probes, dict(attrs or {}), dtype)
         if in_group:  # replaced: the group version goes (after the slot is written)
             with contextlib.suppress(KeyError, OSError, ValueError):
                 del self._shots[key]
@@ -568,12 +549,6 @@ class RawRecord:
 
         return RawShotBuilder(self, key, replace=replace)
 
-    def _link_shot(self, group: Any, key: str) -> None:
-        """Make a complete, flushed shot group visible under /shots (crash-safe order)."""
-        self._f.flush()  # the shot's objects reach the file before the link to them
-        # last: the shot is now visible (what ``shots[key] = group`` does)
-        h5py.h5o.link(group, self._shots.id, key.encode(), lcpl=_LCPL_ASCII)
-
     def _shot_written(self, key: str) -> None:
         if key.isdigit() and self._next_number is not None:
             self._next_number = max(self._next_number, int(key) + 1)
@@ -587,14 +562,6 @@ class RawRecord:
         if isinstance(stored, int | np.integer) and int(stored) < FORMAT_VERSION:
             attrs.modify("format_version", np.int64(FORMAT_VERSION))
         self._layout_marked = True
-
-    def _codes_plist_and_space(self, codes: np.ndarray) -> tuple[Any, Any]:
-        layout_key = (codes.size, codes.dtype.itemsize)
-        layout = self._codes_layout.get(layout_key)
-        if layout is None:
-            dcpl = _codes_create_plist(self.compression, codes.size, codes.dtype.itemsize)
-            layout = self._codes_layout[layout_key] = (dcpl, h5py.h5s.create_simple(codes.shape))
-        return layout
 
     def read_shot(self, key_or_ref: str, *, verify: bool = True) -> RawShot:
         """Read one complete shot back.

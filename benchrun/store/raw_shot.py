@@ -21,6 +21,7 @@ import numpy as np
 from benchrun.errors import StoreError
 from benchrun.store import raw as _raw
 from benchrun.store.canonical import canonical_json
+from benchrun.store.raw_slots import check_timing, checked_codes, scaling_of
 
 if TYPE_CHECKING:
     from benchrun.store.raw import ChannelLike, ProbeLike, RawRecord
@@ -70,9 +71,9 @@ class RawShotBuilder:
             raise StoreError(f"shot {self.key} is already finished")
         if name in self._channels:
             raise StoreError(f"shot {self.key}: invalid or repeated channel name {name!r}")
-        codes = _raw.checked_codes(self.key, name, channel)
+        codes = checked_codes(self.key, name, channel)
         try:
-            dcpl, space = self.record._codes_plist_and_space(codes)
+            dcpl, space = self._layout_of(codes)
             htype = _raw._code_type(codes.dtype)  # integer codes: memory type = file type
             ds = h5py.h5d.create(self._group, name.encode(), htype, space, dcpl=dcpl)
             ds.write(h5py.h5s.ALL, h5py.h5s.ALL, codes, mtype=htype)
@@ -80,6 +81,15 @@ class RawShotBuilder:
             raise StoreError(f"cannot write shot {self.key} to {self.record.path}: "
                              f"{exc}") from exc
         self._channels[name] = channel
+
+    def _layout_of(self, codes: np.ndarray) -> tuple[Any, Any]:
+        """Dataset creation properties and data space of ``codes``, made once per record
+        and shape (kept in ``record._codes_layout``)."""
+        layouts, shape = self.record._codes_layout, (codes.size, codes.dtype.itemsize)
+        if shape not in layouts:
+            layouts[shape] = (_raw._codes_create_plist(self.record.compression, *shape),
+                              h5py.h5s.create_simple(codes.shape))
+        return layouts[shape]
 
     def finish(self, t_start: float, dt: float, probes: Mapping[str, ProbeLike],
                attrs: Mapping[str, Any] | None = None, *, wait: bool = True) -> str:
@@ -92,14 +102,13 @@ class RawShotBuilder:
         channels = self._channels
         if not channels:
             raise StoreError(f"shot {key}: no channels to store")
-        if not (np.isfinite(t_start) and np.isfinite(dt) and dt > 0):
-            raise StoreError(f"shot {key}: t_start must be finite and dt positive")
+        check_timing(key, t_start, dt)
         attrs_json = canonical_json(attrs)
         digest = _raw.shot_digest(t_start, dt, channels, probes, attrs, attrs_json=attrs_json)
         probes_json = canonical_json(
             {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)} for n, p in probes.items()}
         )
-        channels_json = canonical_json({name: _raw.scaling_of(ch)
+        channels_json = canonical_json({name: scaling_of(ch)
                                         for name, ch in channels.items()})
         try:
             # format 2: one attribute holds every channel's scaling
@@ -109,7 +118,9 @@ class RawShotBuilder:
                 "content_sha256": digest, "complete": True})  # the mark last
             if self._check_free():
                 del record._shots[key]
-            record._link_shot(self._group, key)
+            record._f.flush()  # the shot's objects reach the file before the link to them
+            # last: the shot is now visible (what ``shots[key] = group`` does)
+            h5py.h5o.link(self._group, record._shots.id, key.encode(), lcpl=_raw._LCPL_ASCII)
         except StoreError:
             raise
         except (OSError, ValueError, TypeError, KeyError) as exc:

@@ -46,19 +46,23 @@ from __future__ import annotations
 import json
 import logging
 import os
+import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import h5py
 import numpy as np
 
 from benchrun.errors import StoreError
 from benchrun.store.canonical import canonical_json
-from benchrun.store.digests import with_attrs_json
+from benchrun.store.digests import shot_digest, with_attrs_json
 from benchrun.store.h5low import _LCPL_ASCII
 from benchrun.store.raw_read import RawShot, make_shot
+
+if TYPE_CHECKING:
+    from benchrun.store.raw import ChannelLike, ProbeLike
 
 log = logging.getLogger("benchrun.store")
 
@@ -71,9 +75,37 @@ MIN_HEADER_BYTES = 4096
 #: up to :data:`MAX_BLOCK_SLOTS`.
 FIRST_BLOCK_SLOTS = 16
 MAX_BLOCK_SLOTS = 256
+#: Shot keys and channel names: letters, digits, ``_ . -`` (ASCII: HDF5 link names too).
+KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
 #: Code types a block can hold (little-endian, as the file stores them).
 _SIGNED = (np.dtype("i1"), np.dtype("<i2"))
 _BLOCK_TYPES = (*_SIGNED, np.dtype("u1"), np.dtype("<u2"))
+
+
+def checked_codes(key: str, name: str, channel: ChannelLike) -> np.ndarray:
+    """The channel's codes as a contiguous 1-D int8/int16/uint8/uint16 array; StoreError
+    for a bad channel name or codes of another kind."""
+    if not KEY_RE.match(name):
+        raise StoreError(f"shot {key}: invalid channel name {name!r}")
+    codes = np.asarray(channel.codes)
+    if codes.ndim != 1 or codes.dtype.kind not in "iu" or codes.dtype.itemsize > 2:
+        raise StoreError(
+            f"shot {key}: channel {name!r} codes must be a 1-D int8/int16 array, "
+            f"got {codes.dtype} with shape {codes.shape}"
+        )
+    return np.ascontiguousarray(codes)
+
+
+def scaling_of(channel: ChannelLike) -> dict[str, float | int]:
+    """A channel's scaling as stored: ``gain``, ``offset``, ``code_min``, ``code_max``."""
+    return {"gain": float(channel.gain), "offset": float(channel.offset),
+            "code_min": int(channel.code_min), "code_max": int(channel.code_max)}
+
+
+def check_timing(key: str, t_start: float, dt: float) -> None:
+    """StoreError unless ``t_start`` is finite and ``dt`` finite and positive."""
+    if not (np.isfinite(t_start) and np.isfinite(dt) and dt > 0):
+        raise StoreError(f"shot {key}: t_start must be finite and dt positive")
 
 
 def block_dtype(dtypes: list[np.dtype]) -> np.dtype | None:
@@ -140,19 +172,27 @@ class SlotStore:
         self.index: dict[str, tuple[_Block, int, int]] = {}
         self._next_seq = 0
         fd = f.id.get_vfd_handle()  # the file's descriptor while it is open (sec2 driver)
-        self._fd = fd if isinstance(fd, int) and fd >= 0 else None
+        #: positional I/O on HDF5's own descriptor (POSIX); elsewhere slots are read through
+        #: HDF5 and shots are written as shot groups
+        self.direct = isinstance(fd, int) and fd >= 0 and hasattr(os, "pwrite")
+        self._fd = fd if self.direct else -1
         self._load()
 
     # --- file access ------------------------------------------------------------------------
-    def _descriptor(self) -> int:
-        if self._fd is None:
-            raise StoreError(f"raw record {self.path}: no file descriptor for slot I/O")
-        return self._fd
+    def _read(self, block: _Block, part: str, first: int, count: int = 1) -> bytes:
+        """The bytes of slots ``first`` to ``first + count - 1`` of a block's ``part``
+        (``"codes"`` or ``"header"``)."""
+        if not self.direct:
+            rows = self._f[SLOTS_GROUP][block.name][part][first:first + count]
+            return np.ascontiguousarray(rows).tobytes()
+        size = block.row_bytes if part == "codes" else block.width
+        base = block.codes_offset if part == "codes" else block.header_offset
+        return self._pread(base + first * size, count * size)
 
     def _pread(self, offset: int, nbytes: int) -> bytes:
         """Bytes at ``offset``; space HDF5 allocated beyond the end of the file reads as
         zeros (it was never written)."""
-        fd, parts, got = self._descriptor(), [], 0
+        fd, parts, got = self._fd, [], 0
         while got < nbytes:
             part = os.pread(fd, nbytes - got, offset + got)
             if not part:
@@ -163,7 +203,9 @@ class SlotStore:
         return data + bytes(nbytes - len(data))
 
     def _pwrite(self, offset: int, data: bytes | memoryview) -> None:
-        fd, view = self._descriptor(), memoryview(data).cast("B")
+        if not self.direct:
+            raise StoreError(f"raw record {self.path}: slots are written on POSIX systems only")
+        fd, view = self._fd, memoryview(data).cast("B")
         try:
             while view:
                 written = os.pwrite(fd, view, offset)
@@ -180,7 +222,7 @@ class SlotStore:
         for name in sorted(group):
             block = self._open_block(name, group[name])
             self.blocks.append(block)
-            raw = np.frombuffer(self._pread(block.header_offset, block.n_slots * block.width),
+            raw = np.frombuffer(self._read(block, "header", 0, block.n_slots),
                                 dtype=np.uint8).reshape(block.n_slots, block.width)
             filled = np.flatnonzero(raw[:, 0])
             block.used = int(filled[-1]) + 1 if filled.size else 0
@@ -238,8 +280,7 @@ class SlotStore:
     def _headers_of(self, block: _Block) -> list[tuple[int, int, str]]:
         out = []
         for slot in range(block.used):
-            header = _parse_header(self._pread(block.header_offset + slot * block.width,
-                                               block.width))
+            header = _parse_header(self._read(block, "header", slot))
             if header is not None:
                 out.append((slot, int(header["seq"]), header["key"]))
         return out
@@ -261,13 +302,12 @@ class SlotStore:
             written.
         """
         block, slot, _ = self.index[key]
-        header = _parse_header(self._pread(block.header_offset + slot * block.width,
-                                           block.width))
+        header = _parse_header(self._read(block, "header", slot))
         try:
             if header is None or header["key"] != key:
                 raise ValueError("the slot's header is unreadable or names another shot")
             rows = np.frombuffer(
-                self._pread(block.codes_offset + slot * block.row_bytes, block.row_bytes),
+                self._read(block, "codes", slot),
                 dtype=block.dtype).reshape(block.n_channels, block.length)
             described = header["channels"]
             if len(described) != block.n_channels:
@@ -292,28 +332,38 @@ class SlotStore:
                 if k == key:
                     self._pwrite(block.header_offset + slot * block.width, b"\0")
 
-    def write(self, key: str, t_start: float, dt: float,
-              channels: Mapping[str, tuple[np.ndarray, Mapping[str, Any]]],
-              probes: Mapping[str, Any], attrs_json: str, digest: str,
-              dtype: np.dtype) -> None:
-        """Write one shot into the next free slot of a block of its shape (created when
-        there is none): codes first, header last. ``channels``: name → (1-D codes of one
-        common length, scaling dict); ``attrs_json``: canonical JSON of the shot attributes;
-        ``dtype`` from :func:`block_dtype`."""
+    def write(self, key: str, t_start: float, dt: float, channels: Mapping[str, ChannelLike],
+              probes: Mapping[str, ProbeLike], attrs: dict[str, Any], dtype: np.dtype) -> None:
+        """Write one shot (as :meth:`RawRecord.append_shot` takes it) into the next free slot
+        of a block of its shape, created when there is none: codes first, header last.
+        ``channels`` share one length; ``dtype`` from :func:`block_dtype`.
+
+        Raises
+        ------
+        StoreError
+            Bad timing, channel name or codes; a write failure.
+        """
+        check_timing(key, t_start, dt)
+        stored = {name: (checked_codes(key, name, ch), scaling_of(ch))
+                  for name, ch in channels.items()}
+        attrs_json = canonical_json(attrs)
         seq = self._next_seq
         header = with_attrs_json(canonical_json({
             "key": key, "seq": seq, "t_start_s": float(t_start), "dt_s": float(dt),
             "channels": [{"name": name, "dtype": codes.dtype.str, **scaling}
-                         for name, (codes, scaling) in channels.items()],
-            "probes": probes, "content_sha256": digest,
+                         for name, (codes, scaling) in stored.items()],
+            "probes": {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)}
+                       for n, p in probes.items()},
+            "content_sha256": shot_digest(t_start, dt, channels, probes, attrs,
+                                          attrs_json=attrs_json),
         }), attrs_json).encode() + b"\0"
-        length = next(iter(channels.values()))[0].size
+        length = next(iter(stored.values()))[0].size
         block = next((b for b in self.blocks
-                      if b.fits(len(channels), length, dtype, len(header))), None)
+                      if b.fits(len(stored), length, dtype, len(header))), None)
         if block is None:
-            block = self._new_block(len(channels), length, dtype, len(header))
-        rows = np.empty((len(channels), length), dtype=dtype)
-        for r, (codes, _) in enumerate(channels.values()):
+            block = self._new_block(len(stored), length, dtype, len(header))
+        rows = np.empty((len(stored), length), dtype=dtype)
+        for r, (codes, _) in enumerate(stored.values()):
             rows[r] = codes
         slot = block.used
         self._pwrite(block.codes_offset + slot * block.row_bytes, rows.data)
