@@ -45,13 +45,17 @@ def test_uncompressed_shots_go_to_slots_any_hdf5_reader_can_read(tmp_path):
         assert list(f["shots"]) == []  # no shot group
         block = f[SLOTS_GROUP]["b000000"]
         codes, header = block["codes"], block["header"]
-        assert codes.shape == (FIRST_BLOCK_SLOTS, 3, 700) and codes.dtype == np.int16
+        # room for a slightly longer record of the same test point
+        assert codes.shape == (FIRST_BLOCK_SLOTS, 3, 700 + 700 // 16 + 1)
+        assert codes.dtype == np.int16
         text = header[0].tobytes().split(b"\0", 1)[0]
         described = json.loads(text)
         assert described["key"] == "000000" and described["attrs"] == {"serial": "S1"}
+        assert described["points"] == 700
         for row, ch in enumerate(described["channels"]):
             original = channels[ch["name"]]
-            np.testing.assert_array_equal(codes[0, row], original.codes)
+            np.testing.assert_array_equal(codes[0, row, :700], original.codes)
+            assert not codes[0, row, 700:].any()
             assert np.dtype(ch["dtype"]) == original.codes.dtype
             assert ch["gain"] == original.gain
         assert not header[1].any()  # the next slot is empty
@@ -74,7 +78,7 @@ def test_blocks_grow_and_a_reopened_record_continues_in_its_block(tmp_path):
             _same_shot(shot, make_channels(k, 500))
     with h5py.File(path, "r") as f:
         sizes = [f[SLOTS_GROUP][b]["codes"].shape[0] for b in sorted(f[SLOTS_GROUP])]
-    assert sizes == [16, 32, 64]
+    assert sizes == [8, 16, 32]
 
 
 def test_duplicate_replace_and_layout_fallbacks(tmp_path):
@@ -237,3 +241,21 @@ def test_without_positional_io_slots_are_read_through_hdf5_and_shots_go_to_group
         assert list(f["shots"]) == ["000003"]
     with RawRecord(path, "r") as raw:
         assert raw.keys() == [f"{k:06d}" for k in range(4)] and raw.damaged_keys() == []
+
+
+def test_records_of_nearby_lengths_share_a_block(tmp_path):
+    path = tmp_path / "raw.h5"
+    # 1000 makes slots of 1063; 1040 and 990 share them; 760 is below 3/4 of 1063 and makes
+    # slots of 808, shared with 700; 1100 is beyond 1063
+    lengths = [1000, 1040, 990, 760, 700, 1100]
+    with RawRecord(path, "w", compression=None) as raw:
+        for k, n in enumerate(lengths):
+            raw.append_shot(f"s{k}", 0.0, 1e-9, make_channels(k, n), make_probes(), {})
+    with RawRecord(path, "r") as raw:
+        for k, n in enumerate(lengths):
+            _same_shot(raw.read_shot(f"s{k}"), make_channels(k, n))
+    with h5py.File(path, "r") as f:
+        blocks = [f[SLOTS_GROUP][b] for b in sorted(f[SLOTS_GROUP])]
+        assert [b["codes"].shape[2] for b in blocks] == [1063, 808, 1169]
+        used = [sum(1 for row in b["header"][()] if row[0]) for b in blocks]
+    assert used == [3, 2, 1]

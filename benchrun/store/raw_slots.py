@@ -6,8 +6,9 @@ library work per shot, most of it cold-cache work after the idle time of an acqu
 the runner's critical path. An uncompressed record instead keeps its shots in *blocks* of
 slots allocated ahead::
 
-    /slots/<block>/codes    int8 / int16 / uint8 / uint16 dataset (slots, channels, points):
-                            slot s, row r = the codes of channel r of the shot in slot s,
+    /slots/<block>/codes    int8 / int16 / uint8 / uint16 dataset (slots, channels, length):
+                            slot s, row r, the first ``points`` (header) codes = the codes
+                            of channel r of the shot in slot s (zero codes after them),
                             exactly as captured (a narrower signed channel is widened to the
                             block's type, and codes of the other byte order turned, and both
                             given back as captured on reading: the header keeps each type)
@@ -20,7 +21,7 @@ shot is two positional writes into that space at those offsets, codes first, hea
 no HDF5 object is created or changed, HDF5's metadata stays as the block's creation flushed
 it, and any HDF5 reader still sees every slot through the two datasets. The header is::
 
-    {"key": ..., "seq": n, "t_start_s": ..., "dt_s": ...,
+    {"key": ..., "seq": n, "t_start_s": ..., "dt_s": ..., "points": <codes per channel>,
      "channels": [{"name": ..., "dtype": "|i1", "gain": ..., "offset": ...,
                    "code_min": ..., "code_max": ...}, ...],      (row order)
      "probes": {"<channel>": {"scale": ..., "deskew_s": ...}},
@@ -73,8 +74,12 @@ SLOTS_GROUP = "slots"
 MIN_HEADER_BYTES = 4096
 #: Slots of the first block of a shape; each further block of that shape has twice as many,
 #: up to :data:`MAX_BLOCK_SLOTS`.
-FIRST_BLOCK_SLOTS = 16
-MAX_BLOCK_SLOTS = 256
+FIRST_BLOCK_SLOTS = 8
+MAX_BLOCK_SLOTS = 64
+#: A new block's slots are longer than the shot that made it by 1/this (the record length
+#: of a test point changes a little with a corrected first pulse); shots down to 3/4 of the
+#: slot length share the block.
+SLOT_LENGTH_MARGIN = 16
 #: Shot keys and channel names: letters, digits, ``_ . -`` (ASCII: HDF5 link names too).
 KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
 #: Code types a block can hold (little-endian, as the file stores them).
@@ -138,9 +143,14 @@ class _Block:
     def row_bytes(self) -> int:
         return self.n_channels * self.length * self.dtype.itemsize
 
+    def holds(self, n_channels: int, length: int, dtype: np.dtype) -> bool:
+        """Whether shots of this shape go to this block (full or not): the same channels
+        and code type, and a length between 3/4 of the slot length and the slot length."""
+        return (self.n_channels == n_channels and self.dtype == dtype
+                and 4 * length >= 3 * self.length and length <= self.length)
+
     def fits(self, n_channels: int, length: int, dtype: np.dtype, header_bytes: int) -> bool:
-        return (self.used < self.n_slots and self.n_channels == n_channels
-                and self.length == length and self.dtype == dtype
+        return (self.used < self.n_slots and self.holds(n_channels, length, dtype)
                 and header_bytes <= self.width)
 
 
@@ -309,12 +319,15 @@ class SlotStore:
             rows = np.frombuffer(
                 self._read(block, "codes", slot),
                 dtype=block.dtype).reshape(block.n_channels, block.length)
+            points = int(header["points"])
+            if not 0 < points <= block.length:
+                raise ValueError(f"{points} points described, slots hold {block.length}")
             described = header["channels"]
             if len(described) != block.n_channels:
                 raise ValueError(f"{len(described)} channels described, {block.n_channels} "
                                  "stored")
             channels = {
-                ch["name"]: (rows[r].astype(np.dtype(ch["dtype"]), copy=True), ch)
+                ch["name"]: (rows[r, :points].astype(np.dtype(ch["dtype"]), copy=True), ch)
                 for r, ch in enumerate(described)
             }
             return make_shot(key, self.path, float(header["t_start_s"]),
@@ -336,7 +349,9 @@ class SlotStore:
               probes: Mapping[str, ProbeLike], attrs: dict[str, Any], dtype: np.dtype) -> None:
         """Write one shot (as :meth:`RawRecord.append_shot` takes it) into the next free slot
         of a block of its shape, created when there is none: codes first, header last.
-        ``channels`` share one length; ``dtype`` from :func:`block_dtype`.
+        ``channels`` share one length; ``dtype`` from :func:`block_dtype`. A slot longer than
+        the shot is filled up with zero codes (not part of the shot: its header gives its
+        ``points``).
 
         Raises
         ------
@@ -348,8 +363,10 @@ class SlotStore:
                   for name, ch in channels.items()}
         attrs_json = canonical_json(attrs)
         seq = self._next_seq
+        length = next(iter(stored.values()))[0].size
         header = with_attrs_json(canonical_json({
             "key": key, "seq": seq, "t_start_s": float(t_start), "dt_s": float(dt),
+            "points": length,
             "channels": [{"name": name, "dtype": codes.dtype.str, **scaling}
                          for name, (codes, scaling) in stored.items()],
             "probes": {n: {"scale": float(p.scale), "deskew_s": float(p.deskew_s)}
@@ -357,14 +374,13 @@ class SlotStore:
             "content_sha256": shot_digest(t_start, dt, channels, probes, attrs,
                                           attrs_json=attrs_json),
         }), attrs_json).encode() + b"\0"
-        length = next(iter(stored.values()))[0].size
         block = next((b for b in self.blocks
                       if b.fits(len(stored), length, dtype, len(header))), None)
         if block is None:
             block = self._new_block(len(stored), length, dtype, len(header))
-        rows = np.empty((len(stored), length), dtype=dtype)
+        rows = np.zeros((len(stored), block.length), dtype=dtype)
         for r, (codes, _) in enumerate(stored.values()):
-            rows[r] = codes
+            rows[r, :length] = codes
         slot = block.used
         self._pwrite(block.codes_offset + slot * block.row_bytes, rows.data)
         self._pwrite(block.header_offset + slot * block.width, header)  # the shot is now in
@@ -374,9 +390,12 @@ class SlotStore:
 
     def _new_block(self, n_channels: int, length: int, dtype: np.dtype,
                    header_bytes: int) -> _Block:
-        same = [b for b in self.blocks
-                if (b.n_channels, b.length, b.dtype) == (n_channels, length, dtype)]
+        same = [b for b in self.blocks if b.holds(n_channels, length, dtype)]
         n_slots = min(MAX_BLOCK_SLOTS, 2 * same[-1].n_slots) if same else FIRST_BLOCK_SLOTS
+        if same:  # slots as long as the block's it follows
+            length = same[-1].length
+        else:  # room for the record length to grow by a trim correction
+            length += -(-length // SLOT_LENGTH_MARGIN)
         width = max(MIN_HEADER_BYTES, 1 << (2 * header_bytes - 1).bit_length())
         f = self._f
         name = f"b{len(self.blocks):06d}"
