@@ -259,3 +259,20 @@ def test_records_of_nearby_lengths_share_a_block(tmp_path):
         assert [b["codes"].shape[2] for b in blocks] == [1063, 808, 1169]
         used = [sum(1 for row in b["header"][()] if row[0]) for b in blocks]
     assert used == [3, 2, 1]
+
+
+def test_damaged_newest_slot_without_positional_io_is_cleared_through_hdf5(tmp_path, monkeypatch):
+    import os
+
+    path = tmp_path / "raw.h5"
+    _write(path, 2)
+    _clear_codes(path, 1)
+    monkeypatch.delattr(os, "pwrite")
+    with RawRecord(path, "a", compression=None) as raw:  # cleared through HDF5
+        assert raw.keys() == ["000000"]
+        raw.append_shot("000001", 0.0, 1e-9, make_channels(9, 500), make_probes(), {})
+    with h5py.File(path, "r") as f:
+        assert f[SLOTS_GROUP]["b000000"]["header"][1, 0] == 0
+        assert list(f["shots"]) == ["000001"]
+    with RawRecord(path, "r") as raw:  # the shot group now holds the key
+        _same_shot(raw.read_shot("000001"), make_channels(9, 500))

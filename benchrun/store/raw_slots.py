@@ -223,6 +223,18 @@ class SlotStore:
         except OSError as exc:
             raise StoreError(f"cannot write to raw record {self.path}: {exc}") from exc
 
+    def _clear(self, block: _Block, slot: int) -> None:
+        """Empty a slot: the first byte of its header zero (through HDF5 where positional
+        I/O is missing, then flushed)."""
+        if self.direct:
+            self._pwrite(block.header_offset + slot * block.width, b"\0")
+            return
+        try:
+            self._f[SLOTS_GROUP][block.name]["header"][slot, 0] = 0
+            self._f.flush()
+        except (OSError, ValueError, KeyError) as exc:
+            raise StoreError(f"cannot write to raw record {self.path}: {exc}") from exc
+
     # --- loading ----------------------------------------------------------------------------
     def _load(self) -> None:
         group = self._f.get(SLOTS_GROUP)
@@ -279,7 +291,7 @@ class SlotStore:
         log.warning("raw record %s: the newest shot %s does not match its SHA-256 (its data "
                     "did not reach the disk before a power cut?): its slot is cleared and the "
                     "shot counts as not written", self.path, key)
-        self._pwrite(block.header_offset + slot * block.width, b"\0")
+        self._clear(block, slot)
         # an older slot of the same key (written before a replace) is the key's shot again
         older = [(seq, b, s) for b in self.blocks for s, seq, k in self._headers_of(b)
                  if k == key and (b is not block or s != slot)]
@@ -343,7 +355,7 @@ class SlotStore:
         for block in self.blocks:
             for slot, _, k in self._headers_of(block):
                 if k == key:
-                    self._pwrite(block.header_offset + slot * block.width, b"\0")
+                    self._clear(block, slot)
 
     def write(self, key: str, t_start: float, dt: float, channels: Mapping[str, ChannelLike],
               probes: Mapping[str, ProbeLike], attrs: dict[str, Any], dtype: np.dtype) -> None:
