@@ -43,6 +43,7 @@ def test_uncompressed_shots_go_to_slots_any_hdf5_reader_can_read(tmp_path):
     with h5py.File(path, "r") as f:
         assert f.attrs["format_version"] == FORMAT_VERSION == 3
         assert list(f["shots"]) == []  # no shot group
+        assert "content_sha256" in f[SLOTS_GROUP].attrs["description"]  # self-described
         block = f[SLOTS_GROUP]["b000000"]
         codes, header = block["codes"], block["header"]
         # room for a slightly longer record of the same test point

@@ -80,6 +80,16 @@ MAX_BLOCK_SLOTS = 64
 #: of a test point changes a little with a corrected first pulse); shots down to 3/4 of the
 #: slot length share the block.
 SLOT_LENGTH_MARGIN = 16
+#: What the ``/slots`` group holds, stored as its ``description`` attribute for readers
+#: with nothing but an HDF5 tool.
+SLOTS_DESCRIPTION = (
+    "Shots of this benchrun raw record, in blocks <block>/codes (slot, channel row, point) "
+    "and <block>/header (slot, byte). A slot's header is UTF-8 JSON up to its first NUL "
+    "byte (an empty slot starts with NUL): key, seq (write order; the highest seq of a key "
+    "counts), t_start_s, dt_s, points (codes per channel: the first points of each row), "
+    "channels (row order: name, dtype as captured, gain, offset, code_min, code_max), probes "
+    "(scale, deskew_s), attrs, content_sha256. Measured quantity (V or A) = (codes * gain + "
+    "offset) * probe scale.")
 #: Shot keys and channel names: letters, digits, ``_ . -`` (ASCII: HDF5 link names too).
 KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
 #: Code types a block can hold (little-endian, as the file stores them).
@@ -427,6 +437,7 @@ class SlotStore:
             slots = f.get(SLOTS_GROUP)
             if slots is None:
                 slots = f.create_group(SLOTS_GROUP)
+                slots.attrs["description"] = SLOTS_DESCRIPTION
             h5py.h5o.link(group, slots.id, name.encode(), lcpl=_LCPL_ASCII)
             f.flush()
             block = self._open_block(name, slots[name])
