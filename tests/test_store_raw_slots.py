@@ -215,8 +215,8 @@ def test_slot_write_hands_the_shot_to_the_os_at_once(tmp_path):
 @pytest.mark.parametrize("attrs", [{}, {"serial": "S1", "µ": [1.5, None]}])
 def test_attrs_json_spliced_in_equals_canonical_json_of_the_whole(rest, attrs):
     # the reference is canonical_json itself (json.dumps with sorted keys) of the whole object
-    from benchrun.store.canonical import canonical_json
-    from benchrun.store.digests import shot_digest, with_attrs_json
+    from benchrun.store.canonical import canonical_json, with_attrs_json
+    from benchrun.store.digests import shot_digest
 
     assert with_attrs_json(canonical_json(rest), canonical_json(attrs)) == \
         canonical_json({**rest, "attrs": attrs})

@@ -41,3 +41,10 @@ def canonical_json(value: Any) -> str:
         )
     except (TypeError, ValueError) as exc:
         raise StoreError(f"value cannot be stored as JSON: {exc}") from exc
+
+
+def with_attrs_json(text: str, attrs_json: str) -> str:
+    """Canonical JSON of an object with an ``"attrs"`` member added, from the canonical JSON
+    ``text`` of the object without it (whose keys all sort after ``"attrs"``) and that of
+    the member's value: what :func:`canonical_json` of the whole object gives."""
+    return f'{{"attrs":{attrs_json}' + ("," + text[1:] if text != "{}" else "}")

@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from benchrun.errors import StoreError
-from benchrun.store.canonical import canonical_json
+from benchrun.store.canonical import canonical_json, with_attrs_json
 
 if TYPE_CHECKING:
     from benchrun.store.raw import ChannelLike, ProbeLike
@@ -66,13 +66,6 @@ def shot_digest(
         h.update(name.encode() + b"\0")
         h.update(np.ascontiguousarray(codes, dtype=codes.dtype.newbyteorder("<")).tobytes())
     return h.hexdigest()
-
-
-def with_attrs_json(text: str, attrs_json: str) -> str:
-    """Canonical JSON of an object with an ``"attrs"`` member added, from the canonical JSON
-    ``text`` of the object without it (whose keys all sort after ``"attrs"``) and that of
-    the member's value: what :func:`canonical_json` of the whole object gives."""
-    return f'{{"attrs":{attrs_json}' + ("," + text[1:] if text != "{}" else "}")
 
 
 def file_sha256(path: str | os.PathLike[str], chunk_size: int = 1 << 20) -> str:

@@ -22,11 +22,10 @@ datasets), a shot whose channels differ in length, and a shot written channel by
 
 ``channels_json`` maps each channel (dataset) name of the shot to its scaling,
 ``{"<channel>": {"gain": ..., "offset": ..., "code_min": ..., "code_max": ...}}``;
-``probes_json`` maps it to ``{"scale": ..., "deskew_s": ...}``; floats in the JSON read back
-bit-exactly (see :mod:`benchrun.store.canonical`). A slot header holds the same fields
-(:mod:`benchrun.store.raw_slots`). Physical channel volts are
-``codes * gain + offset`` (the scope's own scaling recipe), the physical quantity is channel
-volts times the probe ``scale``; see :mod:`benchrun.analysis.pipeline`. Codes are never
+``probes_json`` maps it to ``{"scale": ..., "deskew_s": ...}`` (a slot header holds the same
+fields); floats in the JSON read back bit-exactly (:mod:`benchrun.store.canonical`). Channel
+volts are ``codes * gain + offset`` (the scope's own scaling recipe), the physical quantity
+is channel volts times the probe ``scale``; see :mod:`benchrun.analysis.pipeline`. Codes are never
 rescaled or resampled before they are stored, so re-analysis of the record reproduces the
 runner's numbers exactly.
 
@@ -41,18 +40,17 @@ shot's content, not from its layout, so it is the same in every format.
 
 Crash safety
 ------------
-A shot in a slot: see :mod:`benchrun.store.raw_slots` (codes first, header last; blocks are
-created as shot groups are). A shot group is written as: group → datasets → attributes →
-``complete = True`` last, then the file is flushed (``H5Fflush``: everything handed to the
-operating system) before :meth:`RawRecord.append_shot` returns. The group is created unlinked
-and flushed before it is linked under ``/shots``: HDF5 may hand a changed link table to the
-operating system before the header of the object it points to, and a ``kill -9`` in between
-would leave a link that cannot be opened, deleted or replaced. A ``kill -9`` at any moment
-therefore loses at most the shot in flight: a group left without the ``complete`` mark (or
-one that cannot be opened) is invisible to :meth:`RawRecord.keys` and is deleted, where HDF5
-can, when the file is next opened for writing. The file uses the earliest HDF5 file format
-(superblock version 0), which has no "file open for writing" status flag, so it reopens
-after a crash without ``h5clear``.
+A slot: codes first, header last (:mod:`benchrun.store.raw_slots`). A shot group: group →
+datasets → attributes → ``complete = True`` last, then the file is flushed (``H5Fflush``:
+everything handed to the operating system) before :meth:`RawRecord.append_shot` returns.
+The group is created unlinked and flushed before it is linked under ``/shots``: HDF5 may
+hand a changed link table to the operating system before the header of the object it points
+to, and a ``kill -9`` in between would leave a link that cannot be opened, deleted or
+replaced. A ``kill -9`` at any moment therefore loses at most the shot in flight: a group
+left without the ``complete`` mark (or one that cannot be opened) is invisible to
+:meth:`RawRecord.keys` and is deleted, where HDF5 can, when the file is next opened for
+writing. The file uses the earliest HDF5 file format (superblock version 0), which has no
+"file open for writing" status flag, so it reopens after a crash without ``h5clear``.
 
 Durability (``durability=``):
 
@@ -110,8 +108,7 @@ if TYPE_CHECKING:
 
 #: Value of the root ``format`` attribute: identifies a benchrun raw record.
 FORMAT_NAME = "benchrun-raw-record"
-#: Layout version of the raw record written by this module (module docstring; 1 and 2 are
-#: read too).
+#: Layout version written by this module (module docstring; formats 1 and 2 are read too).
 FORMAT_VERSION = 3
 
 
@@ -361,8 +358,7 @@ class RawRecord:
         self._sync(wait=wait)
 
     def _sync(self, *, wait: bool) -> None:
-        """With durability ``"power-loss"``: ``fsync`` what the operating system holds (on
-        the background thread with ``wait=False``, see :meth:`flush`)."""
+        """``fsync`` (durability ``"power-loss"`` only; ``wait=False``: see :meth:`flush`)."""
         if self.durability != DURABILITY_POWER_LOSS:
             return
         fd = self._f.id.get_vfd_handle()
@@ -498,8 +494,8 @@ class RawRecord:
             Bad key or data, key already used, read-only record, or a write failure.
         """
         if self.compression is None and self._slots.direct:
-            dtype = block_dtype([np.asarray(ch.codes).dtype for ch in channels.values()])
-            lengths = {np.asarray(ch.codes).size for ch in channels.values()}
+            codes = [np.asarray(ch.codes) for ch in channels.values()]
+            lengths, dtype = {c.size for c in codes}, block_dtype([c.dtype for c in codes])
             if dtype is not None and len(lengths) == 1 and 0 not in lengths:
                 return self._append_to_slot(key, t_start, dt, channels, probes, attrs,
                                             dtype, replace=replace, wait=wait)
@@ -517,10 +513,7 @@ class RawRecord:
         self._require_writable()
         self.wait_durable()  # the previous shot's background sync, if any
         key = _key_of(key)
-        in_group = self._shots.id.links.exists(key.encode())
-        if (key in self._slots or (in_group and _is_complete(self._shots.get(key)))) \
-                and not replace:
-            raise StoreError(f"shot {key} is already in raw record {self.path}")
+        in_group = self._check_free(key, replace=replace)
         if not self._layout_marked:
             self._mark_layout()
         self._slots.write(key, t_start, dt, channels, probes, dict(attrs or {}), dtype)
@@ -548,6 +541,15 @@ class RawRecord:
         from benchrun.store.raw_shot import RawShotBuilder
 
         return RawShotBuilder(self, key, replace=replace)
+
+    def _check_free(self, key: str, *, replace: bool) -> bool:
+        """StoreError when a complete shot (slot or group) holds ``key`` and ``replace`` is
+        False; True when a (complete or dangling) group link holds it."""
+        shots = self._shots
+        in_group = shots.id.links.exists(key.encode())  # without h5py's path walk
+        if not replace and (key in self._slots or (in_group and _is_complete(shots.get(key)))):
+            raise StoreError(f"shot {key} is already in raw record {self.path}")
+        return in_group
 
     def _shot_written(self, key: str) -> None:
         if key.isdigit() and self._next_number is not None:

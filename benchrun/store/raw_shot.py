@@ -43,7 +43,7 @@ class RawShotBuilder:
         self.record = record
         self.key = _raw._key_of(key)
         self.replace = replace
-        self._check_free()
+        record._check_free(self.key, replace=replace)
         self._channels: dict[str, ChannelLike] = {}
         self._finished = False
         try:
@@ -53,17 +53,6 @@ class RawShotBuilder:
             self._group = h5py.h5g.create(record._f.id, None)
         except (OSError, ValueError, TypeError, KeyError) as exc:
             raise StoreError(f"cannot write shot {self.key} to {record.path}: {exc}") from exc
-
-    def _check_free(self) -> bool:
-        """True when a (complete or dangling) link holds the key and may be replaced."""
-        if self.key in self.record._slots and not self.replace:
-            raise StoreError(f"shot {self.key} is already in raw record {self.record.path}")
-        shots = self.record._shots
-        if not shots.id.links.exists(self.key.encode()):  # without h5py's path walk
-            return False
-        if _raw._is_complete(shots.get(self.key)) and not self.replace:
-            raise StoreError(f"shot {self.key} is already in raw record {self.record.path}")
-        return True
 
     def add_channel(self, name: str, channel: ChannelLike) -> None:
         """Write one channel's codes (scaling goes with the shot's attributes at finish)."""
@@ -116,7 +105,7 @@ class RawShotBuilder:
                 "t_start_s": float(t_start), "dt_s": float(dt), "channels_json": channels_json,
                 "probes_json": probes_json, "attrs_json": attrs_json,
                 "content_sha256": digest, "complete": True})  # the mark last
-            if self._check_free():
+            if record._check_free(key, replace=self.replace):
                 del record._shots[key]
             record._f.flush()  # the shot's objects reach the file before the link to them
             # last: the shot is now visible (what ``shots[key] = group`` does)

@@ -57,8 +57,8 @@ import h5py
 import numpy as np
 
 from benchrun.errors import StoreError
-from benchrun.store.canonical import canonical_json
-from benchrun.store.digests import shot_digest, with_attrs_json
+from benchrun.store.canonical import canonical_json, with_attrs_json
+from benchrun.store.digests import shot_digest
 from benchrun.store.h5low import _LCPL_ASCII
 from benchrun.store.raw_read import RawShot, make_shot
 
