@@ -96,9 +96,9 @@ BENCH_PATH = ROOT / "sequences" / "bench-sim.yaml"
 
 def _sequence_text(repeats: int, sample_interval: str) -> str:
     return f"""\
-part: KFR30-12
-lot: L2611-A
-devices: [KFR-2611A-001]
+part: DX-4417
+lot: LT-0117
+devices: [SN0117-001]
 ratings: {{vrrm: 1200 V, if_max: 30 A, tj_max: 150 degC}}
 test_points:
   - bus_voltage: 600 V

@@ -50,7 +50,7 @@ def _row(label: str, wall: list[float], cpu: list[float]) -> str:
 def main() -> None:
     load_before = os.getloadavg()[0]
     catalog = load_virtual_parts()
-    lot = catalog.lot("L2611-A")
+    lot = catalog.lot("LT-0117")
     serials = lot.serials
     fixture = Fixture()
     switch = SwitchModel()

@@ -99,10 +99,10 @@ def bench_db(url: str, shots: int) -> float:
     times = []
     with ResultsStore(url) as store:
         run_id = f"BENCH-{time.time_ns()}"
-        store.create_run(run_id, "KFR30-12", "L2611-A")
+        store.create_run(run_id, "DX-4417", "LT-0117")
         for i in range(shots):
             shot = ShotResult(
-                run_id=run_id, part="KFR30-12", lot="L2611-A", serial=f"S{i:04d}",
+                run_id=run_id, part="DX-4417", lot="LT-0117", serial=f"S{i:04d}",
                 point=TestPoint(0, 298.15, 600.0, 30.0), repeat=0, attempt=0,
                 timestamp="2031-04-02T10:00:00+00:00",
                 conditions={"if_A": 30.01, "didt_A_per_s": 5e8, "vr_V": 600.2,

@@ -26,13 +26,13 @@ def metrics(qrr: float = 2.0e-6, irrm: float = 18.0, trr: float = 180e-9, **extr
 
 
 def shot(serial: str, point: TestPoint, repeat: int = 0, *, attempt: int = 0,
-         valid: bool = True, conditions: dict | None = None, part: str = "KFR30-12",
+         valid: bool = True, conditions: dict | None = None, part: str = "DX-4417",
          acquisition: dict | None = None, **metric_values: float) -> ShotResult:
     measured = {"if_A": point.forward_current_A, "didt_A_per_s": 5e8,
                 "vr_V": point.bus_voltage_V, "temperature_K": point.temperature_K}
     measured.update(conditions or {})
     return ShotResult(
-        run_id="R-TEST", part=part, lot="L2611-A", serial=serial, point=point, repeat=repeat,
+        run_id="R-TEST", part=part, lot="LT-0117", serial=serial, point=point, repeat=repeat,
         attempt=attempt, timestamp=f"2026-01-01T00:00:{repeat:02d}Z", conditions=measured,
         metrics=metrics(**metric_values), flags=() if valid else ("no_event",), valid=valid,
         raw_ref=f"shots/{serial}/{point.index}/{repeat}/{attempt}",
@@ -41,7 +41,7 @@ def shot(serial: str, point: TestPoint, repeat: int = 0, *, attempt: int = 0,
 
 
 LIMITS_YAML = """\
-part: KFR30-12
+part: DX-4417
 conditions:
   - {name: 25C, temperature: 25 degC}
   - {name: 125C, temperature: 125 degC}

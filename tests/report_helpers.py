@@ -22,10 +22,10 @@ from benchrun.store.rundata import default_store_url, write_manifest
 ROOT = Path(__file__).resolve().parents[1]
 PASSPHRASE = "correct horse battery"
 
-#: Limits of the invented KFR30-12 for these synthetic captures (own copy, so changes to the
+#: Limits of the invented DX-4417 for these synthetic captures (own copy, so changes to the
 #: demo limits file do not change what these tests expect).
 LIMITS_YAML = """\
-part: KFR30-12
+part: DX-4417
 conditions:
   - {name: 25C, temperature: 25 degC, forward_current: 30 A, reverse_voltage: 600 V}
   - {name: 125C, temperature: 125 degC, forward_current: 30 A, reverse_voltage: 600 V}
@@ -93,18 +93,18 @@ def build_run(tmp_path: Path, n_devices: int = 4, *, failing: tuple[int, ...] = 
     """A run folder with raw record, results DB, configuration files and run.json."""
     run_dir = tmp_path / run_id
     run_dir.mkdir(parents=True)
-    shutil.copy(ROOT / "sequences" / "kfr30-12-demo.yaml", run_dir / "sequence.yaml")
+    shutil.copy(ROOT / "sequences" / "dx4417-demo.yaml", run_dir / "sequence.yaml")
     shutil.copy(ROOT / "sequences" / "bench-sim.yaml", run_dir / "bench.yaml")
     (run_dir / "limits.yaml").write_text(LIMITS_YAML, encoding="utf-8")
     url = default_store_url(run_dir)
     rng = np.random.default_rng(7)
     with RawRecord(run_dir / "raw.h5", "w") as raw, ResultsStore(url) as store:
-        store.create_run(run_id, "KFR30-12", "L2611-A", manifest={"run_id": run_id})
+        store.create_run(run_id, "DX-4417", "LT-0117", manifest={"run_id": run_id})
         shot_no = 0
         for point in POINTS:
             hot = point.temperature_K > 350
             for d in range(n_devices):
-                serial = f"L2611-A-{d + 1:03d}"
+                serial = f"LT-0117-{d + 1:03d}"
                 irrm = (21.0 if hot else 14.0) * (1 + 0.04 * rng.standard_normal())
                 tau = (55e-9 if hot else 38e-9) * (1 + 0.05 * rng.standard_normal())
                 if d in failing and not hot:
@@ -116,7 +116,7 @@ def build_run(tmp_path: Path, n_devices: int = 4, *, failing: tuple[int, ...] = 
                 ref = raw.append_shot(key, t0, dt, channels, probes,
                                       {"serial": serial, "point": point.index})
                 shot = ShotResult(
-                    run_id=run_id, part="KFR30-12", lot="L2611-A", serial=serial,
+                    run_id=run_id, part="DX-4417", lot="LT-0117", serial=serial,
                     point=point, repeat=0, attempt=0,
                     timestamp=f"2026-11-30T09:{shot_no // 60:02d}:{shot_no % 60:02d}+00:00",
                     conditions={"if_A": metrics["if_A"], "didt_A_per_s": metrics["didt_A_per_s"],
@@ -129,7 +129,7 @@ def build_run(tmp_path: Path, n_devices: int = 4, *, failing: tuple[int, ...] = 
                 store.add_shot(shot)
                 shot_no += 1
     write_manifest(run_dir, {
-        "run_id": run_id, "part": "KFR30-12", "lot": "L2611-A", "status": "finished",
+        "run_id": run_id, "part": "DX-4417", "lot": "LT-0117", "status": "finished",
         "started": "2026-11-30T09:00:00+00:00", "finished": "2026-11-30T09:20:00+00:00",
         "software_version": "0.1.0",
         "instruments": {

@@ -70,8 +70,8 @@ def make_shot(
     )
     return ShotResult(
         run_id=run_id,
-        part="KFR30-12",
-        lot="L2611-A",
+        part="DX-4417",
+        lot="LT-0117",
         serial=serial,
         point=point,
         repeat=repeat,

@@ -12,10 +12,10 @@ from benchrun.errors import ConfigError
 ROOT = Path(__file__).resolve().parents[1]
 
 SEQ = """\
-part: KFR30-12
-lot: L2611-A
+part: DX-4417
+lot: LT-0117
 devices: [A001, A002]
-limits: ../limits/KFR30-12.yaml
+limits: ../limits/DX-4417.yaml
 test_points:
   - bus_voltage: 600 V
     forward_current: 30 A
@@ -59,7 +59,7 @@ def test_quantities(tmp_path):
 def test_limits_path_relative_to_sequence(tmp_path):
     path = write(tmp_path, SEQ)
     seq = load_sequence(path)
-    assert limits_path(seq, path) == (tmp_path / "../limits/KFR30-12.yaml").resolve()
+    assert limits_path(seq, path) == (tmp_path / "../limits/DX-4417.yaml").resolve()
 
 
 def test_needs_gate_resistance_or_didt(tmp_path):
@@ -83,7 +83,7 @@ def test_didt_target_accepted(tmp_path):
         ("repeats: 3", "repeats: 0", "test_points.0.repeats"),
         ("forward_current: 5 %", "forward_current: 150 %", "tolerances.forward_current"),
         ("temperature: 2 degC", "temperature: 2 A", "tolerances.temperature"),
-        ("lot: L2611-A", "lot: L2611-A\nlott: x", "lott"),
+        ("lot: LT-0117", "lot: LT-0117\nlott: x", "lott"),
         ("devices: [A001, A002]", "devices: [A001, A001]", "devices"),
     ],
 )

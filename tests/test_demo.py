@@ -17,15 +17,15 @@ def test_demo_end_to_end(tmp_path, capsys):
     text = capsys.readouterr().out
     # two lifetime outliers among ten devices: the lot is rejected because of them alone
     assert "disposition REJECT" in text
-    verdicts = dict(re.findall(r"^\s+(KFR-2611A-\d{3})\s+(\S+)$", text, re.MULTILINE))
+    verdicts = dict(re.findall(r"^\s+(SN0117-\d{3})\s+(\S+)$", text, re.MULTILINE))
     assert len(verdicts) == 10
-    assert verdicts["KFR-2611A-004"] == "non-conforming"
-    assert verdicts["KFR-2611A-009"] == "non-conforming"
+    assert verdicts["SN0117-004"] == "non-conforming"
+    assert verdicts["SN0117-009"] == "non-conforming"
     assert sum(v == "conforming" for v in verdicts.values()) >= 7
 
     runs = sorted((out / "runs").iterdir())
-    assert len(runs) == 2  # the KFR30-12 lot and the KSC20-12 lot
-    si = next(r for r in runs if r.name.startswith("L2611-A"))
+    assert len(runs) == 2  # the DX-4417 lot and the DX-5203 lot
+    si = next(r for r in runs if r.name.startswith("LT-0117"))
     manifest = json.loads((si / "run.json").read_text())
     assert manifest["status"] == "complete" and manifest["safe_state"]["reached"]
     for name in ("raw.h5", "results.db", "run.log", "report.pdf", "limits.yaml"):
@@ -41,7 +41,7 @@ def test_demo_end_to_end(tmp_path, capsys):
     # recovery loss is far below the silicon fast-recovery diode's at the same conditions
     # (device physics textbooks, e.g. Baliga, Fundamentals of Power Semiconductor Devices,
     # on Schottky rectifiers; "from memory" as to the exact ratio, only the order is checked)
-    rows = re.findall(r"KSC20-12 vs KFR30-12 at .*?: ([\d.]+) uJ vs ([\d.]+) uJ", text)
+    rows = re.findall(r"DX-5203 vs DX-4417 at .*?: ([\d.]+) uJ vs ([\d.]+) uJ", text)
     assert rows
     for sic, si_energy in rows:
         assert float(sic) < 0.5 * float(si_energy)

@@ -178,8 +178,8 @@ def test_to_dict_is_json_safe_and_independent_of_shot_order(limits):
 
 
 def test_limits_of_another_part_cannot_grade(limits):
-    with pytest.raises(GradingError, match="KSC20-12"):
-        grade_lot([shot("S1", COLD, 0, part="KSC20-12")], limits)
+    with pytest.raises(GradingError, match="DX-5203"):
+        grade_lot([shot("S1", COLD, 0, part="DX-5203")], limits)
 
 
 def test_a_condition_matching_two_test_points_is_an_error(limits):
@@ -196,10 +196,10 @@ def _run_folder(tmp_path, limits_text):
     run_dir = tmp_path / "R-TEST"
     run_dir.mkdir()
     store = ResultsStore(f"sqlite:///{run_dir / 'results.db'}")
-    store.create_run("R-TEST", "KFR30-12", "L2611-A", {"run_id": "R-TEST"})
+    store.create_run("R-TEST", "DX-4417", "LT-0117", {"run_id": "R-TEST"})
     for item in _lot():
         store.add_shot(item)
-    write_manifest(run_dir, {"run_id": "R-TEST", "part": "KFR30-12", "lot": "L2611-A"})
+    write_manifest(run_dir, {"run_id": "R-TEST", "part": "DX-4417", "lot": "LT-0117"})
     (run_dir / "limits.yaml").write_text(limits_text.replace("RULE", "guarded"))
     return run_dir
 

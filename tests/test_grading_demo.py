@@ -1,7 +1,7 @@
 """The demo limits against the simulated demo lot: physics → analysis → grading.
 
-The virtual lot L2611-A (invented demo data) holds two lifetime-control outliers
-(KFR-2611A-004: τ × 1.5, KFR-2611A-009: τ × 1.9). Stored charge grows with the carrier
+The virtual lot LT-0117 (invented demo data) holds two lifetime-control outliers
+(SN0117-004: τ × 1.5, SN0117-009: τ × 1.9). Stored charge grows with the carrier
 lifetime (Qrr ≈ τ·IF for a slow commutation, Lauritzen & Ma 1991), so with the demo limits
 those two must come out non-conforming and the nominal devices conforming; c = 0 rejects
 the lot. This ties the example limits to the simulated parts; a change to either that
@@ -18,7 +18,7 @@ from benchrun.grading import grade_lot, load_limits
 from benchrun.records import ShotResult, TestPoint
 
 ROOT = Path(__file__).resolve().parents[1]
-SERIALS = ("KFR-2611A-001", "KFR-2611A-003", "KFR-2611A-004", "KFR-2611A-009")
+SERIALS = ("SN0117-001", "SN0117-003", "SN0117-004", "SN0117-009")
 
 
 def _shots() -> list[ShotResult]:
@@ -32,7 +32,7 @@ def _shots() -> list[ShotResult]:
         simulate_double_pulse,
     )
 
-    lot = load_virtual_parts().lot("L2611-A")
+    lot = load_virtual_parts().lot("LT-0117")
     fixture = Fixture(stray_inductance_H=40e-9, bus_capacitance_F=100e-6)  # bench-sim.yaml
     switch = SwitchModel(gate_resistance_ohm=10.0)
     timing = PulseTiming(first_pulse_for_current(fixture, 600.0, 30.0), 3e-6, 2e-6, post_s=2e-6)
@@ -46,7 +46,7 @@ def _shots() -> list[ShotResult]:
             metrics = analyze_recovery(waves.t, waves.v_diode, waves.i_diode)
             values = {k: v for k, v in metrics.to_dict().items() if k != "flags"}
             shots.append(ShotResult(
-                run_id="R-DEMO", part="KFR30-12", lot="L2611-A", serial=serial, point=point,
+                run_id="R-DEMO", part="DX-4417", lot="LT-0117", serial=serial, point=point,
                 repeat=0, attempt=0, timestamp="2026-01-01T00:00:00Z",
                 conditions={"if_A": values["if_A"], "didt_A_per_s": values["didt_A_per_s"],
                             "vr_V": values["vr_V"], "temperature_K": temperature},
@@ -60,16 +60,16 @@ def _shots() -> list[ShotResult]:
 
 @pytest.mark.slow
 def test_demo_lot_grades_and_disposition():
-    lot = grade_lot(_shots(), load_limits(ROOT / "limits" / "KFR30-12.yaml"))
+    lot = grade_lot(_shots(), load_limits(ROOT / "limits" / "DX-4417.yaml"))
     verdicts = {d.serial: d.verdict for d in lot.devices}
-    assert verdicts["KFR-2611A-001"] == "conforming"
-    assert verdicts["KFR-2611A-003"] == "conforming"
-    assert verdicts["KFR-2611A-004"] == "non-conforming"
-    assert verdicts["KFR-2611A-009"] == "non-conforming"
+    assert verdicts["SN0117-001"] == "conforming"
+    assert verdicts["SN0117-003"] == "conforming"
+    assert verdicts["SN0117-004"] == "non-conforming"
+    assert verdicts["SN0117-009"] == "non-conforming"
     assert lot.disposition == "reject"
-    worst_offender = lot.device("KFR-2611A-009").grade("qrr_C", "125C")
+    worst_offender = lot.device("SN0117-009").grade("qrr_C", "125C")
     assert worst_offender.outcome == "non-conforming"
-    assert "qrr_C at 125C" in " ".join(lot.device("KFR-2611A-009").reasons)
+    assert "qrr_C at 125C" in " ".join(lot.device("SN0117-009").reasons)
     ratio = next(r for r in lot.statistics.ratios if r.metric == "qrr_C")
     assert 1.5 < ratio.mean < 3.5  # Qrr grows with temperature through τ(T) (DESIGN.md §4)
-    assert lot.device("KFR-2611A-001").bin is not None
+    assert lot.device("SN0117-001").bin is not None

@@ -57,7 +57,7 @@ def test_every_formatted_command_is_matched_back_with_the_same_values(family):
     samples = {"channel": 3, "range": 800.0, "offset": -200.0, "factor": 100.0, "state": True,
                "interval": 5e-10, "points": 20000, "t_start": -1e-6, "level": 7.5,
                "slope": "falling", "count": 2, "width": 1e-5, "gap": 5e-6, "ohm": 10.0,
-               "volts": 600.0, "amps": 1.0, "kelvin": 398.15, "serial": "KFR-2611A-001"}
+               "volts": 600.0, "amps": 1.0, "kelvin": 398.15, "serial": "SN0117-001"}
     for name, spec in table.commands.items():
         inputs = {k: v for k, v in samples.items()}
         text = table.format(name, **inputs)

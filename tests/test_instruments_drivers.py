@@ -171,8 +171,8 @@ def test_supply_thermal_handler_strings():
     session = RecordingSession(answers={"MEASure:VOLTage?": "599.8", "OUTPut?": "1",
                                         "MEASure:TEMPerature?": "125.02",
                                         "SOURce:TEMPerature?": "125",
-                                        "DEVice:LIST?": "KFR-2611A-001,KFR-2611A-002",
-                                        "DEVice:SELect?": "KFR-2611A-002"})
+                                        "DEVice:LIST?": "SN0117-001,SN0117-002",
+                                        "DEVice:SELect?": "SN0117-002"})
     supply = BusSupply(session, "supply-generic")
     supply.set_current_limit(1.0)
     supply.set_voltage(600)
@@ -185,15 +185,15 @@ def test_supply_thermal_handler_strings():
     assert thermal.setpoint() == pytest.approx(398.15)
     thermal.output(False)
     handler = Handler(session, "handler-generic")
-    assert handler.list_devices() == ["KFR-2611A-001", "KFR-2611A-002"]
-    handler.select("KFR-2611A-002")
-    assert handler.selected() == "KFR-2611A-002"
+    assert handler.list_devices() == ["SN0117-001", "SN0117-002"]
+    handler.select("SN0117-002")
+    assert handler.selected() == "SN0117-002"
     assert session.sent == [
         "SOURce:CURRent 1", "SYSTem:ERRor?", "SOURce:VOLTage 600", "SYSTem:ERRor?",
         "OUTPut 1", "SYSTem:ERRor?", "MEASure:VOLTage?", "OUTPut?",
         "SOURce:TEMPerature 125", "SYSTem:ERRor?", "MEASure:TEMPerature?",
         "SOURce:TEMPerature?", "OUTPut 0",
-        "DEVice:LIST?", "DEVice:SELect KFR-2611A-002", "SYSTem:ERRor?", "DEVice:SELect?",
+        "DEVice:LIST?", "DEVice:SELect SN0117-002", "SYSTem:ERRor?", "DEVice:SELect?",
     ]
 
 

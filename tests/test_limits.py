@@ -13,7 +13,7 @@ from benchrun.errors import ConfigError
 ROOT = Path(__file__).resolve().parents[1]
 
 
-@pytest.mark.parametrize("name", ["KFR30-12.yaml", "KSC20-12.yaml"])
+@pytest.mark.parametrize("name", ["DX-4417.yaml", "DX-5203.yaml"])
 def test_example_limits_load(name):
     spec = load_limits(ROOT / "limits" / name)
     assert spec.part == name.removesuffix(".yaml")

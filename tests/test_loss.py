@@ -18,7 +18,7 @@ from benchrun.records import ShotResult, TestPoint
 T25, T125 = 298.15, 398.15
 
 
-def shot(serial="S1", *, part="KFR30-12", lot="L2611-A", temp=T25, vr=600.0, i_f=30.0,
+def shot(serial="S1", *, part="DX-4417", lot="LT-0117", temp=T25, vr=600.0, i_f=30.0,
          err=100e-6, rec=400e-6, est=350e-6, valid=True, repeat=0, extra=None) -> ShotResult:
     metrics = {"err_J": err, "eon_recovery_J": rec, "eon_recovery_estimate_J": est,
                "qrr_C": 1e-6, "vr_V": vr}
@@ -96,7 +96,7 @@ def test_bad_frequencies():
 
 
 def _sic(**kw):
-    return shot(part="KSC20-12", lot="L2611-S", err=5e-6, rec=40e-6, **kw)
+    return shot(part="DX-5203", lot="LT-0131", err=5e-6, rec=40e-6, **kw)
 
 
 def test_compare_saving_at_matching_condition():

@@ -33,8 +33,8 @@ def _store(path, run_id, part, lot, err, rec):
 
 @pytest.fixture()
 def stores(tmp_path):
-    si = _store(tmp_path / "si.db", "R-SI", "KFR30-12", "L2611-A", 500e-6, 1000e-6)
-    sic = _store(tmp_path / "sic.db", "R-SIC", "KSC20-12", "L2611-S", 20e-6, 130e-6)
+    si = _store(tmp_path / "si.db", "R-SI", "DX-4417", "LT-0117", 500e-6, 1000e-6)
+    sic = _store(tmp_path / "sic.db", "R-SIC", "DX-5203", "LT-0131", 20e-6, 130e-6)
     return si, sic
 
 
@@ -58,7 +58,7 @@ def test_text_output(stores, capsys):
     si, sic = stores
     assert main(["loss", si, "--fsw", "20kHz", "--compare", sic]) == 0
     out = capsys.readouterr().out
-    assert "KFR30-12   lot L2611-A" in out
+    assert "DX-4417   lot LT-0117" in out
     assert "30 W" in out  # 1.5 mJ × 20 kHz
     assert "-27 W" in out  # the silicon part loses more than the SiC reference
 

@@ -20,7 +20,7 @@ from benchrun.report.loss_section import ASSUMPTIONS, loss_flowables
 
 def _shot(serial, temp, err, rec, est=None):
     return ShotResult(
-        run_id="R-1", part="KFR30-12", lot="L2611-A", serial=serial,
+        run_id="R-1", part="DX-4417", lot="LT-0117", serial=serial,
         point=TestPoint(index=0, temperature_K=temp, bus_voltage_V=600.0,
                         forward_current_A=30.0),
         repeat=0, attempt=0, timestamp="2031-01-01T00:00:00Z",
@@ -49,7 +49,7 @@ def test_section_text_in_pdf(tmp_path):
     text = subprocess.run(["pdftotext", "-layout", str(pdf), "-"], capture_output=True,
                           text=True, timeout=30, check=True).stdout
     flat = " ".join(text.split())
-    assert "KFR30-12, lot L2611-A" in flat
+    assert "DX-4417, lot LT-0117" in flat
     assert "20 kHz" in flat and "50 kHz" in flat
     # 25 °C group: E mean = (1.5 mJ + 1.62 mJ)/2 = 1.56 mJ → 31.2 W at 20 kHz, 78 W at 50 kHz
     assert "1.56 mJ" in flat and "31.2 W" in flat and "78 W" in flat

@@ -31,7 +31,7 @@ def test_report_command_signs_a_report_that_verifies(tmp_path, identity, monkeyp
     assert code == 0
     # device 2 is above its Irrm limit at 25 °C (report_helpers) → the lot is rejected
     assert "disposition REJECT" in out
-    assert "L2611-A-002" in out
+    assert "LT-0117-002" in out
     pdf = run_dir / "report.pdf"
     result = verify_report(pdf, cert=identity.cert_path)
     assert result.ok, [c.to_dict() for c in result.checks]
@@ -68,7 +68,7 @@ def test_run_loads_the_signer_before_anything_fires(tmp_path, identity, monkeypa
 
     monkeypatch.setenv(PASSPHRASE_ENV, "not the passphrase")
     out = tmp_path / "runs"
-    code = main(["run", str(ROOT / "sequences" / "ksc20-12-demo.yaml"),
+    code = main(["run", str(ROOT / "sequences" / "dx5203-demo.yaml"),
                  "--bench", str(ROOT / "sequences" / "bench-sim.yaml"), "--out", str(out),
                  "--no-progress", "--sign-key", str(identity.key_path),
                  "--sign-cert", str(identity.cert_path)])

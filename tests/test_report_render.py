@@ -54,7 +54,7 @@ def test_text_shows_disposition_every_serial_and_page_numbers(signed_run):  # no
     pages = int(re.search(r"Pages:\s+(\d+)", _run("pdfinfo", str(signed_run.pdf)).stdout)[1])
     for n in range(1, pages + 1):
         assert f"Page {n} of {pages}" in text
-    for words in ("Korvane Power Components", "KFR30-12", "L2611-A", "Q. Ashdown",
+    for words in ("Korvane Power Components", "DX-4417", "LT-0117", "Q. Ashdown",
                   "Quality Engineer", "High voltage and stored energy can kill",
                   "What this report certifies", "Manifest (SHA-256)", "Calibration due",
                   "2027-06-30", "Guarded acceptance", "Uncertainty budget"):
@@ -63,7 +63,7 @@ def test_text_shows_disposition_every_serial_and_page_numbers(signed_run):  # no
 
 def test_device_table_repeats_its_header_on_every_page(signed_run):  # noqa: F811
     pages = _run("pdftotext", "-layout", str(signed_run.pdf), "-").stdout.split("\f")
-    table_pages = [p for p in pages if "L2611-A-0" in p and "Verdict" in p and "Bin" in p]
+    table_pages = [p for p in pages if "LT-0117-0" in p and "Verdict" in p and "Bin" in p]
     assert len(table_pages) >= 2  # 60 rows do not fit one landscape page
     for page in table_pages:
         assert re.search(r"Serial\s+Condition\s+trr\s+Qrr", page)

@@ -58,10 +58,10 @@ def test_progress_shows_device_temperature_and_count():
     buffer = io.StringIO()
     console = Console(file=buffer, force_terminal=True, width=120)
     with RunProgress(4, 1, console=console) as progress:
-        progress.shooting("KFR-2611A-007", 398.15, "nominal #2")
+        progress.shooting("SN0117-007", 398.15, "nominal #2")
         progress.advance()
     text = buffer.getvalue()
-    assert "KFR-2611A-007" in text and "125.0 °C" in text and "2/4" in text
+    assert "SN0117-007" in text and "125.0 °C" in text and "2/4" in text
 
 
 def test_run_log_file(tmp_path):

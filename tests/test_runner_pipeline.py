@@ -44,7 +44,7 @@ def _run(tmp_path, seq, **extra):
 def test_every_shot_is_in_the_db_before_the_next_fires(tmp_path, monkeypatch):
     from benchrun.runner.writer import ShotWriter
 
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001, KFR-2611A-002]",
+    seq = write_sequence(tmp_path, devices="[SN0117-001, SN0117-002]",
                          temperatures="[25 degC]", repeats=3)
     out = tmp_path / "out"
     tickets = []
@@ -114,7 +114,7 @@ def test_invalid_shots_are_retried_while_later_shots_are_in_flight(tmp_path, mon
         return original(self, timing, gate_resistance_ohm)
 
     monkeypatch.setattr(server_module.SimulatedBench, "fire", fire)
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
+    seq = write_sequence(tmp_path, devices="[SN0117-001]", temperatures="[25 degC]",
                          repeats=3)
     outcome, _ = _run(tmp_path, seq)
     assert outcome.status == "complete"
@@ -138,7 +138,7 @@ class Crash(BaseException):
 
 @pytest.mark.slow
 def test_shot_stored_before_its_analysis_is_completed_on_resume(tmp_path, monkeypatch):
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
+    seq = write_sequence(tmp_path, devices="[SN0117-001]", temperatures="[25 degC]",
                          repeats=3)
     out = tmp_path / "out"
     with simulated_bench(load_bench(BENCH), load_sequence(seq)) as sim:
@@ -179,7 +179,7 @@ def test_device_swapped_behind_the_runner_is_never_recorded_under_the_wrong_seri
     # handler moved on its own (here: the simulated handler is told another serial is in the
     # fixture) must be caught at the next shot: that capture is dropped, the device selected
     # again and the shot fired again, so nothing is recorded under the wrong serial
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
+    seq = write_sequence(tmp_path, devices="[SN0117-001]", temperatures="[25 degC]",
                          repeats=3)
     sequence = load_sequence(seq)
     with simulated_bench(load_bench(BENCH), sequence) as sim:
@@ -188,7 +188,7 @@ def test_device_swapped_behind_the_runner_is_never_recorded_under_the_wrong_seri
         def swap(result):
             count["n"] += 1
             if count["n"] == 1:
-                sim.bench.handler.selected = "KFR-2611A-002"
+                sim.bench.handler.selected = "SN0117-002"
 
         options = RunOptions(out_dir=tmp_path / "out", sim_resources=sim.resources,
                              clock=sim.clock, ratings_lookup=sim.ratings, show_progress=False,
@@ -197,7 +197,7 @@ def test_device_swapped_behind_the_runner_is_never_recorded_under_the_wrong_seri
         fired = [c.serial for c in sim.bench.shots if c.off_time_s > 0]
     assert outcome.status == "complete" and count["n"] == 3
     # one double-pulse shot hit the swapped device; it was not stored
-    assert fired.count("KFR-2611A-002") == 1 and len(fired) == 4
+    assert fired.count("SN0117-002") == 1 and len(fired) == 4
     run = load_run(outcome.run_dir)
     assert sorted(s.repeat for s in run.shots) == [0, 1, 2] and all(s.valid for s in run.shots)
     with RawRecord(outcome.run_dir / "raw.h5", "r") as raw:
@@ -212,7 +212,7 @@ def test_durability_is_chosen_on_the_command_line_and_recorded(tmp_path, capsys)
     from benchrun.store.raw import DURABILITY_MODES
 
     assert DURABILITY_CHOICES == DURABILITY_MODES
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]")
+    seq = write_sequence(tmp_path, devices="[SN0117-001]", temperatures="[25 degC]")
     out = tmp_path / "runs"
     code = cli.main(["run", str(seq), "--bench", str(BENCH), "--out", str(out),
                      "--durability", "process", "--no-progress"])
@@ -235,7 +235,7 @@ def test_row_recorded_beside_a_raw_entry_that_never_landed_is_discarded_on_resum
     # per shot)
     from benchrun.store.raw_slots import SlotStore
 
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
+    seq = write_sequence(tmp_path, devices="[SN0117-001]", temperatures="[25 degC]",
                          repeats=3)
     out = tmp_path / "out"
     with simulated_bench(load_bench(BENCH), load_sequence(seq)) as sim:

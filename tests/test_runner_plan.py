@@ -32,7 +32,7 @@ def bench():
 
 @pytest.fixture(scope="module")
 def sequence():
-    return load_sequence(ROOT / "sequences" / "kfr30-12-demo.yaml")
+    return load_sequence(ROOT / "sequences" / "dx4417-demo.yaml")
 
 
 def test_lossless_pulse_width_textbook():
@@ -136,7 +136,7 @@ def test_points_and_firing_order(sequence):
 
 
 def test_temperatures_grouped_across_points(tmp_path):
-    text = (ROOT / "sequences" / "kfr30-12-demo.yaml").read_text()
+    text = (ROOT / "sequences" / "dx4417-demo.yaml").read_text()
     text = text.replace("test_points:\n", "test_points:\n  - bus_voltage: 400 V\n"
                         "    forward_current: 15 A\n    temperatures: [125 degC]\n"
                         "    gate_resistance: 22 ohm\n")

@@ -22,7 +22,7 @@ from benchrun.store.raw import RawRecord
 from benchrun.store.results import ResultsStore
 from benchrun.store.rundata import load_run
 
-DEVICES = "[KFR-2611A-001, KFR-2611A-002, KFR-2611A-003, KFR-2611A-004]"
+DEVICES = "[SN0117-001, SN0117-002, SN0117-003, SN0117-004]"
 
 
 #: The stored shot after which a run that is to be killed holds still (see held_cli).
@@ -144,7 +144,7 @@ class Crash(BaseException):
 
 @pytest.mark.slow
 def test_shot_in_raw_record_only_is_recovered_not_refired(tmp_path, monkeypatch):
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001, KFR-2611A-002]",
+    seq = write_sequence(tmp_path, devices="[SN0117-001, SN0117-002]",
                          temperatures="[25 degC]", repeats=2)
     out = tmp_path / "runs"
     with simulated_bench(load_bench(BENCH), load_sequence(seq)) as sim:

@@ -45,7 +45,7 @@ def test_steady_shots_send_no_settings_and_a_reconnect_sends_them_again(tmp_path
     for name in ("write", "query", "query_block"):
         monkeypatch.setattr(cls, name, recorder(name))
 
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
+    seq = write_sequence(tmp_path, devices="[SN0117-001]", temperatures="[25 degC]",
                          repeats=6)
     seq.write_text(seq.read_text().replace("shot_spacing: 0.02 s", "shot_spacing: 0 s"))
     marks: list[int] = []  # index into `sent` when each shot was stored

@@ -79,8 +79,8 @@ def test_outlier_shows_more_stored_charge_and_heat_raises_it(two_temperature_run
                   and abs(s.point.temperature_K - 273.15 - celsius) < 1]
         return float(np.mean(values))
 
-    assert qrr("KFR-2611A-004", 25) > 1.2 * qrr("KFR-2611A-001", 25)
-    assert qrr("KFR-2611A-001", 125) > 1.3 * qrr("KFR-2611A-001", 25)
+    assert qrr("SN0117-004", 25) > 1.2 * qrr("SN0117-001", 25)
+    assert qrr("SN0117-001", 125) > 1.3 * qrr("SN0117-001", 25)
 
 
 @pytest.mark.slow
@@ -148,7 +148,7 @@ def test_unsafe_setting_refused_before_energising(tmp_path):
 def test_overdue_calibration_refused_then_overridden_and_recorded(tmp_path):
     import datetime as dt
 
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-002]", temperatures="[25 degC]")
+    seq = write_sequence(tmp_path, devices="[SN0117-002]", temperatures="[25 degC]")
     late = dt.date(2031, 1, 2)  # bench-sim.yaml instruments are due 2030-12-31
     with pytest.raises(CalibrationOverdue, match="overdue"):
         run_sim(seq, tmp_path / "out", today=late)
@@ -163,7 +163,7 @@ def test_overdue_calibration_refused_then_overridden_and_recorded(tmp_path):
 def test_low_voltage_trim_hits_the_current(tmp_path):
     # trim shots at 100 V with the test's t1 (six times less stored energy), then the
     # inductance found there sets t1 for 600 V: the RL model of DESIGN §4 carries over
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-003]", temperatures="[25 degC]",
+    seq = write_sequence(tmp_path, devices="[SN0117-003]", temperatures="[25 degC]",
                          extra="trim: {mode: low_voltage, bus_voltage: 100 V, tolerance: 2 %}\n")
     outcome, state = run_sim(seq, tmp_path / "out")
     assert outcome.status == "complete" and outcome.trim_shots >= 1
@@ -175,7 +175,7 @@ def test_low_voltage_trim_hits_the_current(tmp_path):
 
 @pytest.mark.slow
 def test_results_in_another_database(tmp_path):
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-005]", temperatures="[25 degC]")
+    seq = write_sequence(tmp_path, devices="[SN0117-005]", temperatures="[25 degC]")
     url = f"sqlite:///{tmp_path / 'shared.db'}"
     outcome, _ = run_sim(seq, tmp_path / "out", db_url=url)
     assert not (outcome.run_dir / "results.db").exists()
@@ -196,7 +196,7 @@ def test_bleeder_failure_is_reported_loudly(tmp_path, monkeypatch):
     real = simbench.sim_fixture
     monkeypatch.setattr(simbench, "sim_fixture", lambda bench: dataclasses.replace(
         real(bench), bleeder_resistance_ohm=20e6))
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-005]", temperatures="[25 degC]")
+    seq = write_sequence(tmp_path, devices="[SN0117-005]", temperatures="[25 degC]")
     with pytest.raises(SafetyError, match="DANGER"):
         run_sim(seq, tmp_path / "out")
     run_dir = next((tmp_path / "out").iterdir())

@@ -6,16 +6,16 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCH = ROOT / "sequences" / "bench-sim.yaml"
-LIMITS = ROOT / "limits" / "KFR30-12.yaml"
+LIMITS = ROOT / "limits" / "DX-4417.yaml"
 
 
-def write_sequence(folder: Path, *, devices: str = "[KFR-2611A-001, KFR-2611A-004]",
+def write_sequence(folder: Path, *, devices: str = "[SN0117-001, SN0117-004]",
                    temperatures: str = "[25 degC, 125 degC]", repeats: int = 1,
                    extra: str = "", name: str = "seq.yaml") -> Path:
-    """A short KFR30-12 sequence (demo conditions) with thermal waits kept small."""
+    """A short DX-4417 sequence (demo conditions) with thermal waits kept small."""
     text = f"""\
-part: KFR30-12
-lot: L2611-A
+part: DX-4417
+lot: LT-0117
 devices: {devices}
 limits: {LIMITS}
 test_points:

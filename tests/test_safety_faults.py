@@ -24,7 +24,7 @@ TRIGGER_WAIT_S = 30.0
 
 
 def run_with_fault(tmp_path, role, apply, *, temperatures="[25 degC]", thermal="",
-                   devices="[KFR-2611A-001]", scope_timeout=None,
+                   devices="[SN0117-001]", scope_timeout=None,
                    trigger_timeout_s=TRIGGER_WAIT_S, repeats=3):
     """Run a short sequence; ``apply`` switches the fault on after the first stored shot.
 
@@ -120,7 +120,7 @@ def test_safe_state_sends_a_lost_off_command_again(tmp_path):
         # two devices: the handler is needed to change the device whatever the station
         # remembers about the one in the fixture
         ("handler", lambda f: f.set(drop_connections=-1), "connection",
-         {"devices": "[KFR-2611A-001, KFR-2611A-002]"}),
+         {"devices": "[SN0117-001, SN0117-002]"}),
     ],
     ids=["no-trigger", "garbled-header", "truncated-block", "late-answers", "handler-gone"],
 )
@@ -140,7 +140,7 @@ def test_thermal_controller_that_never_settles(tmp_path):
         switches.set(thermal_no_settle=True)
 
     thermal = "thermal: {band: 1 K, dwell: 30 s, soak: 10 s, timeout: 600 s, poll_interval: 5 s}"
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC, 125 degC]",
+    seq = write_sequence(tmp_path, devices="[SN0117-001]", temperatures="[25 degC, 125 degC]",
                          repeats=1)
     seq.write_text("\n".join(thermal if line.startswith("thermal:") else line
                              for line in seq.read_text().splitlines()) + "\n")
@@ -164,7 +164,7 @@ def test_ctrl_c_mid_run(tmp_path):
     def interrupt(result):
         raise KeyboardInterrupt
 
-    seq = write_sequence(tmp_path, devices="[KFR-2611A-001]", temperatures="[25 degC]",
+    seq = write_sequence(tmp_path, devices="[SN0117-001]", temperatures="[25 degC]",
                          repeats=3)
     sequence = load_sequence(seq)
     bench_path = write_bench(tmp_path)

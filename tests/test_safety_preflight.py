@@ -32,7 +32,7 @@ def bench():
 
 @pytest.fixture(scope="module")
 def sequence():
-    return load_sequence(ROOT / "sequences" / "kfr30-12-demo.yaml")
+    return load_sequence(ROOT / "sequences" / "dx4417-demo.yaml")
 
 
 def point(**kw):

@@ -144,7 +144,7 @@ def test_schottky_charge_equals_integral_of_capacitance():
 
 def test_schottky_qc_of_catalogue_part_in_range():
     # datasheet-typical Qc of a 1200 V / 20 A SiC Schottky at 600 V: 50-120 nC (from memory)
-    part = load_virtual_parts().part("KSC20-12")
+    part = load_virtual_parts().part("DX-5203")
     d = part.nominal_model()
     qc = depletion_charge_closed(d.cj0_F, d.vj_V, d.m, 600.0)
     assert 50e-9 < qc < 120e-9
@@ -218,7 +218,7 @@ def test_didt_follows_gate_resistance_model():
 def test_catalogue_silicon_part_is_realistic():
     # target ranges for a 1200 V / 30 A fast-recovery diode at 600 V, 30 A, ~500 A/µs, 25 °C
     # (datasheet-typical, from memory): Irrm 15-30 A, Qrr 1-4 µC; markedly higher at 125 °C
-    diode = load_virtual_parts().part("KFR30-12").nominal_model()
+    diode = load_virtual_parts().part("DX-4417").nominal_model()
     irrm, qrr, didt, _ = recovery_numbers(_shot(diode, 30.0, T25))
     assert 350e6 < didt < 700e6
     assert 15.0 < irrm < 30.0

@@ -108,7 +108,7 @@ def recovery(t: np.ndarray, i: np.ndarray) -> tuple[float, float]:
 def test_commutation_window_matches_scipy_radau(diode_name, temperature_K, rg, current_A):
     diode = {
         "silicon": SILICON,
-        "catalogue": load_virtual_parts().part("KFR30-12").nominal_model(),
+        "catalogue": load_virtual_parts().part("DX-4417").nominal_model(),
         "sic": SchottkyDiode(cj0_F=1.45e-9, vj_V=1.5, m=0.5),
     }[diode_name]
     sw = SwitchModel(gate_resistance_ohm=rg)

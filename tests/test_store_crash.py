@@ -56,7 +56,7 @@ rng = np.random.default_rng(0)
 probes = {"diode_voltage": Probe(100.0), "diode_current": Probe(100.0, 1e-9)}
 with ResultsStore(url) as store, RawRecord(raw_path) as raw:
     if store.get_run("R-crash") is None:
-        store.create_run("R-crash", "KFR30-12", "L2611-A")
+        store.create_run("R-crash", "DX-4417", "LT-0117")
     done = store.tested_keys("R-crash")
     print("START", len(done), flush=True)
     for serial, p, r in plan:
@@ -71,7 +71,7 @@ with ResultsStore(url) as store, RawRecord(raw_path) as raw:
         point = TestPoint(index=p, temperature_K=298.15, bus_voltage_V=600.0,
                           forward_current_A=30.0)
         store.add_shot(ShotResult(
-            run_id="R-crash", part="KFR30-12", lot="L2611-A", serial=serial, point=point,
+            run_id="R-crash", part="DX-4417", lot="LT-0117", serial=serial, point=point,
             repeat=r, attempt=0, timestamp="2031-04-02T10:00:00+00:00",
             conditions={"if_A": 30.0 + rng.random()}, metrics={"trr_s": 1e-7 * rng.random()},
             raw_ref=ref,

@@ -145,7 +145,7 @@ def test_unknown_durability_is_refused(tmp_path):
 
 def test_low_level_attributes_equal_h5py_high_level(tmp_path):
     values = {"f": -1.25e-9, "i": -128, "big": 2**40, "b": True, "no": False,
-              "s": "KFR30-12 é µs", "js": '{"a":[1,2]}'}
+              "s": "DX-4417 é µs", "js": '{"a":[1,2]}'}
     with h5py.File(tmp_path / "a.h5", "w", libver="earliest") as f:
         reference = f.create_group("reference")
         for name, value in values.items():
@@ -173,13 +173,13 @@ def test_sqlite_sync_level(tmp_path, durability, expected):
 
 def test_next_attempts_matches_next_attempt(tmp_path):
     with ResultsStore(f"sqlite:///{tmp_path / 'r.db'}") as store:
-        store.create_run("R1", "KFR30-12", "L2611-A")
+        store.create_run("R1", "DX-4417", "LT-0117")
         stored = [("S1", 0, 0, 0), ("S1", 0, 0, 1), ("S1", 1, 0, 0), ("S2", 0, 1, 0),
                   ("S2", 0, 1, 2)]
         for serial, index, repeat, attempt in stored:
             point = TestPoint(index=index, temperature_K=298.15, bus_voltage_V=600.0,
                               forward_current_A=30.0)
-            store.add_shot(ShotResult(run_id="R1", part="KFR30-12", lot="L2611-A",
+            store.add_shot(ShotResult(run_id="R1", part="DX-4417", lot="LT-0117",
                                       serial=serial, point=point, repeat=repeat,
                                       attempt=attempt, timestamp="2031-04-02T10:00:00+00:00",
                                       conditions={}, metrics={},
@@ -224,7 +224,7 @@ with ResultsStore(url, durability=durability) as store, \
         RawRecord(raw_path, durability=durability,
                   compression=None if compression == "none" else compression) as raw:
     if store.get_run("R") is None:
-        store.create_run("R", "KFR30-12", "L2611-A")
+        store.create_run("R", "DX-4417", "LT-0117")
     done = store.tested_keys("R")
     in_raw = set(raw.keys())
     for n in range(40):
@@ -242,7 +242,7 @@ with ResultsStore(url, durability=durability) as store, \
             raw.wait_durable()  # as the runner does before the results row
         point = TestPoint(index=0, temperature_K=298.15, bus_voltage_V=600.0,
                           forward_current_A=30.0)
-        store.add_shot(ShotResult(run_id="R", part="KFR30-12", lot="L2611-A",
+        store.add_shot(ShotResult(run_id="R", part="DX-4417", lot="LT-0117",
                                   serial=f"S{n:02d}", point=point, repeat=0, attempt=0,
                                   timestamp="2031-04-02T10:00:00+00:00", conditions={},
                                   metrics={}, raw_ref=ref))

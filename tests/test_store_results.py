@@ -45,13 +45,13 @@ def _float_bits(value):
 def test_runs_create_get_update_list(store):
     assert store.runs() == []
     assert store.get_run("R-1") is None
-    rec = store.create_run("R-1", "KFR30-12", "L2611-A", {"software_version": "0.1.0"},
+    rec = store.create_run("R-1", "DX-4417", "LT-0117", {"software_version": "0.1.0"},
                            started="2031-04-02T08:00:00+00:00")  # fmt: skip
     assert rec.status == "running"
     assert store.get_run("R-1") == rec
     with pytest.raises(StoreError, match="already exists"):
-        store.create_run("R-1", "KFR30-12", "L2611-A")
-    store.create_run("R-0", "KSC20-12", "L2612-B", started="2031-04-01T08:00:00+00:00")
+        store.create_run("R-1", "DX-4417", "LT-0117")
+    store.create_run("R-0", "DX-5203", "LT-0124", started="2031-04-01T08:00:00+00:00")
     assert [r.run_id for r in store.runs()] == ["R-0", "R-1"]
     manifest = {"software_version": "0.1.0", "files": {"raw.h5": "ab"}}
     upd = store.update_run(
@@ -66,7 +66,7 @@ def test_runs_create_get_update_list(store):
 
 
 def test_shot_round_trip_is_bit_exact(store):
-    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    store.create_run("R-0001", "DX-4417", "LT-0117")
     shots = [
         make_shot(serial="S001", valid=True, raw_ref="shots/000000"),
         make_shot(serial="S001", attempt=1, valid=False, raw_ref="shots/000001", trr=5e-324),
@@ -83,7 +83,7 @@ def test_shot_round_trip_is_bit_exact(store):
 
 
 def test_nan_and_infinite_metrics_survive(store):
-    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    store.create_run("R-0001", "DX-4417", "LT-0117")
     base = make_shot()
     shot = ShotResult(**{**base.__dict__, "metrics": {"a": math.nan, "b": math.inf, "c": None}})
     store.add_shot(shot)
@@ -94,7 +94,7 @@ def test_nan_and_infinite_metrics_survive(store):
 
 
 def test_add_shot_is_idempotent_and_refuses_conflicts(store):
-    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    store.create_run("R-0001", "DX-4417", "LT-0117")
     shot = make_shot()
     assert store.add_shot(shot) is True
     assert store.add_shot(shot) is False  # a resumed writer repeating the last shot
@@ -109,7 +109,7 @@ def test_complete_shot_replaces_only_a_pending_row(store):
 
     from benchrun.records import FLAG_ANALYSIS_PENDING
 
-    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    store.create_run("R-0001", "DX-4417", "LT-0117")
     analysed = make_shot()
     pending = dataclasses.replace(analysed, metrics={}, flags=(FLAG_ANALYSIS_PENDING,),
                                   valid=False, acquisition={})
@@ -133,7 +133,7 @@ def test_discard_pending_shot_deletes_only_a_pending_row(store):
 
     from benchrun.records import FLAG_ANALYSIS_PENDING
 
-    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    store.create_run("R-0001", "DX-4417", "LT-0117")
     analysed = make_shot()
     pending = dataclasses.replace(make_shot(repeat=1), metrics={},
                                   flags=(FLAG_ANALYSIS_PENDING,), valid=False, acquisition={})
@@ -151,7 +151,7 @@ def test_add_shot_needs_its_run(store):
 
 
 def test_tested_keys_and_next_attempt(store):
-    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    store.create_run("R-0001", "DX-4417", "LT-0117")
     store.add_shot(make_shot(serial="S1", point_index=0, repeat=0, valid=True))
     store.add_shot(make_shot(serial="S1", point_index=1, repeat=0, valid=False))
     store.add_shot(make_shot(serial="S2", point_index=0, repeat=1, attempt=0, valid=False))
@@ -166,8 +166,8 @@ def test_tested_keys_and_next_attempt(store):
 
 
 def test_row_digest_is_order_independent_and_run_specific(store):
-    store.create_run("A", "KFR30-12", "L2611-A")
-    store.create_run("B", "KFR30-12", "L2611-A")
+    store.create_run("A", "DX-4417", "LT-0117")
+    store.create_run("B", "DX-4417", "LT-0117")
     shots = [make_shot(run_id="A", serial=f"S{i}", raw_ref=f"shots/{i:06d}") for i in range(4)]
     for s in shots:
         store.add_shot(s)
@@ -192,7 +192,7 @@ def test_row_digest_is_order_independent_and_run_specific(store):
     ],
 )
 def test_row_digest_detects_an_edited_row(store, column, new_value):
-    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    store.create_run("R-0001", "DX-4417", "LT-0117")
     for i in range(3):
         store.add_shot(make_shot(serial=f"S{i}", raw_ref=f"shots/{i:06d}"))
     before = store.row_digest("R-0001")
@@ -209,7 +209,7 @@ def test_row_digest_detects_an_edited_row(store, column, new_value):
 
 
 def test_reports_table(store):
-    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    store.create_run("R-0001", "DX-4417", "LT-0117")
     assert store.reports() == []
     assert store.report("RPT-1") is None
     rec = store.add_report("RPT-1", "R-0001", "/runs/R-0001/report.pdf", "ab" * 32,
@@ -232,7 +232,7 @@ def test_reports_table(store):
 def test_second_store_object_sees_committed_rows(store_url):
     """Two writers on one store (several benches): committed rows are visible at once."""
     with ResultsStore(store_url) as a, ResultsStore(store_url) as b:
-        a.create_run("R-0001", "KFR30-12", "L2611-A")
+        a.create_run("R-0001", "DX-4417", "LT-0117")
         a.add_shot(make_shot())
         assert b.shots("R-0001") == [make_shot()]
         assert b.add_shot(make_shot()) is False
@@ -243,7 +243,7 @@ def test_row_digest_is_the_same_on_sqlite_and_postgresql(tmp_path, postgres_url)
     digests = []
     for url in (f"sqlite:///{tmp_path / 'r.db'}", postgres_url):
         with ResultsStore(url) as s:
-            s.create_run("R-0001", "KFR30-12", "L2611-A")
+            s.create_run("R-0001", "DX-4417", "LT-0117")
             for i in range(3):
                 s.add_shot(make_shot(serial=f"S{i}", trr=(i + 1) / 7.0))
             digests.append(s.row_digest("R-0001"))
@@ -284,7 +284,7 @@ def test_sqlite_is_in_wal_mode_with_full_sync(tmp_path):
 def test_numpy_scalars_in_a_shot_are_stored_as_plain_numbers(store):
     import numpy as np
 
-    store.create_run("R-0001", "KFR30-12", "L2611-A")
+    store.create_run("R-0001", "DX-4417", "LT-0117")
     base = make_shot()
     acquisition = {"adc_bits": np.int64(8), "sample_interval_s": np.float64(2e-10)}
     shot = ShotResult(**{**base.__dict__, "acquisition": acquisition})

@@ -23,13 +23,13 @@ from benchrun.store import (
 
 def _make_run_folder(run_dir, store_url=None, run_id="R-0001", n=3):
     run_dir.mkdir(parents=True, exist_ok=True)
-    manifest = {"run_id": run_id, "part": "KFR30-12", "lot": "L2611-A", "run_dir": str(run_dir)}
+    manifest = {"run_id": run_id, "part": "DX-4417", "lot": "LT-0117", "run_dir": str(run_dir)}
     if store_url is not None:
         manifest["store_url"] = store_url
     url = store_url_for(run_dir, manifest)
     shots = []
     with RawRecord(run_dir / "raw.h5") as raw, ResultsStore(url) as store:
-        store.create_run(run_id, "KFR30-12", "L2611-A", manifest)
+        store.create_run(run_id, "DX-4417", "LT-0117", manifest)
         for i in range(n):
             ref = raw.append_shot(raw.next_key(), 0.0, 1e-9, make_channels(i), make_probes(), {})
             shot = make_shot(run_id=run_id, serial=f"S{i}", raw_ref=ref)
@@ -111,7 +111,7 @@ def test_load_run_from_database_url_and_file(tmp_path):
         assert run.manifest == manifest  # the copy kept in the runs table
         assert run.run_dir == run_dir  # from the manifest's run_dir
     with ResultsStore(f"sqlite:///{db}") as store:
-        store.create_run("R-0002", "KFR30-12", "L2611-B", {})
+        store.create_run("R-0002", "DX-4417", "LT-0118", {})
     with pytest.raises(StoreError, match="2 runs"):
         load_run(f"sqlite:///{db}")
     other = load_run(f"sqlite:///{db}", run_id="R-0002")

@@ -260,12 +260,12 @@ def test_pipeline_flag_and_shot_stays_valid_for_grading(tmp_path):
     assert undersampled(shot.recovery.flags) == undersampled(shot.flags)
     assert shot.metrics()["err_J"] is not None
     # ... and the runner's result stays valid: the flag only warns
-    sequence = load_sequence(Path(__file__).parents[1] / "sequences" / "kfr30-12-demo.yaml")
+    sequence = load_sequence(Path(__file__).parents[1] / "sequences" / "dx4417-demo.yaml")
     results = []
     for index, temperature in ((0, 298.15), (1, 398.15)):
         point = TestPoint(index=index, temperature_K=temperature, bus_voltage_V=VR,
                           forward_current_A=IF, gate_resistance_ohm=10.0, label="nominal")
-        context = ShotContext(run_id="R-US", part="KFR30-12", lot="L2611-A", serial="D01",
+        context = ShotContext(run_id="R-US", part="DX-4417", lot="LT-0117", serial="D01",
                               point=point, repeat=0, attempt=0,
                               timestamp="2026-01-01T00:00:00Z", temperature_K=temperature,
                               bus_voltage_V=VR)

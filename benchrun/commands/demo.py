@@ -1,9 +1,9 @@
 """``benchrun demo [--out DIR]``: the whole workflow on the simulated bench, in about a minute.
 
 Starts the simulated bench in-process, runs the example sequence on an invented lot of
-KFR30-12 fast-recovery diodes (Korvane Power Components, invented) at 25 °C and 125 °C —
+DX-4417 fast-recovery diodes (Korvane Power Components, invented) at 25 °C and 125 °C —
 two of the ten devices are outliers — grades the lot against the example limits, stores
-everything, and writes a signed acceptance report. It then tests a small lot of KSC20-12 SiC
+everything, and writes a signed acceptance report. It then tests a small lot of DX-5203 SiC
 Schottky diodes at the same conditions and compares the recovery losses of the two parts
 (``--no-sic`` skips this).
 
@@ -32,8 +32,8 @@ if TYPE_CHECKING:
 DEMO_PASSPHRASE = "demo-only-not-a-secret"
 DEMO_SIGNER = ("Q. Ashdown", "Quality Engineer (demo signature)",
                "Korvane Power Components (invented, demo)")
-SEQUENCE_SI = "kfr30-12-demo.yaml"
-SEQUENCE_SIC = "ksc20-12-demo.yaml"
+SEQUENCE_SI = "dx4417-demo.yaml"
+SEQUENCE_SIC = "dx5203-demo.yaml"
 BENCH = "bench-sim.yaml"
 
 
@@ -45,7 +45,7 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--out", type=Path, default=Path("benchrun-demo"), metavar="DIR",
                         help="output folder (default: ./benchrun-demo)")
     parser.add_argument("--no-sic", action="store_true",
-                        help="skip the KSC20-12 SiC lot and the loss comparison")
+                        help="skip the DX-5203 SiC lot and the loss comparison")
     parser.add_argument("--no-progress", action="store_true", help="no live progress display")
     parser.set_defaults(func=run)
 

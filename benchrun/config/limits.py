@@ -2,9 +2,9 @@
 
 Loaded with :func:`load_limits`; errors name file, line and field (unknown keys, unknown
 metrics, a quantity of the wrong dimension such as ``"30 V"`` for a charge, ``min > max``,
-a limit that names an undefined condition). Example (``limits/KFR30-12.yaml``)::
+a limit that names an undefined condition). Example (``limits/DX-4417.yaml``)::
 
-    part: KFR30-12
+    part: DX-4417
     conditions:                         # required test conditions; every device must have
       - name: 25C                       # a valid shot at each
         temperature: 25 degC

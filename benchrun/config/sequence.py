@@ -1,12 +1,12 @@
 """Sequence file schema: what to test (part, lot, devices, test points) and how.
 
 Loaded with :func:`load_sequence`; errors name file, line and field, unknown keys are errors.
-Quantities are written as engineers write them. Example (``sequences/kfr30-12-demo.yaml``)::
+Quantities are written as engineers write them. Example (``sequences/dx4417-demo.yaml``)::
 
-    part: KFR30-12
-    lot: L2611-A
+    part: DX-4417
+    lot: LT-0117
     devices: all            # every device the handler holds, or a list of serials
-    limits: ../limits/KFR30-12.yaml
+    limits: ../limits/DX-4417.yaml
     test_points:
       - bus_voltage: 600 V
         forward_current: 30 A
