@@ -22,7 +22,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from report_helpers import build_run, make_signer
 
-from benchrun.grading import grade_lot, load_limits
+from benchrun.grading import grade_lot, load_limits, run_bench
 from benchrun.report.render import render_report
 from benchrun.report.verify import verify_report
 from benchrun.store.rundata import load_run
@@ -53,7 +53,7 @@ def main() -> int:
 
         t0 = time.perf_counter()
         run = load_run(run_dir)
-        lot = grade_lot(run.shots, load_limits(run.limits_path))
+        lot = grade_lot(run.shots, load_limits(run.limits_path), bench=run_bench(run))
         t_grade = time.perf_counter() - t0
 
         t0 = time.perf_counter()

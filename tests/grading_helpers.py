@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from benchrun.grading.uncertainty import InstrumentInputs
 from benchrun.records import ShotResult, TestPoint
 
 COLD = TestPoint(index=0, temperature_K=298.15, bus_voltage_V=600.0, forward_current_A=30.0,
@@ -53,16 +54,21 @@ limits:
 decision_rule: {rule: RULE, guard_factor: 1}
 uncertainty:
   coverage_factor: 2
-  scope_vertical_accuracy: 1.5 %
-  current_sensor_tolerance: 1 %
-  voltage_probe_tolerance: 2 %
-  deskew: 0.5 ns
 bins:
   metric: qrr_C
   condition: 125C
   classes: [{name: Q1, max: 4.5 uC}, {name: Q2, max: 5.5 uC}, {name: Q3, max: 6.5 uC}]
-lot: {acceptance_number: 0}
+lot: {lot_size: 20, sample_size: 5, plan: zero-acceptance, aql: 1 %, acceptance_number: 0}
 """
+
+#: Instrument and probe accuracies as a bench file would give them (typical figures, common
+#: practice): scope 1.5 % of full scale, shunt 1 %, voltage probe 2 %, residual skew 0.5 ns.
+INPUTS = InstrumentInputs(scope_vertical_accuracy=0.015, current_sensor_tolerance=0.01,
+                          voltage_probe_tolerance=0.02, deskew=0.5e-9,
+                          scope_source="certificate T-1, calibrated 2026-01-12",
+                          current_source="certificate T-2, calibrated 2026-01-12",
+                          voltage_source="certificate T-3, calibrated 2026-01-12",
+                          deskew_source="certificate T-2, calibrated 2026-01-12")
 
 
 def write_limits(tmp_path, text: str = LIMITS_YAML, rule: str = "guarded", name: str = "l.yaml"):

@@ -44,15 +44,12 @@ limits:
 decision_rule: {rule: guarded, guard_factor: 1}
 uncertainty:
   coverage_factor: 2
-  scope_vertical_accuracy: 1.5 %
-  current_sensor_tolerance: 1 %
-  voltage_probe_tolerance: 2 %
-  deskew: 0.5 ns
 bins:
   metric: qrr_C
   condition: 125C
   classes: [{name: Q1, max: 4.5 uC}, {name: Q2, max: 5.5 uC}, {name: Q3, max: 6.5 uC}]
-lot: {acceptance_number: 0, indeterminate: nonconforming, invalid: nonconforming}
+lot: {lot_size: 1000, sample_size: 4, plan: zero-acceptance, aql: 1 %, acceptance_number: 0,
+      indeterminate: nonconforming, invalid: nonconforming}
 """
 
 POINTS = (
@@ -154,7 +151,7 @@ class SignedRun:
     """A rendered, signed report over a stored run (built once per test session)."""
 
     def __init__(self, base: Path, n_devices: int, failing: tuple[int, ...]) -> None:
-        from benchrun.grading import grade_lot, load_limits
+        from benchrun.grading import grade_lot, load_limits, run_bench
         from benchrun.report.render import render_report
         from benchrun.store.rundata import load_run
 
@@ -162,7 +159,8 @@ class SignedRun:
         self.run_dir = build_run(base, n_devices, failing=failing)
         self.identity, self.signer = make_signer(base)
         self.run = load_run(self.run_dir)
-        self.lot = grade_lot(self.run.shots, load_limits(self.run.limits_path))
+        self.lot = grade_lot(self.run.shots, load_limits(self.run.limits_path),
+                             bench=run_bench(self.run))
         self.pdf = render_report(self.run, self.lot, self.run_dir / "report.pdf",
                                  signer=self.signer)
 

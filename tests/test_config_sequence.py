@@ -23,7 +23,7 @@ test_points:
     gate_resistance: 10 ohm
     repeats: 3
     shot_spacing: 200 ms
-tolerances: {forward_current: 5 %, didt: 0.2, reverse_voltage: 4 %, temperature: 2 degC}
+tolerances: {forward_current: 5 %, didt: 20 %, reverse_voltage: 4 %, temperature: 2 degC}
 """
 
 
@@ -54,6 +54,25 @@ def test_quantities(tmp_path):
     assert seq.tolerances.temperature == pytest.approx(2.0)  # a difference, not 275.15 K
     assert seq.devices == ["A001", "A002"]
     assert seq.trim.mode == "single_pulse"
+
+
+@pytest.mark.parametrize(("key", "bare"), [
+    ("didt", "0.2"), ("forward_current", "5"), ("temperature", "2"), ("reverse_voltage", "'0.04'"),
+])
+def test_tolerance_without_unit_is_refused_at_its_line(tmp_path, key, bare):
+    """A tolerance is written with its unit (5 %, 2 K): a bare number is refused at file:line."""
+    text = SEQ.replace(
+        "tolerances: {forward_current: 5 %, didt: 20 %, reverse_voltage: 4 %, temperature: 2 degC}",
+        "tolerances:\n  forward_current: 5 %\n  didt: 20 %\n  reverse_voltage: 4 %\n"
+        "  temperature: 2 K\n")
+    lines = text.splitlines()
+    number = next(i for i, line in enumerate(lines) if line.startswith(f"  {key}:")) + 1
+    lines[number - 1] = f"  {key}: {bare}"
+    path = write(tmp_path, "\n".join(lines) + "\n")
+    with pytest.raises(ConfigError) as info:
+        load_sequence(path)
+    assert str(info.value).startswith(f"{path}:{number}: tolerances.{key}: ")
+    assert "has no unit" in str(info.value)
 
 
 def test_limits_path_relative_to_sequence(tmp_path):

@@ -8,16 +8,20 @@ from __future__ import annotations
 
 import json
 import random
+import shutil
 from dataclasses import replace
+from pathlib import Path
 
 import pytest
-from grading_helpers import COLD, HOT, LIMITS_YAML, shot, write_limits
+from grading_helpers import COLD, HOT, INPUTS, LIMITS_YAML, shot, write_limits
 
 from benchrun.cli import main
 from benchrun.config.limits import load_limits
 from benchrun.errors import GradingError
 from benchrun.grading import grade_lot
 from benchrun.records import TestPoint
+
+ROOT = Path(__file__).resolve().parents[1]
 
 
 def _lot():
@@ -42,7 +46,7 @@ def limits(tmp_path):
 
 
 def test_device_verdicts_bins_and_disposition(limits):
-    lot = grade_lot(_lot(), limits)
+    lot = grade_lot(_lot(), limits, bench=INPUTS)
     verdicts = {d.serial: d.verdict for d in lot.devices}
     assert verdicts == {"S000": "conforming", "S001": "conforming", "S002": "indeterminate",
                         "S003": "non-conforming", "S004": "invalid"}
@@ -56,7 +60,7 @@ def test_device_verdicts_bins_and_disposition(limits):
 
 
 def test_metric_grade_carries_value_uncertainty_and_limits(limits):
-    lot = grade_lot(_lot(), limits)
+    lot = grade_lot(_lot(), limits, bench=INPUTS)
     grade = lot.device("S003").grade("qrr_C", "125C")
     assert grade.n == 2
     assert grade.value == pytest.approx(7.5e-6 * 1.005)
@@ -74,7 +78,7 @@ def test_metric_grade_carries_value_uncertainty_and_limits(limits):
 
 def test_simple_acceptance_decides_without_a_guard_band(tmp_path):
     simple = load_limits(write_limits(tmp_path, rule="simple"))
-    lot = grade_lot(_lot(), simple)
+    lot = grade_lot(_lot(), simple, bench=INPUTS)
     assert lot.device("S002").verdict == "conforming"   # inside TL, U ignored
     assert lot.device("S003").verdict == "non-conforming"
     assert lot.device("S002").grade("qrr_C", "25C").guard_band == 0.0
@@ -87,7 +91,7 @@ def test_invalid_shots_are_never_graded_and_a_retry_counts(limits):
         shot("S010", COLD, 1, valid=False, qrr=9e-6),
         shot("S010", HOT, 0, qrr=4.0e-6),
     ]
-    device = grade_lot(shots, limits).device("S010")
+    device = grade_lot(shots, limits, bench=INPUTS).device("S010")
     grade = device.grade("qrr_C", "25C")
     assert grade.n == 1 and grade.value == pytest.approx(2.0e-6)
     assert device.verdict == "conforming"
@@ -103,38 +107,40 @@ def test_condition_flags_are_judged_again_by_the_limits_tolerances(tmp_path, lim
     flagged = shot("S030", COLD, 0, valid=False, conditions={"if_A": 31.8})
     flagged = replace(flagged, flags=("condition:IF 31.8 A is +6.0 % from 30 A (tolerance 5 %)",))
     shots = [flagged, shot("S030", HOT, 0)]
-    assert grade_lot(shots, limits).device("S030").verdict == "invalid"
+    assert grade_lot(shots, limits, bench=INPUTS).device("S030").verdict == "invalid"
     wider = load_limits(write_limits(tmp_path, LIMITS_YAML.replace(
         "forward_current: 5 %", "forward_current: 8 %"), name="wide.yaml"))
-    assert grade_lot(shots, wider).device("S030").verdict == "conforming"
+    assert grade_lot(shots, wider, bench=INPUTS).device("S030").verdict == "conforming"
     # an analysis failure is never re-admitted
     broken = replace(flagged, flags=("no_event",))
-    assert grade_lot([broken, shot("S030", HOT, 0)], wider).device("S030").verdict == "invalid"
+    regrade = grade_lot([broken, shot("S030", HOT, 0)], wider, bench=INPUTS)
+    assert regrade.device("S030").verdict == "invalid"
     # a warning beside the condition flag does not stop the re-judging (the runner's
     # build_result makes a shot invalid only for its conditions, missing metrics, a clipped
     # diode channel or a pending analysis) ...
     warned = replace(flagged, flags=(*flagged.flags, "undersampled_recovery: tb spans 2.5 "
                                      "samples (need >= 10); not resolved: tb_s"))
-    assert grade_lot([warned, shot("S030", HOT, 0)], wider).device("S030").verdict == (
-        "conforming")
+    regrade = grade_lot([warned, shot("S030", HOT, 0)], wider, bench=INPUTS)
+    assert regrade.device("S030").verdict == "conforming"
     # ... an invalidating flag does
     for reason in ("clipped_diode_current", "metrics_missing: trr_s", "analysis_pending"):
         bad = replace(flagged, flags=(*flagged.flags, reason))
-        assert grade_lot([bad, shot("S030", HOT, 0)], wider).device("S030").verdict == (
-            "invalid"), reason
+        regrade = grade_lot([bad, shot("S030", HOT, 0)], wider, bench=INPUTS)
+        assert regrade.device("S030").verdict == "invalid", reason
 
 
 def test_missing_required_condition_makes_the_device_invalid(limits):
-    device = grade_lot([shot("S020", COLD, 0)], limits).device("S020")
+    device = grade_lot([shot("S020", COLD, 0)], limits, bench=INPUTS).device("S020")
     assert device.verdict == "invalid"
     assert device.grade("qrr_C", "125C").outcome == "invalid"
     assert any("125C" in r for r in device.reasons)
-    out_of_tolerance = grade_lot([shot("S022", COLD, 0, conditions={"if_A": 25.0})], limits)
+    out_of_tolerance = grade_lot([shot("S022", COLD, 0, conditions={"if_A": 25.0})], limits,
+                                 bench=INPUTS)
     assert "IF 25 A outside 30 A ± 5 %" in out_of_tolerance.device("S022").reasons[0]
 
 
 def test_non_conformity_outweighs_an_invalid_condition(limits):
-    device = grade_lot([shot("S021", COLD, 0, qrr=5e-6)], limits).device("S021")
+    device = grade_lot([shot("S021", COLD, 0, qrr=5e-6)], limits, bench=INPUTS).device("S021")
     assert device.verdict == "non-conforming"
 
 
@@ -146,14 +152,18 @@ def test_statistics_cpk_ratios_and_outliers(limits):
         for repeat in range(2):
             shots.append(shot(serial, COLD, repeat, qrr=value * 1e-6))
             shots.append(shot(serial, HOT, repeat, qrr=2.5 * value * 1e-6, trr=300e-9))
-    lot = grade_lot(shots, limits)
+    lot = grade_lot(shots, limits, bench=INPUTS)
     stats = lot.statistics
     assert stats.count == 7
     qrr_cold = next(m for m in stats.metrics if m.metric == "qrr_C" and m.condition == "25C")
     assert qrr_cold.n == 7
     assert qrr_cold.mean == pytest.approx(sum(values) / 7 * 1e-6)
-    assert qrr_cold.cpk == pytest.approx(qrr_cold.cpu)
-    assert qrr_cold.cpk == pytest.approx((3.0e-6 - qrr_cold.mean) / (3 * qrr_cold.std))
+    # seven devices: below the stated minimum n, the capability is not stated
+    assert qrr_cold.cpk is None and qrr_cold.cpk_lower is None
+    assert "n = 7 < 25" in qrr_cold.capability_note
+    # statistics only for graded metrics (a limit at the condition): no IF, no time stamps
+    assert {(m.metric, m.condition) for m in stats.metrics} == {
+        ("qrr_C", "25C"), ("qrr_C", "125C"), ("trr_s", "25C"), ("trr_s", "125C")}
     ratio = next(r for r in stats.ratios if r.metric == "qrr_C")
     assert (ratio.hot, ratio.cold) == ("125C", "25C")
     assert ratio.mean == pytest.approx(2.5)
@@ -168,9 +178,9 @@ def test_statistics_cpk_ratios_and_outliers(limits):
 
 def test_to_dict_is_json_safe_and_independent_of_shot_order(limits):
     shots = _lot()
-    first = grade_lot(shots, limits).to_dict()
+    first = grade_lot(shots, limits, bench=INPUTS).to_dict()
     random.Random(4).shuffle(shots)
-    second = grade_lot(shots, limits).to_dict()
+    second = grade_lot(shots, limits, bench=INPUTS).to_dict()
     assert json.dumps(first, sort_keys=True, allow_nan=False) == \
         json.dumps(second, sort_keys=True, allow_nan=False)
     assert first["disposition"] == "reject"
@@ -179,14 +189,14 @@ def test_to_dict_is_json_safe_and_independent_of_shot_order(limits):
 
 def test_limits_of_another_part_cannot_grade(limits):
     with pytest.raises(GradingError, match="DX-5203"):
-        grade_lot([shot("S1", COLD, 0, part="DX-5203")], limits)
+        grade_lot([shot("S1", COLD, 0, part="DX-5203")], limits, bench=INPUTS)
 
 
 def test_a_condition_matching_two_test_points_is_an_error(limits):
     other = TestPoint(index=5, temperature_K=298.15, bus_voltage_V=600.0,
                       forward_current_A=15.0, gate_resistance_ohm=10.0, label="half current")
     with pytest.raises(GradingError, match="several test points"):
-        grade_lot([shot("S1", COLD, 0), shot("S1", other, 0)], limits)
+        grade_lot([shot("S1", COLD, 0), shot("S1", other, 0)], limits, bench=INPUTS)
 
 
 def _run_folder(tmp_path, limits_text):
@@ -201,6 +211,7 @@ def _run_folder(tmp_path, limits_text):
         store.add_shot(item)
     write_manifest(run_dir, {"run_id": "R-TEST", "part": "DX-4417", "lot": "LT-0117"})
     (run_dir / "limits.yaml").write_text(limits_text.replace("RULE", "guarded"))
+    shutil.copy(ROOT / "sequences" / "bench-sim.yaml", run_dir / "bench.yaml")
     return run_dir
 
 
@@ -224,7 +235,10 @@ def test_cli_regrades_a_stored_run_against_changed_limits(tmp_path, capsys):
 
     # the same stored run graded through the database URL gives the same grades
     url = f"sqlite:///{run_dir / 'results.db'}"
-    assert main(["grade", url, "--limits", str(run_dir / "limits.yaml"), "--json"]) == 0
+    assert main(["grade", url, "--limits", str(run_dir / "limits.yaml"), "--json"]) == 2
+    assert "--bench FILE" in capsys.readouterr().err  # the accuracies live in the bench file
+    assert main(["grade", url, "--limits", str(run_dir / "limits.yaml"), "--bench",
+                 str(run_dir / "bench.yaml"), "--json"]) == 0
     via_url = json.loads(capsys.readouterr().out)
     assert via_url["devices"] == original["devices"]
 

@@ -14,6 +14,7 @@ from pathlib import Path
 
 import pytest
 
+from benchrun.config.bench import load_bench
 from benchrun.grading import grade_lot, load_limits
 from benchrun.records import ShotResult, TestPoint
 
@@ -60,7 +61,8 @@ def _shots() -> list[ShotResult]:
 
 @pytest.mark.slow
 def test_demo_lot_grades_and_disposition():
-    lot = grade_lot(_shots(), load_limits(ROOT / "limits" / "DX-4417.yaml"))
+    lot = grade_lot(_shots(), load_limits(ROOT / "limits" / "DX-4417.yaml"),
+                    bench=load_bench(ROOT / "sequences" / "bench-sim.yaml"))
     verdicts = {d.serial: d.verdict for d in lot.devices}
     assert verdicts["SN0117-001"] == "conforming"
     assert verdicts["SN0117-003"] == "conforming"
@@ -72,4 +74,14 @@ def test_demo_lot_grades_and_disposition():
     assert "qrr_C at 125C" in " ".join(lot.device("SN0117-009").reasons)
     ratio = next(r for r in lot.statistics.ratios if r.metric == "qrr_C")
     assert 1.5 < ratio.mean < 3.5  # Qrr grows with temperature through τ(T) (DESIGN.md §4)
-    assert lot.device("SN0117-001").bin is not None
+    # a conforming device is binned only when value ± w lies inside one class (the decision
+    # rule applied to the class edges, ILAC-G8:09/2019 §4.2); otherwise unbinned with why
+    device = lot.device("SN0117-001")
+    grade = device.grade("qrr_C", "125C")
+    low, high = grade.value - grade.guard_band, grade.value + grade.guard_band
+    edges = (5.0e-6, 5.5e-6, 6.5e-6)  # limits/DX-4417.yaml, bins at 125 °C
+    crosses = any(low < edge < high for edge in edges)
+    assert (device.bin is None) == crosses
+    assert device.bin_reason is not None
+    if crosses:
+        assert "straddles the class edge" in device.bin_reason

@@ -39,15 +39,49 @@ def test_cpk_one_sided_uses_the_available_limit():
 
 def test_summary_matches_numpy():
     values = [2.1e-6, 2.3e-6, 1.9e-6, 2.2e-6, 2.0e-6]
-    result = summarize("qrr_C", "25C", values, None, 3.0e-6)
+    result = summarize("qrr_C", "25C", values, None, 3.0e-6, min_n=5)
     assert result.n == 5
     assert result.mean == pytest.approx(float(np.mean(values)))
     assert result.std == pytest.approx(float(np.std(values, ddof=1)))
     assert (result.minimum, result.maximum) == (1.9e-6, 2.3e-6)
     expected = (3.0e-6 - np.mean(values)) / (3 * np.std(values, ddof=1))
     assert result.cpk == pytest.approx(float(expected))
-    single = summarize("qrr_C", "25C", [2e-6], None, 3e-6)
+    single = summarize("qrr_C", "25C", [2e-6], None, 3e-6, min_n=1)
     assert single.std is None and single.cpk is None
+
+
+def test_capability_hidden_below_the_minimum_n_and_for_ungraded_metrics():
+    values = [2.1e-6, 2.3e-6, 1.9e-6, 2.2e-6, 2.0e-6] * 4  # n = 20 < 25
+    hidden = summarize("qrr_C", "25C", values, None, 3.0e-6)
+    assert hidden.cpk is None and hidden.cpk_lower is None
+    assert hidden.capability_note == "n = 20 < 25: capability not stated"
+    shown = summarize("qrr_C", "25C", values + values[:5], None, 3.0e-6)
+    assert shown.n == 25 and shown.cpk is not None and shown.cpk_lower < shown.cpk
+    ungraded = summarize("if_A", "25C", [30.0] * 30 + [30.5])
+    assert ungraded.cpk is None and "not graded" in ungraded.capability_note
+
+
+@pytest.mark.parametrize(("n", "seed"), [(30, 1), (50, 2), (200, 3)])
+def test_bissell_lower_bound_against_the_exact_noncentral_t_bound(n, seed):
+    """Bissell's (1990) approximation against the exact one-sided bound of Cpu.
+
+    For a one-sided index, 3·√n·Ĉpu = √n·(USL − x̄)/s follows a noncentral t distribution
+    with n − 1 degrees of freedom and noncentrality 3·√n·Cpu (the textbook pivot; scipy's
+    ``nct`` as the outside reference). The exact 95 % lower bound is the Cpu whose noncentral t
+    puts 95 % of its mass below the observed statistic. Bissell's normal approximation agrees
+    within a few percent at these n (Bissell, Applied Statistics 39(3), 1990, Table 1 shows
+    errors of this order).
+    """
+    from scipy.optimize import brentq
+
+    rng = np.random.default_rng(seed)
+    values = list(rng.normal(2.0e-6, 0.2e-6, n))
+    result = summarize("qrr_C", "25C", values, None, 3.0e-6)
+    t_observed = 3 * np.sqrt(n) * result.cpu
+    exact = brentq(lambda c: stats.nct.cdf(t_observed, n - 1, 3 * np.sqrt(n) * c) - 0.95,
+                   -5.0, 20.0)
+    assert result.cpk_lower == pytest.approx(exact, rel=0.03)
+    assert result.cpk_lower < result.cpk
 
 
 def test_modified_z_score_hand_case():

@@ -66,8 +66,8 @@ def _line_of(text: str, needle: str) -> int:
         ("{metric: trr_s, max: 400 ns}", "{metric: trrr_s, max: 400 ns}", "trrr_s",
          "unknown metric"),
         # unknown key
-        ("lot: {acceptance_number: 0}", "lot: {acceptance_numbr: 0}", "acceptance_numbr",
-         "unknown key"),
+        ("aql: 1 %, acceptance_number: 0}", "aql: 1 %, acceptance_numbr: 0}",
+         "acceptance_numbr", "unknown key"),
         # a limit at a condition that is not defined
         ("{metric: qrr_C, condition: 125C, max: 6.5 uC}",
          "{metric: qrr_C, condition: 150C, max: 6.5 uC}", "150C", "unknown condition"),
@@ -101,8 +101,8 @@ def test_wrong_dimension_names_the_field(tmp_path):
 
 def test_extra_contributor_needs_exactly_one_bound(tmp_path):
     text = LIMITS_YAML.replace(
-        "  deskew: 0.5 ns\n",
-        "  deskew: 0.5 ns\n  extra:\n    - {metric: qrr_C, name: fixture, relative: 1 %, "
+        "  coverage_factor: 2\n",
+        "  coverage_factor: 2\n  extra:\n    - {metric: qrr_C, name: fixture, relative: 1 %, "
         "absolute: 5 nC}\n",
     )
     with pytest.raises(ConfigError, match="exactly one") as info:

@@ -25,7 +25,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from grading_helpers import write_limits
+from grading_helpers import INPUTS, write_limits
 from test_analysis_closed_form import LMRamp, double_pulse_record
 
 from benchrun.analysis import ChannelData, ProbeCalibration, analyze_channels, analyze_recovery
@@ -277,7 +277,7 @@ def test_pipeline_flag_and_shot_stays_valid_for_grading(tmp_path):
     # Grading (ILAC-G8 simple acceptance, limits from the test helpers): the flagged shots
     # grade exactly as the same shots without the flag; nothing becomes invalid.
     limits = load_limits(write_limits(tmp_path, rule="simple"))
-    flagged = grade_lot(results, limits)
-    clean = grade_lot([replace(r, flags=()) for r in results], limits)
+    flagged = grade_lot(results, limits, bench=INPUTS)
+    clean = grade_lot([replace(r, flags=()) for r in results], limits, bench=INPUTS)
     assert flagged.device("D01").verdict == clean.device("D01").verdict == "conforming"
     assert flagged.device("D01").invalid_shots == clean.device("D01").invalid_shots

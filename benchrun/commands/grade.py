@@ -1,8 +1,15 @@
-"""``benchrun grade RESULTS [--limits FILE] [--run-id ID] [--json]``: regrade stored results.
+"""``benchrun grade RESULTS [--limits FILE] [--bench FILE] [--run-id ID] [--json]``.
 
-RESULTS is a run folder or a results database URL. Without ``--limits`` the run folder's
-``limits.yaml`` (the limits the run was made with) is used; pass a changed limits file to see
-how the same measurements grade against it.
+Regrades stored results. RESULTS is a run folder or a results database URL. Without
+``--limits`` the run folder's ``limits.yaml`` (the limits the run was made with) is used; pass
+a changed limits file to see how the same measurements grade against it. The instrument and
+probe accuracies of the uncertainty budgets come from the bench file the run was made on
+(the run folder's ``bench.yaml``, or ``--bench FILE``).
+
+The text output shows each limit with its aggregation (mean or worst shot), the devices'
+grades, why a device is unbinned, the sampling plan with its probability of acceptance at the
+AQL and its LTPD, and the lot statistics (capability with its lower bound, outliers with the
+test used).
 """
 
 from __future__ import annotations
@@ -13,8 +20,10 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from benchrun.config.limits import LimitsSpec, load_limits
+from benchrun.config.bench import BenchConfig, load_bench
+from benchrun.config.limits import LimitsSpec, load_limits, metric_unit
 from benchrun.errors import GradingError
+from benchrun.grading import run_bench
 from benchrun.grading.grade import LotGrade, grade_lot
 from benchrun.units import format_si
 
@@ -29,6 +38,8 @@ def register(subparsers: Any) -> None:
     )
     parser.add_argument("results", metavar="RESULTS", help="run folder or results database URL")
     parser.add_argument("--limits", metavar="FILE", help="limits file (default: the run's)")
+    parser.add_argument("--bench", metavar="FILE", help="bench file with the instrument and "
+                        "probe accuracies (default: the run's)")
     parser.add_argument("--run-id", metavar="ID", help="run to grade when the database holds "
                         "several")
     parser.add_argument("--json", action="store_true", help="print the grades as JSON")
@@ -45,6 +56,12 @@ def _limits_for(args: argparse.Namespace, run: Any) -> tuple[LimitsSpec, Path]:
     return load_limits(path), path
 
 
+def _bench_for(args: argparse.Namespace, run: Any) -> BenchConfig:
+    if args.bench:
+        return load_bench(args.bench)
+    return run_bench(run)
+
+
 def run(args: argparse.Namespace) -> int:
     from benchrun.store.rundata import load_run, pending_warning
 
@@ -52,7 +69,7 @@ def run(args: argparse.Namespace) -> int:
     if (warning := pending_warning(data)) is not None:
         print(warning, file=sys.stderr)
     limits, path = _limits_for(args, data)
-    lot = grade_lot(data.shots, limits)
+    lot = grade_lot(data.shots, limits, bench=_bench_for(args, data))
     if args.json:
         payload = {"run_id": data.run_id, "limits_file": str(path), **lot.to_dict()}
         print(json.dumps(payload, indent=2, sort_keys=True, ensure_ascii=False))
@@ -65,6 +82,26 @@ def _value(value: float | None, unit: str) -> str:
     return format_si(value, unit, digits=4) if unit else ("—" if value is None else f"{value:.3g}")
 
 
+def _limits_lines(lot: LotGrade) -> list[str]:
+    """One line per limit in force: bounds, unit and how the shots are combined."""
+    if not lot.limits:
+        return []
+    lines = ["Limits (aggregation: how a device's valid shots are combined; worst = the shot "
+             "nearest to or beyond the limit)"]
+    for row in lot.limits:
+        unit = row["unit"]
+        bounds = []
+        if row["lower"] is not None:
+            bounds.append(f"≥ {_value(row['lower'], unit)}")
+        if row["upper"] is not None:
+            bounds.append(f"≤ {_value(row['upper'], unit)}")
+        source = "stated" if row["aggregation_stated"] else "default"
+        lines.append(f"  {row['metric'] + '@' + row['condition']:<20}"
+                     f"{' and '.join(bounds):<22}{row['aggregation']} ({source})")
+    lines.append("")
+    return lines
+
+
 def render_text(lot: LotGrade, *, run_id: str = "", limits_file: str = "") -> str:
     """Readable summary: devices × graded metrics, then the disposition and statistics."""
     lines = [
@@ -73,6 +110,7 @@ def render_text(lot: LotGrade, *, run_id: str = "", limits_file: str = "") -> st
         f"Decision rule: {lot.decision_rule}",
         "",
     ]
+    lines += _limits_lines(lot)
     columns: list[tuple[str, str]] = []
     for device in lot.devices:
         for grade in device.grades:
@@ -83,7 +121,8 @@ def render_text(lot: LotGrade, *, run_id: str = "", limits_file: str = "") -> st
     rows = [header]
     marks = {"conforming": "", "non-conforming": " ✗", "indeterminate": " ?", "invalid": " –"}
     for device in lot.devices:
-        row = [device.serial, device.verdict, device.bin or "—"]
+        row = [device.serial, device.verdict,
+               device.bin or ("unbinned" if device.unbinned else "—")]
         for metric, condition in columns:
             try:
                 grade = device.grade(metric, condition)
@@ -107,6 +146,8 @@ def render_text(lot: LotGrade, *, run_id: str = "", limits_file: str = "") -> st
     for device in lot.devices:
         if device.verdict != "conforming":
             lines.append(f"{device.serial}: {device.verdict}: {'; '.join(device.reasons)}")
+        elif device.unbinned:
+            lines.append(f"{device.serial}: unbinned: {device.bin_reason}")
     stats = lot.statistics
     yield_text = "—" if stats.yield_fraction is None else f"{100 * stats.yield_fraction:.1f} %"
     lines += [
@@ -115,27 +156,37 @@ def render_text(lot: LotGrade, *, run_id: str = "", limits_file: str = "") -> st
         f"{stats.nonconforming}, indeterminate {stats.indeterminate}, invalid {stats.invalid}; "
         f"yield {yield_text}",
         f"Lot rule: {lot.lot_rule}",
-        f"LOT DISPOSITION: {lot.disposition.upper()}",
     ]
+    if lot.plan is not None:
+        lines.append(f"Sampling plan: {lot.plan.describe()}")
+    lines += [f"LOT DISPOSITION: {lot.disposition.upper()}"]
     lines += [f"  - {reason}" for reason in lot.reasons]
-    limited = [m for m in stats.metrics if m.lower is not None or m.upper is not None]
-    if limited:
-        lines += ["", "metric@condition      n   mean        σ           min         max"
-                      "         Cpk"]
-        from benchrun.config.limits import metric_unit
-
-        for item in limited:
+    if stats.metrics:
+        lines += ["", "Statistics of the graded values (per device: the aggregate each limit "
+                      "names)",
+                  "metric@condition      n   mean        s           min         max"
+                  "         Cpk    Cpk lower"]
+        for item in stats.metrics:
             unit = metric_unit(item.metric)
             cpk = "—" if item.cpk is None else f"{item.cpk:.2f}"
+            low = "—" if item.cpk_lower is None else f"{item.cpk_lower:.2f}"
             lines.append(
                 f"{item.metric + '@' + item.condition:<20}{item.n:>3}   "
                 f"{_value(item.mean, unit):<12}{_value(item.std, unit):<12}"
-                f"{_value(item.minimum, unit):<12}{_value(item.maximum, unit):<12}{cpk}"
+                f"{_value(item.minimum, unit):<12}{_value(item.maximum, unit):<12}"
+                f"{cpk:<7}{low}" + (f"   ({item.capability_note})"
+                                    if item.capability_note else "")
             )
+        lines.append(f"Capability: {stats.capability_method}")
     for ratio in stats.ratios:
         if ratio.metric == "qrr_C" and ratio.mean is not None:
             lines.append(f"Qrr {ratio.hot}/{ratio.cold}: lot mean ratio {ratio.mean:.3g}")
+    lines += ["", f"Outliers ({stats.outlier_test}):"]
     if stats.outliers:
-        lines.append("Outliers (modified z-score > 3.5, Iglewicz & Hoaglin 1993): " + ", ".join(
-            f"{o.serial} {o.metric}@{o.condition} (z = {o.z:.1f})" for o in stats.outliers))
+        lines.append("  serial        metric@condition      value         modified z")
+        for o in stats.outliers:
+            lines.append(f"  {o.serial:<14}{o.metric + '@' + o.condition:<22}"
+                         f"{_value(o.value, metric_unit(o.metric)):<14}{o.z:+.1f}")
+    else:
+        lines.append("  none")
     return "\n".join(line for line in lines if line is not None)

@@ -7,16 +7,27 @@ A bench file describes the hardware a sequence runs on. It is loaded with
     name: Simulated double-pulse bench
     visa_library: "@py"
     instruments:
-      scope:   {resource: sim, family: scope-generic, calibration_due: 2027-06-30}
+      scope:   {resource: sim, family: scope-generic, calibration_due: 2027-06-30,
+              accuracy: {vertical: 1.5 %, certificate: CAL-0412, calibrated: 2026-06-30}}
       pulse:   {resource: sim, family: pulse-generic}
       supply:  {resource: sim, family: supply-generic}
       thermal: {resource: sim, family: thermal-generic}
       handler: {resource: sim, family: handler-generic}
     probes:
-      diode_voltage: {channel: 1, kind: voltage, attenuation: 100}
-      diode_current: {channel: 2, kind: shunt, resistance: 10 mohm, deskew: 1.5 ns}
+      diode_voltage: {channel: 1, kind: voltage, attenuation: 100,
+                      accuracy: {scale: 2 %, certificate: CAL-0413, calibrated: 2026-06-30}}
+      diode_current: {channel: 2, kind: shunt, resistance: 10 mohm, deskew: 1.5 ns,
+                      accuracy: {scale: 1 %, skew: 0.5 ns, certificate: CAL-0414,
+                                 calibrated: 2026-06-30}}
     fixture: {load_inductance: 200 uH, ...}
     safety:  {max_bus_voltage: 1000 V, ...}
+
+``accuracy`` blocks are the inputs of the grading's uncertainty budgets
+(:mod:`benchrun.grading.uncertainty`), each with the calibration certificate it is taken from
+and the date of that calibration: the scope's vertical (gain) accuracy as a fraction of full
+scale, each probe's scale tolerance (attenuation, shunt resistance or sensitivity) and its
+residual skew after deskew. Values carry their units (``1.5 %``, ``0.5 ns``); a bare number
+is refused. They are bounds (half-widths) of rectangular distributions.
 
 The resource ``sim`` is a placeholder: ``benchrun demo`` and ``benchrun run`` resolve it to
 the matching instrument of an in-process simulated bench.
@@ -30,8 +41,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
 
-from pydantic import Field, field_validator, model_validator
+from pydantic import Field, field_serializer, field_validator, model_validator
 
+from benchrun.config.explicit import ExplicitFraction, ExplicitTimeBound
 from benchrun.config.loader import (
     Capacitance,
     Current,
@@ -57,13 +69,48 @@ SIM_RESOURCE = "sim"
 TOUCH_SAFE_V = 60.0
 
 
+class _Calibrated(StrictModel):
+    """Where an accuracy figure comes from: the calibration certificate and its date."""
+
+    certificate: str = Field(min_length=1)
+    calibrated: _dt.date
+
+    @field_serializer("calibrated")
+    def _iso_date(self, value: _dt.date) -> str:
+        # the runner writes the probes into run.json with model_dump(): dates as ISO text
+        return value.isoformat()
+
+    @property
+    def source(self) -> str:
+        """``"certificate CAL-0412, calibrated 2026-06-30"``."""
+        return f"certificate {self.certificate}, calibrated {self.calibrated.isoformat()}"
+
+
+class InstrumentAccuracy(_Calibrated):
+    """Accuracy of an instrument as its calibration certificate states it. ``vertical``: the
+    scope's DC gain accuracy as a fraction of full scale, each channel (``"1.5 %"``)."""
+
+    vertical: ExplicitFraction | None = None
+
+
+class ProbeAccuracy(_Calibrated):
+    """Accuracy of a probe as its calibration certificate states it: ``scale`` tolerance of
+    the attenuation, shunt resistance or sensitivity (``"1 %"``), and ``skew``, the residual
+    delay uncertainty after deskew (``"0.5 ns"``)."""
+
+    scale: ExplicitFraction
+    skew: ExplicitTimeBound = 0.0
+
+
 class InstrumentEntry(StrictModel):
-    """One instrument: where it is, which command table drives it, when it is due."""
+    """One instrument: where it is, which command table drives it, when it is due, and the
+    accuracy its calibration certificate states (the budgets use the scope's)."""
 
     resource: str = Field(min_length=1)
     family: str = Field(min_length=1, pattern=r"^[A-Za-z0-9_.-]+$")
     calibration_due: _dt.date | None = None
     timeout: Time = 5.0
+    accuracy: InstrumentAccuracy | None = None
 
     @field_validator("timeout")
     @classmethod
@@ -105,6 +152,7 @@ class ProbeEntry(StrictModel):
     resistance: Resistance | None = None
     sensitivity: Resistance | None = None
     deskew: Time = 0.0
+    accuracy: ProbeAccuracy | None = None
 
     @model_validator(mode="after")
     def _one_scaling(self) -> ProbeEntry:

@@ -15,15 +15,24 @@ a limit that names an undefined condition). Example (``limits/DX-4417.yaml``)::
     limits:
       - {metric: trr_s, max: 150 ns}                   # at every condition
       - {metric: qrr_C, condition: 25C, max: 2.5 uC}   # overrides a general entry there
+      - {metric: irrm_A, max: 48 A, aggregation: worst}  # worst shot (default for peaks)
     decision_rule: {rule: guarded, guard_factor: 1}    # w = r·U (ILAC-G8:09/2019)
-    uncertainty:                                       # GUM (JCGM 100:2008) inputs
-      coverage_factor: 2
-      scope_vertical_accuracy: 1.5 %                   # of full scale, each channel
-      current_sensor_tolerance: 1 %
-      voltage_probe_tolerance: 1 %
-      deskew: 0.5 ns
+    uncertainty: {coverage_factor: 2}                  # GUM (JCGM 100:2008) settings
     bins: {metric: qrr_C, condition: 125C, classes: [{name: Q1, max: 4 uC}, ...]}
-    lot: {acceptance_number: 0, indeterminate: nonconforming, invalid: nonconforming}
+    lot: {lot_size: 10, sample_size: 10, plan: zero-acceptance, aql: 1 %}
+
+Every limit, bin edge, tolerance and absolute uncertainty input is written with its unit
+(``150 ns``, ``5 %``, ``3 K``): a bare number is refused at its line
+(:mod:`benchrun.config.explicit`), except for the dimensionless metrics (softness, rrsf).
+Instrument and probe accuracies are not part of the part's limits: they come from the bench
+file (``benchrun.config.bench``, per instrument and probe with its calibration certificate).
+
+Aggregation: each limit says how a device's valid shots are combined before the decision —
+``mean`` (the mean of the shots, Type A term s/√n) or ``worst`` (the shot nearest to or beyond
+a limit, Type A term s of a single shot). Default: ``worst`` for the peak values
+:data:`PEAK_METRICS` (Irrm, Vrm: a peak limit protects against the worst event the part sees),
+``mean`` for every other metric (charges, energies and times are properties of the device that
+repeated shots estimate better on average).
 
 A test point belongs to a condition when its *requested* temperature (and, where the condition
 names them, forward current, bus voltage and di/dt) agree within the tolerances; a shot at
@@ -34,24 +43,22 @@ the same tolerances.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Any, Literal
 
-from pydantic import BeforeValidator, Field, ValidationInfo, field_validator, model_validator
+from pydantic import Field, ValidationInfo, field_validator, model_validator
 
 from benchrun.analysis.metrics_meta import METRICS
-from benchrun.config.loader import (
-    Current,
-    CurrentSlope,
-    Fraction,
-    StrictModel,
-    Temperature,
-    TemperatureBand,
-    Voltage,
-    read_yaml,
-    validate,
+from benchrun.config.explicit import (
+    ExplicitFraction,
+    ExplicitTemperatureBand,
+    ExplicitTolerance,
+    explicit,
+    has_no_unit,
+    parse_explicit,
+    unit_missing_message,
 )
-from benchrun.errors import ConfigError, UnitError
-from benchrun.units import parse_quantity
+from benchrun.config.loader import StrictModel, read_yaml, validate
+from benchrun.errors import ConfigError
 
 #: Unit symbol (as in :mod:`benchrun.analysis.metrics_meta`) → dimension for parse_quantity.
 _DIMENSION_OF_UNIT = {
@@ -91,18 +98,33 @@ def metric_unit(metric: str) -> str:
     return METRIC_UNITS.get(metric, ("", ""))[1]
 
 
-def _time_bound(value: Any) -> float:
+#: Metrics that are peak values of one event: graded on the worst shot by default.
+PEAK_METRICS = frozenset({"irrm_A", "vrm_V"})
+
+#: How a device's shots are combined for a limit.
+Aggregation = Literal["mean", "worst"]
+
+
+def default_aggregation(metric: str) -> str:
+    """``"worst"`` for the peak metrics (:data:`PEAK_METRICS`), ``"mean"`` otherwise."""
+    return "worst" if metric in PEAK_METRICS else "mean"
+
+
+def metric_value(value: Any, metric: str) -> float:
+    """Parse a limit, bin edge or absolute input of ``metric``: a unit of the metric's
+    dimension is required (a bare number is refused), except for dimensionless metrics."""
+    dimension = metric_dimension(metric)
+    if dimension == "dimensionless":
+        if isinstance(value, bool):
+            raise ValueError(f"expected a number, got {value!r}")
+        if has_no_unit(value):
+            return float(value)
+    elif has_no_unit(value):
+        raise ValueError(f"{unit_missing_message(value, dimension)} (limit of {metric})")
     try:
-        result = parse_quantity(value, "time")
-    except UnitError as exc:
-        raise ValueError(exc.message) from None
-    if result < 0:
-        raise ValueError("a time bound must not be negative")
-    return result
-
-
-#: A non-negative time bound: ``"0.5 ns"``.
-TimeBound = Annotated[float, BeforeValidator(_time_bound)]
+        return parse_explicit(value, dimension)
+    except ValueError as exc:
+        raise ValueError(f"{exc} (limit of {metric})") from None
 
 
 def _metric_quantity(value: Any, info: ValidationInfo) -> Any:
@@ -112,38 +134,50 @@ def _metric_quantity(value: Any, info: ValidationInfo) -> Any:
     metric = info.data.get("metric")
     if metric is None:  # the metric itself failed validation; its error is reported first
         return value
-    try:
-        return parse_quantity(value, metric_dimension(metric))
-    except UnitError as exc:
-        raise ValueError(f"{exc.message} (limit of {metric})") from None
+    return metric_value(value, metric)
+
+
+_Temperature = explicit("temperature")
+_Current = explicit("current")
+_Voltage = explicit("voltage")
+_CurrentSlope = explicit("current_slope")
 
 
 class Condition(StrictModel):
     """A required test condition (targets; unset ones are taken from the test point)."""
 
     name: str = Field(min_length=1)
-    temperature: Temperature = Field(gt=0)
-    forward_current: Current | None = Field(default=None, gt=0)
-    reverse_voltage: Voltage | None = Field(default=None, gt=0)
-    didt: CurrentSlope | None = Field(default=None, gt=0)
+    temperature: _Temperature = Field(gt=0)
+    forward_current: _Current | None = Field(default=None, gt=0)
+    reverse_voltage: _Voltage | None = Field(default=None, gt=0)
+    didt: _CurrentSlope | None = Field(default=None, gt=0)
 
 
 class Tolerances(StrictModel):
-    """Allowed deviation of measured from requested conditions (same names as the sequence)."""
+    """Allowed deviation of measured from requested conditions (same names as the sequence);
+    written with their units (``5 %``, ``3 K``)."""
 
-    forward_current: Fraction | None = 0.05
-    didt: Fraction | None = 0.25
-    reverse_voltage: Fraction | None = 0.05
-    temperature: TemperatureBand = 3.0
+    forward_current: ExplicitTolerance | None = 0.05
+    didt: ExplicitTolerance | None = 0.25
+    reverse_voltage: ExplicitTolerance | None = 0.05
+    temperature: ExplicitTemperatureBand = 3.0
 
 
 class MetricLimit(StrictModel):
-    """Lower and/or upper tolerance limit of one metric, at one condition or at all."""
+    """Lower and/or upper tolerance limit of one metric, at one condition or at all, and
+    how the device's shots are combined for it (``aggregation``; ``None`` = the metric's
+    default, :func:`default_aggregation`)."""
 
     metric: str
     condition: str | None = None
     min: float | None = None
     max: float | None = None
+    aggregation: Aggregation | None = None
+
+    @property
+    def combine(self) -> str:
+        """The aggregation in force: the stated one or the metric's default."""
+        return self.aggregation or default_aggregation(self.metric)
 
     @field_validator("metric")
     @classmethod
@@ -179,7 +213,7 @@ class ExtraContributor(StrictModel):
 
     metric: str
     name: str = Field(min_length=1)
-    relative: Fraction | None = None
+    relative: ExplicitFraction | None = None
     absolute: float | None = None
     distribution: Literal["rectangular", "triangular", "normal"] = "rectangular"
     coverage_factor: float = Field(default=2.0, gt=0)
@@ -204,24 +238,46 @@ class ExtraContributor(StrictModel):
         return self
 
 
-class UncertaintySpec(StrictModel):
-    """Inputs of the per-metric GUM budgets (see :mod:`benchrun.grading.uncertainty`).
+#: Uncertainty inputs that moved to the bench file, and where they are now.
+MOVED_TO_BENCH = {
+    "scope_vertical_accuracy": "instruments.scope.accuracy.vertical",
+    "current_sensor_tolerance": "probes.diode_current.accuracy.scale",
+    "voltage_probe_tolerance": "probes.diode_voltage.accuracy.scale",
+    "deskew": "probes.<signal>.accuracy.skew",
+}
 
-    Bounds are half-widths of rectangular distributions (JCGM 100:2008 §4.3.7) unless stated.
+
+class UncertaintySpec(StrictModel):
+    """Part-side settings of the per-metric GUM budgets (see
+    :mod:`benchrun.grading.uncertainty`): coverage factor, the analysis' integration end
+    fraction, whether repeatability is evaluated, and part-specific extra contributors.
+
+    Instrument and probe accuracies belong to the bench file
+    (:class:`benchrun.config.bench.InstrumentAccuracy`, :class:`~benchrun.config.bench.
+    ProbeAccuracy`); naming them here is refused with the key to use there.
     """
 
     coverage_factor: float = Field(default=2.0, gt=0, le=4)
-    scope_vertical_accuracy: Fraction = 0.015
-    current_sensor_tolerance: Fraction = 0.01
-    voltage_probe_tolerance: Fraction = 0.01
-    deskew: TimeBound = 0.5e-9
     integration_end_fraction: float = Field(default=0.02, gt=0, lt=1)
     repeatability: bool = True
     extra: list[ExtraContributor] = Field(default_factory=list)
 
+    @model_validator(mode="before")
+    @classmethod
+    def _moved(cls, data: Any) -> Any:
+        if isinstance(data, dict):
+            for key, where in MOVED_TO_BENCH.items():
+                if key in data:
+                    raise ValueError(
+                        f"{key!r} is an instrument or probe accuracy: it belongs to the bench "
+                        f"file ({where}, with its calibration certificate), not to the part's "
+                        "limits")
+        return data
+
 
 class BinClass(StrictModel):
-    """One bin class: ``min <= value <= max`` (either bound optional), SI units."""
+    """One bin class: ``min <= value <= max`` (either bound optional), SI units after
+    loading; written with units in the file."""
 
     name: str = Field(min_length=1)
     min: float | None = None
@@ -237,7 +293,9 @@ class BinClass(StrictModel):
 class BinSpec(StrictModel):
     """Classes of one metric at one condition, e.g. Qrr classes for parallel matching.
 
-    A device falls in the first class (in file order) whose bounds contain its value.
+    A conforming device falls in the first class (in file order) whose bounds contain its
+    value, unless the decision rule's guard band around its value crosses a class edge: then
+    it is *unbinned* (:mod:`benchrun.grading.bins`).
     """
 
     metric: str
@@ -256,7 +314,6 @@ class BinSpec(StrictModel):
         metric = info.data.get("metric")
         if metric is None or not isinstance(value, list):
             return value
-        dimension = metric_dimension(metric)
         parsed: list[Any] = []
         for index, item in enumerate(value):
             if not isinstance(item, dict):
@@ -267,22 +324,56 @@ class BinSpec(StrictModel):
                 if entry.get(key) is None:
                     continue
                 try:
-                    entry[key] = parse_quantity(entry[key], dimension)
-                except UnitError as exc:
+                    entry[key] = metric_value(entry[key], metric)
+                except ValueError as exc:
                     name = entry.get("name", index)
-                    raise ValueError(f"class {index} ({name}) {key}: {exc.message}") from None
+                    raise ValueError(f"class {index} ({name}) {key}: {exc}") from None
             parsed.append(entry)
         return parsed
 
 
-class LotRule(StrictModel):
-    """Lot acceptance by attributes: accept when at most ``acceptance_number`` (c) devices
-    count as non-conforming, and at least ``sample_size`` (n) devices were graded."""
+#: Inspection levels of ISO 2859-1 (general I-III, special S-1 to S-4).
+INSPECTION_LEVELS = ("I", "II", "III", "S-1", "S-2", "S-3", "S-4")
 
+
+class LotRule(StrictModel):
+    """Lot acceptance by attributes, single sampling: a sample of ``sample_size`` (n) devices
+    from a lot of ``lot_size`` (N) is accepted when at most ``acceptance_number`` (c) of them
+    count as non-conforming.
+
+    ``plan`` names where n and c come from: ``zero-acceptance`` (c = 0) or ``iso-2859-1``
+    (n and c as read from ISO 2859-1 Tables 1 and 2-A for the stated ``inspection_level`` and
+    ``aql``; the tool does not look them up). ``aql`` is required for both: the plan's
+    probability of acceptance at the AQL and its LTPD are computed from it
+    (:mod:`benchrun.grading.sampling`).
+    """
+
+    lot_size: int = Field(ge=1)
+    sample_size: int = Field(ge=1)
+    plan: Literal["zero-acceptance", "iso-2859-1"]
+    aql: ExplicitTolerance
     acceptance_number: int = Field(default=0, ge=0)
-    sample_size: int | None = Field(default=None, ge=1)
+    inspection_level: Literal["I", "II", "III", "S-1", "S-2", "S-3", "S-4"] | None = None
     indeterminate: Literal["nonconforming", "conforming"] = "nonconforming"
     invalid: Literal["nonconforming", "excluded"] = "nonconforming"
+
+    @model_validator(mode="after")
+    def _consistent(self) -> LotRule:
+        if self.sample_size > self.lot_size:
+            raise ValueError(f"sample size n = {self.sample_size} is larger than the lot "
+                             f"(N = {self.lot_size})")
+        if self.acceptance_number >= self.sample_size:
+            raise ValueError(f"acceptance number c = {self.acceptance_number} must be smaller "
+                             f"than the sample size n = {self.sample_size}")
+        if self.plan == "zero-acceptance" and self.acceptance_number != 0:
+            raise ValueError("a zero-acceptance plan has c = 0; use plan: iso-2859-1 for "
+                             f"c = {self.acceptance_number}")
+        if self.plan == "iso-2859-1" and self.inspection_level is None:
+            raise ValueError("an ISO 2859-1 plan names its inspection_level (I, II, III, "
+                             "S-1 ... S-4)")
+        if self.plan == "zero-acceptance" and self.inspection_level is not None:
+            raise ValueError("inspection_level belongs to an ISO 2859-1 plan")
+        return self
 
 
 class LimitsSpec(StrictModel):
@@ -297,7 +388,7 @@ class LimitsSpec(StrictModel):
     decision_rule: DecisionRuleSpec = DecisionRuleSpec()
     uncertainty: UncertaintySpec = UncertaintySpec()
     bins: BinSpec | None = None
-    lot: LotRule = LotRule()
+    lot: LotRule
 
     def condition(self, name: str) -> Condition:
         """The condition called ``name``."""

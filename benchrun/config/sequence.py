@@ -16,8 +16,9 @@ Quantities are written as engineers write them. Example (``sequences/dx4417-demo
         shot_spacing: 0.2 s
     tolerances: {forward_current: 5 %, didt: 25 %, reverse_voltage: 5 %, temperature: 3 K}
 
-Relative tolerances are written ``"5 %"`` (or a plain fraction, 0.05); temperature tolerances
-and bands are temperature *differences* (``"3 K"``; ``"3 degC"`` is read as a difference here).
+The ``tolerances`` are written with their units: relative ones ``"5 %"`` (a bare ``0.05`` is
+refused), temperature tolerances and bands as temperature *differences* (``"3 K"``;
+``"3 degC"`` is read as a difference here).
 """
 
 from __future__ import annotations
@@ -27,6 +28,7 @@ from typing import Any, Literal
 
 from pydantic import Field, field_validator, model_validator
 
+from benchrun.config.explicit import ExplicitTemperatureBand, ExplicitTolerance
 from benchrun.config.loader import (
     Current,
     CurrentSlope,
@@ -76,12 +78,14 @@ class TestPointSpec(StrictModel):
 
 
 class Tolerances(StrictModel):
-    """Allowed deviation of the measured conditions from the requested ones (per shot)."""
+    """Allowed deviation of the measured conditions from the requested ones (per shot),
+    written with their units (``"5 %"``, ``"3 K"``; a bare number is refused,
+    :mod:`benchrun.config.explicit`)."""
 
-    forward_current: Fraction = 0.05
-    didt: Fraction = 0.25
-    reverse_voltage: Fraction = 0.05
-    temperature: TemperatureBand = 3.0
+    forward_current: ExplicitTolerance = 0.05
+    didt: ExplicitTolerance = 0.25
+    reverse_voltage: ExplicitTolerance = 0.05
+    temperature: ExplicitTemperatureBand = 3.0
 
 
 class ThermalSettings(StrictModel):

@@ -8,10 +8,13 @@ matches two different test points).
 Per device and required condition, the shots at the test point matching the condition are
 checked against the tolerances: a shot whose measured IF, di/dt, VR or temperature lies
 outside them, or that the runner or the analysis marked invalid, is *invalid* and never graded.
-Each metric is graded on the mean of the remaining valid shots (``n`` reported) with its GUM
-budget (:mod:`benchrun.grading.uncertainty`) and the decision rule
-(:mod:`benchrun.grading.decision`). A required condition without any valid shot makes the
-device *invalid*.
+Each limited metric is graded on the aggregate its limit names (``mean`` of the valid shots,
+or the ``worst`` shot: the one nearest to or beyond a limit; default per metric in
+:func:`benchrun.config.limits.default_aggregation`; ``n`` reported) with its GUM budget
+(:mod:`benchrun.grading.uncertainty`; instrument and probe accuracies from the bench file) and
+the decision rule (:mod:`benchrun.grading.decision`). A required condition without any valid
+shot makes the device *invalid*. Bins follow the same decision rule at their edges
+(:mod:`benchrun.grading.bins`), the lot its sampling plan (:mod:`benchrun.grading.sampling`).
 """
 
 from __future__ import annotations
@@ -19,18 +22,21 @@ from __future__ import annotations
 import math
 import statistics
 from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import replace
 from typing import Any
 
+from benchrun.config.bench import BenchConfig
 from benchrun.config.limits import (
     METRIC_UNITS,
     Condition,
     ExtraContributor,
     LimitsSpec,
+    MetricLimit,
     Tolerances,
     metric_unit,
 )
 from benchrun.errors import GradingError
-from benchrun.grading.bins import assign_bin
+from benchrun.grading.bins import bin_with_guard
 from benchrun.grading.decision import (
     CONFORMING,
     INDETERMINATE,
@@ -50,13 +56,16 @@ from benchrun.grading.lot import (
     summarize,
 )
 from benchrun.grading.results import DeviceGrade, LotGrade, MetricGrade
+from benchrun.grading.sampling import sampling_plan
 from benchrun.grading.uncertainty import (
     Contributor,
     InstrumentInputs,
     UncertaintyBudget,
+    bench_inputs,
     metric_budget,
     rectangular,
     triangular,
+    type_a,
 )
 from benchrun.records import ShotResult, TestPoint, invalid_for_conditions_only
 from benchrun.units import format_si
@@ -222,25 +231,71 @@ def _extra_contributors(
     return result
 
 
-def _inputs(spec: LimitsSpec) -> InstrumentInputs:
-    u = spec.uncertainty
-    return InstrumentInputs(
-        scope_vertical_accuracy=u.scope_vertical_accuracy,
-        current_sensor_tolerance=u.current_sensor_tolerance,
-        voltage_probe_tolerance=u.voltage_probe_tolerance,
-        deskew=u.deskew,
-        integration_end_fraction=u.integration_end_fraction,
-    )
+def _inputs(spec: LimitsSpec, bench: BenchConfig | InstrumentInputs) -> InstrumentInputs:
+    """Budget inputs: the bench file's instrument and probe accuracies, the limits file's
+    integration end fraction."""
+    fraction = spec.uncertainty.integration_end_fraction
+    if isinstance(bench, InstrumentInputs):
+        return replace(bench, integration_end_fraction=fraction)
+    return bench_inputs(bench, fraction)
+
+
+def _worst_of(samples: Sequence[float], limit: MetricLimit) -> float:
+    """The shot value nearest to (or farthest beyond) the limits."""
+    def margin(x: float) -> float:
+        room = []
+        if limit.max is not None:
+            room.append(limit.max - x)
+        if limit.min is not None:
+            room.append(x - limit.min)
+        return min(room)
+
+    return min(samples, key=lambda x: (margin(x), x))
+
+
+def _aggregate_budget(
+    metric: str, limit: MetricLimit, samples: Sequence[float], means: Mapping[str, float],
+    acquisition: Mapping[str, float], inputs: InstrumentInputs, spec: LimitsSpec,
+) -> tuple[float, UncertaintyBudget]:
+    """Value and budget of ``metric`` under its limit's aggregation (mean or worst shot)."""
+    k = spec.uncertainty.coverage_factor
+    if limit.combine == "mean":
+        value = means[metric]
+        return value, metric_budget(
+            metric, means, acquisition, inputs,
+            repeat_samples=samples,
+            extra=_extra_contributors(spec.uncertainty.extra, metric, value),
+            coverage_factor=k,
+            include_repeatability=spec.uncertainty.repeatability,
+        )
+    value = _worst_of(samples, limit)
+    at_value = {**means, metric: value}
+    extra = _extra_contributors(spec.uncertainty.extra, metric, value)
+    notes = [f"graded on the worst of {len(samples)} shot(s)"]
+    if spec.uncertainty.repeatability:
+        evaluated = type_a(list(samples))
+        if evaluated is None:
+            notes.append("single shot: repeatability not evaluated (Type A needs n ≥ 2)")
+        else:
+            s_one = evaluated[0]
+            extra.insert(0, Contributor(
+                f"repeatability of one shot, s = {s_one:.4g} from n = {len(samples)} shots",
+                "Type A, s of a single reading (JCGM 100:2008 §4.2.2)", s_one,
+                metric_unit(metric) or "1", 1.0))
+    budget = metric_budget(metric, at_value, acquisition, inputs, extra=extra,
+                           coverage_factor=k, include_repeatability=False)
+    return value, replace(budget, notes=(*notes, *budget.notes))
 
 
 def _label(metric: str, condition: str) -> str:
     return f"{metric} at {condition}"
 
 
-def _invalid_grade(metric: str, condition: str, k: float, lower: float | None,
-                   upper: float | None, reason: str) -> MetricGrade:
+def _invalid_grade(metric: str, condition: str, k: float, limit: MetricLimit,
+                   reason: str) -> MetricGrade:
     return MetricGrade(metric, condition, metric_unit(metric), None, 0, None, None, k,
-                       lower, upper, None, None, None, INVALID, "not graded", reason)
+                       limit.min, limit.max, None, None, None, INVALID, "not graded", reason,
+                       aggregation=limit.combine)
 
 
 def _hot_cold(spec: LimitsSpec) -> tuple[Condition, Condition] | None:
@@ -251,15 +306,51 @@ def _hot_cold(spec: LimitsSpec) -> tuple[Condition, Condition] | None:
     return hot, cold
 
 
+def _bin(
+    spec: LimitsSpec,
+    rule: DecisionRule,
+    grades: Sequence[MetricGrade],
+    values: Mapping[str, Mapping[str, float]],
+    samples: Mapping[str, Mapping[str, list[float]]],
+    acquisitions: Mapping[str, Mapping[str, float]],
+    inputs: InstrumentInputs,
+) -> tuple[str | None, str]:
+    """Bin class of a conforming device with the decision rule applied at the class edges:
+    the value and guard band of the bin metric's grade at the bin condition, or (when that
+    metric is not limited there) its mean with its own budget."""
+    bins = spec.bins
+    assert bins is not None
+    condition = bins.condition or spec.conditions[0].name
+    metric, unit = bins.metric, metric_unit(bins.metric)
+    graded = [g for g in grades if g.metric == metric and g.condition == condition
+              and g.value is not None]
+    if graded:
+        value, w = graded[0].value, graded[0].guard_band or 0.0
+    else:
+        value = values.get(condition, {}).get(metric)
+        w = 0.0
+        if value is not None:
+            budget = metric_budget(
+                metric, values[condition], acquisitions.get(condition, {}), inputs,
+                repeat_samples=samples.get(condition, {}).get(metric, ()),
+                extra=_extra_contributors(spec.uncertainty.extra, metric, value),
+                coverage_factor=spec.uncertainty.coverage_factor,
+                include_repeatability=spec.uncertainty.repeatability)
+            w = rule.guard_band(budget.expanded)
+    assignment = bin_with_guard(value, w, bins.classes, name=f"{metric} at {condition}",
+                                unit=unit)
+    return assignment.name, assignment.reason
+
+
 def _grade_device(
     serial: str,
     shots: Sequence[ShotResult],
     spec: LimitsSpec,
     points: Mapping[str, TestPoint | None],
     rule: DecisionRule,
+    inputs: InstrumentInputs,
 ) -> tuple[DeviceGrade, dict[str, dict[str, list[float]]], dict[str, dict[str, float]]]:
     k = spec.uncertainty.coverage_factor
-    inputs = _inputs(spec)
     grades: list[MetricGrade] = []
     reasons: list[str] = []
     outcomes: list[str] = []
@@ -302,30 +393,28 @@ def _grade_device(
         for limit in spec.limits_at(name):
             metric = limit.metric
             if not valid:
-                grades.append(_invalid_grade(metric, name, k, limit.min, limit.max,
+                grades.append(_invalid_grade(metric, name, k, limit,
                                              f"no valid shot at {name}"))
                 continue
             if metric not in means:
-                grades.append(_invalid_grade(metric, name, k, limit.min, limit.max,
+                grades.append(_invalid_grade(metric, name, k, limit,
                                              f"{metric} not found in any valid shot at {name}"))
                 outcomes.append(INVALID)
                 reasons.append(f"{_label(metric, name)}: not measured")
                 continue
-            value = means[metric]
-            budget = metric_budget(
-                metric, means, acquisition, inputs,
-                repeat_samples=samples[metric],
-                extra=_extra_contributors(spec.uncertainty.extra, metric, value),
-                coverage_factor=k,
-                include_repeatability=spec.uncertainty.repeatability,
-            )
+            value, budget = _aggregate_budget(metric, limit, samples[metric], means,
+                                              acquisition, inputs, spec)
+            label = _label(metric, name)
+            if limit.combine == "worst":
+                label = f"{metric} (worst shot) at {name}"
             decision = decide(value, budget.expanded, limit.min, limit.max, rule,
-                              name=_label(metric, name), unit=metric_unit(metric))
+                              name=label, unit=metric_unit(metric))
             grades.append(MetricGrade(
                 metric, name, metric_unit(metric), value, len(samples[metric]),
                 budget.expanded, budget.combined, k, limit.min, limit.max,
                 decision.acceptance_lower, decision.acceptance_upper, decision.guard_band,
                 decision.outcome, decision.statement, decision.reason, budget,
+                aggregation=limit.combine, shot_values=tuple(samples[metric]),
             ))
             outcomes.append(decision.outcome)
             if decision.outcome != CONFORMING:
@@ -333,14 +422,12 @@ def _grade_device(
     verdict = worst(outcomes)
     if verdict == CONFORMING:
         reasons.insert(0, "every limit met at every required condition")
-    chosen_bin = None
+    chosen_bin = bin_reason = None
     if spec.bins is not None and verdict == CONFORMING:
-        bin_condition = spec.bins.condition or spec.conditions[0].name
-        bin_value = values.get(bin_condition, {}).get(spec.bins.metric)
-        chosen_bin = assign_bin(bin_value, spec.bins.classes)
+        chosen_bin, bin_reason = _bin(spec, rule, grades, values, all_samples, acquisitions,
+                                      inputs)
         if chosen_bin is None:
-            shown = format_si(bin_value, metric_unit(spec.bins.metric))
-            reasons.append(f"{spec.bins.metric} at {bin_condition} {shown} is in no bin class")
+            reasons.append(bin_reason)
     ratios: dict[str, float] = {}
     pair = _hot_cold(spec)
     if pair is not None:
@@ -349,7 +436,7 @@ def _grade_device(
             if key in cold and cold[key] != 0:
                 ratios[key] = hot[key] / cold[key]
     device = DeviceGrade(serial, verdict, chosen_bin, tuple(grades), tuple(reasons), values,
-                         counts, tuple(invalid_shots), ratios)
+                         counts, tuple(invalid_shots), ratios, bin_reason)
     return device, all_samples, acquisitions
 
 
@@ -366,10 +453,10 @@ def _lot_budgets(
     devices: Sequence[DeviceGrade],
     samples: Mapping[str, Mapping[str, Mapping[str, list[float]]]],
     acquisitions: Mapping[str, Mapping[str, Mapping[str, float]]],
+    inputs: InstrumentInputs,
 ) -> dict[str, UncertaintyBudget]:
     """Representative budget per limited metric and condition: at the lot-mean values, the
     largest acquisition settings, and the pooled within-device standard deviation."""
-    inputs = _inputs(spec)
     budgets: dict[str, UncertaintyBudget] = {}
     for condition in spec.conditions:
         name = condition.name
@@ -417,7 +504,16 @@ def _lot_budgets(
     return budgets
 
 
+def _has_value(device: DeviceGrade, metric: str, condition: str) -> bool:
+    try:
+        return device.grade(metric, condition).value is not None
+    except KeyError:
+        return False
+
+
 def _lot_statistics(spec: LimitsSpec, devices: Sequence[DeviceGrade]) -> LotStatistics:
+    """Counts and, for each graded metric, statistics of the devices' graded values (the
+    aggregate each limit names), capability and outliers."""
     count = len(devices)
     tally = {v: sum(1 for d in devices if d.verdict == v)
              for v in (CONFORMING, NONCONFORMING, INDETERMINATE, INVALID)}
@@ -425,18 +521,15 @@ def _lot_statistics(spec: LimitsSpec, devices: Sequence[DeviceGrade]) -> LotStat
     outliers: list[Outlier] = []
     for condition in spec.conditions:
         name = condition.name
-        limited = {item.metric: item for item in spec.limits_at(name)}
-        present = {key for d in devices for key in d.values.get(name, {})}
-        order = [m for m in limited if m in present]
-        order += sorted((m for m in present if m not in limited and m in METRIC_UNITS),
-                        key=_metric_order)
-        for metric in order:
-            serials = [d.serial for d in devices if metric in d.values.get(name, {})]
-            column = [d.values[name][metric] for d in devices if metric in d.values.get(name, {})]
-            limit = limited.get(metric)
-            metrics.append(summarize(metric, name, column,
-                                     None if limit is None else limit.min,
-                                     None if limit is None else limit.max))
+        for limit in spec.limits_at(name):
+            metric = limit.metric
+            graded = [(d.serial, d.grade(limit.metric, name).value) for d in devices
+                      if _has_value(d, metric, name)]
+            if not graded:
+                continue
+            serials = [serial for serial, _ in graded]
+            column = [float(value) for _, value in graded]  # type: ignore[arg-type]
+            metrics.append(summarize(metric, name, column, limit.min, limit.max))
             outliers.extend(find_outliers(metric, name, serials, column))
     ratios: list[RatioStatistics] = []
     pair = _hot_cold(spec)
@@ -458,17 +551,17 @@ def _lot_statistics(spec: LimitsSpec, devices: Sequence[DeviceGrade]) -> LotStat
 def describe_lot_rule(spec: LimitsSpec) -> str:
     """The lot acceptance rule as a sentence for the report."""
     rule = spec.lot
-    text = (f"Accept the lot when at most c = {rule.acceptance_number} device(s) count as "
-            "non-conforming")
-    if rule.sample_size is not None:
-        text += f" and at least n = {rule.sample_size} device(s) were graded"
+    text = (f"Accept the lot when at most c = {rule.acceptance_number} of the n = "
+            f"{rule.sample_size} sampled device(s) count as non-conforming (lot of N = "
+            f"{rule.lot_size}); fewer than n graded devices reject the lot")
     text += (f"; an indeterminate device counts as {rule.indeterminate.replace('non', 'non-')}"
              f", an invalid device is "
              f"{'counted as non-conforming' if rule.invalid == 'nonconforming' else 'excluded'}.")
     return text
 
 
-def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec) -> LotGrade:
+def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
+              bench: BenchConfig | InstrumentInputs) -> LotGrade:
     """Grade every device in ``shots`` against ``limits`` (pure).
 
     Parameters
@@ -477,28 +570,38 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec) -> LotGrade:
         Analysed shots of one part (all repeats and retries, valid or not).
     limits
         The limits file, as loaded by :func:`benchrun.config.limits.load_limits`.
+    bench
+        The bench file the shots were taken on (its instrument and probe accuracies are the
+        budgets' inputs, :func:`benchrun.grading.uncertainty.bench_inputs`), or those inputs.
 
     Raises
     ------
     GradingError
-        The shots are of another part, or a condition cannot be matched to one test point.
+        The shots are of another part, a condition cannot be matched to one test point, the
+        bench file states no accuracy, or more devices were tested than the lot holds.
     """
     shots = list(shots)
     other = sorted({s.part for s in shots if s.part != limits.part})
     if other:
         raise GradingError(f"limits for {limits.part} cannot grade shots of {', '.join(other)}")
     rule = DecisionRule(limits.decision_rule.rule, limits.decision_rule.guard_factor)
+    inputs = _inputs(limits, bench)
     points = _match_points(shots, limits)
     by_serial: dict[str, list[ShotResult]] = {}
     for item in shots:
         by_serial.setdefault(item.serial, []).append(item)
     serials = sorted(by_serial)
+    if len(serials) > limits.lot.lot_size:
+        raise GradingError(
+            f"{len(serials)} devices were tested but the limits file's lot rule states a lot "
+            f"of N = {limits.lot.lot_size}: a sample larger than the lot is refused; correct "
+            "lot.lot_size")
     devices: list[DeviceGrade] = []
     samples: dict[str, dict[str, dict[str, list[float]]]] = {}
     acquisitions: dict[str, dict[str, dict[str, float]]] = {}
     for serial in serials:
         device, device_samples, device_acq = _grade_device(
-            serial, by_serial[serial], limits, points, rule)
+            serial, by_serial[serial], limits, points, rule, inputs)
         devices.append(device)
         samples[serial] = device_samples
         acquisitions[serial] = device_acq
@@ -527,7 +630,24 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec) -> LotGrade:
         disposition=decision,
         reasons=reasons,
         statistics=_lot_statistics(limits, devices),
-        budgets=_lot_budgets(limits, devices, samples, acquisitions),
+        budgets=_lot_budgets(limits, devices, samples, acquisitions, inputs),
         decision_rule=rule.describe(limits.uncertainty.coverage_factor),
         lot_rule=describe_lot_rule(limits),
+        plan=sampling_plan(limits.lot),
+        instrument_inputs=inputs.to_dict(),
+        limits=_limit_table(limits),
     )
+
+
+def _limit_table(spec: LimitsSpec) -> tuple[dict[str, Any], ...]:
+    """Every limit in force per condition with its aggregation (for the report and CLI)."""
+    rows = []
+    for condition in spec.conditions:
+        for limit in spec.limits_at(condition.name):
+            rows.append({
+                "metric": limit.metric, "condition": condition.name,
+                "unit": metric_unit(limit.metric), "lower": limit.min, "upper": limit.max,
+                "aggregation": limit.combine,
+                "aggregation_stated": limit.aggregation is not None,
+            })
+    return tuple(rows)

@@ -3,7 +3,17 @@
 - Process capability ``Cpk = min(USL − μ, μ − LSL)/(3σ)``; with one limit the one-sided index
   ``Cpu = (USL − μ)/(3σ)`` or ``Cpl = (μ − LSL)/(3σ)`` (Montgomery, *Introduction to Statistical
   Quality Control*, ch. 8, process capability ratios). σ is the sample standard deviation of
-  the devices' mean values.
+  the devices' values. Computed for graded metrics only (a metric with a limit at the
+  condition), and stated only from :data:`MIN_CAPABILITY_N` devices on (below that the
+  estimate is too uncertain to print; common practice, from memory of the usual guidance of
+  at least 25 to 30 values).
+- Lower confidence bound of Cpk (one-sided, 95 %), Bissell's normal approximation
+  (A. F. Bissell, "How reliable is your capability index?", *Applied Statistics* 39(3),
+  1990, pp. 331-340)::
+
+      Cpk_L = Ĉpk − z_{1−α} · sqrt(1/(9n) + Ĉpk²/(2(n − 1)))
+
+  with z_{0.95} = 1.645; the same formula bounds the one-sided Cpu and Cpl.
 - Outliers by the modified z-score ``M_i = 0.6745·(x_i − median)/MAD`` with ``|M_i| > 3.5``
   (Iglewicz & Hoaglin, *How to Detect and Handle Outliers*, ASQC Basic References in Quality
   Control vol. 16, 1993). With MAD = 0 no outlier is declared (the score is undefined).
@@ -24,6 +34,31 @@ from benchrun.grading.decision import CONFORMING, INDETERMINATE, INVALID, NONCON
 
 #: Threshold of the modified z-score (Iglewicz & Hoaglin 1993).
 MODIFIED_Z_LIMIT = 3.5
+#: Fewest devices from which a capability index is stated (common practice, from memory).
+MIN_CAPABILITY_N = 25
+#: One-sided confidence level of the Cpk lower bound and its normal quantile z_{0.95}.
+CAPABILITY_CONFIDENCE = 0.95
+Z_95 = 1.6448536269514722
+#: The capability method as stated on the report.
+CAPABILITY_METHOD = (
+    f"Cpk = min(USL − mean, mean − LSL)/(3s) over the devices' values (Montgomery, "
+    f"Introduction to Statistical Quality Control, ch. 8); lower {CAPABILITY_CONFIDENCE:.0%} "
+    "confidence bound by Bissell's approximation Cpk − z·sqrt(1/(9n) + Cpk²/(2(n − 1))) "
+    f"(Bissell, Applied Statistics 39(3), 1990); stated only from n = {MIN_CAPABILITY_N} "
+    "devices (common practice)"
+)
+#: The outlier test as stated on the report.
+OUTLIER_TEST = (
+    f"modified z-score |0.6745·(x − median)/MAD| > {MODIFIED_Z_LIMIT:g} (Iglewicz & Hoaglin, "
+    "How to Detect and Handle Outliers, ASQC 1993)"
+)
+
+
+def cpk_lower_bound(cpk: float, n: int, z: float = Z_95) -> float | None:
+    """Bissell's (1990) approximate lower confidence bound of Cpk (``None`` for n < 2)."""
+    if n < 2 or not math.isfinite(cpk):
+        return None
+    return cpk - z * math.sqrt(1.0 / (9.0 * n) + cpk * cpk / (2.0 * (n - 1)))
 #: 0.6745 = Φ⁻¹(0.75): makes MAD a consistent estimator of σ for normal data.
 MAD_CONSTANT = 0.6745
 
@@ -70,6 +105,8 @@ class MetricStatistics:
     cpk: float | None
     cpl: float | None
     cpu: float | None
+    cpk_lower: float | None = None
+    capability_note: str = ""
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -85,6 +122,8 @@ class MetricStatistics:
             "cpk": self.cpk,
             "cpl": self.cpl,
             "cpu": self.cpu,
+            "cpk_lower": self.cpk_lower,
+            "capability_note": self.capability_note,
         }
 
 
@@ -94,19 +133,34 @@ def summarize(
     values: Sequence[float],
     lower: float | None = None,
     upper: float | None = None,
+    *,
+    min_n: int = MIN_CAPABILITY_N,
 ) -> MetricStatistics:
-    """Count, mean, sample σ (n − 1), min, max and capability of ``values``."""
+    """Count, mean, sample σ (n − 1), min, max and capability of ``values``.
+
+    The capability indices and their lower confidence bound are stated only for a graded
+    metric (a limit given) from ``min_n`` values on; otherwise they are ``None`` and
+    ``capability_note`` says why.
+    """
     n = len(values)
     if n == 0:
         return MetricStatistics(metric, condition, 0, None, None, None, None, lower, upper,
-                                None, None, None)
+                                None, None, None, None, "no values")
     mean = math.fsum(values) / n
     std = statistics.stdev(values) if n >= 2 else None
-    cpk = cpl = cpu = None
-    if std is not None and (lower is not None or upper is not None):
+    cpk = cpl = cpu = low = None
+    note = ""
+    if lower is None and upper is None:
+        note = "not graded: no capability"
+    elif n < min_n:
+        note = f"n = {n} < {min_n}: capability not stated"
+    elif std is not None:
         cpk, cpl, cpu = capability(mean, std, lower, upper)
+        low = None if cpk is None else cpk_lower_bound(cpk, n)
+        if cpk is None:
+            note = "s = 0: capability undefined"
     return MetricStatistics(metric, condition, n, mean, std, min(values), max(values),
-                            lower, upper, cpk, cpl, cpu)
+                            lower, upper, cpk, cpl, cpu, low, note)
 
 
 @dataclass(frozen=True)
@@ -118,10 +172,11 @@ class Outlier:
     condition: str
     value: float
     z: float
+    test: str = OUTLIER_TEST
 
     def to_dict(self) -> dict[str, Any]:
         return {"serial": self.serial, "metric": self.metric, "condition": self.condition,
-                "value": self.value, "modified_z": self.z}
+                "value": self.value, "modified_z": self.z, "test": self.test}
 
 
 def find_outliers(
@@ -166,6 +221,8 @@ class LotStatistics:
     metrics: tuple[MetricStatistics, ...]
     ratios: tuple[RatioStatistics, ...]
     outliers: tuple[Outlier, ...]
+    capability_method: str = CAPABILITY_METHOD
+    outlier_test: str = OUTLIER_TEST
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -178,6 +235,8 @@ class LotStatistics:
             "metrics": [m.to_dict() for m in self.metrics],
             "ratios": [r.to_dict() for r in self.ratios],
             "outliers": [o.to_dict() for o in self.outliers],
+            "capability_method": self.capability_method,
+            "outlier_test": self.outlier_test,
         }
 
 

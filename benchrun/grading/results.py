@@ -10,6 +10,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from benchrun.grading.lot import LotStatistics
+from benchrun.grading.sampling import SamplingPlan
 from benchrun.grading.uncertainty import UncertaintyBudget
 from benchrun.records import json_safe
 
@@ -35,6 +36,10 @@ class MetricGrade:
     statement: str
     reason: str
     budget: UncertaintyBudget | None = None
+    #: how the shots were combined: ``"mean"`` or ``"worst"`` (the shot nearest a limit)
+    aggregation: str = "mean"
+    #: the valid shots' values the grade was taken from, in shot order
+    shot_values: tuple[float, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -55,6 +60,8 @@ class MetricGrade:
             "statement": self.statement,
             "reason": self.reason,
             "budget": None if self.budget is None else self.budget.to_dict(),
+            "aggregation": self.aggregation,
+            "shot_values": list(self.shot_values),
         }
 
 
@@ -71,6 +78,14 @@ class DeviceGrade:
     shots: dict[str, dict[str, int]] = field(default_factory=dict)
     invalid_shots: tuple[str, ...] = ()
     ratios: dict[str, float] = field(default_factory=dict)
+    #: why the device is in its bin, or why it is unbinned (``None``: no bins or not
+    #: conforming)
+    bin_reason: str | None = None
+
+    @property
+    def unbinned(self) -> bool:
+        """A conforming device the bins could not place (see ``bin_reason``)."""
+        return self.bin is None and self.bin_reason is not None
 
     def grade(self, metric: str, condition: str) -> MetricGrade:
         """The grade of ``metric`` at ``condition``."""
@@ -90,6 +105,7 @@ class DeviceGrade:
             "shots": {c: dict(v) for c, v in self.shots.items()},
             "invalid_shots": list(self.invalid_shots),
             "ratios": dict(self.ratios),
+            "bin_reason": self.bin_reason,
         }
 
 
@@ -108,6 +124,12 @@ class LotGrade:
     budgets: dict[str, UncertaintyBudget]
     decision_rule: str
     lot_rule: str
+    #: the sampling plan and its OC figures (Pa at the AQL, LTPD)
+    plan: SamplingPlan | None = None
+    #: the instrument and probe accuracies the budgets used, with their certificates
+    instrument_inputs: dict[str, Any] = field(default_factory=dict)
+    #: every limit in force per condition: metric, condition, unit, lower, upper, aggregation
+    limits: tuple[dict[str, Any], ...] = ()
 
     def device(self, serial: str) -> DeviceGrade:
         """The grade of the device ``serial``."""
@@ -130,6 +152,9 @@ class LotGrade:
             "budgets": {key: b.to_dict() for key, b in self.budgets.items()},
             "decision_rule": self.decision_rule,
             "lot_rule": self.lot_rule,
+            "plan": None if self.plan is None else self.plan.to_dict(),
+            "instrument_inputs": dict(self.instrument_inputs),
+            "limits": [dict(row) for row in self.limits],
         }
         return json_safe(data)
 

@@ -65,7 +65,9 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+from benchrun.config.bench import BenchConfig
 from benchrun.config.limits import metric_unit
+from benchrun.errors import GradingError
 from benchrun.units import format_si
 
 SQRT3 = math.sqrt(3.0)
@@ -191,17 +193,85 @@ def make_budget(
 
 @dataclass(frozen=True)
 class InstrumentInputs:
-    """Instrument-side inputs of the budgets (from the limits file's ``uncertainty`` block)."""
+    """Instrument-side inputs of the budgets, from the bench file (:func:`bench_inputs`).
+
+    The ``*_source`` strings name the calibration certificate each figure is taken from;
+    they appear in the budget lines.
+    """
 
     scope_vertical_accuracy: float = 0.015
     current_sensor_tolerance: float = 0.01
     voltage_probe_tolerance: float = 0.01
     deskew: float = 0.5e-9
     integration_end_fraction: float = 0.02
+    scope_source: str = ""
+    current_source: str = ""
+    voltage_source: str = ""
+    deskew_source: str = ""
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "scope_vertical_accuracy": self.scope_vertical_accuracy,
+            "current_sensor_tolerance": self.current_sensor_tolerance,
+            "voltage_probe_tolerance": self.voltage_probe_tolerance,
+            "deskew": self.deskew,
+            "integration_end_fraction": self.integration_end_fraction,
+            "scope_source": self.scope_source,
+            "current_source": self.current_source,
+            "voltage_source": self.voltage_source,
+            "deskew_source": self.deskew_source,
+        }
+
+
+def bench_inputs(bench: BenchConfig, integration_end_fraction: float = 0.02
+                 ) -> InstrumentInputs:
+    """Instrument and probe accuracies of a bench file as budget inputs.
+
+    The scope's ``accuracy.vertical`` and the ``accuracy.scale`` of the ``diode_current`` and
+    ``diode_voltage`` probes are required; the residual v–i skew bound is the root sum of
+    squares of the two probes' ``accuracy.skew`` (independent rectangular bounds, combined
+    as in JCGM 100:2008 eq. 10 and quoted as one bound).
+
+    Raises
+    ------
+    GradingError
+        The bench file does not state one of the required accuracies.
+    """
+    scope = bench.instruments.scope.accuracy
+    if scope is None or scope.vertical is None:
+        raise GradingError("the bench file gives no scope accuracy: add instruments.scope."
+                           "accuracy {vertical, certificate, calibrated} (the uncertainty "
+                           "budgets need it)")
+    probes = {}
+    for signal in ("diode_current", "diode_voltage"):
+        entry = bench.probes.get(signal)
+        if entry is None or entry.accuracy is None:
+            raise GradingError(f"the bench file gives no accuracy for the {signal} probe: add "
+                               f"probes.{signal}.accuracy {{scale, skew, certificate, "
+                               "calibrated}")
+        probes[signal] = entry.accuracy
+    current, voltage = probes["diode_current"], probes["diode_voltage"]
+    skew = math.hypot(current.skew, voltage.skew)
+    skew_sources = [p.source for p in (current, voltage) if p.skew > 0]
+    return InstrumentInputs(
+        scope_vertical_accuracy=scope.vertical,
+        current_sensor_tolerance=current.scale,
+        voltage_probe_tolerance=voltage.scale,
+        deskew=skew,
+        integration_end_fraction=integration_end_fraction,
+        scope_source=scope.source,
+        current_source=current.source,
+        voltage_source=voltage.source,
+        deskew_source="; ".join(skew_sources),
+    )
 
 
 _TYPE_B_RECT = "Type B, rectangular a/√3 (JCGM 100:2008 §4.3.7)"
 _TYPE_B_RES = "Type B, resolution δ/√12 (JCGM 100:2008 F.2.2.1)"
+
+
+def _cited(source: str) -> str:
+    return f" ({source})" if source else ""
 
 
 class _Builder:
@@ -232,7 +302,8 @@ class _Builder:
     def add(self, name: str, evaluation: str, u: float, unit: str, c: float) -> None:
         self.items.append(Contributor(name, evaluation, u, unit, c))
 
-    def scope_gain(self, channel: str, reference: float | None, c: float, acc: float) -> None:
+    def scope_gain(self, channel: str, reference: float | None, c: float, acc: float,
+                   source: str = "") -> None:
         range_key = "current_range_A" if channel == "current" else "voltage_range_V"
         full_scale = self.fact(range_key)
         if full_scale is None:
@@ -246,12 +317,14 @@ class _Builder:
         unit = "A" if channel == "current" else "V"
         self.add(
             f"{channel}-channel gain, scope vertical accuracy ±{100 * acc:.3g} % of "
-            f"{format_si(full_scale, unit)} full scale, relative to {format_si(reference, unit)}",
+            f"{format_si(full_scale, unit)} full scale, relative to {format_si(reference, unit)}"
+            + _cited(source),
             _TYPE_B_RECT, rectangular(bound), "1", c,
         )
 
-    def sensor(self, name: str, tolerance: float, c: float) -> None:
-        self.add(f"{name} ±{100 * tolerance:.3g} %", _TYPE_B_RECT, rectangular(tolerance), "1", c)
+    def sensor(self, name: str, tolerance: float, c: float, source: str = "") -> None:
+        self.add(f"{name} ±{100 * tolerance:.3g} %" + _cited(source), _TYPE_B_RECT,
+                 rectangular(tolerance), "1", c)
 
     def adc_step(self, channel: str) -> None:
         range_key = "current_range_A" if channel == "current" else "voltage_range_V"
@@ -299,6 +372,7 @@ def metric_contributors(
     y = b.get(metric)
     acc = inputs.scope_vertical_accuracy
     i_tol, v_tol = inputs.current_sensor_tolerance, inputs.voltage_probe_tolerance
+    s_acc, s_i, s_v = inputs.scope_source, inputs.current_source, inputs.voltage_source
     if y is None:
         return [], [f"{metric} not measured"]
     irrm, if_, vr, vrm = b.get("irrm_A"), b.get("if_A"), b.get("vr_V"), b.get("vrm_V")
@@ -307,8 +381,8 @@ def metric_contributors(
     current_sensor = "current-sensor scale tolerance"
     voltage_probe = "voltage-probe scale tolerance"
     if metric in ("if_A", "irrm_A"):
-        b.scope_gain("current", y, y, acc)
-        b.sensor(current_sensor, i_tol, y)
+        b.scope_gain("current", y, y, acc, s_acc)
+        b.sensor(current_sensor, i_tol, y, s_i)
         if metric == "irrm_A":
             b.adc_step("current")
     elif metric == "ta_s":
@@ -331,37 +405,38 @@ def metric_contributors(
         b.notes.append("ratio of two slopes of one channel: gain errors cancel; "
                        "repeatability only")
     elif metric == "qrr_C":
-        b.scope_gain("current", irrm, y, acc)
-        b.sensor(current_sensor, i_tol, y)
+        b.scope_gain("current", irrm, y, acc, s_acc)
+        b.sensor(current_sensor, i_tol, y, s_i)
         if irrm is not None:
             b.instants([("the integration end t2", f_end * irrm)])
     elif metric == "err_J":
-        b.scope_gain("current", irrm, y, acc)
-        b.sensor(current_sensor, i_tol, y)
-        b.scope_gain("voltage", vrm if vrm is not None else vr, y, acc)
-        b.sensor(voltage_probe, v_tol, y)
+        b.scope_gain("current", irrm, y, acc, s_acc)
+        b.sensor(current_sensor, i_tol, y, s_i)
+        b.scope_gain("voltage", vrm if vrm is not None else vr, y, acc, s_acc)
+        b.sensor(voltage_probe, v_tol, y, s_v)
         if vr is not None and irrm is not None:
-            b.add(f"voltage-current deskew within ±{format_si(inputs.deskew, 's')}", _TYPE_B_RECT,
+            b.add(f"voltage-current deskew within ±{format_si(inputs.deskew, 's')}"
+                  + _cited(inputs.deskew_source), _TYPE_B_RECT,
                   rectangular(inputs.deskew), "s", vr * irrm)
             b.instants([("the integration end t2", vr * f_end * irrm)])
         else:
             b.notes.append("VR or Irrm not measured: deskew and end-instant terms not included")
     elif metric == "didt_A_per_s":
         reference = max((x for x in (if_, irrm) if x is not None), default=None)
-        b.scope_gain("current", reference, y, acc)
-        b.sensor(current_sensor, i_tol, y)
+        b.scope_gain("current", reference, y, acc, s_acc)
+        b.sensor(current_sensor, i_tol, y, s_i)
         if if_ is not None and irrm is not None and if_ + irrm > 0:
             delta_i = 0.5 * if_ + 0.5 * irrm
             c = y**2 / delta_i
             b.instants([("the +0.5·IF crossing", c), ("the −0.5·Irrm crossing", -c)])
     elif metric in ("vrm_V", "vr_V"):
-        b.scope_gain("voltage", y, y, acc)
-        b.sensor(voltage_probe, v_tol, y)
+        b.scope_gain("voltage", y, y, acc, s_acc)
+        b.sensor(voltage_probe, v_tol, y, s_v)
         if metric == "vrm_V":
             b.adc_step("voltage")
     elif metric in ("eon_J", "eon_recovery_J"):
-        b.sensor(current_sensor, i_tol, y)
-        b.sensor(voltage_probe, v_tol, y)
+        b.sensor(current_sensor, i_tol, y, s_i)
+        b.sensor(voltage_probe, v_tol, y, s_v)
         b.notes.append("switch-channel scope accuracy and deskew not modelled")
     else:
         b.notes.append("no model for this metric: repeatability only")

@@ -74,7 +74,7 @@ def publish_report(
         The run has no folder to take the limits or the report path from and none was given.
     """
     from benchrun.config.limits import load_limits
-    from benchrun.grading import grade_lot
+    from benchrun.grading import grade_lot, run_bench
     from benchrun.loss import estimate_losses
     from benchrun.report.render import render_report
     from benchrun.store.rundata import LIMITS_FILE, load_run
@@ -88,7 +88,7 @@ def publish_report(
         if run.run_dir is None:
             raise ReportError("the run has no run folder: name the report file to write")
         out_pdf = run.run_dir / "report.pdf"
-    lot = grade_lot(run.shots, load_limits(limits_path))
+    lot = grade_lot(run.shots, load_limits(limits_path), bench=run_bench(run))
     freqs = switching_frequencies_Hz
     if freqs is None:
         freqs = list(run.manifest.get("switching_frequencies_Hz") or [])

@@ -142,7 +142,7 @@ def reanalysis_check(attachment: dict[str, Any] | None, run: Any,
     metrics = _reanalyse_shots(rows, run, options, problems)
     shot_problems = len(problems)
     try:
-        from benchrun.grading import grade_lot, load_limits
+        from benchrun.grading import grade_lot, load_limits, run_bench
         from benchrun.records import ShotResult
 
         if run.limits_path is None or not run.limits_path.is_file():
@@ -163,8 +163,8 @@ def reanalysis_check(attachment: dict[str, Any] | None, run: Any,
                     shot = ShotResult.from_dict({**shot.to_dict(), "metrics": merged,
                                                  "conditions": conditions})
                 shots.append(shot)
-            _compare_grades(attachment.get("lot_grade") or {}, grade_lot(shots, limits),
-                            problems)
+            _compare_grades(attachment.get("lot_grade") or {},
+                            grade_lot(shots, limits, bench=run_bench(run)), problems)
     except BenchrunError as exc:
         problems.append(f"regrading failed: {exc}")
     except (KeyError, TypeError, ValueError) as exc:
