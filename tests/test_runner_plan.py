@@ -119,6 +119,29 @@ def test_ranges_cover_expected_values(bench, sequence):
     assert "switch_voltage" in ranges and ranges["switch_voltage"].high > 600.0 + overshoot
 
 
+def test_current_window_planned_from_the_part_limits(bench, sequence):
+    """The diode-current window comes from the part's Irrm limit at the point's condition
+    (limits/DX-4417.yaml: 48 A at 25 °C, 68 A at 125 °C) with the stated headroom, and from
+    irrm_fraction·IF where no condition applies; nothing measured enters it."""
+    from benchrun.config.limits import load_limits
+    from benchrun.runner.plan import RANGE_HEADROOM, planned_irrm
+
+    limits = load_limits(ROOT / "limits" / "DX-4417.yaml")
+    cold = TestPoint(index=0, temperature_K=298.15, bus_voltage_V=600.0, forward_current_A=30.0)
+    hot = TestPoint(index=1, temperature_K=398.15, bus_voltage_V=600.0, forward_current_A=30.0)
+    other = TestPoint(index=2, temperature_K=298.15, bus_voltage_V=600.0, forward_current_A=20.0)
+    assert planned_irrm(cold, sequence, limits) == (48.0, "the part's Irrm limit")
+    assert plan_ranges(cold, sequence, bench, limits)["diode_current"].low == pytest.approx(
+        -RANGE_HEADROOM * 48.0)
+    assert plan_ranges(hot, sequence, bench, limits)["diode_current"].low == pytest.approx(
+        -RANGE_HEADROOM * 68.0)
+    # the 20 A loss-reference point belongs to no condition (they name 30 A)
+    fraction = sequence.expected.irrm_fraction
+    assert planned_irrm(other, sequence, limits)[0] == pytest.approx(fraction * 20.0)
+    assert plan_ranges(other, sequence, bench)["diode_current"].low == pytest.approx(
+        -RANGE_HEADROOM * fraction * 20.0)
+
+
 def test_points_and_firing_order(sequence):
     points = expand_points(sequence)
     assert [p.index for p in points] == list(range(len(points)))

@@ -25,6 +25,7 @@ import numpy as np
 from benchrun.errors import CalibrationOverdue, InstrumentError, RunError
 from benchrun.records import ShotResult, TestPoint
 from benchrun.runner.plan import (
+    RETAKE_WIDEN,
     PlannedShot,
     PulsePlan,
     SignalRange,
@@ -50,10 +51,8 @@ if TYPE_CHECKING:
 
 log = logging.getLogger("benchrun.runner")
 
-#: Range widening applied to a clipped diode channel before the retry.
-WIDEN_FACTOR = 2.0
-#: Headroom over the largest reverse-recovery current measured so far at a point.
-IRRM_HEADROOM = 1.3
+#: Range widening applied to a clipped diode channel before the retake of that shot.
+WIDEN_FACTOR = RETAKE_WIDEN
 
 
 @dataclass(frozen=True)
@@ -91,8 +90,15 @@ class ShotCycle:
         self.first_pulse: dict[int, float] = {}
         #: per point index: (inductance, t1, plan) of the last plan made
         self._plans: dict[int, tuple[float | None, float | None, PulsePlan]] = {}
-        self.widen: dict[tuple[int, str], float] = {}
-        self.irrm_seen: dict[int, float] = {}
+        #: widening of a clipped channel per (point index, serial, repeat, channel): only the
+        #: retake of that shot uses it, so no device's windows depend on the test order
+        self.widen: dict[tuple[int, str, int, str], float] = {}
+        #: the part's limits (their Irrm limit sets the current window, plan_ranges)
+        self.limits = None
+        if prep.limits_file is not None:
+            from benchrun.config.limits import load_limits
+
+            self.limits = load_limits(prep.limits_file)
         self.inductance: float | None = None
         self.progress = RunProgress(0, enabled=False)
         self.max_attempts = 1 + self.sequence.retry_invalid
@@ -228,7 +234,6 @@ class ShotCycle:
         invalid and attempts remain, else count its test as done."""
         planned, point = flight.planned, flight.planned.point
         result = flight.ticket.result()
-        self._learn(point, result)
         self.outcome.shots_stored += 1
         self.outcome.shots_valid += int(result.valid)
         if result.valid and result.conditions.get("if_A"):
@@ -270,29 +275,24 @@ class ShotCycle:
         self._plans[point.index] = (self.inductance, t1, plan)
         return plan
 
-    def _ranges(self, point: TestPoint, scale_V: float = 1.0) -> dict[str, SignalRange]:
-        """Scope windows: planned from expectations, the current window's negative side
-        raised to the largest Irrm seen at this point (with headroom), and any channel that
-        clipped widened."""
-        ranges = plan_ranges(point, self.sequence, self.bench)
-        seen = self.irrm_seen.get(point.index)
-        if seen is not None:
-            r = ranges["diode_current"]
-            ranges["diode_current"] = SignalRange(r.signal, min(r.low, -IRRM_HEADROOM * seen),
-                                                  r.high)
+    def _ranges(self, point: TestPoint, scale_V: float = 1.0,
+                planned: PlannedShot | None = None) -> dict[str, SignalRange]:
+        """Scope windows: planned from the part's limits and the point
+        (:func:`~benchrun.runner.plan.plan_ranges`, the same for every device), widened only
+        for the retake of a shot (``planned``) that clipped."""
+        ranges = plan_ranges(point, self.sequence, self.bench, self.limits)
         out = {}
         for name in self.channel_names:
             r = ranges[name]
-            k = self.widen.get((point.index, name), 1.0)
+            k = 1.0 if planned is None else self.widen.get(self._widen_key(planned, name), 1.0)
             if name != "diode_current":
                 k *= scale_V
             out[name] = SignalRange(name, r.low * k, r.high * k)
         return out
 
-    def _learn(self, point: TestPoint, result: ShotResult) -> None:
-        irrm = result.metrics.get("irrm_A")
-        if irrm is not None and irrm > 0:
-            self.irrm_seen[point.index] = max(self.irrm_seen.get(point.index, 0.0), irrm)
+    @staticmethod
+    def _widen_key(planned: PlannedShot, name: str) -> tuple[int, str, int, str]:
+        return (planned.point.index, planned.serial, planned.repeat, name)
 
     def _adjust_after(self, flight: _InFlight, result: ShotResult) -> None:
         """Widen a clipped channel's range and correct t1 from the measured current, both
@@ -301,11 +301,11 @@ class ShotCycle:
         point = flight.planned.point
         for name in ("diode_current", "diode_voltage"):
             if f"clipped_{name}" in result.flags:
-                key = (point.index, name)
+                key = self._widen_key(flight.planned, name)
                 factor = flight.widen.get(name, 1.0) * WIDEN_FACTOR
                 self.widen[key] = max(self.widen.get(key, 1.0), factor)
-                log.info("%s clipped: widening its range at %s by %g", name, point.label,
-                         WIDEN_FACTOR)
+                log.info("%s clipped: retaking %s at %s with its range widened by %g", name,
+                         flight.planned.serial, point.label, WIDEN_FACTOR)
         measured = result.conditions.get("if_A")
         if measured:
             self._correct(point, float(measured), flight.first_pulse_s)
@@ -414,7 +414,7 @@ class ShotCycle:
         point = planned.point
         plan = self._plan(point)
         check_shot(plan, point, self.bench)
-        ranges = self._ranges(point)
+        ranges = self._ranges(point, planned=planned)
         measured: dict[str, Any] = {}
         fired: dict[str, Any] = {}  # the pending row of the shot as fired
 
@@ -496,6 +496,6 @@ class ShotCycle:
         if self._attempts is not None:
             identity = (planned.serial, point.index, planned.repeat)
             self._attempts[identity] = max(self._attempts.get(identity, 0), attempt + 1)
-        widen = {name: self.widen.get((point.index, name), 1.0)
+        widen = {name: self.widen.get(self._widen_key(planned, name), 1.0)
                  for name in ("diode_current", "diode_voltage")}
         return _InFlight(planned, attempt, ticket, plan.first_pulse_s, widen)

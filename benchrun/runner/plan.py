@@ -18,6 +18,7 @@ import math
 from dataclasses import dataclass, field
 
 from benchrun.config.bench import BenchConfig, FixtureSpec
+from benchrun.config.limits import LimitsSpec
 from benchrun.config.sequence import SequenceConfig, TestPointSpec
 from benchrun.errors import SafetyError
 from benchrun.records import TestPoint
@@ -220,20 +221,57 @@ def expected_didt(point: TestPoint, sequence: SequenceConfig) -> float | None:
     return point.didt_A_per_s or sequence.expected.didt
 
 
-def plan_ranges(point: TestPoint, sequence: SequenceConfig, bench: BenchConfig
-                ) -> dict[str, SignalRange]:
-    """Scope full-scale windows from the expected waveform extremes.
+#: Headroom of the diode-current window's negative side over the reverse-recovery current it
+#: is planned for (common practice: a device 25 % over its Irrm limit still fits on screen).
+RANGE_HEADROOM = 1.25
+#: Widening of a clipped channel's window for the retake of that shot.
+RETAKE_WIDEN = 2.0
 
-    - diode current: from −1.2·Irrm(expected) to 1.3·IF (Irrm expected = ``irrm_fraction``·IF),
-      or to 1.1× the current the diode takes over after the second pulse (IF + VR·t2/L),
-      whichever is higher, so the end of the record does not clip;
+
+def planned_irrm(point: TestPoint, sequence: SequenceConfig,
+                 limits: LimitsSpec | None = None) -> tuple[float, str]:
+    """The reverse-recovery current the diode-current window is planned for, and its source.
+
+    The part's Irrm upper limit at the limits-file condition this point belongs to (the
+    grading's own matching, :func:`benchrun.grading.grade.point_matches`), else the sequence's
+    expectation ``irrm_fraction``·IF. Never anything measured during the run: the window of a
+    test point is the same for every device, whatever was tested before it.
+    """
+    if limits is not None:
+        from benchrun.grading.grade import point_matches
+
+        ceilings = [
+            item.max
+            for condition in limits.conditions
+            if point_matches(point, condition, limits.tolerances)
+            for item in limits.limits_at(condition.name)
+            if item.metric == "irrm_A" and item.max is not None
+        ]
+        if ceilings:
+            return max(ceilings), "the part's Irrm limit"
+    return sequence.expected.irrm_fraction * point.forward_current_A, "irrm_fraction × IF"
+
+
+def plan_ranges(point: TestPoint, sequence: SequenceConfig, bench: BenchConfig,
+                limits: LimitsSpec | None = None) -> dict[str, SignalRange]:
+    """Scope full-scale windows of a test point, from the part's limits and the point alone.
+
+    Headroom rule (stated on the report through the recorded ranges):
+
+    - diode current: from −``RANGE_HEADROOM``·Irrm(planned) (:func:`planned_irrm`: the part's
+      Irrm limit at the point's condition, else ``irrm_fraction``·IF) to 1.3·IF, or to 1.1×
+      the current the diode takes over after the second pulse (IF + VR·t2/L), whichever is
+      higher, so the end of the record does not clip;
     - diode voltage: from −1.1·(VR + overshoot) to +max(5 % of VR, 20 V); the overshoot is
       Ls·di/dt times a margin, or 25 % of VR when no di/dt is known (common practice);
     - switch voltage: from −5 % of VR to 1.1·(VR + overshoot); gate: ±20 V.
+
+    The same point gets the same windows for every device and in any test order; a shot that
+    clips is retaken with the clipped window widened by ``RETAKE_WIDEN`` (that shot only).
     """
     IF = point.forward_current_A
     VR = point.bus_voltage_V
-    irrm = sequence.expected.irrm_fraction * IF
+    irrm, _ = planned_irrm(point, sequence, limits)
     after = IF + VR * sequence.timing.second_pulse / bench.fixture.load_inductance
     slope = expected_didt(point, sequence)
     if slope is not None:
@@ -241,7 +279,8 @@ def plan_ranges(point: TestPoint, sequence: SequenceConfig, bench: BenchConfig
     else:
         overshoot = 0.25 * VR
     ranges = {
-        "diode_current": SignalRange("diode_current", -1.2 * irrm, max(1.3 * IF, 1.1 * after)),
+        "diode_current": SignalRange("diode_current", -RANGE_HEADROOM * irrm,
+                                     max(1.3 * IF, 1.1 * after)),
         "diode_voltage": SignalRange("diode_voltage", -1.1 * (VR + overshoot),
                                      max(0.05 * VR, 20.0)),
         "switch_voltage": SignalRange("switch_voltage", -0.05 * VR, 1.1 * (VR + overshoot)),
