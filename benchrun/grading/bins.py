@@ -70,12 +70,12 @@ def bin_with_guard(
         return format_si(x, unit) if unit else f"{x:.4g}"
 
     if value is None or not math.isfinite(value):
-        return BinAssignment(None, f"{name} not measured: unbinned")
+        return BinAssignment(None, f"{name} not measured")
     w = abs(guard_band)
     low, high = value - w, value + w
     here = _first_class(value, classes)
     if here is None:
-        return BinAssignment(None, f"{name} {show(value)} is in no bin class: unbinned")
+        return BinAssignment(None, f"{name} {show(value)} is in no bin class")
     probes = [low, high]
     for entry in classes:
         for edge in (entry.min, entry.max):
@@ -95,6 +95,6 @@ def bin_with_guard(
     which = "edges" if len(crossed) > 1 else "edge"
     return BinAssignment(
         None,
-        f"{name} {show(value)} ± w {show(w)} straddles the class {which} {edges}: unbinned "
-        "(the decision rule applied to the bin edges)",
+        f"{name} {show(value)} ± w {show(w)} straddles the class {which} {edges} (the "
+        "decision rule applied to the bin edges)",
     )
