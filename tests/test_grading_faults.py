@@ -285,8 +285,11 @@ def test_oc_figures_against_scipy_and_closed_forms():
             stats.hypergeom.cdf(c, lot, d, n))
     # a whole-lot zero-acceptance inspection rejects any lot holding one bad device
     assert lot_ltpd_count(10, 10, 0) == 1
-    d = lot_ltpd_count(20, 5, 0)
-    assert stats.hypergeom.cdf(0, 20, d, 5) <= 0.10 < stats.hypergeom.cdf(0, 20, d - 1, 5)
+    for lot, n, c in [(20, 5, 0), (3200, 125, 3), (500_001, 1250, 21)]:
+        d = lot_ltpd_count(lot, n, c)
+        assert stats.hypergeom.cdf(c, lot, d, n) <= 0.10 < stats.hypergeom.cdf(c, lot, d - 1, n)
+    assert hypergeometric_acceptance(40_000, 500_001, 1250, 21) == pytest.approx(
+        stats.hypergeom.cdf(21, 500_001, 40_000, 1250), rel=1e-9)
 
 
 def test_the_lot_grade_states_its_plan_and_protection(tmp_path):

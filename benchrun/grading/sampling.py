@@ -43,16 +43,23 @@ def binomial_acceptance(p: float, n: int, c: int) -> float:
     return math.fsum(math.comb(n, d) * p**d * (1.0 - p) ** (n - d) for d in range(c + 1))
 
 
+def _log_comb(n: int, k: int) -> float:
+    return math.lgamma(n + 1) - math.lgamma(k + 1) - math.lgamma(n - k + 1)
+
+
 def hypergeometric_acceptance(defectives: int, lot_size: int, n: int, c: int) -> float:
     """Pa for a lot of ``lot_size`` devices holding ``defectives`` non-conforming ones:
-    P(X ≤ c), X ~ Hypergeometric(N, D, n)."""
+    P(X ≤ c), X ~ Hypergeometric(N, D, n). Terms through log-gamma, so lots of any size
+    (ISO 2859-1 goes beyond 500 000) cost c + 1 terms."""
     if not 0 <= defectives <= lot_size or not 1 <= n <= lot_size:
         raise ValueError("need 0 ≤ D ≤ N and 1 ≤ n ≤ N")
-    total = math.comb(lot_size, n)
-    return math.fsum(
-        math.comb(defectives, d) * math.comb(lot_size - defectives, n - d)
+    total = _log_comb(lot_size, n)
+    terms = [
+        math.exp(_log_comb(defectives, d) + _log_comb(lot_size - defectives, n - d) - total)
         for d in range(min(c, defectives) + 1)
-    ) / total
+        if n - d <= lot_size - defectives
+    ]
+    return min(1.0, math.fsum(terms))
 
 
 def ltpd(n: int, c: int, beta: float = CONSUMER_RISK) -> float:
@@ -72,11 +79,21 @@ def ltpd(n: int, c: int, beta: float = CONSUMER_RISK) -> float:
 
 
 def lot_ltpd_count(lot_size: int, n: int, c: int, beta: float = CONSUMER_RISK) -> int | None:
-    """Smallest D with hypergeometric Pa(D) ≤ β (``None`` when no D ≤ N gets there)."""
-    for defectives in range(lot_size + 1):
-        if hypergeometric_acceptance(defectives, lot_size, n, c) <= beta:
-            return defectives
-    return None
+    """Smallest D with hypergeometric Pa(D) ≤ β (``None`` when no D ≤ N gets there).
+
+    Pa falls monotonically as D grows, so D is found by bisection."""
+    if hypergeometric_acceptance(lot_size, lot_size, n, c) > beta:
+        return None
+    low, high = 0, lot_size  # Pa(low) > β unless low = 0 qualifies; Pa(high) ≤ β
+    if hypergeometric_acceptance(0, lot_size, n, c) <= beta:
+        return 0
+    while high - low > 1:
+        mid = (low + high) // 2
+        if hypergeometric_acceptance(mid, lot_size, n, c) <= beta:
+            high = mid
+        else:
+            low = mid
+    return high
 
 
 @dataclass(frozen=True)
