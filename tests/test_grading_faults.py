@@ -158,8 +158,13 @@ def test_peak_limits_default_to_the_worst_shot(tmp_path):
     by_metric = {item.metric: item for item in spec.limits_at("25C")}
     assert by_metric["vrm_V"].combine == "worst" and by_metric["irrm_A"].combine == "worst"
     assert by_metric["qrr_C"].combine == "mean" and by_metric["trr_s"].combine == "mean"
-    device = grade_lot(_peaky_device(), spec, bench=INPUTS).device("S000")
+    lot = grade_lot(_peaky_device(), spec, bench=INPUTS)
+    device = lot.device("S000")
     vrm = device.grade("vrm_V", "25C")
+    # the lot's representative budget of a worst-shot limit also takes s of one reading
+    pooled = next(c for c in lot.budgets["vrm_V@25C"].contributors
+                  if c.name.startswith("repeatability"))
+    assert pooled.standard_uncertainty == pytest.approx(stats.tstd([860.0, 1060.0]))
     assert vrm.aggregation == "worst" and vrm.value == 1060.0
     assert vrm.outcome == "non-conforming"
     assert vrm.shot_values == (860.0, 1060.0)

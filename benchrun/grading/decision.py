@@ -63,7 +63,8 @@ class DecisionRule:
         if self.kind == "simple":
             return (
                 "Simple acceptance, binary statement (ILAC-G8:09/2019 §4.2.1): a device passes "
-                "a limit when the mean of its valid shots lies inside the tolerance limits "
+                "a limit when its graded value (the mean of its valid shots, or the worst shot "
+                "where the limit says so) lies inside the tolerance limits "
                 "(acceptance limit = tolerance limit, guard band w = 0). The expanded "
                 f"uncertainty U = {k}·u_c (JCGM 100:2008) is reported but not used in the "
                 "decision; the probability of false acceptance can reach 50 % at a limit."
@@ -73,14 +74,16 @@ class DecisionRule:
             return (
                 "Guarded acceptance, binary statement (ILAC-G8:09/2019 §4.2.2): acceptance "
                 f"limits are the tolerance limits moved inward by the guard band w = {r}·U, "
-                f"U = {k}·u_c (JCGM 100:2008 §6.2); a mean value inside them passes "
-                "(conforming), any other fails (non-conforming)."
+                f"U = {k}·u_c (JCGM 100:2008 §6.2); a graded value (mean of the valid shots, "
+                "or the worst shot where the limit says so) inside them passes (conforming), "
+                "any other fails (non-conforming)."
             )
         return (
             "Guarded acceptance, non-binary statement (ILAC-G8:09/2019 §4.2.3) with guard band "
-            f"w = {r}·U, U = {k}·u_c (JCGM 100:2008 §6.2): the mean value of the valid shots is "
-            "conforming (pass) inside the tolerance limits reduced by w, non-conforming (fail) "
-            "outside the tolerance limits widened by w, and otherwise indeterminate "
+            f"w = {r}·U, U = {k}·u_c (JCGM 100:2008 §6.2): the graded value (the mean of the "
+            "valid shots, or the worst shot where the limit says so) is conforming (pass) "
+            "inside the tolerance limits reduced by w, non-conforming (fail) outside the "
+            "tolerance limits widened by w, and otherwise indeterminate "
             "(conditional pass / conditional fail; ISO 14253-1 wording). With w = U and k = 2 "
             "the specific probability of false acceptance is at most about 2.5 %."
         )

@@ -485,7 +485,9 @@ def _lot_budgets(
                     total += statistics.variance(shots) * (len(shots) - 1)
             repeat = None
             if dof > 0:
-                repeat = (math.sqrt(total / dof), statistics.median_low(counts))
+                # a worst-shot grade is one reading: s, not s/√n
+                averaged = 1 if limit.combine == "worst" else statistics.median_low(counts)
+                repeat = (math.sqrt(total / dof), averaged)
             budget = metric_budget(
                 metric, means, acquisition, inputs,
                 repeat_std=repeat,
