@@ -11,7 +11,7 @@ import itertools
 
 import pytest
 
-from benchrun.errors import ConfigError
+from benchrun.errors import ConfigError, ProtocolError
 from benchrun.instruments.commands import (
     COMMON_COMMANDS,
     ROLE_COMMANDS,
@@ -36,7 +36,8 @@ def test_every_table_has_its_role_commands(family):
         assert table.has(name), name
 
 
-@pytest.mark.parametrize("family", [f for f in SHIPPED if f.startswith("scope")])
+@pytest.mark.parametrize("family", [f for f in SHIPPED
+                                    if f.startswith("scope") and load_table(f).waveform.simulated])
 @pytest.mark.parametrize(("gain", "offset", "dt", "t_start"),
                          [(0.0123, -1.5, 1e-9, -2e-6), (3.2e-4, 0.0, 2.5e-10, 1.45e-5)])
 def test_scaling_recipe_inverts_the_simulated_values(family, gain, offset, dt, t_start):
@@ -51,19 +52,40 @@ def test_scaling_recipe_inverts_the_simulated_values(family, gain, offset, dt, t
     assert evaluate(wf.t_start, names) == pytest.approx(t_start, rel=1e-12)
 
 
+def test_settings_derived_scaling_matches_the_simulated_adc():
+    # scope-generic has no per-trace scaling query: volts = code * PTPeak / 255 + OFFSet.
+    # The simulator's 8-bit ADC (acquisition.digitize, capture.quantize) spreads codes
+    # -128..127 over the set span: gain = span / (code_max - code_min).
+    from benchrun.simulator import capture
+
+    table = load_table("scope-generic")
+    wf = table.waveform
+    span, centre = 1600.0, -200.0
+    gain = evaluate(wf.gain, {**table.constants, "range": span, "center": centre})
+    assert gain == pytest.approx(span / (capture.ADC_CODE_MAX - capture.ADC_CODE_MIN))
+    assert evaluate(wf.offset, {**table.constants, "range": span, "center": centre}) == centre
+
+
+SAMPLES = {"channel": 3, "range": 800.0, "offset": -200.0, "factor": 100.0, "state": True,
+           "interval": 5e-10, "points": 20000, "t_start": -1e-6, "level": 7.5,
+           "slope": "falling", "count": 2, "width": 1e-5, "gap": 5e-6, "ohm": 10.0,
+           "volts": 600.0, "amps": 1.0, "kelvin": 398.15, "serial": "SN0117-001",
+           "coupling": "dc", "seconds": 2.0}
+
+
 @pytest.mark.parametrize("family", SHIPPED)
 def test_every_formatted_command_is_matched_back_with_the_same_values(family):
     table = load_table(family)
-    samples = {"channel": 3, "range": 800.0, "offset": -200.0, "factor": 100.0, "state": True,
-               "interval": 5e-10, "points": 20000, "t_start": -1e-6, "level": 7.5,
-               "slope": "falling", "count": 2, "width": 1e-5, "gap": 5e-6, "ohm": 10.0,
-               "volts": 600.0, "amps": 1.0, "kelvin": 398.15, "serial": "SN0117-001"}
+    samples = SAMPLES
     for name, spec in table.commands.items():
         inputs = {k: v for k, v in samples.items()}
         text = table.format(name, **inputs)
         found = table.match(text)
         assert found is not None, text
         assert found[0].name == name
+        if spec.setting is not None:
+            assert set(found[1]) == set(table.index_args(spec.setting))
+            continue
         for arg in spec.args:
             if arg.name in samples:
                 assert found[1][arg.name] == pytest.approx(samples[arg.name]) \
@@ -72,31 +94,69 @@ def test_every_formatted_command_is_matched_back_with_the_same_values(family):
             assert found[1][target] == pytest.approx(samples[target], rel=1e-9)
 
 
+@pytest.mark.parametrize("family", SHIPPED)
+def test_every_setting_read_back_round_trips(family):
+    # what the simulator answers to <name>? (short form) reads back as the value set
+    table = load_table(family)
+    for name, spec in table.commands.items():
+        if not table.can_read_back(name):
+            continue
+        index = {k: SAMPLES[k] for k in table.index_args(name)}
+        query = table.format(f"{name}?", **index)
+        found = table.match(query)
+        assert found is not None and found[0].name == f"{name}?", query
+        reply = table.format_readback(name, SAMPLES)
+        got = table.parse_readback(name, reply)
+        want = table.wire_values(name, **SAMPLES)
+        for key, value in want.items():
+            assert got[key] == (pytest.approx(value) if isinstance(value, float) else value)
+        for target in spec.inverse:
+            assert got[target] == pytest.approx(SAMPLES[target], rel=1e-9)
+
+
+def test_read_back_accepts_long_and_short_forms():
+    table = load_table("scope-generic")
+    # SCPI-1999 Vol. 1 §6.2.1: a reply may use either form (from memory)
+    assert table.parse_readback("trigger_source", "INT2") == {"channel": 2}
+    assert table.parse_readback("trigger_source", "INTERNAL2") == {"channel": 2}
+    assert table.parse_readback("trigger_slope", "NEGATIVE") == {"slope": "falling"}
+    assert table.format_readback("trigger_source", {"channel": 4}) == "INT4"
+    with pytest.raises(ProtocolError):
+        table.parse_readback("trigger_source", "EXT")
+
+
 def test_short_and_long_forms_and_case_are_accepted():
     table = load_table("scope-generic")
-    for text in ("CHAN2:RANG 8", "CHANNEL2:RANGE 8", "chan2:range 8", ":CHANnel2:RANGe 8"):
+    for text in ("SENS2:VOLT:RANG:PTP 8", "SENSE2:VOLTAGE:RANGE:PTPEAK 8",
+                 "sens2:volt:rang:ptp 8", ":SENSe2:VOLTage:RANGe:PTPeak 8"):
         spec, values = table.match(text)
         assert spec.name == "channel_range" and values == {"channel": 2, "range": 8.0}
-    assert table.match("CHANN2:RANG 8") is None  # neither short nor long form
-    assert table.match("TRIG:SLOP POS")[1] == {"slope": "rising"}
+    assert table.match("SENSE2:VOLT:RANG:PTPE 8") is None  # neither short nor long form
+    assert table.match("TRIG:SEQ:SLOP POS")[1] == {"slope": "rising"}
 
 
 def test_wrong_parameter_type_is_a_value_error():
     table = load_table("supply-generic")
     with pytest.raises(ValueError):
-        table.match("SOUR:VOLT abc")
+        table.match("SOUR:VOLT:LEV abc")
 
 
 def test_unit_conversions_on_the_wire():
     thermal = load_table("thermal-generic")
-    assert thermal.format("setpoint", kelvin=398.15) == "SOURce:TEMPerature 125"
+    assert thermal.format("setpoint", kelvin=398.15) == "SOURce:TEMPerature:LEVel 125"
     assert thermal.parse_reply("measure_temperature", "25") == pytest.approx(298.15)
     assert thermal.format_reply("measure_temperature", 298.15) == "25"
+    assert thermal.parse_readback("setpoint", "125")["kelvin"] == pytest.approx(398.15)
     alt = load_table("scope-alt")
-    assert alt.format("sample_interval", interval=1e-9) == "SAMPle:RATE 1000000000"
+    assert alt.format("channel_range", channel=1, range=1600.0) == \
+        "SENSe1:VOLTage:RANGe:UPPer 800"
     assert alt.format("channel_probe", channel=1, factor=100.0) == "INPut1:PGAin 0.01"
-    assert alt.parse_reply("acquisition_done", "CAPTURED") is True
-    assert alt.parse_reply("acquisition_done", "WAITING") is False
+    # STATus:OPERation:CONDition?: bit 4 measuring, bit 5 waiting for trigger (SCPI-1999
+    # Vol. 2 §20.1.2, from memory); done when both are clear
+    assert alt.parse_reply("acquisition_done", "0") is True
+    assert alt.parse_reply("acquisition_done", "256") is True
+    assert alt.parse_reply("acquisition_done", "32") is False
+    assert alt.parse_reply("acquisition_done", "16") is False
 
 
 def _minimal(**overrides):
@@ -129,7 +189,7 @@ def test_bad_tables_are_config_errors(change, field):
 
 def test_placeholder_must_match_args():
     data = _minimal()
-    data["commands"]["select"] = {"send": "DEV:SEL {serial}", "args": {"other": "str"}}
+    data["commands"]["select"] = {"send": "HAND:SEL {serial}", "args": {"other": "str"}}
     with pytest.raises(ConfigError, match="placeholders"):
         table_from_dict(data)
 

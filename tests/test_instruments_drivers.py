@@ -1,7 +1,8 @@
 """Role drivers: the exact SCPI strings each call sends, per family (recording fake session).
 
-The expected strings are the command tables' own dialect (benchrun's generic SCPI, not any
-vendor's); IEEE 488.2 common commands (*IDN?, *RST, *CLS, *OPC?) per IEEE 488.2-1992 §10.
+The expected strings are the command tables' dialects (SCPI-1999 subsystems plus headers of our
+own, see tests/test_instruments_dialects.py); IEEE 488.2 common commands (*IDN?, *RST, *CLS,
+*OPC?) per IEEE 488.2-1992 §10.
 """
 
 from __future__ import annotations
@@ -66,11 +67,16 @@ def test_scope_generic_configure_strings():
     session = RecordingSession()
     Scope(session, "scope-generic").configure(**CONFIG)
     assert session.sent == [
-        "CHANnel1:DISPlay 1", "CHANnel2:DISPlay 1", "CHANnel3:DISPlay 0", "CHANnel4:DISPlay 0",
-        "CHANnel1:PROBe 100", "CHANnel1:RANGe 1600", "CHANnel1:OFFSet -200",
-        "CHANnel2:PROBe 50", "CHANnel2:RANGe 100", "CHANnel2:OFFSet 0",
-        "ACQuire:SINTerval 5e-10", "ACQuire:POINts 8000", "TIMebase:STARt 1.45e-05",
-        "TRIGger:SOURce CHANnel4", "TRIGger:LEVel 7.5", "TRIGger:SLOPe POSitive",
+        "FORMat:DATA INTeger,8",
+        "INPut1:STATe 1", "INPut2:STATe 1", "INPut3:STATe 0", "INPut4:STATe 0",
+        "INPut1:COUPling DC", "INPut1:PSCale 100", "SENSe1:VOLTage:RANGe:PTPeak 1600",
+        "SENSe1:VOLTage:RANGe:OFFSet -200",
+        "INPut2:COUPling DC", "INPut2:PSCale 50", "SENSe2:VOLTage:RANGe:PTPeak 100",
+        "SENSe2:VOLTage:RANGe:OFFSet 0",
+        "SENSe:SWEep:TINTerval 5e-10", "SENSe:SWEep:POINts 8000",
+        "SENSe:SWEep:OFFSet:TIME 1.45e-05",
+        "TRIGger:SEQuence:SOURce INTernal4", "TRIGger:SEQuence:LEVel 7.5",
+        "TRIGger:SEQuence:SLOPe POSitive",
         "*OPC?", "SYSTem:ERRor?",
     ]
 
@@ -79,11 +85,14 @@ def test_scope_alt_configure_strings():
     session = RecordingSession()
     Scope(session, "scope-alt").configure(**CONFIG, trigger_slope="falling")
     assert session.sent == [
+        "FORMat:DATA INTeger,16", "FORMat:BORDer NORMal",
         "INPut1:STATe 1", "INPut2:STATe 1", "INPut3:STATe 0", "INPut4:STATe 0",
-        "INPut1:PGAin 0.01", "INPut1:VDIV 160", "INPut1:VOFFset -200",
-        "INPut2:PGAin 0.02", "INPut2:VDIV 10", "INPut2:VOFFset 0",
-        "SAMPle:RATE 2000000000", "SAMPle:LENGth 8000", "SAMPle:PRETrigger -1.45e-05",
-        "ARM:SOURce IN4", "ARM:THReshold 7.5", "ARM:EDGE DOWN",
+        "INPut1:COUPling DC", "INPut1:PGAin 0.01", "SENSe1:VOLTage:RANGe:UPPer 800",
+        "SENSe1:VOLTage:RANGe:OFFSet -200",
+        "INPut2:COUPling DC", "INPut2:PGAin 0.02", "SENSe2:VOLTage:RANGe:UPPer 50",
+        "SENSe2:VOLTage:RANGe:OFFSet 0",
+        "SENSe:SWEep:TINTerval 5e-10", "SENSe:SWEep:POINts 8000", "TRIGger:DELay 1.45e-05",
+        "TRIGger:SOURce INTernal4", "TRIGger:LEVel 7.5", "TRIGger:SLOPe NEGative",
         "*OPC?", "SYSTem:ERRor:NEXT?",
     ]
 
@@ -91,10 +100,10 @@ def test_scope_alt_configure_strings():
 def test_scope_arm_wait_and_read_generic():
     codes = np.array([-128, -1, 0, 10, 127], dtype=np.int8)
     session = RecordingSession(
-        answers={"ACQuire:DONE?": ["0", "1"], "WAVeform:XINCrement?": "5e-10",
-                 "WAVeform:XORigin?": "1.45e-05", "WAVeform:YINCrement?": "0.5",
-                 "WAVeform:YORigin?": "-20", "WAVeform:YREFerence?": "0"},
-        blocks={"WAVeform:DATA?": bytearray(codes.tobytes())},
+        answers={"STATus:OPERation:CONDition?": ["32", "0"],
+                 "SENSe2:VOLTage:RANGe:PTPeak?": "127.5", "SENSe2:VOLTage:RANGe:OFFSet?": "-20",
+                 "SENSe:SWEep:TINTerval?": "5e-10", "SENSe:SWEep:OFFSet:TIME?": "1.45e-05"},
+        blocks={"TRACe:DATA? TRACE2": bytearray(codes.tobytes())},
     )
     scope = Scope(session, "scope-generic")
     scope.configure(**CONFIG)
@@ -103,14 +112,15 @@ def test_scope_arm_wait_and_read_generic():
     assert scope.wait_triggered(30.0, poll_s=0.0)  # done at the second poll
     trace = scope.read_channel("diode_current")
     assert session.sent == [
-        "SINGle", "*OPC?", "ACQuire:DONE?", "ACQuire:DONE?", "WAVeform:SOURce CHANnel2",
-        "WAVeform:XINCrement?", "WAVeform:XORigin?", "WAVeform:YINCrement?",
-        "WAVeform:YORigin?", "WAVeform:YREFerence?", "WAVeform:DATA?",
+        "INITiate:IMMediate", "*OPC?", "STATus:OPERation:CONDition?",
+        "STATus:OPERation:CONDition?", "SENSe2:VOLTage:RANGe:PTPeak?",
+        "SENSe2:VOLTage:RANGe:OFFSet?", "SENSe:SWEep:TINTerval?", "SENSe:SWEep:OFFSet:TIME?",
+        "TRACe:DATA? TRACE2",
     ]
     assert session.last_terminator is True
     assert trace.codes.dtype == np.int16
     assert trace.codes.tolist() == [-128, -1, 0, 10, 127]
-    # probe units: code*0.5 - 20 (A); channel volts: divided by the 50 A/V probe
+    # probe units: code * 127.5/255 - 20 (A); channel volts: divided by the 50 A/V probe
     assert trace.gain == pytest.approx(0.5 / 50) and trace.offset == pytest.approx(-20 / 50)
     assert trace.dt == 5e-10 and trace.t_start == 1.45e-05
     assert (trace.code_min, trace.code_max) == (-128, 127)
@@ -119,32 +129,37 @@ def test_scope_arm_wait_and_read_generic():
 def test_scope_read_alt_big_endian_without_terminator():
     codes = np.array([-32768, -256, 0, 2560, 32512], dtype=">i2")
     session = RecordingSession(
-        answers={"TRACe1:VDIV?": "160", "TRACe1:VOFFset?": "-200", "TRACe1:TINTerval?": "5e-10",
-                 "TRACe1:TSTart?": "1e-6"},
+        answers={"TRACe1:SCALing?": "0.025,-200,5e-10,1e-6"},
         blocks={"TRACe1:DATA?": bytearray(codes.tobytes())},
     )
     scope = Scope(session, "scope-alt")
     scope.configure(**CONFIG)
     session.sent.clear()
     trace = scope.read_channel("diode_voltage")
-    assert session.sent == ["TRACe1:VDIV?", "TRACe1:VOFFset?", "TRACe1:TINTerval?",
-                            "TRACe1:TSTart?", "TRACe1:DATA?"]
+    assert session.sent == ["TRACe1:SCALing?", "TRACe1:DATA?"]
     assert session.last_terminator is False
     assert trace.codes.tolist() == [-32768, -256, 0, 2560, 32512]
-    # volts/div over 6400 codes/div (probe units), then / 100 V/V probe
-    assert trace.gain == pytest.approx(160 / 6400 / 100)
+    # probe units per code, then / 100 V/V probe
+    assert trace.gain == pytest.approx(0.025 / 100)
     assert trace.offset == pytest.approx(-2.0)
+    assert trace.dt == 5e-10 and trace.t_start == 1e-6
+
+
+def test_scope_alt_scaling_record_with_missing_fields_is_protocol_error():
+    session = RecordingSession(answers={"TRACe1:SCALing?": "0.025,-200"},
+                               blocks={"TRACe1:DATA?": bytearray(b"\x00\x01")})
+    with pytest.raises(ProtocolError, match="expected 4"):
+        Scope(session, "scope-alt").read_channel(1)
 
 
 def test_scope_wait_triggered_times_out():
-    session = RecordingSession(answers={"ACQuire:DONE?": "0"})
+    session = RecordingSession(answers={"STATus:OPERation:CONDition?": "32"})
     assert Scope(session, "scope-generic").wait_triggered(0.02, poll_s=0.005) is False
 
 
 def test_scope_odd_byte_count_is_protocol_error():
     session = RecordingSession(
-        answers={"TRACe1:VDIV?": "1", "TRACe1:VOFFset?": "0", "TRACe1:TINTerval?": "1e-9",
-                 "TRACe1:TSTart?": "0"},
+        answers={"TRACe1:SCALing?": "1,0,1e-9,0"},
         blocks={"TRACe1:DATA?": bytearray(b"\x00\x01\x02")})
     with pytest.raises(ProtocolError, match="whole number"):
         Scope(session, "scope-alt").read_channel(1)
@@ -160,19 +175,21 @@ def test_pulse_double_and_single_pulse_strings():
     pulse.configure(2.5e-5)  # single-pulse trim shot
     pulse.output(False)
     assert session.sent == [
-        "PULSe:COUNt 2", "PULSe1:WIDTh 1e-05", "PULSe:GAP 5e-06", "PULSe2:WIDTh 3e-06",
-        "SYSTem:ERRor?", "GATE:RESistance 10", "SYSTem:ERRor?", "OUTPut 1", "SYSTem:ERRor?",
-        "PULSe:FIRE", "PULSe:COUNt 1", "PULSe1:WIDTh 2.5e-05", "SYSTem:ERRor?", "OUTPut 0",
+        "SOURce:PULSe:COUNt 2", "SOURce:PULSe:WIDTh 1e-05", "GDRive:GAP 5e-06",
+        "GDRive:SECond:WIDTh 3e-06", "SYSTem:ERRor?", "GDRive:RESistance 10", "SYSTem:ERRor?",
+        "OUTPut:STATe 1", "SYSTem:ERRor?", "INITiate:IMMediate", "SOURce:PULSe:COUNt 1",
+        "SOURce:PULSe:WIDTh 2.5e-05", "SYSTem:ERRor?", "OUTPut:STATe 0",
     ]
-    assert session.retry_flags["PULSe:FIRE"] is False  # a shot is never repeated silently
+    # a shot is never repeated silently
+    assert session.retry_flags["INITiate:IMMediate"] is False
 
 
 def test_supply_thermal_handler_strings():
-    session = RecordingSession(answers={"MEASure:VOLTage?": "599.8", "OUTPut?": "1",
+    session = RecordingSession(answers={"MEASure:VOLTage:DC?": "599.8", "OUTPut:STATe?": "1",
                                         "MEASure:TEMPerature?": "125.02",
-                                        "SOURce:TEMPerature?": "125",
-                                        "DEVice:LIST?": "SN0117-001,SN0117-002",
-                                        "DEVice:SELect?": "SN0117-002"})
+                                        "SOURce:TEMPerature:LEVel?": "125",
+                                        "HANDler:DUT:CATalog?": '"SN0117-001","SN0117-002"',
+                                        "HANDler:DUT:SELect?": '"SN0117-002"'})
     supply = BusSupply(session, "supply-generic")
     supply.set_current_limit(1.0)
     supply.set_voltage(600)
@@ -189,11 +206,12 @@ def test_supply_thermal_handler_strings():
     handler.select("SN0117-002")
     assert handler.selected() == "SN0117-002"
     assert session.sent == [
-        "SOURce:CURRent 1", "SYSTem:ERRor?", "SOURce:VOLTage 600", "SYSTem:ERRor?",
-        "OUTPut 1", "SYSTem:ERRor?", "MEASure:VOLTage?", "OUTPut?",
-        "SOURce:TEMPerature 125", "SYSTem:ERRor?", "MEASure:TEMPerature?",
-        "SOURce:TEMPerature?", "OUTPut 0",
-        "DEVice:LIST?", "DEVice:SELect SN0117-002", "SYSTem:ERRor?", "DEVice:SELect?",
+        "SOURce:CURRent:LEVel 1", "SYSTem:ERRor?", "SOURce:VOLTage:LEVel 600", "SYSTem:ERRor?",
+        "OUTPut:STATe 1", "SYSTem:ERRor?", "MEASure:VOLTage:DC?", "OUTPut:STATe?",
+        "SOURce:TEMPerature:LEVel 125", "SYSTem:ERRor?", "MEASure:TEMPerature?",
+        "SOURce:TEMPerature:LEVel?", "OUTPut:STATe 0",
+        "HANDler:DUT:CATalog?", 'HANDler:DUT:SELect "SN0117-002"', "SYSTem:ERRor?",
+        "HANDler:DUT:SELect?",
     ]
 
 
@@ -211,7 +229,7 @@ def test_identity_reset_and_error_drain():
         supply.set_voltage(2000)
     assert info.value.entries == [(-222, "Data out of range;volts 2000"),
                                   (-113, "Undefined header")]
-    assert session.sent[:5] == ["*IDN?", "*RST", "*CLS", "*OPC?", "SOURce:VOLTage 2000"]
+    assert session.sent[:5] == ["*IDN?", "*RST", "*CLS", "*OPC?", "SOURce:VOLTage:LEVel 2000"]
 
 
 def test_stuck_error_queue_does_not_loop_forever():
@@ -293,3 +311,34 @@ def test_trigger_wait_counts_from_the_fire():
     started = _time.monotonic()
     assert never.wait_triggered(0.3, expected_s=0.30, since=started - 0.25) is False
     assert _time.monotonic() - started < 0.2  # the timeout counts from the fire too
+
+
+def test_verify_settings_reads_every_sent_setting_back_and_reports_differences():
+    # the instrument coerced the range (1600 -> 2000) and ignored the trigger slope
+    session = RecordingSession(answers={
+        "INPut1:STATe?": "1", "INPut2:STATe?": "1", "INPut3:STATe?": "0", "INPut4:STATe?": "0",
+        "INPut1:COUPling?": "DC", "INPut2:COUPling?": "DC",
+        "INPut1:PSCale?": "100", "INPut2:PSCale?": "50",
+        "SENSe1:VOLTage:RANGe:PTPeak?": "2000", "SENSe2:VOLTage:RANGe:PTPeak?": "100",
+        "SENSe1:VOLTage:RANGe:OFFSet?": "-200", "SENSe2:VOLTage:RANGe:OFFSet?": "0",
+        "SENSe:SWEep:TINTerval?": "5.0000000001e-10", "SENSe:SWEep:POINts?": "8000",
+        "SENSe:SWEep:OFFSet:TIME?": "1.45e-05", "TRIGger:SEQuence:SOURce?": "INT4",
+        "TRIGger:SEQuence:LEVel?": "7.5", "TRIGger:SEQuence:SLOPe?": "NEG",
+    })
+    scope = Scope(session, "scope-generic")
+    scope.configure(**CONFIG)
+    found = scope.verify_settings()
+    assert [m.line() for m in found] == [
+        "scope: SENSe1:VOLTage:RANGe:PTPeak 1600: reads back '2000'",
+        "scope: TRIGger:SEQuence:SLOPe POSitive: reads back 'NEGative'",
+    ]
+    assert scope.verify_settings() == []  # nothing sent since
+
+
+def test_watchdog_strings():
+    session = RecordingSession()
+    supply = BusSupply(session, "supply-generic")
+    assert supply.has_watchdog
+    supply.arm_watchdog()
+    supply.refresh_watchdog()
+    assert session.sent == ["WDOG:TIMeout 2", "SYSTem:ERRor?", "WDOG:REFResh"]

@@ -21,7 +21,21 @@ Table layout (see ``commands/scope-generic.yaml`` for a complete example)::
         limits: {range: [0.001, 10000]}          # simulator answers -222 outside
         returns: float                           # queries only: float|int|bool|str|csv|error|block
         from_wire: "value + 273.15"              # optional reply conversion (and to_wire)
+        query: "SENSe{channel}:VOLTage:RANGe:PTPeak?"  # optional: how to read the setting back
     waveform: {...}                # scopes only: sample format, terminator, scaling recipe
+    output_watchdog: {timeout: 2.0}  # optional: the instrument switches its output off when
+                                   # not refreshed for this many seconds (see below)
+
+A setting with a ``query`` can be read back: the table gets a query named ``<name>?`` whose
+reply is the setting's data part (what follows the header in ``send``, e.g. ``INT2`` for
+``TRIGger:SOURce INTernal{channel}``), in short or long form. ``query`` may use only the
+placeholders of the setting's header (the channel), never its data.
+
+A bool query with ``true_when_clear: <mask>`` answers an integer register: true when none of
+the mask's bits are set (``STATus:OPERation:CONDition?``, SCPI-1999 Vol. 2 §20.1).
+
+``identity.models`` lists the ``*IDN?`` model names (shell patterns) a table is written for;
+``benchrun bench check`` reports an instrument whose model is not one of them.
 
 Expressions are plain arithmetic (``+ - * /``, unary minus, parentheses, numbers, names) and
 are evaluated without ``eval``.
@@ -44,6 +58,9 @@ from benchrun.instruments import scpi
 from benchrun.instruments.expressions import evaluate, expression_names
 
 ROLES = ("scope", "pulse", "supply", "thermal", "handler")
+
+#: Optional commands of a table with an ``output_watchdog`` section.
+WATCHDOG_COMMANDS = ("watchdog_timeout", "watchdog_refresh")
 
 #: IEEE 488.2 common commands and the SCPI error query every family must name.
 COMMON_COMMANDS = (
@@ -90,12 +107,14 @@ ROLE_COMMANDS: dict[str, tuple[str, ...]] = {
         "measure_voltage",
         "measure_current",
     ),
-    "thermal": ("setpoint", "setpoint_value", "measure_temperature", "output"),
+    "thermal": ("setpoint", "measure_temperature", "output"),
     "handler": ("list_devices", "select", "selected"),
 }
 
 ARG_TYPES = ("int", "float", "bool", "str")
 RETURN_TYPES = ("float", "int", "bool", "str", "csv", "error", "block")
+#: ``returns`` of the ``<name>?`` queries made from a setting's ``query``.
+READBACK = "readback"
 
 _PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
 _MNEMONIC = re.compile(r"[A-Za-z]+")
@@ -167,6 +186,10 @@ class CommandSpec:
     false_value: str = "0"
     from_wire: str | None = None
     to_wire: str | None = None
+    query: str | None = None
+    true_when_clear: int | None = None
+    #: for a ``<name>?`` read-back query: the setting it reads back
+    setting: str | None = None
 
     @property
     def is_query(self) -> bool:
@@ -186,7 +209,10 @@ class WaveformSpec:
     ``gain``/``offset``/``dt``/``t_start`` are expressions over the values read by
     ``scaling_queries`` (and the table constants): channel volts = codes × gain + offset.
     ``simulated`` gives, for the simulator, each scaling value as an expression over
-    ``gain, offset, dt, t_start`` so both ends agree by construction (checked by tests).
+    ``gain, offset, dt, t_start`` so both ends agree by construction (checked by tests); a
+    scaling query that reads a setting back (``<name>?``) is answered from the setting
+    instead. ``setup`` names argument-less commands sent with every capture set-up (data
+    format, byte order); ``scaling_fields`` names the fields of a scaling query answering CSV.
     """
 
     sample_format: str  # "int8" | "int16"
@@ -201,6 +227,12 @@ class WaveformSpec:
     dt: str
     t_start: str
     simulated: Mapping[str, str]
+    setup: tuple[str, ...] = ()
+    scaling_fields: Mapping[str, tuple[str, ...]] = field(default_factory=dict)
+
+    def scaling_names(self, key: str) -> tuple[str, ...]:
+        """Names a scaling query provides: its ``fields`` (a CSV reply) or its own key."""
+        return self.scaling_fields.get(key, (key,))
 
     @property
     def numpy_dtype(self) -> str:
@@ -223,6 +255,8 @@ class CommandTable:
     source: str
     channels: int = 0
     extra: Mapping[str, Any] = field(default_factory=dict)
+    models: tuple[str, ...] = ()
+    watchdog_timeout_s: float | None = None
 
     def spec(self, name: str) -> CommandSpec:
         try:
@@ -259,7 +293,11 @@ class CommandTable:
         if kind == "int":
             return scpi.parse_int(text)
         if kind == "bool":
+            if spec.true_when_clear is not None:
+                return not (scpi.parse_int(text) & spec.true_when_clear)
             return scpi.parse_bool(text, spec.true_values)
+        if kind == READBACK:
+            return self.parse_readback(spec.setting or "", text)
         if kind == "csv":
             stripped = text.strip()
             return [p.strip().strip('"') for p in stripped.split(",")] if stripped else []
@@ -281,10 +319,71 @@ class CommandTable:
         if kind == "int":
             return str(int(value))
         if kind == "bool":
+            if spec.true_when_clear is not None:
+                return "0" if value else spec.false_value
             return spec.true_values[0] if value else spec.false_value
+        if kind == READBACK:
+            return self.format_readback(spec.setting or "", value)
         if kind == "csv":
             return ",".join(str(v) for v in value)
         return str(value)
+
+    # --- read-back of settings -----------------------------------------------------------------
+
+    def can_read_back(self, name: str) -> bool:
+        """Whether setting ``name`` declares a ``query``."""
+        return f"{name}?" in self.commands
+
+    def index_args(self, name: str) -> tuple[str, ...]:
+        """Arguments of setting ``name`` that select *what* is set (they appear in its query,
+        e.g. the channel), as opposed to the value set."""
+        return tuple(a.name for a in self.spec(f"{name}?").args)
+
+    def wire_values(self, name: str, **inputs: Any) -> dict[str, Any]:
+        """The typed value arguments of setting ``name`` as they go on the wire for ``inputs``
+        (sent text parsed back: floats carry the 10 digits sent)."""
+        spec = self.spec(name)
+        values: dict[str, Any] = dict(inputs)
+        for target, expr in spec.compute.items():
+            values[target] = evaluate(expr, {**self.constants, **values})
+        index = set(self.index_args(name)) if self.can_read_back(name) else set()
+        return {a.name: a.from_wire(a.to_wire(values[a.name]))
+                for a in spec.args if a.name not in index}
+
+    def parse_readback(self, name: str, text: str) -> dict[str, Any]:
+        """Reply to ``<name>?`` → the setting's typed value arguments plus their ``inverse``
+        (driver-level) values. Raises ProtocolError when the reply does not fit."""
+        spec = self.spec(name)
+        pattern, _ = _data_template_cached(spec.send)
+        m = pattern.fullmatch(text.strip())
+        if not m:
+            raise ProtocolError(f"{self.family}: reply {text.strip()[:40]!r} to {name}? does "
+                                f"not read as {_data_part(spec.send)!r}")
+        values: dict[str, Any] = {}
+        try:
+            for arg in spec.args:
+                if arg.name in m.groupdict():
+                    values[arg.name] = arg.from_wire(m.group(arg.name))
+        except ValueError as exc:
+            raise ProtocolError(f"{self.family}: reply to {name}?: {exc}") from exc
+        for target, expr in spec.inverse.items():
+            values[target] = evaluate(expr, {**self.constants, **values})
+        return values
+
+    def format_readback(self, name: str, values: Mapping[str, Any]) -> str:
+        """Simulator side: the reply to ``<name>?`` for driver-level ``values`` (short form)."""
+        spec = self.spec(name)
+        wire_in: dict[str, Any] = dict(values)
+        for target, expr in spec.compute.items():
+            wire_in[target] = evaluate(expr, {**self.constants, **wire_in})
+        _, template = _data_template_cached(spec.send)
+
+        def token(m: re.Match[str]) -> str:
+            arg = spec.arg(m.group(1))
+            wire = arg.to_wire(wire_in[arg.name])
+            return _short_form(wire) if arg.kind == "enum" else wire
+
+        return _PLACEHOLDER.sub(token, template)
 
     _matchers: tuple[tuple[re.Pattern[str], CommandSpec], ...] = field(
         default=(), init=False, repr=False, compare=False)
@@ -324,6 +423,45 @@ def _mnemonic_pattern(word: str) -> str:
     if 0 < short < len(word) and word[short:].islower():
         return f"{re.escape(word[:short])}(?:{re.escape(word[short:])})?"
     return re.escape(word)
+
+
+def _short_form(text: str) -> str:
+    """``INTernal`` → ``INT`` for every mixed-case mnemonic of ``text`` (SCPI-1999 Vol. 1
+    §6.2.1: the upper-case part is the short form; instruments answer in short form)."""
+
+    def short(m: re.Match[str]) -> str:
+        word = m.group(0)
+        n = len(word) - len(word.lstrip("ABCDEFGHIJKLMNOPQRSTUVWXYZ"))
+        return word[:n] if 0 < n < len(word) and word[n:].islower() else word
+
+    return _MNEMONIC.sub(short, text)
+
+
+def _data_part(send: str) -> str:
+    """What follows the header of a program message unit (its data, maybe empty)."""
+    return send.split(None, 1)[1] if len(send.split(None, 1)) > 1 else ""
+
+
+@lru_cache(maxsize=256)
+def _data_template_cached(send: str) -> tuple[re.Pattern[str], str]:
+    data = _data_part(send)
+    pattern: list[str] = []
+    template: list[str] = []
+    pos = 0
+    for m in _PLACEHOLDER.finditer(data):
+        literal = data[pos : m.start()]
+        pattern.append(_literal_pattern(literal))
+        template.append(_short_form(literal))
+        glued = literal[-1:].isalpha()
+        value = _SUFFIX_PATTERN if glued else r"[^,;]+?"
+        pattern.append(f"(?P<{m.group(1)}>{value})")
+        template.append(m.group(0))
+        pos = m.end()
+    pattern.append(_literal_pattern(data[pos:]))
+    template.append(_short_form(data[pos:]))
+    return re.compile(r"\s*" + "".join(pattern) + r"\s*", re.IGNORECASE), "".join(template)
+
+
 
 
 def _literal_pattern(text: str) -> str:
@@ -409,7 +547,7 @@ def table_from_dict(data: Any, *, source: str = "<table>") -> CommandTable:
     if not isinstance(data, dict):
         raise fail("a command table is a mapping")
     known = {"family", "role", "description", "identity", "constants", "commands", "waveform",
-             "channels", "simulator"}
+             "channels", "simulator", "output_watchdog"}
     unknown = set(data) - known
     if unknown:
         raise fail(f"unknown keys {sorted(unknown)}")
@@ -433,9 +571,28 @@ def table_from_dict(data: Any, *, source: str = "<table>") -> CommandTable:
         raise fail("missing or not a mapping", "commands")
     commands = {name: _command_from_dict(name, entry, constants, fail)
                 for name, entry in raw_commands.items()}
+    for name, spec in list(commands.items()):
+        if spec.query is not None:
+            commands[f"{name}?"] = _readback_spec(spec, fail)
     for needed in (*COMMON_COMMANDS, *ROLE_COMMANDS[role]):
         if needed not in commands:
             raise fail(f"role {role} needs command {needed!r}", "commands")
+
+    watchdog = data.get("output_watchdog")
+    watchdog_timeout = None
+    if watchdog is not None:
+        try:
+            watchdog_timeout = float(watchdog["timeout"])
+        except (TypeError, KeyError, ValueError) as exc:
+            raise fail("needs a numeric 'timeout' in seconds", "output_watchdog") from exc
+        if not watchdog_timeout > 0:
+            raise fail("timeout must be positive", "output_watchdog.timeout")
+        for needed in WATCHDOG_COMMANDS:
+            if needed not in commands:
+                raise fail(f"an output watchdog needs command {needed!r}", "commands")
+    models = identity.get("models") or []
+    if not isinstance(models, list) or not all(isinstance(m, str) for m in models):
+        raise fail("must be a list of model names", "identity.models")
 
     waveform = None
     if role == "scope":
@@ -454,7 +611,25 @@ def table_from_dict(data: Any, *, source: str = "<table>") -> CommandTable:
         source=source,
         channels=int(data.get("channels", 0)),
         extra=dict(data.get("simulator") or {}),
+        models=tuple(models),
+        watchdog_timeout_s=watchdog_timeout,
     )
+
+
+def _readback_spec(spec: CommandSpec, fail: Any) -> CommandSpec:
+    """The ``<name>?`` query reading setting ``spec`` back."""
+    where = f"commands.{spec.name}.query"
+    assert spec.query is not None
+    header_names = set(_PLACEHOLDER.findall(spec.send.split(None, 1)[0]))
+    data_names = set(_PLACEHOLDER.findall(_data_part(spec.send)))
+    query_names = set(_PLACEHOLDER.findall(spec.query))
+    if not query_names <= header_names:
+        raise fail(f"may only use the header's placeholders {sorted(header_names)}", where)
+    if query_names | data_names != {a.name for a in spec.args}:
+        raise fail("every argument must be in the query or in the setting's data", where)
+    return CommandSpec(name=f"{spec.name}?", send=spec.query,
+                       args=tuple(a for a in spec.args if a.name in query_names),
+                       returns=READBACK, setting=spec.name)
 
 
 def _command_from_dict(name: str, entry: Any, constants: Mapping[str, float], fail: Any
@@ -465,7 +640,7 @@ def _command_from_dict(name: str, entry: Any, constants: Mapping[str, float], fa
     if not isinstance(entry, dict) or not isinstance(entry.get("send"), str):
         raise fail("needs a 'send' string", where)
     allowed = {"send", "args", "compute", "inverse", "limits", "returns", "true_values",
-               "false_value", "from_wire", "to_wire"}
+               "false_value", "from_wire", "to_wire", "query", "true_when_clear"}
     if set(entry) - allowed:
         raise fail(f"unknown keys {sorted(set(entry) - allowed)}", where)
     args = []
@@ -509,6 +684,9 @@ def _command_from_dict(name: str, entry: Any, constants: Mapping[str, float], fa
         false_value=str(entry.get("false_value", "0")),
         from_wire=entry.get("from_wire"),
         to_wire=entry.get("to_wire"),
+        query=entry.get("query"),
+        true_when_clear=(int(entry["true_when_clear"]) if "true_when_clear" in entry
+                         else None),
     )
 
 
@@ -530,6 +708,8 @@ def _waveform_from_dict(raw: Any, commands: Mapping[str, CommandSpec],
             dt=str(raw["dt"]),
             t_start=str(raw["t_start"]),
             simulated=dict(raw["simulated"]),
+            setup=tuple(raw.get("setup") or ()),
+            scaling_fields={str(k): tuple(v) for k, v in (raw.get("scaling_fields") or {}).items()},
         )
     except KeyError as exc:
         raise fail(f"missing {exc.args[0]!r}", "waveform") from exc
@@ -541,20 +721,32 @@ def _waveform_from_dict(raw: Any, commands: Mapping[str, CommandSpec],
         if command not in commands or not commands[command].is_query:
             raise fail(f"{value_name}: {command!r} is not a query of this table",
                        "waveform.scaling_queries")
+    for name in spec.setup:
+        if name not in commands or commands[name].args or commands[name].is_query:
+            raise fail(f"{name!r} is not an argument-less command of this table",
+                       "waveform.setup")
+    for key in spec.scaling_fields:
+        if key not in spec.scaling_queries or commands[spec.scaling_queries[key]].returns != "csv":
+            raise fail(f"{key!r}: fields need a scaling query answering csv",
+                       "waveform.scaling_fields")
     if spec.select_source and spec.select_source not in commands:
         raise fail(f"{spec.select_source!r} is not a command", "waveform.select_source")
     if commands["waveform_data"].returns != "block":
         raise fail("must return block", "commands.waveform_data.returns")
-    have = set(spec.scaling_queries) | set(constants)
+    have = {n for key in spec.scaling_queries for n in spec.scaling_names(key)} | set(constants)
     for key in ("gain", "offset", "dt", "t_start"):
         missing = expression_names(getattr(spec, key)) - have
         if missing:
             raise fail(f"uses unknown names {sorted(missing)}", f"waveform.{key}")
     sim_have = {"gain", "offset", "dt", "t_start"} | set(constants)
-    for key in spec.scaling_queries:
-        if key not in spec.simulated:
-            raise fail(f"no simulated expression for {key!r}", "waveform.simulated")
-        missing = expression_names(spec.simulated[key]) - sim_have
-        if missing:
-            raise fail(f"uses unknown names {sorted(missing)}", f"waveform.simulated.{key}")
+    for key, command in spec.scaling_queries.items():
+        if commands[command].returns == READBACK:
+            continue  # answered from the setting it reads back
+        for name in spec.scaling_names(key):
+            if name not in spec.simulated:
+                raise fail(f"no simulated expression for {name!r}", "waveform.simulated")
+            missing = expression_names(spec.simulated[name]) - sim_have
+            if missing:
+                raise fail(f"uses unknown names {sorted(missing)}",
+                           f"waveform.simulated.{name}")
     return spec

@@ -10,15 +10,22 @@ Common to every driver
     ``drain_errors()`` -> list of (code, text), ``check_errors(context)`` raises
     :class:`~benchrun.errors.InstrumentReportedError` when the SCPI error queue was not empty.
     Every ``configure``/``set_*`` call drains the queue before returning.
+    ``readback(name, **index)`` reads a setting back (tables that declare its ``query``);
+    ``verify_settings()`` reads back every setting sent since the last call and returns the
+    :class:`SettingMismatch` list (``benchrun bench check``).
 
 :class:`Scope`
     ``configure(channels, sample_interval_s, record_length, t_start_s, trigger_source,
-    trigger_level, trigger_slope="rising")``, ``arm_single()``, ``wait_triggered(timeout_s)
-    -> bool``, ``read_channel(name) -> ChannelTrace``, ``read_channels(names)``.
+    trigger_level, trigger_slope="rising")`` (also the table's data-format ``setup`` commands
+    and DC coupling where the table has ``channel_coupling``), ``arm_single()``, ``abort()``,
+    ``wait_triggered(timeout_s) -> bool``, ``read_channel(name) -> ChannelTrace``,
+    ``read_channels(names)``.
 :class:`PulseSource`
     ``configure(first_pulse_s, off_time_s=0, second_pulse_s=0)`` (no second pulse = single
     pulse trim shot), ``set_gate_resistance(ohm)``, ``output(on)``, ``is_output_on()``,
     ``fire()`` (never repeated automatically after a dropped connection).
+    With :class:`BusSupply`: ``has_watchdog``, ``arm_watchdog()``, ``refresh_watchdog()``
+    (tables with an ``output_watchdog`` section).
 :class:`BusSupply`
     ``set_voltage(V)``, ``set_current_limit(A)``, ``output(on)``, ``is_output_on()``,
     ``measure_voltage()``, ``measure_current()``.
@@ -72,6 +79,22 @@ class InstrumentIdentity:
 
 
 @dataclass(frozen=True)
+class SettingMismatch:
+    """A setting that did not read back as sent (``read`` is None when it could not be read)."""
+
+    role: str
+    setting: str
+    sent: str
+    read: str | None
+    detail: str = ""
+
+    def line(self) -> str:
+        if self.read is None:
+            return f"{self.role}: {self.sent}: cannot read it back ({self.detail})"
+        return f"{self.role}: {self.sent}: reads back {self.read!r}"
+
+
+@dataclass(frozen=True)
 class ChannelTrace:
     """One scope channel as read: codes plus scaling, compatible with ``ChannelData``.
 
@@ -109,11 +132,46 @@ class _Driver:
         if self.table.role != self.role:
             raise ConfigError(f"command table {self.table.family} is for role "
                               f"{self.table.role!r}, not {self.role!r}", file=self.table.source)
+        #: settings sent since the last verify_settings(): (name, index) -> inputs
+        self._sent: dict[tuple[str, tuple[tuple[str, Any], ...]], dict[str, Any]] = {}
 
     # --- plumbing ----------------------------------------------------------------------------
 
     def _send(self, name: str, *, retry: bool = True, **inputs: Any) -> None:
         self.session.write(self.table.format(name, **inputs), retry=retry)
+        if self.table.can_read_back(name):
+            index = tuple((k, inputs[k]) for k in self.table.index_args(name))
+            self._sent[(name, index)] = dict(inputs)
+
+    # --- read-back -----------------------------------------------------------------------------
+
+    def readback(self, name: str, **index: Any) -> dict[str, Any]:
+        """Read setting ``name`` back: its wire values and driver-level (inverse) values."""
+        return self._ask(f"{name}?", **index)
+
+    def verify_settings(self) -> list[SettingMismatch]:
+        """Read back every setting sent since the last call; the ones that differ.
+
+        Floats agree within 1 part in 10^6 (the 10 digits sent, and an instrument's own
+        float formatting); everything else exactly.
+        """
+        sent, self._sent = self._sent, {}
+        found = []
+        for (name, index), inputs in sent.items():
+            text = self.table.format(name, **inputs)
+            expected = self.table.wire_values(name, **inputs)
+            try:
+                got = self.readback(name, **dict(index))
+            except ProtocolError as exc:
+                found.append(SettingMismatch(self.role, name, text, None, str(exc)))
+                continue
+            for key, want in expected.items():
+                have = got.get(key)
+                if not _same(want, have):
+                    found.append(SettingMismatch(self.role, name, text,
+                                                 _show(have, self.table, name, key)))
+                    break
+        return found
 
     def _ask(self, name: str, **inputs: Any) -> Any:
         return self.table.parse_reply(name, self.session.query(self.table.format(name, **inputs)))
@@ -222,10 +280,17 @@ class Scope(_Driver):
             (``"rising"``/``"falling"``).
         """
         wanted = {self._channel(name): spec for name, spec in channels.items()}
+        wf = self.table.waveform
+        assert wf is not None  # validated for scope tables
+        for name in wf.setup:  # data format, byte order
+            self._send(name)
         for ch in range(1, max(self.table.channels, max(wanted, default=0)) + 1):
             self._send("channel_display", channel=ch, state=ch in wanted)
         self._probe = {}
+        coupling = self.table.has("channel_coupling")
         for ch, (full_scale, offset, probe) in sorted(wanted.items()):
+            if coupling:
+                self._send("channel_coupling", channel=ch, coupling="dc")
             self._send("channel_probe", channel=ch, factor=float(probe))
             self._send("channel_range", channel=ch, range=float(full_scale))
             self._send("channel_offset", channel=ch, offset=float(offset))
@@ -247,6 +312,11 @@ class Scope(_Driver):
         """
         self._send("arm_single")
         self.operation_complete()
+
+    def abort(self) -> None:
+        """Stop an armed acquisition (tables with an ``abort`` command; else nothing)."""
+        if self.table.has("abort"):
+            self._send("abort")
 
     def acquisition_done(self) -> bool:
         return bool(self._ask("acquisition_done"))
@@ -290,9 +360,9 @@ class Scope(_Driver):
         assert wf is not None  # validated for scope tables
         if wf.select_source:
             self._send(wf.select_source, channel=ch)
-        values = {key: self._ask(command, channel=ch)
-                  for key, command in wf.scaling_queries.items()}
-        names = {**self.table.constants, **values}
+        names: dict[str, float] = dict(self.table.constants)
+        for key, command in wf.scaling_queries.items():
+            names.update(self._scaling_values(key, command, ch))
         payload = self.session.query_block(self.table.format("waveform_data", channel=ch),
                                            terminator=wf.terminator_after_block)
         itemsize = 1 if wf.sample_format == "int8" else 2
@@ -313,6 +383,26 @@ class Scope(_Driver):
             t_start=evaluate(wf.t_start, names),
             dt=evaluate(wf.dt, names),
         )
+
+    def _scaling_values(self, key: str, command: str, channel: int) -> dict[str, float]:
+        """One scaling query's values: a setting read back (its one value), the fields of a
+        CSV scaling record, or a plain number."""
+        wf = self.table.waveform
+        assert wf is not None
+        spec = self.table.spec(command)
+        answer = self._ask(command, channel=channel)
+        if spec.setting is not None:
+            setting = self.table.spec(spec.setting)
+            value_args = [a.name for a in setting.args if a.name not in
+                          self.table.index_args(spec.setting)]
+            return {key: float(answer[value_args[0]])}
+        if key in wf.scaling_fields:
+            fields = wf.scaling_fields[key]
+            if len(answer) != len(fields):
+                raise ProtocolError(f"{self.session.resource}: {spec.send} answered "
+                                    f"{len(answer)} values, expected {len(fields)}")
+            return {f: scpi.parse_float(v) for f, v in zip(fields, answer, strict=True)}
+        return {key: float(answer)}
 
     def read_channels(self, names: list[str]) -> dict[str, ChannelTrace]:
         return {name: self.read_channel(name) for name in names}
@@ -346,6 +436,22 @@ class _SwitchedOutput(_Driver):
                 return
         raise InstrumentError(f"{self.session.resource}: the output still reads on after "
                               f"{attempts} off commands")
+
+    # --- output watchdog (tables with an ``output_watchdog`` section) ---------------------------
+
+    @property
+    def has_watchdog(self) -> bool:
+        return self.table.watchdog_timeout_s is not None
+
+    def arm_watchdog(self, timeout_s: float | None = None) -> None:
+        """Start the instrument's output watchdog: it switches its output off by itself when
+        no refresh comes for ``timeout_s`` (default: the table's timeout)."""
+        seconds = self.table.watchdog_timeout_s if timeout_s is None else timeout_s
+        self._send("watchdog_timeout", seconds=float(seconds or 0.0))
+        self.check_errors("arming the output watchdog")
+
+    def refresh_watchdog(self) -> None:
+        self._send("watchdog_refresh")
 
 
 class PulseSource(_SwitchedOutput):
@@ -406,7 +512,11 @@ class ThermalController(_Driver):
         self.check_errors("setting the temperature")
 
     def setpoint(self) -> float:
-        return float(self._ask("setpoint_value"))
+        """The setpoint as the controller reports it, K."""
+        return float(self.readback("setpoint")["kelvin"])
+
+    def is_output_on(self) -> bool:
+        return bool(self._ask("output_state"))
 
     def measure_temperature(self) -> float:
         """Measured device temperature, K."""
@@ -434,6 +544,20 @@ class Handler(_Driver):
     def selected(self) -> str | None:
         value = self._ask("selected")
         return None if value.upper() in ("", "NONE") else value
+
+
+def _same(want: Any, have: Any) -> bool:
+    if isinstance(want, float) and isinstance(have, int | float):
+        return abs(want - have) <= 1e-6 * max(abs(want), abs(have)) + 1e-15
+    return bool(want == have)
+
+
+def _show(value: Any, table: CommandTable, name: str, key: str) -> str:
+    spec = table.spec(name)
+    try:
+        return spec.arg(key).to_wire(value)
+    except (KeyError, ValueError, TypeError):
+        return str(value)
 
 
 DRIVERS: dict[str, type[_Driver]] = {

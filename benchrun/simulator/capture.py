@@ -30,10 +30,11 @@ from benchrun.simulator.server import (
     catalog_device,
 )
 
-#: Simulated 8-bit ADC: codes -128..127, 25 codes per division over 10 divisions.
+#: Simulated 8-bit ADC: codes -128..127 span the set full-scale range (255 code steps), as in
+#: the physics model's ``acquisition.digitize`` and the scope-generic table's scaling rule.
 ADC_CODE_MIN = -128
 ADC_CODE_MAX = 127
-ADC_CODES_FULL_SCALE = 250
+ADC_CODES_FULL_SCALE = ADC_CODE_MAX - ADC_CODE_MIN
 
 
 def quantize(signal: np.ndarray, setup: ChannelSetup) -> CapturedChannel:

@@ -19,6 +19,7 @@ from __future__ import annotations
 import inspect
 import math
 import threading
+import time
 from collections import deque
 from dataclasses import dataclass
 from typing import Any, Protocol
@@ -45,6 +46,10 @@ class Block:
 
     payload: memoryview
     terminator: bool
+
+
+#: dispatch() result of a query that has no answer (an error was queued instead)
+_NO_ANSWER = object()
 
 
 class BenchLink(Protocol):
@@ -115,14 +120,24 @@ class SimInstrument:
                 self.push_error(-222, f"{name} {v:g} outside [{low:g}, {high:g}]")
                 return None
         result = self.dispatch(spec.name, values)
-        if not spec.is_query:
+        if not spec.is_query or result is _NO_ANSWER:
             return None
         if isinstance(result, Block):
             return result
         return self._format_answer(spec, result)
 
     def dispatch(self, name: str, values: dict[str, Any]) -> Any:
-        """Run operation ``name`` (method ``op_<name>``) with the parameters it takes."""
+        """Run operation ``name`` (method ``op_<name>``) with the parameters it takes; a
+        read-back query ``<setting>?`` is answered by ``read_<setting>`` (driver-level values
+        of the setting as the instrument holds it)."""
+        spec = self.table.commands.get(name)
+        if spec is not None and spec.setting is not None:
+            reader = getattr(self, f"read_{spec.setting}", None)
+            if reader is None:
+                self.push_error(-113, f"{spec.send}: not simulated")
+                return _NO_ANSWER
+            wanted = inspect.signature(reader).parameters
+            return reader(**{k: v for k, v in values.items() if k in wanted})
         handler = getattr(self, f"op_{name}", None)
         if handler is None:  # a command this family declares that needs no simulated effect
             return None
@@ -194,6 +209,7 @@ class ChannelSetting:
     range: float = 8.0
     offset: float = 0.0
     probe: float = 1.0
+    coupling: str = "dc"
 
 
 @dataclass(frozen=True)
@@ -260,6 +276,45 @@ class SimScope(SimInstrument):
     def op_channel_probe(self, channel: int, factor: float) -> None:
         self.channels[channel].probe = factor
 
+    def op_channel_coupling(self, channel: int, coupling: str) -> None:
+        self.channels[channel].coupling = coupling
+
+    def read_channel_display(self, channel: int) -> dict[str, Any]:
+        return {"state": self.channels[channel].display}
+
+    def read_channel_coupling(self, channel: int) -> dict[str, Any]:
+        return {"coupling": self.channels[channel].coupling}
+
+    def read_channel_range(self, channel: int) -> dict[str, Any]:
+        return {"range": self.channels[channel].range}
+
+    def read_channel_offset(self, channel: int) -> dict[str, Any]:
+        return {"offset": self.channels[channel].offset}
+
+    def read_channel_probe(self, channel: int) -> dict[str, Any]:
+        return {"factor": self.channels[channel].probe}
+
+    def read_sample_interval(self) -> dict[str, Any]:
+        return {"interval": self.sample_interval}
+
+    def read_record_length(self) -> dict[str, Any]:
+        return {"points": self.record_length}
+
+    def read_time_start(self) -> dict[str, Any]:
+        return {"t_start": self.t_start}
+
+    def read_trigger_source(self) -> dict[str, Any]:
+        return {"channel": self.trigger_channel}
+
+    def read_trigger_level(self) -> dict[str, Any]:
+        return {"level": self.trigger_level}
+
+    def read_trigger_slope(self) -> dict[str, Any]:
+        return {"slope": self.trigger_slope}
+
+    def op_abort(self) -> None:
+        self.armed = False
+
     def op_sample_interval(self, interval: float) -> None:
         self.sample_interval = interval
 
@@ -302,22 +357,28 @@ class SimScope(SimInstrument):
         data = trace.data if trace is not None else np.zeros(0, dtype=wf.numpy_dtype)
         return Block(memoryview(data).cast("B"), wf.terminator_after_block)
 
-    def _scaling(self, key: str, channel: int | None) -> float:
+    def _scaling(self, key: str, channel: int | None) -> Any:
         trace = self._trace(channel)
         wf = self.table.waveform
         assert wf is not None
+        fields = wf.scaling_names(key)
         if trace is None:
-            return 0.0
-        names = {**self.table.constants, "gain": trace.gain, "offset": trace.offset,
-                 "dt": trace.dt, "t_start": trace.t_start}
-        return evaluate(wf.simulated[key], names)
+            values = [0.0] * len(fields)
+        else:
+            names = {**self.table.constants, "gain": trace.gain, "offset": trace.offset,
+                     "dt": trace.dt, "t_start": trace.t_start}
+            values = [evaluate(wf.simulated[f], names) for f in fields]
+        if key in wf.scaling_fields:
+            return [scpi.format_value(float(v)) for v in values]
+        return values[0]
 
     def dispatch(self, name: str, values: dict[str, Any]) -> Any:
-        # scaling queries are named by the table: answer each from its `simulated` expression
+        # scaling queries are named by the table: answer each from its `simulated`
+        # expression(s), except a setting read back (answered from the setting)
         wf = self.table.waveform
         assert wf is not None
         for key, command in wf.scaling_queries.items():
-            if name == command:
+            if name == command and self.table.commands[name].setting is None:
                 return self._scaling(key, values.get("channel"))
         return super().dispatch(name, values)
 
@@ -336,13 +397,88 @@ class SimScope(SimInstrument):
         self.done = True
 
 
+# --- output watchdog ---------------------------------------------------------------------------
+
+
+class OutputWatchdog:
+    """An instrument's output watchdog, on the wall clock (a hardware timer: it does not run
+    on the bench's accelerated clock).
+
+    ``WDOG:TIMeout <s>`` (``watchdog_timeout``) arms it (0 disarms), ``WDOG:REFResh``
+    (``watchdog_refresh``) restarts it. When ``timeout`` passes without a refresh, the output
+    is switched off *as of that instant* (:meth:`expired_at`): the instrument checks before
+    every message it handles and whenever the bench asks for its state, so a bench nobody
+    talks to any more is found with its output off from the moment the timeout ran out.
+    """
+
+    def __init__(self) -> None:
+        self.timeout_s = 0.0
+        self.last_refresh = time.monotonic()
+
+    def arm(self, seconds: float) -> None:
+        self.timeout_s = seconds
+        self.last_refresh = time.monotonic()
+
+    def refresh(self) -> None:
+        self.last_refresh = time.monotonic()
+
+    def expired_at(self) -> float | None:
+        """Wall-clock instant the timeout ran out, or None (disarmed or refreshed in time)."""
+        if self.timeout_s <= 0:
+            return None
+        deadline = self.last_refresh + self.timeout_s
+        return deadline if time.monotonic() >= deadline else None
+
+
+class _WatchdogMixin:
+    """``op_watchdog_*`` for an instrument with ``output_on``; subclasses implement
+    :meth:`_watchdog_off` (switch the output off as of a past wall-clock instant)."""
+
+    watchdog: OutputWatchdog
+    output_on: bool
+    bench: BenchLink
+
+    def check_watchdog(self) -> None:
+        expired = self.watchdog.expired_at()
+        if expired is not None:
+            self.watchdog.timeout_s = 0.0  # tripped: disarmed until armed again
+            if self.output_on:
+                self._watchdog_off(expired)
+
+    def _watchdog_off(self, wall_instant: float) -> None:
+        self.output_on = False
+
+    def _bench_time(self, wall_instant: float) -> float:
+        """Bench time of a past wall-clock instant (the bench clock may be accelerated)."""
+        speedup = float(getattr(self.bench, "clock_speedup", 1.0))
+        return self.bench.now() - (time.monotonic() - wall_instant) * speedup
+
+    def op_watchdog_timeout(self, seconds: float) -> None:
+        self.watchdog.arm(seconds)
+
+    def read_watchdog_timeout(self) -> dict[str, Any]:
+        return {"seconds": self.watchdog.timeout_s}
+
+    def op_watchdog_refresh(self) -> None:
+        self.watchdog.refresh()
+
+
 # --- pulse source ------------------------------------------------------------------------------
 
 
-class SimPulseSource(SimInstrument):
+class SimPulseSource(_WatchdogMixin, SimInstrument):
     """Two-pulse gate driver; firing asks the bench to run the shot."""
 
     role = "pulse"
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        self.watchdog = OutputWatchdog()
+        super().__init__(*args, **kwargs)
+
+    def handle(self, message: str) -> list[str | Block]:
+        with self.bench.lock:
+            self.check_watchdog()
+        return super().handle(message)
 
     def reset_state(self) -> None:
         self.count = 2
@@ -368,6 +504,21 @@ class SimPulseSource(SimInstrument):
     def op_gate_resistance(self, ohm: float) -> None:
         self.gate_resistance = ohm
 
+    def read_pulse_count(self) -> dict[str, Any]:
+        return {"count": self.count}
+
+    def read_first_width(self) -> dict[str, Any]:
+        return {"width": self.first}
+
+    def read_off_time(self) -> dict[str, Any]:
+        return {"gap": self.gap}
+
+    def read_second_width(self) -> dict[str, Any]:
+        return {"width": self.second}
+
+    def read_gate_resistance(self) -> dict[str, Any]:
+        return {"ohm": self.gate_resistance}
+
     def op_output(self, state: bool) -> None:
         self.output_on = state
 
@@ -389,7 +540,7 @@ class SimPulseSource(SimInstrument):
 # --- bus supply --------------------------------------------------------------------------------
 
 
-class SimBusSupply(SimInstrument):
+class SimBusSupply(_WatchdogMixin, SimInstrument):
     """DC supply charging the bus capacitor at its current limit; a bleeder discharges it.
 
     While the output is on the bus voltage ramps at ``I_limit / C`` towards the setpoint;
@@ -400,6 +551,7 @@ class SimBusSupply(SimInstrument):
     role = "supply"
 
     def __init__(self, *args: Any, **kwargs: Any) -> None:
+        self.watchdog = OutputWatchdog()
         self._v_ref = 0.0
         self._t_ref = 0.0
         self.output_on = False
@@ -413,8 +565,23 @@ class SimBusSupply(SimInstrument):
         self.current_limit = 1.0
         self.output_on = False
 
-    def bus_voltage(self, t: float | None = None) -> float:
+    def handle(self, message: str) -> list[str | Block]:
+        with self.bench.lock:
+            self.check_watchdog()
+        return super().handle(message)
+
+    def _watchdog_off(self, wall_instant: float) -> None:
+        """Output off as of the instant the watchdog ran out: the bus has been discharging
+        through the bleeder since then."""
+        t_off = min(self._bench_time(wall_instant), self.bench.now())
+        self._v_ref = self.bus_voltage(max(t_off, self._t_ref), check=False)
+        self._t_ref = max(t_off, self._t_ref)
+        self.output_on = False
+
+    def bus_voltage(self, t: float | None = None, *, check: bool = True) -> float:
         """Bus voltage at simulated time ``t`` (now by default)."""
+        if check:
+            self.check_watchdog()
         t = self.bench.now() if t is None else t
         elapsed = max(t - self._t_ref, 0.0)
         c = self.bench.bus_capacitance()
@@ -432,6 +599,12 @@ class SimBusSupply(SimInstrument):
         now = self.bench.now()
         self._v_ref = self.bus_voltage(now)
         self._t_ref = now
+
+    def read_voltage(self) -> dict[str, Any]:
+        return {"volts": self.setpoint}
+
+    def read_current_limit(self) -> dict[str, Any]:
+        return {"amps": self.current_limit}
 
     def op_voltage(self, volts: float) -> None:
         self._rebase()
@@ -513,8 +686,11 @@ class SimThermalController(SimInstrument):
         self._rebase()
         self.setpoint = kelvin
 
-    def op_setpoint_value(self) -> float:
-        return self.setpoint
+    def read_setpoint(self) -> dict[str, Any]:
+        return {"kelvin": self.setpoint}
+
+    def op_output_state(self) -> bool:
+        return self.output_on
 
     def op_measure_temperature(self) -> float:
         return round(self.temperature(), 3)
