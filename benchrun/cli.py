@@ -19,6 +19,7 @@ COMMAND_MODULES = (
     "demo",
     "run",
     "sim",
+    "bench",
     "analyze",
     "grade",
     "report",

@@ -11,10 +11,10 @@ Table layout (see ``commands/scope-generic.yaml`` for a complete example)::
     family: scope-generic          # must match the file name
     role: scope                    # scope | pulse | supply | thermal | handler
     identity: {fields: [manufacturer, model, serial, firmware], simulated: {...}}
-    constants: {codes_per_div: 25}           # names usable in expressions
+    constants: {code_span: 255}              # names usable in expressions
     commands:
       channel_range:
-        send: "CHANnel{channel}:RANGe {range}"   # SCPI mnemonics: upper case = short form
+        send: "SENSe{channel}:VOLTage:RANGe:PTPeak {range}"  # upper case = short form
         args: {channel: int, range: float}       # int | float | bool | str | {enum: {...}}
         compute: {scale: "range / 10"}           # optional: wire value from driver inputs
         inverse: {range: "scale * 10"}           # optional: driver inputs from wire values
@@ -418,7 +418,7 @@ def _mnemonic_regex(word: str) -> re.Pattern[str]:
 
 
 def _mnemonic_pattern(word: str) -> str:
-    """``CHANnel`` → accepts ``CHAN`` or ``CHANNEL`` (SCPI-1999 Vol. 1 §6.2.1 short/long form)."""
+    """``SWEep`` → accepts ``SWE`` or ``SWEEP`` (SCPI-1999 Vol. 1 §6.2.1 short/long form)."""
     short = len(word) - len(word.lstrip("ABCDEFGHIJKLMNOPQRSTUVWXYZ"))
     if 0 < short < len(word) and word[short:].islower():
         return f"{re.escape(word[:short])}(?:{re.escape(word[short:])})?"
@@ -487,7 +487,7 @@ def _build_matchers(specs: Any) -> tuple[tuple[re.Pattern[str], CommandSpec], ..
         for m in _PLACEHOLDER.finditer(spec.send):
             pattern.append(_literal_pattern(spec.send[pos : m.start()]))
             before = spec.send[: m.start()]
-            # a placeholder in the header or glued to a mnemonic is a numeric suffix (CHANnel{n})
+            # a placeholder in the header or glued to a mnemonic is a numeric suffix (SENSe{n})
             suffix = " " not in before or (before[-1:].isalpha())
             value = _SUFFIX_PATTERN if suffix else _VALUE_PATTERN
             pattern.append(f"(?P<{m.group(1)}>{value})")

@@ -149,6 +149,15 @@ class _Driver:
         """Read setting ``name`` back: its wire values and driver-level (inverse) values."""
         return self._ask(f"{name}?", **index)
 
+    @property
+    def pending_settings(self) -> int:
+        """Settings sent since the last :meth:`verify_settings` (each read back once)."""
+        return len(self._sent)
+
+    def forget_sent(self) -> None:
+        """Drop the record of settings sent (they will not be read back)."""
+        self._sent.clear()
+
     def verify_settings(self) -> list[SettingMismatch]:
         """Read back every setting sent since the last call; the ones that differ.
 

@@ -32,6 +32,7 @@ import contextlib
 import os
 import select
 import socket
+import threading
 from collections.abc import Callable
 from typing import Protocol, TypeVar
 
@@ -117,6 +118,9 @@ class InstrumentSession:
         #: non-repeatable writes that were in flight when a connection dropped
         self.unconfirmed_lost: list[str] = []
         self.reconnects = 0
+        # one operation (write, or write and read its answer) at a time: the runner's
+        # watchdog refresh writes from its own thread
+        self._lock = threading.RLock()
         self.open()
 
     # --- lifecycle --------------------------------------------------------------------------
@@ -284,6 +288,11 @@ class InstrumentSession:
 
     def _run(self, what: str, op: Callable[[pyvisa.resources.MessageBasedResource], T],
              retry: bool, *, is_write: bool = False) -> T:
+        with self._lock:
+            return self._run_unlocked(what, op, retry, is_write=is_write)
+
+    def _run_unlocked(self, what: str, op: Callable[[pyvisa.resources.MessageBasedResource], T],
+                      retry: bool, *, is_write: bool = False) -> T:
         if self._inst is None or self._stale:
             self._reopen(what)
             self._unconfirmed.clear()

@@ -10,6 +10,7 @@ temperature, fire one pulse train and read the capture. The safe state is
 from __future__ import annotations
 
 import logging
+import threading
 import time
 from collections import deque
 from collections.abc import Callable
@@ -30,6 +31,9 @@ log = logging.getLogger("benchrun.runner")
 
 #: Poll interval while waiting for the bus voltage (simulated or real seconds).
 BUS_POLL_S = 0.05
+
+#: Output watchdogs are refreshed this many times per watchdog timeout (wall clock).
+WATCHDOG_REFRESHES_PER_TIMEOUT = 4
 
 
 def resolve_resources(bench: BenchConfig, sim_resources: dict[str, str] | None
@@ -99,6 +103,7 @@ class Station:
         #: wall-clock durations of the last acquisitions (fire to record), for the trigger wait
         self._acquisitions: deque[float] = deque(maxlen=3)
         self._helpers: ThreadPoolExecutor | None = None
+        self._watchdog: _WatchdogRefresher | None = None
 
     # --- lifecycle -----------------------------------------------------------------------
 
@@ -121,6 +126,9 @@ class Station:
         return self._helpers.submit(call)
 
     def close(self) -> None:
+        if self._watchdog is not None:
+            self._watchdog.stop()
+            self._watchdog = None
         if self._helpers is not None:
             self._helpers.shutdown(wait=True)
             self._helpers = None
@@ -173,6 +181,7 @@ class Station:
         is switched on again, as before every shot).
         """
         self._check_sessions()
+        self._arm_watchdogs()
         if self._voltage != volts:
             self.supply.set_voltage(volts)
             self._voltage = volts
@@ -191,6 +200,24 @@ class Station:
                 self._ensure_supply_on()
             polls += 1
             self.clock.sleep(BUS_POLL_S)
+
+    def _arm_watchdogs(self) -> None:
+        """Arm the output watchdog of the pulse source and the supply where their command
+        tables declare one, once, before the bus is first energised; a thread refreshes them
+        from then on. If this process dies (kill -9, crash) the refreshes stop and the
+        instruments switch their outputs off by themselves after the timeout."""
+        if self._watchdog is not None:
+            return
+        drivers = [d for role in ("pulse", "supply")
+                   if (d := self.drivers.get(role)) is not None and d.has_watchdog]
+        if not drivers:
+            return
+        for driver in drivers:
+            driver.arm_watchdog()
+            log.info("%s output watchdog armed: output off after %g s without a refresh",
+                     driver.role, driver.table.watchdog_timeout_s)
+        shortest = min(float(d.table.watchdog_timeout_s) for d in drivers)
+        self._watchdog = _WatchdogRefresher(drivers, shortest / WATCHDOG_REFRESHES_PER_TIMEOUT)
 
     def _ensure_supply_on(self) -> None:
         if not self.supply.is_output_on():
@@ -386,3 +413,29 @@ class Station:
             poll_s=BUS_POLL_S * 4,
             extra_off=extra,
         )
+
+
+class _WatchdogRefresher:
+    """Refreshes output watchdogs every ``interval_s`` wall-clock seconds on its own thread
+    (the sessions serialise it with the run's own commands). A failed refresh is logged and
+    tried again at the next interval: the instrument's timeout is the safety net."""
+
+    def __init__(self, drivers: list[Any], interval_s: float) -> None:
+        self._drivers = drivers
+        self._interval = interval_s
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._loop, name="watchdog-refresh",
+                                        daemon=True)
+        self._thread.start()
+
+    def _loop(self) -> None:
+        while not self._stop.wait(self._interval):
+            for driver in self._drivers:
+                try:
+                    driver.refresh_watchdog()
+                except Exception as exc:  # logged; the next refresh tries again
+                    log.debug("watchdog refresh of %s failed: %s", driver.role, exc)
+
+    def stop(self) -> None:
+        self._stop.set()
+        self._thread.join(timeout=5.0)
