@@ -120,3 +120,23 @@ def test_an_scpi_error_is_reported_in_one_line(tmp_path):
     assert all(e.startswith('-222,"Data out of range;ohm 10 outside [0.5, 5]" after the double')
                for e in errors)
     assert not report.passed
+
+
+@pytest.mark.parametrize(("models", "passes"), [("[SCOPE-*]", True), ("[LAB8-*]", False)])
+def test_table_models_are_shell_patterns(tmp_path, models, passes):
+    from importlib import resources
+
+    text = (resources.files("benchrun.instruments") / "commands" /
+            "scope-generic.yaml").read_text()
+    table = tmp_path / "scope-lab8.yaml"
+    table.write_text(text.replace("family: scope-generic", "family: scope-lab8")
+                     .replace("models: [SCOPE-G4]", f"models: {models}"))
+    bench = load_bench(BENCH)
+    scope = bench.instruments.scope.model_copy(update={"family": str(table)})
+    bench = bench.model_copy(update={"instruments": bench.instruments.model_copy(
+        update={"scope": scope})})
+    with SimulatedBench(seed=1) as sim:  # serves scope-generic (model SCOPE-G4)
+        report = check_bench(bench, sim.resources)
+    assert report.passed is passes
+    if not passes:
+        assert [ln.role for ln in report.lines if ln.kind == "mismatch"] == ["scope"]
