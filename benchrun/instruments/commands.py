@@ -56,6 +56,12 @@ import yaml
 from benchrun.errors import ConfigError, ProtocolError
 from benchrun.instruments import scpi
 from benchrun.instruments.expressions import evaluate, expression_names
+from benchrun.instruments.mnemonics import PLACEHOLDER as _PLACEHOLDER
+from benchrun.instruments.mnemonics import build_matchers as _build_matchers
+from benchrun.instruments.mnemonics import data_part as _data_part
+from benchrun.instruments.mnemonics import data_template as _data_template_cached
+from benchrun.instruments.mnemonics import mnemonic_regex as _mnemonic_regex
+from benchrun.instruments.mnemonics import short_form as _short_form
 
 ROLES = ("scope", "pulse", "supply", "thermal", "handler")
 
@@ -116,10 +122,6 @@ RETURN_TYPES = ("float", "int", "bool", "str", "csv", "error", "block")
 #: ``returns`` of the ``<name>?`` queries made from a setting's ``query``.
 READBACK = "readback"
 
-_PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
-_MNEMONIC = re.compile(r"[A-Za-z]+")
-_VALUE_PATTERN = r"[^,;\s]+"
-_SUFFIX_PATTERN = r"\d+"
 
 
 # --- table records -----------------------------------------------------------------------------
@@ -411,93 +413,6 @@ class CommandTable:
                 values[target] = evaluate(expr, {**self.constants, **values})
             return spec, values
         return None
-
-
-def _mnemonic_regex(word: str) -> re.Pattern[str]:
-    return re.compile(_mnemonic_pattern(word), re.IGNORECASE)
-
-
-def _mnemonic_pattern(word: str) -> str:
-    """``SWEep`` → accepts ``SWE`` or ``SWEEP`` (SCPI-1999 Vol. 1 §6.2.1 short/long form)."""
-    short = len(word) - len(word.lstrip("ABCDEFGHIJKLMNOPQRSTUVWXYZ"))
-    if 0 < short < len(word) and word[short:].islower():
-        return f"{re.escape(word[:short])}(?:{re.escape(word[short:])})?"
-    return re.escape(word)
-
-
-def _short_form(text: str) -> str:
-    """``INTernal`` → ``INT`` for every mixed-case mnemonic of ``text`` (SCPI-1999 Vol. 1
-    §6.2.1: the upper-case part is the short form; instruments answer in short form)."""
-
-    def short(m: re.Match[str]) -> str:
-        word = m.group(0)
-        n = len(word) - len(word.lstrip("ABCDEFGHIJKLMNOPQRSTUVWXYZ"))
-        return word[:n] if 0 < n < len(word) and word[n:].islower() else word
-
-    return _MNEMONIC.sub(short, text)
-
-
-def _data_part(send: str) -> str:
-    """What follows the header of a program message unit (its data, maybe empty)."""
-    return send.split(None, 1)[1] if len(send.split(None, 1)) > 1 else ""
-
-
-@lru_cache(maxsize=256)
-def _data_template_cached(send: str) -> tuple[re.Pattern[str], str]:
-    data = _data_part(send)
-    pattern: list[str] = []
-    template: list[str] = []
-    pos = 0
-    for m in _PLACEHOLDER.finditer(data):
-        literal = data[pos : m.start()]
-        pattern.append(_literal_pattern(literal))
-        template.append(_short_form(literal))
-        glued = literal[-1:].isalpha()
-        value = _SUFFIX_PATTERN if glued else r"[^,;]+?"
-        pattern.append(f"(?P<{m.group(1)}>{value})")
-        template.append(m.group(0))
-        pos = m.end()
-    pattern.append(_literal_pattern(data[pos:]))
-    template.append(_short_form(data[pos:]))
-    return re.compile(r"\s*" + "".join(pattern) + r"\s*", re.IGNORECASE), "".join(template)
-
-
-
-
-def _literal_pattern(text: str) -> str:
-    out: list[str] = []
-    pos = 0
-    for m in _MNEMONIC.finditer(text):
-        out.append(_escape_literal(text[pos : m.start()]))
-        out.append(_mnemonic_pattern(m.group(0)))
-        pos = m.end()
-    out.append(_escape_literal(text[pos:]))
-    return "".join(out)
-
-
-def _escape_literal(text: str) -> str:
-    return "".join(r"\s+" if ch == " " else re.escape(ch) for ch in text)
-
-
-def _build_matchers(specs: Any) -> tuple[tuple[re.Pattern[str], CommandSpec], ...]:
-    result = []
-    for spec in specs:
-        pattern = []
-        pos = 0
-        for m in _PLACEHOLDER.finditer(spec.send):
-            pattern.append(_literal_pattern(spec.send[pos : m.start()]))
-            before = spec.send[: m.start()]
-            # a placeholder in the header or glued to a mnemonic is a numeric suffix (SENSe{n})
-            suffix = " " not in before or (before[-1:].isalpha())
-            value = _SUFFIX_PATTERN if suffix else _VALUE_PATTERN
-            pattern.append(f"(?P<{m.group(1)}>{value})")
-            pos = m.end()
-        pattern.append(_literal_pattern(spec.send[pos:]))
-        body = "".join(pattern)
-        if not spec.send.startswith("*"):
-            body = ":?" + body  # a leading colon is allowed on SCPI headers
-        result.append((re.compile(body, re.IGNORECASE), spec))
-    return tuple(result)
 
 
 # --- loading and validation ----------------------------------------------------------------------

@@ -104,6 +104,7 @@ class Station:
         self._acquisitions: deque[float] = deque(maxlen=3)
         self._helpers: ThreadPoolExecutor | None = None
         self._watchdog: _WatchdogRefresher | None = None
+        self._watchdog_armed = False
 
     # --- lifecycle -----------------------------------------------------------------------
 
@@ -203,10 +204,11 @@ class Station:
 
     def _arm_watchdogs(self) -> None:
         """Arm the output watchdog of the pulse source and the supply where their command
-        tables declare one, once, before the bus is first energised; a thread refreshes them
-        from then on. If this process dies (kill -9, crash) the refreshes stop and the
-        instruments switch their outputs off by themselves after the timeout."""
-        if self._watchdog is not None:
+        tables declare one, before the bus is energised (again after any instrument fault,
+        which may have tripped it); a thread refreshes them from then on. If this process
+        dies (kill -9, crash) the refreshes stop and the instruments switch their outputs off
+        by themselves after the timeout."""
+        if self._watchdog_armed:
             return
         drivers = [d for role in ("pulse", "supply")
                    if (d := self.drivers.get(role)) is not None and d.has_watchdog]
@@ -216,8 +218,11 @@ class Station:
             driver.arm_watchdog()
             log.info("%s output watchdog armed: output off after %g s without a refresh",
                      driver.role, driver.table.watchdog_timeout_s)
-        shortest = min(float(d.table.watchdog_timeout_s) for d in drivers)
-        self._watchdog = _WatchdogRefresher(drivers, shortest / WATCHDOG_REFRESHES_PER_TIMEOUT)
+        self._watchdog_armed = True
+        if self._watchdog is None:
+            shortest = min(float(d.table.watchdog_timeout_s) for d in drivers)
+            self._watchdog = _WatchdogRefresher(drivers,
+                                                shortest / WATCHDOG_REFRESHES_PER_TIMEOUT)
 
     def _ensure_supply_on(self) -> None:
         if not self.supply.is_output_on():
@@ -392,6 +397,7 @@ class Station:
         self._pulse_on = False
         self._selected = None
         self._acquisitions.clear()
+        self._watchdog_armed = False  # a fault may have tripped it: armed again when energising
 
     # --- safe state -----------------------------------------------------------------------------
 

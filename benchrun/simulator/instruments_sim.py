@@ -19,7 +19,6 @@ from __future__ import annotations
 import inspect
 import math
 import threading
-import time
 from collections import deque
 from dataclasses import dataclass
 from typing import Any, Protocol
@@ -30,6 +29,7 @@ from benchrun.instruments import scpi
 from benchrun.instruments.commands import CommandSpec, CommandTable, WaveformSpec
 from benchrun.instruments.expressions import evaluate
 from benchrun.simulator.faults import FaultSwitches
+from benchrun.simulator.watchdog import OutputWatchdog, WatchdogMixin
 
 ERROR_QUEUE_LENGTH = 16
 
@@ -397,76 +397,10 @@ class SimScope(SimInstrument):
         self.done = True
 
 
-# --- output watchdog ---------------------------------------------------------------------------
-
-
-class OutputWatchdog:
-    """An instrument's output watchdog, on the wall clock (a hardware timer: it does not run
-    on the bench's accelerated clock).
-
-    ``WDOG:TIMeout <s>`` (``watchdog_timeout``) arms it (0 disarms), ``WDOG:REFResh``
-    (``watchdog_refresh``) restarts it. When ``timeout`` passes without a refresh, the output
-    is switched off *as of that instant* (:meth:`expired_at`): the instrument checks before
-    every message it handles and whenever the bench asks for its state, so a bench nobody
-    talks to any more is found with its output off from the moment the timeout ran out.
-    """
-
-    def __init__(self) -> None:
-        self.timeout_s = 0.0
-        self.last_refresh = time.monotonic()
-
-    def arm(self, seconds: float) -> None:
-        self.timeout_s = seconds
-        self.last_refresh = time.monotonic()
-
-    def refresh(self) -> None:
-        self.last_refresh = time.monotonic()
-
-    def expired_at(self) -> float | None:
-        """Wall-clock instant the timeout ran out, or None (disarmed or refreshed in time)."""
-        if self.timeout_s <= 0:
-            return None
-        deadline = self.last_refresh + self.timeout_s
-        return deadline if time.monotonic() >= deadline else None
-
-
-class _WatchdogMixin:
-    """``op_watchdog_*`` for an instrument with ``output_on``; subclasses implement
-    :meth:`_watchdog_off` (switch the output off as of a past wall-clock instant)."""
-
-    watchdog: OutputWatchdog
-    output_on: bool
-    bench: BenchLink
-
-    def check_watchdog(self) -> None:
-        expired = self.watchdog.expired_at()
-        if expired is not None:
-            self.watchdog.timeout_s = 0.0  # tripped: disarmed until armed again
-            if self.output_on:
-                self._watchdog_off(expired)
-
-    def _watchdog_off(self, wall_instant: float) -> None:
-        self.output_on = False
-
-    def _bench_time(self, wall_instant: float) -> float:
-        """Bench time of a past wall-clock instant (the bench clock may be accelerated)."""
-        speedup = float(getattr(self.bench, "clock_speedup", 1.0))
-        return self.bench.now() - (time.monotonic() - wall_instant) * speedup
-
-    def op_watchdog_timeout(self, seconds: float) -> None:
-        self.watchdog.arm(seconds)
-
-    def read_watchdog_timeout(self) -> dict[str, Any]:
-        return {"seconds": self.watchdog.timeout_s}
-
-    def op_watchdog_refresh(self) -> None:
-        self.watchdog.refresh()
-
-
 # --- pulse source ------------------------------------------------------------------------------
 
 
-class SimPulseSource(_WatchdogMixin, SimInstrument):
+class SimPulseSource(WatchdogMixin, SimInstrument):
     """Two-pulse gate driver; firing asks the bench to run the shot."""
 
     role = "pulse"
@@ -540,7 +474,7 @@ class SimPulseSource(_WatchdogMixin, SimInstrument):
 # --- bus supply --------------------------------------------------------------------------------
 
 
-class SimBusSupply(_WatchdogMixin, SimInstrument):
+class SimBusSupply(WatchdogMixin, SimInstrument):
     """DC supply charging the bus capacitor at its current limit; a bleeder discharges it.
 
     While the output is on the bus voltage ramps at ``I_limit / C`` towards the setpoint;
