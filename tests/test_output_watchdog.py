@@ -126,3 +126,46 @@ def test_kill_9_of_a_run_leaves_the_simulated_outputs_off_after_the_timeout(tmp_
             run.kill()
             run.wait()
         sim.stop()
+
+
+def test_station_arms_once_refreshes_and_arms_again_after_a_fault(monkeypatch):
+    import types
+
+    from benchrun.config import load_bench
+    from benchrun.runner import station as station_module
+    from tests.bench_process import BENCH
+
+    class FakeDriver:
+        def __init__(self, role):
+            self.role = role
+            self.has_watchdog = role in ("pulse", "supply")
+            self.table = types.SimpleNamespace(watchdog_timeout_s=0.2)
+            self.session = types.SimpleNamespace(reconnects=0, close=lambda: None)
+            self.armed = self.refreshed = 0
+
+        def arm_watchdog(self):
+            self.armed += 1
+
+        def refresh_watchdog(self):
+            self.refreshed += 1
+
+    monkeypatch.setattr(station_module, "connect", lambda role, *a, **k: FakeDriver(role))
+    bench = load_bench(BENCH)
+    station = station_module.Station(bench, {r: "fake" for r, _ in bench.instruments.items()},
+                                     types.SimpleNamespace(monotonic=time.monotonic,
+                                                           sleep=time.sleep))
+    try:
+        station._arm_watchdogs()
+        station._arm_watchdogs()  # energised again: not armed again
+        pulse, supply, scope = (station.drivers[r] for r in ("pulse", "supply", "scope"))
+        assert (pulse.armed, supply.armed) == (1, 1)
+        time.sleep(0.3)  # refreshed every quarter of the 0.2 s timeout
+        assert pulse.refreshed >= 2 and supply.refreshed >= 2 and scope.refreshed == 0
+        station.forget_settings()  # after an instrument fault
+        station._arm_watchdogs()
+        assert (pulse.armed, supply.armed) == (2, 2)
+    finally:
+        station.close()
+    after = pulse.refreshed
+    time.sleep(0.15)
+    assert pulse.refreshed == after  # close() stops the refreshes
