@@ -140,3 +140,53 @@ def test_table_models_are_shell_patterns(tmp_path, models, passes):
     assert report.passed is passes
     if not passes:
         assert [ln.role for ln in report.lines if ln.kind == "mismatch"] == ["scope"]
+
+
+def test_a_table_without_models_still_finds_a_wrong_family_by_its_headers(tmp_path):
+    # scope-alt's headers sent to a scope that speaks scope-generic, with no model list to
+    # compare: the instrument never answers the table's error query (SYSTem:ERRor:NEXT?, an
+    # undefined header there), and the check says so in one line instead of going on
+    from importlib import resources
+
+    text = (resources.files("benchrun.instruments") / "commands" / "scope-alt.yaml").read_text()
+    table = tmp_path / "scope-nomodels.yaml"
+    table.write_text(text.replace("family: scope-alt", "family: scope-nomodels")
+                     .replace("  models: [SCOPE-A4]\n", ""))
+    bench = load_bench(BENCH)
+    scope = bench.instruments.scope.model_copy(update={"family": str(table), "timeout": 1.0})
+    bench = bench.model_copy(update={"instruments": bench.instruments.model_copy(
+        update={"scope": scope})})
+    with SimulatedBench(seed=1) as sim:
+        report = check_bench(bench, sim.resources, load_sequence(SEQUENCE))
+    scope_lines = [ln for ln in report.lines if ln.role == "scope"]
+    assert any("lists no models" in ln.text for ln in scope_lines)
+    mismatches = [ln.text for ln in scope_lines if ln.kind == "mismatch"]
+    assert len(mismatches) == 1
+    assert mismatches[0].startswith("no answer to the table's error query SYSTem:ERRor:NEXT?")
+    assert "wrong family?" in mismatches[0]
+    assert not report.passed and report.mismatches == 1
+
+
+def test_an_undefined_header_stops_that_instrument_with_one_clear_line(tmp_path):
+    # a table that shares the error query but not the range header with the instrument
+    from importlib import resources
+
+    text = (resources.files("benchrun.instruments") / "commands" /
+            "scope-generic.yaml").read_text()
+    table = tmp_path / "scope-upper.yaml"
+    table.write_text(text.replace("family: scope-generic", "family: scope-upper")
+                     .replace("RANGe:PTPeak", "RANGe:UPPer"))
+    bench = load_bench(BENCH)
+    scope = bench.instruments.scope.model_copy(update={"family": str(table)})
+    bench = bench.model_copy(update={"instruments": bench.instruments.model_copy(
+        update={"scope": scope})})
+    with SimulatedBench(seed=1) as sim:
+        report = check_bench(bench, sim.resources, load_sequence(SEQUENCE))
+    scope_lines = [ln for ln in report.lines if ln.role == "scope"]
+    errors = [ln.text for ln in scope_lines if ln.kind == "error"]
+    assert len(errors) == 3  # one per channel in use, then that instrument is left alone
+    assert all(e.startswith('-113,"Undefined header;SENS') for e in errors)
+    assert [ln.text for ln in scope_lines if ln.kind == "mismatch"] == [
+        "the instrument does not know this table's headers: wrong family? Not checked further."]
+    # the other instruments were checked to the end
+    assert report.settings_read_back > 40

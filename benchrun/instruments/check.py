@@ -23,7 +23,12 @@ from typing import Any
 
 from benchrun.config.bench import BenchConfig
 from benchrun.config.sequence import SequenceConfig
-from benchrun.errors import BenchrunError, InstrumentError, InstrumentReportedError
+from benchrun.errors import (
+    BenchrunError,
+    InstrumentError,
+    InstrumentReportedError,
+    InstrumentTimeout,
+)
 from benchrun.instruments.roles import connect
 
 #: Line kinds; ``mismatch`` and ``error`` make the check fail.
@@ -122,6 +127,12 @@ class _Checker:
         try:
             old = driver.drain_errors()
             driver.clear_status()
+        except InstrumentTimeout as exc:
+            self.add("mismatch", role, f"no answer to the table's error query "
+                                       f"{table.spec('next_error').send} ({exc}): the "
+                                       "instrument does not know this table's headers: wrong "
+                                       "family? Not checked further.")
+            return False
         except BenchrunError as exc:
             self.add("error", role, f"cannot read the error queue: {exc}")
             return False
