@@ -43,11 +43,19 @@ class SimProcess:
 
     def bench_file(self, folder: Path, **families: str) -> Path:
         """The simulated bench file with this process's resources (and other families)."""
-        text = BENCH.read_text()
-        for role, resource in self.resources.items():
-            family = families.get(role, f"{role}-generic")
-            text = re.sub(rf"(\n  {role}:\s*\{{resource: )sim, family: [\w-]+",
-                          rf"\g<1>{resource}, family: {family}", text)
+        out, role = [], None
+        for line in BENCH.read_text().splitlines():
+            m = re.match(r"  (\w+):\s*\{", line)
+            if m:
+                role = m.group(1) if m.group(1) in self.resources else None
+            elif not line.startswith("    "):
+                role = None
+            if role is not None:
+                line = line.replace("resource: sim", f"resource: {self.resources[role]}")
+                line = re.sub(r"family: [\w-]+", f"family: {families.get(role, f'{role}-generic')}",
+                              line)
+            out.append(line)
+        text = "\n".join(out) + "\n"
         assert "resource: sim" not in text
         path = folder / "bench.yaml"
         path.write_text(text)

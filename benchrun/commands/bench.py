@@ -36,16 +36,22 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def run_check(args: argparse.Namespace) -> int:
-    from benchrun.config.sequence import load_sequence
+    from benchrun.config.sequence import limits_path, load_sequence
     from benchrun.instruments.check import check_bench
 
     bench = load_bench(args.bench)
     sequence = load_sequence(args.sequence) if args.sequence else None
+    limits = None
+    limits_file = limits_path(sequence, args.sequence) if sequence is not None else None
+    if limits_file is not None and limits_file.is_file():
+        from benchrun.config.limits import load_limits
+
+        limits = load_limits(limits_file)
     if sequence is None:
         print("no --sequence: checking identities, outputs, the probes and ranges from the "
               "safety limits", flush=True)
     with _resources(bench) as resources:
-        report = check_bench(bench, resources, sequence,
+        report = check_bench(bench, resources, sequence, limits=limits,
                              on_line=lambda line: print(line.render(), flush=True))
     verdict = "passed" if report.passed else "FAILED"
     print(f"bench check {verdict}: {report.settings_read_back} settings read back, "

@@ -243,7 +243,7 @@ class _Checker:
 
 
 def check_bench(bench: BenchConfig, resources: dict[str, str],
-                sequence: SequenceConfig | None = None, *,
+                sequence: SequenceConfig | None = None, *, limits: Any = None,
                 on_line: Callable[[CheckLine], None] | None = None) -> CheckReport:
     """Identify every instrument, set and read back every setting, leave every output off.
 
@@ -256,6 +256,9 @@ def check_bench(bench: BenchConfig, resources: dict[str, str],
     sequence
         The sequence whose settings are checked; without it the scope is set up with the
         bench's probes and ranges from its safety limits, and the supply setpoint to 0 V.
+    limits
+        The sequence's limits (``LimitsSpec``), which set the current windows as in a run
+        (:func:`benchrun.runner.plan.plan_ranges`).
     on_line
         Called with every finding as it is made (for printing progress).
     """
@@ -263,7 +266,7 @@ def check_bench(bench: BenchConfig, resources: dict[str, str],
     try:
         checker.open(resources)
         checker.outputs_off_at_start()
-        for role, what, call in _steps(bench, sequence):
+        for role, what, call in _steps(bench, sequence, limits):
             checker.apply(role, what, call)
         if "handler" in checker.drivers and sequence is not None:
             _check_devices(checker, sequence)
@@ -276,7 +279,7 @@ def check_bench(bench: BenchConfig, resources: dict[str, str],
     return checker.report
 
 
-def _steps(bench: BenchConfig, sequence: SequenceConfig | None
+def _steps(bench: BenchConfig, sequence: SequenceConfig | None, limits: Any = None
            ) -> list[tuple[str, str, Callable[[Any], None]]]:
     """(role, description, call(driver)) for every group of settings, in sending order."""
     if sequence is None:
@@ -286,7 +289,7 @@ def _steps(bench: BenchConfig, sequence: SequenceConfig | None
     steps: list[tuple[str, str, Callable[[Any], None]]] = []
     for point in expand_points(sequence):
         plan = plan_pulses(point, sequence, bench.fixture)
-        ranges = plan_ranges(point, sequence, bench)
+        ranges = plan_ranges(point, sequence, bench, limits)
         channels = {name: (r.span, r.center, bench.probes[name].scale)
                     for name, r in ranges.items()}
         volts = point.bus_voltage_V
