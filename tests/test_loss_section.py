@@ -15,7 +15,7 @@ from reportlab.platypus import SimpleDocTemplate
 
 from benchrun.loss import estimate_losses
 from benchrun.records import ShotResult, TestPoint
-from benchrun.report.loss_section import ASSUMPTIONS, loss_flowables
+from benchrun.report.pages_loss import ASSUMPTIONS, loss_flowables
 
 
 def _shot(serial, temp, err, rec, est=None):
@@ -43,7 +43,7 @@ def _render(tmp_path, styles):
 
 @pytest.mark.skipif(shutil.which("pdftotext") is None, reason="poppler-utils not installed")
 def test_section_text_in_pdf(tmp_path):
-    from benchrun.report.styles import paragraph_styles
+    from benchrun.report.pages_style import paragraph_styles
 
     pdf = _render(tmp_path, paragraph_styles())
     text = subprocess.run(["pdftotext", "-layout", str(pdf), "-"], capture_output=True,

@@ -168,17 +168,19 @@ def test_missing_data_is_a_negative_result_not_an_exception(signed_run, tmp_path
 def test_a_re_signed_report_with_an_edited_number_fails_re_analysis(signed_run, tmp_path):  # noqa: F811
     """An insider who edits a number and signs again passes the signature and manifest
     checks; only re-analysing the raw waveforms catches the edit."""
-    from benchrun.report.adapter import build_content, raw_waveform_loader
+    from benchrun.report.facts_gather import build_content
+    from benchrun.report.raw_waveforms import raw_waveform_loader
     from benchrun.report.render import render_signed
+    from benchrun.report.run_sources import run_sources
 
     run_dir = signed_run.copy(tmp_path)
     from benchrun.store.rundata import load_run
 
     run = load_run(run_dir)
-    content = build_content(run, signed_run.lot, signed_run.signer)
+    content = build_content(run, signed_run.lot, signed_run.signer, run_sources(run))
     edited = content.shots[0]
     edited["metrics"]["qrr_C"] = edited["metrics"]["qrr_C"] * 0.8
-    with raw_waveform_loader(run, content) as loader:
+    with raw_waveform_loader(run, content.analysis_options) as loader:
         pdf = render_signed(content, run_dir / "edited.pdf", signed_run.signer,
                             waveform_loader=loader)
     result = verify_report(pdf, cert=signed_run.identity.cert_path, data=run_dir)

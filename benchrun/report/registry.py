@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from benchrun.report.content import ReportContent
+from benchrun.report.facts import ReportContent
 
 
 def register_report(url: str, content: ReportContent, path: Path, sha256: str) -> Any:

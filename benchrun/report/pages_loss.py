@@ -52,8 +52,8 @@ def _style(styles: Mapping[str, ParagraphStyle] | Any, name: str, fallback: str)
 
 
 def _table(rows: list[list[str]]) -> LongTable:
-    from benchrun.report.sections import base_table_style
-    from benchrun.report.styles import register_fonts
+    from benchrun.report.pages_blocks import base_table_style
+    from benchrun.report.pages_style import register_fonts
 
     register_fonts()  # the table style names the report's fonts
     table = LongTable(rows, repeatRows=1, hAlign="LEFT")

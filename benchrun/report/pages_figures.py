@@ -1,7 +1,7 @@
 """The report's figures: recovery waveforms, metric distributions, temperature trends.
 
 Every function takes plain numbers (SI units) and returns a matplotlib ``Figure`` built without
-pyplot; :class:`benchrun.report.mplflow.FigureFlowable` draws it into the PDF as vectors.
+pyplot; :class:`benchrun.report.pages_vector.FigureFlowable` draws it into the PDF as vectors.
 Markers follow the metric definitions of DESIGN §3 (IEC 60747-2 style trr extrapolation):
 t0 the current zero crossing, Irrm the reverse peak, trr where the straight line through the
 0.9·Irrm and 0.25·Irrm points crosses zero, t2 the integration end.
@@ -10,30 +10,16 @@ t0 the current zero crossing, Irrm the reverse peak, trr where the straight line
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
 
 import numpy as np
 from matplotlib.figure import Figure
 
-from benchrun.report.mplflow import finite, new_figure, nice_unit_scale
-from benchrun.report.styles import PLOT_CURRENT, PLOT_LIMIT, PLOT_MARK, PLOT_VOLTAGE
+from benchrun.report.facts import WaveformMarks
+from benchrun.report.pages_style import PLOT_CURRENT, PLOT_LIMIT, PLOT_MARK, PLOT_VOLTAGE
+from benchrun.report.pages_vector import finite, new_figure, nice_unit_scale
 
 _TEMPERATURE_COLOURS = ("#1f4e79", "#b8651b", "#2e7d32", "#6a3d9a", "#8c564b", "#d62728")
 _MAX_POINTS = 4000  # a plotted trace never needs more points than this on an A4 page
-
-
-@dataclass(frozen=True)
-class WaveformMarks:
-    """Instants and levels to mark on a recovery plot (absolute times, SI units)."""
-
-    t0_s: float | None
-    t_irrm_s: float | None
-    irrm_A: float | None
-    t_trr_s: float | None
-    t2_s: float | None
-    if_A: float | None = None
-    vrm_V: float | None = None
-    fit_high: float = 0.9
 
 
 def _decimate(t: np.ndarray, *ys: np.ndarray) -> tuple[np.ndarray, ...]:

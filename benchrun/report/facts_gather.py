@@ -8,32 +8,27 @@ from the raw record and re-analysed through the same pipeline the runner used.
 
 from __future__ import annotations
 
-import contextlib
 import datetime as _dt
 import math
-from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
 
 from benchrun import __version__
-from benchrun.errors import BenchrunError
 from benchrun.records import json_safe
-from benchrun.report.content import (
-    METRIC_DEFINITIONS,
-    METRIC_LABELS,
+from benchrun.report.facts import (
     METRIC_ORDER,
     Cell,
     DeviceLine,
     ReportContent,
     WaveformRequest,
-    fmt,
     label_unit,
     new_report_id,
 )
+from benchrun.report.facts_method import method_table
+from benchrun.report.facts_numbers import fmt
 from benchrun.report.keys import ReportSigner
-from benchrun.report.manifest import build_manifest, code_digest
-from benchrun.report.plots import WaveformMarks
+from benchrun.report.run_sources import RunSources
 from benchrun.units import format_si
 
 #: Company shown when neither the run manifest nor the signer certificate names one.
@@ -41,31 +36,6 @@ COMPANY_DEFAULT = ""
 
 #: At most this many failing devices get a waveform plot each (the rest are listed by name).
 MAX_FAILING_PLOTS = 60
-
-
-def _cfg(loader: str, path: Any) -> Any:
-    """Load a configuration file of the run folder; None when absent or unreadable."""
-    if path is None or not path.is_file():
-        return None
-    try:
-        if loader == "bench":
-            from benchrun.config.bench import load_bench
-
-            return load_bench(path)
-        from benchrun.config.sequence import load_sequence
-
-        return load_sequence(path)
-    except BenchrunError:
-        return None
-
-
-def analysis_options(run: Any) -> dict[str, Any]:
-    """The analysis options the run used (from its sequence file), as RecoveryOptions kwargs."""
-    sequence = _cfg("sequence", getattr(run, "sequence_path", None))
-    if sequence is not None:
-        return dict(sequence.analysis.option_values())
-    stored = (getattr(run, "manifest", None) or {}).get("analysis_options")
-    return dict(stored) if isinstance(stored, dict) else {}
 
 
 def _fmt_range(values: list[float], unit: str) -> str:
@@ -150,27 +120,6 @@ def _fixture_table(bench: Any) -> list[list[str]]:
         unit = "A/V" if probe.measures_current else "V/V"
         rows.append([f"probe {name}", f"channel {probe.channel}, {probe.kind}, scale "
                      f"{probe.scale:g} {unit}, deskew {format_si(probe.deskew, 's')}"])
-    return rows
-
-
-def _definitions(options: dict[str, Any]) -> list[list[str]]:
-    fit_high = options.get("fit_high", 0.9)
-    fit_low = options.get("fit_low", 0.25)
-    end = options.get("integration_end_fraction", 0.02)
-    rows = [["Metric", "Definition (values positive, SI units; times by linear interpolation)"]]
-    for key in ("if_A", "irrm_A", "ta_s", "trr_s", "tb_s", "softness", "rrsf", "qrr_C", "err_J",
-                "didt_A_per_s", "vrm_V", "vr_V"):
-        text = METRIC_DEFINITIONS[key]
-        if key == "trr_s" and options.get("trr_method") == "threshold":
-            text = METRIC_DEFINITIONS["trr_s_threshold"]
-        text = text.format(fit_high=fit_high, fit_low=fit_low, end=end,
-                           threshold=options.get("trr_threshold_fraction", 0.25))
-        rows.append([METRIC_LABELS[key][0], text])
-    rows.append(["t0", "first falling zero crossing of the diode current at the analysed "
-                       "commutation"])
-    low = options.get("lowpass_hz")
-    rows.append(["filtering", "zero-phase low-pass at " + format_si(low, "Hz")
-                 if low else "none (raw ADC codes, offset removed from the pre-event baseline)"])
     return rows
 
 
@@ -283,14 +232,16 @@ def _waveform_requests(run: Any, lot: Any) -> list[WaveformRequest]:
     return requests
 
 
-def build_content(run: Any, lot: Any, signer: ReportSigner, *,
+def build_content(run: Any, lot: Any, signer: ReportSigner, sources: RunSources, *,
                   now: _dt.datetime | None = None) -> ReportContent:
-    """Everything the report prints, from a run and its grades."""
+    """Everything the report prints, from a run, its grades and the files they rest on.
+
+    Pure: reads nothing, writes nothing; ``sources`` holds what was read from the run folder
+    (:func:`benchrun.report.run_sources.run_sources`).
+    """
     now = now or _dt.datetime.now(_dt.UTC).replace(microsecond=0)
     manifest = run.manifest or {}
-    bench = _cfg("bench", getattr(run, "bench_path", None))
-    sequence = _cfg("sequence", getattr(run, "sequence_path", None))
-    options = analysis_options(run)
+    bench, sequence, options = sources.bench, sources.sequence, sources.analysis_options
     devices, columns = _device_lines(lot)
     stats = lot.statistics
     dists, trends, log = _figures(run, lot, columns)
@@ -315,7 +266,7 @@ def build_content(run: Any, lot: Any, signer: ReportSigner, *,
         conditions_table=_conditions_table(run, lot, sequence.tolerances if sequence else None),
         instruments_table=_instruments_table(run, bench),
         fixture_table=_fixture_table(bench),
-        definitions_table=_definitions(options),
+        definitions_table=method_table(options),
         decision_rule=[lot.decision_rule, lot.lot_rule],
         budget_table=_budget_table(lot),
         metric_columns=columns,
@@ -328,11 +279,11 @@ def build_content(run: Any, lot: Any, signer: ReportSigner, *,
         trends=trends,
         temperature_log=log,
         waveforms=_waveform_requests(run, lot),
-        manifest=[e.to_dict() for e in build_manifest(run)],
+        manifest=[dict(e) for e in sources.manifest],
         shots=_shot_rows(run, lot),
         lot_grade=lot.to_dict(),
         analysis_options=options,
-        code_sha256=code_digest(),
+        code_sha256=sources.code_sha256,
     )
     return content
 
@@ -357,54 +308,3 @@ def _statistics_table(stats: Any) -> list[list[str]]:
         rows.append([f"outlier {o.serial}", o.condition, "", f"{label} "
                      f"{fmt(o.value, unit, 4)}", f"z = {o.z:.1f}", "", "", ""])
     return rows
-
-
-def shot_waveform(raw_shot: Any, options: dict[str, Any]) -> tuple[Any, Any, Any,
-                                                                    WaveformMarks]:
-    """Physical waveforms of one raw shot and the marks from its re-analysis."""
-    from benchrun.report.reanalysis import analyze_raw_shot
-
-    channels, probes = raw_shot.channels, raw_shot.probes
-
-    def physical(name: str) -> tuple[np.ndarray, np.ndarray]:
-        from benchrun.analysis.pipeline import ProbeCalibration, physical_channel
-
-        probe = probes.get(name) or ProbeCalibration(scale=1.0)
-        values, _ = physical_channel(name, raw_shot.dt, channels[name], probe)
-        t = raw_shot.t_start + np.arange(values.size) * raw_shot.dt
-        return t, values
-
-    t_i, i = physical("diode_current")
-    t_v, v = physical("diode_voltage")
-    v = np.interp(t_i, t_v, v)
-    marks = WaveformMarks(None, None, None, None, None)
-    with contextlib.suppress(BenchrunError):
-        metrics = analyze_raw_shot(raw_shot, options)
-        marks = WaveformMarks(metrics.get("t0_s"), metrics.get("t_irrm_s"),
-                              metrics.get("irrm_A"), metrics.get("t_trr_s"),
-                              metrics.get("t2_s"), metrics.get("if_A"), metrics.get("vrm_V"),
-                              float((options or {}).get("fit_high", 0.9)))
-    return t_i, v, i, marks
-
-
-@contextlib.contextmanager
-def raw_waveform_loader(run: Any, content: ReportContent) -> Iterator[Any]:
-    """A loader ``raw_ref → (t, v, i, marks)`` over the run's raw record (None if missing)."""
-    raw = None
-    with contextlib.suppress(BenchrunError):
-        raw = run.open_raw()
-    options = content.analysis_options
-
-    def load(ref: str) -> Any:
-        if raw is None:
-            return None
-        try:
-            return shot_waveform(raw.read_shot(ref), options)
-        except (BenchrunError, KeyError):
-            return None
-
-    try:
-        yield load
-    finally:
-        if raw is not None:
-            raw.close()

@@ -19,7 +19,7 @@ from matplotlib.path import Path as MplPath
 from reportlab.pdfbase import pdfmetrics
 from reportlab.platypus import Flowable
 
-from benchrun.report.styles import FONT_BOLD, FONT_REGULAR, register_fonts
+from benchrun.report.pages_style import FONT_BOLD, FONT_REGULAR, register_fonts
 
 _CAPS = {"butt": 0, "round": 1, "projecting": 2}
 _JOINS = {"miter": 0, "round": 1, "bevel": 2}

@@ -17,22 +17,13 @@ import math
 from typing import Any
 
 from benchrun.errors import BenchrunError
+from benchrun.report.raw_waveforms import analyze_raw_shot
+from benchrun.report.verify_checks import CHECK_REANALYSIS, Check
 
 #: Relative agreement required between a reported and a re-computed number.
 REL_TOL = 1e-9
 #: Keys of ``ShotResult.conditions`` that the analysis itself measures (taken from it again).
 ANALYSED_CONDITIONS = ("if_A", "didt_A_per_s", "vr_V")
-
-
-def analyze_raw_shot(raw_shot: Any, options: dict[str, Any] | None) -> dict[str, Any]:
-    """Metrics of one raw shot through the runner's pipeline (``ShotAnalysis.metrics()``)."""
-    from benchrun.analysis import RecoveryOptions
-    from benchrun.analysis.pipeline import analyze_channels
-
-    opts = RecoveryOptions(**options) if options else None
-    result = analyze_channels(raw_shot.t_start, raw_shot.dt, raw_shot.channels,
-                              raw_shot.probes, opts)
-    return dict(result.metrics())
 
 
 def same_number(a: Any, b: Any) -> bool:
@@ -49,9 +40,7 @@ def same_number(a: Any, b: Any) -> bool:
     return math.isclose(a, b, rel_tol=REL_TOL, abs_tol=0.0)
 
 
-def _check(ok: bool, reason: str, details: list[str] | tuple[str, ...] = ()) -> Any:
-    from benchrun.report.verify import CHECK_REANALYSIS, Check
-
+def _check(ok: bool, reason: str, details: list[str] | tuple[str, ...] = ()) -> Check:
     return Check(CHECK_REANALYSIS, ok, reason, tuple(details))
 
 

@@ -2,7 +2,7 @@
 
 :func:`build_content` reads a ``RunData`` (store contract) and a ``LotGrade`` (grading contract)
 and returns a :class:`ReportContent` of strings and SI floats; the layout code
-(:mod:`benchrun.report.sections`) never touches the run or grading objects. The same content
+(:mod:`benchrun.report.pages_blocks`) never touches the run or grading objects. The same content
 becomes the JSON attachment (:func:`attachment_dict`) that verification compares with a
 re-analysis of the raw record.
 """
@@ -56,26 +56,18 @@ def label_unit(key: str) -> tuple[str, str]:
     return key.replace("_", " "), ""
 
 
-#: Definitions printed in the report (DESIGN §3; fractions filled from the analysis options).
-METRIC_DEFINITIONS: dict[str, str] = {
-    "if_A": "forward current on the plateau just before commutation",
-    "irrm_A": "peak reverse recovery current, −min(i) in the recovery",
-    "ta_s": "t0 to the instant of Irrm",
-    "trr_s": ("t0 to the zero crossing of the straight line through the points where i "
-              "rises through −{fit_high}·Irrm and −{fit_low}·Irrm (IEC 60747-2 extrapolation)"),
-    "trr_s_threshold": ("t0 to the instant i rises through −{threshold}·Irrm "
-                        "(JEDEC 'current reaches a set value' method)"),
-    "tb_s": "trr − ta",
-    "softness": "S = tb / ta",
-    "rrsf": ("JEDEC reverse-recovery softness factor: |di/dt at t0| / |steepest di/dt "
-             "after the minimum|"),
-    "qrr_C": "−∫ i dt from t0 to t2; t2 where i rises through −{end}·Irrm",
-    "err_J": "∫ v·i dt from t0 to t2 (energy dissipated in the diode)",
-    "didt_A_per_s": ("commutation slope (0.5·IF + 0.5·Irrm) / Δt, Δt between the instants the "
-                     "current falls through +0.5·IF and through −0.5·Irrm"),
-    "vrm_V": "max(−v) from t0 to t2 + trr (peak reverse voltage incl. overshoot)",
-    "vr_V": "steady reverse voltage after the event",
-}
+@dataclass(frozen=True)
+class WaveformMarks:
+    """Instants and levels to mark on a recovery plot (absolute times, SI units)."""
+
+    t0_s: float | None
+    t_irrm_s: float | None
+    irrm_A: float | None
+    t_trr_s: float | None
+    t2_s: float | None
+    if_A: float | None = None
+    vrm_V: float | None = None
+    fit_high: float = 0.9
 
 
 @dataclass(frozen=True)
@@ -148,42 +140,6 @@ class ReportContent:
     analysis_options: dict[str, Any] = field(default_factory=dict)
     limits_file: str = "limits.yaml"
     code_sha256: str = ""
-
-
-_PREFIX = {"T": 1e12, "G": 1e9, "M": 1e6, "k": 1e3, "": 1.0, "m": 1e-3, "µ": 1e-6,
-           "n": 1e-9, "p": 1e-12, "f": 1e-15}
-
-
-def fmt(value: float | None, unit: str, digits: int = 4) -> str:
-    """Display a SI value: engineering prefix, di/dt in A/µs, dimensionless plain."""
-    import math
-
-    from benchrun.units import format_si
-
-    if value is None or not math.isfinite(value):
-        return "—"
-    if unit == "A/s":
-        return f"{value / 1e6:.{digits}g} A/µs"
-    if unit == "":
-        return f"{value:.{digits}g}"
-    return format_si(value, unit, digits)
-
-
-def value_with_u(value: float, expanded_u: float | None, unit: str, digits: int = 3) -> str:
-    """``value ± U`` with one shared prefix, e.g. ``102 ns ± 0.82 ns``."""
-    import math
-
-    text = fmt(value, unit, digits)
-    if expanded_u is None or not math.isfinite(expanded_u):
-        return text
-    if unit == "":
-        return f"{text} ± {expanded_u:.2g}"
-    if unit == "A/s":
-        return f"{value / 1e6:.{digits}g} ± {expanded_u / 1e6:.2g} A/µs"
-    number, _, shown = text.partition(" ")
-    prefix = shown[: len(shown) - len(unit)] if shown.endswith(unit) else ""
-    scale = _PREFIX.get(prefix, 1.0)
-    return f"{number} ± {expanded_u / scale:.2g} {shown}"
 
 
 def new_report_id(run_id: str, when: _dt.datetime) -> str:

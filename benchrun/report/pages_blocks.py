@@ -23,8 +23,9 @@ from reportlab.platypus import (
     TableStyle,
 )
 
-from benchrun.report.content import DeviceLine, ReportContent, label_unit, value_with_u
-from benchrun.report.styles import (
+from benchrun.report.facts import DeviceLine, ReportContent, label_unit
+from benchrun.report.facts_numbers import value_with_u
+from benchrun.report.pages_style import (
     FONT_BOLD,
     FONT_REGULAR,
     HEADER_BG,

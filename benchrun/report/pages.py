@@ -1,5 +1,5 @@
 """The order and wording of the report: cover, conditions, bench, method, results, figures,
-cautions, manifest. Layout helpers live in :mod:`benchrun.report.sections`."""
+cautions, manifest. Layout helpers live in :mod:`benchrun.report.pages_blocks`."""
 
 from __future__ import annotations
 
@@ -9,10 +9,10 @@ from typing import Any
 from reportlab.lib.units import mm
 from reportlab.platypus import Flowable, Table, TableStyle
 
-from benchrun.report import sections as sec
-from benchrun.report.content import ReportContent
-from benchrun.report.mplflow import FigureFlowable
-from benchrun.report.plots import distribution_figure, temperature_log_figure, trend_figure
+from benchrun.report import pages_blocks as sec
+from benchrun.report.facts import ReportContent
+from benchrun.report.pages_figures import distribution_figure, temperature_log_figure, trend_figure
+from benchrun.report.pages_vector import FigureFlowable
 
 SAFETY_CAUTIONS = (
     "High voltage and stored energy can kill. A double-pulse bench charges capacitors to "

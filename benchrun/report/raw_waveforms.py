@@ -1,0 +1,76 @@
+"""Shots read back from the raw HDF5 record and analysed again through the runner's pipeline.
+
+Used by the report (waveform figures and their marks) and by verification (re-analysis);
+it imports neither.
+"""
+
+from __future__ import annotations
+
+import contextlib
+from collections.abc import Iterator
+from typing import Any
+
+import numpy as np
+
+from benchrun.errors import BenchrunError
+from benchrun.report.facts import WaveformMarks
+
+
+def analyze_raw_shot(raw_shot: Any, options: dict[str, Any] | None) -> dict[str, Any]:
+    """Metrics of one raw shot through the runner's pipeline (``ShotAnalysis.metrics()``)."""
+    from benchrun.analysis import RecoveryOptions
+    from benchrun.analysis.pipeline import analyze_channels
+
+    opts = RecoveryOptions(**options) if options else None
+    result = analyze_channels(raw_shot.t_start, raw_shot.dt, raw_shot.channels,
+                              raw_shot.probes, opts)
+    return dict(result.metrics())
+
+
+
+def shot_waveform(raw_shot: Any, options: dict[str, Any]) -> tuple[Any, Any, Any,
+                                                                    WaveformMarks]:
+    """Physical waveforms of one raw shot and the marks from its re-analysis."""
+    channels, probes = raw_shot.channels, raw_shot.probes
+
+    def physical(name: str) -> tuple[np.ndarray, np.ndarray]:
+        from benchrun.analysis.pipeline import ProbeCalibration, physical_channel
+
+        probe = probes.get(name) or ProbeCalibration(scale=1.0)
+        values, _ = physical_channel(name, raw_shot.dt, channels[name], probe)
+        t = raw_shot.t_start + np.arange(values.size) * raw_shot.dt
+        return t, values
+
+    t_i, i = physical("diode_current")
+    t_v, v = physical("diode_voltage")
+    v = np.interp(t_i, t_v, v)
+    marks = WaveformMarks(None, None, None, None, None)
+    with contextlib.suppress(BenchrunError):
+        metrics = analyze_raw_shot(raw_shot, options)
+        marks = WaveformMarks(metrics.get("t0_s"), metrics.get("t_irrm_s"),
+                              metrics.get("irrm_A"), metrics.get("t_trr_s"),
+                              metrics.get("t2_s"), metrics.get("if_A"), metrics.get("vrm_V"),
+                              float((options or {}).get("fit_high", 0.9)))
+    return t_i, v, i, marks
+
+
+@contextlib.contextmanager
+def raw_waveform_loader(run: Any, options: dict[str, Any] | None) -> Iterator[Any]:
+    """A loader ``raw_ref → (t, v, i, marks)`` over the run's raw record (None if missing)."""
+    raw = None
+    with contextlib.suppress(BenchrunError):
+        raw = run.open_raw()
+
+    def load(ref: str) -> Any:
+        if raw is None:
+            return None
+        try:
+            return shot_waveform(raw.read_shot(ref), options)
+        except (BenchrunError, KeyError):
+            return None
+
+    try:
+        yield load
+    finally:
+        if raw is not None:
+            raw.close()
