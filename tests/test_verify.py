@@ -20,6 +20,7 @@ from benchrun.report.keys import new_identity
 from benchrun.report.verify import (
     CHECK_MANIFEST,
     CHECK_REANALYSIS,
+    CHECK_REGISTRATION,
     CHECK_SIGNATURE,
     CHECK_TRUST,
     verify_report,
@@ -37,7 +38,7 @@ def test_untouched_report_verifies(signed_run):  # noqa: F811
     result = verify_report(signed_run.pdf, cert=signed_run.identity.cert_path)
     assert result.ok, [c.to_dict() for c in result.checks]
     assert [c.name for c in result.checks] == [CHECK_SIGNATURE, CHECK_TRUST, CHECK_MANIFEST,
-                                               CHECK_REANALYSIS]
+                                               CHECK_REANALYSIS, CHECK_REGISTRATION]
     assert "60 shots re-analysed" in result.check(CHECK_REANALYSIS).reason
     assert "Signature is Valid." in _pdfsig(signed_run.pdf)
 

@@ -2,6 +2,9 @@
 
 RESULTS is a run folder or a results database URL. Lists the signed reports registered in the
 results store (identifier, run, disposition, signer, file and its SHA-256), for the auditor.
+Every row is checked against the signed file it names (its SHA-256 and the disposition,
+reasons, counts and signer embedded in it); a row that differs is marked ALTERED and the exit
+code is 1.
 """
 
 from __future__ import annotations
@@ -52,19 +55,43 @@ def _as_dict(record: Any) -> dict[str, Any]:
     return asdict(record)
 
 
+def _folders(source: str) -> tuple[Path, ...]:
+    """Where a moved run folder's report may be: the folder given on the command line."""
+    path = Path(source)
+    return (path,) if "://" not in source and path.is_dir() else ()
+
+
+def _checked(record: Any, source: str) -> list[str]:
+    """Disagreements between a reports-table row and the signed file it names."""
+    from benchrun.report.registry import read_registered_file, registration_problems
+
+    return registration_problems(record, read_registered_file(record, *_folders(source)))
+
+
 def run_list(args: argparse.Namespace) -> int:
     from benchrun.report.registry import list_reports
 
     records = list_reports(_url(args.results), args.run_id)
+    checked = [(r, _checked(r, args.results)) for r in records]
     if args.json:
-        print(json.dumps([_as_dict(r) for r in records], indent=2, ensure_ascii=False))
-        return 0
+        print(json.dumps([{**_as_dict(r), "row_matches_signed_report": not problems,
+                           "row_problems": problems} for r, problems in checked],
+                         indent=2, ensure_ascii=False))
+        return 0 if all(not p for _, p in checked) else 1
     if not records:
         print("no reports registered")
         return 0
-    print(f"{'report':44} {'run':22} {'disposition':11} {'issued':24} signer")
-    for r in records:
-        print(f"{r.report_id:44} {r.run_id:22} {r.disposition:11} {r.created:24} {r.signer}")
+    print(f"{'report':44} {'run':22} {'disposition':11} {'issued':24} {'row':8} signer")
+    for r, problems in checked:
+        state = "matches" if not problems else "ALTERED"
+        print(f"{r.report_id:44} {r.run_id:22} {r.disposition:11} {r.created:24} {state:8} "
+              f"{r.signer}")
+        for problem in problems:
+            print(f"    row differs from the signed report: {problem}")
+    if any(problems for _, problems in checked):
+        print("Some rows do not match the signed reports they name; trust the signed files "
+              "('benchrun verify REPORT.pdf').")
+        return 1
     return 0
 
 
@@ -75,9 +102,11 @@ def run_show(args: argparse.Namespace) -> int:
     if record is None:
         raise StoreError(f"no report {args.report_id!r} in {args.results}")
     data = _as_dict(record)
+    problems = _checked(record, args.results)
     if args.json:
-        print(json.dumps(data, indent=2, ensure_ascii=False))
-        return 0
+        print(json.dumps({**data, "row_matches_signed_report": not problems,
+                          "row_problems": problems}, indent=2, ensure_ascii=False))
+        return 0 if not problems else 1
     for key in ("report_id", "run_id", "disposition", "created", "signer", "path", "sha256"):
         print(f"{key:12} {data[key]}")
     details = data.get("details") or {}
@@ -85,4 +114,11 @@ def run_show(args: argparse.Namespace) -> int:
         print(f"{'reason':12} {reason}")
     for item in details.get("manifest", []):
         print(f"{'manifest':12} {item.get('name')}: {item.get('sha256')}")
+    if details.get("signer_certificate_sha256"):
+        print(f"{'certificate':12} SHA-256 {details['signer_certificate_sha256']}")
+    if problems:
+        for problem in problems:
+            print(f"{'ALTERED':12} row differs from the signed report: {problem}")
+        return 1
+    print(f"{'row':12} matches the signed report (file SHA-256 and embedded data)")
     return 0

@@ -3,7 +3,9 @@
 Checks, each answered yes or no with a reason: the signature is intact and covers the whole
 file; the signer is trusted (chains to the certificate given with --cert); the SHA-256
 manifest matches the stored raw record, configuration files and database rows; re-analysis of
-the stored raw waveforms reproduces every metric, grade and the disposition in the report.
+the stored raw waveforms reproduces every metric, grade and the disposition in the report;
+the results store's row of the report matches the signed file. The signer certificate's
+SHA-256 fingerprint is printed in full.
 The exit code is 0 only when every check holds, 1 otherwise.
 """
 
@@ -41,5 +43,7 @@ def run(args: argparse.Namespace) -> int:
             if args.details or not check.ok:
                 for line in check.details[: None if args.details else 10]:
                     print(f"         {line}")
+        for fingerprint in result.facts.get("signer_certificate_sha256", []):
+            print(f"  signer certificate SHA-256: {fingerprint}")
         print("VERIFIED: every check holds." if result.ok else "NOT VERIFIED.")
     return 0 if result.ok else 1

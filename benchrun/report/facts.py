@@ -164,6 +164,7 @@ def attachment_dict(content: ReportContent) -> dict[str, Any]:
         "analysis_code_sha256": content.code_sha256,
         "disposition": content.disposition,
         "disposition_reasons": list(content.disposition_reasons),
+        "counts": dict(content.counts),
         "signer": {
             "name": content.signer_name,
             "role": content.signer_role,

@@ -1,8 +1,10 @@
 """SHA-256 manifest of everything a report's numbers rest on.
 
 The manifest lists the run's raw record (``raw.h5``), the sequence, bench and limits files as
-used, and one digest over the result rows behind the report. It is printed in the report and
-embedded in its JSON attachment; :mod:`benchrun.report.verify` recomputes it.
+used, the run's manifest (``run.json``), one digest over the result rows behind the report and
+one over the run's row of the results store's runs table (its copy of the run manifest).
+It is printed in the report and embedded in its JSON attachment; :mod:`benchrun.report.
+verify_data` recomputes it.
 
 Hashes follow FIPS 180-4 SHA-256 (``hashlib``). The row digest is SHA-256 over canonical JSON
 (sorted keys, no whitespace) of the shots' ``ShotResult.to_dict()`` rows, sorted by raw
@@ -22,12 +24,14 @@ from typing import Any
 from benchrun.errors import BenchrunError
 
 #: Files of a run folder (DEVELOPERS.md, store contract) that a report rests on.
-RUN_FILES = ("raw.h5", "sequence.yaml", "bench.yaml", "limits.yaml")
+RUN_FILES = ("raw.h5", "sequence.yaml", "bench.yaml", "limits.yaml", "run.json")
 
 #: Name of the row digest method implemented here.
 ROW_DIGEST_LOCAL = "shot-rows-canonical-json-sha256/1"
 #: Name used when the results store computed the digest itself.
 ROW_DIGEST_STORE = "ResultsStore.row_digest"
+#: Name of the digest over the run's row of the runs table (implemented here).
+RUN_ROW_DIGEST = "runs-row-canonical-json-sha256/1"
 
 
 @dataclass(frozen=True)
@@ -118,6 +122,24 @@ def row_digest(run: Any) -> tuple[str, str]:
     return shots_digest(run.shots), ROW_DIGEST_LOCAL
 
 
+def run_row_digest(run: Any) -> str | None:
+    """SHA-256 over canonical JSON of the run's row in the runs table (all its columns,
+    the run manifest included); ``None`` when the run has no results store."""
+    url = getattr(run, "store_url", None)
+    if not url:
+        return None
+    from dataclasses import asdict
+
+    from benchrun.store.results import ResultsStore
+
+    with ResultsStore(url, create=False) as store:
+        record = store.get_run(run.run_id)
+    if record is None:
+        return hashlib.sha256(b"no run row").hexdigest()
+    text = json.dumps(asdict(record), sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
 def code_digest(packages: tuple[str, ...] = ("benchrun.analysis", "benchrun.grading")) -> str:
     """SHA-256 over the source files of the packages that turn raw data into grades.
 
@@ -151,6 +173,10 @@ def build_manifest(run: Any) -> list[ManifestEntry]:
     entries.append(
         ManifestEntry(f"result rows of run {run.run_id}", "rows", digest, len(run.shots), method)
     )
+    run_row = run_row_digest(run)
+    if run_row is not None:
+        entries.append(ManifestEntry(f"runs-table row of run {run.run_id}", "run-row", run_row,
+                                     None, RUN_ROW_DIGEST))
     return entries
 
 
@@ -192,6 +218,22 @@ def check_manifest(entries: list[ManifestEntry], run: Any | None,
                 checks.append(ManifestCheck(
                     entry.name, False,
                     f"database rows changed: digest {actual[:16]}… ≠ report {entry.sha256[:16]}…"))
+        elif entry.kind == "run-row":
+            if run is None:
+                checks.append(ManifestCheck(entry.name, False, "the run's row is not available"))
+                continue
+            try:
+                actual = run_row_digest(run)
+            except BenchrunError as exc:
+                checks.append(ManifestCheck(entry.name, False, f"cannot read the row: {exc}"))
+                continue
+            if actual == entry.sha256:
+                checks.append(ManifestCheck(entry.name, True, "run row digest matches"))
+            else:
+                checks.append(ManifestCheck(
+                    entry.name, False,
+                    f"the run's row (status, times or run manifest) changed: digest "
+                    f"{(actual or 'none')[:16]}… ≠ report {entry.sha256[:16]}…"))
         else:
             checks.append(ManifestCheck(entry.name, False, f"unknown entry kind {entry.kind!r}"))
     return checks

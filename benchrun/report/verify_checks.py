@@ -11,6 +11,10 @@ CHECK_SIGNATURE = "signature intact"
 CHECK_TRUST = "signer trusted"
 CHECK_MANIFEST = "manifest hashes match"
 CHECK_REANALYSIS = "re-analysis reproduces the report"
+CHECK_REGISTRATION = "reports-table row matches the signed report"
+#: Every check, in the order they are reported.
+ALL_CHECKS = (CHECK_SIGNATURE, CHECK_TRUST, CHECK_MANIFEST, CHECK_REANALYSIS,
+              CHECK_REGISTRATION)
 
 
 @dataclass(frozen=True)

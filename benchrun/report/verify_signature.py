@@ -6,6 +6,7 @@ certificate as the only trust root) decides trust; ``valid`` alone is never reli
 
 from __future__ import annotations
 
+import hashlib
 import io
 from pathlib import Path
 from typing import Any
@@ -56,6 +57,10 @@ async def signature_checks(pdf: bytes, cert_path: Path | None) -> tuple[Check, C
             continue
         signer = status.signing_cert.subject.human_friendly if status.signing_cert else "?"
         facts.setdefault("signers", []).append(signer)
+        if status.signing_cert is not None:
+            fingerprint = hashlib.sha256(status.signing_cert.dump()).hexdigest()
+            facts.setdefault("signer_certificate_sha256", []).append(fingerprint)
+            signer += f" (certificate SHA-256 {fingerprint})"
         if status.signer_reported_dt is not None:
             facts.setdefault("signing_times", []).append(status.signer_reported_dt.isoformat())
         whole = status.coverage == SignatureCoverageLevel.ENTIRE_FILE
