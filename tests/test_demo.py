@@ -16,7 +16,7 @@ def test_demo_end_to_end(tmp_path, capsys):
     assert main(["demo", "--out", str(out), "--no-progress"]) == 0
     text = capsys.readouterr().out
     # two lifetime outliers among ten devices: the lot is rejected because of them alone
-    assert "disposition REJECT" in text
+    assert "disposition reject" in text
     verdicts = dict(re.findall(r"^\s+(SN0117-\d{3})\s+(\S+)$", text, re.MULTILINE))
     assert len(verdicts) == 10
     assert verdicts["SN0117-004"] == "non-conforming"

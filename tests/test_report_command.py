@@ -30,7 +30,7 @@ def test_report_command_signs_a_report_that_verifies(tmp_path, identity, monkeyp
     out = capsys.readouterr().out
     assert code == 0
     # device 2 is above its Irrm limit at 25 °C (report_helpers) → the lot is rejected
-    assert "disposition REJECT" in out
+    assert "disposition reject" in out
     assert "LT-0117-002" in out
     pdf = run_dir / "report.pdf"
     result = verify_report(pdf, cert=identity.cert_path)

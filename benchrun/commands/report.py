@@ -48,7 +48,7 @@ def add_signer_arguments(parser: argparse.ArgumentParser, *, prefix: str) -> Non
 def print_lot(lot: Any) -> None:
     """Disposition, its reasons and every device verdict."""
     lots = ", ".join(getattr(lot, "lots", ()) or ())
-    print(f"lot {lots} ({lot.part}): disposition {lot.disposition.upper()}")
+    print(f"lot {lots} ({lot.part}): disposition {lot.disposition}")
     for reason in lot.reasons:
         print(f"  - {reason}")
     for device in lot.devices:

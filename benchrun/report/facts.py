@@ -70,6 +70,12 @@ class WaveformMarks:
     fit_high: float = 0.9
 
 
+#: The one word for each state, the same in the PDF, the JSON attachment, the command line and
+#: ``benchrun reports list`` (they are ``LotGrade``'s own words: nothing is translated).
+DISPOSITIONS = ("accept", "reject")
+OUTCOMES = ("conforming", "non-conforming", "indeterminate", "invalid")
+
+
 @dataclass(frozen=True)
 class Cell:
     """One graded metric of one device at one condition."""
@@ -139,6 +145,17 @@ class ReportContent:
     lot_grade: dict[str, Any] = field(default_factory=dict)
     analysis_options: dict[str, Any] = field(default_factory=dict)
     limits_file: str = "limits.yaml"
+    limits_table: list[list[str]] = field(default_factory=list)
+    bins_table: list[list[str]] = field(default_factory=list)
+    bins_rule: str = ""
+    setup_table: list[list[str]] = field(default_factory=list)
+    traceability_table: list[list[str]] = field(default_factory=list)
+    record_table: list[list[str]] = field(default_factory=list)
+    shot_log_table: list[list[str]] = field(default_factory=list)
+    outliers_table: list[list[str]] = field(default_factory=list)
+    outlier_test: str = ""
+    column_units: dict[str, tuple[float, str]] = field(default_factory=dict)
+    budget_tables: list[tuple[str, list[list[str]]]] = field(default_factory=list)
     code_sha256: str = ""
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import math
+import re
 from typing import Any
 
 import numpy as np
@@ -26,7 +27,23 @@ from benchrun.report.facts import (
     new_report_id,
 )
 from benchrun.report.facts_method import method_table
-from benchrun.report.facts_numbers import fmt
+from benchrun.report.facts_numbers import (
+    column_scale,
+    fmt,
+    in_column,
+    percent,
+    significant,
+)
+from benchrun.report.facts_tables import (
+    bins_table,
+    limits_table,
+    outliers_table,
+    record_table,
+    setup_table,
+    shot_log_table,
+    statistics_table,
+    traceability_table,
+)
 from benchrun.report.keys import ReportSigner
 from benchrun.report.run_sources import RunSources
 from benchrun.units import format_si
@@ -82,27 +99,6 @@ def _conditions_table(run: Any, lot: Any, tolerances: Any) -> list[list[str]]:
     return rows
 
 
-def _instruments_table(run: Any, bench: Any) -> list[list[str]]:
-    rows = [["Role", "Identity (*IDN?)", "Command table", "Resource", "Calibration due"]]
-    identities = (run.manifest or {}).get("instruments") or {}
-    roles = [r for r, _ in bench.instruments.items()] if bench else list(identities)
-    for role in roles:
-        entry = dict(bench.instruments.items()).get(role) if bench else None
-        ident = identities.get(role) if isinstance(identities, dict) else None
-        if isinstance(ident, dict):
-            text = ident.get("idn") or ", ".join(
-                str(ident[k]) for k in ("manufacturer", "model", "serial", "firmware")
-                if ident.get(k))
-            due = ident.get("calibration_due")
-        else:
-            text, due = (str(ident) if ident else "not recorded"), None
-        if due is None and entry is not None and entry.calibration_due is not None:
-            due = entry.calibration_due.isoformat()
-        rows.append([role, text or "not recorded", entry.family if entry else "",
-                     entry.resource if entry else "", str(due) if due else "not given"])
-    return rows
-
-
 def _fixture_table(bench: Any) -> list[list[str]]:
     if bench is None:
         return [["Item", "Value"], ["bench file", "not available"]]
@@ -125,23 +121,55 @@ def _fixture_table(bench: Any) -> list[list[str]]:
 
 def _u_text(value: float, unit: str) -> str:
     if unit in ("1", ""):
-        return f"{value * 100:.3g} %"
-    return fmt(value, unit, 3)
+        return percent(value)
+    return fmt(value, unit, 2)
 
 
-def _budget_table(lot: Any) -> list[list[str]]:
-    rows = [["Metric @ condition", "Contributor", "Evaluation", "u(xᵢ)", "|cᵢ|·u(xᵢ)"]]
+_POOLED = re.compile(r"pooled s = ([-+0-9.eE]+)")
+
+
+def _contributor_name(name: str, unit: str) -> str:
+    """A contributor's name with any bare pooled standard deviation given its unit."""
+    def with_unit(match: re.Match) -> str:
+        try:
+            return f"pooled s = {fmt(float(match[1]), unit, 2)}"
+        except ValueError:
+            return match[0]
+
+    return _POOLED.sub(with_unit, name)
+
+
+def _budget_tables(lot: Any) -> list[tuple[str, list[list[str]]]]:
+    """One table per metric and condition; the contribution column in one unit."""
+    tables = []
     for key, budget in lot.budgets.items():
         metric, _, condition = key.partition("@")
-        unit = label_unit(metric)[1]
-        label = f"{label_unit(metric)[0]} @ {condition}"
-        for k, c in enumerate(budget.contributors):
-            rows.append([label if k == 0 else "", c.name, c.evaluation,
+        label, unit = label_unit(metric)
+        values = [abs(c.contribution) for c in budget.contributors] + [budget.expanded]
+        scale, shown = column_scale(values, unit)
+        head = f"|cᵢ|·u(xᵢ) ({shown})" if shown else "|cᵢ|·u(xᵢ)"
+        rows = [["Contributor", "Evaluation", "u(xᵢ)", head]]
+        for c in budget.contributors:
+            rows.append([_contributor_name(c.name, unit), c.evaluation,
                          _u_text(c.standard_uncertainty, c.input_unit),
-                         fmt(abs(c.contribution), unit, 3)])
-        rows.append(["", "combined u_c; expanded U", f"k = {budget.coverage_factor:g}",
-                     fmt(budget.combined, unit, 3), fmt(budget.expanded, unit, 3)])
-    return rows
+                         in_column(abs(c.contribution), scale, unit, 2)])
+        rows.append(["combined standard uncertainty u_c", "", "",
+                     in_column(budget.combined, scale, unit, 2)])
+        k = significant(budget.coverage_factor, 2)
+        rows.append([f"expanded uncertainty U = k·u_c, k = {k}", "", "",
+                     in_column(budget.expanded, scale, unit, 2)])
+        tables.append((f"{label} at {condition}", rows))
+    return tables
+
+
+def _column_units(lot: Any, columns: list[str]) -> dict[str, tuple[float, str]]:
+    """One unit prefix per device-table column, from the largest value graded in it."""
+    units = {}
+    for key in columns:
+        values = [g.value for d in lot.devices for g in d.grades
+                  if g.metric == key and g.value is not None]
+        units[key] = column_scale(values, label_unit(key)[1])
+    return units
 
 
 def _device_lines(lot: Any) -> tuple[list[DeviceLine], list[str]]:
@@ -156,10 +184,10 @@ def _device_lines(lot: Any) -> tuple[list[DeviceLine], list[str]]:
                 if g.condition != name:
                     continue
                 limit = " ".join(x for x in (
-                    f"≥ {format_si(g.lower, g.unit)}" if g.lower is not None else "",
-                    f"≤ {format_si(g.upper, g.unit)}" if g.upper is not None else "") if x)
+                    f"≥ {fmt(g.lower, g.unit)}" if g.lower is not None else "",
+                    f"≤ {fmt(g.upper, g.unit)}" if g.upper is not None else "") if x)
                 cells[g.metric] = Cell(g.value, g.expanded_uncertainty, g.outcome, limit)
-            note = "; ".join(r for r in device.reasons if name in r)[:160]
+            note = "; ".join(r for r in device.reasons if name in r)
             lines.append(DeviceLine(device.serial, name, cells, device.bin or "",
                                     device.verdict, note))
     return lines, columns
@@ -173,28 +201,28 @@ def _shot_rows(run: Any, lot: Any) -> list[dict[str, Any]]:
 
 
 def _figures(run: Any, lot: Any, columns: list[str]) -> tuple[list, list, list]:
+    """Distributions and trends of the graded device values (what the limits judge)."""
     limits: dict[tuple[str, str], tuple[float | None, float | None]] = {}
     for d in lot.devices:
         for g in d.grades:
             limits.setdefault((g.metric, g.condition), (g.lower, g.upper))
-    names = {c.get("point_index"): c["name"] for c in lot.conditions}
+    temperatures = {c["name"]: c["temperature_K"] for c in lot.conditions}
     dists, trends = [], []
     for key in columns:
         label, unit = label_unit(key)
-        groups: dict[str, list[float | None]] = {}
+        groups: dict[str, list[float | None]] = {c["name"]: [] for c in lot.conditions}
         per_device: dict[str, list[tuple[float, float]]] = {}
-        for s in run.shots:
-            cond = names.get(s.point.index)
-            if cond is None or not s.valid:
-                continue
-            groups.setdefault(cond, []).append(s.metrics.get(key))
-            value = s.metrics.get(key)
-            temperature = s.conditions.get("temperature_K") or s.point.temperature_K
-            if value is not None:
-                per_device.setdefault(s.serial, []).append((temperature, value))
+        for device in lot.devices:
+            for g in device.grades:
+                if g.metric != key or g.value is None or g.condition not in groups:
+                    continue
+                groups[g.condition].append(g.value)
+                per_device.setdefault(device.serial, []).append(
+                    (temperatures[g.condition], g.value))
+        groups = {c: v for c, v in groups.items() if v}
         lims = {c: limits.get((key, c), (None, None)) for c in groups}
         dists.append({"label": label, "unit": unit, "groups": groups, "limits": lims})
-        if len({c["temperature_K"] for c in lot.conditions}) > 1:
+        if len(set(temperatures.values())) > 1:
             trends.append({"label": label, "unit": unit, "per_device": per_device})
     log = [(n, s.conditions.get("temperature_K"), s.point.temperature_K)
            for n, s in enumerate(sorted(run.shots, key=lambda s: (s.timestamp, s.raw_ref)))]
@@ -242,12 +270,19 @@ def build_content(run: Any, lot: Any, signer: ReportSigner, sources: RunSources,
     now = now or _dt.datetime.now(_dt.UTC).replace(microsecond=0)
     manifest = run.manifest or {}
     bench, sequence, options = sources.bench, sources.sequence, sources.analysis_options
+    limits = sources.limits
+    rule = limits.decision_rule.model_dump() if limits is not None else None
+    bins = getattr(lot, "bins", None) or (limits.bins if limits is not None else None)
+    names = {c.get("point_index"): c["name"] for c in lot.conditions}
+    settings = {names[i]: v for i, v in sources.shot_settings.items() if i in names}
+    software = str(manifest.get("software_version") or __version__)
     devices, columns = _device_lines(lot)
     stats = lot.statistics
     dists, trends, log = _figures(run, lot, columns)
     record = getattr(run, "run", None)
     started = manifest.get("started") or (record.started if record else "")
     finished = manifest.get("finished") or (record.finished if record else "")
+    window = f"{started} to {finished}" if started and finished else str(started or "")
     content = ReportContent(
         report_id=new_report_id(run.run_id, now),
         generated_utc=now.strftime("%Y-%m-%d %H:%M:%S UTC"),
@@ -255,26 +290,29 @@ def build_content(run: Any, lot: Any, signer: ReportSigner, sources: RunSources,
         part=lot.part,
         lot=", ".join(lot.lots),
         run_id=run.run_id,
-        software_version=str(manifest.get("software_version") or __version__),
+        software_version=software,
         disposition=lot.disposition,
         disposition_reasons=list(lot.reasons),
         signer_name=signer.name,
         signer_role=signer.role,
         signer_organisation=signer.organisation,
         signer_fingerprint=signer.cert_fingerprint_sha256,
-        run_window=f"{started} to {finished}" if started and finished else str(started or ""),
+        run_window=window,
         conditions_table=_conditions_table(run, lot, sequence.tolerances if sequence else None),
-        instruments_table=_instruments_table(run, bench),
+        instruments_table=traceability_table(run, bench),
         fixture_table=_fixture_table(bench),
         definitions_table=method_table(options),
         decision_rule=[lot.decision_rule, lot.lot_rule],
-        budget_table=_budget_table(lot),
+        budget_tables=_budget_tables(lot),
         metric_columns=columns,
         devices=devices,
         counts={"devices": stats.count, "conforming": stats.conforming,
                 "non-conforming": stats.nonconforming, "indeterminate": stats.indeterminate,
                 "invalid": stats.invalid},
-        statistics_table=_statistics_table(stats),
+        statistics_table=statistics_table(stats),
+        outliers_table=outliers_table(stats),
+        outlier_test=("modified z-score |M| > 3.5 over the lot's device values, M = "
+                      "0.6745·(x − median)/MAD (Iglewicz and Hoaglin 1993)"),
         distributions=dists,
         trends=trends,
         temperature_log=log,
@@ -284,27 +322,26 @@ def build_content(run: Any, lot: Any, signer: ReportSigner, sources: RunSources,
         lot_grade=lot.to_dict(),
         analysis_options=options,
         code_sha256=sources.code_sha256,
+        limits_table=limits_table(lot, options, rule),
+        bins_table=bins_table(bins),
+        bins_rule=_bins_rule(lot, bins),
+        setup_table=setup_table(run, lot, settings, sequence, bench),
+        record_table=record_table(run, sequence, limits, sources.manifest,
+                                  software, sources.code_sha256,
+                                  signer.cert_fingerprint_sha256, window),
+        shot_log_table=shot_log_table(run, lot),
+        column_units=_column_units(lot, columns),
     )
     return content
 
 
-def _statistics_table(stats: Any) -> list[list[str]]:
-    rows = [["Metric", "Condition", "n", "Mean", "σ", "Min", "Max", "Cpk"]]
-    for m in stats.metrics:
-        label, unit = label_unit(m.metric)
-        rows.append([label, m.condition, str(m.n), fmt(m.mean, unit, 4),
-                     fmt(m.std, unit, 3), fmt(m.minimum, unit, 4),
-                     fmt(m.maximum, unit, 4),
-                     "—" if m.cpk is None else f"{m.cpk:.2f}"])
-    if stats.yield_fraction is not None:
-        rows.append(["yield", "", str(stats.count), f"{stats.yield_fraction * 100:.1f} %",
-                     "", "", "", ""])
-    for r in stats.ratios:
-        label, _ = label_unit(r.metric)
-        rows.append([f"{label} ratio {r.hot}/{r.cold}", "", str(len(r.per_device)),
-                     "—" if r.mean is None else f"{r.mean:.3f}", "", "", "", ""])
-    for o in stats.outliers[:40]:
-        label, unit = label_unit(o.metric)
-        rows.append([f"outlier {o.serial}", o.condition, "", f"{label} "
-                     f"{fmt(o.value, unit, 4)}", f"z = {o.z:.1f}", "", "", ""])
-    return rows
+def _bins_rule(lot: Any, bins: Any) -> str:
+    """How a device's bin follows from its value (the grading's own statement when it has
+    one, else the behaviour of a bin assignment without uncertainty)."""
+    stated = getattr(lot, "bin_rule", None)
+    if stated:
+        return str(stated)
+    if bins is None:
+        return ""
+    return ("A conforming device falls in the first class (in the order listed) whose bounds "
+            "contain its value; the value's uncertainty is not applied to the class edges.")

@@ -52,3 +52,29 @@ def method_table(options: dict[str, Any]) -> list[list[str]]:
     rows.append(["filtering", "zero-phase low-pass at " + format_si(low, "Hz")
                  if low else "none (raw ADC codes, offset removed from the pre-event baseline)"])
     return rows
+
+
+def window_convention(metric: str, options: dict[str, Any]) -> str:
+    """Where in the record a metric is taken (the window and end points that define it)."""
+    fit_high = options.get("fit_high", 0.9)
+    fit_low = options.get("fit_low", 0.25)
+    end = options.get("integration_end_fraction", 0.02)
+    threshold = options.get("trr_threshold_fraction", 0.25)
+    trr = (f"from t0 to the zero of the line through −{fit_high:g}·Irrm and −{fit_low:g}·Irrm"
+           if options.get("trr_method", "extrapolate") != "threshold"
+           else f"from t0 to i = −{threshold:g}·Irrm")
+    conventions = {
+        "trr_s": trr,
+        "ta_s": "from t0 to the instant of Irrm",
+        "tb_s": "from the instant of Irrm to the end of trr",
+        "softness": "tb / ta of the same shot",
+        "rrsf": "slopes at t0 and after the current minimum",
+        "irrm_A": "minimum of i from t0 to t2",
+        "qrr_C": f"integral from t0 to t2 (i = −{end:g}·Irrm)",
+        "err_J": f"integral from t0 to t2 (i = −{end:g}·Irrm)",
+        "vrm_V": "maximum of −v from t0 to t2 + trr",
+        "vr_V": "steady reverse voltage after the event",
+        "if_A": "plateau before the commutation",
+        "didt_A_per_s": "between i = +0.5·IF and i = −0.5·Irrm",
+    }
+    return conventions.get(metric, "as defined in the method table")

@@ -11,7 +11,13 @@ from reportlab.platypus import Flowable, Table, TableStyle
 
 from benchrun.report import pages_blocks as sec
 from benchrun.report.facts import ReportContent
-from benchrun.report.pages_figures import distribution_figure, temperature_log_figure, trend_figure
+from benchrun.report.pages_figures import (
+    COLOUR_NAMES,
+    distribution_figure,
+    temperature_log_figure,
+    trend_figure,
+)
+from benchrun.report.pages_style import FONT_REGULAR
 from benchrun.report.pages_vector import FigureFlowable
 
 SAFETY_CAUTIONS = (
@@ -51,6 +57,7 @@ def _pair_figures(figures: list[Any], width: float) -> list[Flowable]:
             row.append(sec.spacer(1))
         table = Table([row], colWidths=[width / 2, width / 2], hAlign="LEFT")
         table.setStyle(TableStyle([
+            ("FONT", (0, 0), (-1, -1), FONT_REGULAR, 7.5),  # no base-14 font in the file
             ("LEFTPADDING", (0, 0), (-1, -1), 0), ("RIGHTPADDING", (0, 0), (-1, -1), 0),
             ("VALIGN", (0, 0), (-1, -1), "TOP"),
         ]))
@@ -77,6 +84,7 @@ def _cover(content: ReportContent, signature_slot: Flowable, width: float) -> li
                 ("Signer certificate SHA-256", content.signer_fingerprint),
             ],
             (48 * mm, width - 48 * mm),
+            mono_keys=("Signer certificate SHA-256",),
         ),
         sec.spacer(6),
         sec.disposition_banner(content.disposition, width),
@@ -87,10 +95,8 @@ def _cover(content: ReportContent, signature_slot: Flowable, width: float) -> li
         story.append(sec.P(f"• {reason}", "body"))
     story.append(sec.spacer(3))
     if counts:
-        rows = [["Devices", "Conforming", "Non-conforming", "Indeterminate", "Invalid"],
-                [str(counts.get("devices", 0)), str(counts.get("conforming", 0)),
-                 str(counts.get("non-conforming", 0)), str(counts.get("indeterminate", 0)),
-                 str(counts.get("invalid", 0))]]
+        words = ("devices", "conforming", "non-conforming", "indeterminate", "invalid")
+        rows = [list(words), [str(counts.get(w, 0)) for w in words]]
         story.append(sec.simple_table(rows, [width / 5] * 5))
     story += [
         sec.spacer(4),
@@ -99,12 +105,72 @@ def _cover(content: ReportContent, signature_slot: Flowable, width: float) -> li
         sec.spacer(4),
         sec.P("Approval", "h3"),
         sec.P("The signature below is a PAdES digital signature over this whole file, including "
-            "the embedded data file 'benchrun-report.json' that holds every number shown here. "
-            "Check it with 'benchrun verify REPORT.pdf --cert SIGNER_CERT --data RUN_FOLDER'.",
-            "small"),
+              "the embedded data file 'benchrun-report.json' that holds every number shown here. "
+              "Check it with 'benchrun verify REPORT.pdf --cert SIGNER_CERT --data RUN_FOLDER'.",
+              "small"),
         sec.spacer(2),
         signature_slot,
     ]
+    return story
+
+
+def _figure_section(title: str, caption: str, figures: list[Any], width: float
+                    ) -> list[Flowable]:
+    rows = _pair_figures(figures, width)
+    if not rows:
+        return []
+    out = sec.section(title)[:1]
+    out.append(sec.keep(sec.P(title, "h2"), sec.P(caption, "small"), rows[0]))
+    return out + rows[1:]
+
+
+def _conditions_pages(content: ReportContent, w: float) -> list[Flowable]:
+    story = sec.section("1  Test conditions")
+    story.append(sec.P("Requested and measured: measured values are the mean and range over the "
+                       "valid shots of each condition; the tolerance is the one the shots were "
+                       "checked against.", "small"))
+    story.append(sec.simple_table(content.conditions_table,
+                                  [18 * mm, 30 * mm, 22 * mm, 60 * mm, 20 * mm, w - 150 * mm]))
+    story.append(sec.P("Set-up that defines the result", "h3"))
+    story.append(sec.simple_table(content.setup_table,
+                                  [18 * mm, 46 * mm, 52 * mm, w - 116 * mm]))
+    return story
+
+
+def _traceability_pages(content: ReportContent, w: float) -> list[Flowable]:
+    story = sec.section("2  Traceability: bench, people, files and software")
+    story.append(sec.P("Instruments (identity as reported by the instrument, IEEE 488.2 *IDN?) "
+                       "and probes, with their calibration as the bench file records it.",
+                       "small"))
+    story.append(sec.simple_table(content.instruments_table,
+                                  [26 * mm, 46 * mm, 20 * mm, 20 * mm, 26 * mm, w - 138 * mm]))
+    story.append(sec.P("Run record", "h3"))
+    story.append(sec.simple_table(content.record_table, [52 * mm, w - 52 * mm]))
+    story.append(sec.P("Fixture", "h3"))
+    story.append(sec.simple_table(content.fixture_table, [52 * mm, w - 52 * mm]))
+    return story
+
+
+def _method_pages(content: ReportContent, w: float) -> list[Flowable]:
+    story = sec.section("3  Method: definitions, limits, decision rule, bins, uncertainty")
+    story.append(sec.simple_table(content.definitions_table, [34 * mm, w - 34 * mm]))
+    story.append(sec.P("Decision rule", "h3"))
+    for line in content.decision_rule:
+        story.append(sec.P(line, "small"))
+    story.append(sec.P("Limits per condition", "h3"))
+    story.append(sec.simple_table(content.limits_table,
+                                  [18 * mm, 16 * mm, 17 * mm, 17 * mm, 42 * mm, 28 * mm,
+                                   w - 138 * mm]))
+    if content.bins_table:
+        story.append(sec.keep(
+            sec.P("Bins", "h3"),
+            sec.simple_table(content.bins_table, [20 * mm, 50 * mm, 30 * mm, 30 * mm]),
+            sec.P(content.bins_rule, "small")))
+    story.append(sec.P("Uncertainty budgets (GUM, JCGM 100:2008)", "h3"))
+    for title, rows in content.budget_tables:
+        story.append(sec.keep(sec.P(title, "h4"),
+                              sec.simple_table(rows, [64 * mm, 56 * mm, 24 * mm,
+                                                      w - 144 * mm])))
     return story
 
 
@@ -122,81 +188,78 @@ def build_story(
     """The whole report as a list of flowables."""
     w = portrait_width
     story: list[Flowable] = _cover(content, signature_slot, w)
-
     story += portrait()
-    story += sec.section("1  Test conditions: requested and measured")
-    story.append(sec.P("Measured values are the mean and range over the valid shots of each "
-                     "condition; the tolerance is the one the shots were checked against.",
-                     "small"))
-    story.append(sec.simple_table(content.conditions_table,
-                                  [18 * mm, 32 * mm, 24 * mm, 58 * mm, 20 * mm, w - 152 * mm]))
-
-    story += sec.section("2  Bench, fixture and software")
-    story.append(sec.P("Instruments (identity as reported by the instrument, IEEE 488.2 *IDN?)",
-                     "h3"))
-    story.append(sec.simple_table(content.instruments_table))
-    story.append(sec.P("Fixture", "h3"))
-    story.append(sec.simple_table(content.fixture_table))
-
-    story += sec.section("3  Method: metric definitions, decision rule, uncertainty")
-    story.append(sec.simple_table(content.definitions_table, [34 * mm, w - 34 * mm]))
-    story.append(sec.P("Decision rule", "h3"))
-    for line in content.decision_rule:
-        story.append(sec.P(line, "small"))
-    story.append(sec.P("Uncertainty budget (GUM, JCGM 100:2008)", "h3"))
-    story.append(sec.simple_table(content.budget_table,
-                                  [24 * mm, 56 * mm, 46 * mm, 24 * mm, w - 150 * mm]))
+    story += _conditions_pages(content, w)
+    story += _traceability_pages(content, w)
+    story += _method_pages(content, w)
 
     story += wide()
     story += sec.section("4  Results per device")
     story.append(sec.P(
-        "Each cell: measured value ± expanded uncertainty U. A grade other than conforming is "
-        "written after the value and the cell is shaded: NC = non-conforming, IND = "
-        "indeterminate (inside the guard band), INV = invalid (test conditions out of "
-        "tolerance; not graded). The verdict column repeats the device verdict in words.",
+        "Each cell: measured value ± expanded uncertainty U in the unit of its column (GUM "
+        "7.2.6 rounding). A grade other than conforming is written under the value in the "
+        "same words as the data file and the command line (non-conforming, indeterminate, "
+        "invalid) and the cell is shaded; the verdict column gives the device verdict.",
         "small"))
     story.append(sec.spacer(1.5))
     story.append(sec.device_table(content, landscape_width))
 
     story += portrait()
     story += sec.section("5  Devices that are not conforming")
-    story += sec.non_conforming_list(content.devices)
-    story += sec.section("6  Lot statistics")
+    story += sec.non_conforming_list(content.devices, w)
+    story += sec.section("6  Shots left out, retaken or flagged")
+    if len(content.shot_log_table) > 1:
+        story.append(sec.P("Every shot that was not used for grading, was fired again, or "
+                           "carries an analysis flag, with the reason.", "small"))
+        story.append(sec.simple_table(content.shot_log_table,
+                                      [22 * mm, 24 * mm, 48 * mm, 28 * mm, w - 122 * mm]))
+    else:
+        story.append(sec.P("Every shot was used; none was retaken or flagged.", "body"))
+    story += sec.section("7  Lot statistics")
     story.append(sec.simple_table(content.statistics_table,
-                                  [34 * mm, 19 * mm, 9 * mm, 25 * mm, 22 * mm, 24 * mm, 24 * mm,
-                                   w - 157 * mm]))
+                                  [30 * mm, 17 * mm, 9 * mm, 14 * mm, 20 * mm, 18 * mm, 20 * mm,
+                                   20 * mm, w - 148 * mm]))
+    if content.outliers_table:
+        story.append(sec.P("Outliers", "h3"))
+        story.append(sec.P(f"Test: {content.outlier_test}.", "small"))
+        story.append(sec.simple_table(content.outliers_table,
+                                      [26 * mm, 30 * mm, 22 * mm, 34 * mm, 30 * mm]))
 
     figures = [distribution_figure(d["label"], d["unit"], d["groups"], d["limits"],
-                                   width_pt=w / 2 - 4, height_pt=150)
+                                   width_pt=w / 2 - 4, height_pt=160)
                for d in content.distributions]
-    if figures:
-        rows = _pair_figures(figures, w)
-        story += sec.section("7  Distributions against the limits")[:1]
-        story.append(sec.keep(sec.P("7  Distributions against the limits", "h2"),
-                              sec.P("Dashed red lines: the limits at each condition.", "small"),
-                              rows[0]))
-        story += rows[1:]
+    conditions = [c for d in content.distributions for c in d["groups"]]
+    colours = ", ".join(f"{c} {COLOUR_NAMES[k % len(COLOUR_NAMES)]}"
+                        for k, c in enumerate(dict.fromkeys(conditions)))
+    story += _figure_section(
+        "8  Distributions of the graded device values",
+        f"Bars: the value each device was graded on (one per device and condition), by "
+        f"condition: {colours}. Dashed dark red lines: the limits, labelled with their "
+        f"condition.", figures, w)
     trend_figs = [trend_figure(d["label"], d["unit"], d["per_device"], width_pt=w / 2 - 4,
-                               height_pt=150) for d in content.trends]
-    if trend_figs or content.temperature_log:
-        rows = _pair_figures(trend_figs, w)
-        story += sec.section("8  Temperature trends")[:1]
-        story.append(sec.keep(sec.P("8  Temperature trends", "h2"), *rows[:1]))
-        story += rows[1:]
-        if content.temperature_log:
-            story.append(FigureFlowable(temperature_log_figure(content.temperature_log,
-                                                               width_pt=w, height_pt=140)))
+                               height_pt=160) for d in content.trends]
+    story += _figure_section(
+        "9  Temperature trends",
+        "Thin grey lines: each device's graded values at the test temperatures; thick blue "
+        "line with dots: the lot mean.", trend_figs, w)
+    if content.temperature_log:
+        story.append(sec.P("Measured device temperature of every shot in firing order (blue "
+                           "dots) against the set point (dashed dark red line).", "small"))
+        story.append(FigureFlowable(temperature_log_figure(content.temperature_log,
+                                                           width_pt=w, height_pt=150)))
     if waveform_flowables:
-        story += sec.section("9  Recovery waveforms")[:1]
-        story.append(sec.keep(sec.P("9  Recovery waveforms", "h2"), sec.P(
-            "Current and voltage through the recovery as re-read from the raw record. Marked: "
-            "t0 (current zero crossing), Irrm (reverse peak), trr (zero crossing of the "
-            "extrapolation line through the fit points, drawn dashed), t2 (end of the Qrr/Err "
-            "integration). One representative device and every device that is not "
-            "conforming.", "small"), waveform_flowables[0]))
+        story += sec.section("10  Recovery waveforms")[:1]
+        story.append(sec.keep(sec.P("10  Recovery waveforms", "h2"), sec.P(
+            "Current (blue, top) and voltage (orange, bottom) through the recovery as re-read "
+            "from the raw record. Green vertical lines: t0 (current zero crossing, dotted), trr "
+            "(dashed) and t2 (end of the Qrr/Err integration, dash-dot); the slanted green "
+            "dashed line is the trr extrapolation from the upper fit point; the dark red "
+            "triangle marks Irrm and the dark red dotted line the peak reverse voltage VRM. One "
+            "representative device and every device that is not conforming.", "small"),
+            waveform_flowables[0]))
         story += waveform_flowables[1:]
     if loss_flowables:
-        story += sec.section("10  Recovery loss estimate")
+        story += sec.section("11  Recovery loss estimate")
         story += loss_flowables
     story += sec.section("Safety cautions")
     for text in SAFETY_CAUTIONS:
@@ -206,13 +269,10 @@ def build_story(
         story.append(sec.P(f"• {text}", "small"))
     story += sec.section("Manifest (SHA-256)")
     story.append(sec.P(
-        "Hashes of the data this report rests on (FIPS 180-4 SHA-256). The result rows digest "
-        "covers every stored shot of the run.", "small"))
+        "Hashes of the data this report rests on (FIPS 180-4 SHA-256): the run's files, its "
+        "result rows and its row of the runs table.", "small"))
     rows = [["Item", "Kind", "Size", "SHA-256"]]
     rows += [[m["name"], m["kind"], "" if m.get("size") is None else str(m["size"]),
               m["sha256"]] for m in content.manifest]
-    story.append(sec.simple_table(rows, [42 * mm, 12 * mm, 18 * mm, w - 72 * mm]))
-    if content.code_sha256:
-        story.append(sec.P(f"Analysis and grading code (benchrun {content.software_version}) "
-                           f"SHA-256: {content.code_sha256}", "small"))
+    story.append(sec.simple_table(rows, [44 * mm, 14 * mm, 16 * mm, w - 74 * mm]))
     return story

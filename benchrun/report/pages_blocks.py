@@ -12,6 +12,7 @@ from xml.sax.saxutils import escape
 
 from reportlab.lib import colors
 from reportlab.lib.units import mm
+from reportlab.pdfbase.pdfmetrics import stringWidth
 from reportlab.platypus import (
     CondPageBreak,
     Flowable,
@@ -35,14 +36,6 @@ from benchrun.report.pages_style import (
     ZEBRA_BG,
     paragraph_styles,
 )
-
-#: Short words for grades inside the dense device table (full words in the legend).
-GRADE_SHORT = {
-    "conforming": "ok",
-    "non-conforming": "NC",
-    "indeterminate": "IND",
-    "invalid": "INV",
-}
 
 
 def P(text: str, style: str = "body") -> Paragraph:  # noqa: N802 - reads like markup
@@ -75,25 +68,34 @@ def base_table_style(n_rows: int, *, zebra: bool = True, font_size: float = 7.5)
     return cmds
 
 
+def _is_digest(text: str) -> bool:
+    """A SHA-256 in hex: set in the monospaced font so that all 64 digits fit one line."""
+    return len(text) == 64 and all(c in "0123456789abcdef" for c in text)
+
+
 def simple_table(
     rows: Sequence[Sequence[Any]],
     widths: Sequence[float] | None = None,
     *,
     wrap: bool = True,
     font_size: float = 7.5,
+    mono: Sequence[int] = (),
 ) -> Flowable:
-    """A header + rows table; cells are wrapped as paragraphs when ``wrap``."""
+    """A header + rows table; cells are wrapped as paragraphs when ``wrap``; columns listed in
+    ``mono`` (hashes) are set in the monospaced font."""
     if not rows:
         return P("(none)", "muted")
     style = paragraph_styles()["cell"]
     bold = paragraph_styles()["cell_bold"]
+    fixed = paragraph_styles()["mono"]
     data = []
     for r, row in enumerate(rows):
         if wrap:
             data.append([
                 c if isinstance(c, Flowable)
-                else Paragraph(escape(str(c)), bold if r == 0 else style)
-                for c in row
+                else Paragraph(escape(str(c)), bold if r == 0 else
+                               fixed if k in mono or _is_digest(str(c)) else style)
+                for k, c in enumerate(row)
             ])
         else:
             data.append([str(c) for c in row])
@@ -102,12 +104,15 @@ def simple_table(
     return table
 
 
-def key_value_table(pairs: Sequence[tuple[str, str]], widths: tuple[float, float]) -> Table:
+def key_value_table(pairs: Sequence[tuple[str, str]], widths: tuple[float, float], *,
+                    mono_keys: Sequence[str] = ()) -> Table:
     style = paragraph_styles()
-    data = [[Paragraph(escape(k), style["cell_bold"]), Paragraph(escape(v), style["cell"])]
+    data = [[Paragraph(escape(k), style["cell_bold"]),
+             Paragraph(escape(v), style["mono" if k in mono_keys else "cell"])]
             for k, v in pairs]
     table = Table(data, colWidths=widths, hAlign="LEFT")
     table.setStyle(TableStyle([
+        ("FONT", (0, 0), (-1, -1), FONT_REGULAR, 7.5),  # no base-14 font in the file
         ("VALIGN", (0, 0), (-1, -1), "TOP"),
         ("LINEBELOW", (0, 0), (-1, -1), 0.3, RULE),
         ("TOPPADDING", (0, 0), (-1, -1), 2.5),
@@ -118,12 +123,12 @@ def key_value_table(pairs: Sequence[tuple[str, str]], widths: tuple[float, float
 
 def disposition_banner(disposition: str, width: float) -> Table:
     bg, fg = VERDICT_COLOURS.get(disposition, (colors.white, INK))
-    word = {"accept": "LOT ACCEPTED", "reject": "LOT REJECTED"}.get(disposition,
-                                                                  disposition.upper())
     style = paragraph_styles()["disposition"]
-    cell = Paragraph(f'<font color="{fg.hexval()}">Lot disposition: {escape(word)}</font>', style)
+    cell = Paragraph(f'<font color="{fg.hexval()}">Lot disposition: {escape(disposition)}</font>',
+                     style)
     table = Table([[cell]], colWidths=[width])
     table.setStyle(TableStyle([
+        ("FONT", (0, 0), (-1, -1), FONT_REGULAR, 7.5),  # no base-14 font in the file
         ("BACKGROUND", (0, 0), (-1, -1), bg),
         ("BOX", (0, 0), (-1, -1), 1.2, fg),
         ("TOPPADDING", (0, 0), (-1, -1), 8),
@@ -132,26 +137,44 @@ def disposition_banner(disposition: str, width: float) -> Table:
     return table
 
 
-def _cell_text(cell: Any, unit: str) -> str:
+def _cell_text(cell: Any, unit: str, scale: float) -> str:
+    """``value ± U`` in the column's unit; a grade other than conforming in words below."""
     if cell is None or cell.value is None:
         text = "—"
     else:
-        text = value_with_u(cell.value, cell.expanded_u, unit)
+        text = value_with_u(cell.value, cell.expanded_u, unit, scale)
     if cell is not None and cell.grade and cell.grade != "conforming":
-        text += f" {GRADE_SHORT.get(cell.grade, cell.grade)}"
+        text += f"\n{cell.grade}"
     return text
+
+
+def _fitted_sizes(rows: list[list[str]], widths: list[float], size: float,
+                  smallest: float = 4.5) -> list[float]:
+    """Per column, the largest font size (≤ ``size``) at which every line fits its width."""
+    sizes = []
+    for c, width in enumerate(widths):
+        room = width - 6  # left and right padding
+        widest = max((stringWidth(line, FONT_BOLD, 1.0) for row in rows
+                      for line in str(row[c]).split("\n")), default=0.0)
+        fit = room / widest if widest > 0 else size
+        sizes.append(max(min(size, fit), smallest))
+    return sizes
 
 
 def device_table(content: ReportContent, width: float) -> Flowable:
     """Per device and condition: value ± U and grade of each graded metric, bin, verdict.
 
-    Plain-string cells (no paragraphs) keep a 1000-row table fast to lay out.
+    One unit per metric column (in the header); plain-string cells (no paragraphs) keep a
+    1000-row table fast to lay out, and each column's font is sized so its widest line fits.
     """
     keys = content.metric_columns
-    header = ["Serial", "Condition"] + [
-        label_unit(k)[0]  # every cell carries its own (prefixed) unit
-        for k in keys
-    ] + ["Bin", "Verdict"]
+    units = content.column_units
+    header = ["Serial", "Condition"]
+    for k in keys:
+        label, unit = label_unit(k)
+        shown = units.get(k, (1.0, unit))[1]
+        header.append(f"{label} ({shown})" if shown else label)
+    header += ["Bin", "Verdict"]
     rows: list[list[str]] = [header]
     cmds: list[tuple] = []
     for r, line in enumerate(content.devices, start=1):
@@ -159,33 +182,35 @@ def device_table(content: ReportContent, width: float) -> Flowable:
         for c, key in enumerate(keys, start=2):
             cell = line.cells.get(key)
             unit = label_unit(key)[1]
-            row.append(_cell_text(cell, unit))
+            row.append(_cell_text(cell, unit, units.get(key, (1.0, unit))[0]))
             if cell is not None and cell.grade in ("non-conforming", "indeterminate", "invalid"):
                 bg, fg = VERDICT_COLOURS[cell.grade]
                 cmds += [("BACKGROUND", (c, r), (c, r), bg), ("TEXTCOLOR", (c, r), (c, r), fg)]
-        row += [line.bin or "—", line.verdict.upper() if line.verdict != "conforming"
-                else line.verdict]
+        row += [line.bin or "—", line.verdict]
         rows.append(row)
         if line.verdict in VERDICT_COLOURS:
             bg, fg = VERDICT_COLOURS[line.verdict]
             v = len(row) - 1
             cmds += [("BACKGROUND", (v, r), (v, r), bg), ("TEXTCOLOR", (v, r), (v, r), fg)]
             if line.verdict != "conforming":
-                cmds += [("FONT", (0, r), (0, r), FONT_BOLD, 6.8),
-                         ("FONT", (v, r), (v, r), FONT_BOLD, 6.8)]
+                cmds += [("FONTNAME", (0, r), (0, r), FONT_BOLD),
+                         ("FONTNAME", (v, r), (v, r), FONT_BOLD)]
     n_metric = len(keys)
     fixed = [22 * mm, 16 * mm]
-    tail = [9 * mm, 27 * mm]
+    tail = [12 * mm, 22 * mm]
     rest = max(width - sum(fixed) - sum(tail), 20 * mm)
     widths = fixed + [rest / max(n_metric, 1)] * n_metric + tail
+    sizes = _fitted_sizes(rows, widths, 6.8)
     table = LongTable(rows, colWidths=widths, repeatRows=1, hAlign="LEFT")
     style = base_table_style(len(rows), font_size=6.8)
     style += [("ALIGN", (2, 0), (-1, -1), "LEFT")]
+    for c, size in enumerate(sizes):
+        style += [("FONTSIZE", (c, 0), (c, -1), size), ("LEADING", (c, 0), (c, -1), size * 1.2)]
     table.setStyle(TableStyle(style + cmds))
     return table
 
 
-def non_conforming_list(devices: Sequence[DeviceLine]) -> list[Flowable]:
+def non_conforming_list(devices: Sequence[DeviceLine], width: float) -> list[Flowable]:
     """Every device that is not conforming, named in words (also for colour-blind readers)."""
     out: list[Flowable] = []
     bad = [d for d in devices if d.verdict != "conforming"]
@@ -199,8 +224,8 @@ def non_conforming_list(devices: Sequence[DeviceLine]) -> list[Flowable]:
             for k, c in d.cells.items()
             if c.grade and c.grade != "conforming"
         ]
-        rows.append([d.serial, d.condition, d.verdict.upper(), "; ".join(which) or "—", d.note])
-    out.append(simple_table(rows, [24 * mm, 20 * mm, 28 * mm, 60 * mm, 42 * mm]))
+        rows.append([d.serial, d.condition, d.verdict, "; ".join(which) or "—", d.note])
+    out.append(simple_table(rows, [22 * mm, 18 * mm, 26 * mm, 42 * mm, width - 108 * mm]))
     return out
 
 

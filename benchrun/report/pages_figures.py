@@ -19,6 +19,8 @@ from benchrun.report.pages_style import PLOT_CURRENT, PLOT_LIMIT, PLOT_MARK, PLO
 from benchrun.report.pages_vector import finite, new_figure, nice_unit_scale
 
 _TEMPERATURE_COLOURS = ("#1f4e79", "#b8651b", "#2e7d32", "#6a3d9a", "#8c564b", "#d62728")
+#: The names of those colours, in the same order, for captions.
+COLOUR_NAMES = ("blue", "orange", "green", "purple", "brown", "red")
 _MAX_POINTS = 4000  # a plotted trace never needs more points than this on an A4 page
 
 
@@ -165,7 +167,8 @@ def distribution_figure(
     limits
         Condition label → (min, max) limit, ``None`` where there is none.
     """
-    fig = new_figure(width_pt, height_pt, left=38, right=8, bottom=28, top=16)
+    # the legend sits in its own band above the axes: it never covers bars or limit labels
+    fig = new_figure(width_pt, height_pt, left=38, right=8, bottom=28, top=34)
     ax = fig.add_subplot(1, 1, 1)
     every = [finite(vals) for vals in groups.values()]
     extra = [x for pair in limits.values() for x in pair if x is not None]
@@ -187,22 +190,30 @@ def distribution_figure(
     else:
         ax.text(0.5, 0.5, "no values", ha="center", va="center", transform=ax.transAxes,
                 fontsize=8)
-    for k, (name, (lo_lim, hi_lim)) in enumerate(limits.items()):
+    names = list(groups) or list(limits)
+    top = ax.get_ylim()[1]
+    ax.set_ylim(0, top * 1.18 + 0.5)  # headroom above the bars for the limit labels
+    for name, (lo_lim, hi_lim) in limits.items():
+        k = names.index(name) if name in names else 0
         colour = _TEMPERATURE_COLOURS[k % len(_TEMPERATURE_COLOURS)]
         for value, word in ((lo_lim, "min"), (hi_lim, "max")):
             if value is None:
                 continue
             ax.axvline(value * scale, color=PLOT_LIMIT, lw=1.0, ls="--")
+            # the label goes on the side of the line that has room inside the axes
+            right = value * scale > sum(ax.get_xlim()) / 2
             ax.annotate(f"{word} {name}", (value * scale, 1.0), xycoords=("data", "axes fraction"),
-                        xytext=(2, -9 - 8 * k), textcoords="offset points", fontsize=6,
-                        color=colour)
-    ax.set_title(label, fontsize=8.5)
+                        xytext=(-2 if right else 2, -8 - 8 * k), textcoords="offset points",
+                        fontsize=6, color=colour, ha="right" if right else "left", va="top",
+                        bbox={"boxstyle": "square,pad=0.1", "fc": "white", "ec": "none"})
     ax.set_xlabel(shown, fontsize=7.5)
-    ax.set_ylabel("shots", fontsize=7.5)
+    ax.set_ylabel("devices", fontsize=7.5)
     ax.tick_params(labelsize=6.5)
     ax.grid(True, lw=0.3, color="#dddddd")
     if any(v.size for v in every):
-        ax.legend(fontsize=6, frameon=False, loc="upper left")
+        ax.legend(fontsize=6, frameon=False, loc="lower left", bbox_to_anchor=(0.0, 1.0),
+                  ncols=max(len(groups), 1), borderaxespad=0.2, handlelength=1.2)
+    fig.text(1 - 8 / width_pt, 1 - 3 / height_pt, label, fontsize=8.5, ha="right", va="top")
     return fig
 
 
@@ -221,7 +232,7 @@ def trend_figure(
     per_device
         Serial → list of (temperature in K, value in SI units).
     """
-    fig = new_figure(width_pt, height_pt, left=38, right=8, bottom=28, top=16)
+    fig = new_figure(width_pt, height_pt, left=38, right=8, bottom=28, top=30)
     ax = fig.add_subplot(1, 1, 1)
     values = finite(v for pts in per_device.values() for _, v in pts)
     scale, shown = nice_unit_scale(values, unit)
@@ -245,8 +256,10 @@ def trend_figure(
         temps = sorted(by_temp)
         ax.plot([t - 273.15 for t in temps], [np.mean(by_temp[t]) * scale for t in temps],
                 color=PLOT_CURRENT, lw=1.6, marker="o", ms=3.5, label="lot mean")
-        ax.legend(fontsize=6, frameon=False)
-    ax.set_title(f"{label} against temperature", fontsize=8.5)
+        ax.legend(fontsize=6, frameon=False, loc="lower left", bbox_to_anchor=(0.0, 1.0),
+                  ncols=2, borderaxespad=0.2, handlelength=1.5)
+    fig.text(1 - 8 / width_pt, 1 - 3 / height_pt, f"{label} against temperature",
+             fontsize=8.5, ha="right", va="top")
     ax.set_xlabel("temperature (°C)", fontsize=7.5)
     ax.set_ylabel(shown, fontsize=7.5)
     ax.tick_params(labelsize=6.5)
@@ -267,7 +280,7 @@ def temperature_log_figure(
     shots
         (shot number, measured temperature K or None, requested temperature K).
     """
-    fig = new_figure(width_pt, height_pt, left=44, right=10, bottom=28, top=8)
+    fig = new_figure(width_pt, height_pt, left=44, right=10, bottom=28, top=20)
     ax = fig.add_subplot(1, 1, 1)
     order = [n for n, _, _ in shots]
     measured = [np.nan if m is None else m - 273.15 for _, m, _ in shots]
@@ -279,5 +292,6 @@ def temperature_log_figure(
     ax.set_ylabel("temperature (°C)", fontsize=7.5)
     ax.tick_params(labelsize=6.5)
     ax.grid(True, lw=0.3, color="#dddddd")
-    ax.legend(fontsize=6.5, frameon=False, ncols=2)
+    ax.legend(fontsize=6.5, frameon=False, ncols=2, loc="lower left", bbox_to_anchor=(0.0, 1.0),
+              borderaxespad=0.2)
     return fig

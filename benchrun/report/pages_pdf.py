@@ -31,7 +31,9 @@ from benchrun.report.pages import build_story
 from benchrun.report.pages_figures import waveform_figure
 from benchrun.report.pages_style import (
     FONT_BOLD,
+    FONT_MONO,
     FONT_REGULAR,
+    INK,
     MUTED,
     PAGE_MARGIN,
     RULE,
@@ -43,7 +45,7 @@ from benchrun.report.sign import SignatureBox
 #: Loads one shot for plotting: raw_ref → (t, v, i, marks), or None when unavailable.
 WaveformLoader = Callable[[str], tuple[Any, Any, Any, WaveformMarks] | None]
 
-SIGNATURE_SIZE = (95 * mm, 24 * mm)
+SIGNATURE_SIZE = (120 * mm, 30 * mm)
 
 
 class _NumberedCanvas(Canvas):
@@ -51,6 +53,9 @@ class _NumberedCanvas(Canvas):
 
     def __init__(self, *args: Any, **kwargs: Any) -> None:
         self._footer_text = kwargs.pop("footer_text", "")
+        # the embedded report font from the first operator on: no base-14 font (Helvetica)
+        # is ever referenced, so every font in the file is embedded (PDF/A-style archiving)
+        kwargs["initialFontName"] = FONT_REGULAR
         super().__init__(*args, **kwargs)
         self._saved_pages: list[dict] = []
 
@@ -77,12 +82,14 @@ class _NumberedCanvas(Canvas):
 
 
 class _SignatureSlot(Flowable):
-    """Reserves room for the visible signature and records where it landed."""
+    """The signature block: who signs, with which certificate (its whole SHA-256), drawn in
+    the report's embedded fonts; records where it landed (the signature field's page)."""
 
-    def __init__(self, sink: list[SignatureBox]) -> None:
+    def __init__(self, sink: list[SignatureBox], lines: list[str]) -> None:
         super().__init__()
         self.width, self.height = SIGNATURE_SIZE
         self._sink = sink
+        self._lines = lines
 
     def wrap(self, availWidth: float, availHeight: float) -> tuple[float, float]:
         return self.width, self.height
@@ -95,7 +102,25 @@ class _SignatureSlot(Flowable):
         self.canv.setStrokeColor(RULE)
         self.canv.setDash([2, 2])
         self.canv.rect(0, 0, self.width, self.height)
+        self.canv.setFillColor(INK)
+        y = self.height - 11
+        for k, line in enumerate(self._lines):
+            mono = line and all(c in "0123456789abcdef" for c in line)
+            self.canv.setFont(FONT_MONO if mono else (FONT_BOLD if k == 0 else FONT_REGULAR),
+                              7.5 if mono else 8)
+            self.canv.drawString(6, y, line)
+            y -= 10.5
         self.canv.restoreState()
+
+
+def signature_lines(content: ReportContent) -> list[str]:
+    """The text of the signature block."""
+    who = ", ".join(x for x in (content.signer_name, content.signer_role) if x)
+    return [f"Signed digitally (PAdES) by {who}",
+            content.signer_organisation or "",
+            f"Issued {content.generated_utc}; the signing time is in the signature itself",
+            "Signer certificate SHA-256:",
+            content.signer_fingerprint]
 
 
 def _page_decor(content: ReportContent) -> Callable[[Canvas, Any], None]:
@@ -120,7 +145,7 @@ def _page_decor(content: ReportContent) -> Callable[[Canvas, Any], None]:
         canvas.setFont(FONT_REGULAR, 7.5)
         canvas.drawString(
             PAGE_MARGIN, 10 * mm,
-            f"Part {content.part} · lot {content.lot} · disposition {content.disposition.upper()}",
+            f"Part {content.part} · lot {content.lot} · disposition {content.disposition}",
         )
         canvas.restoreState()
 
@@ -138,6 +163,7 @@ def _doc(buffer: io.BytesIO, content: ReportContent) -> BaseDocTemplate:
         subject=f"{content.part} lot {content.lot}",
         creator=f"benchrun {content.software_version}",
         producer=f"benchrun {content.software_version}",
+        initialFontName=FONT_REGULAR,
     )
     decorate = _page_decor(content)
     pw, ph = A4
@@ -167,7 +193,7 @@ def render_pdf_bytes(
     slots: list[SignatureBox] = []
     story = build_story(
         content,
-        signature_slot=_SignatureSlot(slots),
+        signature_slot=_SignatureSlot(slots, signature_lines(content)),
         waveform_flowables=_waveform_flowables(content, waveform_loader),
         loss_flowables=loss_flowables or [],
         portrait=lambda: [NextPageTemplate("portrait"), PageBreak()],

@@ -84,6 +84,8 @@ def paragraph_styles() -> dict[str, ParagraphStyle]:
                              spaceBefore=4, spaceAfter=8, textColor=ACCENT),
         "h2": ParagraphStyle("h2", parent=base, fontName=FONT_BOLD, fontSize=11.5, leading=15,
                              spaceBefore=10, spaceAfter=5, textColor=ACCENT),
+        "h4": ParagraphStyle("h4", parent=base, fontName=FONT_BOLD, fontSize=8, leading=11,
+                             spaceBefore=4, spaceAfter=2),
         "h3": ParagraphStyle("h3", parent=base, fontName=FONT_BOLD, fontSize=9.5, leading=13,
                              spaceBefore=6, spaceAfter=3),
         "title": ParagraphStyle("title", parent=base, fontName=FONT_BOLD, fontSize=22,

@@ -88,12 +88,13 @@ def publish_report(
         if run.run_dir is None:
             raise ReportError("the run has no run folder: name the report file to write")
         out_pdf = run.run_dir / "report.pdf"
-    lot = grade_lot(run.shots, load_limits(limits_path), bench=run_bench(run))
+    spec = load_limits(limits_path)
+    lot = grade_lot(run.shots, spec, bench=run_bench(run))
     freqs = switching_frequencies_Hz
     if freqs is None:
         freqs = list(run.manifest.get("switching_frequencies_Hz") or [])
     loss = estimate_losses(run.shots, freqs) if freqs else None
-    path = render_report(run, lot, Path(out_pdf), signer=signer, loss=loss)
+    path = render_report(run, lot, Path(out_pdf), signer=signer, loss=loss, limits=spec)
     return PublishedReport(run=run, lot=lot, loss=loss, path=Path(path),
                            limits_path=Path(limits_path))
 

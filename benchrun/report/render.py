@@ -52,7 +52,7 @@ def render_signed(
 
 
 def render_report(run: Any, lot: Any, out_pdf: str | Path, *, signer: ReportSigner,
-                  loss: Any = None) -> Path:
+                  loss: Any = None, limits: Any = None) -> Path:
     """Render and sign the acceptance report of one run.
 
     Parameters
@@ -67,6 +67,9 @@ def render_report(run: Any, lot: Any, out_pdf: str | Path, *, signer: ReportSign
         Loaded signing identity (:func:`benchrun.report.keys.load_signer`).
     loss
         Optional ``LossTable`` (:func:`benchrun.loss.estimate_losses`) for the loss section.
+    limits
+        The ``LimitsSpec`` the lot was graded with (bins and decision rule are printed from
+        it); by default the run folder's ``limits.yaml``.
 
     Returns
     -------
@@ -79,7 +82,7 @@ def render_report(run: Any, lot: Any, out_pdf: str | Path, *, signer: ReportSign
     from benchrun.report.run_sources import run_sources
 
     now = _dt.datetime.now(_dt.UTC).replace(microsecond=0)
-    content = build_content(run, lot, signer, run_sources(run), now=now)
+    content = build_content(run, lot, signer, run_sources(run, limits), now=now)
     loss_parts: list[Flowable] = []
     if loss is not None:
         loss_parts = _loss_flowables(loss)

@@ -2,9 +2,10 @@
 
 The rendered PDF gets, in order: an embedded JSON file holding every number of the report
 (so :mod:`benchrun.report.verify` can compare a re-analysis), then one approval signature
-(ETSI EN 319 142-1 PAdES, SubFilter ``ETSI.CAdES.detached``) whose visible block names the
-signer, their role and the signing time. The signature covers the whole file, attachment
-included; any later byte change breaks it.
+(ETSI EN 319 142-1 PAdES, SubFilter ``ETSI.CAdES.detached``) in a signature field on the
+page of the signature block (the block itself, naming the signer, role and the certificate's
+whole SHA-256, is drawn by the layout in the report's embedded fonts). The signature covers
+the whole file, attachment included; any later byte change breaks it.
 """
 
 from __future__ import annotations
@@ -93,10 +94,8 @@ async def _sign(
 ) -> bytes:
     from pyhanko.pdf_utils import embed, generic
     from pyhanko.pdf_utils.incremental_writer import IncrementalPdfFileWriter
-    from pyhanko.pdf_utils.text import TextBoxStyle
     from pyhanko.sign import fields, signers
     from pyhanko.sign.fields import SigSeedSubFilter
-    from pyhanko.stamp import TextStampStyle
 
     writer = IncrementalPdfFileWriter(io.BytesIO(pdf), strict=False)
     if attachment is not None:
@@ -116,24 +115,12 @@ async def _sign(
         )
         embed.embed_file(writer, spec)
 
+    # the signature field has no appearance of its own: the signature block is part of the
+    # page, drawn in the report's embedded fonts (pyhanko's text stamps use an unembedded
+    # base-14 font); viewers list the signature in their signature panel
     fields.append_signature_field(
         writer,
-        fields.SigFieldSpec(
-            sig_field_name=SIGNATURE_FIELD,
-            on_page=box.page,
-            box=(int(box.x1), int(box.y1), int(box.x2), int(box.y2)),
-        ),
-    )
-    role = f", {signer.role}" if signer.role else ""
-    org = f"\n{signer.organisation}" if signer.organisation else ""
-    style = TextStampStyle(
-        stamp_text=(
-            "Digitally signed by %(signer)s" + role + org + "\n"
-            "Time: %(ts)s\nCertificate SHA-256: %(fp)s"
-        ),
-        text_box_style=TextBoxStyle(font_size=7.5, leading=10),
-        timestamp_format="%Y-%m-%d %H:%M:%S %Z",
-        border_width=1,
+        fields.SigFieldSpec(sig_field_name=SIGNATURE_FIELD, on_page=box.page),
     )
     meta = signers.PdfSignatureMetadata(
         field_name=SIGNATURE_FIELD,
@@ -143,16 +130,9 @@ async def _sign(
         location=location or None,
         name=signer.name,
     )
-    pdf_signer = signers.PdfSigner(meta, signer=signer.pyhanko_signer, stamp_style=style)
+    pdf_signer = signers.PdfSigner(meta, signer=signer.pyhanko_signer)
     out = io.BytesIO()
-    await pdf_signer.async_sign_pdf(
-        writer,
-        output=out,
-        appearance_text_params={
-            "signer": signer.name,
-            "fp": signer.cert_fingerprint_sha256[:32] + "…",
-        },
-    )
+    await pdf_signer.async_sign_pdf(writer, output=out)
     return out.getvalue()
 
 
