@@ -38,7 +38,7 @@ def test_report_command_signs_a_report_that_verifies(tmp_path, identity, monkeyp
     if shutil.which("pdftotext"):
         text = subprocess.run(["pdftotext", str(pdf), "-"], capture_output=True, text=True,
                               timeout=60, check=True).stdout
-        assert "REJECT" in text
+        assert "Lot disposition: reject" in text
 
 
 def test_report_command_needs_a_complete_identity(tmp_path, identity, monkeypatch, capsys):
