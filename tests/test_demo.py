@@ -36,6 +36,8 @@ def test_demo_end_to_end(tmp_path, capsys):
     cert = next((out / "keys").glob("*.cert.pem"))
     result = verify_report(si / "report.pdf", cert=cert, data=si)
     assert result.ok, [c for c in result.checks if not c.ok]
+    for run_dir in runs:
+        _check_pages(run_dir)
 
     # a SiC Schottky diode has no stored minority charge, only capacitive charge, so its
     # recovery loss is far below the silicon fast-recovery diode's at the same conditions
@@ -45,3 +47,34 @@ def test_demo_end_to_end(tmp_path, capsys):
     assert rows
     for sic, si_energy in rows:
         assert float(sic) < 0.5 * float(si_energy)
+
+
+def _check_pages(run_dir):
+    """Every table cell and reason of the demo report is printed whole, no text overlaps,
+    every font is embedded (poppler's pdftotext and pdffonts; tests/pdf_checks.py)."""
+    import shutil
+    import types
+
+    if not (shutil.which("pdftotext") and shutil.which("pdffonts")):
+        return
+    from pdf_checks import (
+        expected_strings,
+        fonts_not_embedded,
+        missing_words,
+        overlapping_words,
+    )
+
+    from benchrun.grading import grade_lot, load_limits
+    from benchrun.report.facts_gather import build_content
+    from benchrun.report.run_sources import run_sources
+    from benchrun.store.rundata import load_run
+
+    run = load_run(run_dir)
+    lot = grade_lot(run.shots, load_limits(run.limits_path))
+    signer = types.SimpleNamespace(name="", role="", organisation="",
+                                   cert_fingerprint_sha256="")
+    content = build_content(run, lot, signer, run_sources(run))
+    pdf = run_dir / "report.pdf"
+    assert missing_words(pdf, expected_strings(content, lot)) == []
+    assert overlapping_words(pdf) == []
+    assert fonts_not_embedded(pdf) == []

@@ -68,3 +68,15 @@ def test_empty_table_says_so():
     table = estimate_losses([], [20e3])
     texts = [getattr(f, "text", "") for f in loss_flowables(table, getSampleStyleSheet())]
     assert any("No usable shots" in t for t in texts)
+
+
+def test_left_out_shots_are_named_with_their_reason():
+    bad = _shot("A3", 298.15, None, None)
+    bad = ShotResult.from_dict({**bad.to_dict(), "valid": False,
+                                "flags": ["clipped_diode_current"]})
+    table = estimate_losses([_shot("A1", 298.15, 500e-6, 1.0e-3), bad], [20e3])
+    assert table.skipped
+    line = "A3, test point 0, repeat 0, attempt 0 (shots/x): clipped_diode_current"
+    texts = [getattr(f, "text", "") for f in loss_flowables(table, getSampleStyleSheet(),
+                                                            [line])]
+    assert any(line in t for t in texts)

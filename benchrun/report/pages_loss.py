@@ -8,7 +8,7 @@ the sequence names.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 from xml.sax.saxutils import escape
 
@@ -63,7 +63,8 @@ def _table(rows: list[list[str]]) -> LongTable:
     return table
 
 
-def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] | Any) -> list:
+def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] | Any,
+                   left_out: Sequence[str] = ()) -> list:
     """Flowables of the loss section.
 
     Parameters
@@ -73,6 +74,9 @@ def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] |
     styles
         Paragraph styles by name (``body``, ``small``, ``h3``); reportlab's sample styles are
         used for any name missing.
+    left_out
+        One line per shot left out (device, test point, shot and reason), printed under the
+        counts of ``loss_table.skipped``.
     """
     body = _style(styles, "body", "BodyText")
     small = _style(styles, "small", "BodyText")
@@ -122,5 +126,9 @@ def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] |
         out.append(Spacer(1, 4))
     for reason in loss_table.skipped:
         out.append(Paragraph(escape(f"Left out: {reason}."), small))
+    if loss_table.skipped and left_out:
+        out.append(Paragraph("Shots left out, with the reason:", small))
+        for line in left_out:
+            out.append(Paragraph(escape(f"• {line}"), small))
     return out
 

@@ -85,7 +85,7 @@ def render_report(run: Any, lot: Any, out_pdf: str | Path, *, signer: ReportSign
     content = build_content(run, lot, signer, run_sources(run, limits), now=now)
     loss_parts: list[Flowable] = []
     if loss is not None:
-        loss_parts = _loss_flowables(loss)
+        loss_parts = _loss_flowables(loss, _invalid_shots(run))
     with raw_waveform_loader(run, content.analysis_options) as loader:
         path = render_signed(content, out_pdf, signer, waveform_loader=loader,
                              loss_flowables=loss_parts)
@@ -93,14 +93,27 @@ def render_report(run: Any, lot: Any, out_pdf: str | Path, *, signer: ReportSign
     return path
 
 
-def _loss_flowables(loss: Any) -> list[Flowable]:
+def _invalid_shots(run: Any) -> list[str]:
+    """Every shot not valid, named with its reason (the loss estimate leaves them out)."""
+    lines = []
+    for s in sorted(run.shots, key=lambda s: (s.serial, s.point.index, s.repeat, s.attempt)):
+        if s.valid:
+            continue
+        where = s.point.label or f"test point {s.point.index}"
+        why = "; ".join(s.flags) or "not valid"
+        lines.append(f"{s.serial}, {where}, repeat {s.repeat}, attempt {s.attempt} "
+                     f"({s.raw_ref or 'no raw record'}): {why}")
+    return lines
+
+
+def _loss_flowables(loss: Any, left_out: list[str]) -> list[Flowable]:
     try:
         from benchrun.report.pages_loss import loss_flowables
     except ImportError:  # the loss section module is optional: no section without it
         return []
     from benchrun.report.pages_style import paragraph_styles
 
-    return list(loss_flowables(loss, paragraph_styles()))
+    return list(loss_flowables(loss, paragraph_styles(), left_out))
 
 
 def _register(run: Any, content: ReportContent, path: Path) -> None:
