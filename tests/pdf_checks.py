@@ -52,7 +52,7 @@ def expected_strings(content: Any, lot: Any) -> list[str]:
     out += list(content.decision_rule)
     for line in content.devices:
         out += [line.serial, line.condition, line.verdict, line.bin or "—"]
-        if line.verdict != "conforming":
+        if line.verdict != "conforming" or line.bin == "unbinned":
             out.append(line.note)
     for device in lot.devices:
         if device.verdict != "conforming":

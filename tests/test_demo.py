@@ -64,13 +64,13 @@ def _check_pages(run_dir):
         overlapping_words,
     )
 
-    from benchrun.grading import grade_lot, load_limits
+    from benchrun.grading import grade_lot, load_limits, run_bench
     from benchrun.report.facts_gather import build_content
     from benchrun.report.run_sources import run_sources
     from benchrun.store.rundata import load_run
 
     run = load_run(run_dir)
-    lot = grade_lot(run.shots, load_limits(run.limits_path))
+    lot = grade_lot(run.shots, load_limits(run.limits_path), bench=run_bench(run))
     signer = types.SimpleNamespace(name="", role="", organisation="",
                                    cert_fingerprint_sha256="")
     content = build_content(run, lot, signer, run_sources(run))

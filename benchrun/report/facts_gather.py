@@ -188,7 +188,9 @@ def _device_lines(lot: Any) -> tuple[list[DeviceLine], list[str]]:
                     f"≤ {fmt(g.upper, g.unit)}" if g.upper is not None else "") if x)
                 cells[g.metric] = Cell(g.value, g.expanded_uncertainty, g.outcome, limit)
             note = "; ".join(r for r in device.reasons if name in r)
-            lines.append(DeviceLine(device.serial, name, cells, device.bin or "",
+            unbinned = bool(getattr(device, "unbinned", False))
+            lines.append(DeviceLine(device.serial, name, cells,
+                                    device.bin or ("unbinned" if unbinned else ""),
                                     device.verdict, note))
     return lines, columns
 
@@ -343,5 +345,13 @@ def _bins_rule(lot: Any, bins: Any) -> str:
         return str(stated)
     if bins is None:
         return ""
+    if not any(getattr(d, "bin_reason", None) is not None for d in lot.devices) and \
+            not hasattr(lot.devices[0] if lot.devices else None, "bin_reason"):
+        return ("A conforming device falls in the first class (in the order listed) whose "
+                "bounds contain its value; the value's uncertainty is not applied to the "
+                "class edges.")
     return ("A conforming device falls in the first class (in the order listed) whose bounds "
-            "contain its value; the value's uncertainty is not applied to the class edges.")
+            "contain its value, bounds included. The decision rule applies to the class edges "
+            "as to the limits (ILAC-G8:09/2019 §4.2): every value within the guard band w of "
+            "the device's value must lie in the same class; when a class edge lies inside, the "
+            "device is unbinned and the reason names the edge.")

@@ -23,7 +23,7 @@ DEFAULT_AGGREGATION = "mean of the device's valid shots"
 #: Words for the aggregation modes a limit may name.
 AGGREGATION_WORDS = {
     "mean": "mean of the device's valid shots",
-    "worst": "worst valid shot of the device",
+    "worst": "worst valid shot of the device (the one nearest the limit)",
     "max": "largest valid shot of the device",
     "min": "smallest valid shot of the device",
 }
@@ -231,22 +231,31 @@ def traceability_table(run: Any, bench: Any) -> list[list[str]]:
         if ident.get("firmware"):
             identity += f", firmware {ident['firmware']}"
         due = _get(ident, "calibration_due") or _get(entry, "calibration_due")
+        accuracy = _get(entry, "accuracy") if entry is not None else None
+        vertical = _get(accuracy, "vertical") if accuracy is not None else None
+        if vertical is not None:
+            identity += f"; vertical accuracy {compact(vertical * 100)} % of full scale"
         rows.append([f"{role} ({entry.family})" if entry is not None else role, identity,
                      _text(_get(ident, "serial") or _get(entry, "serial")),
-                     _text(_get(entry, "calibration_date", "calibrated")),
+                     _text(_get(accuracy, "calibrated") if accuracy is not None else None),
                      _text(due),
-                     _text(_get(entry, "calibration_certificate", "certificate"))])
+                     _text(_get(accuracy, "certificate") if accuracy is not None else None)])
     probes = dict(getattr(bench, "probes", {}) or {}) if bench is not None else {}
     for name, probe in sorted(probes.items()):
         unit = "A/V" if getattr(probe, "measures_current", False) else "V/V"
-        rows.append([f"probe {name.replace('_', ' ')}",
-                     f"{probe.kind}, channel {probe.channel}, scale "
-                     f"{significant(float(probe.scale), 4)} {unit}, deskew "
-                     f"{fmt(probe.deskew, 's')}",
+        accuracy = _get(probe, "accuracy")
+        identity = (f"{probe.kind}, channel {probe.channel}, scale "
+                    f"{compact(float(probe.scale))} {unit}, deskew {fmt(probe.deskew, 's')}")
+        if accuracy is not None and _get(accuracy, "scale") is not None:
+            identity += f"; scale tolerance {compact(accuracy.scale * 100)} %"
+            skew = _get(accuracy, "skew")
+            if skew:
+                identity += f", residual skew {fmt(skew, 's', 2)}"
+        rows.append([f"probe {name.replace('_', ' ')}", identity,
                      _text(_get(probe, "serial")),
-                     _text(_get(probe, "calibration_date", "calibrated")),
+                     _text(_get(accuracy, "calibrated") if accuracy is not None else None),
                      _text(_get(probe, "calibration_due")),
-                     _text(_get(probe, "calibration_certificate", "certificate"))])
+                     _text(_get(accuracy, "certificate") if accuracy is not None else None)])
     return rows
 
 

@@ -205,7 +205,7 @@ def build_story(
     story.append(sec.device_table(content, landscape_width))
 
     story += portrait()
-    story += sec.section("5  Devices that are not conforming")
+    story += sec.section("5  Devices that are not conforming or not binned")
     story += sec.non_conforming_list(content.devices, w)
     story += sec.section("6  Shots left out, retaken or flagged")
     if len(content.shot_log_table) > 1:

@@ -213,9 +213,9 @@ def device_table(content: ReportContent, width: float) -> Flowable:
 def non_conforming_list(devices: Sequence[DeviceLine], width: float) -> list[Flowable]:
     """Every device that is not conforming, named in words (also for colour-blind readers)."""
     out: list[Flowable] = []
-    bad = [d for d in devices if d.verdict != "conforming"]
+    bad = [d for d in devices if d.verdict != "conforming" or d.bin == "unbinned"]
     if not bad:
-        out.append(P("Every device at every condition is conforming.", "body"))
+        out.append(P("Every device at every condition is conforming and binned.", "body"))
         return out
     rows = [["Serial", "Condition", "Verdict", "Metrics not conforming", "Note"]]
     for d in bad:
