@@ -253,7 +253,7 @@ def test_damaged_or_foreign_files_raise_store_error(tmp_path):
 def _offset_of_codes(path, key, channel):
     """File offset of a stored channel's first code (uncompressed shot group or slot)."""
     with h5py.File(path, "r") as f:
-        if key in f["shots"]:
+        if key in f["shots"] and "slot_view" not in f["shots"][key].attrs:  # not a view
             return f[f"shots/{key}/{channel}"].id.get_offset()
         block = f["slots/b000000"]
         for slot, row in enumerate(block["header"][()]):

@@ -69,6 +69,7 @@ from __future__ import annotations
 import contextlib
 import datetime as _dt
 import json
+import logging
 import os
 from collections.abc import Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -101,10 +102,13 @@ from benchrun.store.raw_read import (  # noqa: F401 (RawShot, scaling_types re-e
 )
 from benchrun.store.raw_slots import KEY_RE as _KEY_RE
 from benchrun.store.raw_slots import SlotStore, block_dtype
+from benchrun.store.raw_views import describe_record, is_view
 
 if TYPE_CHECKING:
     from benchrun.store.raw_shot import RawShotBuilder
 
+
+log = logging.getLogger("benchrun.store")
 
 #: Value of the root ``format`` attribute: identifies a benchrun raw record.
 FORMAT_NAME = "benchrun-raw-record"
@@ -239,6 +243,7 @@ class RawRecord:
         self._codes_layout: dict[tuple[int, int], tuple[Any, Any]] = {}
         self._layout_marked = False  # root format_version says which layouts may be present
         self._slot_store: SlotStore | None = None
+        self._wrote = False  # a shot was written since opening (close describes the record)
         self._open()
 
     # -- opening and closing -------------------------------------------------------------
@@ -288,10 +293,12 @@ class RawRecord:
         except StoreError:
             self.close()
             raise
+        if self.mode != "r" and not fresh and self._slot_store.blocks:
+            self._describe_quietly()  # a record opened again (resume): views of every shot
 
     def _drop_incomplete(self) -> None:
         shots = self._shots
-        stale = [k for k, g in shots.items() if not _is_complete(g)]
+        stale = [k for k, g in shots.items() if not _is_complete(g) and not is_view(g)]
         for key in stale:
             # a link to an object that was never written cannot be deleted (HDF5 needs the
             # object's header for that): it stays, invisible like every incomplete shot
@@ -303,6 +310,11 @@ class RawRecord:
     def close(self) -> None:
         """Flush and close the file (safe to call twice)."""
         if self._file is not None:
+            if self.mode != "r" and self._slot_store is not None and (
+                    self._wrote or self._slot_store.blocks):
+                with contextlib.suppress(Exception):
+                    self.wait_durable()
+                self._describe_quietly()
             with contextlib.suppress(Exception):
                 if self.mode != "r":
                     self.flush()
@@ -388,6 +400,35 @@ class RawRecord:
         pending, self._pending_sync = self._pending_sync, None
         if pending is not None:
             pending.result()
+
+    # -- what a general HDF5 tool sees ----------------------------------------------------
+    def describe(self, *, force: bool = False) -> bool:
+        """Build or update the group of every slot shot under ``/shots`` (virtual datasets
+        of its codes, its conditions as attributes) and the ``/shot_table`` of every shot
+        (:mod:`benchrun.store.raw_views`). Done by :meth:`close` of a writable record that
+        holds slots or had a shot written, and when a record with slots is opened for
+        writing again; returns False when they were current.
+
+        Raises
+        ------
+        StoreError
+            Read-only record, or a write failure.
+        """
+        self._require_writable()
+        self.wait_durable()
+        changed = describe_record(self._f, self._slots, force=force)
+        if changed:
+            self._sync(wait=True)
+        return changed
+
+    def _describe_quietly(self) -> None:
+        """:meth:`describe`, a failure logged (the shots themselves are stored)."""
+        try:
+            self.describe()
+        except StoreError as exc:
+            log.warning("raw record %s: the shot groups for HDF5 tools were not written "
+                        "(%s); the shots are stored, opening the record for writing again "
+                        "retries", self.path, exc)
 
     # -- run-level attributes ------------------------------------------------------------
     @property
@@ -552,6 +593,7 @@ class RawRecord:
         return in_group
 
     def _shot_written(self, key: str) -> None:
+        self._wrote = True
         if key.isdigit() and self._next_number is not None:
             self._next_number = max(self._next_number, int(key) + 1)
 
