@@ -1,6 +1,7 @@
 #!/usr/bin/env bash
 # Installs everything the test suite needs on a fresh Debian machine (run as root):
-# Debian packages where missing (ngspice, poppler-utils, qpdf, postgresql), then this package
+# Debian packages where missing (ngspice, poppler-utils, qpdf, hdf5-tools,
+# postgresql), then this package
 # with its test extras. Safe to run again: it installs nothing that is already there.
 set -euo pipefail
 cd "$(dirname "$0")/.."
@@ -9,6 +10,7 @@ need=()
 command -v ngspice >/dev/null 2>&1 || need+=(ngspice)
 command -v pdfsig >/dev/null 2>&1 || need+=(poppler-utils)
 command -v qpdf >/dev/null 2>&1 || need+=(qpdf)
+command -v h5dump >/dev/null 2>&1 || need+=(hdf5-tools)
 ls /usr/lib/postgresql/*/bin/initdb >/dev/null 2>&1 || need+=(postgresql)
 if [ ${#need[@]} -gt 0 ]; then
   echo "installing Debian packages: ${need[*]}"

@@ -44,7 +44,6 @@ while describing leaves at most views missing, which the next opening for writin
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
 import json
 import math
@@ -292,9 +291,3 @@ def describe_record(f: h5py.File, slots: SlotStore, *, force: bool = False) -> b
             from exc
     return True
 
-
-def drop_view(shots: h5py.Group, key: str) -> None:
-    """Remove the view group of ``key`` if there is one (a shot group takes its place)."""
-    with contextlib.suppress(KeyError, OSError, ValueError):
-        if is_view(shots.get(key)):
-            del shots[key]
