@@ -27,6 +27,8 @@ COMMAND_MODULES = (
     "keys",
     "verify",
     "reports",
+    "export",
+    "compact",
 )
 
 

@@ -144,10 +144,16 @@ class _Block:
     length: int
     dtype: np.dtype
     width: int
-    codes_offset: int
-    header_offset: int
+    codes_offset: int | None
+    header_offset: int | None
     #: slots in use (filled in order)
     used: int = 0
+
+    @property
+    def packed(self) -> bool:
+        """A block a compaction wrote (chunked and compressed, :mod:`.compact`): read
+        through HDF5, never written to."""
+        return self.codes_offset is None or self.header_offset is None
 
     @property
     def row_bytes(self) -> int:
@@ -160,8 +166,8 @@ class _Block:
                 and 4 * length >= 3 * self.length and length <= self.length)
 
     def fits(self, n_channels: int, length: int, dtype: np.dtype, header_bytes: int) -> bool:
-        return (self.used < self.n_slots and self.holds(n_channels, length, dtype)
-                and header_bytes <= self.width)
+        return (not self.packed and self.used < self.n_slots
+                and self.holds(n_channels, length, dtype) and header_bytes <= self.width)
 
 
 class SlotStore:
@@ -202,7 +208,7 @@ class SlotStore:
     def _read(self, block: _Block, part: str, first: int, count: int = 1) -> bytes:
         """The bytes of slots ``first`` to ``first + count - 1`` of a block's ``part``
         (``"codes"`` or ``"header"``)."""
-        if not self.direct:
+        if not self.direct or block.packed:
             rows = self._f[SLOTS_GROUP][block.name][part][first:first + count]
             return np.ascontiguousarray(rows).tobytes()
         size = block.row_bytes if part == "codes" else block.width
@@ -236,7 +242,7 @@ class SlotStore:
     def _clear(self, block: _Block, slot: int) -> None:
         """Empty a slot: the first byte of its header zero (through HDF5 where positional
         I/O is missing, then flushed)."""
-        if self.direct:
+        if self.direct and block.header_offset is not None:
             self._pwrite(block.header_offset + slot * block.width, b"\0")
             return
         try:
@@ -282,10 +288,15 @@ class SlotStore:
         except (KeyError, ValueError, TypeError, OSError) as exc:
             raise StoreError(f"raw record {self.path}: slot block {name} cannot be read "
                              f"({exc})") from exc
-        if codes_offset is None or header_offset is None or dtype not in _BLOCK_TYPES or \
+        contiguous = codes_offset is not None and header_offset is not None
+        packed = codes.chunks is not None and header.chunks is not None
+        if not (contiguous or packed) or dtype not in _BLOCK_TYPES or \
                 header.shape[0] != n_slots or codes.dtype != dtype:
             raise StoreError(f"raw record {self.path}: slot block {name} is not in the layout "
-                             "benchrun writes (contiguous, allocated, little-endian)")
+                             "benchrun writes (contiguous and allocated, or chunked by "
+                             "compaction; little-endian)")
+        if not contiguous:
+            codes_offset = header_offset = None
         return _Block(name, n_slots, n_channels, length, dtype, width, codes_offset,
                       header_offset)
 
