@@ -11,14 +11,24 @@ cost of one append is per-shot overhead. ``--runner-appends`` appends of 3 chann
 int8 codes, uncompressed, in each durability mode (``"process"``: flushes only;
 ``"power-loss"``: flushes + ``fsync``), median milliseconds per append.
 
+Then the cost on disk of a *finished* record, per shot, as the runner leaves it (slots,
+uncompressed) and after ``benchrun compact`` (HDF5 deflate level 1, byte shuffle for 16-bit
+codes: :mod:`benchrun.store.compact`), for ``--compact-shots`` shots of 3 x 16617 codes of
+three kinds of content: 8-bit codes of a quiet capture, 8-bit codes of a ringing one, and
+un-quantised noise (16-bit codes whose low bits are random). Prints bytes per shot, the
+ratio, the seconds per 1,000 shots of the compaction (digest check of every shot included)
+and of building the shot groups and table when the record is closed, and whether the
+compaction goal (at least 2x smaller at under 1 s per 1,000 shots) is met.
+
 Run: ``python benchmarks/store.py [--shots N] [--samples N] [--channels N] [--db URL]
-[--runner-appends N]``
+[--runner-appends N] [--compact-shots N] [--only-compact]``
 """
 
 from __future__ import annotations
 
 import argparse
 import dataclasses
+import os
 import statistics
 import tempfile
 import time
@@ -95,6 +105,53 @@ def bench_runner_case(folder: Path, appends: int, durability: str) -> float:
     return statistics.median(times)
 
 
+def _content(kind: str, rng: np.random.Generator) -> dict[str, _Channel]:
+    """Three channels of 16617 codes of one kind of content (module docstring)."""
+    n = RUNNER_SAMPLES
+    t = np.arange(n) / n
+    step = np.tanh((t - 0.6) * 400)  # the commutation: a smooth step of the capture
+    ring = np.exp(-(t - 0.6).clip(0) * 60) * np.sin(2 * np.pi * 180 * t) * (t > 0.6)
+    out = {}
+    for c, name in enumerate(RUNNER_CHANNELS):
+        if kind == "8-bit quiet":
+            wave = 90 * step + rng.normal(0, 0.6, n)
+            codes, lo, hi = np.clip(np.round(wave), -128, 127).astype(np.int8), -128, 127
+        elif kind == "8-bit ringing":
+            wave = 70 * step + 50 * ring * (1 + c) / 3 + rng.normal(0, 1.5, n)
+            codes, lo, hi = np.clip(np.round(wave), -128, 127).astype(np.int8), -128, 127
+        else:  # un-quantised noise: a 16-bit record whose low bits are noise
+            wave = 20000 * step + rng.normal(0, 300, n)
+            codes, lo, hi = np.round(wave).astype(np.int16), -32768, 32767
+        out[name] = _Channel(codes, 0.01, -0.2, lo, hi)
+    return out
+
+
+def bench_compaction(folder: Path, kind: str, shots: int) -> dict[str, float]:
+    """Bytes per shot before and after compaction, and seconds per 1,000 shots."""
+    from benchrun.store.compact import compact_record
+
+    rng = np.random.default_rng(3)
+    probes = {name: _Probe(100.0, 1e-9) for name in RUNNER_CHANNELS}
+    data = [_content(kind, rng) for _ in range(8)]
+    path = folder / f"finished-{kind.replace(' ', '-')}.h5"
+    raw = RawRecord(path, "w", compression=None, durability="process")
+    for i in range(shots):
+        attrs = {"serial": f"SN0117-{i % 10 + 1:03d}", "repeat": i // 10, "attempt": 0,
+                 "point": {"index": i % 2, "label": "nominal", "temperature_K": 298.15},
+                 "timestamp": "2031-04-02T10:00:00+00:00", "temperature_K": 298.2,
+                 "bus_voltage_V": 600.1, "settings": {"first_pulse_s": 6.6e-6}}
+        raw.append_shot(f"p{i % 2:03d}-SN0117-{i % 10 + 1:03d}-r{i // 10:02d}-a0", -2e-6,
+                        2.5e-10, data[i % len(data)], probes, attrs)
+    t0 = time.perf_counter()
+    raw.close()  # builds the shot groups and the table
+    described = time.perf_counter() - t0
+    before = path.stat().st_size
+    result = compact_record(path)
+    return {"before": before / shots, "after": result.bytes_after / shots,
+            "ratio": before / result.bytes_after, "compact_s": result.seconds * 1000 / shots,
+            "describe_s": described * 1000 / shots}
+
+
 def bench_db(url: str, shots: int) -> float:
     times = []
     with ResultsStore(url) as store:
@@ -124,9 +181,19 @@ def main() -> None:
     parser.add_argument("--db", default=None, help="extra database URL to time")
     parser.add_argument("--runner-appends", type=int, default=200,
                         help="appends timed for the runner's case (median of these)")
+    parser.add_argument("--compact-shots", type=int, default=500,
+                        help="shots of each finished record compacted")
+    parser.add_argument("--only-compact", action="store_true",
+                        help="only the finished-record (compaction) figures")
     args = parser.parse_args()
+    load = os.getloadavg()
+    print(f"load average before: {load[0]:.2f} {load[1]:.2f} {load[2]:.2f} "
+          f"on {os.cpu_count()} cores")
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
+        if args.only_compact:
+            _print_compaction(folder, args.compact_shots)
+            return
         print(f"{args.shots} shots, {args.channels} channels x {args.samples} int16 samples")
         for compression in ("gzip", None):
             median, size = bench_raw(folder, args.shots, args.channels, args.samples,
@@ -144,6 +211,25 @@ def main() -> None:
             print(f"runner case, {len(RUNNER_CHANNELS)} x {RUNNER_SAMPLES} int8, uncompressed, "
                   f"durability {durability}: {median * 1e3:.3f} ms/append "
                   f"(median of {appends})")
+        _print_compaction(folder, args.compact_shots)
+
+
+def _print_compaction(folder: Path, shots: int) -> None:
+    print(f"finished record, {shots} shots of {len(RUNNER_CHANNELS)} x {RUNNER_SAMPLES} codes: "
+          "slots as written vs compacted (deflate 1)")
+    met = True
+    for kind in ("8-bit quiet", "8-bit ringing", "un-quantised noise"):
+        r = bench_compaction(folder, kind, shots)
+        ok = r["ratio"] >= 2.0 and r["compact_s"] < 1.0
+        met = met and ok
+        print(f"  {kind:<19} {r['before'] / 1e3:7.1f} kB/shot -> {r['after'] / 1e3:6.1f} "
+              f"kB/shot ({r['ratio']:.2f}x), compaction {r['compact_s']:.2f} s per 1,000 "
+              f"shots; shot groups + table at close {r['describe_s']:.2f} s per 1,000 shots"
+              f"{'' if ok else '  (goal not met)'}")
+    print("compaction goal (>= 2x smaller, < 1 s per 1,000 shots) "
+          + ("met for every content" if met else "NOT met for every content"))
+    load = os.getloadavg()
+    print(f"load average after: {load[0]:.2f} {load[1]:.2f} {load[2]:.2f}")
 
 
 if __name__ == "__main__":

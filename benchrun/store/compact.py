@@ -24,6 +24,7 @@ import contextlib
 import os
 import time
 import zlib
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -75,9 +76,14 @@ def _packed_block(dst: h5py.Group, codes: np.ndarray, headers: list[bytes]) -> N
     dcpl.set_obj_track_times(False)
     space = h5py.h5s.create_simple(codes.shape)
     dsid = h5py.h5d.create(dst.id, b"codes", h5py.h5t.py_create(codes.dtype), space, dcpl=dcpl)
-    for slot in range(n):  # compressed here, written as HDF5's filters would have written it
-        chunk = zlib.compress(_shuffle(codes[slot].tobytes(), itemsize), DEFLATE_LEVEL)
-        dsid.write_direct_chunk((slot, 0, 0), chunk)
+    # compressed here as HDF5's filters would have (zlib releases the interpreter lock: the
+    # slots of a block are compressed on every core), written in slot order
+    def compress(slot: int) -> bytes:
+        return zlib.compress(_shuffle(codes[slot].tobytes(), itemsize), DEFLATE_LEVEL)
+
+    with ThreadPoolExecutor(max_workers=max(1, min(4, os.cpu_count() or 1))) as pool:
+        for slot, chunk in enumerate(pool.map(compress, range(n))):
+            dsid.write_direct_chunk((slot, 0, 0), chunk)
     width = max(len(h) for h in headers) + 1
     table = np.zeros((n, width), np.uint8)
     for slot, header in enumerate(headers):
