@@ -11,6 +11,17 @@ Layout (HDF5, readable by any HDF5 tool; format_version 3)::
                                    seconds), channels_json, probes_json, attrs_json (JSON
                                    text), content_sha256 (hex), complete (bool)
     /shots/<key>/<channel>  int8 / int16 dataset: ADC codes exactly as captured
+    /shots/<key>/           a slot shot's *view* (no ``complete`` mark; attribute slot_view):
+                                   its channels as virtual datasets of the slot's codes,
+                                   with scale/offset/units, its conditions as attributes
+    /shot_table             compound dataset: one row per complete shot (key, serial,
+                                   point, repeat, time, group, content_sha256 ...)
+
+The views and the table (:mod:`benchrun.store.raw_views`) are built when a writable record
+is closed (the end of a run) and when a record with slots is opened for writing (a resumed
+run), so ``shots/<key>`` names a group of every complete shot in any HDF5 tool; benchrun
+itself reads shots from the slots and groups only, and checks their digests there.
+A finished record can be rewritten compressed (:mod:`benchrun.store.compact`: packed blocks).
 
 Where a shot goes: :meth:`RawRecord.append_shot` writes a shot of an uncompressed record
 (``compression=None``, what the runner writes) into a slot when its channels share one
