@@ -10,9 +10,9 @@ the end of a run, and when a record is opened for writing again, as a resumed ru
                                   key, t_start_s, dt_s, points, content_sha256,
                                   every scalar shot attribute (serial, repeat, attempt,
                                   timestamp, temperature_K, bus_voltage_V ...; None left
-                                  out), each field of a mapping attribute as
-                                  <name>_<field> (point_index, point_label ...), and all
-                                  of them as canonical JSON in attrs_json;
+                                  out), each scalar field of the test point as
+                                  point_<field> (point_index, point_label ...), and all
+                                  shot attributes as sorted JSON in attrs_json;
                                   slot_view = "/slots/<block>/codes[<slot>]", slot_seq
     /shots/<key>/<channel>      the channel's ADC codes, an HDF5 *virtual dataset* mapping
                                   onto the slot's row (no copy); attributes:
@@ -21,7 +21,7 @@ the end of a run, and when a record is opened for writing again, as a resumed ru
                                   rounding: scale = gain * probe scale, offset = channel
                                   offset * probe scale), gain, channel_offset (channel
                                   volts = codes * gain + channel_offset), probe_scale,
-                                  deskew_s, code_min, code_max, t_start_s, dt_s
+                                  deskew_s, code_min, code_max
     /shot_table                 compound dataset, one row per complete shot (format 2
                                   shot groups included), sorted by key: key, serial,
                                   point (index), point_label, repeat, attempt, timestamp,
@@ -145,13 +145,13 @@ def _scalar(value: Any) -> bool:
 
 def shot_attributes(attrs: dict[str, Any]) -> dict[str, str | int | float | bool]:
     """The HDF5 attributes of a view group for the shot attributes ``attrs``: scalars as
-    they are, one level of a mapping as ``<name>_<field>``, None and deeper values left
-    out (all of them are in ``attrs_json``)."""
+    they are, the scalar fields of the test point (``point``) as ``point_<field>``; None
+    and other values left out (all of them are in ``attrs_json``)."""
     out: dict[str, str | int | float | bool] = {}
     for name, value in attrs.items():
         if _scalar(value):
             out[name] = value
-        elif isinstance(value, dict):
+        elif name == "point" and isinstance(value, dict):
             for field, inner in value.items():
                 if _scalar(inner):
                     out[f"{name}_{field}"] = inner
@@ -166,17 +166,21 @@ def _put_attrs(obj: Any, values: dict[str, Any]) -> None:
 def _build_view(f: h5py.File, key: str, block: _Block, slot: int, seq: int,
                 header: dict[str, Any]) -> h5py.Group:
     """An unlinked view group of one slot shot."""
-    group = h5py.Group(h5py.h5g.create(f.id, None))
+    gid = h5py.h5g.create(f.id, None)
     points = int(header["points"])
     t_start, dt = float(header["t_start_s"]), float(header["dt_s"])
-    source = h5py.VirtualSource(".", f"/{SLOTS_GROUP}/{block.name}/codes",
-                                shape=(block.n_slots, block.n_channels, block.length),
-                                dtype=block.dtype)
+    # the virtual dataset through the low-level API (what h5py's VirtualLayout makes, without
+    # its per-dataset copies of the source description): points codes of one row of a slot
+    codes_path = f"/{SLOTS_GROUP}/{block.name}/codes".encode()
+    vspace = h5py.h5s.create_simple((points,))
+    htype = h5py.h5t.py_create(block.dtype)
     probes = header.get("probes", {})
     for row, channel in enumerate(header["channels"]):
-        layout = h5py.VirtualLayout(shape=(points,), dtype=block.dtype)
-        layout[:] = source[slot, row, :points]
-        ds = group.create_virtual_dataset(channel["name"], layout)
+        src = h5py.h5s.create_simple((block.n_slots, block.n_channels, block.length))
+        src.select_hyperslab((slot, row, 0), (1, 1, points))
+        dcpl = h5py.h5p.create(h5py.h5p.DATASET_CREATE)
+        dcpl.set_virtual(vspace, b".", codes_path, src)
+        ds = h5py.h5d.create(gid, channel["name"].encode(), htype, vspace, dcpl=dcpl)
         probe = probes.get(channel["name"], {"scale": 1.0, "deskew_s": 0.0})
         gain, offset = float(channel["gain"]), float(channel["offset"])
         probe_scale = float(probe["scale"])
@@ -185,16 +189,17 @@ def _build_view(f: h5py.File, key: str, block: _Block, slot: int, seq: int,
             "scale": gain * probe_scale, "offset": offset * probe_scale,
             "gain": gain, "channel_offset": offset, "probe_scale": probe_scale,
             "deskew_s": float(probe["deskew_s"]), "code_min": int(channel["code_min"]),
-            "code_max": int(channel["code_max"]), "t_start_s": t_start, "dt_s": dt,
+            "code_max": int(channel["code_max"]),
         })
+        ds.close()
     attrs = header.get("attrs", {})
-    _put_attrs(group, {
+    _put_attrs(gid, {
         **shot_attributes(attrs), "key": key, "t_start_s": t_start, "dt_s": dt, "points": points,
         "content_sha256": str(header["content_sha256"]),
         "attrs_json": json.dumps(attrs, sort_keys=True, separators=(",", ":")),
         VIEW_ATTR: f"/{SLOTS_GROUP}/{block.name}/codes[{slot}]", VIEW_SEQ_ATTR: seq,
     })
-    return group
+    return h5py.Group(gid)
 
 
 def _fixed(text: Any, field: str) -> bytes:
