@@ -95,6 +95,11 @@ def test_export_tables_as_csv_and_parquet(sim_run, tmp_path, capsys):
     shutil.copytree(sim_run, tmp_path / "runs" / sim_run.name)
     _cli(capsys, "export", str(tmp_path / "runs"), "--out", str(tmp_path / "all"))
     assert sorted(pd.read_csv(tmp_path / "all" / "shots.csv")["key"]) == sorted(raw_keys(run))
+    # and so does the run's database, named by URL
+    _cli(capsys, "export", f"sqlite:///{sim_run / 'results.db'}", "--out", str(tmp_path / "db"))
+    from_db = pd.read_csv(tmp_path / "db" / "shots.csv")
+    assert sorted(from_db["key"]) == sorted(raw_keys(run))
+    assert len(pd.read_csv(tmp_path / "db" / "devices.csv")) == 2
 
 
 def test_exported_waveform_reanalysed_reproduces_the_stored_metrics(sim_run, tmp_path,
