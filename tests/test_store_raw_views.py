@@ -144,3 +144,69 @@ def test_shot_groups_and_slots_share_the_table(tmp_path):
     assert [k.decode() for k in table["key"]] == ["a", "b"]
     assert table[1]["serial"] == b"S2" and table[1]["content_sha256"].decode() == digest_b
     assert table[1]["points"] == 300
+
+
+DESCRIBE_CHILD = r"""
+import sys
+from dataclasses import dataclass
+
+import numpy as np
+
+from benchrun.store import RawRecord
+
+
+@dataclass(frozen=True)
+class Channel:  # duck-typed like ChannelData (no scipy import)
+    codes: np.ndarray
+    gain: float
+    offset: float
+    code_min: int
+    code_max: int
+
+
+@dataclass(frozen=True)
+class Probe:
+    scale: float
+    deskew_s: float = 0.0
+
+
+rng = np.random.default_rng(0)
+probes = {"diode_voltage": Probe(100.0), "diode_current": Probe(100.0, 1e-9)}
+raw = RawRecord(sys.argv[1], "w", compression=None, durability="process")
+for k in range(int(sys.argv[2])):
+    channels = {name: Channel(rng.integers(-128, 128, 2000).astype(np.int8), 0.01, 0.0,
+                              -128, 127) for name in probes}
+    raw.append_shot(f"k{k:04d}", 0.0, 1e-9, channels, probes, {"serial": f"S{k % 7}"})
+print("WRITTEN", flush=True)
+raw.close()  # describes the record: killed somewhere in here
+print("CLOSED", flush=True)
+"""
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("delay", [0.0, 0.02, 0.1, 0.3])
+def test_a_kill_while_describing_loses_nothing_and_reopening_completes_it(tmp_path, delay):
+    import os
+    import signal
+    import sys
+    import time
+
+    script = tmp_path / "child.py"
+    script.write_text(DESCRIBE_CHILD)
+    path = tmp_path / "raw.h5"
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(sys.path)}
+    with subprocess.Popen([sys.executable, str(script), str(path), "300"], env=env,
+                          stdout=subprocess.PIPE, text=True) as child:
+        assert child.stdout.readline().strip() == "WRITTEN"
+        time.sleep(delay)
+        child.send_signal(signal.SIGKILL)
+        out = child.stdout.read()
+        child.wait()
+    del out  # where the kill landed depends on the machine's speed: every moment must be safe
+    with RawRecord(path, "a", compression=None) as raw:  # opens; describes what is missing
+        keys = raw.keys()
+        assert keys == [f"k{k:04d}" for k in range(300)]
+        assert raw.damaged_keys() == []
+    with h5py.File(path, "r") as f:
+        assert all(f"shots/{k}/diode_current" in f for k in keys)
+        assert len(f["shot_table"]) == 300
