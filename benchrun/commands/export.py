@@ -41,7 +41,7 @@ def register(subparsers: Any) -> None:
 
 def _load_runs(source: str, run_id: str | None) -> list[Any]:
     """Every run RESULTS holds (one, with ``run_id``)."""
-    from benchrun.store.results import ResultsStore
+    from benchrun.store.results import ResultsStore, normalize_url
     from benchrun.store.rundata import RUN_MANIFEST, load_run
 
     path = Path(source)
@@ -55,10 +55,9 @@ def _load_runs(source: str, run_id: str | None) -> list[Any]:
             if not runs:
                 raise StoreError(f"no run {run_id!r} in {path}")
         return runs
-    if run_id is not None or ("://" not in source and path.is_dir()):
-        return [load_run(source, run_id)]
-    url = source if "://" in source else str(path)
-    with ResultsStore(url) as store:
+    if run_id is not None or ("://" not in source and not path.is_file()):
+        return [load_run(source, run_id)]  # one run, or the error that says why not
+    with ResultsStore(normalize_url(source), create=False) as store:
         ids = [r.run_id for r in store.runs()]
     if len(ids) <= 1:
         return [load_run(source, run_id)]
