@@ -478,8 +478,10 @@ class RawRecord:
 
     def keys(self) -> list[str]:
         """Keys of every complete shot, sorted."""
-        in_groups = {k for k, g in self._shots.items() if _is_complete(g)}
-        return sorted(in_groups.union(self._slots.keys()))
+        slots, shots = self._slots, self._shots
+        # a name of a slot shot is its view (raw_views): only the other names are opened
+        in_groups = {k for k in shots if k not in slots and _is_complete(shots.get(k))}
+        return sorted(in_groups.union(slots.keys()))
 
     def __contains__(self, key_or_ref: str) -> bool:
         key = _key_of(key_or_ref)
