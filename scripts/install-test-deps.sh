@@ -1,8 +1,7 @@
 #!/usr/bin/env bash
 # Installs everything the test suite needs on a fresh Debian machine (run as root):
-# Debian packages where missing (ngspice, poppler-utils, qpdf, hdf5-tools,
-# postgresql), then this package
-# with its test extras. Safe to run again: it installs nothing that is already there.
+# Debian packages where missing (ngspice, poppler-utils, qpdf, postgresql, hdf5-tools), then
+# this package with its test extras. Safe to run again: it installs nothing that is already there.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
