@@ -126,7 +126,7 @@ def test_unknown_shot_is_one_clear_error(sim_run, tmp_path, capsys):
 
 
 def test_compacted_record_is_smaller_verifies_and_reports(sim_run, tmp_path, capsys):
-    from benchrun.grading import grade_lot, load_limits
+    from benchrun.grading import grade_lot, load_limits, run_bench
     from benchrun.report.render import render_report
     from benchrun.report.verify import verify_report
 
@@ -149,7 +149,7 @@ def test_compacted_record_is_smaller_verifies_and_reports(sim_run, tmp_path, cap
     # a report made from the compacted record verifies, re-analysis included
     files, signer = make_signer(tmp_path)
     run = load_run(run_dir)
-    lot = grade_lot(run.shots, load_limits(run.limits_path))
+    lot = grade_lot(run.shots, load_limits(run.limits_path), bench=run_bench(run))
     pdf = render_report(run, lot, run_dir / "report.pdf", signer=signer)
     result = verify_report(pdf, files.cert_path, run_dir)
     assert result.ok, [c for c in result.checks if not c.ok]

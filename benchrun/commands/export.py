@@ -36,6 +36,9 @@ def register(subparsers: Any) -> None:
                         help="only this run (a database or folder holding several)")
     parser.add_argument("--limits", metavar="FILE",
                         help="limits file to grade with (default: each run's limits.yaml)")
+    parser.add_argument("--bench", metavar="FILE",
+                        help="bench file with the instrument and probe accuracies (default: "
+                        "each run's bench.yaml)")
     parser.set_defaults(func=run)
 
 
@@ -64,8 +67,12 @@ def _load_runs(source: str, run_id: str | None) -> list[Any]:
     return [load_run(source, rid) for rid in ids]
 
 
-def _graded(runs: list[Any], limits: str | None) -> list[tuple[str, dict[str, Any]]]:
+def _graded(runs: list[Any], limits: str | None,
+            bench: str | None) -> list[tuple[str, dict[str, Any]]]:
+    from benchrun.config import load_bench
     from benchrun.config.limits import load_limits
+    from benchrun.errors import GradingError
+    from benchrun.grading import run_bench
     from benchrun.grading.grade import grade_lot
 
     out = []
@@ -77,18 +84,26 @@ def _graded(runs: list[Any], limits: str | None) -> list[tuple[str, dict[str, An
             continue
         if not data.shots:
             continue
-        out.append((data.run_id, grade_lot(data.shots, load_limits(path)).to_dict()))
+        try:
+            bench_config = load_bench(bench) if bench else run_bench(data)
+        except GradingError as exc:
+            print(f"benchrun export: run {data.run_id}: {exc}: its devices and lot are left "
+                  "out (name the bench file with --bench FILE)", file=sys.stderr)
+            continue
+        out.append((data.run_id, grade_lot(data.shots, load_limits(path),
+                                           bench=bench_config).to_dict()))
     return out
 
 
-def _write_tables(runs: list[Any], out: Path, limits: str | None) -> list[Path]:
+def _write_tables(runs: list[Any], out: Path, limits: str | None,
+                  bench: str | None) -> list[Path]:
     from benchrun.store.export import devices_frame, lot_frame, shots_frame
 
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise StoreError(f"cannot create {out}: {exc.strerror or exc}") from exc
-    graded = _graded(runs, limits)
+    graded = _graded(runs, limits, bench)
     frames = {"shots": shots_frame(s for data in runs for s in data.shots),
               "devices": devices_frame(graded), "lot": lot_frame(graded)}
     written = []
@@ -126,6 +141,6 @@ def run(args: argparse.Namespace) -> int:
         rows = _write_shot(runs, args.shot, args.out)
         print(f"{args.out}: {rows} samples of shot {args.shot} (t s, v V, i A)")
         return 0
-    for path in _write_tables(runs, args.out, args.limits):
+    for path in _write_tables(runs, args.out, args.limits, args.bench):
         print(path)
     return 0
