@@ -9,6 +9,27 @@ BENCH = ROOT / "sequences" / "bench-sim.yaml"
 LIMITS = ROOT / "limits" / "DX-4417.yaml"
 
 
+def limits_for(folder: Path, temperatures: str) -> Path:
+    """The DX-4417 limits, keeping only the conditions at the given temperatures (a sequence
+    must test every condition of its limits file: ``benchrun.config.crosscheck``)."""
+    import yaml
+
+    tested = {item.strip() for item in temperatures.strip("[]").split(",")}
+    data = yaml.safe_load(LIMITS.read_text(encoding="utf-8"))
+    kept = [c for c in data["conditions"] if c["temperature"] in tested]
+    if len(kept) == len(data["conditions"]):
+        return LIMITS
+    names = {c["name"] for c in kept}
+    data["conditions"] = kept
+    data["limits"] = [item for item in data["limits"]
+                      if item.get("condition") is None or item["condition"] in names]
+    if data.get("bins", {}).get("condition") not in names:
+        data.pop("bins", None)
+    path = folder / f"limits-{'-'.join(sorted(names))}.yaml"
+    path.write_text(yaml.safe_dump(data, sort_keys=False), encoding="utf-8")
+    return path
+
+
 def write_sequence(folder: Path, *, devices: str = "[SN0117-001, SN0117-004]",
                    temperatures: str = "[25 degC, 125 degC]", repeats: int = 1,
                    extra: str = "", name: str = "seq.yaml") -> Path:
@@ -17,7 +38,7 @@ def write_sequence(folder: Path, *, devices: str = "[SN0117-001, SN0117-004]",
 part: DX-4417
 lot: LT-0117
 devices: {devices}
-limits: {LIMITS}
+limits: {limits_for(folder, temperatures)}
 test_points:
   - label: nominal
     bus_voltage: 600 V

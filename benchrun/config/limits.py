@@ -48,6 +48,7 @@ from typing import Any, Literal
 from pydantic import Field, ValidationInfo, field_validator, model_validator
 
 from benchrun.analysis.metrics_meta import METRICS
+from benchrun.config.crosscheck import check_bin_order
 from benchrun.config.explicit import (
     ExplicitFraction,
     ExplicitTemperatureBand,
@@ -463,4 +464,5 @@ def load_limits(path: str | Path) -> LimitsSpec:
         data = {}
     spec = validate(LimitsSpec, data, filename=str(path), lines=lines)
     _cross_check(spec, str(path), lines)
+    check_bin_order(spec, str(path), lines)
     return spec

@@ -170,6 +170,14 @@ class LossSettings(StrictModel):
 
     switching_frequencies: list[Frequency] = Field(default_factory=list)
 
+    @field_validator("switching_frequencies")
+    @classmethod
+    def _positive(cls, values: list[float]) -> list[float]:
+        for value in values:
+            if value <= 0:
+                raise ValueError(f"a switching frequency must be positive, got {value:g} Hz")
+        return values
+
 
 class SequenceConfig(StrictModel):
     """A whole sequence file."""

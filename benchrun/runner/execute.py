@@ -168,6 +168,9 @@ def prepare(sequence_path: str | Path, bench_path: str | Path, options: RunOptio
         if getattr(spec, "part", sequence.part) != sequence.part:
             raise ConfigError(f"limits file is for part {spec.part!r}, the sequence tests "
                               f"{sequence.part!r}", file=str(sequence_path), field="limits")
+        from benchrun.config.crosscheck import check_run_files
+
+        check_run_files(sequence, sequence_path, spec, limits_file)
     ratings = sequence.ratings
     if ratings is None and options.ratings_lookup is not None:
         ratings = options.ratings_lookup(sequence.part)
