@@ -23,6 +23,7 @@ refused), temperature tolerances and bands as temperature *differences* (``"3 K"
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from typing import Any, Literal
 
@@ -45,6 +46,31 @@ from benchrun.config.loader import (
 
 #: A relative tolerance: "5 %" or 0.05.
 Fraction = Tolerance
+
+#: Lot names: they name run folders (``<out>/<lot>-<time>``), so letters, digits, ``.``,
+#: ``_`` and ``-`` only, starting with a letter or digit (no ``/``, no ``..``, no spaces).
+LOT_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,63}")
+#: Serials: letters, digits and ``. _ - + / # :``, starting with a letter or digit, at most 64
+#: characters. They are sent to the handler as quoted SCPI strings and escaped one-to-one in
+#: raw-record keys (:func:`benchrun.runner.shots.key_safe_serial`); never used in paths.
+SERIAL_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9._+/#:-]{0,63}")
+
+
+def check_lot(value: str) -> str:
+    """``value`` when it is a valid lot name (:data:`LOT_PATTERN`), else ``ValueError``."""
+    if not LOT_PATTERN.fullmatch(value):
+        raise ValueError(f"lot name {value!r} is not allowed: use letters, digits, '.', '_' "
+                         "and '-' (starting with a letter or digit, at most 64); it names "
+                         "the run folder")
+    return value
+
+
+def check_serial(value: str) -> str:
+    """``value`` when it is a valid serial (:data:`SERIAL_PATTERN`), else ``ValueError``."""
+    if not SERIAL_PATTERN.fullmatch(value):
+        raise ValueError(f"serial {value!r} is not allowed: use letters, digits and "
+                         "'. _ - + / # :' (starting with a letter or digit, at most 64)")
+    return value
 
 
 class PartRatings(StrictModel):
@@ -199,6 +225,11 @@ class SequenceConfig(StrictModel):
     switch_voltage: bool = False
     retry_invalid: int = Field(default=1, ge=0, le=3)
 
+    @field_validator("lot")
+    @classmethod
+    def _lot(cls, value: str) -> str:
+        return check_lot(value)
+
     @field_validator("devices")
     @classmethod
     def _serials(cls, value: Any) -> Any:
@@ -210,6 +241,7 @@ class SequenceConfig(StrictModel):
             for serial in value:
                 if not serial.strip():
                     raise ValueError("empty serial")
+                check_serial(serial)
         return value
 
 

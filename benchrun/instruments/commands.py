@@ -170,7 +170,7 @@ class ArgSpec:
             if upper in ("0", "OFF"):
                 return False
             raise ValueError(f"{token!r} is not a boolean")
-        return token
+        return scpi.unquote_string(token)
 
 
 @dataclass(frozen=True)

@@ -14,6 +14,8 @@ from typing import Any
 PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)\}")
 _MNEMONIC = re.compile(r"[A-Za-z]+")
 _VALUE_PATTERN = r"[^,;\s]+"
+#: The body of a quoted string parameter: anything, a double quote only doubled.
+_STRING_BODY_PATTERN = r'(?:[^"]|"")*'
 _SUFFIX_PATTERN = r"\d+"
 _PLACEHOLDER = PLACEHOLDER
 
@@ -95,6 +97,8 @@ def build_matchers(specs: Any) -> tuple[tuple[re.Pattern[str], Any], ...]:
             # a placeholder in the header or glued to a mnemonic is a numeric suffix (SENSe{n})
             suffix = " " not in before or (before[-1:].isalpha())
             value = _SUFFIX_PATTERN if suffix else _VALUE_PATTERN
+            if before.endswith('"') and spec.send[m.end():].startswith('"'):
+                value = _STRING_BODY_PATTERN  # IEEE 488.2 §7.7.5: "" stands for one quote
             pattern.append(f"(?P<{m.group(1)}>{value})")
             pos = m.end()
         pattern.append(_literal_pattern(spec.send[pos:]))

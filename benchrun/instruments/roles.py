@@ -546,8 +546,14 @@ class Handler(_Driver):
         return [s for s in self._ask("list_devices") if s]
 
     def select(self, serial: str) -> None:
-        """Place device ``serial`` in the fixture."""
-        self._send("select", serial=serial)
+        """Place device ``serial`` in the fixture.
+
+        The serial is sent as IEEE 488.2 string program data (§7.7.5: in double quotes, an
+        embedded double quote doubled), so a space, comma, semicolon or quote in it cannot
+        break the command. The table's template holds the quotes (``SELect "{serial}"``);
+        the body is escaped here.
+        """
+        self._send("select", serial=scpi.string_body(serial))
         self.check_errors(f"selecting device {serial}")
 
     def selected(self) -> str | None:

@@ -138,6 +138,56 @@ def format_value(value: object) -> str:
     return str(value)
 
 
+def quote_string(text: str) -> str:
+    """IEEE 488.2 §7.7.5 string program data: ``"..."`` with each ``"`` doubled.
+
+    Raises
+    ------
+    ValueError
+        For characters outside printable 7-bit ASCII (the standard's string data is 7-bit;
+        a control character or line feed would end or corrupt the message).
+    """
+    if any(not (32 <= ord(c) < 127) for c in text):
+        raise ValueError(f"{text!r} holds characters that cannot be sent as a SCPI string "
+                         "(printable ASCII only)")
+    return '"' + text.replace('"', '""') + '"'
+
+
+def string_body(text: str) -> str:
+    """:func:`quote_string` without the enclosing quotes, for a command table whose template
+    already writes them (``SELect "{serial}"``)."""
+    return quote_string(text)[1:-1]
+
+
+def unquote_string(token: str) -> str:
+    """Inverse of :func:`quote_string` for a token in double (or single) quotes; any other
+    token (the body of a string whose quotes the template holds, or character data) has its
+    doubled double quotes undone."""
+    if len(token) >= 2 and token[0] == token[-1] and token[0] in "\"'":
+        quote = token[0]
+        return token[1:-1].replace(quote * 2, quote)
+    return token.replace('""', '"')
+
+
+def split_units(message: str) -> list[str]:
+    """A program message split at the ``;`` between message units, not at one inside a
+    quoted string (IEEE 488.2 §7.4.1)."""
+    units, current, quote = [], [], ""
+    for char in message:
+        if quote:
+            if char == quote:
+                quote = ""  # a doubled quote closes and reopens: same result
+        elif char in "\"'":
+            quote = char
+        elif char == ";":
+            units.append("".join(current))
+            current = []
+            continue
+        current.append(char)
+    units.append("".join(current))
+    return units
+
+
 # --- definite-length arbitrary blocks -------------------------------------------------------
 
 

@@ -10,7 +10,6 @@ raw record but not the database before a crash is found and completed on resume.
 from __future__ import annotations
 
 import math
-import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -30,10 +29,25 @@ FLAG_ANALYSIS_FAILED = "analysis_failed"
 REQUIRED_METRICS = ("if_A", "irrm_A", "qrr_C", "trr_s")
 
 
+#: Serial characters kept as they are in a raw-record key; every other byte is escaped.
+_KEY_SAFE = frozenset(b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789_.-")
+
+
+def key_safe_serial(serial: str) -> str:
+    """A serial as it appears in a raw-record key: one-to-one, unchanged when plain.
+
+    Letters, digits, ``_``, ``.`` and ``-`` stay; every other UTF-8 byte becomes ``%XX``
+    (percent-encoding as in RFC 3986 §2.1, upper-case hex). ``%`` never occurs in a plain
+    serial, so distinct serials always give distinct keys and the keys of plain serials are
+    those older records hold.
+    """
+    return "".join(chr(b) if b in _KEY_SAFE else f"%{b:02X}" for b in serial.encode("utf-8"))
+
+
 def shot_key(point_index: int, serial: str, repeat: int, attempt: int) -> str:
-    """Raw-record key of one shot: ``p000-<serial>-r00-a0`` (serial made key-safe)."""
-    safe = re.sub(r"[^A-Za-z0-9_.-]", "_", serial)
-    return f"p{point_index:03d}-{safe}-r{repeat:02d}-a{attempt}"
+    """Raw-record key of one shot: ``p000-<serial>-r00-a0`` (serial by
+    :func:`key_safe_serial`)."""
+    return f"p{point_index:03d}-{key_safe_serial(serial)}-r{repeat:02d}-a{attempt}"
 
 
 def probes_for(bench: BenchConfig) -> dict[str, ProbeCalibration]:

@@ -95,7 +95,7 @@ class SimInstrument:
         with self.bench.lock:
             for code, detail in self.faults.take_pending_errors():
                 self.push_error(code, detail)
-            for unit in message.split(";"):
+            for unit in scpi.split_units(message):
                 unit = unit.strip()
                 if not unit:
                     continue

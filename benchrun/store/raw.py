@@ -179,7 +179,7 @@ def _key_of(key_or_ref: str) -> str:
     key = key_or_ref.removeprefix("/").removeprefix(f"{SHOTS_GROUP}/")
     if not _KEY_RE.match(key):
         raise StoreError(
-            f"invalid shot key {key_or_ref!r}: use letters, digits, '_', '-', '.' only"
+            f"invalid shot key {key_or_ref!r}: use letters, digits, '_', '-', '.', '%' only"
         )
     return key
 

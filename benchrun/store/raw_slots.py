@@ -91,7 +91,7 @@ SLOTS_DESCRIPTION = (
     "(scale, deskew_s), attrs, content_sha256. Measured quantity (V or A) = (codes * gain + "
     "offset) * probe scale.")
 #: Shot keys and channel names: letters, digits, ``_ . -`` (ASCII: HDF5 link names too).
-KEY_RE = re.compile(r"^[A-Za-z0-9_.\-]+$")
+KEY_RE = re.compile(r"^[A-Za-z0-9_.%\-]+$")
 #: Code types a block can hold (little-endian, as the file stores them).
 _SIGNED = (np.dtype("i1"), np.dtype("<i2"))
 _BLOCK_TYPES = (*_SIGNED, np.dtype("u1"), np.dtype("<u2"))
