@@ -129,3 +129,19 @@ class ReportError(BenchrunError):
 
 class VerificationError(BenchrunError):
     """Verification could not be carried out at all (a failed check is a result instead)."""
+
+
+#: Tail third-party messages carry that means nothing to a user of the tool (SQLAlchemy adds
+#: "(Background on this error at: https://sqlalche.me/...)" to every message).
+_NOISE_MARKERS = ("(Background on this error at:", "\n[SQL:", "\n[parameters:")
+
+
+def user_message(exc: BaseException) -> str:
+    """One line for a person: the message of ``exc`` without library boilerplate."""
+    text = str(exc)
+    for marker in _NOISE_MARKERS:
+        cut = text.find(marker)
+        if cut >= 0:
+            text = text[:cut]
+    lines = [line.rstrip() for line in text.strip().splitlines() if line.strip()]
+    return "\n".join(lines) if lines else type(exc).__name__

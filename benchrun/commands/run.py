@@ -4,9 +4,10 @@ Runs a test sequence unattended: checks every file and every planned setting bef
 is energised, then fires, stores and analyses every shot. Resources written ``sim`` in the
 bench file are served by an in-process simulated bench. After a crash or Ctrl-C,
 ``--resume`` continues the newest unfinished run of the same part and lot in DIR (or the run
-folder given) at the first untested point. With a signing identity (``--sign-key`` and
-``--sign-cert``, or ``--sign-p12``) a complete run is graded and its signed report written;
-the identity is loaded before anything is energised, so a wrong passphrase costs no shots.
+folder given) at the first untested point. With a signing identity (``--key`` and ``--cert``,
+or ``--p12``; passphrase from --passphrase-file, BENCHRUN_KEY_PASSPHRASE or the terminal) a
+complete run is graded and its signed report written; the identity is loaded before anything
+is energised, so a wrong or missing passphrase costs no shots.
 ``--durability process`` writes each shot only as far as the operating system before the next
 shot fires (faster; survives the program being killed, not a power cut).
 """
@@ -18,7 +19,13 @@ import sys
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from benchrun.commands.report import add_signer_arguments, print_lot
+from benchrun.commands.report import (
+    add_signer_arguments,
+    path_arg,
+    print_lot,
+    signer_from_args,
+    wants_signing,
+)
 from benchrun.runner.simbench import DEFAULT_SPEEDUP
 
 #: ``benchrun.store.raw.DURABILITY_MODES`` (the store is not imported to build the parser).
@@ -33,9 +40,9 @@ def register(subparsers: Any) -> None:
         "run", help="run a test sequence on a bench (unattended, resumable)",
         description=__doc__.split("\n\n", 1)[1] if __doc__ else None,
     )
-    parser.add_argument("sequence", type=Path, help="sequence file (YAML)")
-    parser.add_argument("--bench", type=Path, required=True, help="bench file (YAML)")
-    parser.add_argument("--out", type=Path, default=Path("runs"), metavar="DIR",
+    parser.add_argument("sequence", type=path_arg, help="sequence file (YAML)")
+    parser.add_argument("--bench", type=path_arg, required=True, help="bench file (YAML)")
+    parser.add_argument("--out", type=path_arg, default=Path("runs"), metavar="DIR",
                         help="folder for run folders (default: ./runs)")
     parser.add_argument("--resume", nargs="?", const=True, default=False, metavar="RUN_DIR",
                         help="continue an unfinished run (newest of this lot in DIR, or RUN_DIR)")
@@ -51,9 +58,11 @@ def register(subparsers: Any) -> None:
                              "program being killed, not a power cut or system crash)")
     parser.add_argument("--no-progress", action="store_true", help="no live progress display")
     parser.add_argument("--sim-speedup", type=float, default=DEFAULT_SPEEDUP,
-                        help="clock speed-up of the simulated bench (sim resources only)")
-    parser.add_argument("--sim-seed", type=int, default=1, help="noise seed of the simulator")
-    add_signer_arguments(parser, prefix="sign-")
+                        help="clock speed-up of the simulated bench (sim resources only; "
+                             "'benchrun sim --speedup' is the same setting)")
+    parser.add_argument("--sim-seed", type=int, default=1,
+                        help="noise seed of the simulator ('benchrun sim --seed')")
+    add_signer_arguments(parser, hidden_prefix="sign-")
     parser.set_defaults(func=run)
 
 
@@ -94,12 +103,7 @@ def run(args: argparse.Namespace) -> int:
         show_progress=not args.no_progress and sys.stderr.isatty(),
         on_finish=print_outcome,
     )
-    signer = None
-    if args.sign_key or args.sign_cert or args.sign_p12:
-        from benchrun.report.publish import load_signer_from_files
-
-        signer = load_signer_from_files(key=args.sign_key, cert=args.sign_cert,
-                                        p12=args.sign_p12, role=args.sign_role)
+    signer = signer_from_args(args) if wants_signing(args) else None
     outcome = run_on_bench(args.sequence, args.bench, options, sim_speedup=args.sim_speedup,
                            sim_seed=args.sim_seed)
     if outcome.status != "complete":

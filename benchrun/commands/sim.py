@@ -18,9 +18,13 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--host", default="127.0.0.1", help="address to listen on")
     parser.add_argument("--port-base", type=int, default=0,
                         help="first TCP port (roles use N..N+4); 0 picks free ports")
-    parser.add_argument("--seed", type=int, default=0, help="noise seed")
-    parser.add_argument("--clock-speedup", type=float, default=100.0,
-                        help="simulated seconds per wall-clock second (thermal, bus charge)")
+    parser.add_argument("--seed", type=int, default=0,
+                        help="noise seed ('benchrun run --sim-seed' is the same setting)")
+    parser.add_argument("--speedup", dest="clock_speedup", type=float, default=100.0,
+                        help="simulated seconds per wall-clock second (thermal, bus charge); "
+                             "'benchrun run --sim-speedup' is the same setting")
+    parser.add_argument("--clock-speedup", dest="clock_speedup", type=float,
+                        help=argparse.SUPPRESS)
     parser.set_defaults(func=run)
 
 

@@ -275,16 +275,69 @@ def _check_pair(key: object, cert: object) -> None:
         raise ReportError("the private key does not belong to the certificate")
 
 
+#: What to do when no passphrase can be had (said by every error about it).
+PASSPHRASE_HELP = (f"set {PASSPHRASE_ENV}, or give --passphrase-file FILE (the passphrase on "
+                   "its first line; keep the file readable by you only)")
+
+
+def read_passphrase_file(path: str | Path) -> str:
+    """The passphrase on the first line of ``path`` (its line ending removed).
+
+    Raises
+    ------
+    ReportError
+        The file cannot be read, or its first line is empty.
+    """
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        reason = getattr(exc, "strerror", None) or str(exc)
+        raise ReportError(f"cannot read the passphrase file {path}: {reason}") from exc
+    first = text.splitlines()[0] if text else ""
+    if not first:
+        raise ReportError(f"the passphrase file {path} is empty (the passphrase goes on its "
+                          "first line)")
+    return first
+
+
+def has_terminal() -> bool:
+    """Whether a person can be asked: standard input is a terminal."""
+    import sys
+
+    try:
+        return sys.stdin is not None and sys.stdin.isatty()
+    except (AttributeError, ValueError):
+        return False
+
+
 def passphrase_from_env_or_prompt(
-    prompt: str = "Key passphrase: ", *, confirm: bool = False
+    prompt: str = "Key passphrase: ", *, confirm: bool = False,
+    passphrase_file: str | Path | None = None,
 ) -> str:
-    """The passphrase from :data:`PASSPHRASE_ENV`, else asked on the terminal (not echoed)."""
+    """The key passphrase: from ``passphrase_file`` when given, else :data:`PASSPHRASE_ENV`,
+    else asked on the terminal (not echoed).
+
+    Raises
+    ------
+    ReportError
+        No file, no environment variable and no terminal (an unattended run), the terminal
+        closed while asking, or the two entries differ (``confirm``). The message says what
+        to do; nothing has been signed or fired when it is raised.
+    """
+    if passphrase_file is not None:
+        return read_passphrase_file(passphrase_file)
     value = os.environ.get(PASSPHRASE_ENV)
     if value:
         return value
+    if not has_terminal():
+        raise ReportError(f"the signing key needs its passphrase and there is no terminal to "
+                          f"ask on: {PASSPHRASE_HELP}")
     import getpass
 
-    first = getpass.getpass(prompt)
-    if confirm and getpass.getpass("Repeat passphrase: ") != first:
-        raise ReportError("the passphrases do not match")
+    try:
+        first = getpass.getpass(prompt)
+        if confirm and getpass.getpass("Repeat passphrase: ") != first:
+            raise ReportError("the passphrases do not match")
+    except EOFError as exc:
+        raise ReportError(f"no passphrase was entered: {PASSPHRASE_HELP}") from exc
     return first

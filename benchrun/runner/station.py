@@ -77,6 +77,10 @@ class Station:
         self.bench = bench
         self.clock = clock
         self.drivers: dict[str, Any] = {}
+        # set before any session opens: close() (called when opening fails) needs them
+        self._helpers: ThreadPoolExecutor | None = None
+        self._watchdog: _WatchdogRefresher | None = None
+        self._watchdog_armed = False
         channel_map = {name: probe.channel for name, probe in bench.probes.items()}
         try:
             for role, entry in bench.instruments.items():
@@ -102,9 +106,6 @@ class Station:
         self._selected: str | None = None
         #: wall-clock durations of the last acquisitions (fire to record), for the trigger wait
         self._acquisitions: deque[float] = deque(maxlen=3)
-        self._helpers: ThreadPoolExecutor | None = None
-        self._watchdog: _WatchdogRefresher | None = None
-        self._watchdog_armed = False
 
     # --- lifecycle -----------------------------------------------------------------------
 

@@ -13,9 +13,12 @@ A run folder ``<out>/<run_id>/`` holds::
 
 Manifest keys read here: ``run_id`` (required in a run folder) and ``store_url`` (optional;
 absent or ``null`` means ``<run_dir>/results.db``; a relative SQLite path is taken relative to
-the run folder, so a copied folder stays loadable). When a run is loaded from a database URL,
-the manifest is the copy kept in the ``runs`` table, and its ``run_dir`` (if it names an
-existing folder) becomes :attr:`RunData.run_dir`.
+the run folder, so a copied folder stays loadable). Every file of a run is found relative to
+the folder it is in now, never by a path recorded when it ran, so a run folder can be moved
+or copied. When a run is loaded from a SQLite file inside a run folder of the same run, that
+folder is :attr:`RunData.run_dir`; from another database URL, the manifest is the copy kept in
+the ``runs`` table, and its ``run_dir`` becomes :attr:`RunData.run_dir` if that folder still
+exists and still holds the run.
 """
 
 from __future__ import annotations
@@ -226,6 +229,17 @@ def hash_run_files(
     return {name: file_sha256(folder / name) for name in names if (folder / name).is_file()}
 
 
+def _folder_beside(db_file: Path, run_id: str) -> Path | None:
+    """The run folder that holds ``db_file`` (its own ``results.db``), if its manifest names
+    ``run_id``: a moved or copied folder is found where it is now, not where it was made."""
+    folder = db_file.resolve().parent
+    try:
+        manifest = read_manifest(folder)
+    except StoreError:
+        return None
+    return folder if manifest.get("run_id") == run_id else None
+
+
 def _load_from_store(
     url: str, run_id: str | None, run_dir: Path | None, manifest: dict[str, Any] | None
 ) -> RunData:
@@ -248,8 +262,13 @@ def _load_from_store(
         public_url = store.public_url
     if manifest is None:
         manifest = dict(record.manifest)
+        beside = _folder_beside(Path(str(parsed.database)), run_id) if is_sqlite_file else None
         folder = manifest.get("run_dir")
-        if run_dir is None and folder and Path(folder).is_dir():
+        if run_dir is None and beside is not None:
+            run_dir = beside
+            manifest = read_manifest(beside)
+        elif run_dir is None and folder and Path(folder).is_dir() \
+                and _folder_beside(Path(folder) / RESULTS_DB, run_id) is not None:
             run_dir = Path(folder)
     return RunData(
         run_id=run_id,
