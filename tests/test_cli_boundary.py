@@ -326,7 +326,11 @@ def test_out_is_a_folder_and_the_report_file_is_pdf():
 
 @pytest.mark.parametrize("argv", [["run", "", "--bench", "b.yaml"],
                                   ["run", "s.yaml", "--bench", "b.yaml", "--out", ""],
-                                  ["report", "R", "--key", "k", "--cert", "", ]])
+                                  ["report", "R", "--key", "k", "--cert", ""],
+                                  ["verify", "r.pdf", "--data", ""],
+                                  ["grade", "R", "--limits", " "],
+                                  ["keys", "new", "--name", "A", "--out", ""],
+                                  ["demo", "--out", ""]])
 def test_empty_path_is_refused_not_shown_as_dot(argv, capsys):
     with pytest.raises(SystemExit) as info:
         build_parser().parse_args(argv)

@@ -21,7 +21,7 @@ import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from benchrun.commands.report import print_lot
+from benchrun.commands.report import path_arg, print_lot
 from benchrun.errors import ConfigError
 
 if TYPE_CHECKING:
@@ -42,7 +42,7 @@ def register(subparsers: Any) -> None:
         "demo", help="run, grade and report an invented lot on the simulated bench",
         description=__doc__.split("\n\n", 1)[1] if __doc__ else None,
     )
-    parser.add_argument("--out", type=Path, default=Path("benchrun-demo"), metavar="DIR",
+    parser.add_argument("--out", type=path_arg, default=Path("benchrun-demo"), metavar="DIR",
                         help="output folder (default: ./benchrun-demo)")
     parser.add_argument("--no-sic", action="store_true",
                         help="skip the DX-5203 SiC lot and the loss comparison")

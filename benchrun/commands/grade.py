@@ -20,6 +20,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from benchrun.commands.report import path_arg
 from benchrun.config.bench import BenchConfig, load_bench
 from benchrun.config.limits import LimitsSpec, load_limits, metric_unit
 from benchrun.errors import GradingError
@@ -37,9 +38,10 @@ def register(subparsers: Any) -> None:
         "limits file to see how the same measurements grade against it.",
     )
     parser.add_argument("results", metavar="RESULTS", help="run folder or results database URL")
-    parser.add_argument("--limits", metavar="FILE", help="limits file (default: the run's)")
-    parser.add_argument("--bench", metavar="FILE", help="bench file with the instrument and "
-                        "probe accuracies (default: the run's)")
+    parser.add_argument("--limits", metavar="FILE", type=path_arg,
+                        help="limits file (default: the run's)")
+    parser.add_argument("--bench", metavar="FILE", type=path_arg, help="bench file with the "
+                        "instrument and probe accuracies (default: the run's)")
     parser.add_argument("--run-id", metavar="ID", help="run to grade when the database holds "
                         "several")
     parser.add_argument("--json", action="store_true", help="print the grades as JSON")

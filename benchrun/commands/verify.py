@@ -15,6 +15,8 @@ import argparse
 import json
 from typing import Any
 
+from benchrun.commands.report import path_arg
+
 
 def register(subparsers: Any) -> None:
     parser = subparsers.add_parser(
@@ -22,8 +24,9 @@ def register(subparsers: Any) -> None:
         description=__doc__.split("\n\n", 1)[1] if __doc__ else None,
     )
     parser.add_argument("report", metavar="REPORT.pdf", help="the signed report")
-    parser.add_argument("--cert", metavar="CERT", help="the signer's certificate to trust")
-    parser.add_argument("--data", metavar="RUN_DIR",
+    parser.add_argument("--cert", metavar="CERT", type=path_arg,
+                        help="the signer's certificate to trust")
+    parser.add_argument("--data", metavar="RUN_DIR", type=path_arg,
                         help="run folder with the raw record (default: the report's folder)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON")
     parser.add_argument("--details", action="store_true", help="list every hash and finding")
