@@ -99,3 +99,22 @@ def test_negative_switching_frequency_refused(tmp_path):
         load_sequence(seq)
     assert f"seq.yaml:{_line(seq, 'loss:')}: loss.switching_frequencies: a switching " \
         "frequency must be positive" in str(info.value)
+
+
+def test_sequence_tolerance_wider_than_the_limits_refused(tmp_path):
+    # the runner accepts a shot within the sequence tolerance; grading judges it with the
+    # limits' tolerance: a wider sequence tolerance means valid-looking shots graded invalid
+    seq = _sequence_with_limits(tmp_path, LIMITS,
+                                extra="tolerances: {forward_current: 10 %}\n")
+    with pytest.raises(ConfigError) as info:
+        prepare(seq, BENCH, RunOptions(out_dir=tmp_path / "out"))
+    assert f"seq.yaml:{_line(seq, 'tolerances:')}: tolerances.forward_current: 10 % is wider " \
+        "than the 5 %" in str(info.value)
+
+
+def test_lowpass_above_nyquist_refused(tmp_path):
+    # 1 ns sampling: Nyquist frequency 500 MHz (Nyquist-Shannon sampling theorem)
+    seq = _sequence_with_limits(tmp_path, LIMITS, extra="analysis: {lowpass: 600 MHz}\n")
+    with pytest.raises(ConfigError, match=r"analysis.lowpass: the low-pass corner 6e\+08 Hz "
+                       r"is at or above the Nyquist frequency 5e\+08 Hz"):
+        prepare(seq, BENCH, RunOptions(out_dir=tmp_path / "out"))

@@ -78,6 +78,10 @@ def _point_text(point: Any) -> str:
             f"{format_si(point.bus_voltage_V, 'V')}, {format_si(point.forward_current_A, 'A')}")
 
 
+def _tolerance_text(name: str, value: float) -> str:
+    return f"{value:g} K" if name == "temperature" else f"{100 * value:g} %"
+
+
 def check_run_files(sequence: SequenceConfig, sequence_path: str | Path, limits: LimitsSpec,
                     limits_path: str | Path) -> None:
     """Check that the sequence can produce what the limits grade, before anything fires.
@@ -87,7 +91,10 @@ def check_run_files(sequence: SequenceConfig, sequence_path: str | Path, limits:
     ConfigError
         A limits condition no test point of the sequence matches (by the same rule the
         grading uses, :func:`benchrun.grading.grade.point_matches`, with the limits file's
-        tolerances), or a limit on a metric that needs ``switch_voltage: true``.
+        tolerances); a limit on a metric that needs ``switch_voltage: true``; a sequence
+        tolerance wider than the limits' (the run would accept shots grading rejects); an
+        analysis low-pass corner at or above the Nyquist frequency of the sample interval
+        (Nyquist–Shannon: content above fs/2 is not represented).
     """
     from benchrun.grading.grade import point_matches
     from benchrun.runner.plan import expand_points
@@ -108,6 +115,21 @@ def check_run_files(sequence: SequenceConfig, sequence_path: str | Path, limits:
                 _fail(f"{item.metric} is measured only with 'switch_voltage: true' in the "
                       f"sequence {sequence_path}, which does not capture the switch voltage",
                       limits_file, lines, ("limits", index, "metric"))
+    _, sequence_lines = read_yaml(sequence_path)
+    for name in ("forward_current", "didt", "reverse_voltage", "temperature"):
+        ours, theirs = getattr(sequence.tolerances, name), getattr(limits.tolerances, name)
+        if theirs is not None and ours > theirs * (1 + 1e-9):
+            _fail(f"{_tolerance_text(name, ours)} is wider than the "
+                  f"{_tolerance_text(name, theirs)} of the limits file "
+                  f"{limits_path}: shots the run accepts (and does not repeat) would be "
+                  "graded invalid; use the limits' tolerance or a tighter one",
+                  str(sequence_path), sequence_lines, ("tolerances", name))
+    analysis, timing = sequence.analysis, sequence.timing
+    if analysis.lowpass is not None and analysis.lowpass >= 0.5 / timing.sample_interval:
+        _fail(f"the low-pass corner {analysis.lowpass:g} Hz is at or above the Nyquist "
+              f"frequency {0.5 / timing.sample_interval:g} Hz of the {timing.sample_interval:g}"
+              " s sample interval (timing.sample_interval); it would filter nothing",
+              str(sequence_path), sequence_lines, ("analysis", "lowpass"))
     if limits.bins is not None and not sequence.switch_voltage \
             and limits.bins.metric in NEEDS_SWITCH_VOLTAGE:
         _fail(f"{limits.bins.metric} is measured only with 'switch_voltage: true' in the "
