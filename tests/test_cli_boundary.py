@@ -185,14 +185,19 @@ def test_empty_or_missing_passphrase_file(tmp_path, identity, simulated_run, run
 
 
 # -- 11: no traceback, no library noise --------------------------------------------------------
-def test_output_piped_into_head_ends_quietly(simulated_run):
-    command = (f"{sys.executable} -m benchrun.cli grade {simulated_run} --json | head -c 10; "
+def test_output_piped_into_head_ends_quietly(tmp_path):
+    from report_helpers import build_run
+
+    # 12 devices: the JSON (~380 kB) is far more than a pipe holds (64 kB on Linux), so the
+    # writer is still writing when head has gone
+    run_dir = build_run(tmp_path, 12)
+    command = (f"{sys.executable} -m benchrun.cli grade {run_dir} --json | head -c 10; "
                "exit ${PIPESTATUS[0]}")
     done = subprocess.run(["bash", "-c", command], capture_output=True, text=True,
-                          env={**os.environ, "PYTHONPATH": str(ROOT)}, timeout=120)
-    assert done.stdout == "{\n  \"lot\":"[:10] or len(done.stdout) == 10
+                          env={**os.environ, "PYTHONPATH": str(ROOT)}, timeout=300)
+    assert len(done.stdout) == 10
     assert done.stderr == ""  # no BrokenPipeError, no "Exception ignored" at exit
-    assert done.returncode in (0, EXIT_BROKEN_PIPE)
+    assert done.returncode == EXIT_BROKEN_PIPE
 
 
 def test_broken_pipe_returns_quietly(monkeypatch, capsys):
