@@ -233,8 +233,22 @@ def test_cli_regrades_a_stored_run_against_changed_limits(tmp_path, capsys):
                         "S003": "conforming", "S004": "invalid"}
     assert regraded["limits_file"].endswith("relaxed.yaml")
 
-    # the same stored run graded through the database URL gives the same grades
+    # the same stored run graded through the database URL gives the same grades; a database
+    # inside the run folder finds the folder's files (bench.yaml) where they are now
     url = f"sqlite:///{run_dir / 'results.db'}"
+    assert main(["grade", url, "--json"]) == 0
+    via_url = json.loads(capsys.readouterr().out)
+    assert via_url["devices"] == original["devices"]
+    # a copy of the database away from any run folder has no bench file: name one
+    import sqlite3
+    from contextlib import closing
+
+    alone = tmp_path / "elsewhere" / "copy.db"
+    alone.parent.mkdir()
+    with closing(sqlite3.connect(run_dir / "results.db")) as source, \
+            closing(sqlite3.connect(alone)) as copy:
+        source.backup(copy)
+    url = f"sqlite:///{alone}"
     assert main(["grade", url, "--limits", str(run_dir / "limits.yaml"), "--json"]) == 2
     assert "--bench FILE" in capsys.readouterr().err  # the accuracies live in the bench file
     assert main(["grade", url, "--limits", str(run_dir / "limits.yaml"), "--bench",
