@@ -76,7 +76,8 @@ def _numeric_items(result: Any) -> dict[str, Any]:
         data = asdict(result)
     else:
         data = dict(result)
-    data.pop("flags", None)
+    for key in ("flags", "u", "corrections"):
+        data.pop(key, None)
     return data
 
 
