@@ -62,12 +62,14 @@ class Baseline:
     value: float
     u: float
     count: int
+    sigma: float = 0.0
 
 
 def _median_baseline(x: np.ndarray) -> Baseline:
     x = np.asarray(x, dtype=np.float64)
     sigma = ev.robust_sigma(x)
-    return Baseline(ev.level_of(x, sigma), sigma / math.sqrt(max(x.size, 1)), int(x.size))
+    return Baseline(ev.level_of(x, sigma), sigma / math.sqrt(max(x.size, 1)), int(x.size),
+                    sigma)
 
 
 def pre_event_window(first_plateau_start: int) -> tuple[int, int] | None:

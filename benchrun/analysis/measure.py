@@ -36,6 +36,7 @@ from benchrun.analysis.flags import (
     FLAG_VR,
 )
 from benchrun.analysis.resolution import recovery_spans, undersampled_flag
+from benchrun.errors import NoEventError
 
 #: Samples looked back before the end of the plateau (enough for the fall and a plateau).
 PLATEAU_LOOKBACK = 60_000
@@ -48,6 +49,10 @@ PEAK_LOCATOR_WIDTH = 5
 #: The slope at t0 is the least-squares line through the raw samples between the falling
 #: crossings of ``±T0_SLOPE_BAND·min(IF, Irrm)`` (common practice).
 T0_SLOPE_BAND = 0.25
+
+#: The forward plateau must exceed this many noise sigmas, else the record is refused as noise
+#: (common practice).
+MIN_PLATEAU_SNR = 10.0
 
 _NEED_MORE = object()
 _NEED_LOOKBACK = object()
@@ -76,6 +81,12 @@ def measure_plateau_end(plateau, v, i, timebase, opts, zeros) -> dict | None:
     if result is None:
         return None
     values, quiet = result
+    if quiet is not None and values["if_A"] < MIN_PLATEAU_SNR * quiet.sigma:
+        raise NoEventError(
+            f"no forward-current plateau stands out of the noise: the level found "
+            f"({values['if_A']:.4g} A) is under {MIN_PLATEAU_SNR:g} times the noise after it "
+            f"({quiet.sigma:.4g} A rms) (is this channel the diode current?)"
+        )
     if zeros[0] is None and quiet is not None:
         again = _measure_window(a, b, False, plateau, plateau.level, v, i, timebase, opts,
                                 (quiet, bl.RULE_QUIET, zeros[2], zeros[3]))
@@ -168,6 +179,14 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
     sigma_v = ev.robust_sigma(vw[p_start:p_end])
     if not i_if > 0:
         return None
+    noise = max(sigma, i_base.sigma if i_base is not None else 0.0)
+    if i_if < MIN_PLATEAU_SNR * noise:
+        raise NoEventError(
+            f"no forward-current plateau stands out of the noise: the level found "
+            f"({i_if:.4g} A) is {i_if / noise:.2g} times the noise ({noise:.4g} A rms), need "
+            f"at least {MIN_PLATEAU_SNR:g} (is this channel the diode current, and is the "
+            "probe connected?)"
+        )
     noisy = sigma > 1e-6 * i_if
     # noise-free quantised data: the code step is the resolution (GUM F.2.2.1)
     sigma_u = max(sigma, qa.code_step(iw[p_start:p_end]) / ev.SQRT12)
@@ -228,7 +247,7 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
         if k is None or k == 0:
             return None
         tc, slope, m = ev.crossing_fit(tw, iw, loc, k, -fraction * irrm, band)
-        sig_loc = sigma / math.sqrt(max(1, loc is s_r and width_r or width_end)) if noisy else 0
+        sig_loc = sigma / math.sqrt(max(1, (loc is s_r and width_r) or width_end)) if noisy else 0
         u_noise = crossing_u(sigma_u, slope, m, sig_loc or sigma_u, dt_local)
         if noisy and band < 2.0 * sigma and slope:
             # a level within the noise: the locator's first passage decides the fit's samples
@@ -355,7 +374,7 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
         vr = -ev.level_of(vw[k_v1:k_r1], sigma_v)
         u_vr = rss(1.2533 * sigma_vu / math.sqrt(k_r1 - k_v1), u_v0)
         quiet = bl.quiet_zero(iw[k_v1:k_r1] + i_off)
-        k_v1 = qa.settled_index(sv, k_v1, k_r1, vr, sigma_v / math.sqrt(width_v))
+        k_v1 = k_r1  # VRM until the voltage has settled: to the end of the VR window
     else:
         flags.append(FLAG_VR)
         if FLAG_NEAR_END not in flags:

@@ -17,10 +17,10 @@ common practice unless a source is named; the README's metrics section lists the
 - ``vrm_below_vr``: VRM lies below VR by more than 3 standard uncertainties.
 - ``trr_beyond_integration``: the trr end lies after t2, the return through
   ``integration_end_fraction·Irrm``, by more than a straight return from the peak would put
-  it (``f·(t_trr − t_irrm)``) plus one sample interval or 3 u(t_trr) (a capacitive recovery, e.g. a SiC
-  Schottky: the current returns through zero as a displacement current, not by extracting
-  stored charge); trr, tb and S are then not meaningful and Qrr / Err are the capacitive
-  charge Qc and energy Ec.
+  it (``f·(t_trr − t_irrm)``) plus one sample interval or 3 u(t_trr) (a capacitive
+  recovery, e.g. a SiC Schottky: the current returns through zero as a displacement
+  current, not by extracting stored charge); trr, tb and S are then not meaningful and
+  Qrr / Err are the capacitive charge Qc and energy Ec.
 - ``ringing``: after t2 the current (locator) swings beyond 10 % of Irrm (and 5 noise sigmas).
 - ``snap``: the steepest current slope after the peak exceeds 3 times the slope at t0
   (RRSF < 1/3).
@@ -161,17 +161,6 @@ def ev_last_above(s, level, start, stop):
 def ev_first_below(s, level, start, stop):
     hits = np.flatnonzero(s[start:stop] <= level)
     return int(start + hits[0]) if hits.size else None
-
-
-def settled_index(sv: np.ndarray, k_from: int, k_to: int, vr: float, sigma: float) -> int:
-    """First index from which the reverse voltage stays settled up to ``k_to``.
-
-    Settled: the locator stays within ``max(3σ, 2 % of VR)`` of VR. VRM is searched from t0
-    up to this index (at least up to ``k_from``, i.e. t2 + trr).
-    """
-    band = max(3.0 * sigma, 0.02 * abs(vr))
-    out = np.flatnonzero(np.abs(-sv[k_from:k_to] - vr) > band)
-    return k_from + int(out[-1]) + 1 if out.size else k_from
 
 
 def check_commutation(v_plateau: np.ndarray, v_after: np.ndarray, i_if: float) -> None:

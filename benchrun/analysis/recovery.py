@@ -51,8 +51,8 @@ It only warns. ``few_samples_in_ta`` (same count, ta only) is kept as it was.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field, fields, replace
 from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field, fields, replace
 from typing import Any
 
 import numpy as np
