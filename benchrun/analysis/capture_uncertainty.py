@@ -9,7 +9,9 @@ probe tolerance) is not in here: the grading budget adds it (:mod:`benchrun.grad
 Instants (first-order propagation, JCGM 100:2008 §5.1.2, inputs uncorrelated):
 
 - a crossing found by a least-squares line through ``m`` samples with slope ``s``:
-  ``u(t) = σ/(|s|·√m)``; found by interpolation: ``σ_loc/|s|`` (σ_loc the locator's noise);
+  ``u(t) = σ/(|s|·√m)``; found by interpolation: ``σ_loc/|s|`` (σ_loc the locator's noise,
+  σ over the square root of its width); a rising crossing after the peak also carries
+  ``σ_loc/|s|`` (the locator's first passage picks the samples of the line);
   a crossing of a level ``−f·Irrm`` also moves with Irrm: ``∂t/∂Irrm = −f/s``;
 - the reverse-current peak: from the cubic fit's covariance (or the median/sample fallback,
   :func:`benchrun.analysis.events.extremum_fit`);

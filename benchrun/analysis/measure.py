@@ -249,8 +249,9 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
         tc, slope, m = ev.crossing_fit(tw, iw, loc, k, -fraction * irrm, band)
         sig_loc = sigma / math.sqrt(max(1, (loc is s_r and width_r) or width_end)) if noisy else 0
         u_noise = crossing_u(sigma_u, slope, m, sig_loc or sigma_u, dt_local)
-        if noisy and band < 2.0 * sigma and slope:
-            # a level within the noise: the locator's first passage decides the fit's samples
+        if noisy and slope:
+            # the locator's first passage through the level picks the fit's samples, so its
+            # own noise (σ over the locator width, over the slope) moves the instant too
             u_noise = rss(u_noise, sig_loc / abs(slope))
         # the level −f·Irrm moves with Irrm: ∂t/∂Irrm = −f/slope
         u_level = fraction * u_irrm / abs(slope) if slope else 0.0
