@@ -35,7 +35,7 @@ import numpy as np
 from benchrun.analysis import events as ev
 
 #: Most samples of a baseline window (bounded so a long record costs no more).
-BASELINE_MAX = 16_384
+BASELINE_MAX = 4096
 #: Fewest samples of a pre-event baseline; with fewer the quiet window after the event is used.
 BASELINE_MIN = 64
 #: Samples always left between the baseline window and the first plateau.

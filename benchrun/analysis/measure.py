@@ -81,7 +81,8 @@ def measure_plateau_end(plateau, v, i, timebase, opts, zeros) -> dict | None:
     if result is None:
         return None
     values, quiet = result
-    if quiet is not None and values["if_A"] < MIN_PLATEAU_SNR * quiet.sigma:
+    if zeros[0] is None and quiet is not None and (
+            values["if_A"] < MIN_PLATEAU_SNR * quiet.sigma):
         raise NoEventError(
             f"no forward-current plateau stands out of the noise: the level found "
             f"({values['if_A']:.4g} A) is under {MIN_PLATEAU_SNR:g} times the noise after it "
@@ -374,7 +375,8 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
     if k_r1 - k_v1 >= 8:
         vr = -ev.level_of(vw[k_v1:k_r1], sigma_v)
         u_vr = rss(1.2533 * sigma_vu / math.sqrt(k_r1 - k_v1), u_v0)
-        quiet = bl.quiet_zero(iw[k_v1:k_r1] + i_off)
+        if i_base is None:  # only needed when no pre-event zero exists
+            quiet = bl.quiet_zero(iw[k_v1:k_r1] + i_off)
         k_v1 = k_r1  # VRM until the voltage has settled: to the end of the VR window
     else:
         flags.append(FLAG_VR)
