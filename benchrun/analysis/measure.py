@@ -24,6 +24,7 @@ from benchrun.analysis.capture_uncertainty import (
     softness_u,
 )
 from benchrun.analysis.conditioning import lowpass
+from benchrun.analysis.conventions import Convention
 from benchrun.analysis.flags import (
     FLAG_FEW_SAMPLES_TA,
     FLAG_INCOMPLETE,
@@ -429,11 +430,7 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
         "current_rise_time_s": opts.current_rise_time_s,
         "voltage_rise_time_s": opts.voltage_rise_time_s,
         "deskew_s": None,
-        "integration_window": opts.integration_window,
-        "integration_end_fraction": opts.integration_end_fraction,
-        "trr_method": opts.trr_method,
-        "trr_points": ([opts.fit_high, opts.fit_low] if opts.trr_method == "extrapolate"
-                       else [opts.trr_threshold_fraction]),
+        "convention": Convention.of(opts).to_dict(),
         "noise_current_A": sigma_u,
         "noise_voltage_V": sigma_vu,
     }

@@ -26,6 +26,7 @@ from dataclasses import replace
 from typing import Any
 
 from benchrun.config.bench import BenchConfig
+from benchrun.analysis.conventions import Convention, mismatch
 from benchrun.config.limits import (
     METRIC_UNITS,
     Condition,
@@ -563,7 +564,8 @@ def describe_lot_rule(spec: LimitsSpec) -> str:
 
 
 def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
-              bench: BenchConfig | InstrumentInputs) -> LotGrade:
+              bench: BenchConfig | InstrumentInputs,
+              analysis_options: Mapping[str, Any] | None = None) -> LotGrade:
     """Grade every device in ``shots`` against ``limits`` (pure).
 
     Parameters
@@ -575,14 +577,23 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
     bench
         The bench file the shots were taken on (its instrument and probe accuracies are the
         budgets' inputs, :func:`benchrun.grading.uncertainty.bench_inputs`), or those inputs.
+    analysis_options
+        The ``RecoveryOptions`` keyword arguments the shots were analysed with (a run's
+        ``analysis_options``; None: the defaults). Their Qrr / Err / trr window convention
+        must be the limits' ``convention``.
 
     Raises
     ------
     GradingError
-        The shots are of another part, a condition cannot be matched to one test point, the
+        The shots are of another part, were measured with another window convention
+        than the limits assume, a condition cannot be matched to one test point, the
         bench file states no accuracy, or more devices were tested than the lot holds.
     """
     shots = list(shots)
+    problem = mismatch(Convention.of(analysis_options),
+                       Convention.of(limits.convention.model_dump()))
+    if problem is not None:
+        raise GradingError(f"cannot grade: {problem}")
     other = sorted({s.part for s in shots if s.part != limits.part})
     if other:
         raise GradingError(f"limits for {limits.part} cannot grade shots of {', '.join(other)}")
