@@ -25,8 +25,9 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import replace
 from typing import Any
 
-from benchrun.config.bench import BenchConfig
 from benchrun.analysis.conventions import Convention, mismatch
+from benchrun.analysis.pipeline import CAPTURE_U_PREFIX
+from benchrun.config.bench import BenchConfig
 from benchrun.config.limits import (
     METRIC_UNITS,
     Condition,
@@ -198,6 +199,16 @@ def _samples(shots: Sequence[ShotResult]) -> dict[str, list[float]]:
     return samples
 
 
+def _capture_u(shots: Sequence[ShotResult], metric: str) -> list[float]:
+    """Each shot's capture uncertainty of ``metric`` (``u_<metric>`` among its metrics)."""
+    out = []
+    for shot in shots:
+        number = _finite(shot.metrics.get(CAPTURE_U_PREFIX + metric))
+        if number is not None and _finite(shot.metrics.get(metric)) is not None:
+            out.append(number)
+    return out
+
+
 def _acquisition(shots: Sequence[ShotResult]) -> dict[str, float]:
     facts: dict[str, float] = {}
     for shot in shots:
@@ -257,14 +268,17 @@ def _worst_of(samples: Sequence[float], limit: MetricLimit) -> float:
 def _aggregate_budget(
     metric: str, limit: MetricLimit, samples: Sequence[float], means: Mapping[str, float],
     acquisition: Mapping[str, float], inputs: InstrumentInputs, spec: LimitsSpec,
+    capture_u: Sequence[float] = (),
 ) -> tuple[float, UncertaintyBudget]:
-    """Value and budget of ``metric`` under its limit's aggregation (mean or worst shot)."""
+    """Value and budget of ``metric`` under its limit's aggregation (mean or worst shot);
+    ``capture_u``: each shot's capture uncertainty, the floor of the repeatability term."""
     k = spec.uncertainty.coverage_factor
     if limit.combine == "mean":
         value = means[metric]
         return value, metric_budget(
             metric, means, acquisition, inputs,
             repeat_samples=samples,
+            capture_u=capture_u,
             extra=_extra_contributors(spec.uncertainty.extra, metric, value),
             coverage_factor=k,
             include_repeatability=spec.uncertainty.repeatability,
@@ -279,10 +293,18 @@ def _aggregate_budget(
             notes.append("single shot: repeatability not evaluated (Type A needs n ≥ 2)")
         else:
             s_one = evaluated[0]
-            extra.insert(0, Contributor(
-                f"repeatability of one shot, s = {s_one:.4g} from n = {len(samples)} shots",
-                "Type A, s of a single reading (JCGM 100:2008 §4.2.2)", s_one,
-                metric_unit(metric) or "1", 1.0))
+            caps = [u for u in capture_u if math.isfinite(u)]
+            u_cap = math.sqrt(math.fsum(u * u for u in caps) / len(caps)) if caps else 0.0
+            if s_one < u_cap:  # identical quantised repeats: one shot's own u is the floor
+                extra.insert(0, Contributor(
+                    f"repeatability floor of one shot, s = {s_one:.4g} < capture u = "
+                    f"{u_cap:.4g}", "floor: one shot's capture uncertainty (JCGM 100:2008 "
+                    "F.2.2.1)", u_cap, metric_unit(metric) or "1", 1.0))
+            else:
+                extra.insert(0, Contributor(
+                    f"repeatability of one shot, s = {s_one:.4g} from n = {len(samples)} shots",
+                    "Type A, s of a single reading, ν = n − 1 (JCGM 100:2008 §4.2.2)", s_one,
+                    metric_unit(metric) or "1", 1.0, dof=float(len(samples) - 1)))
     budget = metric_budget(metric, at_value, acquisition, inputs, extra=extra,
                            coverage_factor=k, include_repeatability=False)
     return value, replace(budget, notes=(*notes, *budget.notes))
@@ -404,7 +426,8 @@ def _grade_device(
                 reasons.append(f"{_label(metric, name)}: not measured")
                 continue
             value, budget = _aggregate_budget(metric, limit, samples[metric], means,
-                                              acquisition, inputs, spec)
+                                              acquisition, inputs, spec,
+                                              _capture_u(valid, metric))
             label = _label(metric, name)
             if limit.combine == "worst":
                 label = f"{metric} (worst shot) at {name}"
@@ -412,7 +435,7 @@ def _grade_device(
                               name=label, unit=metric_unit(metric))
             grades.append(MetricGrade(
                 metric, name, metric_unit(metric), value, len(samples[metric]),
-                budget.expanded, budget.combined, k, limit.min, limit.max,
+                budget.expanded, budget.combined, budget.coverage_factor, limit.min, limit.max,
                 decision.acceptance_lower, decision.acceptance_upper, decision.guard_band,
                 decision.outcome, decision.statement, decision.reason, budget,
                 aggregation=limit.combine, shot_values=tuple(samples[metric]),

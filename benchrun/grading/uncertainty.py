@@ -27,7 +27,12 @@ Input quantities and their standard uncertainties
 - *Deskew*: residual skew between the voltage and current channels within ``±a``,
   rectangular, ``u = a/√3``.
 - *Repeatability* (Type A, §4.2.3): experimental standard deviation of the mean of the
-  ``n`` repeated shots, ``s/√n``; not evaluated for a single shot.
+  ``n`` repeated shots, ``s/√n`` with ν = n − 1; floored by each shot's own capture
+  uncertainty ``ū/√n`` (noise, quantisation, timing: identical quantised repeats, s = 0, are
+  not "no uncertainty"); a single shot carries its capture uncertainty ``ū``
+  (:func:`repeatability`).
+- *Coverage factor*: the budget's ν_eff by Welch-Satterthwaite (G.4.1); k is the Student t
+  quantile for ν_eff at the coverage probability of the requested normal k (G.3.4).
 
 Sensitivity coefficients (derivations)
 --------------------------------------
@@ -125,6 +130,7 @@ class Contributor:
     standard_uncertainty: float
     input_unit: str
     sensitivity: float
+    dof: float = math.inf
 
     @property
     def contribution(self) -> float:
@@ -139,6 +145,7 @@ class Contributor:
             "input_unit": self.input_unit,
             "c_i": self.sensitivity,
             "contribution": self.contribution,
+            "dof": None if math.isinf(self.dof) else self.dof,
         }
 
 
@@ -153,6 +160,7 @@ class UncertaintyBudget:
     coverage_factor: float
     expanded: float
     notes: tuple[str, ...] = ()
+    effective_dof: float = math.inf
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -163,12 +171,36 @@ class UncertaintyBudget:
             "k": self.coverage_factor,
             "U": self.expanded,
             "notes": list(self.notes),
+            "nu_eff": None if math.isinf(self.effective_dof) else self.effective_dof,
         }
 
 
 def combine(contributors: Sequence[Contributor]) -> float:
     """Combined standard uncertainty ``sqrt(Σ (c_i·u_i)²)`` (JCGM 100:2008 eq. 10)."""
     return math.sqrt(math.fsum(c.contribution**2 for c in contributors))
+
+
+def effective_dof(contributors: Sequence[Contributor]) -> float:
+    """Welch-Satterthwaite effective degrees of freedom (JCGM 100:2008 G.4.1, eq. G.2b):
+    ``ν_eff = u_c⁴ / Σ (c_i·u_i)⁴/ν_i``; Type B inputs have ν_i = ∞."""
+    u_c = combine(contributors)
+    denominator = math.fsum(c.contribution**4 / c.dof for c in contributors
+                            if math.isfinite(c.dof) and c.dof > 0)
+    if u_c == 0.0 or denominator == 0.0:
+        return math.inf
+    return u_c**4 / denominator
+
+
+def t_coverage_factor(k_normal: float, dof: float) -> float:
+    """Coverage factor for ``dof`` degrees of freedom with the coverage probability that
+    ``k_normal`` gives for a normal distribution (k = 2: 95.45 %): the Student t quantile
+    (JCGM 100:2008 G.3.4 and Table G.2; scipy.stats.t). Infinite dof: ``k_normal``."""
+    if math.isinf(dof):
+        return k_normal
+    from scipy import stats
+
+    p = math.erf(k_normal / math.sqrt(2.0))
+    return float(stats.t.ppf(0.5 * (1.0 + p), max(dof, 1.0)))
 
 
 def make_budget(
@@ -178,17 +210,60 @@ def make_budget(
     coverage_factor: float = 2.0,
     notes: Sequence[str] = (),
 ) -> UncertaintyBudget:
-    """Combine contributors and expand with ``U = k·u_c`` (JCGM 100:2008 §6.2.1)."""
+    """Combine contributors and expand with ``U = k·u_c`` (JCGM 100:2008 §6.2.1).
+
+    ``coverage_factor`` is the normal-distribution k; when a Type A contributor has finite
+    degrees of freedom, k is the t quantile for the Welch-Satterthwaite ν_eff at the same
+    coverage probability (:func:`t_coverage_factor`).
+    """
     u_c = combine(contributors)
+    nu = effective_dof(contributors)
+    k = t_coverage_factor(coverage_factor, nu)
     return UncertaintyBudget(
         metric=metric,
         value=value,
         contributors=tuple(contributors),
         combined=u_c,
-        coverage_factor=coverage_factor,
-        expanded=coverage_factor * u_c,
+        coverage_factor=k,
+        expanded=k * u_c,
         notes=tuple(notes),
+        effective_dof=nu,
     )
+
+
+_TYPE_A = "Type A, s/√n, ν = n − 1 (JCGM 100:2008 §4.2.3, G.3.3)"
+_FLOOR = ("floor: repeats closer than one shot's capture uncertainty resolve; "
+          "mean capture u/√n (JCGM 100:2008 F.2.2.1 for identical quantised readings)")
+
+
+def repeatability(samples: Sequence[float], capture_u: Sequence[float], unit: str
+                  ) -> tuple[list[Contributor], list[str]]:
+    """Repeatability and capture contributors of a mean of repeated shots.
+
+    - ``s/√n`` with ν = n − 1 (Type A) when ``s`` exceeds the mean capture uncertainty ``ū``
+      of one shot (noise, quantisation, timing of the shot itself,
+      :mod:`benchrun.analysis.capture_uncertainty`): the scatter already contains it.
+    - otherwise ``ū/√n`` (ν = ∞): identical or nearly identical quantised repeats (s = 0)
+      do not mean no uncertainty; each shot is only known to ``ū``.
+    - a single shot: ``ū`` alone (no Type A).
+    """
+    notes: list[str] = []
+    caps = [float(u) for u in capture_u if u is not None and math.isfinite(float(u))]
+    u_bar = math.sqrt(math.fsum(u * u for u in caps) / len(caps)) if caps else None
+    n = len(samples)
+    evaluated = type_a([float(x) for x in samples])
+    if evaluated is None:
+        if u_bar is not None:
+            return [Contributor("capture (noise, quantisation, timing) of the single shot",
+                                "Type B, from the capture itself", u_bar, unit, 1.0)], notes
+        notes.append("single shot: repeatability not evaluated (Type A needs n ≥ 2)")
+        return [], notes
+    s, u_mean = evaluated
+    if u_bar is not None and s < u_bar:
+        return [Contributor(f"repeatability floor, s = {s:.4g} < capture u = {u_bar:.4g} "
+                            f"over n = {n}", _FLOOR, u_bar / math.sqrt(n), unit, 1.0)], notes
+    return [Contributor(f"repeatability, s = {s:.4g} over n = {n}", _TYPE_A, u_mean, unit,
+                        1.0, dof=float(n - 1))], notes
 
 
 @dataclass(frozen=True)
@@ -454,6 +529,7 @@ def metric_budget(
     extra: Sequence[Contributor] = (),
     coverage_factor: float = 2.0,
     include_repeatability: bool = True,
+    capture_u: Sequence[float] = (),
 ) -> UncertaintyBudget:
     """Full GUM budget of one metric value.
 
@@ -472,6 +548,9 @@ def metric_budget(
         ``k`` for ``U = k·u_c``.
     include_repeatability
         Whether to evaluate the Type A term.
+    capture_u
+        Each repeated shot's capture uncertainty of the metric (``u`` of the analysis):
+        the floor of the repeatability term (:func:`repeatability`).
     """
     contributors, notes = metric_contributors(metric, values, acquisition, inputs)
     unit = metric_unit(metric) or "1"
@@ -483,14 +562,9 @@ def metric_budget(
                     f"repeatability, pooled s = {s:.4g} over n = {n}",
                     "Type A, s/√n (JCGM 100:2008 §4.2.3)", s / math.sqrt(n), unit, 1.0))
         else:
-            evaluated = type_a([float(x) for x in repeat_samples])
-            if evaluated is None:
-                notes.append("single shot: repeatability not evaluated (Type A needs n ≥ 2)")
-            else:
-                s, u = evaluated
-                contributors.append(Contributor(
-                    f"repeatability, s = {s:.4g} over n = {len(repeat_samples)}",
-                    "Type A, s/√n (JCGM 100:2008 §4.2.3)", u, unit, 1.0))
+            items, more = repeatability(list(repeat_samples), capture_u, unit)
+            contributors.extend(items)
+            notes.extend(more)
     contributors.extend(extra)
     value = values.get(metric)
     return make_budget(metric, None if value is None else float(value), contributors,
