@@ -321,7 +321,16 @@ def format_table(metrics: RecoveryMetrics) -> str:
         text = format_si(value, meta.unit) if meta.unit else (
             "—" if value is None else f"{value:.4g}"
         )
-        lines.append(f"{meta.name:<9} {text:>14}   {meta.description}")
+        u = metrics.u.get(key)
+        u_text = "" if u is None else ("u " + (format_si(u, meta.unit, 2) if meta.unit
+                                               else f"{u:.2g}"))
+        lines.append(f"{meta.name:<9} {text:>14} {u_text:>12}   {meta.description}")
+    c = metrics.corrections
+    if c:
+        lines.append(f"offsets   current {format_si(c.get('current_offset_A'), 'A')} "
+                     f"({c.get('current_offset_rule')}); voltage "
+                     f"{format_si(c.get('voltage_offset_V'), 'V')} "
+                     f"({c.get('voltage_offset_rule')})")
     lines.append("flags     " + (", ".join(metrics.flags) if metrics.flags else "none"))
     return "\n".join(lines)
 
