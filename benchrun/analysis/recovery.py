@@ -18,15 +18,23 @@ Definitions (all results positive magnitudes, SI units; times by linear interpol
   reaches a specified low value IR(REC)".
 - ``tb_s = trr - ta`` and ``softness = tb / ta``.
 - ``rrsf``: reverse-recovery softness factor in the JEDEC (JESD24 / JESD282 style) sense,
-  ``|di/dt at t0| / |steepest di/dt after the minimum|``.
+  ``|di/dt at t0| / |steepest di/dt after the minimum|``; both slopes by least squares
+  (:func:`benchrun.analysis.quality.rrsf_slopes`: at t0 over the samples between
+  ``±0.25·min(IF, Irrm)``, after the minimum the largest slope over a sliding window).
 - ``qrr_C``: ``-∫ i dt`` from t0 to t2, t2 being the first instant after the minimum at which
   the current rises through ``-integration_end_fraction·Irrm`` (2 % by default, the integration
   end used in IEC 60747-9 practice).
 - ``err_J``: ``∫ v·i dt`` over the same interval (energy dissipated in the diode).
 - ``didt_A_per_s``: ``(0.5·IF + 0.5·Irrm) / (t_b - t_a)``, t_a the falling crossing of
   ``+0.5·IF``, t_b that of ``-0.5·Irrm``.
-- ``vrm_V``: peak reverse voltage ``max(-v)`` from t0 to ``t2 + trr``.
-- ``vr_V``: steady reverse voltage after the event (median of ``-v`` after that window).
+- ``vrm_V``: peak reverse voltage ``max(-v)`` from t0 until the reverse voltage has settled:
+  to the end of the VR window, ``t2 + trr + max(5·(t2 − t0), 32 samples)``.
+- ``vr_V``: steady reverse voltage over ``t2 + trr`` … the end of that window (mean of ``-v``
+  within 4σ of its median).
+- Qrr / Err window conventions (``integration_window``): see
+  :mod:`benchrun.analysis.conventions`. Offsets: :mod:`benchrun.analysis.baseline`; capture
+  uncertainty ``u``: :mod:`benchrun.analysis.capture_uncertainty`; flags:
+  :mod:`benchrun.analysis.quality`.
 
 Measurement approach (see :mod:`benchrun.analysis.events`): the event is located on a coarse
 strided pass over the whole record; the metrics are measured on a window around it. On noisy
@@ -36,8 +44,8 @@ least-squares lines / parabolas through the samples inside the noise band. On cl
 estimators are plain interpolation and plain sample extrema.
 
 Ringing after the peak: the trr crossings and t2 are the *first* rising crossings after the
-minimum, so later ringing cycles never move them, and VRM is taken over t0 … t2 + trr only
-(as defined above). A non-uniform time array (a variable-step simulator's output) is
+minimum, so later ringing cycles never move them; VRM includes the ringing up to the end of
+the VR window (as defined above). A non-uniform time array (a variable-step simulator's output) is
 resampled onto a uniform grid for the event location and crossings; Qrr and Err are then the
 exact trapezoidal integrals over the given points.
 
