@@ -69,6 +69,11 @@ def test_flag_rules_name_real_flags_and_their_thresholds():
         assert text in row, flag
 
 
+def test_refusal_threshold_in_readme():
+    from benchrun.analysis.measure import MIN_PLATEAU_SNR
+    assert f"a forward plateau under {MIN_PLATEAU_SNR:g} noise sigmas" in README
+
+
 def test_readme_lists_every_flag():
     for name in dir(fl):
         if name.startswith("FLAG_"):

@@ -53,7 +53,7 @@ T0_SLOPE_BAND = 0.25
 
 #: The forward plateau must exceed this many noise sigmas, else the record is refused as noise
 #: (common practice).
-MIN_PLATEAU_SNR = 10.0
+MIN_PLATEAU_SNR = 3.0
 
 _NEED_MORE = object()
 _NEED_LOOKBACK = object()
