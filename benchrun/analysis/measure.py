@@ -182,6 +182,8 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
     if not i_if > 0:
         return None
     noise = max(sigma, i_base.sigma if i_base is not None else 0.0)
+    if FLAG_SHORT_PLATEAU in flags:  # too few plateau samples: the window's own noise
+        noise = max(noise, ev.robust_sigma(iw[:: max(1, n // 4096)]))
     if i_if < MIN_PLATEAU_SNR * noise:
         raise NoEventError(
             f"no forward-current plateau stands out of the noise: the level found "

@@ -341,8 +341,13 @@ def _analyze_record(v: np.ndarray, i: np.ndarray, timebase: TimeBase,
     wanted = opts.commutation if opts.commutation >= 0 else -opts.commutation - 1
     ordered = candidates if opts.commutation >= 0 else candidates[::-1]
     found = 0
+    refused: NoEventError | None = None
     for plateau in ordered:
-        values = measure_plateau_end(plateau, v, i, timebase, opts, zeros)
+        try:
+            values = measure_plateau_end(plateau, v, i, timebase, opts, zeros)
+        except NoEventError as exc:  # not a diode commutation (or noise): try the others
+            refused = refused or exc
+            continue
         if values is None:
             continue
         if found == wanted:
@@ -352,6 +357,8 @@ def _analyze_record(v: np.ndarray, i: np.ndarray, timebase: TimeBase,
         raise NoEventError(
             f"commutation {opts.commutation} requested but the record holds only {found}"
         )
+    if refused is not None:
+        raise refused
     raise NoEventError("the forward current falls but never reverses: no recovery event")
 
 
