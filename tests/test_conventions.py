@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from grading_helpers import COLD, LIMITS_YAML, shot, write_limits
+from grading_helpers import COLD, INPUTS, LIMITS_YAML, shot, write_limits
 from test_analysis_closed_form import LMRamp, double_pulse_record
 
 from benchrun.analysis import RecoveryOptions, analyze_recovery
@@ -54,11 +54,13 @@ def test_mismatch_rules():
 def test_grading_refuses_limits_of_another_convention(tmp_path):
     shots = [shot("S000", COLD, r) for r in range(2)]
     defaults = load_limits(write_limits(tmp_path))
-    assert grade_lot(shots, defaults).devices  # defaults on both sides
+    assert grade_lot(shots, defaults, bench=INPUTS).devices  # defaults on both sides
     with pytest.raises(GradingError, match="the limits assume"):
-        grade_lot(shots, defaults, {"integration_window": "triangle"})
+        grade_lot(shots, defaults, bench=INPUTS,
+                  analysis_options={"integration_window": "triangle"})
     other = load_limits(write_limits(
         tmp_path, LIMITS_YAML + "convention:\n  integration_window: trr_end\n", name="o.yaml"))
     with pytest.raises(GradingError, match="trr end"):
-        grade_lot(shots, other)
-    assert grade_lot(shots, other, {"integration_window": "trr_end"}).devices
+        grade_lot(shots, other, bench=INPUTS)
+    assert grade_lot(shots, other, bench=INPUTS,
+                     analysis_options={"integration_window": "trr_end"}).devices
