@@ -97,14 +97,16 @@ def test_identical_quantised_repeats_keep_the_capture_uncertainty():
     # five identical readings: s = 0, but each shot is known only to its capture u
     budget = metric_budget("qrr_C", {"qrr_C": 2e-6}, {}, INPUTS,
                            repeat_samples=[2e-6] * 5, capture_u=[30e-9] * 5)
-    floor = [c for c in budget.contributors if "floor" in c.name]
-    assert floor and floor[0].contribution == pytest.approx(30e-9 / math.sqrt(5))
+    (capture,) = [c for c in budget.contributors if c.name.startswith("capture")]
+    assert capture.contribution == pytest.approx(30e-9 / math.sqrt(5))
     assert budget.combined >= 30e-9 / math.sqrt(5)
-    # scatter larger than the capture u: the Type A term with n - 1 dof
+    # scatter: the Type A term with n - 1 dof beside the capture term; ν_eff by G.2b
     spread = metric_budget("qrr_C", {"qrr_C": 2e-6}, {}, INPUTS,
                            repeat_samples=[1.8e-6, 2.0e-6, 2.2e-6], capture_u=[30e-9] * 3)
     (term,) = [c for c in spread.contributors if c.name.startswith("repeatability")]
     assert term.dof == 2 and term.contribution == pytest.approx(0.2e-6 / math.sqrt(3))
+    u_a = 0.2e-6 / math.sqrt(3)
+    assert spread.effective_dof == pytest.approx(spread.combined**4 / (u_a**4 / 2), rel=1e-9)
 
 
 def test_single_shot_has_no_type_a_term_and_says_so():
@@ -211,3 +213,16 @@ def test_times_are_insensitive_to_gain_errors():
     items, _ = metric_contributors("trr_s", {"trr_s": 1.8e-7}, ACQ, INPUTS)
     assert {c.input_unit for c in items} == {"s"}
     assert [c.sensitivity for c in items] == [-1.0, 1.0]
+
+
+def test_pooled_repeatability_hand_computed():
+    # groups (1, 3) and (2, 2, 5): Σ(x − x̄)² = 2 + 6 = 8 over ν = 1 + 2 = 3 (ISO 5725-2 pooling)
+    from benchrun.grading.uncertainty import pooled_std
+
+    s_p, nu = pooled_std([[1.0, 3.0], [2.0, 2.0, 5.0], [7.0]])
+    assert nu == 3 and s_p == pytest.approx(math.sqrt(8 / 3))
+    assert pooled_std([[1.0], [2.0]]) is None
+    budget = metric_budget("ta_s", {"ta_s": 1e-7}, {}, INPUTS,
+                           repeat_samples=[1.0e-7, 1.1e-7], pooled=(0.05e-7, 30.0))
+    (term,) = [c for c in budget.contributors if c.name.startswith("repeatability")]
+    assert term.dof == 30 and term.contribution == pytest.approx(0.05e-7 / math.sqrt(2))

@@ -65,6 +65,7 @@ from benchrun.grading.uncertainty import (
     UncertaintyBudget,
     bench_inputs,
     metric_budget,
+    pooled_std,
     rectangular,
     triangular,
     type_a,
@@ -269,6 +270,7 @@ def _aggregate_budget(
     metric: str, limit: MetricLimit, samples: Sequence[float], means: Mapping[str, float],
     acquisition: Mapping[str, float], inputs: InstrumentInputs, spec: LimitsSpec,
     capture_u: Sequence[float] = (),
+    pooled: tuple[float, float] | None = None,
 ) -> tuple[float, UncertaintyBudget]:
     """Value and budget of ``metric`` under its limit's aggregation (mean or worst shot);
     ``capture_u``: each shot's capture uncertainty, the floor of the repeatability term."""
@@ -279,6 +281,7 @@ def _aggregate_budget(
             metric, means, acquisition, inputs,
             repeat_samples=samples,
             capture_u=capture_u,
+            pooled=pooled,
             extra=_extra_contributors(spec.uncertainty.extra, metric, value),
             coverage_factor=k,
             include_repeatability=spec.uncertainty.repeatability,
@@ -293,18 +296,16 @@ def _aggregate_budget(
             notes.append("single shot: repeatability not evaluated (Type A needs n ≥ 2)")
         else:
             s_one = evaluated[0]
-            caps = [u for u in capture_u if math.isfinite(u)]
-            u_cap = math.sqrt(math.fsum(u * u for u in caps) / len(caps)) if caps else 0.0
-            if s_one < u_cap:  # identical quantised repeats: one shot's own u is the floor
-                extra.insert(0, Contributor(
-                    f"repeatability floor of one shot, s = {s_one:.4g} < capture u = "
-                    f"{u_cap:.4g}", "floor: one shot's capture uncertainty (JCGM 100:2008 "
-                    "F.2.2.1)", u_cap, metric_unit(metric) or "1", 1.0))
-            else:
-                extra.insert(0, Contributor(
-                    f"repeatability of one shot, s = {s_one:.4g} from n = {len(samples)} shots",
-                    "Type A, s of a single reading, ν = n − 1 (JCGM 100:2008 §4.2.2)", s_one,
-                    metric_unit(metric) or "1", 1.0, dof=float(len(samples) - 1)))
+            extra.insert(0, Contributor(
+                f"repeatability of one shot, s = {s_one:.4g} from n = {len(samples)} shots",
+                "Type A, s of a single reading, ν = n − 1 (JCGM 100:2008 §4.2.2)", s_one,
+                metric_unit(metric) or "1", 1.0, dof=float(len(samples) - 1)))
+    caps = [u for u in capture_u if math.isfinite(u)]
+    if caps:  # one shot's own capture uncertainty (identical quantised repeats: s = 0)
+        u_cap = math.sqrt(math.fsum(u * u for u in caps) / len(caps))
+        extra.insert(0, Contributor(
+            f"capture (noise, quantisation, timing) of one shot, ū = {u_cap:.4g}",
+            "Type B, from the capture itself", u_cap, metric_unit(metric) or "1", 1.0))
     budget = metric_budget(metric, at_value, acquisition, inputs, extra=extra,
                            coverage_factor=k, include_repeatability=False)
     return value, replace(budget, notes=(*notes, *budget.notes))
@@ -372,6 +373,7 @@ def _grade_device(
     points: Mapping[str, TestPoint | None],
     rule: DecisionRule,
     inputs: InstrumentInputs,
+    pooled: Mapping[tuple[str, str], tuple[float, float]] | None = None,
 ) -> tuple[DeviceGrade, dict[str, dict[str, list[float]]], dict[str, dict[str, float]]]:
     k = spec.uncertainty.coverage_factor
     grades: list[MetricGrade] = []
@@ -427,7 +429,8 @@ def _grade_device(
                 continue
             value, budget = _aggregate_budget(metric, limit, samples[metric], means,
                                               acquisition, inputs, spec,
-                                              _capture_u(valid, metric))
+                                              _capture_u(valid, metric),
+                                              (pooled or {}).get((name, metric)))
             label = _label(metric, name)
             if limit.combine == "worst":
                 label = f"{metric} (worst shot) at {name}"
@@ -635,9 +638,22 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
     devices: list[DeviceGrade] = []
     samples: dict[str, dict[str, dict[str, list[float]]]] = {}
     acquisitions: dict[str, dict[str, dict[str, float]]] = {}
+    # repeatability pooled over the devices at each condition (within-device scatter,
+    # ν = Σ(n_i − 1)): two repeats of one device alone give ν = 1 and a t factor of 14
+    first = {serial: _grade_device(serial, by_serial[serial], limits, points, rule, inputs)
+             for serial in serials}
+    pooled: dict[tuple[str, str], tuple[float, float]] = {}
+    for condition in limits.conditions:
+        metrics = {m for _, found, _ in first.values() for m in found.get(condition.name, {})}
+        for metric in metrics:
+            groups = [found[condition.name][metric] for _, found, _ in first.values()
+                      if metric in found.get(condition.name, {})]
+            value = pooled_std(groups)
+            if value is not None:
+                pooled[(condition.name, metric)] = value
     for serial in serials:
         device, device_samples, device_acq = _grade_device(
-            serial, by_serial[serial], limits, points, rule, inputs)
+            serial, by_serial[serial], limits, points, rule, inputs, pooled)
         devices.append(device)
         samples[serial] = device_samples
         acquisitions[serial] = device_acq

@@ -27,7 +27,7 @@ Input quantities and their standard uncertainties
 - *Deskew*: residual skew between the voltage and current channels within ``±a``,
   rectangular, ``u = a/√3``.
 - *Repeatability* (Type A, §4.2.3): experimental standard deviation of the mean of the
-  ``n`` repeated shots, ``s/√n`` with ν = n − 1; floored by each shot's own capture
+  ``n`` repeated shots, ``s/√n`` with ν = n − 1, combined with the shots' own capture
   uncertainty ``ū/√n`` (noise, quantisation, timing: identical quantised repeats, s = 0, are
   not "no uncertainty"); a single shot carries its capture uncertainty ``ū``
   (:func:`repeatability`).
@@ -232,38 +232,60 @@ def make_budget(
 
 
 _TYPE_A = "Type A, s/√n, ν = n − 1 (JCGM 100:2008 §4.2.3, G.3.3)"
-_FLOOR = ("floor: repeats closer than one shot's capture uncertainty resolve; "
-          "mean capture u/√n (JCGM 100:2008 F.2.2.1 for identical quantised readings)")
+_CAPTURE = ("Type B, from the capture itself, ū/√n (identical quantised readings: "
+            "JCGM 100:2008 F.2.2.1)")
 
 
-def repeatability(samples: Sequence[float], capture_u: Sequence[float], unit: str
+def pooled_std(groups: Sequence[Sequence[float]]) -> tuple[float, float] | None:
+    """Pooled within-group standard deviation and its degrees of freedom,
+    ``s_p² = ΣΣ(x_ij − x̄_i)² / Σ(n_i − 1)``, ν = Σ(n_i − 1) (ISO 5725-2 repeatability;
+    JCGM 100:2008 H.3.6 for pooled estimates). None when no group has two values."""
+    ss, dof = 0.0, 0
+    for group in groups:
+        if len(group) >= 2:
+            mean = math.fsum(group) / len(group)
+            ss += math.fsum((x - mean) ** 2 for x in group)
+            dof += len(group) - 1
+    return (math.sqrt(ss / dof), float(dof)) if dof else None
+
+
+def repeatability(samples: Sequence[float], capture_u: Sequence[float], unit: str,
+                  pooled: tuple[float, float] | None = None
                   ) -> tuple[list[Contributor], list[str]]:
-    """Repeatability and capture contributors of a mean of repeated shots.
+    """Repeatability and capture contributors of a mean of ``n`` repeated shots.
 
-    - ``s/√n`` with ν = n − 1 (Type A) when ``s`` exceeds the mean capture uncertainty ``ū``
-      of one shot (noise, quantisation, timing of the shot itself,
-      :mod:`benchrun.analysis.capture_uncertainty`): the scatter already contains it.
-    - otherwise ``ū/√n`` (ν = ∞): identical or nearly identical quantised repeats (s = 0)
-      do not mean no uncertainty; each shot is only known to ``ū``.
-    - a single shot: ``ū`` alone (no Type A).
+    - ``s/√n`` with ν = n − 1 (Type A, §4.2.3, G.3.3);
+    - combined with the shots' own capture uncertainty ``ū/√n`` (ν = ∞; ``ū`` the rms of
+      the shots' ``u``: noise, quantisation, timing, :mod:`benchrun.analysis.capture_uncertainty`),
+      so identical quantised repeats (s = 0) keep the uncertainty each shot is known to,
+      and the budget changes smoothly with s (the capture term is partly inside s as well:
+      conservative by at most a factor √2 when s ≈ ū);
+    - a single shot: ``ū`` alone.
     """
     notes: list[str] = []
     caps = [float(u) for u in capture_u if u is not None and math.isfinite(float(u))]
     u_bar = math.sqrt(math.fsum(u * u for u in caps) / len(caps)) if caps else None
     n = len(samples)
+    items: list[Contributor] = []
     evaluated = type_a([float(x) for x in samples])
-    if evaluated is None:
-        if u_bar is not None:
-            return [Contributor("capture (noise, quantisation, timing) of the single shot",
-                                "Type B, from the capture itself", u_bar, unit, 1.0)], notes
+    if pooled is not None and n >= 1:
+        s_p, nu = pooled
+        items.append(Contributor(
+            f"repeatability, pooled s = {s_p:.4g} (ν = {nu:g}) over n = {n}",
+            "Type A, pooled s/√n, ν = Σ(n_i − 1) (JCGM 100:2008 §4.2.3, H.3.6)",
+            s_p / math.sqrt(n), unit, 1.0, dof=nu))
+    elif evaluated is None:
         notes.append("single shot: repeatability not evaluated (Type A needs n ≥ 2)")
-        return [], notes
-    s, u_mean = evaluated
-    if u_bar is not None and s < u_bar:
-        return [Contributor(f"repeatability floor, s = {s:.4g} < capture u = {u_bar:.4g} "
-                            f"over n = {n}", _FLOOR, u_bar / math.sqrt(n), unit, 1.0)], notes
-    return [Contributor(f"repeatability, s = {s:.4g} over n = {n}", _TYPE_A, u_mean, unit,
-                        1.0, dof=float(n - 1))], notes
+    else:
+        s, u_mean = evaluated
+        items.append(Contributor(f"repeatability, s = {s:.4g} over n = {n}", _TYPE_A, u_mean,
+                                 unit, 1.0, dof=float(n - 1)))
+    if u_bar is not None:
+        count = max(n, 1)
+        items.append(Contributor(
+            f"capture (noise, quantisation, timing), ū = {u_bar:.4g} over n = {count}",
+            _CAPTURE, u_bar / math.sqrt(count), unit, 1.0))
+    return items, notes
 
 
 @dataclass(frozen=True)
@@ -530,6 +552,7 @@ def metric_budget(
     coverage_factor: float = 2.0,
     include_repeatability: bool = True,
     capture_u: Sequence[float] = (),
+    pooled: tuple[float, float] | None = None,
 ) -> UncertaintyBudget:
     """Full GUM budget of one metric value.
 
@@ -549,8 +572,11 @@ def metric_budget(
     include_repeatability
         Whether to evaluate the Type A term.
     capture_u
-        Each repeated shot's capture uncertainty of the metric (``u`` of the analysis):
-        the floor of the repeatability term (:func:`repeatability`).
+        Each repeated shot's capture uncertainty of the metric (``u`` of the analysis),
+        combined with the repeatability term (:func:`repeatability`).
+    pooled
+        ``(s_p, ν)`` from :func:`pooled_std` over the lot's devices at the condition: used
+        instead of the device's own s (more degrees of freedom, a smaller t factor).
     """
     contributors, notes = metric_contributors(metric, values, acquisition, inputs)
     unit = metric_unit(metric) or "1"
@@ -562,7 +588,7 @@ def metric_budget(
                     f"repeatability, pooled s = {s:.4g} over n = {n}",
                     "Type A, s/√n (JCGM 100:2008 §4.2.3)", s / math.sqrt(n), unit, 1.0))
         else:
-            items, more = repeatability(list(repeat_samples), capture_u, unit)
+            items, more = repeatability(list(repeat_samples), capture_u, unit, pooled)
             contributors.extend(items)
             notes.extend(more)
     contributors.extend(extra)
