@@ -14,8 +14,8 @@ Input quantities and their standard uncertainties
 -------------------------------------------------
 - *Channel gain, scope vertical accuracy.* Specified as ``±acc`` of full scale ``FS``: the
   reading error is bounded by ``a = acc·FS`` (A or V), rectangular (§4.3.7: u = a/√3). The
-  offset is removed from the pre-event baseline by the analysis, so the error acts as a gain
-  error; relative to the largest reading ``X_ref`` the metric is taken from it is bounded by
+  offset is removed by the analysis (:mod:`benchrun.analysis.baseline`), so the error acts as a
+  gain error; relative to the largest reading ``X_ref`` the metric is taken from it is bounded by
   ``a/X_ref``. Input: the relative gain error δ, ``u(δ) = (a/X_ref)/√3``.
 - *Sensor scale tolerance* (shunt or current probe; voltage probe attenuation): relative bound
   ``p``, rectangular, ``u(δ) = p/√3``.
