@@ -48,7 +48,8 @@ def capture_csv(tmp_path):
 def test_cli_json(capture_csv, capsys):
     assert main(["analyze", str(capture_csv), "--json"]) == 0
     data = json.loads(capsys.readouterr().out)
-    assert set(data) == {*RecoveryMetrics.metric_keys(), "flags"}
+    assert set(data) == {*RecoveryMetrics.metric_keys(), "flags", "u", "corrections"}
+    assert set(data["u"]) == set(RecoveryMetrics.metric_keys())
     assert data["qrr_C"] == pytest.approx(REF["qrr_C"], rel=0.005)
     assert data["irrm_A"] == pytest.approx(REF["irrm_A"], rel=0.01)
 
@@ -64,7 +65,7 @@ def test_cli_table_and_named_columns(tmp_path, capsys):
 
 def test_cli_subprocess_exit_code(tmp_path):
     path = tmp_path / "bad.csv"
-    path.write_text("t,v,i\n" + "\n".join(f"{k},0,0" for k in range(40)))
+    path.write_text("t,v,i\n" + "\n".join(f"{k * 1e-9},0,0" for k in range(40)))
     proc = subprocess.run([sys.executable, "-m", "benchrun.cli", "analyze", str(path)],
                           capture_output=True, text=True, timeout=60)
     assert proc.returncode != 0

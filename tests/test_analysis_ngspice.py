@@ -103,7 +103,7 @@ MEASURES = [
     "meas tran err integ pwr from=$&t0 to=$&t2",
     "let vneg = -v(a,kk)",
     "let tvend = t2 + t25 + (t25 - t90)*0.25/0.65 - t0",
-    "meas tran vrm max vneg from=$&t0 to=$&tvend",
+    f"meas tran vrm max vneg from=$&t0 to={STOP}",  # until settled (record end)
 ]
 
 CIRCUITS = {"tt": TT_DIODE, "lauritzen_ma": LM_DIODE, "capacitive": CAPACITIVE_DIODE}
@@ -171,7 +171,9 @@ def test_clean_capture_matches_ngspice_meas(simulations, name):
     assert got["t2_s"] == pytest.approx(ref["t2_s"], abs=max(0.02 * (ref["t2_s"] - ref["t0_s"]),
                                                              0.2e-9))
     assert got["vr_V"] == pytest.approx(400.0, rel=0.01)  # the bus voltage
-    assert not set(result.flags) - {"few_samples_in_ta"}
+    # snap / ringing describe these SPICE diodes (abrupt TT recovery, LC ringing), not the
+    # capture
+    assert not set(result.flags) - {"few_samples_in_ta", "snap", "ringing"}
 
 
 @pytest.mark.parametrize("name", list(CIRCUITS))

@@ -145,6 +145,10 @@ CIRCUITS = {
 ALTERNATIVE = (0.75, 0.5, 0.1)  # other extrapolation fractions and integration end
 
 
+#: Flags that describe the recovery itself (abrupt, ringing, capacitive), not the capture.
+DEVICE_FLAGS = {"snap", "ringing", "trr_beyond_integration"}
+
+
 def measures(ton: float, stop: float) -> list[str]:
     """ngspice meas lines: the definitions of DESIGN.md §3, plus alternative fractions."""
     lines = [
@@ -170,7 +174,7 @@ def measures(ton: float, stop: float) -> list[str]:
             f"meas tran qrr{tag} integ i(vsense) from=$&t0 to=$&t2{tag}",
             f"meas tran err{tag} integ pwr from=$&t0 to=$&t2{tag}",
             f"let tvend{tag} = t2{tag} + tl{tag} + (tl{tag} - th{tag})*{low}/{high - low} - t0",
-            f"meas tran vrm{tag} max vneg from=$&t0 to=$&tvend{tag}",
+            f"meas tran vrm{tag} max vneg from=$&t0 to={stop}",  # until settled (record end)
         ]
     return lines
 
@@ -253,7 +257,8 @@ def test_simulator_points_match_ngspice_meas(sims, name):
     sim, _ = sims[name]
     got = analyze_recovery(*waves(sim))
     check(got.to_dict(), reference(sim), label=name)
-    assert got.flags == ()
+    # flags that describe the device, not a doubtful capture, may appear (README metrics)
+    assert {f.split(":")[0] for f in got.flags} <= DEVICE_FLAGS
 
 
 # Sampling rate sweep on the clean waveforms. At 1 GS/s a sub-nanosecond snap cannot be
@@ -474,7 +479,9 @@ def test_snap_spike_in_vrm_is_kept(sims):
         lo, hi = np.searchsorted(t, [sim.measures["t0"], sim.measures["t2"] + 50e-9])
         sampled_peak = float(-v[lo:hi].min())
         got = analyze_recovery(t, v, i)
-        assert got.vrm_V == pytest.approx(sampled_peak, rel=1e-6), rate
+        # the voltage is zeroed before the first pulse (benchrun.analysis.baseline)
+        offset = got.corrections["voltage_offset_V"]
+        assert got.vrm_V == pytest.approx(sampled_peak + offset, rel=1e-6), rate
         assert math.isclose(got.vrm_V, sim.measures["vrm"], rel_tol=0.02)
 
 

@@ -6,6 +6,7 @@ import math
 
 import numpy as np
 import pytest
+from scipy import stats
 
 from benchrun.grading.uncertainty import (
     Contributor,
@@ -70,14 +71,42 @@ def test_qrr_budget_hand_computed():
     # shunt: 1 %/√3 = 0.0057735, c = 2 µC → 11.547 nC
     # t2:    1 ns/√12 = 0.288675 ns, c = 0.02·18 A = 0.36 A → 0.10392 nC
     # Type A: s = 28.284 nC, s/√2 = 20.000 nC
-    # u_c = sqrt(76.980² + 11.547² + 0.10392² + 20²) nC = 80.3696 nC; U = 160.739 nC
+    # u_c = sqrt(76.980² + 11.547² + 0.10392² + 20²) nC = 80.3696 nC
+    # Welch-Satterthwaite (JCGM 100:2008 G.4.1): ν_eff = 80.3696⁴ / (20⁴ / 1) = 260.76;
+    # k = t quantile at 95.45 % for 260.76 dof (G.3.4; scipy.stats.t) = 2.0096
     values = {"qrr_C": 2.0e-6, "irrm_A": 18.0}
     budget = metric_budget("qrr_C", values, ACQ, INPUTS, repeat_samples=[1.98e-6, 2.02e-6])
     contributions = sorted(c.contribution for c in budget.contributors)
     assert contributions == pytest.approx([1.0392305e-10, 1.1547005e-08, 2.0e-08, 7.6980036e-08])
     assert budget.combined == pytest.approx(8.036958e-08, rel=1e-6)
-    assert budget.expanded == pytest.approx(1.6073917e-07, rel=1e-6)
-    assert budget.coverage_factor == 2.0
+    assert budget.effective_dof == pytest.approx(80.3696**4 / 20**4, rel=1e-4)
+    k = stats.t.ppf(0.5 * (1 + math.erf(2 / math.sqrt(2))), 80.3696**4 / 20**4)
+    assert budget.coverage_factor == pytest.approx(k, rel=1e-4)
+    assert budget.expanded == pytest.approx(k * 8.036958e-08, rel=1e-4)
+
+
+def test_few_repeats_widen_the_coverage_factor():
+    # three repeats dominating the budget: ν_eff ≈ 2, k = t(95.45 %, 2) = 4.53 (GUM Table G.2)
+    budget = metric_budget("ta_s", {"ta_s": 1e-7}, {}, INPUTS,
+                           repeat_samples=[1.0e-7, 1.1e-7, 0.9e-7])
+    assert budget.effective_dof == pytest.approx(2.0)
+    assert budget.coverage_factor == pytest.approx(4.53, abs=0.01)
+
+
+def test_identical_quantised_repeats_keep_the_capture_uncertainty():
+    # five identical readings: s = 0, but each shot is known only to its capture u
+    budget = metric_budget("qrr_C", {"qrr_C": 2e-6}, {}, INPUTS,
+                           repeat_samples=[2e-6] * 5, capture_u=[30e-9] * 5)
+    (capture,) = [c for c in budget.contributors if c.name.startswith("capture")]
+    assert capture.contribution == pytest.approx(30e-9 / math.sqrt(5))
+    assert budget.combined >= 30e-9 / math.sqrt(5)
+    # scatter: the Type A term with n - 1 dof beside the capture term; ν_eff by G.2b
+    spread = metric_budget("qrr_C", {"qrr_C": 2e-6}, {}, INPUTS,
+                           repeat_samples=[1.8e-6, 2.0e-6, 2.2e-6], capture_u=[30e-9] * 3)
+    (term,) = [c for c in spread.contributors if c.name.startswith("repeatability")]
+    assert term.dof == 2 and term.contribution == pytest.approx(0.2e-6 / math.sqrt(3))
+    u_a = 0.2e-6 / math.sqrt(3)
+    assert spread.effective_dof == pytest.approx(spread.combined**4 / (u_a**4 / 2), rel=1e-9)
 
 
 def test_single_shot_has_no_type_a_term_and_says_so():
@@ -184,3 +213,16 @@ def test_times_are_insensitive_to_gain_errors():
     items, _ = metric_contributors("trr_s", {"trr_s": 1.8e-7}, ACQ, INPUTS)
     assert {c.input_unit for c in items} == {"s"}
     assert [c.sensitivity for c in items] == [-1.0, 1.0]
+
+
+def test_pooled_repeatability_hand_computed():
+    # groups (1, 3) and (2, 2, 5): Σ(x − x̄)² = 2 + 6 = 8 over ν = 1 + 2 = 3 (ISO 5725-2 pooling)
+    from benchrun.grading.uncertainty import pooled_std
+
+    s_p, nu = pooled_std([[1.0, 3.0], [2.0, 2.0, 5.0], [7.0]])
+    assert nu == 3 and s_p == pytest.approx(math.sqrt(8 / 3))
+    assert pooled_std([[1.0], [2.0]]) is None
+    budget = metric_budget("ta_s", {"ta_s": 1e-7}, {}, INPUTS,
+                           repeat_samples=[1.0e-7, 1.1e-7], pooled=(0.05e-7, 30.0))
+    (term,) = [c for c in budget.contributors if c.name.startswith("repeatability")]
+    assert term.dof == 30 and term.contribution == pytest.approx(0.05e-7 / math.sqrt(2))

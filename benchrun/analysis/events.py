@@ -41,6 +41,8 @@ MIN_PLATEAU_FRACTION = 0.2
 BAND_CAP = 4096
 #: Cap on the samples either side of a crossing used for its least-squares line.
 CROSSING_CAP = 64
+#: √12: a reading quantised to steps δ has standard uncertainty δ/√12 (GUM F.2.2.1).
+SQRT12 = math.sqrt(12.0)
 
 
 @dataclass(frozen=True)
@@ -173,7 +175,11 @@ def scan_plateaus(i: np.ndarray) -> PlateauScan:
         return result([])
     # a plateau carries a sizeable part of the largest plateau's charge (level × duration);
     # ringing lobes and spikes above the hysteresis thresholds do not
-    largest = max(lv * (e - s) for s, e, lv in runs)
+    # the reference is the largest run complete in the record: a run cut by the record's
+    # start or end (a long capture after the second pulse freewheels again to its end) may
+    # hold any charge and would hide the freewheel plateau of the commutation
+    complete = [lv * (e - s) for s, e, lv in runs if s > 0 and e < coarse.size]
+    largest = max(complete) if complete else max(lv * (e - s) for s, e, lv in runs)
     runs = [(s, e, lv) for s, e, lv in runs
             if e - s >= 1 and lv * (e - s) >= MIN_PLATEAU_FRACTION * largest]
     plateaus = []
@@ -281,6 +287,21 @@ def crossing_time(
     time, slope
         Crossing instant and the local slope dx/dt there.
     """
+    tc, slope, _ = crossing_fit(t, x, s, k, level, band)
+    return tc, slope
+
+
+def crossing_fit(
+    t: np.ndarray, x: np.ndarray, s: np.ndarray, k: int, level: float, band: float
+) -> tuple[float, float, int]:
+    """:func:`crossing_time` with the number of raw samples behind the estimate.
+
+    Returns ``(time, slope, count)``: ``count`` is the number of samples of the least-squares
+    line, or 0 for plain interpolation. With white noise of standard deviation σ the instant's
+    standard uncertainty is ``σ / (|slope|·√count)`` (the line's value at the centre of its
+    samples has variance σ²/count, converted to time by the slope; the crossing lies close to
+    that centre) — :mod:`benchrun.analysis.capture_uncertainty`.
+    """
     k = int(min(max(k, 1), x.size - 1))
     if band > 0.0:
         lo, hi = _band_extent(s, k - 1, k, lambda y: np.abs(y - level) <= band)
@@ -292,14 +313,14 @@ def crossing_time(
             if slope != 0.0:
                 tc = t_mid + (level - intercept) / slope
                 if tt[0] - (t[k] - t[k - 1]) <= tc <= tt[-1] + (t[k] - t[k - 1]):
-                    return float(tc), float(slope)
+                    return float(tc), float(slope), int(hi - lo + 1)
     y0, y1 = s[k - 1], s[k]
     t0, t1 = t[k - 1], t[k]
     if y1 == y0:
-        return float(t1), 0.0
+        return float(t1), 0.0, 0
     frac = (level - y0) / (y1 - y0)
     frac = min(max(frac, 0.0), 1.0)
-    return float(t0 + frac * (t1 - t0)), float((y1 - y0) / (t1 - t0))
+    return float(t0 + frac * (t1 - t0)), float((y1 - y0) / (t1 - t0)), 0
 
 
 def extremum(
@@ -338,6 +359,27 @@ def extremum(
     -------
     time, value
     """
+    tx, value, _, _ = extremum_fit(t, x, locators, sigma, half_width)
+    return tx, value
+
+
+def extremum_fit(
+    t: np.ndarray,
+    x: np.ndarray,
+    locators: list[tuple[np.ndarray, int, float, int]],
+    sigma: float,
+    half_width: int,
+) -> tuple[float, float, float, float]:
+    """:func:`extremum` with the standard uncertainties of its value and instant.
+
+    Returns ``(time, value, u_value, u_time)`` from white noise σ: for an accepted cubic fit
+    the least-squares covariance σ²·(XᵀX)⁻¹ propagated to the fitted value and (through
+    ``δu* = −δp'(u*)/p''(u*)``) to the stationary point; for the median of ``m`` samples
+    ``1.2533·σ/√m`` (the median's efficiency for normal data) and the locator's half-width as a
+    rectangular bound on the instant; for a single raw sample σ and ``Δt/√12``. Clean data:
+    value 0, instant ``Δt/√12``.
+    """
+    dt_local = float(t[1] - t[0]) if t.size > 1 else 0.0
     for s, k, band, smear in locators if sigma > 0.0 else ():
         floor = s[k] + band
         lo, hi = _band_extent(s, k, k, lambda y, f=floor: y <= f)
@@ -366,8 +408,21 @@ def extremum(
         # a genuine peak rises by about the band at the region's edges; a near-flat fit means
         # the band caught a plateau with a small bump on it, which a fit cannot locate
         rise = min(np.polyval(coef, -1.0), np.polyval(coef, 1.0)) - xv
-        if np.polyval(np.polyder(coef, 2), uv) > 0.0 and rise >= 0.25 * band:
-            return float(t_mid + uv * t_half), xv
+        curvature = np.polyval(np.polyder(coef, 2), uv)
+        if curvature > 0.0 and rise >= 0.25 * band:
+            design = np.vander(u, 4)
+            cov = sigma * sigma * np.linalg.pinv(design.T @ design)
+            xvec = np.array([uv**3, uv**2, uv, 1.0])
+            dvec = np.array([3.0 * uv**2, 2.0 * uv, 1.0, 0.0])
+            # residual variance beyond the noise: the cubic does not quite describe the peak
+            # (a corner); its size bounds the model error of the value, and the instant moves
+            # by as much as the fitted peak is that flat
+            excess = math.sqrt(max(rss / dof - sigma * sigma, 0.0))
+            u_value = math.hypot(math.sqrt(max(float(xvec @ cov @ xvec), 0.0)), excess)
+            u_time = math.hypot(math.sqrt(max(float(dvec @ cov @ dvec), 0.0)) / curvature,
+                                math.sqrt(2.0 * excess / curvature)) * t_half
+            return float(t_mid + uv * t_half), xv, u_value, math.hypot(u_time,
+                                                                       dt_local / SQRT12)
     s, k, _, _ = locators[-1]
     if sigma > 0.0 and half_width > 0:
         # median of the samples under the narrow locator: no selection of the noisiest sample;
@@ -378,12 +433,13 @@ def extremum(
         j = lo + int(np.argmin(x[lo:hi]))
         median = float(np.median(x[lo:hi]))
         if x[j] < median - 4.0 * sigma:
-            return float(t[j]), float(x[j])
-        return float(t[k]), median
+            return float(t[j]), float(x[j]), sigma, dt_local / SQRT12
+        return (float(t[k]), median, 1.2533 * sigma / math.sqrt(hi - lo),
+                max(half_width, 0.5) * dt_local / math.sqrt(3.0))
     lo = max(0, k - half_width)
     hi = min(x.size, k + half_width + 1)
     j = lo + int(np.argmin(x[lo:hi]))
-    return float(t[j]), float(x[j])
+    return float(t[j]), float(x[j]), 0.0, dt_local / SQRT12
 
 
 def integrate(t: np.ndarray, y: np.ndarray, t_from: float, t_to: float) -> float:
@@ -401,6 +457,21 @@ def integrate(t: np.ndarray, y: np.ndarray, t_from: float, t_to: float) -> float
     tt = np.concatenate(([t_from], t[a:b], [t_to]))
     yy = np.concatenate(([y_from], y[a:b], [y_to]))
     return float(np.sum((yy[1:] + yy[:-1]) * np.diff(tt)) * 0.5)
+
+
+def level_of(x: np.ndarray, sigma: float) -> float:
+    """Level of a plateau: the mean of the samples within 4σ of their median.
+
+    Unlike the median it is not pulled to an ADC code on quantised, noisy data (the noise
+    dithers the codes; the mean of dithered codes is unbiased), and spikes beyond 4σ do not
+    count (common practice). With σ = 0 it is the median.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    median = float(np.median(x))
+    if sigma <= 0.0 or x.size < 8:
+        return median
+    kept = x[np.abs(x - median) <= 4.0 * sigma]
+    return float(kept.mean()) if kept.size else median
 
 
 #: Width of the moving average a plateau is detrended with before its noise is measured.

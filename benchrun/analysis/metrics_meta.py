@@ -53,14 +53,15 @@ _TABLE = (
      "points set by the test specification)"),
     ("softness", "", "S", "softness tb/ta"),
     ("rrsf", "", "RRSF",
-     "reverse-recovery softness factor |di/dt at t0| / |steepest di/dt after the peak| "
-     "(JEDEC style)"),
+     "reverse-recovery softness factor |di/dt at t0| / |steepest di/dt after the peak|, "
+     "least-squares slopes (JEDEC style)"),
     ("qrr_C", "C", "Qrr",
      "recovered charge -∫i dt from t0 to the 2 % point after the peak (IEC 60747-9 practice)"),
     ("err_J", "J", "Err", "reverse-recovery energy ∫v·i dt from t0 to the 2 % point"),
     ("didt_A_per_s", "A/s", "di/dt",
      "commutation slope (0.5·IF + 0.5·Irrm) / (t(-0.5·Irrm) - t(+0.5·IF))"),
-    ("vrm_V", "V", "VRM", "peak reverse voltage from t0 to t2 + trr"),
+    ("vrm_V", "V", "VRM", "peak reverse voltage from t0 until the reverse voltage has settled "
+     "(end of the VR window)"),
     ("vr_V", "V", "VR", "steady reverse voltage after the recovery"),
     ("t_irrm_s", "s", "t(Irrm)", "absolute instant of the reverse-current peak"),
     ("t_trr_s", "s", "t(trr)", "absolute instant at which trr ends"),

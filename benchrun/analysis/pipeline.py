@@ -30,6 +30,9 @@ from benchrun.errors import ConfigError, InputDataError
 if TYPE_CHECKING:
     from benchrun.analysis.switching import SwitchingMetrics
 
+#: Key prefix of a metric's capture uncertainty among a shot's metrics (``u_qrr_C``).
+CAPTURE_U_PREFIX = "u_"
+
 #: Channel names the pipeline knows.
 DIODE_VOLTAGE = "diode_voltage"
 DIODE_CURRENT = "diode_current"
@@ -58,10 +61,13 @@ class ChannelData:
 @dataclass(frozen=True)
 class ProbeCalibration:
     """Probe or sensor: physical value = channel volts × ``scale`` (V/V or A/V), moved
-    ``deskew_s`` earlier in time to compensate the probe's delay."""
+    ``deskew_s`` earlier in time to compensate the probe's delay; ``rise_time_s`` the 10-90 %
+    rise time of probe and channel (≈ 0.35 / bandwidth), when known (recorded in the result's
+    ``corrections``; ``rise_time_limited`` flag)."""
 
     scale: float
     deskew_s: float = 0.0
+    rise_time_s: float | None = None
 
 
 def clip_flag(name: str) -> str:
@@ -76,7 +82,8 @@ def _numeric_items(result: Any) -> dict[str, Any]:
         data = asdict(result)
     else:
         data = dict(result)
-    data.pop("flags", None)
+    for key in ("flags", "u", "corrections"):
+        data.pop(key, None)
     return data
 
 
@@ -100,10 +107,14 @@ class ShotAnalysis:
     flags: tuple[str, ...] = field(default=())
 
     def metrics(self) -> dict[str, float | None]:
-        """All numeric keys of the recovery and switching results, merged."""
+        """All numeric keys of the recovery and switching results, merged, and the capture
+        uncertainty of each recovery metric as ``u_<key>`` (:data:`CAPTURE_U_PREFIX`)."""
         out = _numeric_items(self.recovery)
         if self.switching is not None:
             out.update(_numeric_items(self.switching))
+        for key, u in self.recovery.u.items():
+            if u is not None:
+                out[CAPTURE_U_PREFIX + key] = u
         return out
 
 
@@ -171,9 +182,19 @@ def analyze_channels(
             physical[name], conditioning_flags[name] = physical_channel(
                 name, dt, channels[name], probes[name]
             )
+    opts = options or RecoveryOptions()
+    opts = replace(opts,
+                   voltage_rise_time_s=probes[DIODE_VOLTAGE].rise_time_s
+                   or opts.voltage_rise_time_s,
+                   current_rise_time_s=probes[DIODE_CURRENT].rise_time_s
+                   or opts.current_rise_time_s)
     recovery = analyze_recovery(
-        None, physical[DIODE_VOLTAGE], physical[DIODE_CURRENT], options, dt=dt, t_start=t_start
+        None, physical[DIODE_VOLTAGE], physical[DIODE_CURRENT], opts, dt=dt, t_start=t_start
     )
+    recovery = replace(recovery, corrections={
+        **recovery.corrections,
+        "deskew_s": {name: probes[name].deskew_s for name in physical},
+    })
     diode_flags = conditioning_flags[DIODE_VOLTAGE] + conditioning_flags[DIODE_CURRENT]
     if diode_flags:
         recovery = replace(recovery, flags=_merge_flags(diode_flags, recovery.flags))

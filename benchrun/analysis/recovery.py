@@ -18,15 +18,23 @@ Definitions (all results positive magnitudes, SI units; times by linear interpol
   reaches a specified low value IR(REC)".
 - ``tb_s = trr - ta`` and ``softness = tb / ta``.
 - ``rrsf``: reverse-recovery softness factor in the JEDEC (JESD24 / JESD282 style) sense,
-  ``|di/dt at t0| / |steepest di/dt after the minimum|``.
+  ``|di/dt at t0| / |steepest di/dt after the minimum|``; both slopes by least squares
+  (:func:`benchrun.analysis.quality.rrsf_slopes`: at t0 over the samples between
+  ``±0.25·min(IF, Irrm)``, after the minimum the largest slope over a sliding window).
 - ``qrr_C``: ``-∫ i dt`` from t0 to t2, t2 being the first instant after the minimum at which
   the current rises through ``-integration_end_fraction·Irrm`` (2 % by default, the integration
   end used in IEC 60747-9 practice).
 - ``err_J``: ``∫ v·i dt`` over the same interval (energy dissipated in the diode).
 - ``didt_A_per_s``: ``(0.5·IF + 0.5·Irrm) / (t_b - t_a)``, t_a the falling crossing of
   ``+0.5·IF``, t_b that of ``-0.5·Irrm``.
-- ``vrm_V``: peak reverse voltage ``max(-v)`` from t0 to ``t2 + trr``.
-- ``vr_V``: steady reverse voltage after the event (median of ``-v`` after that window).
+- ``vrm_V``: peak reverse voltage ``max(-v)`` from t0 until the reverse voltage has settled:
+  to the end of the VR window, ``t2 + trr + max(5·(t2 − t0), 32 samples)``.
+- ``vr_V``: steady reverse voltage over ``t2 + trr`` … the end of that window (mean of ``-v``
+  within 4σ of its median).
+- Qrr / Err window conventions (``integration_window``): see
+  :mod:`benchrun.analysis.conventions`. Offsets: :mod:`benchrun.analysis.baseline`; capture
+  uncertainty ``u``: :mod:`benchrun.analysis.capture_uncertainty`; flags:
+  :mod:`benchrun.analysis.quality`.
 
 Measurement approach (see :mod:`benchrun.analysis.events`): the event is located on a coarse
 strided pass over the whole record; the metrics are measured on a window around it. On noisy
@@ -36,8 +44,8 @@ least-squares lines / parabolas through the samples inside the noise band. On cl
 estimators are plain interpolation and plain sample extrema.
 
 Ringing after the peak: the trr crossings and t2 are the *first* rising crossings after the
-minimum, so later ringing cycles never move them, and VRM is taken over t0 … t2 + trr only
-(as defined above). A non-uniform time array (a variable-step simulator's output) is
+minimum, so later ringing cycles never move them; VRM includes the ringing up to the end of
+the VR window (as defined above). A non-uniform time array (a variable-step simulator's output) is
 resampled onto a uniform grid for the event location and crossings; Qrr and Err are then the
 exact trapezoidal integrals over the given points.
 
@@ -51,18 +59,27 @@ It only warns. ``few_samples_in_ta`` (same count, ta only) is kept as it was.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import asdict, dataclass, field, fields, replace
 from typing import Any
 
 import numpy as np
 
+from benchrun.analysis import baseline as bl
 from benchrun.analysis import events as ev
-from benchrun.analysis.conditioning import lowpass
-from benchrun.analysis.resolution import (
-    FLAG_UNDERSAMPLED,
-    recovery_spans,
-    undersampled_flag,
+from benchrun.analysis.flags import (  # noqa: F401  (names importable from here)
+    FLAG_FEW_SAMPLES_TA,
+    FLAG_INCOMPLETE,
+    FLAG_LOW_SNR,
+    FLAG_NEAR_END,
+    FLAG_RRSF,
+    FLAG_SHORT_PLATEAU,
+    FLAG_TRR_LINE,
+    FLAG_TRR_NOT_FOUND,
+    FLAG_VR,
 )
+from benchrun.analysis.measure import MIN_SAMPLES_IN_TA, measure_plateau_end
+from benchrun.analysis.resolution import FLAG_UNDERSAMPLED
 from benchrun.analysis.timebase import (
     MAX_RESAMPLED,
     MIN_RESAMPLED,
@@ -75,29 +92,15 @@ from benchrun.analysis.timebase import (
 )
 from benchrun.errors import ConfigError, NoEventError
 
-#: Samples looked back before the end of the plateau (enough for the fall and a plateau).
-PLATEAU_LOOKBACK = 60_000
-#: First span after the plateau examined; grown by 4× until the event is complete.
-INITIAL_SPAN = 16_384
-#: Fewer samples than this across ta make Irrm and ta unreliable (common practice).
-MIN_SAMPLES_IN_TA = 10
-#: Locator width (samples) used to pin down the reverse-current peak on noisy data.
-PEAK_LOCATOR_WIDTH = 5
-
 #: A record whose negated current holds a level with more than this many times the charge
 #: (level × duration) of any positive level is taken as a reversed current probe: a freewheel
 #: plateau carries far more charge than the recovery's reverse peak (common practice).
 REVERSED_AREA_RATIO = 2.0
 
-FLAG_SHORT_PLATEAU = "short_plateau"
-FLAG_FEW_SAMPLES_TA = "few_samples_in_ta"
-FLAG_NEAR_END = "event_near_record_end"
-FLAG_INCOMPLETE = "recovery_incomplete"
-FLAG_TRR_NOT_FOUND = "trr_not_found"
-FLAG_TRR_LINE = "trr_line_no_crossing"
-FLAG_RRSF = "rrsf_not_found"
-FLAG_LOW_SNR = "low_signal_to_noise"
-FLAG_VR = "reverse_voltage_not_found"
+#: Fields of :class:`RecoveryMetrics` that are not metric values.
+NON_METRIC_FIELDS = ("flags", "u", "corrections")
+#: Qrr / Err window conventions (:class:`RecoveryOptions`).
+INTEGRATION_WINDOWS = ("fraction", "trr_end", "triangle")
 
 # Names importable from here (input limits live in timebase.py, the sampling check in
 # resolution.py).
@@ -130,6 +133,16 @@ class RecoveryOptions:
         Which current reversal of the record to analyse (0 = first, -1 = last).
     lowpass_hz
         Optional zero-phase low-pass cut-off applied to the analysis window.
+    integration_window
+        Qrr / Err window convention: ``"fraction"`` (t0 to the return through
+        ``integration_end_fraction·Irrm``, default), ``"trr_end"`` (t0 to the trr end) or
+        ``"triangle"`` (``Qrr = ½·Irrm·trr``; Err to the trr end).
+    current_rise_time_s, voltage_rise_time_s
+        10-90 % rise time of each channel's measurement chain (probe and scope; about
+        0.35 / bandwidth), recorded in ``corrections``; used for ``rise_time_limited``.
+    deskew_tolerance_s
+        How far the reverse voltage may reach VR before the current peak before the result is
+        flagged ``deskew_suspect`` (1 ns by default, common practice).
     """
 
     fit_high: float = 0.9
@@ -139,8 +152,20 @@ class RecoveryOptions:
     integration_end_fraction: float = 0.02
     commutation: int = -1
     lowpass_hz: float | None = None
+    integration_window: str = "fraction"
+    current_rise_time_s: float | None = None
+    voltage_rise_time_s: float | None = None
+    deskew_tolerance_s: float = 1e-9
 
     def __post_init__(self) -> None:
+        if self.integration_window not in INTEGRATION_WINDOWS:
+            raise ConfigError(
+                f"integration_window must be one of {', '.join(INTEGRATION_WINDOWS)}, "
+                f"got {self.integration_window!r}", field="integration_window")
+        for name in ("current_rise_time_s", "voltage_rise_time_s", "deskew_tolerance_s"):
+            value = getattr(self, name)
+            if value is not None and not (math.isfinite(value) and value >= 0):
+                raise ConfigError(f"must be a time >= 0, got {value!r}", field=name)
         if not 0.0 < self.fit_low < self.fit_high < 1.0:
             raise ConfigError(
                 f"need 0 < fit_low < fit_high < 1, got {self.fit_low} and {self.fit_high}",
@@ -183,17 +208,22 @@ class RecoveryMetrics:
     t_trr_s: float | None
     t2_s: float | None
     flags: tuple[str, ...] = field(default=())
+    u: Mapping[str, float | None] = field(default_factory=dict, compare=False)
+    corrections: Mapping[str, Any] = field(default_factory=dict, compare=False)
 
     def to_dict(self) -> dict[str, Any]:
-        """Numeric keys plus ``flags`` as a list (JSON-ready)."""
+        """Numeric keys, ``flags`` as a list, ``u`` (metric key → standard uncertainty from
+        the capture, SI) and ``corrections`` (offsets, deskew, conventions) (JSON-ready)."""
         data = asdict(self)
         data["flags"] = list(self.flags)
+        data["u"] = dict(self.u)
+        data["corrections"] = dict(self.corrections)
         return data
 
     @classmethod
     def metric_keys(cls) -> tuple[str, ...]:
         """The numeric keys, in field order."""
-        return tuple(f.name for f in fields(cls) if f.name != "flags")
+        return tuple(f.name for f in fields(cls) if f.name not in NON_METRIC_FIELDS)
 
 
 def analyze_recovery(
@@ -303,284 +333,32 @@ def _analyze_record(v: np.ndarray, i: np.ndarray, timebase: TimeBase,
         raise NoEventError(
             "no forward-current plateau in the record (is the current anode → cathode positive?)"
         )
+    first_start = plateaus[0].start
+    zeros = bl.zeros(i, v, first_start)
     candidates = [p for p in plateaus if p.ends_in_record]
     if not candidates:
         raise NoEventError("the forward current never commutates before the record ends")
     wanted = opts.commutation if opts.commutation >= 0 else -opts.commutation - 1
     ordered = candidates if opts.commutation >= 0 else candidates[::-1]
     found = 0
+    refused: NoEventError | None = None
     for plateau in ordered:
-        metrics = _analyze_plateau_end(plateau, plateau.level, v, i, timebase, opts)
-        if metrics is None:
+        try:
+            values = measure_plateau_end(plateau, v, i, timebase, opts, zeros)
+        except NoEventError as exc:  # not a diode commutation (or noise): try the others
+            refused = refused or exc
+            continue
+        if values is None:
             continue
         if found == wanted:
-            return metrics
+            return RecoveryMetrics(**values)
         found += 1
     if found:
         raise NoEventError(
             f"commutation {opts.commutation} requested but the record holds only {found}"
         )
+    if refused is not None:
+        raise refused
     raise NoEventError("the forward current falls but never reverses: no recovery event")
 
 
-_NEED_MORE = object()
-_NEED_LOOKBACK = object()
-
-
-def _analyze_plateau_end(plateau, level, v, i, timebase, opts) -> RecoveryMetrics | None:
-    lookback = PLATEAU_LOOKBACK
-    hard_stop = plateau.next_start
-    span = INITIAL_SPAN + 4 * ev.coarse_step(i.size)
-    while True:
-        a = max(plateau.start, plateau.end - lookback)
-        b = min(hard_stop, plateau.end + span)
-        result = _measure_window(a, b, b < hard_stop, plateau, level, v, i, timebase, opts)
-        if result is _NEED_LOOKBACK:
-            lookback *= 4
-        elif result is _NEED_MORE:
-            span *= 4
-        else:
-            return result
-
-
-def _odd(n: float) -> int:
-    k = int(n)
-    return k if k % 2 else k + 1
-
-
-def _minimum(tw, x, s, s_pk, lo, hi, k_wide, width, width_pk, sigma, noisy):
-    """Minimum of the raw samples ``x[lo:hi]``: ``(time, value, index)``.
-
-    ``s`` is the wide locator (``width`` samples, robust on noise) and ``k_wide`` its
-    minimum; ``s_pk`` a narrow one (``width_pk`` samples). The narrow locator looks near the
-    wide minimum, so a rounded peak is measured by the fits of :func:`events.extremum`. A
-    peak much narrower than the wide locator (a snap, or the voltage spike of a stray
-    inductance) is flattened by it and may lose against a broader but shallower dip
-    elsewhere; when the narrow locator's minimum over the whole range lies deeper than the
-    one near ``k_wide`` by more than 4 of its noise sigmas, that sharp peak is the extremum;
-    and a single raw sample more than 5 noise sigmas beyond the located value (a peak one or
-    two samples wide, which both locators flatten) is taken as it is.
-    """
-    lo_pk, hi_pk = max(lo, k_wide - width), min(hi, k_wide + width + 1)
-    k_pk = lo_pk + int(np.argmin(s_pk[lo_pk:hi_pk]))
-    locators = [(s, k_wide, 2.0 * sigma, width // 2), (s_pk, k_pk, sigma, width_pk // 2)]
-    if noisy and width > width_pk:
-        k_sharp = lo + int(np.argmin(s_pk[lo:hi]))
-        if s_pk[k_sharp] < s_pk[k_pk] - 4.0 * sigma / math.sqrt(width_pk):
-            locators = [(s_pk, k_sharp, sigma, width_pk // 2)]
-            k_wide = k_pk = k_sharp
-    t_x, value = ev.extremum(tw, x, locators, sigma if noisy else 0.0,
-                             width_pk // 2 if noisy else 1)
-    if noisy:
-        # a peak one or two samples wide is flattened even by the narrow locator; a raw
-        # sample more than 5 noise sigmas beyond the located peak is that peak, not noise
-        k_raw = lo + int(np.argmin(x[lo:hi]))
-        if x[k_raw] < value - 5.0 * sigma:
-            return float(tw[k_raw]), float(x[k_raw]), k_raw
-    return t_x, value, min(k_wide, k_pk)
-
-
-def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts):
-    tw = timebase.window(a, b)
-    iw = np.asarray(i[a:b], dtype=np.float64)
-    vw = np.asarray(v[a:b], dtype=np.float64)
-    n = iw.size
-    if opts.lowpass_hz is not None:
-        dt_w = (tw[-1] - tw[0]) / (n - 1)
-        iw = lowpass(iw, dt_w, opts.lowpass_hz)
-        vw = lowpass(vw, dt_w, opts.lowpass_hz)
-    flags: list[str] = []
-    end_local = min(plateau.end - a, n)
-
-    # Rough pass on the raw samples: where the current leaves the plateau and crosses zero.
-    cut = a > plateau.start  # the window starts inside the plateau
-    k_half = ev.last_above(iw, 0.5 * level, 0, end_local)
-    if k_half is None:
-        return _NEED_LOOKBACK if cut else None
-    k_zero = ev.first_at_or_below(iw, 0.0, k_half, n)
-    if k_zero is None:
-        return _NEED_MORE if can_grow else None
-    fall = max(1, k_zero - k_half)
-
-    # Plateau just before the fall: IF and the noise level of both channels.
-    p_end = k_half - 2 * fall - 2
-    p_len = int(min(max(20 * fall, 64), 20_000))
-    if cut and p_end < p_len:
-        return _NEED_LOOKBACK  # a slow fall: look further back for the plateau
-    # stay on the plateau: skip its first quarter (turn-off ringing) and what precedes it
-    start_local = max(0, plateau.start - a)
-    p_start = max(p_end - p_len, start_local + max(0, p_end - start_local) // 4)
-    if p_end - p_start < 8:
-        flags.append(FLAG_SHORT_PLATEAU)
-        p_start, p_end = 0, max(1, k_half - fall // 2)
-    i_if = float(np.median(iw[p_start:p_end]))
-    sigma = ev.robust_sigma(iw[p_start:p_end])
-    sigma_v = ev.robust_sigma(vw[p_start:p_end])
-    if not i_if > 0:
-        return None
-    noisy = sigma > 1e-6 * i_if
-    width = min(_odd(fall / 10), 31) if noisy else 1
-    s = ev.moving_average(iw, width)
-    sigma_s = sigma / math.sqrt(width) if noisy else 0.0
-
-    # Refined fall: last locator sample above 0.5·IF before the first zero crossing.
-    k0 = ev.first_at_or_below(s, 0.0, k_half, n)
-    if k0 is None:
-        return _NEED_MORE if can_grow else None
-    k_half = ev.last_above(s, 0.5 * i_if, 0, k0)
-    if k_half is None:
-        return None
-    k0 = ev.first_at_or_below(s, 0.0, k_half, n)
-    band_if = min(2.0 * sigma, 0.1 * i_if) if noisy else 0.0
-    t_a, _ = ev.crossing_time(tw, iw, s, k_half + 1, 0.5 * i_if, band_if)
-    t0, slope_t0 = ev.crossing_time(tw, iw, s, k0, 0.0, band_if)
-
-    # The reverse-current minimum.
-    k_min = k0 + int(np.argmin(s[k0:]))
-    if s[k_min] > -max(4.0 * sigma_s, 1e-3 * i_if):
-        return _NEED_MORE if can_grow else None
-    if k_min >= n - 2 - width and can_grow:
-        return _NEED_MORE
-    # The peak may be much sharper than the fall (a snap): see _minimum.
-    width_pk = min(width, PEAK_LOCATOR_WIDTH)
-    s_pk = ev.moving_average(iw, width_pk)
-    t_irrm, i_min, k_min = _minimum(tw, iw, s, s_pk, k0, n, k_min, width, width_pk,
-                                    sigma, noisy)
-    irrm = -i_min
-    if not irrm > 0:
-        return None
-    dt_local = (tw[-1] - tw[0]) / (n - 1)
-    if noisy and irrm < 10.0 * sigma:
-        flags.append(FLAG_LOW_SNR)
-
-    # Rising crossings after the minimum. The recovery after the peak may be far faster than
-    # the forward-current fall (a snap), so the locator width here follows the rise time.
-    band_r = min(2.0 * sigma, 0.05 * irrm) if noisy else 0.0
-    band_end = min(2.0 * sigma, 0.5 * opts.integration_end_fraction * irrm) if noisy else 0.0
-    k_rise = ev.first_at_or_above(s_pk, -0.5 * irrm, k_min, n)
-    rise = (k_rise - k_min) if k_rise is not None else n - k_min
-    width_r = min(width, _odd(rise / 4))
-    s_r = ev.moving_average(iw, width_r) if width_r != width else s
-    k_tail = ev.first_at_or_above(s_r, -opts.fit_low * irrm, k_min, n)
-    tail = (k_tail - k_min) if k_tail is not None else n - k_min
-    width_end = min(width, _odd(tail / 4))
-    s_end = ev.moving_average(iw, width_end) if width_end != width else s
-
-    def rising(fraction: float, band: float, loc: np.ndarray = s_r) -> float | None:
-        k = ev.first_at_or_above(loc, -fraction * irrm, k_min, n)
-        if k is None or k == 0:
-            return None
-        return ev.crossing_time(tw, iw, loc, k, -fraction * irrm, band)[0]
-
-    t2 = rising(opts.integration_end_fraction, band_end, s_end)
-    if t2 is None and can_grow:
-        return _NEED_MORE
-    t_trr = None
-    if opts.trr_method == "extrapolate":
-        t_hi = rising(opts.fit_high, band_r)
-        t_lo = rising(opts.fit_low, band_r)
-        if t_hi is None or t_lo is None:
-            flags.append(FLAG_TRR_NOT_FOUND)
-        elif t_lo < t_hi:
-            flags.append(FLAG_TRR_LINE)
-        else:
-            t_trr = t_lo + (t_lo - t_hi) * opts.fit_low / (opts.fit_high - opts.fit_low)
-    else:
-        t_trr = rising(opts.trr_threshold_fraction, band_r)
-        if t_trr is None:
-            flags.append(FLAG_TRR_NOT_FOUND)
-
-    ta = t_irrm - t0
-    trr = t_trr - t0 if t_trr is not None else None
-    tb = trr - ta if trr is not None else None
-    softness = tb / ta if tb is not None and ta > 0 else None
-    if ta < MIN_SAMPLES_IN_TA * dt_local:
-        flags.append(FLAG_FEW_SAMPLES_TA)
-    # ta, tb, trr spanning too few samples to be resolved (benchrun.analysis.resolution)
-    sampling = undersampled_flag(recovery_spans(t0, t_irrm, t_trr, dt_local))
-    if sampling is not None:
-        flags.append(sampling)
-
-    # di/dt between +0.5·IF and -0.5·Irrm.
-    didt = None
-    kb = ev.first_at_or_below(s, -0.5 * irrm, k0, k_min + 1)
-    if kb is not None and kb > 0:
-        t_b, _ = ev.crossing_time(tw, iw, s, kb, -0.5 * irrm, band_r)
-        if t_b > t_a:
-            didt = (0.5 * i_if + 0.5 * irrm) / (t_b - t_a)
-
-    # Softness factor: slope at t0 over the steepest slope after the minimum.
-    rrsf = None
-    k_stop = np.searchsorted(tw, t2) if t2 is not None else n
-    h = max(1, width_r // 2)
-    if k_stop - k_min > 2 * h:
-        seg = slice(k_min, int(k_stop))
-        lo = np.arange(seg.start, seg.stop) - h
-        hi = np.arange(seg.start, seg.stop) + h
-        ok = (lo >= 0) & (hi < n)
-        lo, hi = lo[ok], hi[ok]
-        if lo.size:
-            slopes = (s_r[hi] - s_r[lo]) / (tw[hi] - tw[lo])
-            steepest = float(slopes.max())
-            if steepest > 0 and slope_t0 != 0.0:
-                rrsf = abs(slope_t0) / steepest
-    if rrsf is None:
-        flags.append(FLAG_RRSF)
-
-    # Charge and energy to t2.
-    qrr = err = None
-    if t2 is None:
-        flags.append(FLAG_INCOMPLETE)
-    else:
-        qrr = -ev.integrate(tw, iw, t0, t2)
-        err = ev.integrate(tw, vw * iw, t0, t2)
-
-    # Peak and steady reverse voltage.
-    t_last = float(tw[-1])
-    t_ref = t2 if t2 is not None else t_irrm
-    t_vrm_end = t_ref + (trr if trr is not None else max(t_ref - t0, 0.0))
-    vr_span = max(5.0 * (t_ref - t0), 32 * dt_local)
-    if t_vrm_end + vr_span > t_last and can_grow:
-        return _NEED_MORE
-    if t_vrm_end > t_last or t2 is None:
-        flags.append(FLAG_NEAR_END)
-    noisy_v = sigma_v > 1e-9 * max(1.0, float(np.max(np.abs(vw))))
-    width_v = width if noisy_v else 1
-    k_v0 = int(np.searchsorted(tw, t0))
-    k_v1 = int(np.searchsorted(tw, t_vrm_end, side="right"))
-    vrm = None
-    if k_v1 > k_v0:
-        sv = ev.moving_average(vw, width_v)
-        k_vmin = k_v0 + int(np.argmin(sv[k_v0:k_v1]))
-        width_vpk = min(width_v, PEAK_LOCATOR_WIDTH)
-        sv_pk = ev.moving_average(vw, width_vpk)
-        vrm = -_minimum(tw, vw, sv, sv_pk, k_v0, k_v1, k_vmin, width_v, width_vpk,
-                        sigma_v, noisy_v)[1]
-    k_r1 = int(np.searchsorted(tw, t_vrm_end + vr_span, side="right"))
-    vr = None
-    if k_r1 - k_v1 >= 8:
-        vr = float(-np.median(vw[k_v1:k_r1]))
-    else:
-        flags.append(FLAG_VR)
-        if FLAG_NEAR_END not in flags:
-            flags.append(FLAG_NEAR_END)
-
-    return RecoveryMetrics(
-        if_A=i_if,
-        t0_s=t0,
-        irrm_A=irrm,
-        ta_s=ta,
-        tb_s=tb,
-        trr_s=trr,
-        softness=softness,
-        rrsf=rrsf,
-        qrr_C=qrr,
-        err_J=err,
-        didt_A_per_s=didt,
-        vrm_V=vrm,
-        vr_V=vr,
-        t_irrm_s=t_irrm,
-        t_trr_s=t_trr,
-        t2_s=t2,
-        flags=tuple(flags),
-    )

@@ -71,7 +71,8 @@ def run(args: argparse.Namespace) -> int:
     if (warning := pending_warning(data)) is not None:
         print(warning, file=sys.stderr)
     limits, path = _limits_for(args, data)
-    lot = grade_lot(data.shots, limits, bench=_bench_for(args, data))
+    lot = grade_lot(data.shots, limits, bench=_bench_for(args, data),
+                    analysis_options=data.manifest.get("analysis_options"))
     if args.json:
         payload = {"run_id": data.run_id, "limits_file": str(path), **lot.to_dict()}
         print(json.dumps(payload, indent=2, sort_keys=True, ensure_ascii=False))

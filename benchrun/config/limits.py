@@ -377,6 +377,18 @@ class LotRule(StrictModel):
         return self
 
 
+class ConventionSpec(StrictModel):
+    """The Qrr / Err / trr window convention the limits assume
+    (:mod:`benchrun.analysis.conventions`); grading refuses results of another one."""
+
+    integration_window: Literal["fraction", "trr_end", "triangle"] = "fraction"
+    integration_end_fraction: float = Field(default=0.02, gt=0, lt=1)
+    trr_method: Literal["extrapolate", "threshold"] = "extrapolate"
+    fit_high: float = Field(default=0.9, gt=0, lt=1)
+    fit_low: float = Field(default=0.25, gt=0, lt=1)
+    trr_threshold_fraction: float = Field(default=0.25, gt=0, lt=1)
+
+
 class LimitsSpec(StrictModel):
     """A whole limits file."""
 
@@ -390,6 +402,7 @@ class LimitsSpec(StrictModel):
     uncertainty: UncertaintySpec = UncertaintySpec()
     bins: BinSpec | None = None
     lot: LotRule
+    convention: ConventionSpec = ConventionSpec()
 
     def condition(self, name: str) -> Condition:
         """The condition called ``name``."""

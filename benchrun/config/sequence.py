@@ -171,6 +171,7 @@ class AnalysisSettings(StrictModel):
     trr_method: Literal["extrapolate", "threshold"] = "extrapolate"
     trr_threshold_fraction: float = Field(default=0.25, gt=0, lt=1)
     integration_end_fraction: float = Field(default=0.02, gt=0, lt=1)
+    integration_window: Literal["fraction", "trr_end", "triangle"] = "fraction"
     lowpass: Frequency | None = Field(default=None, gt=0)
 
     @model_validator(mode="after")
@@ -187,6 +188,7 @@ class AnalysisSettings(StrictModel):
             "trr_method": self.trr_method,
             "trr_threshold_fraction": self.trr_threshold_fraction,
             "integration_end_fraction": self.integration_end_fraction,
+            "integration_window": self.integration_window,
             "lowpass_hz": self.lowpass,
         }
 

@@ -25,6 +25,8 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import replace
 from typing import Any
 
+from benchrun.analysis.conventions import Convention, mismatch
+from benchrun.analysis.pipeline import CAPTURE_U_PREFIX
 from benchrun.config.bench import BenchConfig
 from benchrun.config.limits import (
     METRIC_UNITS,
@@ -63,6 +65,7 @@ from benchrun.grading.uncertainty import (
     UncertaintyBudget,
     bench_inputs,
     metric_budget,
+    pooled_std,
     rectangular,
     triangular,
     type_a,
@@ -197,6 +200,16 @@ def _samples(shots: Sequence[ShotResult]) -> dict[str, list[float]]:
     return samples
 
 
+def _capture_u(shots: Sequence[ShotResult], metric: str) -> list[float]:
+    """Each shot's capture uncertainty of ``metric`` (``u_<metric>`` among its metrics)."""
+    out = []
+    for shot in shots:
+        number = _finite(shot.metrics.get(CAPTURE_U_PREFIX + metric))
+        if number is not None and _finite(shot.metrics.get(metric)) is not None:
+            out.append(number)
+    return out
+
+
 def _acquisition(shots: Sequence[ShotResult]) -> dict[str, float]:
     facts: dict[str, float] = {}
     for shot in shots:
@@ -256,14 +269,19 @@ def _worst_of(samples: Sequence[float], limit: MetricLimit) -> float:
 def _aggregate_budget(
     metric: str, limit: MetricLimit, samples: Sequence[float], means: Mapping[str, float],
     acquisition: Mapping[str, float], inputs: InstrumentInputs, spec: LimitsSpec,
+    capture_u: Sequence[float] = (),
+    pooled: tuple[float, float] | None = None,
 ) -> tuple[float, UncertaintyBudget]:
-    """Value and budget of ``metric`` under its limit's aggregation (mean or worst shot)."""
+    """Value and budget of ``metric`` under its limit's aggregation (mean or worst shot);
+    ``capture_u``: each shot's capture uncertainty, the floor of the repeatability term."""
     k = spec.uncertainty.coverage_factor
     if limit.combine == "mean":
         value = means[metric]
         return value, metric_budget(
             metric, means, acquisition, inputs,
             repeat_samples=samples,
+            capture_u=capture_u,
+            pooled=pooled,
             extra=_extra_contributors(spec.uncertainty.extra, metric, value),
             coverage_factor=k,
             include_repeatability=spec.uncertainty.repeatability,
@@ -280,8 +298,14 @@ def _aggregate_budget(
             s_one = evaluated[0]
             extra.insert(0, Contributor(
                 f"repeatability of one shot, s = {s_one:.4g} from n = {len(samples)} shots",
-                "Type A, s of a single reading (JCGM 100:2008 §4.2.2)", s_one,
-                metric_unit(metric) or "1", 1.0))
+                "Type A, s of a single reading, ν = n − 1 (JCGM 100:2008 §4.2.2)", s_one,
+                metric_unit(metric) or "1", 1.0, dof=float(len(samples) - 1)))
+    caps = [u for u in capture_u if math.isfinite(u)]
+    if caps:  # one shot's own capture uncertainty (identical quantised repeats: s = 0)
+        u_cap = math.sqrt(math.fsum(u * u for u in caps) / len(caps))
+        extra.insert(0, Contributor(
+            f"capture (noise, quantisation, timing) of one shot, ū = {u_cap:.4g}",
+            "Type B, from the capture itself", u_cap, metric_unit(metric) or "1", 1.0))
     budget = metric_budget(metric, at_value, acquisition, inputs, extra=extra,
                            coverage_factor=k, include_repeatability=False)
     return value, replace(budget, notes=(*notes, *budget.notes))
@@ -349,6 +373,7 @@ def _grade_device(
     points: Mapping[str, TestPoint | None],
     rule: DecisionRule,
     inputs: InstrumentInputs,
+    pooled: Mapping[tuple[str, str], tuple[float, float]] | None = None,
 ) -> tuple[DeviceGrade, dict[str, dict[str, list[float]]], dict[str, dict[str, float]]]:
     k = spec.uncertainty.coverage_factor
     grades: list[MetricGrade] = []
@@ -403,7 +428,9 @@ def _grade_device(
                 reasons.append(f"{_label(metric, name)}: not measured")
                 continue
             value, budget = _aggregate_budget(metric, limit, samples[metric], means,
-                                              acquisition, inputs, spec)
+                                              acquisition, inputs, spec,
+                                              _capture_u(valid, metric),
+                                              (pooled or {}).get((name, metric)))
             label = _label(metric, name)
             if limit.combine == "worst":
                 label = f"{metric} (worst shot) at {name}"
@@ -411,7 +438,7 @@ def _grade_device(
                               name=label, unit=metric_unit(metric))
             grades.append(MetricGrade(
                 metric, name, metric_unit(metric), value, len(samples[metric]),
-                budget.expanded, budget.combined, k, limit.min, limit.max,
+                budget.expanded, budget.combined, budget.coverage_factor, limit.min, limit.max,
                 decision.acceptance_lower, decision.acceptance_upper, decision.guard_band,
                 decision.outcome, decision.statement, decision.reason, budget,
                 aggregation=limit.combine, shot_values=tuple(samples[metric]),
@@ -563,7 +590,8 @@ def describe_lot_rule(spec: LimitsSpec) -> str:
 
 
 def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
-              bench: BenchConfig | InstrumentInputs) -> LotGrade:
+              bench: BenchConfig | InstrumentInputs,
+              analysis_options: Mapping[str, Any] | None = None) -> LotGrade:
     """Grade every device in ``shots`` against ``limits`` (pure).
 
     Parameters
@@ -575,14 +603,23 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
     bench
         The bench file the shots were taken on (its instrument and probe accuracies are the
         budgets' inputs, :func:`benchrun.grading.uncertainty.bench_inputs`), or those inputs.
+    analysis_options
+        The ``RecoveryOptions`` keyword arguments the shots were analysed with (a run's
+        ``analysis_options``; None: the defaults). Their Qrr / Err / trr window convention
+        must be the limits' ``convention``.
 
     Raises
     ------
     GradingError
-        The shots are of another part, a condition cannot be matched to one test point, the
+        The shots are of another part, were measured with another window convention
+        than the limits assume, a condition cannot be matched to one test point, the
         bench file states no accuracy, or more devices were tested than the lot holds.
     """
     shots = list(shots)
+    problem = mismatch(Convention.of(analysis_options),
+                       Convention.of(limits.convention.model_dump()))
+    if problem is not None:
+        raise GradingError(f"cannot grade: {problem}")
     other = sorted({s.part for s in shots if s.part != limits.part})
     if other:
         raise GradingError(f"limits for {limits.part} cannot grade shots of {', '.join(other)}")
@@ -601,9 +638,22 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
     devices: list[DeviceGrade] = []
     samples: dict[str, dict[str, dict[str, list[float]]]] = {}
     acquisitions: dict[str, dict[str, dict[str, float]]] = {}
+    # repeatability pooled over the devices at each condition (within-device scatter,
+    # ν = Σ(n_i − 1)): two repeats of one device alone give ν = 1 and a t factor of 14
+    first = {serial: _grade_device(serial, by_serial[serial], limits, points, rule, inputs)
+             for serial in serials}
+    pooled: dict[tuple[str, str], tuple[float, float]] = {}
+    for condition in limits.conditions:
+        metrics = {m for _, found, _ in first.values() for m in found.get(condition.name, {})}
+        for metric in metrics:
+            groups = [found[condition.name][metric] for _, found, _ in first.values()
+                      if metric in found.get(condition.name, {})]
+            value = pooled_std(groups)
+            if value is not None:
+                pooled[(condition.name, metric)] = value
     for serial in serials:
         device, device_samples, device_acq = _grade_device(
-            serial, by_serial[serial], limits, points, rule, inputs)
+            serial, by_serial[serial], limits, points, rule, inputs, pooled)
         devices.append(device)
         samples[serial] = device_samples
         acquisitions[serial] = device_acq

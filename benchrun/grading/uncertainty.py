@@ -14,8 +14,8 @@ Input quantities and their standard uncertainties
 -------------------------------------------------
 - *Channel gain, scope vertical accuracy.* Specified as ``±acc`` of full scale ``FS``: the
   reading error is bounded by ``a = acc·FS`` (A or V), rectangular (§4.3.7: u = a/√3). The
-  offset is removed from the pre-event baseline by the analysis, so the error acts as a gain
-  error; relative to the largest reading ``X_ref`` the metric is taken from it is bounded by
+  offset is removed by the analysis (:mod:`benchrun.analysis.baseline`), so the error acts as a
+  gain error; relative to the largest reading ``X_ref`` the metric is taken from it is bounded by
   ``a/X_ref``. Input: the relative gain error δ, ``u(δ) = (a/X_ref)/√3``.
 - *Sensor scale tolerance* (shunt or current probe; voltage probe attenuation): relative bound
   ``p``, rectangular, ``u(δ) = p/√3``.
@@ -27,7 +27,12 @@ Input quantities and their standard uncertainties
 - *Deskew*: residual skew between the voltage and current channels within ``±a``,
   rectangular, ``u = a/√3``.
 - *Repeatability* (Type A, §4.2.3): experimental standard deviation of the mean of the
-  ``n`` repeated shots, ``s/√n``; not evaluated for a single shot.
+  ``n`` repeated shots, ``s/√n`` with ν = n − 1, combined with the shots' own capture
+  uncertainty ``ū/√n`` (noise, quantisation, timing: identical quantised repeats, s = 0, are
+  not "no uncertainty"); a single shot carries its capture uncertainty ``ū``
+  (:func:`repeatability`).
+- *Coverage factor*: the budget's ν_eff by Welch-Satterthwaite (G.4.1); k is the Student t
+  quantile for ν_eff at the coverage probability of the requested normal k (G.3.4).
 
 Sensitivity coefficients (derivations)
 --------------------------------------
@@ -125,6 +130,7 @@ class Contributor:
     standard_uncertainty: float
     input_unit: str
     sensitivity: float
+    dof: float = math.inf
 
     @property
     def contribution(self) -> float:
@@ -139,6 +145,7 @@ class Contributor:
             "input_unit": self.input_unit,
             "c_i": self.sensitivity,
             "contribution": self.contribution,
+            "dof": None if math.isinf(self.dof) else self.dof,
         }
 
 
@@ -153,6 +160,7 @@ class UncertaintyBudget:
     coverage_factor: float
     expanded: float
     notes: tuple[str, ...] = ()
+    effective_dof: float = math.inf
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -163,12 +171,36 @@ class UncertaintyBudget:
             "k": self.coverage_factor,
             "U": self.expanded,
             "notes": list(self.notes),
+            "nu_eff": None if math.isinf(self.effective_dof) else self.effective_dof,
         }
 
 
 def combine(contributors: Sequence[Contributor]) -> float:
     """Combined standard uncertainty ``sqrt(Σ (c_i·u_i)²)`` (JCGM 100:2008 eq. 10)."""
     return math.sqrt(math.fsum(c.contribution**2 for c in contributors))
+
+
+def effective_dof(contributors: Sequence[Contributor]) -> float:
+    """Welch-Satterthwaite effective degrees of freedom (JCGM 100:2008 G.4.1, eq. G.2b):
+    ``ν_eff = u_c⁴ / Σ (c_i·u_i)⁴/ν_i``; Type B inputs have ν_i = ∞."""
+    u_c = combine(contributors)
+    denominator = math.fsum(c.contribution**4 / c.dof for c in contributors
+                            if math.isfinite(c.dof) and c.dof > 0)
+    if u_c == 0.0 or denominator == 0.0:
+        return math.inf
+    return u_c**4 / denominator
+
+
+def t_coverage_factor(k_normal: float, dof: float) -> float:
+    """Coverage factor for ``dof`` degrees of freedom with the coverage probability that
+    ``k_normal`` gives for a normal distribution (k = 2: 95.45 %): the Student t quantile
+    (JCGM 100:2008 G.3.4 and Table G.2; scipy.stats.t). Infinite dof: ``k_normal``."""
+    if math.isinf(dof):
+        return k_normal
+    from scipy import stats
+
+    p = math.erf(k_normal / math.sqrt(2.0))
+    return float(stats.t.ppf(0.5 * (1.0 + p), max(dof, 1.0)))
 
 
 def make_budget(
@@ -178,17 +210,82 @@ def make_budget(
     coverage_factor: float = 2.0,
     notes: Sequence[str] = (),
 ) -> UncertaintyBudget:
-    """Combine contributors and expand with ``U = k·u_c`` (JCGM 100:2008 §6.2.1)."""
+    """Combine contributors and expand with ``U = k·u_c`` (JCGM 100:2008 §6.2.1).
+
+    ``coverage_factor`` is the normal-distribution k; when a Type A contributor has finite
+    degrees of freedom, k is the t quantile for the Welch-Satterthwaite ν_eff at the same
+    coverage probability (:func:`t_coverage_factor`).
+    """
     u_c = combine(contributors)
+    nu = effective_dof(contributors)
+    k = t_coverage_factor(coverage_factor, nu)
     return UncertaintyBudget(
         metric=metric,
         value=value,
         contributors=tuple(contributors),
         combined=u_c,
-        coverage_factor=coverage_factor,
-        expanded=coverage_factor * u_c,
+        coverage_factor=k,
+        expanded=k * u_c,
         notes=tuple(notes),
+        effective_dof=nu,
     )
+
+
+_TYPE_A = "Type A, s/√n, ν = n − 1 (JCGM 100:2008 §4.2.3, G.3.3)"
+_CAPTURE = ("Type B, from the capture itself, ū/√n (identical quantised readings: "
+            "JCGM 100:2008 F.2.2.1)")
+
+
+def pooled_std(groups: Sequence[Sequence[float]]) -> tuple[float, float] | None:
+    """Pooled within-group standard deviation and its degrees of freedom,
+    ``s_p² = ΣΣ(x_ij − x̄_i)² / Σ(n_i − 1)``, ν = Σ(n_i − 1) (ISO 5725-2 repeatability;
+    JCGM 100:2008 H.3.6 for pooled estimates). None when no group has two values."""
+    ss, dof = 0.0, 0
+    for group in groups:
+        if len(group) >= 2:
+            mean = math.fsum(group) / len(group)
+            ss += math.fsum((x - mean) ** 2 for x in group)
+            dof += len(group) - 1
+    return (math.sqrt(ss / dof), float(dof)) if dof else None
+
+
+def repeatability(samples: Sequence[float], capture_u: Sequence[float], unit: str,
+                  pooled: tuple[float, float] | None = None
+                  ) -> tuple[list[Contributor], list[str]]:
+    """Repeatability and capture contributors of a mean of ``n`` repeated shots.
+
+    - ``s/√n`` with ν = n − 1 (Type A, §4.2.3, G.3.3);
+    - combined with the shots' own capture uncertainty ``ū/√n`` (ν = ∞; ``ū`` the rms of
+      the shots' ``u``: noise, quantisation, timing, :mod:`benchrun.analysis.capture_uncertainty`),
+      so identical quantised repeats (s = 0) keep the uncertainty each shot is known to,
+      and the budget changes smoothly with s (the capture term is partly inside s as well:
+      conservative by at most a factor √2 when s ≈ ū);
+    - a single shot: ``ū`` alone.
+    """
+    notes: list[str] = []
+    caps = [float(u) for u in capture_u if u is not None and math.isfinite(float(u))]
+    u_bar = math.sqrt(math.fsum(u * u for u in caps) / len(caps)) if caps else None
+    n = len(samples)
+    items: list[Contributor] = []
+    evaluated = type_a([float(x) for x in samples])
+    if pooled is not None and n >= 1:
+        s_p, nu = pooled
+        items.append(Contributor(
+            f"repeatability, pooled s = {s_p:.4g} (ν = {nu:g}) over n = {n}",
+            "Type A, pooled s/√n, ν = Σ(n_i − 1) (JCGM 100:2008 §4.2.3, H.3.6)",
+            s_p / math.sqrt(n), unit, 1.0, dof=nu))
+    elif evaluated is None:
+        notes.append("single shot: repeatability not evaluated (Type A needs n ≥ 2)")
+    else:
+        s, u_mean = evaluated
+        items.append(Contributor(f"repeatability, s = {s:.4g} over n = {n}", _TYPE_A, u_mean,
+                                 unit, 1.0, dof=float(n - 1)))
+    if u_bar is not None:
+        count = max(n, 1)
+        items.append(Contributor(
+            f"capture (noise, quantisation, timing), ū = {u_bar:.4g} over n = {count}",
+            _CAPTURE, u_bar / math.sqrt(count), unit, 1.0))
+    return items, notes
 
 
 @dataclass(frozen=True)
@@ -454,6 +551,8 @@ def metric_budget(
     extra: Sequence[Contributor] = (),
     coverage_factor: float = 2.0,
     include_repeatability: bool = True,
+    capture_u: Sequence[float] = (),
+    pooled: tuple[float, float] | None = None,
 ) -> UncertaintyBudget:
     """Full GUM budget of one metric value.
 
@@ -472,6 +571,12 @@ def metric_budget(
         ``k`` for ``U = k·u_c``.
     include_repeatability
         Whether to evaluate the Type A term.
+    capture_u
+        Each repeated shot's capture uncertainty of the metric (``u`` of the analysis),
+        combined with the repeatability term (:func:`repeatability`).
+    pooled
+        ``(s_p, ν)`` from :func:`pooled_std` over the lot's devices at the condition: used
+        instead of the device's own s (more degrees of freedom, a smaller t factor).
     """
     contributors, notes = metric_contributors(metric, values, acquisition, inputs)
     unit = metric_unit(metric) or "1"
@@ -483,14 +588,9 @@ def metric_budget(
                     f"repeatability, pooled s = {s:.4g} over n = {n}",
                     "Type A, s/√n (JCGM 100:2008 §4.2.3)", s / math.sqrt(n), unit, 1.0))
         else:
-            evaluated = type_a([float(x) for x in repeat_samples])
-            if evaluated is None:
-                notes.append("single shot: repeatability not evaluated (Type A needs n ≥ 2)")
-            else:
-                s, u = evaluated
-                contributors.append(Contributor(
-                    f"repeatability, s = {s:.4g} over n = {len(repeat_samples)}",
-                    "Type A, s/√n (JCGM 100:2008 §4.2.3)", u, unit, 1.0))
+            items, more = repeatability(list(repeat_samples), capture_u, unit, pooled)
+            contributors.extend(items)
+            notes.extend(more)
     contributors.extend(extra)
     value = values.get(metric)
     return make_budget(metric, None if value is None else float(value), contributors,

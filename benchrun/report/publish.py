@@ -89,7 +89,8 @@ def publish_report(
             raise ReportError("the run has no run folder: name the report file to write")
         out_pdf = run.run_dir / "report.pdf"
     spec = load_limits(limits_path)
-    lot = grade_lot(run.shots, spec, bench=run_bench(run))
+    lot = grade_lot(run.shots, spec, bench=run_bench(run),
+                    analysis_options=run.manifest.get("analysis_options"))
     freqs = switching_frequencies_Hz
     if freqs is None:
         freqs = list(run.manifest.get("switching_frequencies_Hz") or [])
