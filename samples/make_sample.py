@@ -25,7 +25,7 @@ test_points:
   - label: nominal
     bus_voltage: 600 V
     forward_current: 30 A
-    temperatures: [25 degC]
+    temperatures: [25 degC, 125 degC]   # both conditions of the limits file; the 25 degC shot is kept
     gate_resistance: 10 ohm
     repeats: 1
     shot_spacing: 0.02 s
@@ -53,7 +53,8 @@ def main(out: Path) -> None:
                                  show_progress=False)
             outcome = run_sequence(seq_path, bench_path, options)
         run = load_run(outcome.run_dir)
-        shot = next(s for s in run.shots if s.valid)
+        shot = next(s for s in run.shots
+                    if s.valid and abs(s.point.temperature_K - 298.15) < 1.0)
         with run.open_raw() as raw:
             frame = waveform_frame(raw.read_shot(shot.raw_ref))
     t0 = shot.metrics["t0_s"]
@@ -65,6 +66,7 @@ def main(out: Path) -> None:
     print(f"{out}: {len(frame)} samples of shot {shot.raw_ref}")
     for name in ("irrm_A", "qrr_C", "trr_s", "if_A", "vr_V"):
         print(f"  {name} = {shot.metrics[name]:.6g}")
+    print(f"  flags = {list(shot.flags)}")
 
 
 if __name__ == "__main__":
