@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 
 from benchrun.errors import BenchrunError
-from benchrun.store.rundata import HASHED_FILES, RESULTS_DB
+from benchrun.store.rundata import HASHED_FILES, REPORT_FILE, RESULTS_DB
 from benchrun.web.catalog import Catalog, Lot
 
 try:  # the report package's public entry point
@@ -93,9 +93,14 @@ class Verifier:
         self._stop = threading.Event()
 
     def report_file(self, lot: Lot) -> Path | None:
+        """The lot's registered report, when it lies inside RESULTS or the run folder; else
+        the run folder's ``report.pdf`` (a run folder moved since the report was made)."""
         if lot.report is None:
             return None
-        return self.catalog.allowed_file(lot, lot.report.path)
+        found = self.catalog.allowed_file(lot, lot.report.path)
+        if found is None and lot.run_dir is not None:
+            found = self.catalog.allowed_file(lot, lot.run_dir / REPORT_FILE)
+        return found
 
     def _key(self, lot: Lot, pdf: Path) -> Any:
         files = [pdf] + ([lot.run_dir / n for n in (*HASHED_FILES, RESULTS_DB)]
