@@ -175,8 +175,16 @@ class LivePublisher:
 
     def shot(self, serial: str, label: str, valid: bool, flags: list[str],
              t: np.ndarray, v: np.ndarray, i: np.ndarray, markers: dict[str, Any]) -> None:
-        """The last stored shot and its waveform (thinned to :data:`WAVEFORM_POINTS`)."""
-        tt, ii, vv = thin_waveform(np.asarray(t), np.asarray(i), np.asarray(v))
+        """The last stored shot and its waveform around the recovery (from before t0 to past
+        t2, when both are known), thinned to :data:`WAVEFORM_POINTS`."""
+        t, v, i = np.asarray(t), np.asarray(v), np.asarray(i)
+        t0, t2 = _finite(markers.get("t0_s")), _finite(markers.get("t2_s"))
+        if t0 is not None and t2 is not None and t2 > t0:
+            span = t2 - t0
+            keep = (t >= t0 - 1.5 * span) & (t <= t0 + 3.0 * span)
+            if np.count_nonzero(keep) >= 2:
+                t, v, i = t[keep], v[keep], i[keep]
+        tt, ii, vv = thin_waveform(t, i, v)
         self._row["last_shot"] = json.dumps({
             "serial": serial, "label": label, "valid": bool(valid), "flags": list(flags),
             "t": tt, "i": ii, "v": vv,
