@@ -80,7 +80,7 @@ def _sign_in(browser, base, name="eng"):
 def test_sign_in_lot_waveform_verify(site, browser):
     from selenium.webdriver.common.by import By
 
-    base, web, shots = site
+    base, _web, shots = site
     _sign_in(browser, base)
     browser.save_screenshot(str(shots / "lots.png"))
     browser.find_element(By.CLASS_NAME, "lotlink").click()

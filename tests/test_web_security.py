@@ -115,9 +115,14 @@ def test_report_path_outside_results_refused(web_site, tmp_path):  # noqa: F811
     client = app.test_client()
     sign_in(client, "ada")
     response = client.get(f"/lots/{web_site.run_id}/report.pdf")
+    # the run folder's own report.pdf stands in; the file outside is never served
+    assert b"not yours" not in response.data
+    assert response.data == (root / web_site.run_id / "report.pdf").read_bytes()
+    response.close()
+    (root / web_site.run_id / "report.pdf").unlink()
+    response = client.get(f"/lots/{web_site.run_id}/report.pdf")
     response.close()
     assert response.status_code == 404
-    assert b"not yours" not in response.data
 
 
 def test_oversized_upload_refused(web_site):  # noqa: F811

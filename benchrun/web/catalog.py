@@ -255,6 +255,24 @@ class Catalog:
                                        row.disposition, row.signer, store))
         return rows
 
+    def benches(self, rows: list[LotRow]) -> dict[str, str]:
+        """Run id → bench name (from each manifest), one query per store."""
+        out: dict[str, str] = {}
+        by_store: dict[str, list[LotRow]] = {}
+        for row in rows:
+            by_store.setdefault(row.store.url, []).append(row)
+        r = runs_table.c
+        for group in by_store.values():
+            ids = [row.run_id for row in group]
+            with group[0].store.connect() as conn:
+                for run_id, text in conn.execute(select(r.run_id, r.manifest)
+                                                 .where(r.run_id.in_(ids))):
+                    try:
+                        out[run_id] = str(json.loads(text).get("bench_name") or "—")
+                    except (ValueError, AttributeError):
+                        out[run_id] = "—"
+        return out
+
     def find(self, run_id: str) -> LotRow | None:
         """The lot of run ``run_id``, or ``None`` (also for a name no run can have)."""
         if not safe_name(run_id):

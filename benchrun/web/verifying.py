@@ -9,6 +9,7 @@ makes the entry stale. A background thread verifies the reports nobody has asked
 
 from __future__ import annotations
 
+import contextlib
 import tempfile
 import threading
 from dataclasses import dataclass
@@ -91,6 +92,8 @@ class Verifier:
         self._lock = threading.Lock()
         self._thread: threading.Thread | None = None
         self._stop = threading.Event()
+        #: Called once by the background thread before it verifies (fills page caches).
+        self.warm: Any = None
 
     def report_file(self, lot: Lot) -> Path | None:
         """The lot's registered report, when it lies inside RESULTS or the run folder; else
@@ -161,6 +164,9 @@ class Verifier:
         self._stop.set()
 
     def _work(self) -> None:
+        if self.warm is not None:
+            with contextlib.suppress(BenchrunError):
+                self.warm()
         while not self._stop.is_set():
             try:
                 for row in self.catalog.lots():

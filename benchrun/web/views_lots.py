@@ -74,11 +74,10 @@ def lots() -> Any:
     shown = rows[(page - 1) * PAGE_SIZE: page * PAGE_SIZE]
     verifier = ext("verifier")
     status = {}
-    benches = {}
+    benches = catalog.benches(shown)
     for row in shown:
-        lot = catalog.lot(row.run_id)
-        benches[row.run_id] = lot.bench if lot else "—"
-        outcome = verifier.cached(lot) if lot and row.report_id else None
+        lot = catalog.lot(row.run_id) if row.report_id else None
+        outcome = verifier.cached(lot) if lot is not None else None
         status[row.run_id] = ("none" if not row.report_id else
                               "unchecked" if outcome is None else
                               "ok" if outcome.ok else "fail")

@@ -9,9 +9,11 @@ from flask import Blueprint, Response, abort, render_template, request
 from benchrun.web.app import ext, require
 from benchrun.web.catalog import safe_name
 from benchrun.web.control import DEFAULT_BASELINE, NELSON_RULES
+from benchrun.web.data import LRUCache
 from benchrun.web.plots import control_png
 
 bp = Blueprint("parts", __name__)
+_CHARTS = LRUCache(256)  # rendered charts, keyed by everything drawn on them
 PDF_MAGIC = b"%PDF-"
 
 
@@ -69,8 +71,10 @@ def chart_png(part: str, metric: str, condition: str, kind: str) -> Any:
         values = [p.spread for p in chart.points if p.spread is not None]
         limits, signals = chart.spread_limits, chart.spread_signals
         title = f"{chart.name} at {chart.condition}: spread between devices (standard deviation)"
-    png = control_png([p.lot for p in chart.points], values, limits, signals, title,
-                      prefix_scale, unit)
+    key = ("chart", part, metric, condition, kind, tuple(values), limits,
+           tuple(s.index for s in signals))
+    png = _CHARTS.get(key, lambda: control_png([p.lot for p in chart.points], values, limits,
+                                               signals, title, prefix_scale, unit))
     return Response(png, mimetype="image/png")
 
 
