@@ -72,3 +72,50 @@ def test_rule_7_fifteen_within_one_sigma():
 def test_rule_8_eight_outside_one_sigma_either_side():
     assert 8 in rules([1.5, -1.5] * 4)
     assert 8 not in rules([1.5, -1.5] * 3 + [0.5, 1.5])
+
+
+def _reference(values, lim):
+    """The tests written out point by point from Nelson (1984), for comparison."""
+    from itertools import pairwise
+
+    z = [(v - lim.centre) / lim.sigma for v in values]
+    out = set()
+
+    def window(i, n):
+        return z[i - n + 1:i + 1] if i >= n - 1 else None
+
+    for i in range(len(z)):
+        def w(n, i=i):
+            return window(i, n)
+
+        x = values[i - 5:i + 1] if i >= 5 else None
+        if abs(z[i]) > 3:
+            out.add((1, i))
+        if w(9) and (all(v > 0 for v in w(9)) or all(v < 0 for v in w(9))):
+            out.add((2, i))
+        if x and (all(b > a for a, b in pairwise(x)) or all(b < a for a, b in pairwise(x))):
+            out.add((3, i))
+        if i >= 13:
+            y = values[i - 13:i + 1]
+            d = [b - a for a, b in pairwise(y)]
+            if all(p * q < 0 for p, q in pairwise(d)):
+                out.add((4, i))
+        for n, k, level, rule in ((3, 2, 2, 5), (5, 4, 1, 6)):
+            if w(n) and (sum(v > level for v in w(n)) >= k or sum(v < -level for v in w(n)) >= k):
+                out.add((rule, i))
+        if w(15) and all(abs(v) < 1 for v in w(15)):
+            out.add((7, i))
+        if w(8) and all(abs(v) > 1 for v in w(8)):
+            out.add((8, i))
+    return out
+
+
+def test_matches_point_by_point_reference():
+    import numpy as np
+
+    rng = np.random.default_rng(11)
+    for trial in range(40):
+        n = int(rng.integers(1, 80))
+        values = list(rng.normal(0.3 * (trial % 3), 1.0, n) + np.linspace(0, trial % 4, n))
+        got = {(s.rule, s.index) for s in nelson_signals(values, LIM)}
+        assert got == _reference(values, LIM), trial

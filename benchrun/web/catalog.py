@@ -24,7 +24,7 @@ from sqlalchemy.engine import Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, NoSuchModuleError, SQLAlchemyError
 
 from benchrun.errors import StoreError
-from benchrun.records import ShotResult
+from benchrun.records import ShotResult, TestPoint
 from benchrun.store.results import normalize_url
 from benchrun.store.rows import report_record, shot_from_row
 from benchrun.store.rundata import (
@@ -324,6 +324,25 @@ class Catalog:
                                 .order_by(s.id)).mappings().all()
         shots = [shot_from_row(row) for row in rows]
         return [shot for shot in shots if not shot.pending]
+
+    def shot_metrics(self, store: Store, part: str, run_ids: set[str]
+                     ) -> Iterator[tuple[str, tuple[str, TestPoint, dict[str, Any], bool]]]:
+        """``(run_id, (serial, point, metrics, valid))`` of every shot of ``part`` in
+        ``store`` whose run is in ``run_ids``, in one query (for the part history)."""
+        s = shots_table.c
+        points: dict[str, TestPoint] = {}
+        query = select(s.run_id, s.serial, s.point, s.metrics, s.valid).where(s.part == part)
+        if len(run_ids) <= 500:
+            query = query.where(s.run_id.in_(sorted(run_ids)))
+        with store.connect() as conn:
+            for run_id, serial, point_text, metrics_text, valid in conn.execute(query):
+                if run_id not in run_ids:
+                    continue
+                point = points.get(point_text)
+                if point is None:
+                    point = points[point_text] = TestPoint(**json.loads(point_text))
+                yield run_id, (serial, point, json.loads(metrics_text) if valid else {},
+                               bool(valid))
 
     def shot_ids(self, lot: LotRow) -> dict[str, int]:
         """Raw reference → row id, for links to each shot's page."""

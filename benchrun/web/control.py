@@ -20,6 +20,9 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+
 #: d2 for moving ranges of two points (ISO 7870-2:2023 Table 3).
 D2_N2 = 1.128
 #: Baseline length used when the user names none: 20 lots (ISO 7870-2 asks for 20 to 25
@@ -78,47 +81,38 @@ def individuals_limits(values: Sequence[float], baseline: int) -> Limits | None:
     return Limits(centre, sigma, len(base))
 
 
+def _runs(flags: np.ndarray, length: int) -> np.ndarray:
+    """Indices ``i`` (of the last element) where ``flags[i-length+1 : i+1]`` are all true."""
+    if flags.size < length:
+        return np.empty(0, dtype=int)
+    return np.nonzero(sliding_window_view(flags, length).all(axis=1))[0] + length - 1
+
+
+def _counts(flags: np.ndarray, length: int, need: int) -> np.ndarray:
+    """Indices of the last element of each window of ``length`` with at least ``need`` true."""
+    if flags.size < length:
+        return np.empty(0, dtype=int)
+    return np.nonzero(sliding_window_view(flags, length).sum(axis=1) >= need)[0] + length - 1
+
+
 def nelson_signals(values: Sequence[float], limits: Limits) -> list[Signal]:
     """Every Nelson test broken by ``values`` against ``limits`` (each signalled once, at
     the point that completes it; overlapping windows signal at each completing point)."""
-    x = [float(v) for v in values]
+    x = np.asarray(values, dtype=float)
     c, s = limits.centre, limits.sigma
-    if s <= 0 or not math.isfinite(s):
+    if s <= 0 or not math.isfinite(s) or x.size == 0:
         return []
-    z = [(v - c) / s for v in x]
-    out: list[Signal] = []
-
-    def side(v: float) -> int:
-        return 1 if v > 0 else (-1 if v < 0 else 0)
-
-    for i in range(len(z)):
-        if abs(z[i]) > 3:
-            out.append(Signal(1, i))
-        if i >= 8:
-            sides = {side(v) for v in z[i - 8:i + 1]}
-            if len(sides) == 1 and 0 not in sides:
-                out.append(Signal(2, i))
-        if i >= 5:
-            w = x[i - 5:i + 1]
-            steps = [b - a for a, b in itertools.pairwise(w)]
-            if all(d > 0 for d in steps) or all(d < 0 for d in steps):
-                out.append(Signal(3, i))
-        if i >= 13:
-            w = x[i - 13:i + 1]
-            steps = [b - a for a, b in itertools.pairwise(w)]
-            if all(d != 0 for d in steps) and all(
-                    (a > 0) != (b > 0) for a, b in itertools.pairwise(steps)):
-                out.append(Signal(4, i))
-        if i >= 2:
-            w = z[i - 2:i + 1]
-            if any(sum(1 for v in w if sign * v > 2) >= 2 for sign in (1, -1)):
-                out.append(Signal(5, i))
-        if i >= 4:
-            w = z[i - 4:i + 1]
-            if any(sum(1 for v in w if sign * v > 1) >= 4 for sign in (1, -1)):
-                out.append(Signal(6, i))
-        if i >= 14 and all(abs(v) < 1 for v in z[i - 14:i + 1]):
-            out.append(Signal(7, i))
-        if i >= 7 and all(abs(v) > 1 for v in z[i - 7:i + 1]):
-            out.append(Signal(8, i))
-    return out
+    z = (x - c) / s
+    d = np.diff(x)
+    found: dict[int, np.ndarray] = {
+        1: np.nonzero(np.abs(z) > 3)[0],
+        2: np.union1d(_runs(z > 0, 9), _runs(z < 0, 9)),
+        3: np.union1d(_runs(d > 0, 5), _runs(d < 0, 5)) + 1,
+        4: _runs((np.sign(d[:-1]) * np.sign(d[1:])) < 0, 12) + 2,
+        5: np.union1d(_counts(z > 2, 3, 2), _counts(z < -2, 3, 2)),
+        6: np.union1d(_counts(z > 1, 5, 4), _counts(z < -1, 5, 4)),
+        7: _runs(np.abs(z) < 1, 15),
+        8: _runs(np.abs(z) > 1, 8),
+    }
+    signals = [Signal(rule, int(i)) for rule, where in found.items() for i in where]
+    return sorted(signals, key=lambda sig: (sig.index, sig.rule))

@@ -13,7 +13,7 @@ import math
 import statistics
 import threading
 from collections import OrderedDict
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -23,7 +23,7 @@ from benchrun.config.limits import LimitsSpec, load_limits
 from benchrun.errors import BenchrunError
 from benchrun.grading import LotGrade, grade_lot
 from benchrun.grading.grade import point_matches
-from benchrun.records import ShotResult
+from benchrun.records import ShotResult, TestPoint
 from benchrun.web.catalog import Catalog, Lot, LotRow
 from benchrun.web.control import (
     DEFAULT_BASELINE,
@@ -41,6 +41,11 @@ class LRUCache:
         self._data: OrderedDict[Any, Any] = OrderedDict()
         self._size = size
         self._lock = threading.Lock()
+
+    def peek(self, key: Any) -> Any:
+        """The cached value, or ``None``."""
+        with self._lock:
+            return self._data.get(key)
 
     def get(self, key: Any, make: Callable[[], Any]) -> Any:
         with self._lock:
@@ -146,16 +151,41 @@ class LotData:
     def parts(self) -> list[str]:
         return sorted({row.part for row in self.catalog.lots()})
 
-    def _summary(self, row: LotRow, limits: LimitsSpec
-                 ) -> dict[tuple[str, str], tuple[int, float, float | None]]:
-        key = ("summary", *self._key(row), id(limits))
-        return self._summaries.get(key, lambda: lot_summary(self.catalog.shots(row), limits))
+    def _summaries_of(self, rows: list[LotRow], limits: LimitsSpec
+                      ) -> list[dict[tuple[str, str], tuple[int, float, float | None]]]:
+        """Each lot's summary: cached ones as they are, the others from one query per store
+        over the part's shots (light columns only, no ShotResult built)."""
+        keys = [("summary", *self._key(row), id(limits)) for row in rows]
+        found = [self._summaries.peek(key) for key in keys]
+        missing = [row for row, got in zip(rows, found, strict=True) if got is None]
+        if missing:
+            by_store: dict[str, list[LotRow]] = {}
+            for row in missing:
+                by_store.setdefault(row.store.url, []).append(row)
+            for group in by_store.values():
+                wanted = {row.run_id for row in group}
+                items: dict[str, list[Any]] = {run_id: [] for run_id in wanted}
+                for run_id, item in self.catalog.shot_metrics(group[0].store, group[0].part,
+                                                              wanted):
+                    items[run_id].append(item)
+                for row in group:
+                    key = ("summary", *self._key(row), id(limits))
+                    self._summaries.get(key, lambda these=items[row.run_id]: lot_summary(
+                        these, limits))
+            found = [self._summaries.peek(key) for key in keys]
+        return [f or {} for f in found]
 
     def history(self, part: str, baseline: int = DEFAULT_BASELINE
                 ) -> tuple[list[Chart], LimitsSpec | None, list[LotRow]]:
         """Charts of every graded metric of ``part`` (limits of its newest lot)."""
         rows = sorted((r for r in self.catalog.lots() if r.part == part),
                       key=lambda r: (r.started, r.run_id))
+        state = tuple(self._key(row) for row in rows)
+        return self._cache.get(("history", part, baseline, state),
+                               lambda: self._history(part, baseline, rows))
+
+    def _history(self, part: str, baseline: int, rows: list[LotRow]
+                 ) -> tuple[list[Chart], LimitsSpec | None, list[LotRow]]:
         limits = None
         for row in reversed(rows):
             lot = self.catalog.lot(row.run_id)
@@ -168,7 +198,7 @@ class LotData:
                 break
         if limits is None:
             return [], None, rows
-        summaries = [(row, self._summary(row, limits)) for row in rows]
+        summaries = list(zip(rows, self._summaries_of(rows, limits), strict=True))
         charts = []
         for metric, condition in graded_pairs(limits):
             points = [LotPoint(row.run_id, row.lot, row.started, *s[(metric, condition)])
@@ -198,32 +228,37 @@ def graded_pairs(limits: LimitsSpec) -> list[tuple[str, str]]:
     return pairs
 
 
-def lot_summary(shots: Sequence[ShotResult], limits: LimitsSpec
-                ) -> dict[tuple[str, str], tuple[int, float, float | None]]:
+def lot_summary(shots: Iterable[ShotResult | tuple[str, TestPoint, dict[str, Any], bool]],
+                limits: LimitsSpec) -> dict[tuple[str, str], tuple[int, float, float | None]]:
     """Per graded (metric, condition): number of devices, mean and sample standard deviation
     of the device means (each device's mean over its valid shots at points belonging to the
-    condition, matched as grading matches them)."""
+    condition, matched as grading matches them). ``shots`` are ShotResults or
+    ``(serial, point, metrics, valid)`` tuples."""
     pairs = graded_pairs(limits)
     conditions = {c.name: c for c in limits.conditions}
     per_device: dict[tuple[str, str], dict[str, list[float]]] = {p: {} for p in pairs}
     matched: dict[Any, list[str]] = {}
     for shot in shots:
-        if not shot.valid:
+        if isinstance(shot, ShotResult):
+            serial, point, metrics, valid = shot.serial, shot.point, shot.metrics, shot.valid
+        else:
+            serial, point, metrics, valid = shot
+        if not valid:
             continue
-        point_key = (shot.point.temperature_K, shot.point.forward_current_A,
-                     shot.point.bus_voltage_V, shot.point.didt_A_per_s)
+        point_key = (point.temperature_K, point.forward_current_A, point.bus_voltage_V,
+                     point.didt_A_per_s)
         names = matched.get(point_key)
         if names is None:
             names = [n for n, c in conditions.items()
-                     if point_matches(shot.point, c, limits.tolerances)]
+                     if point_matches(point, c, limits.tolerances)]
             matched[point_key] = names
         for name in names:
             for metric, condition in pairs:
                 if condition != name:
                     continue
-                value = shot.metrics.get(metric)
+                value = metrics.get(metric)
                 if isinstance(value, int | float) and math.isfinite(value):
-                    per_device[(metric, condition)].setdefault(shot.serial, []).append(
+                    per_device[(metric, condition)].setdefault(serial, []).append(
                         float(value))
     out: dict[tuple[str, str], tuple[int, float, float | None]] = {}
     for pair, devices in per_device.items():
