@@ -8,6 +8,7 @@ import json
 import logging
 
 import numpy as np
+import pytest
 from sqlalchemy import create_engine
 from web_helpers import PASSWORD, csrf_of, sign_in, web_site  # noqa: F401 - fixture
 
@@ -180,3 +181,24 @@ def test_users_command(tmp_path, monkeypatch, capsys):
                  "--password-stdin"]) == 2
     assert main(["users", "remove", str(folder), "kim"]) == 0
     assert UserFile(users_file).list() == []
+
+
+def test_history_agrees_with_grading(web_site):  # noqa: F811
+    from benchrun.config.limits import load_limits
+    from benchrun.grading import grade_lot
+    from benchrun.web.catalog import Catalog
+    from benchrun.web.data import LotData
+
+    catalog = Catalog(str(web_site.root))
+    charts, limits, rows = LotData(catalog).history("DX-4417")
+    assert limits is not None and len(rows) == 1
+    grade = grade_lot(web_site.signed.run.shots, load_limits(web_site.signed.run.limits_path))
+    stats = {(m.metric, m.condition): m for m in grade.statistics.metrics}
+    assert charts
+    for chart in charts:
+        expected = stats[(chart.metric, chart.condition)]
+        (point,) = chart.points
+        assert point.n == expected.n
+        assert point.mean == pytest.approx(expected.mean, rel=1e-12)
+        assert point.spread == pytest.approx(expected.std, rel=1e-12)
+    catalog.close()
