@@ -202,3 +202,17 @@ def test_history_agrees_with_grading(web_site):  # noqa: F811
         assert point.mean == pytest.approx(expected.mean, rel=1e-12)
         assert point.spread == pytest.approx(expected.std, rel=1e-12)
     catalog.close()
+
+
+def test_store_older_than_the_live_tables(tmp_path):
+    import sqlite3
+
+    db = tmp_path / "old.db"
+    with sqlite3.connect(db) as conn:
+        conn.execute("CREATE TABLE runs (run_id TEXT PRIMARY KEY, part TEXT, lot TEXT, "
+                     "started TEXT, finished TEXT, status TEXT, manifest TEXT)")
+        conn.execute("CREATE TABLE reports (report_id TEXT, run_id TEXT, path TEXT, "
+                     "sha256 TEXT, created TEXT, signer TEXT, disposition TEXT, details TEXT)")
+    client = create_app(WebConfig(results=str(db), verify_in_background=False)).test_client()
+    assert client.get("/live").status_code == 200
+    assert client.get("/").status_code == 200

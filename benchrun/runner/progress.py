@@ -142,15 +142,24 @@ class RunProgress:
 class LiveReport:
     """A run's live publisher and the log handler feeding it (see :func:`start_live`)."""
 
+    #: Least time between two published waveforms (reading one back costs the run time).
+    WAVEFORM_INTERVAL_S = 1.0
+
     def __init__(self, publisher: Any, handler: logging.Handler) -> None:
         self.publisher = publisher
         self.handler = handler
+        self._last_waveform = float("-inf")
 
     def shot(self, result: Any, raw: Any) -> None:
-        """Publish a concluded shot's waveform and markers; a read failure is skipped."""
+        """Publish a concluded shot's waveform and markers (at most one a second; an invalid
+        shot always); a read failure is skipped."""
         from benchrun.errors import BenchrunError
         from benchrun.store.live import physical_waveform
 
+        now = time.monotonic()
+        if result.valid and now - self._last_waveform < self.WAVEFORM_INTERVAL_S:
+            return
+        self._last_waveform = now
         try:
             t, v, i = physical_waveform(raw.read_shot(result.raw_ref))
         except (BenchrunError, KeyError, OSError, ValueError):
@@ -166,6 +175,16 @@ class LiveReport:
         """Mark the run ended and stop sending log lines."""
         logging.getLogger(LOGGER_NAME).removeHandler(self.handler)
         self.publisher.finish(state)
+        self.publisher.close()
+
+
+def _live_pragmas(dbapi_connection: Any, _record: Any) -> None:
+    cursor = dbapi_connection.cursor()
+    try:
+        cursor.execute("PRAGMA synchronous=NORMAL")
+        cursor.execute("PRAGMA busy_timeout=10000")
+    finally:
+        cursor.close()
 
 
 def start_live(store_url: str, run_id: str, *, part: str, lot: str, bench: str,
@@ -180,8 +199,12 @@ def start_live(store_url: str, run_id: str, *, part: str, lot: str, bench: str,
     from benchrun.store.live import LiveLogHandler, LivePublisher
 
     try:
-        engine = create_engine(store_url, connect_args=(
-            {"timeout": 10} if store_url.startswith("sqlite") else {}))
+        sqlite = store_url.startswith("sqlite")
+        engine = create_engine(store_url, connect_args={"timeout": 10} if sqlite else {})
+        if sqlite:  # progress needs no disk sync per write (the store's own rows do)
+            from sqlalchemy import event
+
+            event.listen(engine, "connect", _live_pragmas)
         publisher = LivePublisher(engine, run_id, part=part, lot=lot, bench=bench,
                                   total=total, done=done)
     except SQLAlchemyError as exc:

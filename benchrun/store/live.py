@@ -199,6 +199,10 @@ class LivePublisher:
         with self._lock:
             self._run("event", lambda conn: conn.execute(insert(live_events_table), row))
 
+    def close(self) -> None:
+        """Release the database connections."""
+        self._engine.dispose()
+
     def finish(self, state: str) -> None:
         """The run ended (``complete``, ``interrupted``, ``aborted``...)."""
         self._row["state"] = state

@@ -6,6 +6,7 @@ from typing import Any
 
 from flask import Blueprint, Response, abort, jsonify, render_template, request
 
+from benchrun.errors import StoreError
 from benchrun.store.live import live_events, live_run, live_runs
 from benchrun.web.app import ext, require
 from benchrun.web.catalog import safe_name
@@ -20,11 +21,11 @@ def _all_live() -> list[tuple[Any, Any]]:
     catalog = ext("catalog")
     catalog.refresh()
     for store in catalog.stores:
-        with store.connect() as conn:
-            try:
+        try:
+            with store.connect() as conn:
                 runs = live_runs(conn)
-            except Exception:  # a store written before the live tables existed
-                continue
+        except StoreError:  # a store written before the live tables existed
+            continue
         for run in runs:
             if run.run_id not in seen:
                 seen.add(run.run_id)
