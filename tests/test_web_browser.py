@@ -29,12 +29,15 @@ pytestmark = pytest.mark.skipif(
 def site(web_site, tmp_path_factory):  # noqa: F811
     from werkzeug.serving import make_server
 
-    app = create_app(WebConfig(results=str(web_site.root), users=web_site.users,
+    # a private copy: the live run below adds a run folder to it
+    root = web_site.copy(tmp_path_factory.mktemp("browser-site"))
+    app = create_app(WebConfig(results=str(root), users=web_site.users,
                                trusted_certs=[web_site.cert], verify_in_background=False))
     server = make_server("127.0.0.1", 0, app, threaded=True)
     thread = threading.Thread(target=server.serve_forever, daemon=True)
     thread.start()
-    yield f"http://127.0.0.1:{server.server_port}", web_site, tmp_path_factory.mktemp("shots")
+    yield (f"http://127.0.0.1:{server.server_port}", web_site, tmp_path_factory.mktemp("shots"),
+           root)
     server.shutdown()
     thread.join(5)
 
@@ -80,7 +83,7 @@ def _sign_in(browser, base, name="eng"):
 def test_sign_in_lot_waveform_verify(site, browser):
     from selenium.webdriver.common.by import By
 
-    base, _web, shots = site
+    base, _web, shots, _root = site
     _sign_in(browser, base)
     browser.save_screenshot(str(shots / "lots.png"))
     browser.find_element(By.CLASS_NAME, "lotlink").click()
@@ -101,7 +104,7 @@ def test_sign_in_lot_waveform_verify(site, browser):
 def test_tampered_upload_rejected(site, browser, tmp_path):
     from selenium.webdriver.common.by import By
 
-    base, web, _shots = site
+    base, web, _shots, _root = site
     _sign_in(browser, base, "ada")
     bad = bytearray(web.signed.pdf.read_bytes())
     bad[len(bad) // 2] ^= 0x10
@@ -120,8 +123,8 @@ def test_tampered_upload_rejected(site, browser, tmp_path):
 def test_live_run_of_the_simulated_bench_advances(site, browser):
     from selenium.webdriver.common.by import By
 
-    base, web, shots = site
-    out = web.root / "live-runs"
+    base, _web, shots, root = site
+    out = root / "live-runs"
     process = subprocess.Popen(
         [sys.executable, "-m", "benchrun.cli", "run", str(ROOT / "sequences/dx4417-demo.yaml"),
          "--bench", str(ROOT / "sequences/bench-sim.yaml"), "--out", str(out),
