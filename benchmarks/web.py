@@ -57,6 +57,7 @@ def generate(url: str, folder: Path, lots: int, per_lot: int, seed: int = 3) -> 
     run_dir = folder / "shared-run"
     run_dir.mkdir(exist_ok=True)
     shutil.copy(ROOT / "limits" / "DX-4417.yaml", run_dir / "limits.yaml")
+    shutil.copy(ROOT / "sequences" / "bench-sim.yaml", run_dir / "bench.yaml")
     write_manifest(run_dir, {"run_id": "shared-run", "part": "DX-4417", "lot": "-"})
     devices = max(1, per_lot // (2 * 10))
     repeats = max(1, per_lot // (2 * devices))

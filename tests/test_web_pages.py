@@ -185,14 +185,15 @@ def test_users_command(tmp_path, monkeypatch, capsys):
 
 def test_history_agrees_with_grading(web_site):  # noqa: F811
     from benchrun.config.limits import load_limits
-    from benchrun.grading import grade_lot
+    from benchrun.grading import grade_lot, run_bench
     from benchrun.web.catalog import Catalog
     from benchrun.web.data import LotData
 
     catalog = Catalog(str(web_site.root))
     charts, limits, rows = LotData(catalog).history("DX-4417")
     assert limits is not None and len(rows) == 1
-    grade = grade_lot(web_site.signed.run.shots, load_limits(web_site.signed.run.limits_path))
+    run = web_site.signed.run
+    grade = grade_lot(run.shots, load_limits(run.limits_path), bench=run_bench(run))
     stats = {(m.metric, m.condition): m for m in grade.statistics.metrics}
     assert charts
     for chart in charts:

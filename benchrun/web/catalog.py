@@ -28,6 +28,7 @@ from benchrun.records import ShotResult, TestPoint
 from benchrun.store.results import normalize_url
 from benchrun.store.rows import report_record, shot_from_row
 from benchrun.store.rundata import (
+    BENCH_FILE,
     LIMITS_FILE,
     RAW_FILE,
     RUN_MANIFEST,
@@ -130,6 +131,13 @@ class Lot:
         if self.run_dir is None or not (self.run_dir / LIMITS_FILE).is_file():
             return None
         return self.run_dir / LIMITS_FILE
+
+    @property
+    def bench_path(self) -> Path | None:
+        """The run folder's ``bench.yaml`` (as ``RunData.bench_path``), or ``None``."""
+        if self.run_dir is None or not (self.run_dir / BENCH_FILE).is_file():
+            return None
+        return self.run_dir / BENCH_FILE
 
     @property
     def raw_path(self) -> Path | None:

@@ -21,7 +21,7 @@ from typing import Any
 from benchrun.analysis.metrics_meta import METRICS
 from benchrun.config.limits import LimitsSpec, load_limits
 from benchrun.errors import BenchrunError
-from benchrun.grading import LotGrade, grade_lot
+from benchrun.grading import LotGrade, grade_lot, run_bench
 from benchrun.grading.grade import point_matches
 from benchrun.records import ShotResult, TestPoint
 from benchrun.web.catalog import Catalog, Lot, LotRow
@@ -142,10 +142,19 @@ class LotData:
         if not shots:
             return LotView(lot, shots, None, limits, "no analysed shots yet")
         try:
-            grade = grade_lot(shots, limits)
+            grade = grade_lot(shots, limits, bench=self._bench(lot))
         except BenchrunError as exc:
             return LotView(lot, shots, None, limits, f"cannot grade: {exc}")
         return LotView(lot, shots, grade, limits, None)
+
+    def _bench(self, lot: Lot) -> Any:
+        """The run's bench file (its accuracies are the uncertainty budgets' inputs)."""
+        path = lot.bench_path
+        if path is None:
+            return run_bench(lot)  # raises GradingError with what to do
+        stat = path.stat()
+        return self._cache.get(("bench", str(path), stat.st_mtime_ns, stat.st_size),
+                               lambda: run_bench(lot))
 
     # -- part history ------------------------------------------------------------------
     def parts(self) -> list[str]:
