@@ -1,7 +1,7 @@
 """Response times of ``benchrun serve`` over a large generated store.
 
 Generates a results store of ``--lots`` lots (default 1,000) of ``--shots-per-lot`` shots
-(default 400: 20 devices x 2 conditions x 10 repeats, 400,000 shots in all) of one part, with
+(default 400: 10 devices x 2 conditions x 20 repeats, 400,000 shots in all) of one part, with
 metrics that scatter from shot to shot and device to device and drift slowly across lots,
 in SQLite and, with ``--postgres`` (a throwaway cluster, as tests/pg_fixture.py starts one),
 in PostgreSQL. Then times, through Flask's test client (no network), the lots page, a lot page
@@ -59,7 +59,7 @@ def generate(url: str, folder: Path, lots: int, per_lot: int, seed: int = 3) -> 
     shutil.copy(ROOT / "limits" / "DX-4417.yaml", run_dir / "limits.yaml")
     shutil.copy(ROOT / "sequences" / "bench-sim.yaml", run_dir / "bench.yaml")
     write_manifest(run_dir, {"run_id": "shared-run", "part": "DX-4417", "lot": "-"})
-    devices = max(1, per_lot // (2 * 10))
+    devices = 10  # the lot size the DX-4417 limits file states
     repeats = max(1, per_lot // (2 * devices))
     written = 0
     with engine.begin() as conn:
