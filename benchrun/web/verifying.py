@@ -1,4 +1,4 @@
-"""Running the report's four checks for the web pages, and remembering the answers.
+"""Running the report's verification checks for the web pages, and remembering the answers.
 
 A stored report is verified with :func:`benchrun.report.verify_report` against its run
 folder and the certificates the server trusts (``--trust``). The answer is kept, keyed by the
@@ -121,7 +121,7 @@ class Verifier:
         return entry[1]
 
     def verify(self, lot: Lot) -> Outcome:
-        """Run the four checks on the lot's stored report now."""
+        """Run every verification check on the lot's stored report now."""
         pdf = self.report_file(lot)
         if pdf is None:
             return Outcome(False, (), None, {}, None,
