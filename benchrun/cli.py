@@ -43,6 +43,8 @@ COMMAND_MODULES = (
     "reports",
     "export",
     "compact",
+    "serve",
+    "users",
 )
 
 

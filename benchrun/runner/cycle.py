@@ -242,6 +242,7 @@ class ShotCycle:
                 self._correct(point, float(result.conditions["if_A"]), flight.first_pulse_s)
         if self.options.on_stored is not None:
             self.options.on_stored(result)
+        self.progress.stored(result, self.raw)
         if not result.valid:
             log.warning("%s %s repeat %d attempt %d invalid: %s", planned.serial, point.label,
                         planned.repeat, flight.attempt, "; ".join(result.flags))

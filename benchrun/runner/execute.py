@@ -37,7 +37,7 @@ from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError
 from benchrun.records import ShotResult
 from benchrun.runner.cycle import ShotCycle
 from benchrun.runner.plan import expand_points, plan_run
-from benchrun.runner.progress import RunProgress, close_run_log, open_run_log
+from benchrun.runner.progress import RunProgress, close_run_log, open_run_log, start_live
 from benchrun.runner.safety import (
     CalibrationCheck,
     Clock,
@@ -342,6 +342,7 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
     station: Station | None = None
     cycle: ShotCycle | None = None
     error: BaseException | None = None
+    live = None
     try:
         station = Station(prep.bench, resources, options.clock)
         identities = station.identify()
@@ -362,7 +363,10 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         outcome.shots_skipped = skipped
         if skipped:
             log.info("resume: %d of %d tests already complete", skipped, total)
-        with RunProgress(total, skipped, enabled=options.show_progress) as progress:
+        live = start_live(store.url, outcome.run_id, part=prep.sequence.part,
+                          lot=prep.sequence.lot, bench=prep.bench.name, total=total,
+                          done=skipped)
+        with RunProgress(total, skipped, enabled=options.show_progress, live=live) as progress:
             cycle.progress = progress
             for step in steps:
                 todo = [s for s in step.shots if s.identity not in done]
@@ -384,6 +388,8 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         if cycle is not None:
             cycle.close()  # shots fired before the end are stored and analysed
         _finish(outcome, manifest, store)
+        if live is not None:
+            live.close(outcome.status)
     if error is not None:
         log.error("run %s %s: %s", outcome.run_id, outcome.status, outcome.error)
         raise error

@@ -2,7 +2,9 @@
 
 The display shows the device, temperature and shot being fired, shots done out of the
 total and an ETA; the log file ``run.log`` in the run folder keeps every step with a UTC
-time stamp, appended to on resume.
+time stamp, appended to on resume. With a :class:`~benchrun.store.live.LivePublisher` the same
+progress, the last shot's waveform and every log line go to the results store, where
+``benchrun serve`` shows them (:func:`start_live`).
 """
 
 from __future__ import annotations
@@ -12,6 +14,7 @@ import sys
 import time
 from pathlib import Path
 from types import TracebackType
+from typing import Any
 
 from rich.console import Console
 from rich.progress import (
@@ -64,10 +67,13 @@ class RunProgress:
         Shots already complete (a resumed run).
     enabled
         Show the display (on standard error).
+    live
+        Publishes the progress through the results store (:func:`start_live`), or ``None``.
     """
 
     def __init__(self, total: int, done: int = 0, *, enabled: bool = True,
-                 console: Console | None = None) -> None:
+                 console: Console | None = None, live: LiveReport | None = None) -> None:
+        self.live = live
         self.total = total
         self.done = done
         self.enabled = enabled
@@ -103,20 +109,108 @@ class RunProgress:
     def status(self, text: str) -> None:
         """Show what is happening now (e.g. waiting for a temperature)."""
         self._text = text
+        if self.live is not None:
+            self.live.publisher.status(text)
         if self._progress is not None and self._task is not None:
             self._progress.update(self._task, description=text)
 
     def shooting(self, serial: str, temperature_K: float, label: str) -> None:
         """Show the shot about to be fired."""
+        if self.live is not None:
+            self.live.publisher.shooting(serial, temperature_K, label)
         self.status(f"{serial}  {temperature_K - 273.15:6.1f} °C  {label}")
 
     def advance(self, count: int = 1) -> None:
         """Count completed shots."""
         self.done += count
+        if self.live is not None:
+            self.live.publisher.advance(self.done)
         if self._progress is not None and self._task is not None:
             self._progress.update(self._task, completed=self.done)
+
+    def stored(self, result: Any, raw: Any) -> None:
+        """A shot was concluded: publish its waveform (read back from the raw record)."""
+        if self.live is not None:
+            self.live.shot(result, raw)
 
     def print(self, text: str) -> None:
         """A line above the live display (warnings, safe-state report)."""
         if self.enabled:
             self._console.print(text)
+
+
+class LiveReport:
+    """A run's live publisher and the log handler feeding it (see :func:`start_live`)."""
+
+    #: Least time between two published waveforms (reading one back costs the run time).
+    WAVEFORM_INTERVAL_S = 1.0
+
+    def __init__(self, publisher: Any, handler: logging.Handler) -> None:
+        self.publisher = publisher
+        self.handler = handler
+        self._last_waveform = float("-inf")
+
+    def shot(self, result: Any, raw: Any) -> None:
+        """Publish a concluded shot's waveform and markers (at most one a second; an invalid
+        shot always); a read failure is skipped."""
+        from benchrun.errors import BenchrunError
+        from benchrun.store.live import physical_waveform
+
+        now = time.monotonic()
+        if result.valid and now - self._last_waveform < self.WAVEFORM_INTERVAL_S:
+            return
+        self._last_waveform = now
+        try:
+            t, v, i = physical_waveform(raw.read_shot(result.raw_ref))
+        except (BenchrunError, KeyError, OSError, ValueError):
+            return
+        m = result.metrics or {}
+        markers = {"t0_s": m.get("t0_s"), "t_irrm_s": m.get("t_irrm_s"),
+                   "irrm_A": m.get("irrm_A"), "t_trr_s": m.get("t_trr_s"),
+                   "t2_s": m.get("t2_s")}
+        self.publisher.shot(result.serial, result.point.label, result.valid,
+                            list(result.flags), t, v, i, markers)
+
+    def close(self, state: str) -> None:
+        """Mark the run ended and stop sending log lines."""
+        logging.getLogger(LOGGER_NAME).removeHandler(self.handler)
+        self.publisher.finish(state)
+        self.publisher.close()
+
+
+def _live_pragmas(dbapi_connection: Any, _record: Any) -> None:
+    cursor = dbapi_connection.cursor()
+    try:
+        cursor.execute("PRAGMA synchronous=NORMAL")
+        cursor.execute("PRAGMA busy_timeout=10000")
+    finally:
+        cursor.close()
+
+
+def start_live(store_url: str, run_id: str, *, part: str, lot: str, bench: str,
+               total: int, done: int) -> LiveReport | None:
+    """Start publishing a run's progress through the results store at ``store_url``.
+
+    Returns ``None`` (the run goes on unpublished) when the store cannot be reached.
+    """
+    from sqlalchemy import create_engine
+    from sqlalchemy.exc import SQLAlchemyError
+
+    from benchrun.store.live import LiveLogHandler, LivePublisher
+
+    try:
+        sqlite = store_url.startswith("sqlite")
+        engine = create_engine(store_url, connect_args={"timeout": 10} if sqlite else {})
+        if sqlite:  # progress needs no disk sync per write (the store's own rows do)
+            from sqlalchemy import event
+
+            event.listen(engine, "connect", _live_pragmas)
+        publisher = LivePublisher(engine, run_id, part=part, lot=lot, bench=bench,
+                                  total=total, done=done)
+    except SQLAlchemyError as exc:
+        logging.getLogger(LOGGER_NAME).warning("live progress not published: %s",
+                                               str(exc).splitlines()[0])
+        return None
+    handler = LiveLogHandler(publisher)
+    logging.getLogger(LOGGER_NAME).addHandler(handler)
+    return LiveReport(publisher, handler)

@@ -77,6 +77,40 @@ reports_table = Table(
     Column("details", Text, nullable=False),
 )
 
+#: Live state of a run in progress, one row per run, written by the runner's progress
+#: reporter (:mod:`benchrun.store.live`) and read by ``benchrun serve``.
+live_runs_table = Table(
+    "live_runs",
+    metadata,
+    Column("run_id", String(200), primary_key=True),
+    Column("bench", String(200), nullable=False),
+    Column("part", String(200), nullable=False),
+    Column("lot", String(200), nullable=False),
+    Column("state", String(40), nullable=False),
+    Column("updated", String(40), nullable=False),
+    Column("started", String(40), nullable=False),
+    Column("status_text", Text, nullable=False),
+    Column("serial", String(200), nullable=True),
+    Column("temperature_K", Double, nullable=True),
+    Column("point_label", String(200), nullable=True),
+    Column("done", Integer, nullable=False),
+    Column("total", Integer, nullable=False),
+    Column("eta_s", Double, nullable=True),
+    Column("last_shot", Text, nullable=True),
+)
+
+#: Retries, invalid shots, safe-state reports and other log lines of a run in progress.
+live_events_table = Table(
+    "live_events",
+    metadata,
+    Column("id", Integer, primary_key=True, autoincrement=True),
+    Column("run_id", String(200), nullable=False, index=True),
+    Column("time", String(40), nullable=False),
+    Column("kind", String(40), nullable=False),
+    Column("level", String(20), nullable=False),
+    Column("message", Text, nullable=False),
+)
+
 #: ShotResult fields stored in their own column (everything else goes to ``extra``).
 SHOT_COLUMNS = (
     "run_id", "part", "lot", "serial", "repeat", "attempt", "timestamp",
