@@ -23,8 +23,6 @@ import datetime as _dt
 import hashlib
 import logging
 import shutil
-import signal
-import threading
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -36,6 +34,7 @@ from benchrun.config.sequence import PartRatings, SequenceConfig, limits_path, l
 from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError
 from benchrun.records import ShotResult
 from benchrun.runner.cycle import ShotCycle
+from benchrun.runner.interrupts import SpaceReserve, StopSignals, bounded
 from benchrun.runner.plan import expand_points, plan_run
 from benchrun.runner.progress import RunProgress, close_run_log, open_run_log
 from benchrun.runner.safety import (
@@ -63,6 +62,9 @@ from benchrun.store.rundata import (
 )
 
 log = logging.getLogger("benchrun.runner")
+
+#: Margin of the safe-state procedure's wall-clock bound (:func:`safe_state_bound_s`), s.
+SAFE_STATE_MARGIN_S = 10.0
 
 
 @dataclass
@@ -270,14 +272,6 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
     return run_id, run_dir, manifest, False
 
 
-class _Terminated(KeyboardInterrupt):
-    """SIGTERM, handled like Ctrl-C (safe state, then stop)."""
-
-
-def _raise_terminated(signum: int, frame: Any) -> None:
-    raise _Terminated(f"signal {signum}")
-
-
 def run_sequence(sequence_path: str | Path, bench_path: str | Path,
                  options: RunOptions) -> RunOutcome:
     """Run (or resume) a sequence on a bench; see the module docstring.
@@ -298,9 +292,8 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
                                                              or default_store_url(run_dir))
     outcome = RunOutcome(run_id, run_dir, url, warnings=list(prep.calibration.warnings))
     handler = open_run_log(run_dir / LOG_FILE)
-    old_term = None
-    if threading.current_thread() is threading.main_thread():
-        old_term = signal.signal(signal.SIGTERM, _raise_terminated)
+    signals = StopSignals().install()
+    reserve = SpaceReserve(run_dir)
     try:
         log.info("%s run %s: %s lot %s, sequence %s, bench %s",
                  "resuming" if resumed else "starting", run_id, prep.sequence.part,
@@ -324,20 +317,37 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
             try:
                 with RawRecord(run_dir / RAW_FILE, "a", compression=None,
                                durability=durability) as raw:
-                    _execute(prep, options, outcome, manifest, store, raw)
+                    _execute(prep, options, outcome, manifest, store, raw, signals)
             finally:
+                signals.defer()
+                reserve.release()  # the end of the run is recorded even on a full disk
                 _record_files(outcome, manifest, store)
+    except KeyboardInterrupt as exc:
+        # a stop signal before the bench was touched (or while the stores were closing)
+        if outcome.status == "running":
+            outcome.status = "interrupted"
+            outcome.error = "interrupted (Ctrl-C or SIGTERM)"
+            _finish(outcome, manifest, None)
+            reserve.release()
+            _record_files(outcome, manifest, None)
+        raise exc
     finally:
-        if old_term is not None:
-            signal.signal(signal.SIGTERM, old_term)
-        close_run_log(handler)
-        if options.on_finish is not None:
-            options.on_finish(outcome)
+        signals.defer()
+        reserve.release()
+        try:
+            if handler.failure is not None:
+                outcome.warnings.append(f"the run log could not be written: {handler.failure}")
+            if options.on_finish is not None:
+                options.on_finish(outcome)
+        finally:
+            signals.restore()
+            close_run_log(handler)
     return outcome
 
 
 def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
-             manifest: dict[str, Any], store: ResultsStore, raw: RawRecord) -> None:
+             manifest: dict[str, Any], store: ResultsStore, raw: RawRecord,
+             signals: StopSignals | None = None) -> None:
     resources = resolve_resources(prep.bench, options.sim_resources)
     station: Station | None = None
     cycle: ShotCycle | None = None
@@ -378,8 +388,10 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         outcome.error = str(exc)
         error = exc
     finally:
+        if signals is not None:
+            signals.defer()  # from here on a signal waits until the end is recorded
         if station is not None:
-            outcome.safe_state = _safe(station)
+            outcome.safe_state = _safe(station, prep.bench, options.clock)
             station.close()
         if cycle is not None:
             cycle.close()  # shots fired before the end are stored and analysed
@@ -391,16 +403,18 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         raise SafetyError(outcome.safe_state.describe())
 
 
-def _safe(station: Station) -> SafeStateReport:
-    # a second Ctrl-C while making safe must not skip the rest of the procedure
-    previous = None
-    if threading.current_thread() is threading.main_thread():
-        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
-    try:
-        return station.make_safe()
-    finally:
-        if previous is not None:
-            signal.signal(signal.SIGINT, previous)
+def safe_state_bound_s(bench: BenchConfig, clock: Clock) -> float:
+    """Wall-clock bound of the safe-state procedure: the discharge timeout (in the clock's
+    time, shortened by an accelerated clock) plus, per instrument, its I/O timeout three
+    times over (switch off, read back, one reconnect) and a margin of 10 s."""
+    speedup = float(getattr(clock, "speedup", 1.0)) or 1.0
+    io = sum(3.0 * entry.timeout for _, entry in bench.instruments.items())
+    return bench.safety.discharge_timeout / speedup + io + SAFE_STATE_MARGIN_S
+
+
+def _safe(station: Station, bench: BenchConfig, clock: Clock) -> SafeStateReport:
+    """The safe state, bounded in time (signals are deferred by the caller)."""
+    return bounded(station.make_safe, safe_state_bound_s(bench, clock))
 
 
 def _serials(sequence: SequenceConfig, station: Station) -> list[str]:
@@ -416,7 +430,7 @@ def _serials(sequence: SequenceConfig, station: Station) -> list[str]:
     return list(sequence.devices)
 
 
-def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore) -> None:
+def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore | None) -> None:
     manifest["status"] = outcome.status
     manifest["finished"] = utc_now()
     manifest["safe_state"] = outcome.safe_state.to_dict() if outcome.safe_state else None
@@ -426,12 +440,22 @@ def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore) 
     manifest["store_url"] = manifest.get("store_url")
 
 
-def _record_files(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore) -> None:
-    """Hash the run's files (raw record closed) and record the end of the run."""
+def _record_files(outcome: RunOutcome, manifest: dict[str, Any],
+                  store: ResultsStore | None) -> None:
+    """Hash the run's files (raw record closed) and record the end of the run: the manifest
+    first, then the results database (each attempted even when the other fails)."""
     try:
         manifest["files"] = hash_run_files(outcome.run_dir)
         write_manifest(outcome.run_dir, manifest)
+    except (BenchrunError, OSError) as exc:
+        log.error("could not record the end of run %s in run.json: %s", outcome.run_id, exc)
+        outcome.warnings.append(f"run.json could not be updated: {exc}")
+    if store is None:
+        return
+    try:
         store.update_run(outcome.run_id, status=outcome.status,
                          finished=manifest.get("finished") or utc_now(), manifest=manifest)
-    except BenchrunError as exc:
-        log.error("could not record the end of run %s: %s", outcome.run_id, exc)
+    except (BenchrunError, OSError) as exc:
+        log.error("could not record the end of run %s in the results database: %s",
+                  outcome.run_id, exc)
+        outcome.warnings.append(f"the results database could not record the end: {exc}")
