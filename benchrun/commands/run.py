@@ -104,6 +104,8 @@ def run(args: argparse.Namespace) -> int:
         on_finish=print_outcome,
     )
     signer = signer_from_args(args) if wants_signing(args) else None
+    if signer is not None:
+        options.report = True  # recorded: --resume writes a report a crash kept from being
     outcome = run_on_bench(args.sequence, args.bench, options, sim_speedup=args.sim_speedup,
                            sim_seed=args.sim_seed)
     if outcome.status != "complete":

@@ -53,6 +53,7 @@ from benchrun.store.rundata import (
     LIMITS_FILE,
     LOG_FILE,
     RAW_FILE,
+    REPORT_FILE,
     SEQUENCE_FILE,
     default_store_url,
     hash_run_files,
@@ -119,6 +120,10 @@ class RunOptions:
     on_stored: Callable[[ShotResult], None] | None = None
     on_finish: Callable[[RunOutcome], None] | None = None
     durability: str = DURABILITY_POWER_LOSS
+    #: a signed report is to be written once the run is complete (recorded in the manifest
+    #: as ``report_requested``; ``--resume`` of a complete run whose report was never
+    #: written then returns the complete outcome so the caller writes it)
+    report: bool = False
 
 
 @dataclass
@@ -205,16 +210,33 @@ def _new_run_id(sequence: SequenceConfig, out_dir: Path) -> str:
     return run_id
 
 
+def report_missing(run_dir: Path, manifest: dict[str, Any]) -> bool:
+    """Whether a signed report was asked for this run and never written: no ``report.pdf``
+    in the run folder, or none registered in its results store (the process died while
+    signing, or between writing the report and registering it)."""
+    if not manifest.get("report_requested"):
+        return False
+    if not (run_dir / REPORT_FILE).is_file():
+        return True
+    try:
+        with ResultsStore(store_url_for(run_dir, manifest), create=False) as store:
+            return not store.reports(str(manifest.get("run_id")))
+    except BenchrunError:
+        return True
+
+
 def find_resumable(out_dir: Path, part: str, lot: str) -> Path:
-    """Newest run folder in ``out_dir`` of this part and lot that did not complete."""
+    """Newest run folder in ``out_dir`` of this part and lot that did not complete, or
+    that completed without the signed report it was started to write."""
     candidates = []
     for manifest_path in out_dir.glob("*/run.json"):
         try:
             manifest = read_manifest(manifest_path.parent)
         except BenchrunError:
             continue
-        if manifest.get("part") == part and manifest.get("lot") == lot \
-                and manifest.get("status") != "complete":
+        if manifest.get("part") == part and manifest.get("lot") == lot and (
+                manifest.get("status") != "complete"
+                or report_missing(manifest_path.parent, manifest)):
             candidates.append((manifest.get("started", ""), manifest_path.parent))
     if not candidates:
         raise RunError(f"nothing to resume: no unfinished run of {part} lot {lot} in {out_dir}")
@@ -233,7 +255,7 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
             if kept.is_file() and _sha256(kept) != _sha256(source):
                 raise RunError(f"cannot resume {run_dir.name}: {source} differs from the "
                                f"{name} the run started with")
-        if manifest.get("status") == "complete":
+        if manifest.get("status") == "complete" and not report_missing(run_dir, manifest):
             raise RunError(f"run {run_dir.name} is already complete")
         return str(manifest["run_id"]), run_dir, manifest, True
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -265,6 +287,7 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
         "bench_name": prep.bench.name,
         "durability": options.durability,
         "resumes": [],
+        "report_requested": bool(options.report),
     }
     if options.db_url:
         manifest["store_url"] = options.db_url
@@ -288,6 +311,8 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
     durability = check_durability(options.durability)
     prep = prepare(sequence_path, bench_path, options)
     run_id, run_dir, manifest, resumed = _open_run_folder(prep, options)
+    if resumed and manifest.get("status") == "complete":
+        return _report_only(run_id, run_dir, manifest, options)
     url = store_url_for(run_dir, manifest) if resumed else (options.db_url
                                                              or default_store_url(run_dir))
     outcome = RunOutcome(run_id, run_dir, url, warnings=list(prep.calibration.warnings))
@@ -312,6 +337,8 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
                      "allow_overdue_calibration": bool(options.allow_overdue_calibration),
                      "durability": durability})
                 manifest["status"] = "running"
+                if options.report:
+                    manifest["report_requested"] = True
                 write_manifest(run_dir, manifest)
                 store.update_run(run_id, status="running", manifest=manifest)
             try:
@@ -342,6 +369,23 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
         finally:
             signals.restore()
             close_run_log(handler)
+    return outcome
+
+
+def _report_only(run_id: str, run_dir: Path, manifest: dict[str, Any],
+                 options: RunOptions) -> RunOutcome:
+    """Resume of a complete run whose signed report was never written: nothing is fired;
+    the complete outcome goes back to the caller, who writes the report."""
+    if not options.report:
+        raise RunError(f"run {run_id} is complete but its signed report was never written: "
+                       "resume with a signing identity, or write it with 'benchrun report'")
+    outcome = RunOutcome(run_id, run_dir, store_url_for(run_dir, manifest), status="complete")
+    with ResultsStore(outcome.store_url, create=False) as store:
+        outcome.shots_skipped = len(store.tested_keys(run_id))
+    outcome.warnings.append("the run was complete; its signed report had not been written "
+                            "and is written now")
+    if options.on_finish is not None:
+        options.on_finish(outcome)
     return outcome
 
 
