@@ -34,6 +34,7 @@ from benchrun.config.sequence import PartRatings, SequenceConfig, limits_path, l
 from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError
 from benchrun.records import ShotResult
 from benchrun.runner.cycle import ShotCycle
+from benchrun.runner.identity import check_devices
 from benchrun.runner.interrupts import SpaceReserve, StopSignals, bounded
 from benchrun.runner.plan import expand_points, plan_run
 from benchrun.runner.progress import RunProgress, close_run_log, open_run_log
@@ -124,6 +125,10 @@ class RunOptions:
     #: as ``report_requested``; ``--resume`` of a complete run whose report was never
     #: written then returns the complete outcome so the caller writes it)
     report: bool = False
+    #: a device whose part or lot (as the handler reports it) is not the sequence's:
+    #: ``"skip"`` it (reason recorded in ``run.json`` ``skipped_devices``) or ``"stop"`` the
+    #: run before anything is energised
+    wrong_device: str = "skip"
 
 
 @dataclass
@@ -404,8 +409,14 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
                           lot=prep.sequence.lot, instruments=manifest["instruments"],
                           analysis_options=manifest.get("analysis_options"))
         write_manifest(outcome.run_dir, manifest)
-        serials = _serials(prep.sequence, station)
+        devices = check_devices(prep.sequence, station.handler,
+                                _serials(prep.sequence, station), action=options.wrong_device)
+        serials = devices.accepted
         manifest["devices"] = serials
+        manifest["skipped_devices"] = devices.skipped
+        manifest["device_identity_checked"] = devices.checked
+        for serial, reason in devices.skipped.items():
+            outcome.warnings.append(f"device {serial} skipped: {reason}")
         write_manifest(outcome.run_dir, manifest)
         steps = plan_run(prep.sequence, serials)
         cycle = ShotCycle(prep, options, outcome, station, store, raw)

@@ -267,6 +267,11 @@ class SimulatedBench:
     def device_serials(self) -> list[str]:
         return _catalog_serials(self.catalog)
 
+    def device_identity(self, serial: str) -> tuple[str, str] | None:
+        """(part number, lot) of ``serial`` from a virtual lot or catalogue (None for a
+        plain mapping of serials to models, which names neither)."""
+        return catalog_identity(self.catalog, serial)
+
     def bus_capacitance(self) -> float:
         return float(_fixture_value(self.fixture, ("bus_capacitance_F", "bus_capacitance",
                                                    "c_bus_F"), DEFAULT_BUS_CAPACITANCE_F))
@@ -439,6 +444,18 @@ def _catalog_serials(catalog: Any) -> list[str]:
     if isinstance(lots, Mapping):
         return [str(s) for lot in lots.values() for s in lot.serials]
     raise TypeError("catalog must be a mapping serial → device, a lot or a catalogue")
+
+
+def catalog_identity(catalog: Any, serial: str) -> tuple[str, str] | None:
+    """(part number, lot id) of ``serial``: from the lot holding it in a catalogue with
+    ``lot_of``, from a lot itself (``lot_id`` and ``part``); None otherwise."""
+    lot_of = getattr(catalog, "lot_of", None)
+    lot = lot_of(serial) if callable(lot_of) else catalog
+    part = getattr(getattr(lot, "part", None), "name", None)
+    lot_id = getattr(lot, "lot_id", None)
+    if part is None or lot_id is None:
+        return None
+    return str(part), str(lot_id)
 
 
 def catalog_device(catalog: Any, serial: str) -> Any:
