@@ -40,6 +40,7 @@ from benchrun.runner.plan import (
 from benchrun.runner.progress import RunProgress
 from benchrun.runner.safety import check_shot
 from benchrun.runner.shots import ShotContext, build_result, narrowest, probes_for, shot_key
+from benchrun.runner.thermal import shot_heat, swap_dwell
 from benchrun.runner.writer import CapturedShot, ShotTicket, ShotWriter
 from benchrun.store.raw import DURABILITY_PROCESS
 from benchrun.store.results import ResultsStore, utc_now
@@ -103,7 +104,9 @@ class ShotCycle:
         self.progress = RunProgress(0, enabled=False)
         self.max_attempts = 1 + self.sequence.retry_invalid
         #: the sequence's test-point spec behind each point index (shot spacing ...)
-        self._specs = {p.index: spec for p, spec in expand_with_specs(self.sequence)}
+        expanded = expand_with_specs(self.sequence)
+        self._specs = {p.index: spec for p, spec in expanded}
+        self._specs_points = [p for p, _ in expanded]
         #: next attempt number per (serial, point index, repeat); loaded from the DB once
         self._attempts: dict[tuple[str, int, int], int] | None = None
         #: stores and analyses every fired shot on its own thread (runner/writer.py). Its
@@ -117,6 +120,12 @@ class ShotCycle:
         self._last_fire: tuple[float, float] | None = None
         #: the last shot fired, until its result is read
         self._flight: _InFlight | None = None
+        #: junction temperature (runner/thermal.py): minimum shot interval per point index,
+        #: the dwell after a device swap, the device the handler last put in the fixture
+        self._min_interval = {p.index: shot_heat(p, self.sequence, self.bench).min_interval_s
+                              or 0.0 for p in self._specs_points}
+        self._swap_dwell = swap_dwell(self.bench)
+        self._in_fixture: str | None = None
 
     def close(self) -> None:
         """Finish storing and analysing every fired shot (called on every exit path, after
@@ -217,11 +226,24 @@ class ShotCycle:
                 continue
             self.progress.shooting(planned.serial, point.temperature_K,
                                    f"{point.label.split(' @ ')[0]} #{planned.repeat + 1}")
-            self.station.select(planned.serial)
+            self._select(planned.serial)
             self._trim(point)
             self._flight = self._fire(planned, attempt)
             if flight is not None:
                 self._conclude(flight, todo)
+
+    def _select(self, serial: str) -> None:
+        """Put ``serial`` in the fixture; after a swap, wait the fixture's dwell so the new
+        device reaches the plate temperature before its first shot."""
+        self.station.select(serial)
+        if serial == self._in_fixture:
+            return
+        self._in_fixture = serial
+        if self._swap_dwell > 0:
+            self.progress.status(f"{serial}: dwell {self._swap_dwell:g} s after the swap")
+            log.info("%s in the fixture: dwell %.3g s to reach the plate temperature", serial,
+                     self._swap_dwell)
+            self.station.clock.sleep(self._swap_dwell)
 
     def _may_overlap(self, previous: PlannedShot, upcoming: PlannedShot) -> bool:
         """Whether ``upcoming`` may fire before ``previous`` is concluded: same device (a
@@ -424,6 +446,7 @@ class ShotCycle:
                 serial=planned.serial, point=point, repeat=planned.repeat, attempt=attempt,
                 timestamp=measured["timestamp"], temperature_K=temperature_K,
                 bus_voltage_V=measured["bus_V"],
+                temperature_sensor=self.bench.fixture.temperature_sensor,
             )  # fmt: skip
 
         def shoot() -> Capture:
@@ -445,8 +468,10 @@ class ShotCycle:
                 self.writer.wait_stored()  # the previous shot is durable in both stores
                 self._wait_spacing()
                 measured["timestamp"] = utc_now()
+                # the sequence's spacing, or the fixture's thermal minimum when longer
                 self._last_fire = (self.station.clock.monotonic(),
-                                   self._spec(point).shot_spacing)
+                                   max(self._spec(point).shot_spacing,
+                                       self._min_interval.get(point.index, 0.0)))
 
             def on_fired() -> None:
                 # while the scope acquires: this shot's pending results row, the previous

@@ -47,6 +47,7 @@ from benchrun.runner.safety import (
     preflight,
 )
 from benchrun.runner.station import Station, resolve_resources
+from benchrun.runner.thermal import shot_heat, thermal_record
 from benchrun.store.raw import DURABILITY_POWER_LOSS, RawRecord, check_durability
 from benchrun.store.results import ResultsStore, utc_now
 from benchrun.store.rundata import (
@@ -197,6 +198,10 @@ def prepare(sequence_path: str | Path, bench_path: str | Path, options: RunOptio
         raise ConfigError("'devices: all' needs a handler in the bench file",
                           file=str(sequence_path), field="devices")
     preflight(expand_points(sequence), sequence, bench, ratings)
+    heat = [shot_heat(p, sequence, bench).problem for p in expand_points(sequence)]
+    if any(heat):
+        raise SafetyError("refused before energising:\n  "
+                          + "\n  ".join(dict.fromkeys(h for h in heat if h)))
     return PreparedRun(sequence_path, bench_path, limits_file, sequence, bench, ratings,
                        calibration)
 
@@ -293,6 +298,7 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
         "durability": options.durability,
         "resumes": [],
         "report_requested": bool(options.report),
+        "thermal": thermal_record(expand_points(prep.sequence), prep.sequence, prep.bench),
     }
     if options.db_url:
         manifest["store_url"] = options.db_url
