@@ -70,7 +70,7 @@ switch_voltage: true
 """
 
 
-def rss_kB() -> float:
+def rss_kib() -> float:
     with open("/proc/self/statm") as fh:
         pages = int(fh.read().split()[1])
     return pages * os.sysconf("SC_PAGE_SIZE") / 1024.0
@@ -141,7 +141,7 @@ def main() -> int:
             state["n"] += 1
             n = state["n"]
             if n % EVERY == 0:
-                rss = rss_kB()
+                rss = rss_kib()
                 rows.append((n, rss, time.perf_counter() - state["t0"]))
                 print(f"{n:7d} shots  RSS {rss / 1024:8.1f} MB  "
                       f"{rows[-1][2]:7.0f} s", flush=True)

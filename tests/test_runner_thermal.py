@@ -150,5 +150,5 @@ def test_dwell_after_each_swap_spacing_and_sensor_are_applied_and_recorded(tmp_p
     gaps = np.diff(times)
     assert gaps.size >= 3 and gaps.min() >= interval * 0.999
     with RawRecord(outcome.run_dir / "raw.h5", "r") as raw:
-        attrs = [raw.read_shot(key).attrs for key in raw.keys()]
+        attrs = [raw.read_shot(key).attrs for key in raw]
     assert attrs and all(a["temperature_sensor"] == "plate" for a in attrs)
