@@ -12,8 +12,8 @@ for every shot. Captures are digitised with the simulator's noise (un-quantised 
 alternates between 10 and 12 ohm, so the pulse settings, the trim and the circuit solution
 change during the run as well (``--vary 0`` keeps one gate resistance).
 
-``--trace`` also prints the ten allocation sites that grew most between the end of the
-warm-up and the end of the run (``tracemalloc``; slower).
+``--trace`` also prints the ten allocation sites of what was allocated after the warm-up and
+is still alive at the end of the run (``tracemalloc`` from the warm-up on; slower).
 
 Goal: RSS growth after the warm-up below 0.1 kB per shot (flat: 20,000 shots add < 2 MB).
 
@@ -148,12 +148,9 @@ def main() -> int:
                 if args.trace and n == WARMUP:
                     import tracemalloc
 
-                    state["snap"] = tracemalloc.take_snapshot()
+                    tracemalloc.start(6)  # from here on: what is still alive at the end grew
+                    state["snap"] = True
 
-        if args.trace:
-            import tracemalloc
-
-            tracemalloc.start(8)
         with _bench(seq) as (resources, clock):
             options = RunOptions(out_dir=Path(tmp) / "runs", sim_resources=resources,
                                  clock=clock, show_progress=False, on_stored=on_stored,
@@ -164,10 +161,10 @@ def main() -> int:
         if args.trace and state["snap"] is not None:
             import tracemalloc
 
-            top = tracemalloc.take_snapshot().compare_to(state["snap"], "traceback")
-            print("allocation sites that grew most after the warm-up:")
+            top = tracemalloc.take_snapshot().statistics("traceback")
+            print("allocations made after the warm-up and still alive at the end:")
             for stat in top[:10]:
-                print(f"  {stat.size_diff / 1024:+9.1f} kB  {stat.count_diff:+7d} blocks")
+                print(f"  {stat.size / 1024:+9.1f} kB  {stat.count:+7d} blocks")
                 for line in stat.traceback.format()[-6:]:
                     print(f"      {line}")
     after = [(n, rss) for n, rss, _ in rows if n >= WARMUP]

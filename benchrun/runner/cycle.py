@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from benchrun.errors import CalibrationOverdue, InstrumentError, RunError
+from benchrun.errors import CalibrationOverdue, InstrumentError, RunError, StoreError
 from benchrun.records import ShotResult, TestPoint
 from benchrun.runner.plan import (
     RETAKE_WIDEN,
@@ -514,8 +514,12 @@ class ShotCycle:
         # handed to the operating system now (safe against kill -9); the fsync of
         # "power-loss" mode runs on the record's thread until the next fire waits for it
         key = shot_key(point.index, planned.serial, planned.repeat, attempt)
-        ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
-                                   context.attrs(settings), wait=False)
+        try:
+            ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
+                                       context.attrs(settings), wait=False)
+        except (OSError, RuntimeError) as exc:  # the HDF5 library's word for a full disk
+            raise StoreError(f"cannot write shot {key} to the raw record {self.raw.path}: "
+                             f"{exc}") from exc
         ticket = self.writer.submit(CapturedShot(ref, context, capture.t_start, capture.dt,
                                                  channels, probes, fired["row"]))
         if self._attempts is not None:
