@@ -26,7 +26,7 @@ from benchrun.store.raw import RawRecord
 from benchrun.store.rundata import load_run
 
 DEVICES = "[SN0117-001, SN0117-002]"
-REPEATS = 8
+REPEATS = 6
 PLANNED = 2 * REPEATS
 #: touch-safe limit, IEC 61140 / IEC 62368-1 ES1
 TOUCH_SAFE_V = 60.0
@@ -115,7 +115,7 @@ STOPS = (
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("seed", [11, 29])
+@pytest.mark.parametrize("seed", [11])
 def test_kill_9_and_signals_at_random_moments_then_resume(tmp_path, seed):
     rng = random.Random(seed)
     seq, out = sequence(tmp_path), tmp_path / "runs"
