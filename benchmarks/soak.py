@@ -126,6 +126,8 @@ def main() -> int:
     parser.add_argument("--durability", default="process", choices=("process", "power-loss"))
     parser.add_argument("--out-dir", type=Path, default=None)
     parser.add_argument("--trace", action="store_true")
+    parser.add_argument("--warmup", type=int, default=WARMUP,
+                        help=f"shots before the growth is measured (default {WARMUP})")
     args = parser.parse_args()
 
     from benchrun.runner.execute import RunOptions, run_sequence
@@ -145,11 +147,14 @@ def main() -> int:
                 rows.append((n, rss, time.perf_counter() - state["t0"]))
                 print(f"{n:7d} shots  RSS {rss / 1024:8.1f} MB  "
                       f"{rows[-1][2]:7.0f} s", flush=True)
-                if args.trace and n == WARMUP:
-                    import tracemalloc
+            if args.trace and n == args.warmup:
+                import tracemalloc
 
-                    tracemalloc.start(6)  # from here on: what is still alive at the end grew
-                    state["snap"] = True
+                tracemalloc.start(6)  # from here on: what is still alive at the end grew
+            if args.trace and n == args.shots:
+                import tracemalloc
+
+                state["snap"] = tracemalloc.take_snapshot()  # while the run holds it
 
         with _bench(seq) as (resources, clock):
             options = RunOptions(out_dir=Path(tmp) / "runs", sim_resources=resources,
@@ -159,19 +164,18 @@ def main() -> int:
         print(f"run {outcome.status}: {outcome.shots_stored} shots stored "
               f"({outcome.shots_valid} valid)")
         if args.trace and state["snap"] is not None:
-            import tracemalloc
 
-            top = tracemalloc.take_snapshot().statistics("traceback")
+            top = state["snap"].statistics("traceback")
             print("allocations made after the warm-up and still alive at the end:")
             for stat in top[:10]:
                 print(f"  {stat.size / 1024:+9.1f} kB  {stat.count:+7d} blocks")
                 for line in stat.traceback.format()[-6:]:
                     print(f"      {line}")
-    after = [(n, rss) for n, rss, _ in rows if n >= WARMUP]
+    after = [(n, rss) for n, rss, _ in rows if n >= args.warmup]
     if len(after) >= 2:
         (n0, r0), (n1, r1) = after[0], after[-1]
         per_shot = (r1 - r0) / (n1 - n0)
-        print(f"RSS growth after {WARMUP} shots: {(r1 - r0) / 1024:+.1f} MB over {n1 - n0} "
+        print(f"RSS growth after {args.warmup} shots: {(r1 - r0) / 1024:+.1f} MB over {n1 - n0} "
               f"shots = {per_shot * 1024:+.0f} bytes per shot")
         print(f"goal < {GOAL_KB_PER_SHOT * 1024:.0f} bytes per shot: "
               f"{'met' if per_shot < GOAL_KB_PER_SHOT else 'NOT met'}")

@@ -79,6 +79,7 @@ def test_devices_of_another_part_are_skipped_never_fired(tmp_path):
                              show_progress=False)
         outcome = run_sequence(seq, BENCH, options)
         fired = [shot.serial for shot in setup.bench.shots]
+        assert len(fired) == setup.bench.shots_fired
     assert outcome.status == "complete"
     assert set(fired) == set(SILICON)  # no SiC device was ever energised by a shot
     manifest = json.loads((outcome.run_dir / "run.json").read_text())
@@ -101,7 +102,7 @@ def test_a_device_of_another_lot_is_skipped(tmp_path):
                              show_progress=False)
         with pytest.raises(RunError, match="no device of DX-4417 lot LT-0124"):
             run_sequence(seq, BENCH, options)
-        assert setup.bench.shots == []
+        assert setup.bench.shots_fired == 0
 
 
 @pytest.mark.slow
@@ -113,8 +114,21 @@ def test_wrong_device_can_stop_the_run_before_anything_is_energised(tmp_path):
                              show_progress=False, wrong_device="stop")
         with pytest.raises(RunError, match="SN0131-001: it is part DX-5203"):
             run_sequence(seq, BENCH, options)
-        assert setup.bench.shots == []
+        assert setup.bench.shots_fired == 0
         assert not setup.bench.supply.output_on
     manifest = json.loads(next((tmp_path / "out").iterdir()).joinpath("run.json").read_text())
     assert manifest["status"] == "aborted"
     assert "DX-5203" in manifest["error"]
+
+
+def test_simulated_bench_keeps_a_bounded_shot_history():
+    # a long run on the simulated bench must not grow its memory with every shot
+    from benchrun.simulator.server import SHOT_HISTORY
+
+    sim = SimulatedBench(two_lot_catalog(), seed=1)
+    sim.handler.selected = SILICON[0]
+    sim.scope.armed = False  # no capture needed: only the record of the fire
+    for _ in range(SHOT_HISTORY + 5):
+        sim.fire((1e-6, 1e-6, 1e-6), 10.0)
+    assert sim.shots_fired == SHOT_HISTORY + 5
+    assert len(sim.shots) == SHOT_HISTORY

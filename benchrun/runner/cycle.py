@@ -222,7 +222,7 @@ class ShotCycle:
             point = planned.point
             attempt = self._next_attempt(planned.serial, point.index, planned.repeat)
             if attempt >= self.max_attempts:  # (resumed) every attempt already stored
-                self.progress.advance()
+                self._done(planned)
                 continue
             self.progress.shooting(planned.serial, point.temperature_K,
                                    f"{point.label.split(' @ ')[0]} #{planned.repeat + 1}")
@@ -272,7 +272,14 @@ class ShotCycle:
                                   planned.repeat) < self.max_attempts:
                 todo.appendleft(planned)
                 return
+        self._done(planned)
+
+    def _done(self, planned: PlannedShot) -> None:
+        """A test needs no further shot: count it; forget its attempt number (the plan
+        holds each test once; a long run keeps no per-test state)."""
         self.progress.advance()
+        if self._attempts is not None:
+            self._attempts.pop((planned.serial, planned.point.index, planned.repeat), None)
 
     def _next_attempt(self, serial: str, point_index: int, repeat: int) -> int:
         """Attempt number of the next shot of a test: read from the DB once (shots stored by

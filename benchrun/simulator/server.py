@@ -27,6 +27,7 @@ import socket
 import socketserver
 import threading
 import time
+from collections import deque
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any, Protocol
@@ -131,6 +132,10 @@ class CaptureModel(Protocol):
                 catalog: Any, fixture: Any, rng: np.random.Generator) -> Capture | None: ...
 
 
+#: Shot conditions a simulated bench keeps for inspection (tests); older ones are dropped.
+SHOT_HISTORY = 1000
+
+
 class SimulatedBench:
     """Five simulated SCPI instruments on loopback TCP ports, coupled through one fixture.
 
@@ -186,7 +191,10 @@ class SimulatedBench:
             serial = f"SIM{seed % 10000:04d}{index + 1:02d}"
             self.instruments[role] = SIM_CLASSES[role](table, self, serial, FaultSwitches())
         self.faults: dict[str, FaultSwitches] = {r: i.faults for r, i in self.instruments.items()}
-        self.shots: list[ShotCondition] = []
+        #: the conditions of the last SHOT_HISTORY shots fired (a bounded record: a long run
+        #: on the simulated bench keeps its memory flat); shots_fired counts them all
+        self.shots: deque[ShotCondition] = deque(maxlen=SHOT_HISTORY)
+        self.shots_fired = 0
         self._servers: dict[str, _InstrumentServer] = {}
         self._threads: list[threading.Thread] = []
         self._stopping = threading.Event()
@@ -295,6 +303,7 @@ class SimulatedBench:
             gate_resistance_ohm=gate_resistance_ohm,
         )
         self.shots.append(condition)
+        self.shots_fired += 1
         scope = self.scope
         if not scope.armed or scope.faults.state.no_trigger:
             return None
