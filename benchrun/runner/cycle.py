@@ -400,8 +400,13 @@ class ShotCycle:
             self.station.configure_pulse(plan, point.gate_resistance_ohm, single=True)
             self.station.energise(volts)
             self.station.configure_scope(plan, ranges, volts)
+            def before_fire() -> None:
+                self.writer.wait_stored()
+                self._wait_spacing()  # a trim shot heats the device too
+
             return self.station.fire(["diode_current"], self.options.trigger_timeout_s,
-                                     before_fire=self.writer.wait_stored)
+                                     before_fire=before_fire,
+                                     on_fired=lambda: self._fired(point))
 
         capture = self._with_retry(shoot, "trim shot")
         self.outcome.trim_shots += 1
@@ -426,6 +431,13 @@ class ShotCycle:
                         "retrying once", what, exc)
             self.station.forget_settings()
         return action()
+
+    def _fired(self, point: TestPoint) -> None:
+        """A shot at ``point`` has just been fired: the next waits from now for the
+        sequence's spacing, or the fixture's thermal minimum interval when longer."""
+        self._last_fire = (self.station.clock.monotonic(),
+                           max(self._spec(point).shot_spacing,
+                               self._min_interval.get(point.index, 0.0)))
 
     def _wait_spacing(self) -> None:
         """Keep the previous shot's spacing (its test point's ``shot_spacing``) between two
@@ -475,10 +487,6 @@ class ShotCycle:
                 self.writer.wait_stored()  # the previous shot is durable in both stores
                 self._wait_spacing()
                 measured["timestamp"] = utc_now()
-                # the sequence's spacing, or the fixture's thermal minimum when longer
-                self._last_fire = (self.station.clock.monotonic(),
-                                   max(self._spec(point).shot_spacing,
-                                       self._min_interval.get(point.index, 0.0)))
 
             def on_fired() -> None:
                 # while the scope acquires: this shot's pending results row, the previous
@@ -486,6 +494,7 @@ class ShotCycle:
                 # move within an acquisition) and the handler's word on the device in the
                 # fixture during the shot (the station put it there and has not moved it
                 # since; select() checked it before the first shot on it)
+                self._fired(point)
                 fired["row"] = self.writer.record_fired(context_with(None))
                 self.writer.release()
                 during.append(self.station.in_parallel(self.station.temperature))
