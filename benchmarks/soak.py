@@ -1,16 +1,17 @@
 """Soak: a long unattended run keeps the runner's memory flat.
 
-Runs one long sequence (one device, 25 degC, N repeats, shot spacing 0) on the simulated
-bench and prints the runner process's resident set size (RSS, from ``/proc/self/statm``)
-after every 1,000 stored shots, with the growth per shot over the run after a warm-up of the
-first 2,000 shots (caches, allocator pools and the preallocated raw-record slots fill
-first). The simulated bench runs in a separate process (as real instruments are separate
-machines), so its memory does not count; its circuit solution is cached per condition, so the
-repeats cost only digitising, transfer, storing and analysis — the work the runner repeats
-for every shot. Captures are digitised with the simulator's noise (un-quantised noise before
-8-bit quantisation); the run is cut into test points of 1,000 repeats whose gate resistance
-alternates between 10 and 12 ohm, so the pulse settings, the trim and the circuit solution
-change during the run as well (``--vary 0`` keeps one gate resistance).
+Runs one long sequence (one device, 25 degC, test points of at most 1,000 repeats, shot
+spacing 0) on the simulated bench and prints the runner process's resident set size (RSS, from
+``/proc/self/statm``) after every 1,000 stored shots, with the growth per shot over the run
+after a warm-up of the first 2,000 shots (caches, allocator pools and the preallocated
+raw-record slots fill first). The simulated bench runs in a separate process (as real
+instruments are separate machines), so its memory does not count; ``--in-process`` runs it in
+the runner's process, as ``benchrun run`` starts it for ``sim`` resources, and counts it. Its
+circuit solution is cached per condition, so the repeats cost only digitising, transfer,
+storing and analysis: the work the runner repeats for every shot. Captures carry the
+simulator's noise (un-quantised noise before 8-bit quantisation); the gate resistance
+alternates between 10 and 12 ohm from one test point to the next, so the pulse settings, the
+trim and the circuit solution change during the run as well (``--vary 0`` keeps one).
 
 ``--trace`` also prints the ten allocation sites of what was allocated after the warm-up and
 is still alive at the end of the run (``tracemalloc`` from the warm-up on; slower).
@@ -101,7 +102,14 @@ class _RemoteClock:
 
 
 @contextlib.contextmanager
-def _bench(seq_path: Path):
+def _bench(seq_path: Path, in_process: bool = False):
+    if in_process:  # as `benchrun run` does with sim resources: its memory counts too
+        from benchrun.config import load_bench, load_sequence
+        from benchrun.runner.simbench import simulated_bench
+
+        with simulated_bench(load_bench(BENCH_PATH), load_sequence(seq_path)) as sim:
+            yield sim.resources, sim.clock
+        return
     ctx = multiprocessing.get_context("spawn")
     parent, child = ctx.Pipe()
     stop = ctx.Event()
@@ -125,6 +133,9 @@ def main() -> int:
                         help="alternate the gate resistance between test points; 0: keep it")
     parser.add_argument("--durability", default="process", choices=("process", "power-loss"))
     parser.add_argument("--out-dir", type=Path, default=None)
+    parser.add_argument("--in-process", action="store_true",
+                        help="run the simulated bench in this process (as 'benchrun run' "
+                             "does for sim resources): its memory is counted too")
     parser.add_argument("--trace", action="store_true")
     parser.add_argument("--warmup", type=int, default=WARMUP,
                         help=f"shots before the growth is measured (default {WARMUP})")
@@ -156,7 +167,7 @@ def main() -> int:
 
                 state["snap"] = tracemalloc.take_snapshot()  # while the run holds it
 
-        with _bench(seq) as (resources, clock):
+        with _bench(seq, args.in_process) as (resources, clock):
             options = RunOptions(out_dir=Path(tmp) / "runs", sim_resources=resources,
                                  clock=clock, show_progress=False, on_stored=on_stored,
                                  durability=args.durability)
