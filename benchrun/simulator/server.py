@@ -27,7 +27,6 @@ import socket
 import socketserver
 import threading
 import time
-from collections import deque
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any, Protocol
@@ -191,9 +190,9 @@ class SimulatedBench:
             serial = f"SIM{seed % 10000:04d}{index + 1:02d}"
             self.instruments[role] = SIM_CLASSES[role](table, self, serial, FaultSwitches())
         self.faults: dict[str, FaultSwitches] = {r: i.faults for r, i in self.instruments.items()}
-        #: the conditions of the last SHOT_HISTORY shots fired (a bounded record: a long run
-        #: on the simulated bench keeps its memory flat); shots_fired counts them all
-        self.shots: deque[ShotCondition] = deque(maxlen=SHOT_HISTORY)
+        #: the conditions of the last shots fired, at most 2 x SHOT_HISTORY (a bounded record:
+        #: a long run on the simulated bench keeps its memory flat); shots_fired counts all
+        self.shots: list[ShotCondition] = []
         self.shots_fired = 0
         self._servers: dict[str, _InstrumentServer] = {}
         self._threads: list[threading.Thread] = []
@@ -304,6 +303,8 @@ class SimulatedBench:
         )
         self.shots.append(condition)
         self.shots_fired += 1
+        if len(self.shots) > 2 * SHOT_HISTORY:
+            del self.shots[:SHOT_HISTORY]
         scope = self.scope
         if not scope.armed or scope.faults.state.no_trigger:
             return None
