@@ -530,12 +530,15 @@ class ShotCycle:
         # handed to the operating system now (safe against kill -9); the fsync of
         # "power-loss" mode runs on the record's thread until the next fire waits for it
         key = shot_key(point.index, planned.serial, planned.repeat, attempt)
+        failed: str | None = None
         try:
             ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
                                        context.attrs(settings), wait=False)
         except (OSError, RuntimeError) as exc:  # the HDF5 library's word for a full disk
-            raise StoreError(f"cannot write shot {key} to the raw record {self.raw.path}: "
-                             f"{exc}") from exc
+            failed = f"cannot write shot {key} to the raw record {self.raw.path}: {exc}"
+            exc.__traceback__ = None  # the library's objects in the failed write go now
+        if failed is not None:
+            raise StoreError(failed)
         ticket = self.writer.submit(CapturedShot(ref, context, capture.t_start, capture.dt,
                                                  channels, probes, fired["row"]))
         if self._attempts is not None:

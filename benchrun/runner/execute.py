@@ -20,9 +20,11 @@ from the raw record and stored, not fired again.
 from __future__ import annotations
 
 import datetime as _dt
+import gc
 import hashlib
 import logging
 import shutil
+import sys
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -31,7 +33,7 @@ from typing import Any
 from benchrun import __version__
 from benchrun.config.bench import BenchConfig, load_bench
 from benchrun.config.sequence import PartRatings, SequenceConfig, limits_path, load_sequence
-from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError
+from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError, StoreError
 from benchrun.records import ShotResult
 from benchrun.runner.cycle import ShotCycle
 from benchrun.runner.identity import check_devices
@@ -330,6 +332,7 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
     handler = open_run_log(run_dir / LOG_FILE)
     signals = StopSignals().install()
     reserve = SpaceReserve(run_dir)
+    unraisable, sys.unraisablehook = sys.unraisablehook, _log_unraisable
     try:
         log.info("%s run %s: %s lot %s, sequence %s, bench %s",
                  "resuming" if resumed else "starting", run_id, prep.sequence.part,
@@ -353,9 +356,12 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
                 write_manifest(run_dir, manifest)
                 store.update_run(run_id, status="running", manifest=manifest)
             try:
-                with RawRecord(run_dir / RAW_FILE, "a", compression=None,
-                               durability=durability) as raw:
+                raw = RawRecord(run_dir / RAW_FILE, "a", compression=None,
+                                durability=durability)
+                try:
                     _execute(prep, options, outcome, manifest, store, raw, signals)
+                finally:
+                    _close_raw(raw, outcome)
             finally:
                 signals.defer()
                 reserve.release()  # the end of the run is recorded even on a full disk
@@ -379,8 +385,28 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
                 options.on_finish(outcome)
         finally:
             signals.restore()
+            gc.collect()  # objects the run released are released while their errors are logged
+            sys.unraisablehook = unraisable
             close_run_log(handler)
     return outcome
+
+
+def _close_raw(raw: RawRecord, outcome: RunOutcome) -> None:
+    """Close the raw record; a close that fails (a full disk refuses the HDF5 library's last
+    writes) is logged and recorded as a warning, never raised over the run's own outcome."""
+    try:
+        raw.close()
+    except (OSError, RuntimeError, BenchrunError) as exc:
+        log.error("the raw record could not be closed cleanly: %s", exc)
+        outcome.warnings.append(f"the raw record could not be closed cleanly: {exc}")
+        raw._file = None  # released now, while the run's unraisable hook logs complaints
+        gc.collect()
+
+
+def _log_unraisable(unraisable: Any) -> None:
+    """During a run: an error raised while an object is released (the HDF5 library's, when a
+    full disk refuses the write of an object it closes) goes to the run log in one line."""
+    log.warning("while releasing %r: %s", unraisable.object, unraisable.exc_value)
 
 
 def _report_only(run_id: str, run_dir: Path, manifest: dict[str, Any],
@@ -459,6 +485,15 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         _finish(outcome, manifest, store)
     if error is not None:
         log.error("run %s %s: %s", outcome.run_id, outcome.status, outcome.error)
+        if isinstance(error, StoreError | OSError):
+            # a store that failed (a full disk): the frames of the failed write hold the HDF5
+            # library's objects; released now, while the run's unraisable hook logs their
+            # complaints, instead of a traceback on the terminal when the error is dropped
+            cause: BaseException | None = error
+            while cause is not None:
+                cause.__traceback__ = None
+                cause = cause.__cause__ or cause.__context__
+            gc.collect()
         raise error
     if outcome.safe_state is not None and not outcome.safe_state.reached:
         raise SafetyError(outcome.safe_state.describe())
