@@ -32,6 +32,7 @@ DIMENSIONS: dict[str, str] = {
     "voltage_slope": "V/s",
     "temperature": "K",
     "temperature_difference": "delta_degC",
+    "thermal_resistance": "K/W",
     "dimensionless": "",
 }
 

@@ -56,6 +56,10 @@ def register(subparsers: Any) -> None:
                              "'power-loss' (default: synced to disk, survives a power cut) "
                              "or 'process' (handed to the operating system: survives the "
                              "program being killed, not a power cut or system crash)")
+    parser.add_argument("--wrong-device", choices=("skip", "stop"), default="skip",
+                        help="a device the handler reports as another part or lot: skip it "
+                             "(default; recorded in run.json) or stop the run before "
+                             "anything is energised")
     parser.add_argument("--no-progress", action="store_true", help="no live progress display")
     parser.add_argument("--sim-speedup", type=float, default=DEFAULT_SPEEDUP,
                         help="clock speed-up of the simulated bench (sim resources only; "
@@ -100,10 +104,13 @@ def run(args: argparse.Namespace) -> int:
         db_url=args.db,
         allow_overdue_calibration=args.allow_overdue_calibration,
         durability=args.durability,
+        wrong_device=args.wrong_device,
         show_progress=not args.no_progress and sys.stderr.isatty(),
         on_finish=print_outcome,
     )
     signer = signer_from_args(args) if wants_signing(args) else None
+    if signer is not None:
+        options.report = True  # recorded: --resume writes a report a crash kept from being
     outcome = run_on_bench(args.sequence, args.bench, options, sim_speedup=args.sim_speedup,
                            sim_seed=args.sim_seed)
     if outcome.status != "complete":

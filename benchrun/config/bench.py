@@ -54,6 +54,7 @@ from benchrun.config.loader import (
     Time,
     Voltage,
     load_model,
+    quantity,
 )
 
 #: Roles a bench can fill; scope, pulse source and bus supply are required.
@@ -185,6 +186,9 @@ class ProbeEntry(StrictModel):
         return self.kind != "voltage"
 
 
+ThermalResistance = quantity("thermal_resistance")
+
+
 class FixtureSpec(StrictModel):
     """The double-pulse fixture: load inductor, loop, bus capacitor and its bleeder."""
 
@@ -196,6 +200,15 @@ class FixtureSpec(StrictModel):
     bus_capacitance: Capacitance = Field(gt=0)
     bleeder_resistance: Resistance = Field(gt=0)
     switch_on_voltage: Voltage = Field(default=0.0, ge=0)
+    #: thermal time constant of the device in the fixture towards the controlled plate
+    #: (first-order estimate; benchrun.runner.thermal)
+    thermal_time_constant: Time | None = Field(default=None, gt=0)
+    #: thermal resistance of the same path, K/W
+    thermal_resistance: ThermalResistance | None = Field(default=None, gt=0)
+    #: wait after the handler put a new device in the fixture (default 5 time constants)
+    swap_dwell: Time | None = Field(default=None, ge=0)
+    #: where the thermal controller's sensor sits: the temperature plate or the device case
+    temperature_sensor: Literal["plate", "case"] = "plate"
 
     def discharge_time(self, from_V: float, to_V: float = TOUCH_SAFE_V) -> float:
         """Time for the bleeder to bring the bus from ``from_V`` to ``to_V`` (RC decay).

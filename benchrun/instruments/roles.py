@@ -560,6 +560,16 @@ class Handler(_Driver):
         value = self._ask("selected")
         return None if value.upper() in ("", "NONE") else value
 
+    def device_identity(self, serial: str) -> tuple[str, str] | None:
+        """(part number, lot) of device ``serial`` as the handler reports it; None when the
+        family's table has no such query or the handler does not know the device."""
+        if not self.table.has("device_identity"):
+            return None
+        fields = [f.strip() for f in self._ask("device_identity", serial=serial)]
+        if len(fields) != 2 or not all(fields) or "UNKNOWN" in (f.upper() for f in fields):
+            return None
+        return fields[0], fields[1]
+
 
 def _same(want: Any, have: Any) -> bool:
     if isinstance(want, float) and isinstance(have, int | float):

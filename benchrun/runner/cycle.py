@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from benchrun.errors import CalibrationOverdue, InstrumentError, RunError
+from benchrun.errors import CalibrationOverdue, InstrumentError, RunError, StoreError
 from benchrun.records import ShotResult, TestPoint
 from benchrun.runner.plan import (
     RETAKE_WIDEN,
@@ -40,6 +40,7 @@ from benchrun.runner.plan import (
 from benchrun.runner.progress import RunProgress
 from benchrun.runner.safety import check_shot
 from benchrun.runner.shots import ShotContext, build_result, narrowest, probes_for, shot_key
+from benchrun.runner.thermal import shot_heat, swap_dwell
 from benchrun.runner.writer import CapturedShot, ShotTicket, ShotWriter
 from benchrun.store.raw import DURABILITY_PROCESS
 from benchrun.store.results import ResultsStore, utc_now
@@ -103,7 +104,9 @@ class ShotCycle:
         self.progress = RunProgress(0, enabled=False)
         self.max_attempts = 1 + self.sequence.retry_invalid
         #: the sequence's test-point spec behind each point index (shot spacing ...)
-        self._specs = {p.index: spec for p, spec in expand_with_specs(self.sequence)}
+        expanded = expand_with_specs(self.sequence)
+        self._specs = {p.index: spec for p, spec in expanded}
+        self._specs_points = [p for p, _ in expanded]
         #: next attempt number per (serial, point index, repeat); loaded from the DB once
         self._attempts: dict[tuple[str, int, int], int] | None = None
         #: stores and analyses every fired shot on its own thread (runner/writer.py). Its
@@ -117,6 +120,12 @@ class ShotCycle:
         self._last_fire: tuple[float, float] | None = None
         #: the last shot fired, until its result is read
         self._flight: _InFlight | None = None
+        #: junction temperature (runner/thermal.py): minimum shot interval per point index,
+        #: the dwell after a device swap, the device the handler last put in the fixture
+        self._min_interval = {p.index: shot_heat(p, self.sequence, self.bench).min_interval_s
+                              or 0.0 for p in self._specs_points}
+        self._swap_dwell = swap_dwell(self.bench)
+        self._in_fixture: str | None = None
 
     def close(self) -> None:
         """Finish storing and analysing every fired shot (called on every exit path, after
@@ -213,15 +222,28 @@ class ShotCycle:
             point = planned.point
             attempt = self._next_attempt(planned.serial, point.index, planned.repeat)
             if attempt >= self.max_attempts:  # (resumed) every attempt already stored
-                self.progress.advance()
+                self._done(planned)
                 continue
             self.progress.shooting(planned.serial, point.temperature_K,
                                    f"{point.label.split(' @ ')[0]} #{planned.repeat + 1}")
-            self.station.select(planned.serial)
+            self._select(planned.serial)
             self._trim(point)
             self._flight = self._fire(planned, attempt)
             if flight is not None:
                 self._conclude(flight, todo)
+
+    def _select(self, serial: str) -> None:
+        """Put ``serial`` in the fixture; after a swap, wait the fixture's dwell so the new
+        device reaches the plate temperature before its first shot."""
+        self.station.select(serial)
+        if serial == self._in_fixture:
+            return
+        self._in_fixture = serial
+        if self._swap_dwell > 0:
+            self.progress.status(f"{serial}: dwell {self._swap_dwell:g} s after the swap")
+            log.info("%s in the fixture: dwell %.3g s to reach the plate temperature", serial,
+                     self._swap_dwell)
+            self.station.clock.sleep(self._swap_dwell)
 
     def _may_overlap(self, previous: PlannedShot, upcoming: PlannedShot) -> bool:
         """Whether ``upcoming`` may fire before ``previous`` is concluded: same device (a
@@ -251,7 +273,14 @@ class ShotCycle:
                                   planned.repeat) < self.max_attempts:
                 todo.appendleft(planned)
                 return
+        self._done(planned)
+
+    def _done(self, planned: PlannedShot) -> None:
+        """A test needs no further shot: count it; forget its attempt number (the plan
+        holds each test once; a long run keeps no per-test state)."""
         self.progress.advance()
+        if self._attempts is not None:
+            self._attempts.pop((planned.serial, planned.point.index, planned.repeat), None)
 
     def _next_attempt(self, serial: str, point_index: int, repeat: int) -> int:
         """Attempt number of the next shot of a test: read from the DB once (shots stored by
@@ -372,8 +401,13 @@ class ShotCycle:
             self.station.configure_pulse(plan, point.gate_resistance_ohm, single=True)
             self.station.energise(volts)
             self.station.configure_scope(plan, ranges, volts)
+            def before_fire() -> None:
+                self.writer.wait_stored()
+                self._wait_spacing()  # a trim shot heats the device too
+
             return self.station.fire(["diode_current"], self.options.trigger_timeout_s,
-                                     before_fire=self.writer.wait_stored)
+                                     before_fire=before_fire,
+                                     on_fired=lambda: self._fired(point))
 
         capture = self._with_retry(shoot, "trim shot")
         self.outcome.trim_shots += 1
@@ -398,6 +432,13 @@ class ShotCycle:
                         "retrying once", what, exc)
             self.station.forget_settings()
         return action()
+
+    def _fired(self, point: TestPoint) -> None:
+        """A shot at ``point`` has just been fired: the next waits from now for the
+        sequence's spacing, or the fixture's thermal minimum interval when longer."""
+        self._last_fire = (self.station.clock.monotonic(),
+                           max(self._spec(point).shot_spacing,
+                               self._min_interval.get(point.index, 0.0)))
 
     def _wait_spacing(self) -> None:
         """Keep the previous shot's spacing (its test point's ``shot_spacing``) between two
@@ -425,6 +466,7 @@ class ShotCycle:
                 serial=planned.serial, point=point, repeat=planned.repeat, attempt=attempt,
                 timestamp=measured["timestamp"], temperature_K=temperature_K,
                 bus_voltage_V=measured["bus_V"],
+                temperature_sensor=self.bench.fixture.temperature_sensor,
             )  # fmt: skip
 
         def shoot() -> Capture:
@@ -446,8 +488,6 @@ class ShotCycle:
                 self.writer.wait_stored()  # the previous shot is durable in both stores
                 self._wait_spacing()
                 measured["timestamp"] = utc_now()
-                self._last_fire = (self.station.clock.monotonic(),
-                                   self._spec(point).shot_spacing)
 
             def on_fired() -> None:
                 # while the scope acquires: this shot's pending results row, the previous
@@ -455,6 +495,7 @@ class ShotCycle:
                 # move within an acquisition) and the handler's word on the device in the
                 # fixture during the shot (the station put it there and has not moved it
                 # since; select() checked it before the first shot on it)
+                self._fired(point)
                 fired["row"] = self.writer.record_fired(context_with(None))
                 self.writer.release()
                 during.append(self.station.in_parallel(self.station.temperature))
@@ -490,8 +531,15 @@ class ShotCycle:
         # handed to the operating system now (safe against kill -9); the fsync of
         # "power-loss" mode runs on the record's thread until the next fire waits for it
         key = shot_key(point.index, planned.serial, planned.repeat, attempt)
-        ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
-                                   context.attrs(settings), wait=False)
+        failed: str | None = None
+        try:
+            ref = self.raw.append_shot(key, capture.t_start, capture.dt, channels, probes,
+                                       context.attrs(settings), wait=False)
+        except (OSError, RuntimeError) as exc:  # the HDF5 library's word for a full disk
+            failed = f"cannot write shot {key} to the raw record {self.raw.path}: {exc}"
+            exc.__traceback__ = None  # the library's objects in the failed write go now
+        if failed is not None:
+            raise StoreError(failed)
         ticket = self.writer.submit(CapturedShot(ref, context, capture.t_start, capture.dt,
                                                  channels, probes, fired["row"]))
         if self._attempts is not None:

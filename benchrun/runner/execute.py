@@ -20,11 +20,11 @@ from the raw record and stored, not fired again.
 from __future__ import annotations
 
 import datetime as _dt
+import gc
 import hashlib
 import logging
 import shutil
-import signal
-import threading
+import sys
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -33,9 +33,11 @@ from typing import Any
 from benchrun import __version__
 from benchrun.config.bench import BenchConfig, load_bench
 from benchrun.config.sequence import PartRatings, SequenceConfig, limits_path, load_sequence
-from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError
+from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError, StoreError
 from benchrun.records import ShotResult
 from benchrun.runner.cycle import ShotCycle
+from benchrun.runner.identity import check_devices
+from benchrun.runner.interrupts import SpaceReserve, StopSignals, bounded
 from benchrun.runner.plan import expand_points, plan_run
 from benchrun.runner.progress import RunProgress, close_run_log, open_run_log, start_live
 from benchrun.runner.safety import (
@@ -47,6 +49,7 @@ from benchrun.runner.safety import (
     preflight,
 )
 from benchrun.runner.station import Station, resolve_resources
+from benchrun.runner.thermal import shot_heat, thermal_record
 from benchrun.store.raw import DURABILITY_POWER_LOSS, RawRecord, check_durability
 from benchrun.store.results import ResultsStore, utc_now
 from benchrun.store.rundata import (
@@ -54,6 +57,7 @@ from benchrun.store.rundata import (
     LIMITS_FILE,
     LOG_FILE,
     RAW_FILE,
+    REPORT_FILE,
     SEQUENCE_FILE,
     default_store_url,
     hash_run_files,
@@ -63,6 +67,9 @@ from benchrun.store.rundata import (
 )
 
 log = logging.getLogger("benchrun.runner")
+
+#: Margin of the safe-state procedure's wall-clock bound (:func:`safe_state_bound_s`), s.
+SAFE_STATE_MARGIN_S = 10.0
 
 
 @dataclass
@@ -117,6 +124,14 @@ class RunOptions:
     on_stored: Callable[[ShotResult], None] | None = None
     on_finish: Callable[[RunOutcome], None] | None = None
     durability: str = DURABILITY_POWER_LOSS
+    #: a signed report is to be written once the run is complete (recorded in the manifest
+    #: as ``report_requested``; ``--resume`` of a complete run whose report was never
+    #: written then returns the complete outcome so the caller writes it)
+    report: bool = False
+    #: a device whose part or lot (as the handler reports it) is not the sequence's:
+    #: ``"skip"`` it (reason recorded in ``run.json`` ``skipped_devices``) or ``"stop"`` the
+    #: run before anything is energised
+    wrong_device: str = "skip"
 
 
 @dataclass
@@ -185,6 +200,10 @@ def prepare(sequence_path: str | Path, bench_path: str | Path, options: RunOptio
         raise ConfigError("'devices: all' needs a handler in the bench file",
                           file=str(sequence_path), field="devices")
     preflight(expand_points(sequence), sequence, bench, ratings)
+    heat = [shot_heat(p, sequence, bench).problem for p in expand_points(sequence)]
+    if any(heat):
+        raise SafetyError("refused before energising:\n  "
+                          + "\n  ".join(dict.fromkeys(h for h in heat if h)))
     return PreparedRun(sequence_path, bench_path, limits_file, sequence, bench, ratings,
                        calibration)
 
@@ -203,16 +222,33 @@ def _new_run_id(sequence: SequenceConfig, out_dir: Path) -> str:
     return run_id
 
 
+def report_missing(run_dir: Path, manifest: dict[str, Any]) -> bool:
+    """Whether a signed report was asked for this run and never written: no ``report.pdf``
+    in the run folder, or none registered in its results store (the process died while
+    signing, or between writing the report and registering it)."""
+    if not manifest.get("report_requested"):
+        return False
+    if not (run_dir / REPORT_FILE).is_file():
+        return True
+    try:
+        with ResultsStore(store_url_for(run_dir, manifest), create=False) as store:
+            return not store.reports(str(manifest.get("run_id")))
+    except BenchrunError:
+        return True
+
+
 def find_resumable(out_dir: Path, part: str, lot: str) -> Path:
-    """Newest run folder in ``out_dir`` of this part and lot that did not complete."""
+    """Newest run folder in ``out_dir`` of this part and lot that did not complete, or
+    that completed without the signed report it was started to write."""
     candidates = []
     for manifest_path in out_dir.glob("*/run.json"):
         try:
             manifest = read_manifest(manifest_path.parent)
         except BenchrunError:
             continue
-        if manifest.get("part") == part and manifest.get("lot") == lot \
-                and manifest.get("status") != "complete":
+        if manifest.get("part") == part and manifest.get("lot") == lot and (
+                manifest.get("status") != "complete"
+                or report_missing(manifest_path.parent, manifest)):
             candidates.append((manifest.get("started", ""), manifest_path.parent))
     if not candidates:
         raise RunError(f"nothing to resume: no unfinished run of {part} lot {lot} in {out_dir}")
@@ -231,7 +267,7 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
             if kept.is_file() and _sha256(kept) != _sha256(source):
                 raise RunError(f"cannot resume {run_dir.name}: {source} differs from the "
                                f"{name} the run started with")
-        if manifest.get("status") == "complete":
+        if manifest.get("status") == "complete" and not report_missing(run_dir, manifest):
             raise RunError(f"run {run_dir.name} is already complete")
         return str(manifest["run_id"]), run_dir, manifest, True
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -263,19 +299,13 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
         "bench_name": prep.bench.name,
         "durability": options.durability,
         "resumes": [],
+        "report_requested": bool(options.report),
+        "thermal": thermal_record(expand_points(prep.sequence), prep.sequence, prep.bench),
     }
     if options.db_url:
         manifest["store_url"] = options.db_url
     write_manifest(run_dir, manifest)
     return run_id, run_dir, manifest, False
-
-
-class _Terminated(KeyboardInterrupt):
-    """SIGTERM, handled like Ctrl-C (safe state, then stop)."""
-
-
-def _raise_terminated(signum: int, frame: Any) -> None:
-    raise _Terminated(f"signal {signum}")
 
 
 def run_sequence(sequence_path: str | Path, bench_path: str | Path,
@@ -294,13 +324,15 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
     durability = check_durability(options.durability)
     prep = prepare(sequence_path, bench_path, options)
     run_id, run_dir, manifest, resumed = _open_run_folder(prep, options)
+    if resumed and manifest.get("status") == "complete":
+        return _report_only(run_id, run_dir, manifest, options)
     url = store_url_for(run_dir, manifest) if resumed else (options.db_url
                                                              or default_store_url(run_dir))
     outcome = RunOutcome(run_id, run_dir, url, warnings=list(prep.calibration.warnings))
     handler = open_run_log(run_dir / LOG_FILE)
-    old_term = None
-    if threading.current_thread() is threading.main_thread():
-        old_term = signal.signal(signal.SIGTERM, _raise_terminated)
+    signals = StopSignals().install()
+    reserve = SpaceReserve(run_dir)
+    unraisable, sys.unraisablehook = sys.unraisablehook, _log_unraisable
     try:
         log.info("%s run %s: %s lot %s, sequence %s, bench %s",
                  "resuming" if resumed else "starting", run_id, prep.sequence.part,
@@ -319,25 +351,84 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
                      "allow_overdue_calibration": bool(options.allow_overdue_calibration),
                      "durability": durability})
                 manifest["status"] = "running"
+                if options.report:
+                    manifest["report_requested"] = True
                 write_manifest(run_dir, manifest)
                 store.update_run(run_id, status="running", manifest=manifest)
             try:
-                with RawRecord(run_dir / RAW_FILE, "a", compression=None,
-                               durability=durability) as raw:
-                    _execute(prep, options, outcome, manifest, store, raw)
+                raw = RawRecord(run_dir / RAW_FILE, "a", compression=None,
+                                durability=durability)
+                try:
+                    _execute(prep, options, outcome, manifest, store, raw, signals)
+                finally:
+                    _close_raw(raw, outcome)
             finally:
+                signals.defer()
+                reserve.release()  # the end of the run is recorded even on a full disk
                 _record_files(outcome, manifest, store)
+    except KeyboardInterrupt as exc:
+        # a stop signal before the bench was touched (or while the stores were closing)
+        if outcome.status == "running":
+            outcome.status = "interrupted"
+            outcome.error = "interrupted (Ctrl-C or SIGTERM)"
+            _finish(outcome, manifest, None)
+            reserve.release()
+            _record_files(outcome, manifest, None)
+        raise exc
     finally:
-        if old_term is not None:
-            signal.signal(signal.SIGTERM, old_term)
-        close_run_log(handler)
-        if options.on_finish is not None:
-            options.on_finish(outcome)
+        signals.defer()
+        reserve.release()
+        try:
+            if handler.failure is not None:
+                outcome.warnings.append(f"the run log could not be written: {handler.failure}")
+            if options.on_finish is not None:
+                options.on_finish(outcome)
+        finally:
+            signals.restore()
+            gc.collect()  # objects the run released are released while their errors are logged
+            sys.unraisablehook = unraisable
+            close_run_log(handler)
+    return outcome
+
+
+def _close_raw(raw: RawRecord, outcome: RunOutcome) -> None:
+    """Close the raw record; a close that fails (a full disk refuses the HDF5 library's last
+    writes) is logged and recorded as a warning, never raised over the run's own outcome."""
+    try:
+        raw.close()
+    except (OSError, RuntimeError, BenchrunError) as exc:
+        log.error("the raw record could not be closed cleanly: %s", exc)
+        outcome.warnings.append(f"the raw record could not be closed cleanly: {exc}")
+        raw._file = None  # released now, while the run's unraisable hook logs complaints
+        gc.collect()
+
+
+def _log_unraisable(unraisable: Any) -> None:
+    """During a run: an error raised while an object is released (the HDF5 library's, when a
+    full disk refuses the write of an object it closes) goes to the run log in one line."""
+    log.warning("while releasing %r: %s", unraisable.object, unraisable.exc_value)
+
+
+def _report_only(run_id: str, run_dir: Path, manifest: dict[str, Any],
+                 options: RunOptions) -> RunOutcome:
+    """Resume of a complete run whose signed report was never written: nothing is fired;
+    the complete outcome goes back to the caller, who writes the report."""
+    if not options.report:
+        raise RunError(f"run {run_id} is complete but its signed report was never written: "
+                       "resume with a signing identity, or write it with 'benchrun report'")
+    outcome = RunOutcome(run_id, run_dir, store_url_for(run_dir, manifest), status="complete")
+    with ResultsStore(outcome.store_url, create=False) as store:
+        outcome.shots_skipped = len(store.tested_keys(run_id))
+    outcome.warnings.append("the run was complete; its signed report had not been written "
+                            "and is written now")
+    if options.on_finish is not None:
+        options.on_finish(outcome)
     return outcome
 
 
 def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
-             manifest: dict[str, Any], store: ResultsStore, raw: RawRecord) -> None:
+             manifest: dict[str, Any], store: ResultsStore, raw: RawRecord,
+             signals: StopSignals | None = None) -> None:
     resources = resolve_resources(prep.bench, options.sim_resources)
     station: Station | None = None
     cycle: ShotCycle | None = None
@@ -351,8 +442,14 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
                           lot=prep.sequence.lot, instruments=manifest["instruments"],
                           analysis_options=manifest.get("analysis_options"))
         write_manifest(outcome.run_dir, manifest)
-        serials = _serials(prep.sequence, station)
+        devices = check_devices(prep.sequence, station.handler,
+                                _serials(prep.sequence, station), action=options.wrong_device)
+        serials = devices.accepted
         manifest["devices"] = serials
+        manifest["skipped_devices"] = devices.skipped
+        manifest["device_identity_checked"] = devices.checked
+        for serial, reason in devices.skipped.items():
+            outcome.warnings.append(f"device {serial} skipped: {reason}")
         write_manifest(outcome.run_dir, manifest)
         steps = plan_run(prep.sequence, serials)
         cycle = ShotCycle(prep, options, outcome, station, store, raw)
@@ -382,8 +479,10 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         outcome.error = str(exc)
         error = exc
     finally:
+        if signals is not None:
+            signals.defer()  # from here on a signal waits until the end is recorded
         if station is not None:
-            outcome.safe_state = _safe(station)
+            outcome.safe_state = _safe(station, prep.bench, options.clock)
             station.close()
         if cycle is not None:
             cycle.close()  # shots fired before the end are stored and analysed
@@ -392,21 +491,32 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
             live.close(outcome.status)
     if error is not None:
         log.error("run %s %s: %s", outcome.run_id, outcome.status, outcome.error)
+        if isinstance(error, StoreError | OSError):
+            # a store that failed (a full disk): the frames of the failed write hold the HDF5
+            # library's objects; released now, while the run's unraisable hook logs their
+            # complaints, instead of a traceback on the terminal when the error is dropped
+            cause: BaseException | None = error
+            while cause is not None:
+                cause.__traceback__ = None
+                cause = cause.__cause__ or cause.__context__
+            gc.collect()
         raise error
     if outcome.safe_state is not None and not outcome.safe_state.reached:
         raise SafetyError(outcome.safe_state.describe())
 
 
-def _safe(station: Station) -> SafeStateReport:
-    # a second Ctrl-C while making safe must not skip the rest of the procedure
-    previous = None
-    if threading.current_thread() is threading.main_thread():
-        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
-    try:
-        return station.make_safe()
-    finally:
-        if previous is not None:
-            signal.signal(signal.SIGINT, previous)
+def safe_state_bound_s(bench: BenchConfig, clock: Clock) -> float:
+    """Wall-clock bound of the safe-state procedure: the discharge timeout (in the clock's
+    time, shortened by an accelerated clock) plus, per instrument, its I/O timeout three
+    times over (switch off, read back, one reconnect) and a margin of 10 s."""
+    speedup = float(getattr(clock, "speedup", 1.0)) or 1.0
+    io = sum(3.0 * entry.timeout for _, entry in bench.instruments.items())
+    return bench.safety.discharge_timeout / speedup + io + SAFE_STATE_MARGIN_S
+
+
+def _safe(station: Station, bench: BenchConfig, clock: Clock) -> SafeStateReport:
+    """The safe state, bounded in time (signals are deferred by the caller)."""
+    return bounded(station.make_safe, safe_state_bound_s(bench, clock))
 
 
 def _serials(sequence: SequenceConfig, station: Station) -> list[str]:
@@ -422,7 +532,7 @@ def _serials(sequence: SequenceConfig, station: Station) -> list[str]:
     return list(sequence.devices)
 
 
-def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore) -> None:
+def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore | None) -> None:
     manifest["status"] = outcome.status
     manifest["finished"] = utc_now()
     manifest["safe_state"] = outcome.safe_state.to_dict() if outcome.safe_state else None
@@ -432,12 +542,22 @@ def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore) 
     manifest["store_url"] = manifest.get("store_url")
 
 
-def _record_files(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore) -> None:
-    """Hash the run's files (raw record closed) and record the end of the run."""
+def _record_files(outcome: RunOutcome, manifest: dict[str, Any],
+                  store: ResultsStore | None) -> None:
+    """Hash the run's files (raw record closed) and record the end of the run: the manifest
+    first, then the results database (each attempted even when the other fails)."""
     try:
         manifest["files"] = hash_run_files(outcome.run_dir)
         write_manifest(outcome.run_dir, manifest)
+    except (BenchrunError, OSError) as exc:
+        log.error("could not record the end of run %s in run.json: %s", outcome.run_id, exc)
+        outcome.warnings.append(f"run.json could not be updated: {exc}")
+    if store is None:
+        return
+    try:
         store.update_run(outcome.run_id, status=outcome.status,
                          finished=manifest.get("finished") or utc_now(), manifest=manifest)
-    except BenchrunError as exc:
-        log.error("could not record the end of run %s: %s", outcome.run_id, exc)
+    except (BenchrunError, OSError) as exc:
+        log.error("could not record the end of run %s in the results database: %s",
+                  outcome.run_id, exc)
+        outcome.warnings.append(f"the results database could not record the end: {exc}")

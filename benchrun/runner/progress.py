@@ -9,6 +9,7 @@ progress, the last shot's waveform and every log line go to the results store, w
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import sys
 import time
@@ -34,12 +35,44 @@ class _UTCFormatter(logging.Formatter):
     converter = time.gmtime
 
 
-def open_run_log(path: str | Path, level: int = logging.INFO) -> logging.Handler:
+class RunLogHandler(logging.FileHandler):
+    """The run log file. A write that fails (disk full, file too large, I/O error) prints one
+    line on standard error instead of logging's traceback, and the file is written no more:
+    the run goes on (the shots, the results database and the safe state do not depend on
+    it). :attr:`failure` says why it stopped (None while it works)."""
+
+    failure: str | None = None
+
+    def emit(self, record: logging.LogRecord) -> None:
+        if self.failure is None:
+            super().emit(record)
+
+    def handleError(self, record: logging.LogRecord) -> None:  # noqa: N802 (logging API)
+        exc = sys.exc_info()[1]
+        if self.failure is not None:
+            return
+        self.failure = str(exc) if exc is not None else "write failed"
+        with contextlib.suppress(OSError, ValueError):
+            print(f"benchrun: the run log {self.baseFilename} cannot be written "
+                  f"({self.failure}); the run goes on without it", file=sys.stderr)
+        with contextlib.suppress(OSError, ValueError):
+            self.close()
+
+    def close(self) -> None:
+        try:
+            super().close()
+        except OSError as exc:  # the last flush on a full disk
+            if self.failure is None:
+                self.failure = str(exc)
+
+
+def open_run_log(path: str | Path, level: int = logging.INFO) -> RunLogHandler:
     """Attach a file handler writing to ``path`` (appending) to the ``benchrun`` logger.
 
-    Returns the handler; pass it to :func:`close_run_log` when the run ends.
+    Returns the handler (a :class:`RunLogHandler`); pass it to :func:`close_run_log` when
+    the run ends.
     """
-    handler = logging.FileHandler(path, mode="a", encoding="utf-8")
+    handler = RunLogHandler(path, mode="a", encoding="utf-8")
     handler.setLevel(level)
     handler.setFormatter(_UTCFormatter("%(asctime)sZ %(levelname)-8s %(message)s",
                                        datefmt="%Y-%m-%dT%H:%M:%S"))

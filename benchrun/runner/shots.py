@@ -133,6 +133,8 @@ class ShotContext:
     timestamp: str
     temperature_K: float | None
     bus_voltage_V: float | None
+    #: where the temperature was measured: "plate" or "case" (bench fixture)
+    temperature_sensor: str | None = None
 
     def attrs(self, settings: dict[str, Any]) -> dict[str, Any]:
         """Shot attributes for the raw record."""
@@ -141,6 +143,7 @@ class ShotContext:
             "point": self.point.to_dict(), "repeat": self.repeat, "attempt": self.attempt,
             "timestamp": self.timestamp, "temperature_K": self.temperature_K,
             "bus_voltage_V": self.bus_voltage_V, "settings": settings,
+            "temperature_sensor": self.temperature_sensor,
         }  # fmt: skip
 
     def identity(self) -> dict[str, Any]:
@@ -157,6 +160,7 @@ class ShotContext:
             repeat=int(attrs["repeat"]), attempt=int(attrs["attempt"]),
             timestamp=attrs["timestamp"], temperature_K=attrs.get("temperature_K"),
             bus_voltage_V=attrs.get("bus_voltage_V"),
+            temperature_sensor=attrs.get("temperature_sensor"),
         )  # fmt: skip
 
 

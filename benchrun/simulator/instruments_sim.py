@@ -67,6 +67,8 @@ class BenchLink(Protocol):
 
     def device_serials(self) -> list[str]: ...
 
+    def device_identity(self, serial: str) -> tuple[str, str] | None: ...
+
     def bus_capacitance(self) -> float: ...
 
     def bleeder_ohm(self) -> float: ...
@@ -659,6 +661,13 @@ class SimHandler(SimInstrument):
 
     def op_selected(self) -> str:
         return self.selected or "NONE"
+
+    def op_device_identity(self, serial: str) -> list[str]:
+        if serial not in self.bench.device_serials():
+            self.push_error(-224, f"no device {serial}")
+            return ["UNKNOWN", "UNKNOWN"]
+        found = self.bench.device_identity(serial)
+        return list(found) if found is not None else ["UNKNOWN", "UNKNOWN"]
 
 
 SIM_CLASSES: dict[str, type[SimInstrument]] = {

@@ -131,6 +131,10 @@ class CaptureModel(Protocol):
                 catalog: Any, fixture: Any, rng: np.random.Generator) -> Capture | None: ...
 
 
+#: Shot conditions a simulated bench keeps for inspection (tests); older ones are dropped.
+SHOT_HISTORY = 1000
+
+
 class SimulatedBench:
     """Five simulated SCPI instruments on loopback TCP ports, coupled through one fixture.
 
@@ -186,7 +190,10 @@ class SimulatedBench:
             serial = f"SIM{seed % 10000:04d}{index + 1:02d}"
             self.instruments[role] = SIM_CLASSES[role](table, self, serial, FaultSwitches())
         self.faults: dict[str, FaultSwitches] = {r: i.faults for r, i in self.instruments.items()}
+        #: the conditions of the last shots fired, at most 2 x SHOT_HISTORY (a bounded record:
+        #: a long run on the simulated bench keeps its memory flat); shots_fired counts all
         self.shots: list[ShotCondition] = []
+        self.shots_fired = 0
         self._servers: dict[str, _InstrumentServer] = {}
         self._threads: list[threading.Thread] = []
         self._stopping = threading.Event()
@@ -267,6 +274,11 @@ class SimulatedBench:
     def device_serials(self) -> list[str]:
         return _catalog_serials(self.catalog)
 
+    def device_identity(self, serial: str) -> tuple[str, str] | None:
+        """(part number, lot) of ``serial`` from a virtual lot or catalogue (None for a
+        plain mapping of serials to models, which names neither)."""
+        return catalog_identity(self.catalog, serial)
+
     def bus_capacitance(self) -> float:
         return float(_fixture_value(self.fixture, ("bus_capacitance_F", "bus_capacitance",
                                                    "c_bus_F"), DEFAULT_BUS_CAPACITANCE_F))
@@ -290,6 +302,9 @@ class SimulatedBench:
             gate_resistance_ohm=gate_resistance_ohm,
         )
         self.shots.append(condition)
+        self.shots_fired += 1
+        if len(self.shots) > 2 * SHOT_HISTORY:
+            del self.shots[:SHOT_HISTORY]
         scope = self.scope
         if not scope.armed or scope.faults.state.no_trigger:
             return None
@@ -439,6 +454,18 @@ def _catalog_serials(catalog: Any) -> list[str]:
     if isinstance(lots, Mapping):
         return [str(s) for lot in lots.values() for s in lot.serials]
     raise TypeError("catalog must be a mapping serial → device, a lot or a catalogue")
+
+
+def catalog_identity(catalog: Any, serial: str) -> tuple[str, str] | None:
+    """(part number, lot id) of ``serial``: from the lot holding it in a catalogue with
+    ``lot_of``, from a lot itself (``lot_id`` and ``part``); None otherwise."""
+    lot_of = getattr(catalog, "lot_of", None)
+    lot = lot_of(serial) if callable(lot_of) else catalog
+    part = getattr(getattr(lot, "part", None), "name", None)
+    lot_id = getattr(lot, "lot_id", None)
+    if part is None or lot_id is None:
+        return None
+    return str(part), str(lot_id)
 
 
 def catalog_device(catalog: Any, serial: str) -> Any:

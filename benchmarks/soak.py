@@ -1,0 +1,197 @@
+"""Soak: a long unattended run keeps the runner's memory flat.
+
+Runs one long sequence (one device, 25 degC, test points of at most 1,000 repeats, shot
+spacing 0) on the simulated bench and prints the runner process's resident set size (RSS, from
+``/proc/self/statm``) after every 1,000 stored shots, with the growth per shot over the run
+after a warm-up of the first 2,000 shots (caches, allocator pools and the preallocated
+raw-record slots fill first). The simulated bench runs in a separate process (as real
+instruments are separate machines), so its memory does not count; ``--in-process`` runs it in
+the runner's process, as ``benchrun run`` starts it for ``sim`` resources, and counts it. Its
+circuit solution is cached per condition, so the repeats cost only digitising, transfer,
+storing and analysis: the work the runner repeats for every shot. Captures carry the
+simulator's noise (un-quantised noise before 8-bit quantisation); the gate resistance
+alternates between 10 and 12 ohm from one test point to the next, so the pulse settings, the
+trim and the circuit solution change during the run as well (``--vary 0`` keeps one).
+
+``--trace`` also prints the ten allocation sites of what was allocated after the warm-up and
+is still alive at the end of the run (``tracemalloc`` from the warm-up on; slower).
+
+Goal: RSS growth after the warm-up below 0.1 kB per shot (flat: 20,000 shots add < 2 MB).
+
+    python benchmarks/soak.py [--shots 20000] [--durability process] [--trace]
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import multiprocessing
+import os
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))  # measure the tree this script belongs to
+
+BENCH_PATH = ROOT / "sequences" / "bench-sim.yaml"
+EVERY = 1000
+WARMUP = 2000
+GOAL_KB_PER_SHOT = 0.1
+MAX_REPEATS = 1000
+
+
+def _sequence_text(shots: int, vary: int) -> str:
+    """Test points of at most 1,000 repeats each (the sequence schema's limit), the gate
+    resistance alternating between 10 and 12 ohm from point to point (``vary``) or kept."""
+    points = []
+    count = -(-shots // MAX_REPEATS)
+    for k in range(count):
+        gate = "12 ohm" if vary and k % 2 else "10 ohm"
+        repeats = min(MAX_REPEATS, shots - k * MAX_REPEATS)
+        points.append(f"""\
+  - label: p{k}
+    bus_voltage: 600 V
+    forward_current: 30 A
+    temperatures: [25 degC]
+    gate_resistance: {gate}
+    repeats: {repeats}
+    shot_spacing: 0 s
+""")
+    return f"""\
+part: DX-4417
+lot: LT-0117
+devices: [SN0117-001]
+ratings: {{vrrm: 1200 V, if_max: 30 A, tj_max: 150 degC}}
+test_points:
+{''.join(points)}thermal: {{band: 1 K, dwell: 5 s, soak: 0 s, poll_interval: 1 s}}
+expected: {{irrm_fraction: 2.0, didt: 1000 A/us}}
+switch_voltage: true
+"""
+
+
+def rss_kib() -> float:
+    with open("/proc/self/statm") as fh:
+        pages = int(fh.read().split()[1])
+    return pages * os.sysconf("SC_PAGE_SIZE") / 1024.0
+
+
+def _serve(seq_path: str, conn, stop) -> None:
+    from benchrun.config import load_bench, load_sequence
+    from benchrun.runner.simbench import simulated_bench
+
+    sys.setswitchinterval(0.0005)
+    with simulated_bench(load_bench(BENCH_PATH), load_sequence(Path(seq_path))) as sim:
+        conn.send((sim.resources, sim.bench._t0, sim.bench.clock_speedup))
+        stop.wait()
+
+
+class _RemoteClock:
+    """The runner's clock on a simulated bench in another process."""
+
+    def __init__(self, t0: float, speedup: float) -> None:
+        self.t0, self.speedup = t0, speedup
+
+    def monotonic(self) -> float:
+        return (time.monotonic() - self.t0) * self.speedup
+
+    def sleep(self, seconds: float) -> None:
+        if seconds > 0:
+            time.sleep(seconds / self.speedup)
+
+
+@contextlib.contextmanager
+def _bench(seq_path: Path, in_process: bool = False):
+    if in_process:  # as `benchrun run` does with sim resources: its memory counts too
+        from benchrun.config import load_bench, load_sequence
+        from benchrun.runner.simbench import simulated_bench
+
+        with simulated_bench(load_bench(BENCH_PATH), load_sequence(seq_path)) as sim:
+            yield sim.resources, sim.clock
+        return
+    ctx = multiprocessing.get_context("spawn")
+    parent, child = ctx.Pipe()
+    stop = ctx.Event()
+    proc = ctx.Process(target=_serve, args=(str(seq_path), child, stop), daemon=True)
+    proc.start()
+    child.close()
+    try:
+        if not parent.poll(120):
+            raise RuntimeError("the simulated bench did not start")
+        resources, t0, speedup = parent.recv()
+        yield resources, _RemoteClock(t0, speedup)
+    finally:
+        stop.set()
+        proc.join(timeout=10)
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--shots", type=int, default=20000)
+    parser.add_argument("--vary", type=int, default=1,
+                        help="alternate the gate resistance between test points; 0: keep it")
+    parser.add_argument("--durability", default="process", choices=("process", "power-loss"))
+    parser.add_argument("--out-dir", type=Path, default=None)
+    parser.add_argument("--in-process", action="store_true",
+                        help="run the simulated bench in this process (as 'benchrun run' "
+                             "does for sim resources): its memory is counted too")
+    parser.add_argument("--trace", action="store_true")
+    parser.add_argument("--warmup", type=int, default=WARMUP,
+                        help=f"shots before the growth is measured (default {WARMUP})")
+    args = parser.parse_args()
+
+    from benchrun.runner.execute import RunOptions, run_sequence
+
+    print(f"load average: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
+    with tempfile.TemporaryDirectory(dir=args.out_dir) as tmp:
+        seq = Path(tmp) / "soak.yaml"
+        seq.write_text(_sequence_text(args.shots, args.vary))
+        rows: list[tuple[int, float, float]] = []
+        state = {"n": 0, "t0": time.perf_counter(), "snap": None}
+
+        def on_stored(result) -> None:
+            state["n"] += 1
+            n = state["n"]
+            if n % EVERY == 0:
+                rss = rss_kib()
+                rows.append((n, rss, time.perf_counter() - state["t0"]))
+                print(f"{n:7d} shots  RSS {rss / 1024:8.1f} MB  "
+                      f"{rows[-1][2]:7.0f} s", flush=True)
+            if args.trace and n == args.warmup:
+                import tracemalloc
+
+                tracemalloc.start(6)  # from here on: what is still alive at the end grew
+            if args.trace and n == args.shots:
+                import tracemalloc
+
+                state["snap"] = tracemalloc.take_snapshot()  # while the run holds it
+
+        with _bench(seq, args.in_process) as (resources, clock):
+            options = RunOptions(out_dir=Path(tmp) / "runs", sim_resources=resources,
+                                 clock=clock, show_progress=False, on_stored=on_stored,
+                                 durability=args.durability)
+            outcome = run_sequence(seq, BENCH_PATH, options)
+        print(f"run {outcome.status}: {outcome.shots_stored} shots stored "
+              f"({outcome.shots_valid} valid)")
+        if args.trace and state["snap"] is not None:
+
+            top = state["snap"].statistics("traceback")
+            print("allocations made after the warm-up and still alive at the end:")
+            for stat in top[:10]:
+                print(f"  {stat.size / 1024:+9.1f} kB  {stat.count:+7d} blocks")
+                for line in stat.traceback.format()[-6:]:
+                    print(f"      {line}")
+    after = [(n, rss) for n, rss, _ in rows if n >= args.warmup]
+    if len(after) >= 2:
+        (n0, r0), (n1, r1) = after[0], after[-1]
+        per_shot = (r1 - r0) / (n1 - n0)
+        print(f"RSS growth after {args.warmup} shots: {(r1 - r0) / 1024:+.1f} MB over {n1 - n0} "
+              f"shots = {per_shot * 1024:+.0f} bytes per shot")
+        print(f"goal < {GOAL_KB_PER_SHOT * 1024:.0f} bytes per shot: "
+              f"{'met' if per_shot < GOAL_KB_PER_SHOT else 'NOT met'}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
