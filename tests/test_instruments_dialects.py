@@ -57,6 +57,7 @@ OURS = {
     "WDOG:REFResh": "output watchdog refresh",
     "HANDler:DUT:CATalog": "device handler: serials held",
     "HANDler:DUT:SELect": "device handler: device in the fixture",
+    "HANDler:DUT:IDENtity": "device handler: part and lot of a held device",
 }
 
 #: character-data parameters (SCPI-1999, from memory) and our own trace name TRACE<n>
