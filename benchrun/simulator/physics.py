@@ -413,11 +413,15 @@ def simulate_current_ramp(
     jp = diode.at_temperature(temperature_K)
     cap = jp.capacitance
     jc = jp.junction_current
+    cx = jp.sweep_capacitance
+    tau = jp.tau_s
 
     def rhs(y, t):
         v, q = y
         ij, dq = jc(v, q)
-        return [(forward_current_A - didt_A_per_s * t - ij) / cap(v), dq]
+        c_sweep = cx(v, tau * q)
+        dv = (forward_current_A - didt_A_per_s * t - ij) / (cap(v) + c_sweep)
+        return [dv, dq + (c_sweep * dv / tau if c_sweep > 0.0 else 0.0)]
 
     v0 = jp.junction_voltage_forward(forward_current_A)
     q0 = forward_current_A if jp.is_charge_control else 0.0
