@@ -14,12 +14,21 @@ from collections.abc import Sequence
 from typing import Any
 
 from benchrun.errors import ConfigError
-from benchrun.loss import Comparison, LossTable, compare, estimate_losses
+from benchrun.loss import (
+    Comparison,
+    LossTable,
+    capacitive_parts_of,
+    compare,
+    estimate_losses,
+    rejected_devices,
+)
 from benchrun.units import format_si, parse_quantity
 
 MODEL_LINES = (
     "E = Err + switch turn-on energy caused by the recovery (measured: Eon minus the "
-    "ideal-diode Eon; else the estimate VR·Qrr, marked 'estimate'); P = fsw·E.",
+    "ideal-diode Eon; else the estimate VR·Qrr, marked 'estimate'); P = fsw·E. For a part "
+    "declared capacitive (sequence loss.recovery), E = the switch share only: its Err is "
+    "stored in the diode capacitance and returned.",
     "Valid at the tested conditions only (temperature, VR, IF, di/dt); nothing is scaled to "
     "other voltages or currents.",
 )
@@ -58,17 +67,34 @@ def parse_frequencies(texts: Sequence[str]) -> list[float]:
     return out
 
 
+def _estimate(data: Any, freqs: list[float]) -> LossTable:
+    """Loss table of a stored run: its declared recovery kind, its rejected devices left out
+    when the run folder holds the limits it was graded against (else none are left out, and
+    the table says so)."""
+    from benchrun.config.limits import load_limits
+    from benchrun.grading import grade_lot, run_bench
+    from benchrun.store.rundata import LIMITS_FILE
+
+    rejected = None
+    if data.run_dir is not None and (data.run_dir / LIMITS_FILE).is_file():
+        lot = grade_lot(data.shots, load_limits(data.run_dir / LIMITS_FILE),
+                        bench=run_bench(data))
+        rejected = rejected_devices(lot)
+    return estimate_losses(data.shots, freqs, capacitive_parts=capacitive_parts_of(data.manifest),
+                           rejected=rejected)
+
+
 def run(args: argparse.Namespace) -> int:
     from benchrun.store.rundata import load_run
 
     freqs = parse_frequencies(args.fsw)
     data = load_run(args.results, args.run_id)
-    table = estimate_losses(data.shots, freqs)
+    table = _estimate(data, freqs)
     comparison = other_id = None
     if args.compare:
         other = load_run(args.compare, args.compare_run_id)
         other_id = other.run_id
-        comparison = compare(table, estimate_losses(other.shots, freqs))
+        comparison = compare(table, _estimate(other, freqs))
     if args.json:
         payload: dict[str, Any] = {"run_id": data.run_id, "loss": table.to_dict()}
         if comparison is not None:
@@ -123,6 +149,9 @@ def render_text(table: LossTable, *, run_id: str = "") -> str:
         lines.append("")
     for reason in table.skipped:
         lines.append(f"left out: {reason}")
+    if any(not g.err_counted for g in table.groups):
+        lines.append("capacitive part: E = switch share only (Err is stored in the diode "
+                     "capacitance and returned, not counted)")
     return "\n".join(lines).rstrip()
 
 
@@ -131,8 +160,9 @@ def render_comparison(comparison: Comparison, *, other_run_id: str = "") -> str:
     lines = [f"Comparison with run {other_run_id or '—'}: saving = P(reference) − P(part); "
              "positive when the part loses less.",
              f"Match: temperature within {comparison.temperature_tol_K:g} K, VR and IF within "
-             f"{100 * comparison.relative_tol:g} %; linear interpolation only inside a measured "
-             "sweep of the reference, never extrapolated.", ""]
+             f"{100 * comparison.relative_tol:g} %, di/dt within "
+             f"{100 * comparison.didt_tol:g} %; linear interpolation only inside a measured "
+             "sweep of the reference, never extrapolated.", *comparison.notes, ""]
     if comparison.rows:
         header = ["part", "reference", "T", "VR", "IF", "E part", "E ref"]
         for f in comparison.fsw_hz:
