@@ -45,6 +45,10 @@ def register(subparsers: Any) -> None:
     parser.add_argument("results", metavar="RESULTS", help="run folder or results database URL")
     parser.add_argument("--fsw", metavar="FREQ", action="append", required=True,
                         help="switching frequency, e.g. 20kHz (repeat for several)")
+    parser.add_argument("--line-peak", metavar="CURRENT",
+                        help="also average over a sinusoidal line cycle of this peak current "
+                        "(e.g. 28A), from a power law fitted in IF: P = fsw·(1/2π)·∫₀^π "
+                        "E(Î·sin θ) dθ, with its uncertainty")
     parser.add_argument("--compare", metavar="OTHER_RESULTS",
                         help="reference run (folder or database URL) to compare against")
     parser.add_argument("--run-id", metavar="ID", help="run in RESULTS when the database holds "
@@ -95,13 +99,38 @@ def run(args: argparse.Namespace) -> int:
         other = load_run(args.compare, args.compare_run_id)
         other_id = other.run_id
         comparison = compare(table, _estimate(other, freqs))
+    line = None
+    if args.line_peak:
+        from benchrun.loss.line_cycle import line_cycle_losses
+
+        peak = parse_quantity(args.line_peak, "current", field="--line-peak")
+        if not peak > 0:
+            raise ConfigError("the line current's peak must be positive", field="--line-peak")
+        line = line_cycle_losses(table, peak)
     if args.json:
         payload: dict[str, Any] = {"run_id": data.run_id, "loss": table.to_dict()}
+        if line is not None:
+            payload["line_cycle"] = {
+                "model": "P = fsw/(2π)·∫₀^π E(Î·sin θ) dθ with E = E_ref·(IF/I_ref)^b fitted "
+                "by least squares in log-log; u = k·u_c from the fit covariance (GUM)",
+                "results": [{"part": r.part, "lot": r.lot, "temperature_K": r.temperature_K,
+                             "vr_V": r.vr_nominal_V, "peak_current_A": r.peak_current_A,
+                             "b": r.fit.b, "e_ref_J": r.fit.e_ref_J, "i_ref_A": r.fit.i_ref_A,
+                             "power_W": list(r.power_W),
+                             "u_W": None if r.u_W is None else list(r.u_W),
+                             "coverage_factor": r.coverage_factor,
+                             "above_range_fraction": r.above_range_fraction}
+                            for r in line[0]],
+                "not_fitted": list(line[1]),
+            }
         if comparison is not None:
             payload["compare"] = {"run_id": other_id, **comparison.to_dict()}
         print(json.dumps(payload, indent=2, sort_keys=True, ensure_ascii=False))
     else:
         print(render_text(table, run_id=data.run_id))
+        if line is not None:
+            print()
+            print(render_line_cycle(*line))
         if comparison is not None:
             print()
             print(render_comparison(comparison, other_run_id=other_id or ""))
@@ -153,6 +182,27 @@ def render_text(table: LossTable, *, run_id: str = "") -> str:
         lines.append("capacitive part: E = switch share only (Err is stored in the diode "
                      "capacitance and returned, not counted)")
     return "\n".join(lines).rstrip()
+
+
+def render_line_cycle(results: Any, reasons: Any) -> str:
+    """Line-cycle averages: fit, power at each frequency with its expanded uncertainty."""
+    lines = ["Line-cycle average: P = fsw·(1/2π)·∫₀^π E(Î·sin θ) dθ, E = E_ref·(IF/I_ref)^b "
+             "fitted in log-log over the measured IF (least squares); U from the fit "
+             "covariance (GUM), k = 2."]
+    for r in results:
+        powers = ", ".join(
+            f"{_w(p)}" + ("" if r.u_W is None else f" ± {_w(u)}")
+            for p, u in zip(r.power_W, r.u_W or r.power_W, strict=True))
+        lines.append(
+            f"  {r.part} {r.lot} at {format_si(r.temperature_K, 'K', 5)}, "
+            f"{format_si(r.vr_nominal_V, 'V', 3)}, Î = {format_si(r.peak_current_A, 'A', 3)}: "
+            f"b = {r.fit.b:.2f} over {format_si(r.fit.i_min_A, 'A', 3)}–"
+            f"{format_si(r.fit.i_max_A, 'A', 3)} ({r.fit.n_points} points): {powers}"
+            + ("" if r.u_W is not None else " (two IF points: no uncertainty)")
+            + (f"; {100 * r.above_range_fraction:.0f} % of the energy extrapolated above the "
+               "highest measured IF" if r.above_range_fraction > 0 else ""))
+    lines += [f"  not fitted: {text}" for text in reasons]
+    return "\n".join(lines)
 
 
 def render_comparison(comparison: Comparison, *, other_run_id: str = "") -> str:
