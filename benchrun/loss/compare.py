@@ -9,8 +9,12 @@ Rules (stated with every comparison):
   linearly between the two nearest measured points. Never extrapolated; temperature is never
   interpolated.
 * The commutation di/dt must match too (recovery charge and energy grow with di/dt): the
-  mean measured di/dt of the two groups must agree within ``didt_tol`` (relative), else the
-  condition is reported as not matched with both values.  Where either side has no measured
+  mean measured di/dt of the two groups must agree within ``didt_tol`` (relative, default
+  25 %, the di/dt tolerance of the shipped sequences' test conditions), else the condition is
+  reported as not matched with both values.  The measured di/dt includes part of the
+  device's own recovery (its window reaches −0.5·Irrm), so two parts commutated by the same
+  switch and gate resistor read apart by some 10-15 % (SiC against silicon on the simulated
+  bench).  Where either side has no measured
   di/dt, the row says "di/dt not compared".
 * Anything else is reported as not matched, with the reason.
 * Whether devices not graded conforming were left out is stated for each side
@@ -62,7 +66,7 @@ class Comparison:
     unmatched: tuple[str, ...] = field(default=())
     temperature_tol_K: float = 2.0
     relative_tol: float = 0.02
-    didt_tol: float = 0.1
+    didt_tol: float = 0.25
     notes: tuple[str, ...] = field(default=())
 
     def to_dict(self) -> dict[str, Any]:
@@ -133,7 +137,7 @@ def _didt_note(g: LossGroup, used: list[LossGroup]) -> str:
 
 
 def _reference_energy(
-    g: LossGroup, ref: list[LossGroup], t_tol: float, rel: float, didt_tol: float = 0.1
+    g: LossGroup, ref: list[LossGroup], t_tol: float, rel: float, didt_tol: float = 0.25
 ) -> tuple[float, str, str] | str:
     """(energy, match description, basis) of the reference at g's condition, or a reason."""
     same_t = [r for r in ref if abs(r.temperature_K - g.temperature_K) <= t_tol]
@@ -178,7 +182,7 @@ def compare(
     *,
     temperature_tol_K: float = 2.0,
     relative_tol: float = 0.02,
-    didt_tol: float = 0.1,
+    didt_tol: float = 0.25,
 ) -> Comparison:
     """Saving of the part(s) in ``a`` over the reference part(s) in ``b`` at matching conditions.
 
