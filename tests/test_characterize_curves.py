@@ -93,3 +93,32 @@ def test_fits_recover_the_simulators_known_dependence():
                                (298.15, 398.15)), ["qrr_C"])
     assert all(tr.slope > 0.3 for tr in si if tr.axis == "forward_current_A")
     assert all(tr.slope > 0 for tr in si if tr.axis == "temperature_K")
+
+
+def test_signed_characterization_report(tmp_path):
+    # the PDF is signed through the report package's entry point and the signature verifies
+    # (pyHanko validation, as benchrun verify does); the JSON attachment holds the fits
+    import asyncio
+
+    from report_helpers import make_signer
+
+    from benchrun.characterize.report import CAUTION, render_characterization
+    from benchrun.report.sign import read_attachment
+    from benchrun.report.verify_signature import signature_checks
+
+    files, signer = make_signer(tmp_path)
+    shots = [_shot(i, t, {"qrr_C": 1e-6 * (i / 10) ** 0.7 * (1 + 0.004 * (t - 298.15)),
+                          "irrm_A": 2.0 * i ** 0.5}, serial=f"S{k}")
+             for k in range(2) for i in (3.0, 10.0, 30.0) for t in (233.15, 298.15, 398.15)]
+    out, trends = render_characterization(shots, tmp_path / "characterization.pdf", signer,
+                                          title="DX-4425 characterisation (invented part)",
+                                          flagged=["SN0140-001 at -40 degC: snap"])
+    pdf = out.read_bytes()
+    integrity, trust, _ = asyncio.run(signature_checks(pdf, files.cert_path))
+    assert integrity.ok and trust.ok
+    data = read_attachment(pdf)
+    assert data["kind"] == "characterization" and data["flagged"]
+    assert any(t["metric"] == "qrr_C" and t["axis"] == "forward_current_A"
+               and abs(t["slope"] - 0.7) < 1e-9 for t in data["trends"])
+    assert len(trends) == len(data["trends"])
+    assert "kill" in CAUTION
