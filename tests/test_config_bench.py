@@ -65,6 +65,27 @@ def test_quantities_and_probe_scales(tmp_path):
     assert bench.safety.touch_safe_voltage == 60.0  # IEC 61140 / IEC 62368-1 ES1 default
 
 
+def test_simulated_probe_errors_parse_with_units(tmp_path):
+    from benchrun.runner.simbench import sim_capture_model
+
+    text = BENCH.replace(
+        "deskew: 2 ns}",
+        "deskew: 2 ns,\n                  simulated: {offset: 0.3 A, gain_error: 0.01, "
+        "skew: 2 ns, bandwidth: 80 MHz}}")
+    bench = load_bench(write(tmp_path, text))
+    sim = bench.probes["diode_current"].simulated
+    assert (sim.offset, sim.gain_error, sim.skew, sim.bandwidth) == (
+        pytest.approx(0.3), 0.01, pytest.approx(2e-9), pytest.approx(80e6))
+    model = sim_capture_model(bench)
+    assert model.offset_error["diode_current"] == pytest.approx(0.3)
+    assert model.bandwidth_hz["diode_current"] == pytest.approx(80e6)
+    assert model.skew_s["diode_current"] == pytest.approx(2e-9)
+    assert sim_capture_model(load_bench(write(tmp_path, BENCH))) is None
+    # an offset in the wrong unit for the probe kind is refused
+    with pytest.raises(ConfigError):
+        load_bench(write(tmp_path, text.replace("offset: 0.3 A", "offset: 0.3 V")))
+
+
 def test_unknown_key_names_line(tmp_path):
     text = BENCH.replace("  bleeder_resistance: 20 kohm\n",
                          "  bleeder_resistance: 20 kohm\n  bleder: 1 ohm\n")

@@ -74,3 +74,14 @@ def test_bad_frequency_is_one_line_error(stores, capsys):
 def test_missing_results_is_an_error(tmp_path, capsys):
     assert main(["loss", str(tmp_path / "nowhere"), "--fsw", "20kHz"]) == 2
     assert "error" in capsys.readouterr().err
+
+
+def test_line_cycle_option(stores, capsys):
+    si, _ = stores
+    # one IF only in this store: the line-cycle average is refused with the reason
+    assert main(["loss", si, "--fsw", "20kHz", "--line-peak", "28 A", "--json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert data["line_cycle"]["results"] == []
+    assert "one forward current only" in data["line_cycle"]["not_fitted"][0]
+    assert main(["loss", si, "--fsw", "20kHz", "--line-peak", "28 V"]) == 2
+    assert "--line-peak" in capsys.readouterr().err

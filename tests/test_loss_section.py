@@ -80,3 +80,15 @@ def test_left_out_shots_are_named_with_their_reason():
     texts = [getattr(f, "text", "") for f in loss_flowables(table, getSampleStyleSheet(),
                                                             [line])]
     assert any(line in t for t in texts)
+
+
+def test_switch_energy_sentences_match_the_model():
+    # the report's description of the measured basis names the gate-charge delay model of
+    # benchrun.analysis.switching (ΔT = (i_sw − IL)/(di/dt)), not a linear fall at dv/dt
+    from benchrun.analysis import switching
+    from benchrun.loss.estimate import BASIS_MEASURED
+    from benchrun.report.pages_loss import BASIS_TEXT
+
+    text = BASIS_TEXT[BASIS_MEASURED]
+    assert "(i_sw − IF)/(di/dt)" in text and "dv/dt" not in text
+    assert "ΔT(t) = (i_sw(t) − IL) / (di/dt)" in switching.__doc__

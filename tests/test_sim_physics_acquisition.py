@@ -71,6 +71,18 @@ def test_skew_shifts_the_channel():
     assert t50 == pytest.approx(13e-9, abs=15e-12)
 
 
+def test_probe_gain_error_and_offset_are_applied():
+    # the probe delivers (1 + g)·x + o (definition of a scale error and an additive offset)
+    acq = fine_settings(gain_error={"diode_voltage": 0.02}, offset_error={"diode_voltage": 1.5})
+    ch = digitize(step_waveforms(level=100.0), acq)["diode_voltage"]
+    y = ch.values()
+    assert y[0] == pytest.approx(1.5, abs=0.01)  # before the step: the offset alone
+    assert y[-1] == pytest.approx(1.02 * 100.0 + 1.5, abs=0.01)
+    # the 50 % point of the shown step moves with the gain error, not in time
+    t50 = crossing(acq.time_axis(), y, 0.5 * (y[0] + y[-1]))
+    assert t50 == pytest.approx(10e-9, abs=15e-12)
+
+
 def test_codes_gain_offset_and_clipping():
     acq = AcquisitionSettings(
         sample_interval_s=1e-9, record_length=200, t_start_s=-50e-9,

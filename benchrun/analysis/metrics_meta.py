@@ -76,6 +76,11 @@ _TABLE = (
      "absolute start of the Eon window: switch current rises through 10 % of IF"),
     ("t_eon_end_s", "s", "t(Eon end)",
      "absolute end of the Eon window: switch voltage falls through 2 % of its off-state value"),
+    ("vf_V", "V", "VF", "forward voltage: median on the IF plateau before the commutation"),
+    ("vf_lsb_V", "V", "VF step", "quantisation step of the diode-voltage channel"),
+    ("vfp_V", "V", "VFP", "peak forward voltage at the diode's turn-on (forward recovery)"),
+    ("tfr_s", "s", "tfr",
+     "forward recovery time: current through 10 % of IF to voltage below 1.1·VF"),
 )
 
 #: The recovery time intervals each metric needs resolved (linear-interpolation timing

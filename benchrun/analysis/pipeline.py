@@ -19,6 +19,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from benchrun.analysis.conditioning import codes_to_volts, deskew, detect_clipping, scale
+from benchrun.analysis.forward import ForwardMetrics, analyze_forward
 from benchrun.analysis.recovery import RecoveryMetrics, RecoveryOptions, analyze_recovery
 from benchrun.analysis.switching import (
     analyze_switch_turn_on,
@@ -105,13 +106,16 @@ class ShotAnalysis:
     recovery: RecoveryMetrics
     switching: SwitchingMetrics | None = None
     flags: tuple[str, ...] = field(default=())
+    forward: ForwardMetrics | None = None
 
     def metrics(self) -> dict[str, float | None]:
-        """All numeric keys of the recovery and switching results, merged, and the capture
-        uncertainty of each recovery metric as ``u_<key>`` (:data:`CAPTURE_U_PREFIX`)."""
+        """All numeric keys of the recovery, switching and forward results, merged, and the
+        capture uncertainty of each recovery metric as ``u_<key>`` (:data:`CAPTURE_U_PREFIX`)."""
         out = _numeric_items(self.recovery)
         if self.switching is not None:
             out.update(_numeric_items(self.switching))
+        if self.forward is not None:
+            out.update(_numeric_items(self.forward))
         for key, u in self.recovery.u.items():
             if u is not None:
                 out[CAPTURE_U_PREFIX + key] = u
@@ -210,8 +214,22 @@ def analyze_channels(
         switch_flags = switching.flags
     else:
         switching = switching_estimate(recovery)
+    forward = _forward(t_start, dt, physical, channels[DIODE_VOLTAGE], probes[DIODE_VOLTAGE],
+                       recovery)
     return ShotAnalysis(
         recovery=recovery,
         switching=switching,
-        flags=_merge_flags(recovery.flags, switch_flags, *conditioning_flags.values()),
+        flags=_merge_flags(recovery.flags, switch_flags, forward.flags,
+                           *conditioning_flags.values()),
+        forward=forward,
     )
+
+
+def _forward(t_start: float, dt: float, physical: Mapping[str, np.ndarray],
+             voltage: ChannelData, probe: ProbeCalibration,
+             recovery: RecoveryMetrics) -> ForwardMetrics:
+    """VF at IF and forward recovery (benchrun.analysis.forward) from the same capture."""
+    v = physical[DIODE_VOLTAGE]
+    t = t_start + dt * np.arange(v.size)
+    return analyze_forward(t, v, physical[DIODE_CURRENT], if_A=recovery.if_A,
+                           t0_s=recovery.t0_s, voltage_lsb_V=abs(voltage.gain * probe.scale))

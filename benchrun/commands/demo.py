@@ -139,7 +139,8 @@ def _print_comparison(comparison: Any) -> None:
     if not rows:
         print("loss comparison: no matching test conditions")
         return
-    print("recovery loss per commutation (Err + switch energy caused by the recovery) and "
+    print("recovery loss per commutation (Err + switch energy caused by the recovery; for the "
+          "capacitive SiC part the switch share only, its Err being stored and returned) and "
           "average power P = fsw*E:")
     for row in rows:
         powers = ", ".join(
@@ -147,4 +148,9 @@ def _print_comparison(comparison: Any) -> None:
             for f, pa, pb in zip(comparison.fsw_hz, row.power_a_W, row.power_b_W, strict=True))
         print(f"  {row.part_a} vs {row.part_b} at {row.temperature_K - 273.15:g} degC, "
               f"{row.vr_V:g} V, {row.if_A:g} A: {row.energy_a_J * 1e6:.1f} uJ vs "
-              f"{row.energy_b_J * 1e6:.1f} uJ ({powers})")
+              f"{row.energy_b_J * 1e6:.1f} uJ ({powers}; {row.match})")
+    for note in getattr(comparison, "notes", ()):
+        print(f"  {note}")
+    for text in getattr(comparison, "unmatched", ()):
+        if "di/dt differs" in text:
+            print(f"  not compared: {text}")

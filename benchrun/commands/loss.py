@@ -14,12 +14,21 @@ from collections.abc import Sequence
 from typing import Any
 
 from benchrun.errors import ConfigError
-from benchrun.loss import Comparison, LossTable, compare, estimate_losses
+from benchrun.loss import (
+    Comparison,
+    LossTable,
+    capacitive_parts_of,
+    compare,
+    estimate_losses,
+    rejected_devices,
+)
 from benchrun.units import format_si, parse_quantity
 
 MODEL_LINES = (
     "E = Err + switch turn-on energy caused by the recovery (measured: Eon minus the "
-    "ideal-diode Eon; else the estimate VR·Qrr, marked 'estimate'); P = fsw·E.",
+    "ideal-diode Eon; else the estimate VR·Qrr, marked 'estimate'); P = fsw·E. For a part "
+    "declared capacitive (sequence loss.recovery), E = the switch share only: its Err is "
+    "stored in the diode capacitance and returned.",
     "Valid at the tested conditions only (temperature, VR, IF, di/dt); nothing is scaled to "
     "other voltages or currents.",
 )
@@ -36,6 +45,10 @@ def register(subparsers: Any) -> None:
     parser.add_argument("results", metavar="RESULTS", help="run folder or results database URL")
     parser.add_argument("--fsw", metavar="FREQ", action="append", required=True,
                         help="switching frequency, e.g. 20kHz (repeat for several)")
+    parser.add_argument("--line-peak", metavar="CURRENT",
+                        help="also average over a sinusoidal line cycle of this peak current "
+                        "(e.g. 28A), from a power law fitted in IF: P = fsw·(1/2π)·∫₀^π "
+                        "E(Î·sin θ) dθ, with its uncertainty")
     parser.add_argument("--compare", metavar="OTHER_RESULTS",
                         help="reference run (folder or database URL) to compare against")
     parser.add_argument("--run-id", metavar="ID", help="run in RESULTS when the database holds "
@@ -58,24 +71,66 @@ def parse_frequencies(texts: Sequence[str]) -> list[float]:
     return out
 
 
+def _estimate(data: Any, freqs: list[float]) -> LossTable:
+    """Loss table of a stored run: its declared recovery kind, its rejected devices left out
+    when the run folder holds the limits it was graded against (else none are left out, and
+    the table says so)."""
+    from benchrun.config.limits import load_limits
+    from benchrun.grading import grade_lot, run_bench
+    from benchrun.store.rundata import LIMITS_FILE
+
+    rejected = None
+    if data.run_dir is not None and (data.run_dir / LIMITS_FILE).is_file():
+        lot = grade_lot(data.shots, load_limits(data.run_dir / LIMITS_FILE),
+                        bench=run_bench(data))
+        rejected = rejected_devices(lot)
+    return estimate_losses(data.shots, freqs, capacitive_parts=capacitive_parts_of(data.manifest),
+                           rejected=rejected)
+
+
 def run(args: argparse.Namespace) -> int:
     from benchrun.store.rundata import load_run
 
     freqs = parse_frequencies(args.fsw)
     data = load_run(args.results, args.run_id)
-    table = estimate_losses(data.shots, freqs)
+    table = _estimate(data, freqs)
     comparison = other_id = None
     if args.compare:
         other = load_run(args.compare, args.compare_run_id)
         other_id = other.run_id
-        comparison = compare(table, estimate_losses(other.shots, freqs))
+        comparison = compare(table, _estimate(other, freqs))
+    line = None
+    if args.line_peak:
+        from benchrun.loss.line_cycle import line_cycle_losses
+
+        peak = parse_quantity(args.line_peak, "current", field="--line-peak")
+        if not peak > 0:
+            raise ConfigError("the line current's peak must be positive", field="--line-peak")
+        line = line_cycle_losses(table, peak)
     if args.json:
         payload: dict[str, Any] = {"run_id": data.run_id, "loss": table.to_dict()}
+        if line is not None:
+            payload["line_cycle"] = {
+                "model": "P = fsw/(2π)·∫₀^π E(Î·sin θ) dθ with E = E_ref·(IF/I_ref)^b fitted "
+                "by least squares in log-log; u = k·u_c from the fit covariance (GUM)",
+                "results": [{"part": r.part, "lot": r.lot, "temperature_K": r.temperature_K,
+                             "vr_V": r.vr_nominal_V, "peak_current_A": r.peak_current_A,
+                             "b": r.fit.b, "e_ref_J": r.fit.e_ref_J, "i_ref_A": r.fit.i_ref_A,
+                             "power_W": list(r.power_W),
+                             "u_W": None if r.u_W is None else list(r.u_W),
+                             "coverage_factor": r.coverage_factor,
+                             "above_range_fraction": r.above_range_fraction}
+                            for r in line[0]],
+                "not_fitted": list(line[1]),
+            }
         if comparison is not None:
             payload["compare"] = {"run_id": other_id, **comparison.to_dict()}
         print(json.dumps(payload, indent=2, sort_keys=True, ensure_ascii=False))
     else:
         print(render_text(table, run_id=data.run_id))
+        if line is not None:
+            print()
+            print(render_line_cycle(*line))
         if comparison is not None:
             print()
             print(render_comparison(comparison, other_run_id=other_id or ""))
@@ -123,7 +178,31 @@ def render_text(table: LossTable, *, run_id: str = "") -> str:
         lines.append("")
     for reason in table.skipped:
         lines.append(f"left out: {reason}")
+    if any(not g.err_counted for g in table.groups):
+        lines.append("capacitive part: E = switch share only (Err is stored in the diode "
+                     "capacitance and returned, not counted)")
     return "\n".join(lines).rstrip()
+
+
+def render_line_cycle(results: Any, reasons: Any) -> str:
+    """Line-cycle averages: fit, power at each frequency with its expanded uncertainty."""
+    lines = ["Line-cycle average: P = fsw·(1/2π)·∫₀^π E(Î·sin θ) dθ, E = E_ref·(IF/I_ref)^b "
+             "fitted in log-log over the measured IF (least squares); U from the fit "
+             "covariance (GUM), k = 2."]
+    for r in results:
+        powers = ", ".join(
+            f"{_w(p)}" + ("" if r.u_W is None else f" ± {_w(u)}")
+            for p, u in zip(r.power_W, r.u_W or r.power_W, strict=True))
+        lines.append(
+            f"  {r.part} {r.lot} at {format_si(r.temperature_K, 'K', 5)}, "
+            f"{format_si(r.vr_nominal_V, 'V', 3)}, Î = {format_si(r.peak_current_A, 'A', 3)}: "
+            f"b = {r.fit.b:.2f} over {format_si(r.fit.i_min_A, 'A', 3)}–"
+            f"{format_si(r.fit.i_max_A, 'A', 3)} ({r.fit.n_points} points): {powers}"
+            + ("" if r.u_W is not None else " (two IF points: no uncertainty)")
+            + (f"; {100 * r.above_range_fraction:.0f} % of the energy extrapolated above the "
+               "highest measured IF" if r.above_range_fraction > 0 else ""))
+    lines += [f"  not fitted: {text}" for text in reasons]
+    return "\n".join(lines)
 
 
 def render_comparison(comparison: Comparison, *, other_run_id: str = "") -> str:
@@ -131,8 +210,9 @@ def render_comparison(comparison: Comparison, *, other_run_id: str = "") -> str:
     lines = [f"Comparison with run {other_run_id or '—'}: saving = P(reference) − P(part); "
              "positive when the part loses less.",
              f"Match: temperature within {comparison.temperature_tol_K:g} K, VR and IF within "
-             f"{100 * comparison.relative_tol:g} %; linear interpolation only inside a measured "
-             "sweep of the reference, never extrapolated.", ""]
+             f"{100 * comparison.relative_tol:g} %, di/dt within "
+             f"{100 * comparison.didt_tol:g} %; linear interpolation only inside a measured "
+             "sweep of the reference, never extrapolated.", *comparison.notes, ""]
     if comparison.rows:
         header = ["part", "reference", "T", "VR", "IF", "E part", "E ref"]
         for f in comparison.fsw_hz:

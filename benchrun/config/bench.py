@@ -48,6 +48,7 @@ from benchrun.config.loader import (
     Capacitance,
     Current,
     Energy,
+    Frequency,
     Inductance,
     Resistance,
     StrictModel,
@@ -56,6 +57,7 @@ from benchrun.config.loader import (
     load_model,
     quantity,
 )
+from benchrun.units import parse_quantity
 
 #: Roles a bench can fill; scope, pulse source and bus supply are required.
 ROLES = ("scope", "pulse", "supply", "thermal", "handler")
@@ -139,6 +141,22 @@ class Instruments(StrictModel):
         return [(role, getattr(self, role)) for role in ROLES if getattr(self, role) is not None]
 
 
+class SimulatedProbeErrors(StrictModel):
+    """What the simulated bench's probe really does (the truth the analysis does not know).
+
+    Only the simulated bench reads these: the signal it digitises is
+    ``x_shown(t) = (1 + gain_error)·LP(x)(t − skew) + offset``, ``LP`` a single-pole low-pass
+    of ``bandwidth`` (see :mod:`benchrun.simulator.acquisition`), so corrections made by the
+    analysis (deskew, offset and scale) can be exercised end to end.  ``offset`` is in the
+    measured quantity's unit (V for a voltage probe, A for a shunt or current sensor).
+    """
+
+    offset: float = 0.0
+    gain_error: float = Field(default=0.0, gt=-0.5, lt=0.5)
+    skew: Time = 0.0
+    bandwidth: Frequency | None = Field(default=None, gt=0)
+
+
 class ProbeEntry(StrictModel):
     """How one scope input sees a physical quantity.
 
@@ -154,6 +172,19 @@ class ProbeEntry(StrictModel):
     sensitivity: Resistance | None = None
     deskew: Time = 0.0
     accuracy: ProbeAccuracy | None = None
+    simulated: SimulatedProbeErrors | None = None
+
+    @model_validator(mode="before")
+    @classmethod
+    def _simulated_offset_unit(cls, data: object) -> object:
+        """The simulated offset is in the probe's quantity: volts, or amperes for current."""
+        if isinstance(data, dict) and isinstance(data.get("simulated"), dict):
+            sim = dict(data["simulated"])
+            if "offset" in sim:
+                dimension = "voltage" if data.get("kind") == "voltage" else "current"
+                sim["offset"] = parse_quantity(sim["offset"], dimension)
+            data = {**data, "simulated": sim}
+        return data
 
     @model_validator(mode="after")
     def _one_scaling(self) -> ProbeEntry:
@@ -170,6 +201,8 @@ class ProbeEntry(StrictModel):
                 raise ValueError(f"'{name}' does not apply to a {self.kind} probe")
         if abs(self.deskew) > 1e-6:
             raise ValueError("deskew beyond 1 us is not a probe delay; check the unit")
+        if self.simulated is not None and abs(self.simulated.skew) > 1e-6:
+            raise ValueError("simulated.skew beyond 1 us is not a probe delay; check the unit")
         return self
 
     @property

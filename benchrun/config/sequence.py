@@ -194,9 +194,16 @@ class AnalysisSettings(StrictModel):
 
 
 class LossSettings(StrictModel):
-    """Switching frequencies for the loss estimate."""
+    """Switching frequencies for the loss estimate, and the kind of recovery of the part.
+
+    ``recovery``: ``stored-charge`` (PiN diode, default: Err is dissipated and counted) or
+    ``capacitive`` (Schottky diode: Err is stored in the depletion capacitance and returned, so
+    the loss per commutation is the switch's recovery share only; see
+    :mod:`benchrun.loss.estimate`).
+    """
 
     switching_frequencies: list[Frequency] = Field(default_factory=list)
+    recovery: Literal["stored-charge", "capacitive"] = "stored-charge"
 
     @field_validator("switching_frequencies")
     @classmethod

@@ -6,7 +6,15 @@ Public API::
 """
 
 from benchrun.loss.compare import Comparison, ComparisonRow, compare
-from benchrun.loss.estimate import LossGroup, LossRow, LossTable, estimate_losses, shot_energy
+from benchrun.loss.estimate import (
+    LossGroup,
+    LossRow,
+    LossTable,
+    capacitive_parts_of,
+    estimate_losses,
+    rejected_devices,
+    shot_energy,
+)
 
 __all__ = [
     "Comparison",
@@ -14,7 +22,9 @@ __all__ = [
     "LossGroup",
     "LossRow",
     "LossTable",
+    "capacitive_parts_of",
     "compare",
     "estimate_losses",
+    "rejected_devices",
     "shot_energy",
 ]

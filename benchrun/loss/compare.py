@@ -8,7 +8,17 @@ Rules (stated with every comparison):
   the same temperature and the same IF (or VR) brackets it, its energy is interpolated
   linearly between the two nearest measured points. Never extrapolated; temperature is never
   interpolated.
+* The commutation di/dt must match too (recovery charge and energy grow with di/dt): the
+  mean measured di/dt of the two groups must agree within ``didt_tol`` (relative, default
+  25 %, the di/dt tolerance of the shipped sequences' test conditions), else the condition is
+  reported as not matched with both values.  The measured di/dt includes part of the
+  device's own recovery (its window reaches −0.5·Irrm), so two parts commutated by the same
+  switch and gate resistor read apart by some 10-15 % (SiC against silicon on the simulated
+  bench).  Where either side has no measured
+  di/dt, the row says "di/dt not compared".
 * Anything else is reported as not matched, with the reason.
+* Whether devices not graded conforming were left out is stated for each side
+  (``Comparison.notes``): a table made without grades says so.
 
 The saving of part A over reference part B at a frequency is ``P_B − P_A`` (positive when A
 loses less) and ``100·(P_B − P_A)/P_B`` percent.
@@ -56,6 +66,8 @@ class Comparison:
     unmatched: tuple[str, ...] = field(default=())
     temperature_tol_K: float = 2.0
     relative_tol: float = 0.02
+    didt_tol: float = 0.25
+    notes: tuple[str, ...] = field(default=())
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dictionary (SI units)."""
@@ -70,7 +82,9 @@ class Comparison:
             "fsw_hz": list(self.fsw_hz),
             "rows": rows,
             "unmatched": list(self.unmatched),
+            "notes": list(self.notes),
             "rules": {
+                "didt_tol": self.didt_tol,
                 "temperature_tol_K": self.temperature_tol_K,
                 "relative_tol": self.relative_tol,
                 "saving": "P_b - P_a (positive when part a loses less); percent of P_b",
@@ -104,8 +118,26 @@ def _interpolate(
     return energy, how
 
 
+def _didt_check(g: LossGroup, used: list[LossGroup], tol: float) -> str | None:
+    """None when di/dt matches (or cannot be compared), else the reason it does not."""
+    values = [r.didt_mean_A_per_s for r in used if r.didt_mean_A_per_s is not None]
+    if g.didt_mean_A_per_s is None or not values:
+        return None
+    ref = sum(values) / len(values)
+    if _close(g.didt_mean_A_per_s, ref, tol):
+        return None
+    return (f"di/dt differs: {format_si(g.didt_mean_A_per_s, 'A/s')} against "
+            f"{format_si(ref, 'A/s')} (tolerance {100 * tol:.0f} %)")
+
+
+def _didt_note(g: LossGroup, used: list[LossGroup]) -> str:
+    if g.didt_mean_A_per_s is None or all(r.didt_mean_A_per_s is None for r in used):
+        return "; di/dt not compared (not recorded)"
+    return "; di/dt matched"
+
+
 def _reference_energy(
-    g: LossGroup, ref: list[LossGroup], t_tol: float, rel: float
+    g: LossGroup, ref: list[LossGroup], t_tol: float, rel: float, didt_tol: float = 0.25
 ) -> tuple[float, str, str] | str:
     """(energy, match description, basis) of the reference at g's condition, or a reason."""
     same_t = [r for r in ref if abs(r.temperature_K - g.temperature_K) <= t_tol]
@@ -114,9 +146,13 @@ def _reference_energy(
     exact = [r for r in same_t if _close(r.vr_nominal_V, g.vr_nominal_V, rel)
              and _close(r.if_nominal_A, g.if_nominal_A, rel)]
     if exact:
+        differs = _didt_check(g, exact, didt_tol)
+        if differs:
+            return differs
         energy = sum(r.energy_mean_J for r in exact) / len(exact)
         bases = {r.basis for r in exact}
-        return energy, MATCH_MEASURED, bases.pop() if len(bases) == 1 else "mixed"
+        return (energy, MATCH_MEASURED + _didt_note(g, exact),
+                bases.pop() if len(bases) == 1 else "mixed")
     same_if = [r for r in same_t if _close(r.if_nominal_A, g.if_nominal_A, rel)]
     found = _interpolate(g.vr_nominal_V, [(r.vr_nominal_V, r.energy_mean_J) for r in same_if],
                          "VR", "V")
@@ -127,8 +163,12 @@ def _reference_energy(
                              [(r.if_nominal_A, r.energy_mean_J) for r in same_vr], "IF", "A")
         used = same_vr
     if found is not None:
+        differs = _didt_check(g, used, didt_tol)
+        if differs:
+            return differs
         bases = {r.basis for r in used}
-        return found[0], found[1], bases.pop() if len(bases) == 1 else "mixed"
+        return (found[0], found[1] + _didt_note(g, used),
+                bases.pop() if len(bases) == 1 else "mixed")
     measured = "; ".join(sorted({f"{format_si(r.vr_nominal_V, 'V')}/"
                                  f"{format_si(r.if_nominal_A, 'A')}" for r in same_t}))
     return (f"{format_si(g.vr_nominal_V, 'V')}/{format_si(g.if_nominal_A, 'A')} lies outside "
@@ -142,6 +182,7 @@ def compare(
     *,
     temperature_tol_K: float = 2.0,
     relative_tol: float = 0.02,
+    didt_tol: float = 0.25,
 ) -> Comparison:
     """Saving of the part(s) in ``a`` over the reference part(s) in ``b`` at matching conditions.
 
@@ -154,7 +195,7 @@ def compare(
     for part_b, lot_b in b.parts:
         ref = [g for g in b.groups if (g.part, g.lot) == (part_b, lot_b)]
         for g in a.groups:
-            found = _reference_energy(g, ref, temperature_tol_K, relative_tol)
+            found = _reference_energy(g, ref, temperature_tol_K, relative_tol, didt_tol)
             if isinstance(found, str):
                 unmatched.append(f"{g.part} {g.lot} at {_cond(g)}: {part_b} {lot_b} {found}")
                 continue
@@ -181,5 +222,12 @@ def compare(
             if not covered:
                 unmatched.append(f"{part_b} {lot_b} at {_cond(r)}: not measured for "
                                  + ", ".join(f"{p} {lot}" for p, lot in a.parts))
+    notes = tuple(
+        f"{', '.join(f'{p} {lot}' for p, lot in table.parts) or side}: "
+        + ("devices not graded conforming were left out" if table.rejected_excluded
+           else "no grades given: rejected devices were not left out")
+        for side, table in (("part", a), ("reference", b))
+    )
     return Comparison(fsw_hz=freqs, rows=tuple(rows), unmatched=tuple(unmatched),
-                      temperature_tol_K=temperature_tol_K, relative_tol=relative_tol)
+                      temperature_tol_K=temperature_tol_K, relative_tol=relative_tol,
+                      didt_tol=didt_tol, notes=notes)

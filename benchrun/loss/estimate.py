@@ -7,6 +7,16 @@ Model (stated on the report and in ``benchrun loss``):
   measured (``eon_recovery_J``, switch-voltage channel captured) or, when it was not measured,
   the estimate ``VR·Qrr`` (``eon_recovery_estimate_J``; see
   :mod:`benchrun.analysis.switching`). Each row says which basis it rests on.
+* For a part declared capacitive (a Schottky diode: depletion charge only), ``E = Esw,rec``:
+  its ``Err = ∫v·i dt`` over the "recovery" is the energy Ec = ∫v·dQ stored in the diode's
+  depletion capacitance, not dissipated; it is given back when the diode next conducts (the
+  load current discharges the capacitance), and the charge Qc that stored it was drawn from the
+  bus through the switch, whose share (about VR·Qc − Ec measured, VR·Qc estimated) is already
+  Esw,rec.  Counting Err as well would count Ec twice (energy balance of a capacitor charged
+  from a voltage source through a resistive path, elementary circuit theory).  Rows keep Err
+  for reference and say whether it is counted (``err_counted``).
+* Devices whose grade is not conforming can be left out (``rejected``): a loss figure of a
+  part describes the devices that would be shipped.  The table says whether that was done.
 * Average power at a switching frequency: ``P = fsw·E`` (one recovery per switching period,
   the usual loss bookkeeping of hard-switched converters).
 * Valid only at the tested conditions (temperature, reverse voltage, forward current, di/dt);
@@ -20,7 +30,7 @@ shots; groups aggregate the devices of one part/lot at one test point (mean and 
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Collection, Sequence
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
@@ -29,6 +39,9 @@ from benchrun.records import ShotResult
 BASIS_MEASURED = "measured"
 BASIS_ESTIMATE = "estimate"
 BASIS_MIXED = "mixed"
+#: ``loss.recovery`` of a sequence (and ``loss_recovery`` of its run manifest)
+RECOVERY_STORED_CHARGE = "stored-charge"
+RECOVERY_CAPACITIVE = "capacitive"
 
 
 @dataclass(frozen=True)
@@ -53,6 +66,7 @@ class LossRow:
     vr_V: float | None = None
     if_A: float | None = None
     didt_A_per_s: float | None = None
+    err_counted: bool = True
 
 
 @dataclass(frozen=True)
@@ -73,6 +87,8 @@ class LossGroup:
     basis: str
     power_mean_W: tuple[float, ...]
     power_max_W: tuple[float, ...]
+    didt_mean_A_per_s: float | None = None
+    err_counted: bool = True
 
 
 @dataclass(frozen=True)
@@ -88,13 +104,18 @@ class LossTable:
     groups
         Per part/lot and test point (temperature, nominal VR, nominal IF).
     skipped
-        Why shots were left out (invalid, missing metrics), one line per reason with counts.
+        Why shots were left out (invalid, missing metrics, rejected device), one line per
+        reason with counts.
+    rejected_excluded
+        True when device grades were given and devices not graded conforming were left out;
+        False when no grades were given (nothing is known about rejected devices).
     """
 
     fsw_hz: tuple[float, ...]
     rows: tuple[LossRow, ...]
     groups: tuple[LossGroup, ...]
     skipped: tuple[str, ...] = field(default=())
+    rejected_excluded: bool = False
 
     @property
     def parts(self) -> tuple[tuple[str, str], ...]:
@@ -116,9 +137,12 @@ class LossTable:
             "rows": [_row_dict(r) for r in self.rows],
             "groups": [_row_dict(g) for g in self.groups],
             "skipped": list(self.skipped),
+            "rejected_excluded": self.rejected_excluded,
             "model": {
                 "energy_per_commutation": "E = err_J + recovery-caused switch turn-on energy "
-                "(measured eon_recovery_J, else the estimate VR·Qrr)",
+                "(measured eon_recovery_J, else the estimate VR·Qrr); for a capacitive part "
+                "E = the switch energy only (err_J is stored in the diode capacitance and "
+                "returned)",
                 "average_power": "P = fsw·E",
                 "validity": "at the tested conditions only; no scaling to other voltages or "
                 "currents",
@@ -185,7 +209,27 @@ def point_key(shot: ShotResult) -> tuple[float, float, float]:
     return (round(p.temperature_K, 3), round(p.bus_voltage_V, 6), round(p.forward_current_A, 6))
 
 
-def estimate_losses(shots: Sequence[ShotResult], fsw_hz: Sequence[float]) -> LossTable:
+def capacitive_parts_of(manifest: dict[str, Any]) -> tuple[str, ...]:
+    """The run's part when its sequence declares a capacitive recovery (``loss.recovery``)."""
+    if manifest.get("loss_recovery") == RECOVERY_CAPACITIVE and manifest.get("part"):
+        return (str(manifest["part"]),)
+    return ()
+
+
+def rejected_devices(lot: Any) -> tuple[str, ...]:
+    """Serials of a graded lot (:class:`benchrun.grading.results.LotResult`) not conforming."""
+    from benchrun.grading.decision import CONFORMING
+
+    return tuple(d.serial for d in lot.devices if d.verdict != CONFORMING)
+
+
+def estimate_losses(
+    shots: Sequence[ShotResult],
+    fsw_hz: Sequence[float],
+    *,
+    capacitive_parts: Collection[str] = (),
+    rejected: Collection[str] | None = None,
+) -> LossTable:
     """Recovery loss per commutation and average power at each switching frequency.
 
     Parameters
@@ -196,6 +240,11 @@ def estimate_losses(shots: Sequence[ShotResult], fsw_hz: Sequence[float]) -> Los
         in ``LossTable.skipped``.
     fsw_hz
         Switching frequencies [Hz], each > 0.
+    capacitive_parts
+        Part numbers whose recovery is capacitive (Schottky): ``E = Esw,rec`` without Err.
+    rejected
+        Serials of devices not graded conforming, left out; ``None`` when no grades are known
+        (then nothing is left out and ``LossTable.rejected_excluded`` is False).
 
     Returns
     -------
@@ -210,7 +259,13 @@ def estimate_losses(shots: Sequence[ShotResult], fsw_hz: Sequence[float]) -> Los
 
     per_device: dict[tuple, list[tuple[ShotResult, float, float, str]]] = {}
     skipped: dict[str, int] = {}
+    capacitive = set(capacitive_parts)
+    excluded = set(rejected or ())
     for shot in shots:
+        if shot.serial in excluded:
+            reason = "shot of a device not graded conforming"
+            skipped[reason] = skipped.get(reason, 0) + 1
+            continue
         if not shot.valid:
             reason = "invalid shot (test conditions out of tolerance or event not found)"
             skipped[reason] = skipped.get(reason, 0) + 1
@@ -228,7 +283,8 @@ def estimate_losses(shots: Sequence[ShotResult], fsw_hz: Sequence[float]) -> Los
         part, lot, serial, temp, vr_nom, if_nom = key
         errs = [e for _, e, _, _ in items]
         sws = [s for _, _, s, _ in items]
-        energies = [e + s for e, s in zip(errs, sws, strict=True)]
+        counted = part not in capacitive
+        energies = [(e if counted else 0.0) + s for e, s in zip(errs, sws, strict=True)]
         mean_energy = _mean(energies)
         conds = [shot.conditions for shot, *_ in items]
         rows.append(LossRow(
@@ -239,6 +295,7 @@ def estimate_losses(shots: Sequence[ShotResult], fsw_hz: Sequence[float]) -> Los
             vr_V=_mean_or_none([_finite(c.get("vr_V")) for c in conds]),
             if_A=_mean_or_none([_finite(c.get("if_A")) for c in conds]),
             didt_A_per_s=_mean_or_none([_finite(c.get("didt_A_per_s")) for c in conds]),
+            err_counted=counted,
         ))
     rows.sort(key=lambda r: (r.part, r.lot, r.temperature_K, r.vr_nominal_V, r.if_nominal_A,
                              r.serial))
@@ -260,10 +317,13 @@ def estimate_losses(shots: Sequence[ShotResult], fsw_hz: Sequence[float]) -> Los
             basis=_basis([m.basis for m in members]),
             power_mean_W=tuple(f * e_mean for f in freqs),
             power_max_W=tuple(f * e_max for f in freqs),
+            didt_mean_A_per_s=_mean_or_none([m.didt_A_per_s for m in members]),
+            err_counted=all(m.err_counted for m in members),
         ))
     return LossTable(
         fsw_hz=freqs,
         rows=tuple(rows),
         groups=tuple(groups),
         skipped=tuple(f"{n} × {reason}" for reason, n in skipped.items()),
+        rejected_excluded=rejected is not None,
     )

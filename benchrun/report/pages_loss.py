@@ -36,8 +36,8 @@ ASSUMPTIONS = (
 BASIS_TEXT = {
     BASIS_MEASURED: "measured: switch Eon over the window 10 % of IF (current rising) to 2 % "
     "of the off-state voltage (voltage falling), IEC 60747-9 practice, minus the Eon modelled "
-    "for a charge-free diode (measured current rise, then a linear voltage fall at the "
-    "measured dv/dt while the switch carries IF); an upper-side figure",
+    "for a charge-free diode (measured current rise; each voltage level of the fall reached "
+    "earlier by the gate-charge delay (i_sw − IF)/(di/dt) while the switch carries IF)",
     BASIS_ESTIMATE: "estimate: VR·Qrr (the recovered charge passes the switch while it holds "
     "about the bus voltage); no switch-voltage channel was captured",
     BASIS_MIXED: "mixed: some devices measured, some estimated",
@@ -85,7 +85,9 @@ def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] |
     out: list[Flowable] = [
         Paragraph(escape(
             "Energy lost per commutation because of the diode's reverse recovery, "
-            "E = Err + the switch turn-on energy the recovery causes, and the average power "
+            "E = Err + the switch turn-on energy the recovery causes (for a part declared "
+            "capacitive, the switch share only: its Err is stored and returned), and the "
+            "average power "
             f"P = fsw·E at {freqs or 'no frequency'}. Means and maxima over the devices of "
             "each part and lot at each test point (valid shots only)."), body),
         Spacer(1, 3),

@@ -75,7 +75,7 @@ def publish_report(
     """
     from benchrun.config.limits import load_limits
     from benchrun.grading import grade_lot, run_bench
-    from benchrun.loss import estimate_losses
+    from benchrun.loss import capacitive_parts_of, estimate_losses, rejected_devices
     from benchrun.report.render import render_report
     from benchrun.store.rundata import LIMITS_FILE, load_run
 
@@ -94,7 +94,8 @@ def publish_report(
     freqs = switching_frequencies_Hz
     if freqs is None:
         freqs = list(run.manifest.get("switching_frequencies_Hz") or [])
-    loss = estimate_losses(run.shots, freqs) if freqs else None
+    loss = estimate_losses(run.shots, freqs, capacitive_parts=capacitive_parts_of(run.manifest),
+                           rejected=rejected_devices(lot)) if freqs else None
     path = render_report(run, lot, Path(out_pdf), signer=signer, loss=loss, limits=spec)
     return PublishedReport(run=run, lot=lot, loss=loss, path=Path(path),
                            limits_path=Path(limits_path))

@@ -294,6 +294,7 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
         "allow_overdue_calibration": bool(options.allow_overdue_calibration),
         "tolerances": prep.sequence.tolerances.model_dump(),
         "switching_frequencies_Hz": list(prep.sequence.loss.switching_frequencies),
+        "loss_recovery": prep.sequence.loss.recovery,
         "fixture": prep.bench.fixture.model_dump(),
         "probes": {k: v.model_dump() for k, v in prep.bench.probes.items()},
         "bench_name": prep.bench.name,

@@ -75,6 +75,24 @@ def sim_fixture(bench: BenchConfig) -> Any:
     )
 
 
+def sim_capture_model(bench: BenchConfig) -> Any:
+    """The simulator's capture model with the probe errors the bench file states
+    (``probes.<signal>.simulated``), or None (the simulator's defaults) when none states any."""
+    from benchrun.simulator.capture import DEFAULT_BANDWIDTH_HZ, PhysicsCaptureModel
+
+    stated = {name: p.simulated for name, p in bench.probes.items() if p.simulated is not None}
+    if not stated:
+        return None
+    bandwidth = dict(DEFAULT_BANDWIDTH_HZ)
+    bandwidth.update({n: e.bandwidth for n, e in stated.items() if e.bandwidth is not None})
+    return PhysicsCaptureModel(
+        bandwidth_hz=bandwidth,
+        skew_s={n: e.skew for n, e in stated.items()},
+        gain_error={n: e.gain_error for n, e in stated.items()},
+        offset_error={n: float(e.offset) for n, e in stated.items()},
+    )
+
+
 @contextlib.contextmanager
 def simulated_bench(bench: BenchConfig, sequence: SequenceConfig, *, seed: int = 1,
                     speedup: float = DEFAULT_SPEEDUP) -> Iterator[SimulatedSetup]:
@@ -90,7 +108,8 @@ def simulated_bench(bench: BenchConfig, sequence: SequenceConfig, *, seed: int =
     families = {role: entry.family for role, entry in bench.instruments.items()}
     wiring = {probe.channel: name for name, probe in bench.probes.items()}
     sim = SimulatedBench(lot, sim_fixture(bench), seed=seed, clock_speedup=speedup,
-                         families=families, wiring=wiring)
+                         families=families, wiring=wiring,
+                         capture_model=sim_capture_model(bench))
     resources = sim.start()
     try:
         yield SimulatedSetup(sim, resources, AcceleratedClock(sim), catalog)

@@ -44,7 +44,9 @@ class AcquisitionSettings:
     ``switch_voltage``, ``gate``; also ``switch_current``, ``load_current``) to
     ``(full_scale_span, offset)`` in physical units after the probe (V or A), offset being the
     value at the screen centre.  ``bandwidth_hz`` and ``skew_s`` map channel names to the probe
-    bandwidth (None or missing = unlimited) and time skew.  ``t_start_s`` is the time of the
+    bandwidth (None or missing = unlimited) and time skew; ``gain_error`` and ``offset_error``
+    to the probe's relative scale error g and additive offset o (physical units): the channel
+    shows (1 + g)·x + o.  ``t_start_s`` is the time of the
     first sample relative to the first gate edge (negative = pre-trigger).
     """
 
@@ -54,6 +56,8 @@ class AcquisitionSettings:
     channel_ranges: dict[str, tuple[float, float]]
     bandwidth_hz: dict[str, float | None] = field(default_factory=dict)
     skew_s: dict[str, float] = field(default_factory=dict)
+    gain_error: dict[str, float] = field(default_factory=dict)
+    offset_error: dict[str, float] = field(default_factory=dict)
     adc_bits: int = 8
     noise_lsb: float = 1.0
     seed: int | None = None
@@ -203,6 +207,10 @@ def digitize(
         skew = acquisition.skew_s.get(name, 0.0)
         # a channel with skew s shows at sample k the signal at t_k − s
         x_samples = (waveforms.t - (acquisition.t_start_s - skew)) / acquisition.sample_interval_s
+        probe_gain = 1.0 + acquisition.gain_error.get(name, 0.0)
+        probe_offset = acquisition.offset_error.get(name, 0.0)
+        if probe_gain != 1.0 or probe_offset != 0.0:
+            y = y * probe_gain + probe_offset  # what the probe really delivers
         y_codes = (y - offset) * (1.0 / gain)
         # simulator points bracketing each block (np.interp holds the end values outside)
         first = np.maximum(np.searchsorted(x_samples, starts, side="right") - 1, 0)

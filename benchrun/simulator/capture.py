@@ -139,6 +139,8 @@ class PhysicsCaptureModel:
         Probe delay per fixture signal (the bench file's deskew should cancel it).
     noise_lsb
         ADC noise, rms in LSB.
+    gain_error, offset_error
+        Probe scale error (relative) and additive offset (physical units) per fixture signal.
     voltage_resolution_V, temperature_resolution_K
         Shot conditions are rounded to these steps so that repeated shots at one setting
         reuse the cached circuit solution (the physics is insensitive below them).
@@ -151,9 +153,13 @@ class PhysicsCaptureModel:
         noise_lsb: float = 0.6,
         voltage_resolution_V: float = 0.1,
         temperature_resolution_K: float = 0.1,
+        gain_error: Mapping[str, float] | None = None,
+        offset_error: Mapping[str, float] | None = None,
     ) -> None:
         self.bandwidth_hz = dict(DEFAULT_BANDWIDTH_HZ if bandwidth_hz is None else bandwidth_hz)
         self.skew_s = dict(skew_s or {})
+        self.gain_error = dict(gain_error or {})
+        self.offset_error = dict(offset_error or {})
         self.noise_lsb = noise_lsb
         self.voltage_resolution_V = voltage_resolution_V
         self.temperature_resolution_K = temperature_resolution_K
@@ -197,6 +203,9 @@ class PhysicsCaptureModel:
             channel_ranges={ch.signal: (ch.range, ch.offset) for ch in setup.channels},
             bandwidth_hz={ch.signal: self.bandwidth_hz.get(ch.signal) for ch in setup.channels},
             skew_s={ch.signal: self.skew_s.get(ch.signal, 0.0) for ch in setup.channels},
+            gain_error={ch.signal: self.gain_error.get(ch.signal, 0.0) for ch in setup.channels},
+            offset_error={ch.signal: self.offset_error.get(ch.signal, 0.0)
+                          for ch in setup.channels},
             adc_bits=8,
             noise_lsb=self.noise_lsb,
         )

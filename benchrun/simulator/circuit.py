@@ -44,7 +44,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.integrate import odeint
 
-from benchrun.simulator.diode_models import JunctionParams, limited_exp_array
+from benchrun.simulator.diode_models import SWEEP_FLOOR, JunctionParams, limited_exp_array
 
 __all__ = [
     "EventCircuit",
@@ -217,6 +217,12 @@ def _make_rhs(c: EventCircuit):
     else:
         c_e, c_q, inv_tau = jp.is_A, 0.0, 0.0
     cj0, vj_v, m_exp, fc = jp.cj0_F, jp.vj_V, jp.m, jp.fc
+    # punch-through sweep-out (JunctionParams.sweep_capacitance written out)
+    sweep = jp.has_sweep_out
+    root_vj = math.sqrt(vj_v)
+    span = math.sqrt(vj_v + jp.vpt_V) - root_vj if sweep else 1.0
+    sweep_floor = SWEEP_FLOOR
+    sqrt = math.sqrt
     v_lin = fc * vj_v
     c_lin0 = cj0 / (1.0 - fc) ** (1.0 + m_exp) * (1.0 - fc * (1.0 + m_exp))
     c_lin1 = cj0 / (1.0 - fc) ** (1.0 + m_exp) * m_exp / vj_v
@@ -232,7 +238,14 @@ def _make_rhs(c: EventCircuit):
         ex = exp(x) if x <= exp_limit else exp_at_limit * (1.0 + x - exp_limit)
         ij = c_e * (ex - 1.0) - c_q * q
         cap = cj0 / (1.0 - vj / vj_v) ** m_exp if vj < v_lin else c_lin0 + c_lin1 * vj
+        cx = 0.0
+        if sweep and vj < 0.0 and q > 0.0:
+            root = sqrt(vj_v - vj)
+            f = (root - root_vj) / span
+            if f < 1.0:
+                cx = tau * q / (2.0 * root * span * max(1.0 - f, sweep_floor))
         i_d = (IL - iLs) * inv_k - (vj - vsw + Vbus) * inv_rpk
+        dvj = (i_d - ij) / (cap + Cpar + cx)
         v_d = vj + Rs * i_d
         xg = (vgs - vth) / w_ov
         vov = vgs - vth if xg > 30.0 else w_ov * log1p(exp(xg))
@@ -245,8 +258,8 @@ def _make_rhs(c: EventCircuit):
             g12 * b1 + g22 * b2,
             (v_d - vsw + Vbus) / Ls,
             (-v_d - R * IL) / L,
-            (i_d - ij) / (cap + Cpar),
-            (ij - q) * inv_tau,
+            dvj,
+            (ij - q + cx * dvj) * inv_tau,
         ]
 
     def jac(y, _t):
@@ -267,7 +280,13 @@ def _make_rhs(c: EventCircuit):
         else:
             cap = c_lin0 + c_lin1 * vj
             dcap = c_lin1
-        ctot = cap + Cpar
+        cx = 0.0
+        if sweep and vj < 0.0 and q > 0.0:
+            root = sqrt(vj_v - vj)
+            f = (root - root_vj) / span
+            if f < 1.0:
+                cx = tau * q / (2.0 * root * span * max(1.0 - f, sweep_floor))
+        ctot = cap + Cpar + cx
         i_d = (IL - iLs) * inv_k - (vj - vsw + Vbus) * inv_rpk
         # ∂i_d/∂(vsw, iLs, IL, vj) and ∂v_d/∂(...)
         did_vsw, did_ils, did_il, did_vj = inv_rpk, -inv_k, inv_k, -inv_rpk
@@ -302,10 +321,16 @@ def _make_rhs(c: EventCircuit):
         row2 = [0.0, (dvd[1] - 1.0) / Ls, dvd[2] / Ls, dvd[3] / Ls, dvd[4] / Ls, 0.0]
         row3 = [0.0, -dvd[1] / L, -dvd[2] / L, (-dvd[3] - R) / L, -dvd[4] / L, 0.0]
         dvj_dvj = (did_vj - dij_dvj) / ctot - (i_d - ij) * dcap / (ctot * ctot)
+        dvj = (i_d - ij) / ctot
+        dcx_dq = cx / q if cx > 0.0 else 0.0
         row4 = [
-            0.0, did_vsw / ctot, did_ils / ctot, did_il / ctot, dvj_dvj, c_q / ctot,
+            0.0, did_vsw / ctot, did_ils / ctot, did_il / ctot, dvj_dvj,
+            c_q / ctot - dvj * dcx_dq / ctot,
         ]
-        row5 = [0.0, 0.0, 0.0, 0.0, dij_dvj * inv_tau, (-c_q - 1.0) * inv_tau]
+        # sweep term cx·dvj/τ (∂cx/∂vj neglected: the Jacobian only steers Newton's iteration)
+        row5 = [0.0] + [cx * d * inv_tau for d in row4[1:]]
+        row5[4] += dij_dvj * inv_tau
+        row5[5] += (-c_q - 1.0 + dcx_dq * dvj) * inv_tau
         return [row0, row1, row2, row3, row4, row5]
 
     return rhs, jac
@@ -334,7 +359,8 @@ def _window_outputs(c: EventCircuit, y: np.ndarray) -> tuple[np.ndarray, np.ndar
     ij = (
         (jp.is_A * jp.tau_s * e - jp.tau_s * q) / jp.tm_s if jp.is_charge_control else jp.is_A * e
     )
-    cj = jp.capacitance_array(vj)
+    # the sweep current belongs to the diode: it adds to the depletion capacitance here
+    cj = jp.capacitance_array(vj) + jp.sweep_capacitance_array(vj, jp.tau_s * q)
     # sensor current excludes the displacement current of the parallel (non-diode) capacitance
     i_sensor = (cj * i_d + Cpar * ij) / (cj + Cpar)
     v_d = vj + Rs * i_d

@@ -34,7 +34,10 @@ _MODELS: dict[str, type[LauritzenMaDiode] | type[SchottkyDiode]] = {
     "schottky": SchottkyDiode,
 }
 # parameters never drawn or scaled (they are definitions, not device properties)
-_FIXED = {"t_ref_K", "n", "tau_temp_exponent", "rs_temp_exponent", "fc", "eg_eV", "xti"}
+_FIXED = {
+    "t_ref_K", "n", "tau_temp_exponent", "rs_temp_exponent", "fc", "eg_eV", "xti",
+    "tm_temp_exponent",
+}
 
 
 def default_parts_path() -> Path:

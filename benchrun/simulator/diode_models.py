@@ -17,6 +17,31 @@ Two models:
   voltage VR) sits across the junction, linearised above FC·Vj as in the Berkeley SPICE
   diode model.
 
+  Optional extension (our variant, off by default): **punch-through sweep-out** of the stored
+  charge, a two-region charge picture (base plasma + depletion layer).  The depletion layer
+  grows into the low-doped base as w ∝ √(Vj − v) (abrupt-junction law, S. M. Sze, *Physics of
+  Semiconductor Devices*, ch. 2) and reaches the end of the base at the punch-through voltage
+  Vpt; the depleted fraction of the base is
+
+      f(v) = (√(Vj − v) − √Vj)/(√(Vj + Vpt) − √Vj)   for v < 0   (0 ≤ f ≤ 1)
+
+  and the plasma left in the undepleted part is swept out as the layer advances
+  (uniform plasma: dqM = qM·d ln(1 − f)).  The sweep current
+
+      i_x = −qM·(df/dt)/(1 − f) = Cx(v, qM)·dv/dt,   Cx = qM·|f′(v)|/(1 − f)
+
+  flows at the terminals and removes stored charge (dqM/dt = i − qM/τ + i_x).  While charge
+  remains, Cx is large and holds the voltage rise back; when the layer reaches the end of the
+  base the charge is exhausted at once, Cx collapses to 0 and the current snaps off against the
+  small depletion capacitance — the mechanism of snappy recovery described for punch-through
+  PiN diodes (J. Lutz et al., *Semiconductor Power Devices*, Springer 2011, ch. 5, from
+  memory).  It is snappier at low current and cold (little charge when the voltage builds up),
+  at high di/dt (the overshoot VR + Ls·di/dt reaches Vpt) and at high VR.  ``punch_through_V``
+  = inf (default) switches it off and the model is exactly Lauritzen-Ma.
+
+  The transit time may depend on temperature, TM(T) = TM·(T/T0)^a (``tm_temp_exponent``; TM
+  = W²/(2·Da) and the ambipolar diffusivity Da falls as T rises, a ≈ 1-1.5, from memory).
+
 * :class:`SchottkyDiode` — a majority-carrier (SiC Schottky) diode: thermionic-emission forward
   characteristic i = Is(T)·(exp(v/(n·VT)) − 1), no stored charge, the same depletion
   capacitance (temperature independent), hence a purely capacitive "recovery" whose charge is
@@ -44,6 +69,8 @@ ELEMENTARY_CHARGE_C = 1.602176634e-19
 # avoids overflow while a Newton iteration explores large forward voltages)
 _EXP_LIMIT = 80.0
 _EXP_AT_LIMIT = math.exp(_EXP_LIMIT)
+#: smallest undepleted base fraction 1 − f used in the sweep capacitance (numerical floor)
+SWEEP_FLOOR = 0.01
 
 
 def thermal_voltage(temperature_K: float) -> float:
@@ -90,6 +117,8 @@ class LauritzenMaDiode:
     eg_eV: float = 1.11
     xti: float = 3.0
     rs_temp_exponent: float = 0.0
+    punch_through_V: float = math.inf
+    tm_temp_exponent: float = 0.0
 
     kind = "lauritzen-ma"
 
@@ -107,7 +136,7 @@ class LauritzenMaDiode:
         return JunctionParams(
             kind=self.kind,
             tau_s=tau,
-            tm_s=self.tm_s,
+            tm_s=self.tm_s * ratio**self.tm_temp_exponent,
             is_A=is_t,
             nvt_V=nvt,
             rs_ohm=self.series_resistance_ohm * ratio**self.rs_temp_exponent,
@@ -115,6 +144,7 @@ class LauritzenMaDiode:
             vj_V=self.vj_V,
             m=self.m,
             fc=self.fc,
+            vpt_V=self.punch_through_V,
         )
 
 
@@ -176,6 +206,7 @@ class JunctionParams:
     vj_V: float
     m: float
     fc: float
+    vpt_V: float = math.inf  # punch-through voltage of the sweep-out extension (inf = off)
 
     @property
     def is_charge_control(self) -> bool:
@@ -187,6 +218,46 @@ class JunctionParams:
         if not self.is_charge_control:
             return 0.0
         return self.tau_s * self.tm_s / (self.tau_s + self.tm_s)
+
+    @property
+    def has_sweep_out(self) -> bool:
+        """True when the punch-through sweep-out of the stored charge is modelled."""
+        return self.is_charge_control and math.isfinite(self.vpt_V)
+
+    def depleted_fraction(self, v: float) -> float:
+        """f(v): fraction of the base the depletion layer covers at junction voltage ``v``."""
+        if not self.has_sweep_out or v >= 0.0:
+            return 0.0
+        root_vj = math.sqrt(self.vj_V)
+        span = math.sqrt(self.vj_V + self.vpt_V) - root_vj
+        return min((math.sqrt(self.vj_V - v) - root_vj) / span, 1.0)
+
+    def sweep_capacitance(self, v: float, q_stored_C: float) -> float:
+        """Cx = qM·|f′(v)|/(1 − f): the sweep current is Cx·dv/dt (0 without sweep-out).
+
+        Beyond punch-through (f = 1) the layer no longer moves and Cx = 0; 1 − f is floored at
+        ``SWEEP_FLOOR`` so a residue of charge left there by the integrator stays bounded.
+        """
+        if not self.has_sweep_out or v >= 0.0 or q_stored_C <= 0.0:
+            return 0.0
+        root = math.sqrt(self.vj_V - v)
+        span = math.sqrt(self.vj_V + self.vpt_V) - math.sqrt(self.vj_V)
+        f = (root - math.sqrt(self.vj_V)) / span
+        if f >= 1.0:
+            return 0.0
+        return q_stored_C / (2.0 * root * span * max(1.0 - f, SWEEP_FLOOR))
+
+    def sweep_capacitance_array(self, v: np.ndarray, q_stored_C: np.ndarray) -> np.ndarray:
+        """Vectorised :meth:`sweep_capacitance`."""
+        v = np.asarray(v, dtype=float)
+        q = np.asarray(q_stored_C, dtype=float)
+        if not self.has_sweep_out:
+            return np.zeros(np.broadcast(v, q).shape)
+        root = np.sqrt(self.vj_V - np.minimum(v, 0.0))
+        span = math.sqrt(self.vj_V + self.vpt_V) - math.sqrt(self.vj_V)
+        f = (root - math.sqrt(self.vj_V)) / span
+        cx = np.maximum(q, 0.0) / (2.0 * root * span * np.maximum(1.0 - f, SWEEP_FLOOR))
+        return np.where((v < 0.0) & (f < 1.0), cx, 0.0)
 
     # --- junction capacitance -------------------------------------------------------------
     def capacitance(self, v: float) -> float:

@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 from typing import ClassVar
 
 import numpy as np
-from scipy.integrate import odeint
+from scipy.integrate import odeint, solve_ivp
 
 from benchrun.simulator.acquisition import AcquisitionSettings, DigitizedChannel, digitize
 from benchrun.simulator.circuit import (
@@ -413,16 +413,27 @@ def simulate_current_ramp(
     jp = diode.at_temperature(temperature_K)
     cap = jp.capacitance
     jc = jp.junction_current
+    cx = jp.sweep_capacitance
+    tau = jp.tau_s
 
     def rhs(y, t):
         v, q = y
         ij, dq = jc(v, q)
-        return [(forward_current_A - didt_A_per_s * t - ij) / cap(v), dq]
+        c_sweep = cx(v, tau * q)
+        dv = (forward_current_A - didt_A_per_s * t - ij) / (cap(v) + c_sweep)
+        return [dv, dq + (c_sweep * dv / tau if c_sweep > 0.0 else 0.0)]
 
     v0 = jp.junction_voltage_forward(forward_current_A)
     q0 = forward_current_A if jp.is_charge_control else 0.0
     t = np.arange(0.0, duration_s + 0.5 * dt_s, dt_s)
-    sol = odeint(rhs, [v0, q0], t, rtol=1e-8, atol=[1e-6, 1e-7], mxstep=200000)
+    if jp.has_sweep_out:
+        # the sweep capacitance switches on as the junction voltage passes 0: an implicit
+        # method with step control across that corner (Radau IIA, scipy.integrate.solve_ivp)
+        ivp = solve_ivp(lambda tt, y: rhs(y, tt), (0.0, float(t[-1])), [v0, q0],
+                        method="Radau", t_eval=t, rtol=1e-8, atol=[1e-6, 1e-7])
+        sol = ivp.y.T
+    else:
+        sol = odeint(rhs, [v0, q0], t, rtol=1e-8, atol=[1e-6, 1e-7], mxstep=200000)
     return RampResponse(
         t=t,
         i=forward_current_A - didt_A_per_s * t,

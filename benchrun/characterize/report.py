@@ -1,0 +1,185 @@
+"""Signed characterisation report: datasheet-style curves, fitted trends, flagged points.
+
+Layout: title and safety caution; what was swept; one figure per metric (Qrr, Irrm, trr, Err,
+softness) with three panels — against IF, against di/dt, against T — each point the mean of
+its valid shots with an error bar of its Type A standard uncertainty s/√n (GUM 4.2; no bar
+with one shot), the fitted trend drawn through it; the table of fits (model, exponent or
+temperature coefficient with its standard error, %/K); the points carrying flags.  The PDF
+embeds the fits and points as JSON and is signed through the report package's signing entry
+point (:func:`benchrun.report.sign.sign_pdf_bytes`).
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import os
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from benchrun.analysis.metrics_meta import METRICS
+from benchrun.characterize.curves import CURVE_METRICS, Trend, fit_trends
+from benchrun.errors import ReportError
+from benchrun.records import ShotResult
+from benchrun.units import format_si
+
+__all__ = ["CAUTION", "render_characterization"]
+
+CAUTION = (
+    "Caution: double-pulse testing uses high voltage and stored energy that can kill. Follow "
+    "local electrical-safety codes and licensed practice; this report does not replace them."
+)
+
+_AXIS_LABEL = {"forward_current_A": ("IF", "A"), "didt_A_per_s": ("di/dt", "A/s"),
+               "temperature_K": ("T", "K")}
+
+
+def _points(shots: Sequence[ShotResult], metric: str, trend: Trend) -> list[tuple]:
+    """(x, mean, s/√n) per x of the trend, from the valid shots matching its held conditions."""
+    held = dict(trend.held)
+    out: dict[float, list[float]] = {}
+    for s in shots:
+        if not s.valid or s.metrics.get(metric) is None:
+            continue
+        if any(round(float(getattr(s.point, k) or 0.0), 6) != v for k, v in held.items()):
+            continue
+        x = (s.conditions.get("didt_A_per_s") if trend.axis == "didt_A_per_s"
+             else getattr(s.point, trend.axis))
+        if x is None:
+            continue
+        key = min(trend.x, key=lambda v: abs(v - float(x)))
+        out.setdefault(key, []).append(float(s.metrics[metric]))
+    rows = []
+    for x, ys in sorted(out.items()):
+        u = float(np.std(ys, ddof=1) / math.sqrt(len(ys))) if len(ys) > 1 else 0.0
+        rows.append((x, float(np.mean(ys)), u))
+    return rows
+
+
+def _figure(shots: Sequence[ShotResult], metric: str, trends: list[Trend]) -> bytes:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, axes = plt.subplots(1, 3, figsize=(7.2, 2.3), constrained_layout=True)
+    unit = METRICS[metric].unit
+    for ax, axis in zip(axes, _AXIS_LABEL, strict=True):
+        name, xunit = _AXIS_LABEL[axis]
+        for tr in [t for t in trends if t.metric == metric and t.axis == axis][:4]:
+            pts = _points(shots, metric, tr)
+            if not pts:
+                continue
+            x, y, u = (np.array(v) for v in zip(*pts, strict=True))
+            label = ", ".join(format_si(v, {"temperature_K": "K", "bus_voltage_V": "V",
+                                            "forward_current_A": "A",
+                                            "gate_resistance_ohm": "Ω"}.get(k, ""), 3)
+                              for k, v in tr.held if v)
+            line = ax.errorbar(x, y, yerr=u, fmt="o", ms=3, capsize=2, label=label)
+            xs = np.linspace(min(tr.x), max(tr.x), 50)
+            ys = (tr.ref_value * (xs / tr.x_ref) ** tr.slope if tr.model == "power"
+                  else tr.ref_value + tr.slope * (xs - tr.x_ref))
+            ax.plot(xs, ys, "-", lw=0.8, color=line[0].get_color())
+        ax.set_xlabel(f"{name} [{xunit}]", fontsize=7)
+        ax.set_ylabel(f"{METRICS[metric].name} [{unit}]", fontsize=7)
+        ax.tick_params(labelsize=6)
+        if axis != "temperature_K" and ax.lines:
+            ax.set_xscale("log")
+            ax.set_yscale("log")
+        if ax.lines:
+            ax.legend(fontsize=5)
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=150)
+    plt.close(fig)
+    return buf.getvalue()
+
+
+def _trend_row(tr: Trend) -> list[str]:
+    unit = METRICS[tr.metric].unit
+    held = ", ".join(f"{k.split('_')[0]}={v:g}" for k, v in tr.held)
+    if tr.model == "power":
+        law = f"∝ {_AXIS_LABEL[tr.axis][0]}^b"
+        slope = f"b = {tr.slope:.3f}" + ("" if tr.u_slope is None else f" ± {tr.u_slope:.3f}")
+        pct = ""
+    else:
+        law = "linear in T"
+        slope = (f"{format_si(tr.slope, unit + '/K', 3)}"
+                 + ("" if tr.u_slope is None else f" ± {format_si(tr.u_slope, unit + '/K', 2)}"))
+        pct = f"{tr.percent_per_kelvin:.3f} %/K" if tr.percent_per_kelvin is not None else ""
+    return [METRICS[tr.metric].name, law, held, str(len(tr.x)), slope, pct]
+
+
+def render_characterization(
+    shots: Sequence[ShotResult],
+    out_pdf: str | Path,
+    signer: Any,
+    *,
+    title: str,
+    flagged: Sequence[str] = (),
+    notes: Sequence[str] = (),
+) -> tuple[Path, list[Trend]]:
+    """Write the signed characterisation PDF; returns its path and the fitted trends."""
+    from xml.sax.saxutils import escape
+
+    from reportlab.lib import colors
+    from reportlab.lib.pagesizes import A4
+    from reportlab.lib.styles import getSampleStyleSheet
+    from reportlab.platypus import Image, Paragraph, SimpleDocTemplate, Spacer, Table, TableStyle
+
+    from benchrun.report.sign import SignatureBox, sign_pdf_bytes
+
+    trends = fit_trends(shots, CURVE_METRICS)
+    styles = getSampleStyleSheet()
+    body = styles["BodyText"]
+    story: list[Any] = [Paragraph(escape(title), styles["Title"]),
+                        Paragraph(escape(CAUTION), body), Spacer(1, 4)]
+    story += [Paragraph(escape(n), body) for n in notes]
+    story.append(Paragraph(escape(
+        "Points: mean of the valid shots, error bar s/√n (GUM 4.2, Type A). Trends: power law "
+        "in IF and in di/dt (least squares in log-log), straight line in T with its "
+        "coefficient per kelvin; ± one standard error of the fit (n − 2 degrees of "
+        "freedom; none with two points)."), body))
+    for metric in CURVE_METRICS:
+        if not any(t.metric == metric for t in trends):
+            continue
+        story.append(Paragraph(escape(METRICS[metric].name), styles["Heading3"]))
+        png = _figure(shots, metric, trends)
+        story.append(Image(io.BytesIO(png), width=510, height=163))
+    rows = [["metric", "model", "held", "n", "exponent / coefficient", "%/K"]]
+    rows += [_trend_row(t) for t in trends]
+    table = Table(rows, repeatRows=1)
+    table.setStyle(TableStyle([("FONTSIZE", (0, 0), (-1, -1), 6),
+                               ("GRID", (0, 0), (-1, -1), 0.25, colors.grey)]))
+    story += [Paragraph("Fitted trends", styles["Heading2"]), table]
+    story.append(Paragraph("Flagged points", styles["Heading2"]))
+    story += [Paragraph(escape(f"• {f}"), body) for f in flagged] or [
+        Paragraph("None.", body)]
+    story.append(Spacer(1, 70))  # room for the visible signature
+    buf = io.BytesIO()
+    doc = SimpleDocTemplate(buf, pagesize=A4, title=title)
+    doc.build(story)
+    pdf = buf.getvalue()
+    last = doc.page - 1  # reportlab's page counter after build: the last page (1-based)
+    box = SignatureBox(last, 60.0, 40.0, 300.0, 100.0)
+    attachment = {
+        "kind": "characterization",
+        "trends": [{"metric": t.metric, "axis": t.axis, "model": t.model,
+                    "held": dict(t.held), "x": list(t.x), "y": list(t.y), "x_ref": t.x_ref,
+                    "ref_value": t.ref_value, "slope": t.slope, "u_slope": t.u_slope}
+                   for t in trends],
+        "flagged": list(flagged),
+    }
+    signed = sign_pdf_bytes(pdf, signer, box, attachment=attachment,
+                            reason="Characterisation report approved")
+    out = Path(out_pdf)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(out.name + ".part")
+    try:
+        tmp.write_bytes(signed)
+        os.replace(tmp, out)
+    except OSError as exc:
+        raise ReportError(f"cannot write {out}: {exc.strerror}") from exc
+    return out, trends
