@@ -119,6 +119,11 @@ class StoreError(BenchrunError):
     """Raw record or results database problem."""
 
 
+class StoreUnavailable(StoreError):
+    """The results database server cannot be reached (connection refused or lost); the same
+    write may succeed once it is back."""
+
+
 class GradingError(BenchrunError):
     """Limits cannot be applied to the results."""
 

@@ -29,6 +29,10 @@ scale, each probe's scale tolerance (attenuation, shunt resistance or sensitivit
 residual skew after deskew. Values carry their units (``1.5 %``, ``0.5 ns``); a bare number
 is refused. They are bounds (half-widths) of rectangular distributions.
 
+``bench: {id: B}`` names the bench (letters, digits, ``.``, ``_``, ``-``; default: the host
+name). The id is part of every run id and is recorded with every run and shot, so several
+benches can share one results database (:func:`default_bench_id`).
+
 The resource ``sim`` is a placeholder: ``benchrun demo`` and ``benchrun run`` resolve it to
 the matching instrument of an in-process simulated bench.
 """
@@ -37,6 +41,8 @@ from __future__ import annotations
 
 import datetime as _dt
 import math
+import re
+import socket
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
@@ -271,10 +277,29 @@ class CalibrationPolicy(StrictModel):
     warn_days: int = Field(default=30, ge=0)
 
 
+#: What a bench id may hold (it becomes part of run ids and folder names).
+BENCH_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,62}$"
+
+
+def default_bench_id() -> str:
+    """The bench id used when the bench file names none: the host name (first label),
+    with every character a bench id cannot hold replaced by ``-``."""
+    host = socket.gethostname().split(".")[0] or "bench"
+    cleaned = re.sub(r"[^A-Za-z0-9_.-]", "-", host).strip("-._")[:63]
+    return cleaned or "bench"
+
+
+class BenchIdentity(StrictModel):
+    """``bench:`` block: the identity of the bench in a shared results database."""
+
+    id: str = Field(default_factory=default_bench_id, pattern=BENCH_ID_PATTERN)
+
+
 class BenchConfig(StrictModel):
     """A whole bench file."""
 
     name: str = "bench"
+    bench: BenchIdentity = Field(default_factory=BenchIdentity)
     visa_library: str = "@py"
     instruments: Instruments
     probes: dict[str, ProbeEntry]
@@ -297,6 +322,11 @@ class BenchConfig(StrictModel):
         if len(channels) != len(set(channels)):
             raise ValueError("two signals share one scope channel")
         return probes
+
+    @property
+    def bench_id(self) -> str:
+        """The bench's identity (``bench.id``; default the host name)."""
+        return self.bench.id
 
     @property
     def simulated(self) -> bool:

@@ -114,7 +114,8 @@ class ShotCycle:
         #: durability: the raw record (synced per shot in "power-loss" mode) holds everything
         #: a row is made of, and a row a power cut rolled back is rebuilt from it on --resume
         #: (recover_orphans), so one sync per shot keeps every shot.
-        self._rows = ResultsStore(store.url, create=False, durability=DURABILITY_PROCESS)
+        self._rows = ResultsStore(store.url, create=False, durability=DURABILITY_PROCESS,
+                                  bench_id=store.bench_id)
         self.writer = ShotWriter(raw, self._rows, self.sequence)
         #: (clock time, shot spacing) of the last shot fired
         self._last_fire: tuple[float, float] | None = None

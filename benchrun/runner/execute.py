@@ -23,6 +23,7 @@ import datetime as _dt
 import gc
 import hashlib
 import logging
+import secrets
 import shutil
 import sys
 from collections.abc import Callable
@@ -212,14 +213,16 @@ def _sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def _new_run_id(sequence: SequenceConfig, out_dir: Path) -> str:
+def _new_run_id(sequence: SequenceConfig, bench_id: str, out_dir: Path) -> str:
+    """``<lot>-<UTC time>-<bench id>-<6 random hex digits>``: unique across benches sharing
+    one store even when they start the same lot in the same second (the random part makes
+    a clash between two starts on one bench in one second a 1 in 16 million event; a folder
+    already there draws again)."""
     stamp = _dt.datetime.now(_dt.UTC).strftime("%Y%m%dT%H%M%SZ")
-    base = f"{sequence.lot}-{stamp}"
-    run_id, n = base, 1
-    while (out_dir / run_id).exists():
-        n += 1
-        run_id = f"{base}-{n}"
-    return run_id
+    while True:
+        run_id = f"{sequence.lot}-{stamp}-{bench_id}-{secrets.token_hex(3)}"
+        if not (out_dir / run_id).exists():
+            return run_id
 
 
 def report_missing(run_dir: Path, manifest: dict[str, Any]) -> bool:
@@ -271,7 +274,7 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
             raise RunError(f"run {run_dir.name} is already complete")
         return str(manifest["run_id"]), run_dir, manifest, True
     out_dir.mkdir(parents=True, exist_ok=True)
-    run_id = _new_run_id(prep.sequence, out_dir)
+    run_id = _new_run_id(prep.sequence, prep.bench.bench_id, out_dir)
     run_dir = out_dir / run_id
     run_dir.mkdir()
     shutil.copyfile(prep.sequence_path, run_dir / SEQUENCE_FILE)
@@ -298,6 +301,7 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
         "fixture": prep.bench.fixture.model_dump(),
         "probes": {k: v.model_dump() for k, v in prep.bench.probes.items()},
         "bench_name": prep.bench.name,
+        "bench_id": prep.bench.bench_id,
         "durability": options.durability,
         "resumes": [],
         "report_requested": bool(options.report),
@@ -342,7 +346,8 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
             log.warning("calibration: %s", warning)
         for overridden in prep.calibration.overridden:
             log.warning("calibration OVERRIDDEN (--allow-overdue-calibration): %s", overridden)
-        with ResultsStore(url, durability=durability) as store:
+        with ResultsStore(url, durability=durability,
+                          bench_id=manifest.get("bench_id", prep.bench.bench_id)) as store:
             if store.get_run(run_id) is None:
                 store.create_run(run_id, prep.sequence.part, prep.sequence.lot, manifest,
                                  started=manifest.get("started"))
@@ -440,7 +445,8 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         identities = station.identify()
         manifest["instruments"] = {role: ident.to_dict() for role, ident in identities.items()}
         raw.set_run_attrs(run_id=outcome.run_id, part=prep.sequence.part,
-                          lot=prep.sequence.lot, instruments=manifest["instruments"],
+                          lot=prep.sequence.lot, bench_id=store.bench_id,
+                          instruments=manifest["instruments"],
                           analysis_options=manifest.get("analysis_options"))
         write_manifest(outcome.run_dir, manifest)
         devices = check_devices(prep.sequence, station.handler,

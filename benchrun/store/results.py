@@ -5,7 +5,7 @@ A SQLite file is the default (``sqlite:///<run_dir>/results.db``); a PostgreSQL 
 
 ``runs``
     one row per run: ``run_id`` (key), ``part``, ``lot``, ``started``, ``finished``,
-    ``status``, ``manifest`` (JSON text).
+    ``status``, ``manifest`` (JSON text), ``bench_id`` (the bench it ran on).
 ``shots``
     one row per shot: analysed, or *pending* (recorded before its analysis finished, flag
     ``analysis_pending``; :meth:`ResultsStore.complete_shot` replaces it by the analysed
@@ -13,7 +13,8 @@ A SQLite file is the default (``sqlite:///<run_dir>/results.db``); a PostgreSQL 
     resumed run can never store a shot twice. Dict-valued fields of
     :class:`~benchrun.records.ShotResult` are JSON text (floats written with ``repr``, so they
     round-trip bit-exactly on every backend); the target columns ``temperature_K``,
-    ``bus_voltage_V``, ``forward_current_A`` are copies of the point for SQL queries.
+    ``bus_voltage_V``, ``forward_current_A`` are copies of the point for SQL queries;
+    ``bench_id`` names the bench that fired the shot.
 ``reports``
     one row per issued report: ``report_id`` (key), ``run_id``, ``path``, ``sha256``,
     ``created``, ``signer``, ``disposition``, ``details`` (JSON text).
@@ -29,12 +30,17 @@ the synchronous setting or journal mode"). A PostgreSQL server keeps its own dur
 settings in both modes (a commit is acknowledged by the server, so killing the bench process
 loses nothing). Every SQLAlchemy error is translated to :class:`~benchrun.errors.StoreError`.
 
+Schema changes are additive: a column added after the first release
+(:data:`~benchrun.store.schema.ADDED_COLUMNS`, so far ``bench_id``) is added to an existing
+database when a store opens it, NULL in the rows already there.
+
 Times are ISO 8601 UTC strings; they sort chronologically as text on every backend.
 """
 
 from __future__ import annotations
 
 import hashlib
+import re
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import fields
@@ -43,9 +49,16 @@ from typing import Any
 
 from sqlalchemy import create_engine, delete, event, insert, select, update
 from sqlalchemy.engine import Connection, Engine, make_url
-from sqlalchemy.exc import ArgumentError, IntegrityError, NoSuchModuleError, SQLAlchemyError
+from sqlalchemy.exc import (
+    ArgumentError,
+    IntegrityError,
+    InterfaceError,
+    NoSuchModuleError,
+    OperationalError,
+    SQLAlchemyError,
+)
 
-from benchrun.errors import StoreError
+from benchrun.errors import StoreError, StoreUnavailable
 from benchrun.records import ShotResult
 from benchrun.store.canonical import canonical_json
 from benchrun.store.raw import DURABILITY_POWER_LOSS, check_durability
@@ -59,8 +72,10 @@ from benchrun.store.rows import (
     stored_is,
 )
 from benchrun.store.schema import (
+    ADDED_COLUMNS,
     ReportRecord,
     RunRecord,
+    add_missing_columns,
     metadata,
     reports_table,
     runs_table,
@@ -80,6 +95,17 @@ def normalize_url(url: str) -> str:
         if url.startswith(prefix):
             return "postgresql+psycopg://" + url[len(prefix) :]
     return url
+
+
+def db_error_text(exc: BaseException) -> str:
+    """One line for the user from a database error: the driver's message without
+    SQLAlchemy's statement echo and "Background on this error" link."""
+    orig = getattr(exc, "orig", None)
+    text = str(orig if orig is not None else exc)
+    text = re.sub(r"\s*\(Background on this error at: [^)]*\)", "", text)
+    lines = [line.strip() for line in text.splitlines() if line.strip()]
+    lines = [line for line in lines if not line.startswith(("[SQL:", "[parameters:"))]
+    return " ".join(lines) or exc.__class__.__name__
 
 
 def _sqlite_pragmas(durability: str) -> Any:
@@ -114,6 +140,9 @@ class ResultsStore:
     durability
         ``"power-loss"`` (default) or ``"process"``: how far a committed write must have gone
         before a method returns (see the module docstring; only SQLite is affected).
+    bench_id
+        The bench this store writes for: recorded with every shot row it writes (``None``
+        for stores that only read).
 
     Raises
     ------
@@ -122,8 +151,10 @@ class ResultsStore:
     """
 
     def __init__(self, url: str, *, create: bool = True,
-                 durability: str = DURABILITY_POWER_LOSS) -> None:
+                 durability: str = DURABILITY_POWER_LOSS,
+                 bench_id: str | None = None) -> None:
         self.url = normalize_url(str(url))
+        self.bench_id = bench_id
         self.durability = check_durability(durability)
         try:
             parsed = make_url(self.url)
@@ -148,6 +179,8 @@ class ResultsStore:
         if self.backend == "sqlite":
             event.listen(engine, "connect", _sqlite_pragmas(self.durability))
         self._engine = engine
+        #: the columns of ADDED_COLUMNS are known to exist (checked at the first connection)
+        self._migrated = False
         # statements built once and reused for every shot (the identity as parameters)
         self._insert_shot = insert(shots_table)
         self._select_shot = select(shots_table).where(*identity())
@@ -161,6 +194,8 @@ class ResultsStore:
                     # two benches creating the tables of a new shared database at the same
                     # moment: the other one won; check again (no-op when the tables exist)
                     metadata.create_all(engine)
+                add_missing_columns(engine)
+                self._migrated = True
 
     # -- plumbing ------------------------------------------------------------------------
     @contextmanager
@@ -170,11 +205,38 @@ class ResultsStore:
         except StoreError:
             raise
         except SQLAlchemyError as exc:
-            raise StoreError(f"{what}: {exc.__class__.__name__}: {exc}") from exc
+            raise self._translate(what, exc) from exc
+
+    def _translate(self, what: str, exc: SQLAlchemyError) -> StoreError:
+        """The :class:`StoreError` of a database error; :class:`StoreUnavailable` when a
+        database server cannot be reached (connection refused, dropped or reset)."""
+        text = f"{what}: {db_error_text(exc)}"
+        if self.unreachable(exc):
+            return StoreUnavailable(f"{what}: the database server at {self.public_url} cannot "
+                                    f"be reached ({db_error_text(exc)})")
+        return StoreError(text)
+
+    def unreachable(self, exc: BaseException) -> bool:
+        """True when ``exc`` means the database server cannot be reached (a server backend
+        only: a SQLite file is never "unreachable" in this sense)."""
+        if self.backend == "sqlite":
+            return False
+        if isinstance(exc, StoreUnavailable):
+            return True
+        if isinstance(exc, OperationalError | InterfaceError):
+            return True
+        return bool(getattr(exc, "connection_invalidated", False))
+
+    def _connect(self) -> Any:
+        """``engine.begin()``, after adding the columns an older database lacks (once)."""
+        if not self._migrated:
+            add_missing_columns(self._engine)
+            self._migrated = True
+        return self._engine.begin()
 
     @contextmanager
     def _begin(self, what: str) -> Iterator[Connection]:
-        with self._errors(what), self._engine.begin() as conn:
+        with self._errors(what), self._connect() as conn:
             yield conn
 
     def close(self) -> None:
@@ -200,8 +262,11 @@ class ResultsStore:
         *,
         started: str | None = None,
         status: str = "running",
+        bench_id: str | None = None,
     ) -> RunRecord:
-        """Insert a new run; an existing ``run_id`` is an error (use :meth:`get_run` to resume)."""
+        """Insert a new run (taken on bench ``bench_id``, default the store's); an existing
+        ``run_id`` is an error (use :meth:`get_run` to resume)."""
+        bench_id = bench_id if bench_id is not None else self.bench_id
         record = RunRecord(
             run_id=run_id,
             part=part,
@@ -210,18 +275,20 @@ class ResultsStore:
             finished=None,
             status=status,
             manifest=dict(manifest or {}),
+            bench_id=bench_id,
         )
         values = {
             "run_id": run_id, "part": part, "lot": lot, "started": record.started,
             "finished": None, "status": status, "manifest": canonical_json(record.manifest),
+            "bench_id": bench_id,
         }  # fmt: skip
         try:
-            with self._engine.begin() as conn:
+            with self._connect() as conn:
                 conn.execute(insert(runs_table).values(**values))
         except IntegrityError as exc:
             raise StoreError(f"run {run_id!r} already exists in {self.public_url}") from exc
         except SQLAlchemyError as exc:
-            raise StoreError(f"cannot create run {run_id!r}: {exc}") from exc
+            raise self._translate(f"cannot create run {run_id!r}", exc) from exc
         return record
 
     def get_run(self, run_id: str) -> RunRecord | None:
@@ -258,12 +325,15 @@ class ResultsStore:
             raise StoreError(f"no run {run_id!r} in {self.public_url}")
         return record
 
-    def runs(self) -> list[RunRecord]:
-        """Every run, oldest first."""
+    def runs(self, *, lot: str | None = None, part: str | None = None) -> list[RunRecord]:
+        """Every run (of one lot and/or part, when given), oldest first."""
+        query = select(runs_table).order_by(runs_table.c.started, runs_table.c.run_id)
+        if lot is not None:
+            query = query.where(runs_table.c.lot == lot)
+        if part is not None:
+            query = query.where(runs_table.c.part == part)
         with self._begin("cannot list runs") as conn:
-            rows = conn.execute(
-                select(runs_table).order_by(runs_table.c.started, runs_table.c.run_id)
-            ).all()
+            rows = conn.execute(query).all()
         return [run_record(r._mapping) for r in rows]
 
     # -- shots ---------------------------------------------------------------------------
@@ -286,10 +356,10 @@ class ResultsStore:
             The run does not exist, a *different* shot is already stored under the same
             ``(run_id, serial, point_index, repeat, attempt)``, or a database error.
         """
-        row = shot_row(shot)
+        row = shot_row(shot, self.bench_id)
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         try:
-            with self._engine.begin() as conn:
+            with self._connect() as conn:
                 conn.execute(self._insert_shot, row)
             return True
         except IntegrityError as exc:
@@ -311,7 +381,7 @@ class ResultsStore:
                 f"point {key[2]}, repeat {key[3]}, attempt {key[4]}"
             ) from exc
         except SQLAlchemyError as exc:
-            raise StoreError(f"cannot store shot {key}: {exc}") from exc
+            raise self._translate(f"cannot store shot {key}", exc) from exc
 
     def complete_shot(self, shot: ShotResult) -> bool:
         """Replace the *pending* row of ``shot``'s identity (stored by :meth:`add_shot` with
@@ -334,7 +404,7 @@ class ResultsStore:
         """
         if shot.pending:
             raise StoreError("complete_shot needs an analysed shot, not a pending one")
-        row = shot_row(shot)
+        row = shot_row(shot, self.bench_id)
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         with self._begin(f"cannot complete shot {key}") as conn:
             replaced = conn.execute(self._update_pending,
@@ -364,17 +434,17 @@ class ResultsStore:
         """
         if not shot.pending:
             raise StoreError("record_pending needs a pending shot")
-        row = shot_row(shot)
+        row = shot_row(shot, self.bench_id)
         key = (row["run_id"], row["serial"], row["point_index"], row["repeat"], row["attempt"])
         try:
-            with self._engine.begin() as conn:
+            with self._connect() as conn:
                 conn.execute(self._delete_pending, identity_params(key))
                 conn.execute(self._insert_shot, row)
         except IntegrityError as exc:
             raise StoreError(f"cannot record pending shot {key}: an analysed shot is stored "
                              f"under it, or run {key[0]!r} does not exist") from exc
         except SQLAlchemyError as exc:
-            raise StoreError(f"cannot record pending shot {key}: {exc}") from exc
+            raise self._translate(f"cannot record pending shot {key}", exc) from exc
 
     def discard_pending_shot(self, shot: ShotResult) -> bool:
         """Delete the *pending* row of ``shot``'s identity (a shot recorded while its raw
@@ -460,7 +530,9 @@ class ResultsStore:
         keys; rows are sorted by ``(serial, point_index, repeat, attempt)`` and the list is
         hashed as canonical JSON. Any edit to any stored value of the run's shots (including
         the query-only target columns) changes the digest. The digest does not depend on the
-        backend: the same rows give the same digest in SQLite and PostgreSQL.
+        backend: the same rows give the same digest in SQLite and PostgreSQL. A column added
+        later (:data:`~benchrun.store.schema.ADDED_COLUMNS`) enters a row only when it holds
+        a value, so the digest of rows stored before the column existed does not change.
         """
         with self._begin(f"cannot read the shots of run {run_id!r}") as conn:
             rows = conn.execute(
@@ -468,7 +540,8 @@ class ResultsStore:
             ).all()
         canon = []
         for r in rows:
-            m = {k: v for k, v in r._mapping.items() if k != "id"}
+            m = {k: v for k, v in r._mapping.items()
+                 if k != "id" and not (v is None and k in ADDED_COLUMNS["shots"])}
             m["valid"] = bool(m["valid"])
             canon.append(m)
         canon.sort(key=lambda m: (m["serial"], m["point_index"], m["repeat"], m["attempt"]))
@@ -502,7 +575,7 @@ class ResultsStore:
         values = {f.name: getattr(record, f.name) for f in fields(record)}
         values["details"] = canonical_json(record.details)
         try:
-            with self._engine.begin() as conn:
+            with self._connect() as conn:
                 conn.execute(insert(reports_table).values(**values))
         except IntegrityError as exc:
             raise StoreError(
@@ -510,7 +583,7 @@ class ResultsStore:
                 f"{run_id!r} is not in {self.public_url}"
             ) from exc
         except SQLAlchemyError as exc:
-            raise StoreError(f"cannot register report {report_id!r}: {exc}") from exc
+            raise self._translate(f"cannot register report {report_id!r}", exc) from exc
         return record
 
     def reports(self, run_id: str | None = None) -> list[ReportRecord]:

@@ -25,11 +25,13 @@ def run_record(row: Any) -> RunRecord:
         finished=row["finished"],
         status=row["status"],
         manifest=json.loads(row["manifest"]),
+        bench_id=row.get("bench_id"),
     )
 
 
-def shot_row(shot: ShotResult) -> dict[str, Any]:
-    """The ``shots`` row of a shot (dict-valued fields as canonical JSON text)."""
+def shot_row(shot: ShotResult, bench_id: str | None = None) -> dict[str, Any]:
+    """The ``shots`` row of a shot (dict-valued fields as canonical JSON text), recorded as
+    taken on bench ``bench_id``."""
     # the values of shot.to_dict(), without its deep copy (everything is serialised here)
     data = {f.name: getattr(shot, f.name) for f in fields(shot)}
     data["point"] = {f.name: getattr(shot.point, f.name) for f in fields(shot.point)}
@@ -56,7 +58,9 @@ def shot_row(shot: ShotResult) -> dict[str, Any]:
         "raw_ref": shot.raw_ref,
         "acquisition": canonical_json(data["acquisition"]),
         "extra": canonical_json(extra),
+        "bench_id": bench_id,
     }
+
 
 def shot_from_row(row: Any) -> ShotResult:
     """A ``shots`` row back as the :class:`ShotResult` it was made from."""

@@ -36,6 +36,7 @@ runs_table = Table(
     Column("finished", String(40), nullable=True),
     Column("status", String(40), nullable=False),
     Column("manifest", Text, nullable=False),
+    Column("bench_id", String(200), nullable=True, index=True),
 )
 
 shots_table = Table(
@@ -61,6 +62,7 @@ shots_table = Table(
     Column("raw_ref", String(400), nullable=False),
     Column("acquisition", Text, nullable=False),
     Column("extra", Text, nullable=False),
+    Column("bench_id", String(200), nullable=True),
     UniqueConstraint("run_id", "serial", "point_index", "repeat", "attempt", name="uq_shot"),
 )
 
@@ -111,6 +113,56 @@ live_events_table = Table(
     Column("message", Text, nullable=False),
 )
 
+#: Columns added after the first release, per table: databases made before them are given the
+#: columns by :func:`add_missing_columns` (NULL in existing rows). Additive only: a column is
+#: never removed or changed, so an older benchrun still reads and writes a migrated database.
+ADDED_COLUMNS: dict[str, tuple[str, ...]] = {
+    "runs": ("bench_id",),
+    "shots": ("bench_id",),
+}
+
+
+def missing_columns(conn: Any) -> list[tuple[Table, Column[Any]]]:
+    """``(table, column)`` of every :data:`ADDED_COLUMNS` entry an existing table lacks
+    (tables that do not exist yet are not listed: ``create_all`` makes them whole)."""
+    from sqlalchemy import inspect
+
+    inspector = inspect(conn)
+    out = []
+    for name, columns in ADDED_COLUMNS.items():
+        if not inspector.has_table(name):
+            continue
+        present = {c["name"] for c in inspector.get_columns(name)}
+        table = metadata.tables[name]
+        out.extend((table, table.c[col]) for col in columns if col not in present)
+    return out
+
+
+def add_missing_columns(engine: Any) -> list[str]:
+    """Add the :data:`ADDED_COLUMNS` an existing database lacks (``ALTER TABLE ... ADD
+    COLUMN``, nullable, so existing rows keep their values and get NULL). Safe when several
+    processes migrate one database at once: a column another process added meanwhile is
+    taken as added. Returns ``"table.column"`` of each column added here."""
+    from sqlalchemy.exc import SQLAlchemyError
+
+    with engine.connect() as conn:
+        todo = missing_columns(conn)
+    added = []
+    for table, column in todo:
+        kind = column.type.compile(dialect=engine.dialect)
+        exists = " IF NOT EXISTS" if engine.dialect.name == "postgresql" else ""
+        statement = f'ALTER TABLE {table.name} ADD COLUMN{exists} "{column.name}" {kind}'
+        try:
+            with engine.begin() as conn:
+                conn.exec_driver_sql(statement)
+            added.append(f"{table.name}.{column.name}")
+        except SQLAlchemyError:
+            with engine.connect() as conn:  # another process added it meanwhile?
+                if any(t is table and c is column for t, c in missing_columns(conn)):
+                    raise
+    return added
+
+
 #: ShotResult fields stored in their own column (everything else goes to ``extra``).
 SHOT_COLUMNS = (
     "run_id", "part", "lot", "serial", "repeat", "attempt", "timestamp",
@@ -134,6 +186,8 @@ class RunRecord:
     finished: str | None
     status: str
     manifest: dict[str, Any] = field(default_factory=dict)
+    #: the bench the run ran on (``None`` for runs stored before bench ids were recorded)
+    bench_id: str | None = None
 
 
 @dataclass(frozen=True)
