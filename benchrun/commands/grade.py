@@ -44,6 +44,9 @@ def register(subparsers: Any) -> None:
                         "instrument and probe accuracies (default: the run's)")
     parser.add_argument("--run-id", metavar="ID", help="run to grade when the database holds "
                         "several")
+    parser.add_argument("--lot", metavar="LOT", help="grade every run of this lot in the "
+                        "store as one lot (retest rule: the latest complete test of each "
+                        "device counts)")
     parser.add_argument("--json", action="store_true", help="print the grades as JSON")
     parser.set_defaults(func=run)
 
@@ -67,6 +70,8 @@ def _bench_for(args: argparse.Namespace, run: Any) -> BenchConfig:
 def run(args: argparse.Namespace) -> int:
     from benchrun.store.rundata import load_run, pending_warning
 
+    if getattr(args, "lot", None):
+        return _run_lot(args)
     data = load_run(args.results, args.run_id)
     if (warning := pending_warning(data)) is not None:
         print(warning, file=sys.stderr)
@@ -78,6 +83,48 @@ def run(args: argparse.Namespace) -> int:
         print(json.dumps(payload, indent=2, sort_keys=True, ensure_ascii=False))
     else:
         print(render_text(lot, run_id=data.run_id, limits_file=str(path)))
+    return 0
+
+
+def _run_lot(args: argparse.Namespace) -> int:
+    """``grade RESULTS --lot LOT``: every run of the lot in the store, graded as one lot."""
+    from benchrun.grading.across import lot_instrument_inputs
+    from benchrun.store.lotdata import RETEST_RULE, load_lot
+
+    lot_data = load_lot(args.results, args.lot)
+    if lot_data.pending:
+        print(f"warning: {len(lot_data.pending)} shot(s) of lot {args.lot} were recorded but "
+              "not analysed and are left out; 'benchrun run ... --resume' completes them",
+              file=sys.stderr)
+    counted = [r for r in lot_data.runs if r.run_id in set(lot_data.device_runs.values())]
+    if args.limits:
+        limits, path = load_limits(Path(args.limits)), Path(args.limits)
+    else:
+        limits, path = _limits_for(args, counted[-1])
+    if args.bench:
+        inputs: Any = load_bench(args.bench)
+    else:
+        inputs = lot_instrument_inputs(
+            [(lot_data.bench_of(r.run_id) or r.run_id, run_bench(r)) for r in counted])
+    lot = grade_lot(lot_data.shots, limits, bench=inputs)
+    if args.json:
+        payload = {"lot_runs": lot_data.to_dict(), "limits_file": str(path), **lot.to_dict()}
+        print(json.dumps(payload, indent=2, sort_keys=True, ensure_ascii=False))
+        return 0
+    lines = [f"Lot {lot_data.lot}: {len(lot_data.runs)} run(s) in {lot_data.store_url}"]
+    for item in lot_data.to_dict()["runs"]:  # type: ignore[union-attr]
+        lines.append(f"  run {item['run_id']}  bench {item['bench_id'] or '—'}  "
+                     f"{item['status']}  devices counted: "
+                     f"{', '.join(item['counted_devices']) or 'none'}")
+    lines.append(f"Retest rule: {RETEST_RULE}")
+    for s in lot_data.superseded:
+        lines.append(f"  superseded: {s.serial} in run {s.run_id} (bench {s.bench_id or '—'}, "
+                     f"{s.shots} shot(s)), replaced by run {s.replaced_by}")
+    for serial in lot_data.unfinished:
+        lines.append(f"  {serial}: tested only in an unfinished run")
+    lines.append("")
+    print("\n".join(lines))
+    print(render_text(lot, run_id=", ".join(lot.run_ids), limits_file=str(path)))
     return 0
 
 
