@@ -57,6 +57,26 @@ class PgCluster:
     port: int
     base: Path
     test_database: str = ""
+    bin_dir: Path | None = None
+    prefix: tuple[str, ...] = ()
+    options: str = ""
+
+    def stop(self) -> None:
+        """Stop the server (fast shutdown: open connections are closed), for outage tests."""
+        subprocess.run(
+            [*self.prefix, str(self.bin_dir / "pg_ctl"), "-D", str(self.base / "data"), "-m",
+             "fast", "-w", "-t", str(_TIMEOUT_S), "stop"],
+            check=True, capture_output=True, timeout=_TIMEOUT_S + 10,
+        )  # fmt: skip
+
+    def start(self) -> None:
+        """Start the stopped server again on the same port."""
+        subprocess.run(
+            [*self.prefix, str(self.bin_dir / "pg_ctl"), "-D", str(self.base / "data"), "-l",
+             str(self.base / "server.log"), "-o", self.options, "-w", "-t", str(_TIMEOUT_S),
+             "start"],
+            check=True, capture_output=True, timeout=_TIMEOUT_S + 10,
+        )  # fmt: skip
 
     def url(self, database: str = "postgres") -> str:
         return f"postgresql+psycopg://postgres@127.0.0.1:{self.port}/{database}"
@@ -118,7 +138,8 @@ def pg_cluster() -> Iterator[PgCluster]:
         if not started:
             server_log = log.read_text(errors="replace") if log.exists() else ""
             pytest.fail(f"PostgreSQL did not start: {result.stderr}\n{server_log}")
-        yield PgCluster(port=port, base=base)
+        yield PgCluster(port=port, base=base, bin_dir=bin_dir, prefix=tuple(prefix),
+                        options=options)
     finally:
         if data.exists():
             subprocess.run(

@@ -60,6 +60,10 @@ def register(subparsers: Any) -> None:
                         help="a device the handler reports as another part or lot: skip it "
                              "(default; recorded in run.json) or stop the run before "
                              "anything is energised")
+    parser.add_argument("--db-outage-limit", metavar="TIME", default="10 min",
+                        help="how long the results database may stay unreachable while the "
+                             "bench keeps testing (rows wait in the run folder's "
+                             "rows-journal.jsonl); default 10 min")
     parser.add_argument("--no-progress", action="store_true", help="no live progress display")
     parser.add_argument("--sim-speedup", type=float, default=DEFAULT_SPEEDUP,
                         help="clock speed-up of the simulated bench (sim resources only; "
@@ -92,6 +96,16 @@ def print_outcome(outcome: RunOutcome) -> None:
             print("!" * 78, file=sys.stderr)
 
 
+def _outage_limit(text: str) -> float:
+    from benchrun.errors import ConfigError
+    from benchrun.units import parse_quantity
+
+    value = parse_quantity(text, "time", field="--db-outage-limit")
+    if value < 0:
+        raise ConfigError("--db-outage-limit must not be negative")
+    return value
+
+
 def run(args: argparse.Namespace) -> int:
     from benchrun.runner.execute import RunOptions
     from benchrun.runner.launch import run_on_bench
@@ -107,6 +121,7 @@ def run(args: argparse.Namespace) -> int:
         wrong_device=args.wrong_device,
         show_progress=not args.no_progress and sys.stderr.isatty(),
         on_finish=print_outcome,
+        db_outage_limit_s=_outage_limit(args.db_outage_limit),
     )
     signer = signer_from_args(args) if wants_signing(args) else None
     if signer is not None:

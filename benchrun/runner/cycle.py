@@ -24,6 +24,7 @@ import numpy as np
 
 from benchrun.errors import CalibrationOverdue, InstrumentError, RunError, StoreError
 from benchrun.records import ShotResult, TestPoint
+from benchrun.runner.journal import JOURNAL_FILE, JournaledStore
 from benchrun.runner.plan import (
     RETAKE_WIDEN,
     PlannedShot,
@@ -116,7 +117,11 @@ class ShotCycle:
         #: (recover_orphans), so one sync per shot keeps every shot.
         self._rows = ResultsStore(store.url, create=False, durability=DURABILITY_PROCESS,
                                   bench_id=store.bench_id)
-        self.writer = ShotWriter(raw, self._rows, self.sequence)
+        #: rows wait in a journal while the database cannot be reached (runner/journal.py)
+        self.rows = JournaledStore(self._rows, outcome.run_dir / JOURNAL_FILE,
+                                   **options.outage_settings())
+        self.close_error: BaseException | None = None
+        self.writer = ShotWriter(raw, self.rows, self.sequence)  # type: ignore[arg-type]
         #: (clock time, shot spacing) of the last shot fired
         self._last_fire: tuple[float, float] | None = None
         #: the last shot fired, until its result is read
@@ -132,6 +137,11 @@ class ShotCycle:
         """Finish storing and analysing every fired shot (called on every exit path, after
         the safe state) and count a shot the run ended before reading."""
         self.writer.close()
+        try:
+            self.rows.finish()  # journaled rows to the database (bounded wait)
+        except BaseException as exc:  # raised by the runner once the run is recorded
+            log.error("%s", exc)
+            self.close_error = exc
         self._rows.close()
         flight, self._flight = self._flight, None
         if flight is None or flight.ticket.stored.exception() is not None:

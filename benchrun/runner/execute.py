@@ -39,6 +39,7 @@ from benchrun.records import ShotResult
 from benchrun.runner.cycle import ShotCycle
 from benchrun.runner.identity import check_devices
 from benchrun.runner.interrupts import SpaceReserve, StopSignals, bounded
+from benchrun.runner.journal import BACKOFF_INITIAL_S, BACKOFF_MAX_S, DEFAULT_OUTAGE_LIMIT_S
 from benchrun.runner.plan import expand_points, plan_run
 from benchrun.runner.progress import RunProgress, close_run_log, open_run_log, start_live
 from benchrun.runner.safety import (
@@ -110,6 +111,10 @@ class RunOptions:
         cut. ``"process"``: every stored shot is handed to the operating system before the
         next shot (survives ``kill -9`` or a crash of the program, not a power cut or an
         operating-system crash); cheaper per shot. Recorded in ``run.json``.
+    db_outage_limit_s, db_backoff_s
+        How long the results database may stay unreachable while the bench keeps testing
+        (shot rows wait in ``rows-journal.jsonl`` in the run folder, :mod:`benchrun.runner.
+        journal`), and the first and longest wait between reconnection attempts.
     """
 
     out_dir: Path
@@ -133,6 +138,16 @@ class RunOptions:
     #: ``"skip"`` it (reason recorded in ``run.json`` ``skipped_devices``) or ``"stop"`` the
     #: run before anything is energised
     wrong_device: str = "skip"
+    #: how long the results database may stay unreachable before the run stops (s), and the
+    #: first and longest wait between reconnection attempts (runner/journal.py)
+    db_outage_limit_s: float = DEFAULT_OUTAGE_LIMIT_S
+    db_backoff_s: tuple[float, float] = (BACKOFF_INITIAL_S, BACKOFF_MAX_S)
+
+    def outage_settings(self) -> dict[str, float]:
+        """Keyword arguments of :class:`~benchrun.runner.journal.JournaledStore`."""
+        return {"outage_limit_s": self.db_outage_limit_s,
+                "backoff_initial_s": self.db_backoff_s[0],
+                "backoff_max_s": self.db_backoff_s[1]}
 
 
 @dataclass
@@ -493,6 +508,10 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
             station.close()
         if cycle is not None:
             cycle.close()  # shots fired before the end are stored and analysed
+            if cycle.close_error is not None and error is None:
+                outcome.status = "aborted"
+                outcome.error = str(cycle.close_error)
+                error = cycle.close_error
         _finish(outcome, manifest, store)
         if live is not None:
             live.close(outcome.status)
