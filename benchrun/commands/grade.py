@@ -1,10 +1,16 @@
-"""``benchrun grade RESULTS [--limits FILE] [--bench FILE] [--run-id ID] [--json]``.
+"""``benchrun grade RESULTS [--limits FILE] [--bench FILE] [--run-id ID | --lot LOT] [--json]``.
 
 Regrades stored results. RESULTS is a run folder or a results database URL. Without
 ``--limits`` the run folder's ``limits.yaml`` (the limits the run was made with) is used; pass
 a changed limits file to see how the same measurements grade against it. The instrument and
 probe accuracies of the uncertainty budgets come from the bench file the run was made on
 (the run folder's ``bench.yaml``, or ``--bench FILE``).
+
+With ``--lot LOT`` every run of that lot in the store behind RESULTS is graded as one lot
+(:func:`benchrun.store.lotdata.load_lot`: each device's shots from the latest complete run
+that tested it, earlier tests listed as superseded); the limits are those of the newest run
+that counts unless ``--limits`` names a file, and the budgets take the largest accuracy bound
+of the benches involved unless ``--bench`` names one file.
 
 The text output shows each limit with its aggregation (mean or worst shot), the devices'
 grades, why a device is unbinned, the sampling plan with its probability of acceptance at the
