@@ -8,7 +8,7 @@ import json
 
 import pytest
 from test_multibench_ids import bench_file
-from test_runner_support import LIMITS, write_sequence
+from test_runner_support import write_sequence
 
 from benchrun import cli
 from benchrun.config import load_bench, load_sequence
@@ -74,17 +74,24 @@ def test_grade_lot_grades_every_device_once_with_the_plan_over_the_whole_lot(spl
     assert sorted(payload["run_ids"]) == sorted([first.run_id, second.run_id])
     assert payload["lot_runs"]["superseded"][0]["run_id"] == first.run_id
     # each device's grade equals grading that device's counted shots alone (same inputs)
-    limits = load_limits(LIMITS)
+    limits = load_limits(load_run(db, second.run_id).limits_path)  # the run's, as grade uses
     inputs = lot_instrument_inputs([("bench-a", load_bench(tmp / "bench-bench-a.yaml")),
                                     ("bench-b", load_bench(tmp / "bench-bench-b.yaml"))])
+    options = load_run(db, second.run_id).manifest["analysis_options"]
     second_shots = [s for s in load_run(db, second.run_id).shots if s.serial == "SN0117-001"]
-    alone = grade_lot(second_shots, limits, bench=inputs).device("SN0117-001")
+    alone = grade_lot(second_shots, limits, bench=inputs,
+                      analysis_options=options).device("SN0117-001")
     graded = next(d for d in payload["devices"] if d["serial"] == "SN0117-001")
-    assert graded["verdict"] == alone.verdict
-    assert graded["values"] == json.loads(json.dumps(alone.to_dict()["values"]))
+    assert graded["values"]["25C"] == json.loads(json.dumps(alone.to_dict()["values"]["25C"]))
+    # and the whole lot's verdicts are those of grading exactly the counted shots
+    counted = grade_lot(load_lot(db, "LT-0117").shots, limits, bench=inputs,
+                        analysis_options=options)
+    assert {d["serial"]: d["verdict"] for d in payload["devices"]} == {
+        d.serial: d.verdict for d in counted.devices}
     first_shots = [s for s in load_run(db, first.run_id).shots if s.serial == "SN0117-001"]
-    earlier = grade_lot(first_shots, limits, bench=inputs).device("SN0117-001")
-    assert earlier.values != alone.values  # the retest really is another measurement
+    earlier = grade_lot(first_shots, limits, bench=inputs,
+                        analysis_options=options).device("SN0117-001")
+    assert earlier.values["25C"] != alone.values["25C"]  # the retest: another measurement
 
 
 def test_grade_lot_text_names_runs_benches_and_the_superseded_test(split_lot, capsys):

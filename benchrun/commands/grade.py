@@ -95,6 +95,7 @@ def run(args: argparse.Namespace) -> int:
 def _run_lot(args: argparse.Namespace) -> int:
     """``grade RESULTS --lot LOT``: every run of the lot in the store, graded as one lot."""
     from benchrun.grading.across import lot_instrument_inputs
+    from benchrun.store.canonical import canonical_json as canonical
     from benchrun.store.lotdata import RETEST_RULE, load_lot
 
     lot_data = load_lot(args.results, args.lot)
@@ -112,7 +113,12 @@ def _run_lot(args: argparse.Namespace) -> int:
     else:
         inputs = lot_instrument_inputs(
             [(lot_data.bench_of(r.run_id) or r.run_id, run_bench(r)) for r in counted])
-    lot = grade_lot(lot_data.shots, limits, bench=inputs)
+    options = {canonical(r.manifest.get("analysis_options")) for r in counted}
+    if len(options) > 1:
+        raise GradingError(f"the runs of lot {args.lot} were analysed with different analysis "
+                           "options; grade them one run at a time")
+    lot = grade_lot(lot_data.shots, limits, bench=inputs,
+                    analysis_options=counted[-1].manifest.get("analysis_options"))
     if args.json:
         payload = {"lot_runs": lot_data.to_dict(), "limits_file": str(path), **lot.to_dict()}
         print(json.dumps(payload, indent=2, sort_keys=True, ensure_ascii=False))
