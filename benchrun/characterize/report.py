@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import io
 import math
-import os
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -22,7 +21,6 @@ import numpy as np
 
 from benchrun.analysis.metrics_meta import METRICS
 from benchrun.characterize.curves import CURVE_METRICS, Trend, fit_trends
-from benchrun.errors import ReportError
 from benchrun.records import ShotResult
 from benchrun.units import format_si
 
@@ -129,7 +127,7 @@ def render_characterization(
     from reportlab.lib.styles import getSampleStyleSheet
     from reportlab.platypus import Image, Paragraph, SimpleDocTemplate, Spacer, Table, TableStyle
 
-    from benchrun.report.sign import SignatureBox, sign_pdf_bytes
+    from benchrun.report.sign import SignatureBox, sign_pdf_bytes, write_signed_pdf
 
     trends = fit_trends(shots, CURVE_METRICS)
     styles = getSampleStyleSheet()
@@ -174,12 +172,5 @@ def render_characterization(
     }
     signed = sign_pdf_bytes(pdf, signer, box, attachment=attachment,
                             reason="Characterisation report approved")
-    out = Path(out_pdf)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(out.name + ".part")
-    try:
-        tmp.write_bytes(signed)
-        os.replace(tmp, out)
-    except OSError as exc:
-        raise ReportError(f"cannot write {out}: {exc.strerror}") from exc
+    out = write_signed_pdf(out_pdf, signed)
     return out, trends

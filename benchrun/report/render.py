@@ -14,18 +14,16 @@ from __future__ import annotations
 
 import datetime as _dt
 import hashlib
-import os
 from pathlib import Path
 from typing import Any
 
 from reportlab.platypus import Flowable
 
 from benchrun import __version__
-from benchrun.errors import ReportError
 from benchrun.report.facts import ReportContent, attachment_dict
 from benchrun.report.keys import ReportSigner
 from benchrun.report.pages_pdf import WaveformLoader, render_pdf_bytes
-from benchrun.report.sign import sign_pdf_bytes
+from benchrun.report.sign import sign_pdf_bytes, write_signed_pdf
 
 
 def render_signed(
@@ -40,14 +38,7 @@ def render_signed(
     pdf, box = render_pdf_bytes(content, waveform_loader=waveform_loader,
                                 loss_flowables=loss_flowables)
     signed = sign_pdf_bytes(pdf, signer, box, attachment=attachment_dict(content))
-    out = Path(out_pdf)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(out.name + ".part")
-    try:
-        tmp.write_bytes(signed)
-        os.replace(tmp, out)
-    except OSError as exc:
-        raise ReportError(f"cannot write {out}: {exc.strerror}") from exc
+    out = write_signed_pdf(out_pdf, signed)
     return out
 
 

@@ -14,7 +14,9 @@ import asyncio
 import datetime as _dt
 import io
 import json
+import os
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 from benchrun.errors import ReportError
@@ -151,3 +153,22 @@ def read_attachment(pdf: bytes) -> dict[str, Any] | None:
     except Exception:  # a damaged file is a negative verification result, not a crash
         return None
     return None
+
+
+def write_signed_pdf(out_pdf: str | os.PathLike[str], signed: bytes) -> Path:
+    """Write a signed PDF atomically (a ``.part`` file renamed into place) and return its path.
+
+    Raises
+    ------
+    ReportError
+        When the file cannot be written.
+    """
+    out = Path(out_pdf)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(out.name + ".part")
+    try:
+        tmp.write_bytes(signed)
+        os.replace(tmp, out)
+    except OSError as exc:
+        raise ReportError(f"cannot write {out}: {exc.strerror}") from exc
+    return out
