@@ -166,21 +166,6 @@ def _serve(seq_path: str, fresh: bool, last_done, conn, stop) -> None:
         stop.wait()
 
 
-class _RemoteClock:
-    """The runner's clock on a simulated bench in another process (the same law as
-    :class:`benchrun.runner.simbench.AcceleratedClock`: ``time.monotonic`` is system-wide)."""
-
-    def __init__(self, t0: float, speedup: float) -> None:
-        self.t0, self.speedup = t0, speedup
-
-    def monotonic(self) -> float:
-        return (time.monotonic() - self.t0) * self.speedup
-
-    def sleep(self, seconds: float) -> None:
-        if seconds > 0:
-            time.sleep(seconds / self.speedup)
-
-
 @contextlib.contextmanager
 def _bench(seq_path: Path, fresh: bool, in_process: bool, last_done):
     """(resources, clock) of a running simulated bench."""
@@ -202,7 +187,9 @@ def _bench(seq_path: Path, fresh: bool, in_process: bool, last_done):
         if not parent.poll(60):
             raise RuntimeError("the simulated bench process did not start")
         resources, t0, speedup = parent.recv()
-        yield resources, _RemoteClock(t0, speedup)
+        from benchrun.runner.simbench import RemoteClock
+
+        yield resources, RemoteClock(t0, speedup)
     finally:
         stop.set()
         proc.join(10)

@@ -87,20 +87,6 @@ def _serve(seq_path: str, conn, stop) -> None:
         stop.wait()
 
 
-class _RemoteClock:
-    """The runner's clock on a simulated bench in another process."""
-
-    def __init__(self, t0: float, speedup: float) -> None:
-        self.t0, self.speedup = t0, speedup
-
-    def monotonic(self) -> float:
-        return (time.monotonic() - self.t0) * self.speedup
-
-    def sleep(self, seconds: float) -> None:
-        if seconds > 0:
-            time.sleep(seconds / self.speedup)
-
-
 @contextlib.contextmanager
 def _bench(seq_path: Path, in_process: bool = False):
     if in_process:  # as `benchrun run` does with sim resources: its memory counts too
@@ -120,7 +106,9 @@ def _bench(seq_path: Path, in_process: bool = False):
         if not parent.poll(120):
             raise RuntimeError("the simulated bench did not start")
         resources, t0, speedup = parent.recv()
-        yield resources, _RemoteClock(t0, speedup)
+        from benchrun.runner.simbench import RemoteClock
+
+        yield resources, RemoteClock(t0, speedup)
     finally:
         stop.set()
         proc.join(timeout=10)

@@ -42,6 +42,22 @@ class AcceleratedClock:
             time.sleep(seconds / self.speedup)
 
 
+class RemoteClock:
+    """The runner's clock on a simulated bench in another process, started at ``t0`` (a
+    ``time.monotonic()`` reading) with a clock speed-up: the same law as
+    :class:`AcceleratedClock`, since ``time.monotonic`` is system-wide."""
+
+    def __init__(self, t0: float, speedup: float) -> None:
+        self.t0, self.speedup = t0, speedup
+
+    def monotonic(self) -> float:
+        return (time.monotonic() - self.t0) * self.speedup
+
+    def sleep(self, seconds: float) -> None:
+        if seconds > 0:
+            time.sleep(seconds / self.speedup)
+
+
 @dataclass
 class SimulatedSetup:
     """A running simulated bench and what the runner needs from it."""
