@@ -93,10 +93,10 @@ def test_sic_recovery_loss_far_below_silicon(measured):
     si_e = [g.energy_mean_J for g in si.groups]
     sic_e = [g.energy_mean_J for g in sic.groups]
     assert si_e[1] > 1.3 * si_e[0]
-    # 15 %: on 8-bit captures of a capacitive event the per-shot Err scatters (one cold shot of
-    # these two devices reads 8 uJ against 16-18 uJ for the rest); tighten once the baseline
-    # correction removes that scatter (common practice)
-    assert sic_e[1] == pytest.approx(sic_e[0], rel=0.15)
+    # 10 % (common practice): the integration end of these capacitive events lies inside the
+    # 8-bit capture's noise (end_in_noise); the end crossing must hold, so noise no longer
+    # ends the integration early (one cold shot read 8 uJ against 16-18 uJ before)
+    assert sic_e[1] == pytest.approx(sic_e[0], rel=0.10)
 
 
 def test_silicon_switch_energy_exceeds_diode_err(measured):

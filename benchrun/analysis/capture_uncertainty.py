@@ -13,8 +13,15 @@ Instants (first-order propagation, JCGM 100:2008 §5.1.2, inputs uncorrelated):
   σ over the square root of its width); a rising crossing after the peak also carries
   ``σ_loc/|s|`` (the locator's first passage picks the samples of the line);
   a crossing of a level ``−f·Irrm`` also moves with Irrm: ``∂t/∂Irrm = −f/s``;
-- the reverse-current peak: from the cubic fit's covariance (or the median/sample fallback,
-  :func:`benchrun.analysis.events.extremum_fit`);
+- the reverse-current peak: from the cubic fit's covariance and its model error, a
+  rectangular bound as wide as the distance from the fitted peak to the most extreme raw
+  sample under the fit (a smooth fit rounds a sharp corner off; GUM 4.3.7), or the
+  median/sample fallback (:func:`benchrun.analysis.events.extremum_fit`);
+- the integration end t2 when its level lies inside the noise (``end_in_noise``): the
+  local slope there is not resolved, so ``σ/√m`` (m the samples behind the instant, at least
+  the locator width) over the slope of an exponential tail through the peak and t2,
+  ``f·Irrm·ln(1/f)/(t2 − t_Irrm)``, and the hold rule's delay, rectangular over its length
+  (``hold·Δt/√12``); Irrm moves the level by ``f·u(Irrm)`` over that slope;
 - each instant also carries ``Δt/√12`` when it is read on the sample grid (clean data).
 
 Metrics: ``ta = t_irrm − t0``, ``tb = t_trr − t_irrm``, ``trr = t_trr − t0``; ``S = tb/ta``

@@ -242,6 +242,22 @@ def first_at_or_above(s: np.ndarray, level: float, start: int, stop: int) -> int
     return int(start + hits[0]) if hits.size else None
 
 
+def first_held_at_or_above(s: np.ndarray, level: float, start: int, stop: int,
+                           hold: int = 1) -> int | None:
+    """First index in ``[start, stop)`` from which ``s >= level`` holds for ``hold``
+    consecutive samples (fewer where the range ends first), or None."""
+    if hold <= 1:
+        return first_at_or_above(s, level, start, stop)
+    if start >= stop:
+        return None
+    above = (s[start:stop] >= level).astype(np.int32)
+    csum = np.concatenate(([0], np.cumsum(above)))
+    idx = np.arange(above.size)
+    end = np.minimum(idx + hold, above.size)
+    hits = np.flatnonzero(above.astype(bool) & (csum[end] - csum[idx] == end - idx))
+    return int(start + hits[0]) if hits.size else None
+
+
 def last_above(s: np.ndarray, level: float, start: int, stop: int) -> int | None:
     """Last index in ``[start, stop)`` with ``s > level``, or None."""
     if start >= stop:
@@ -374,7 +390,10 @@ def extremum_fit(
 
     Returns ``(time, value, u_value, u_time)`` from white noise σ: for an accepted cubic fit
     the least-squares covariance σ²·(XᵀX)⁻¹ propagated to the fitted value and (through
-    ``δu* = −δp'(u*)/p''(u*)``) to the stationary point; for the median of ``m`` samples
+    ``δu* = −δp'(u*)/p''(u*)``) to the stationary point, with the fit's model error in the
+    value (the residual variance beyond the noise, and a rectangular bound as wide as the
+    distance from the fitted peak to the most extreme raw sample of the fit region, GUM
+    4.3.7); for the median of ``m`` samples
     ``1.2533·σ/√m`` (the median's efficiency for normal data) and the locator's half-width as a
     rectangular bound on the instant; for a single raw sample σ and ``Δt/√12``. Clean data:
     value 0, instant ``Δt/√12``.
@@ -418,7 +437,12 @@ def extremum_fit(
             # (a corner); its size bounds the model error of the value, and the instant moves
             # by as much as the fitted peak is that flat
             excess = math.sqrt(max(rss / dof - sigma * sigma, 0.0))
-            u_value = math.hypot(math.sqrt(max(float(xvec @ cov @ xvec), 0.0)), excess)
+            # model error of the cubic at a sharp-cornered peak (the ramp meeting the tail):
+            # a smooth fit rounds the corner off and under-reads it by up to the distance to
+            # the most extreme raw sample of the region; that distance is taken as the
+            # half-width of a rectangular bound (GUM 4.3.7: u = a/√3)
+            model = max(xv - float(np.min(x[lo : hi + 1])), 0.0) / math.sqrt(3.0)
+            u_value = math.hypot(math.sqrt(max(float(xvec @ cov @ xvec), 0.0)), excess, model)
             u_time = math.hypot(math.sqrt(max(float(dvec @ cov @ dvec), 0.0)) / curvature,
                                 math.sqrt(2.0 * excess / curvature)) * t_half
             return float(t_mid + uv * t_half), xv, u_value, math.hypot(u_time,

@@ -26,6 +26,7 @@ from benchrun.analysis.capture_uncertainty import (
 from benchrun.analysis.conditioning import lowpass
 from benchrun.analysis.conventions import Convention
 from benchrun.analysis.flags import (
+    FLAG_END_IN_NOISE,
     FLAG_FEW_SAMPLES_TA,
     FLAG_INCOMPLETE,
     FLAG_LOW_SNR,
@@ -54,6 +55,10 @@ T0_SLOPE_BAND = 0.25
 #: The forward plateau must exceed this many noise sigmas, else the record is refused as noise
 #: (common practice).
 MIN_PLATEAU_SNR = 3.0
+
+#: The integration end level f·Irrm below this many current noise sigmas flags
+#: ``end_in_noise`` (common practice).
+END_NOISE_MULTIPLE = 3.0
 
 _NEED_MORE = object()
 _NEED_LOOKBACK = object()
@@ -243,11 +248,26 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
     k_tail = ev.first_at_or_above(s_r, -opts.fit_low * irrm, k_min, n)
     tail = (k_tail - k_min) if k_tail is not None else n - k_min
     width_end = min(width, _odd(tail / 4))
+    # The integration end's level below END_NOISE_MULTIPLE noise sigmas (end_in_noise): a
+    # noise excursion of the locator would end the integration early. The locator then
+    # averages enough samples to bring its noise to half the level (at most the tail's
+    # quarter, at least the usual width) and the crossing must hold for that many samples.
+    end_level = opts.integration_end_fraction * irrm
+    end_in_noise = noisy and end_level < END_NOISE_MULTIPLE * sigma
+    hold_end = 1
+    if end_in_noise:
+        width_end = max(width_end, min(_odd((2.0 * sigma / end_level) ** 2), _odd(tail / 2)))
+        hold_end = width_end
+        flags.append(f"{FLAG_END_IN_NOISE}: the integration end level "
+                     f"{opts.integration_end_fraction:g}·Irrm = {end_level:.3g} A lies below "
+                     f"{END_NOISE_MULTIPLE:g} noise sigmas ({sigma:.3g} A rms)")
     s_end = ev.moving_average(iw, width_end) if width_end != width else s
 
-    def rising(fraction: float, band: float, loc: np.ndarray = s_r):
-        """(instant, its noise u, its slope) of the rise through −fraction·Irrm, or None."""
-        k = ev.first_at_or_above(loc, -fraction * irrm, k_min, n)
+    def rising(fraction: float, band: float, loc: np.ndarray = s_r, hold: int = 1):
+        """(instant, its noise u, its slope) of the rise through −fraction·Irrm, or None
+        (with ``hold`` > 1 the locator must stay at or above the level for ``hold``
+        samples)."""
+        k = ev.first_held_at_or_above(loc, -fraction * irrm, k_min, n, hold)
         if k is None or k == 0:
             return None
         tc, slope, m = ev.crossing_fit(tw, iw, loc, k, -fraction * irrm, band)
@@ -259,9 +279,9 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
             u_noise = rss(u_noise, sig_loc / abs(slope))
         # the level −f·Irrm moves with Irrm: ∂t/∂Irrm = −f/slope
         u_level = fraction * u_irrm / abs(slope) if slope else 0.0
-        return tc, u_noise, u_level, slope
+        return tc, u_noise, u_level, slope, m
 
-    end = rising(opts.integration_end_fraction, band_end, s_end)
+    end = rising(opts.integration_end_fraction, band_end, s_end, hold_end)
     if end is None and can_grow:
         return _NEED_MORE
     t_trr = u_ttrr = None
@@ -285,6 +305,19 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
             flags.append(FLAG_TRR_NOT_FOUND)
         else:
             t_trr, u_ttrr = thr[0], rss(thr[1], thr[2])
+    if end_in_noise and end is not None and end[0] > t_irrm:
+        # The local slope at a level inside the noise is not resolved, so the end instant's
+        # noise term uses the slope of an exponential tail (Lauritzen–Ma: the current decays
+        # exponentially after the junction blocks) through the peak and the end:
+        # f·Irrm/τ with τ = (t2 − t_Irrm)/ln(1/f); the hold rule may delay the end by up to
+        # its length (a rectangular distribution of that width, GUM 4.3.7); the noise term
+        # is σ over the root of the samples behind the instant, over that slope
+        f_end = opts.integration_end_fraction
+        slope_tail = end_level * math.log(1.0 / f_end) / (end[0] - t_irrm)
+        u_hold = hold_end * dt_local / math.sqrt(12.0)
+        m_end = max(end[4], width_end)  # samples behind the instant (line fit or locator)
+        end = (end[0], rss(sigma_u / math.sqrt(m_end) / slope_tail, u_hold),
+               f_end * u_irrm / slope_tail, end[3], end[4])
 
     ta = t_irrm - t0
     trr = t_trr - t0 if t_trr is not None else None

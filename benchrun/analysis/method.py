@@ -12,7 +12,7 @@ from typing import Any
 from benchrun.analysis import baseline as bl
 from benchrun.analysis import quality as qa
 from benchrun.analysis.conventions import Convention
-from benchrun.analysis.measure import MIN_PLATEAU_SNR, T0_SLOPE_BAND
+from benchrun.analysis.measure import END_NOISE_MULTIPLE, MIN_PLATEAU_SNR, T0_SLOPE_BAND
 
 #: Metric key → definition (``{fit_high}``, ``{fit_low}``, ``{end}``, ``{threshold}`` filled
 #: from the analysis options).
@@ -55,7 +55,8 @@ OFFSET_TEXT = (
 
 UNCERTAINTY_TEXT = (
     "u of every metric from the capture itself: plateau noise σ (the code step/√12 on "
-    "noise-free quantised data), noise/|slope| at every crossing, the peak fit's covariance, "
+    "noise-free quantised data), noise/|slope| at every crossing, the peak fit's covariance "
+    "and model error (up to the most extreme sample under the fit, rectangular), "
     "σ·Δt·√N for the integrals and the offset residuals, propagated into ta, tb, trr, S, "
     "Qrr and Err"
 )
@@ -74,6 +75,9 @@ FLAG_RULES: dict[str, str] = {
                 "after t2"),
     "snap": f"the steepest slope after the peak above {qa.SNAP_MULTIPLE:g} × the slope at t0",
     "ta_unresolved": f"u(ta) above {100 * qa.TA_U_FRACTION:g} % of ta",
+    "end_in_noise": (f"the integration end level below {END_NOISE_MULTIPLE:g} current noise "
+                     "sigmas: t2 from a wider moving average, the return must hold for its "
+                     "width; u(t2), u(Qrr), u(Err) include it"),
     "clipped_diode_current": ("samples pile up at the lowest current value (at least 5, 3 in "
                               "a row, 3 × the next code): the screen edge"),
 }

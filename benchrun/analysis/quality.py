@@ -25,6 +25,9 @@ common practice unless a source is named; the README's metrics section lists the
 - ``snap``: the steepest current slope after the peak exceeds 3 times the slope at t0
   (RRSF < 1/3).
 - ``ta_unresolved``: the standard uncertainty of ta exceeds 10 % of ta.
+- ``end_in_noise`` (set in :mod:`benchrun.analysis.measure`): the integration end level
+  ``integration_end_fraction·Irrm`` lies below ``END_NOISE_MULTIPLE`` (3) current noise
+  sigmas; t2 is then found on a wider moving average and the return must hold for its width.
 - ``clipped_diode_current`` / ``clipped_diode_voltage``: samples pile up at the extreme
   value of the reverse current (or reverse voltage): at least 5 samples, 3 in a row, at the
   lowest value, at least 3 times as many as at the next value above it, which lies within

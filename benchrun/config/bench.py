@@ -18,7 +18,7 @@ A bench file describes the hardware a sequence runs on. It is loaded with
                       accuracy: {scale: 2 %, certificate: CAL-0413, calibrated: 2026-06-30}}
       diode_current: {channel: 2, kind: shunt, resistance: 10 mohm, deskew: 1.5 ns,
                       accuracy: {scale: 1 %, skew: 0.5 ns, certificate: CAL-0414,
-                                 calibrated: 2026-06-30}}
+                                 calibrated: 2026-06-30}, bandwidth: 400 MHz}
     fixture: {load_inductance: 200 uH, ...}
     safety:  {max_bus_voltage: 1000 V, ...}
 
@@ -32,6 +32,10 @@ is refused. They are bounds (half-widths) of rectangular distributions.
 ``bench: {id: B}`` names the bench (letters, digits, ``.``, ``_``, ``-``; default: the host
 name). The id is part of every run id and is recorded with every run and shot, so several
 benches can share one results database (:func:`default_bench_id`).
+
+``bandwidth`` (optional) of each probe and of the scope (``instruments.scope.bandwidth``, or a
+probe entry's ``channel_bandwidth`` for its input) give each channel's system rise time
+(:func:`system_rise_time`), recorded with every shot and behind the ``rise_time_limited`` flag.
 
 The resource ``sim`` is a placeholder: ``benchrun demo`` and ``benchrun run`` resolve it to
 the matching instrument of an in-process simulated bench.
@@ -120,6 +124,9 @@ class InstrumentEntry(StrictModel):
     calibration_due: _dt.date | None = None
     timeout: Time = 5.0
     accuracy: InstrumentAccuracy | None = None
+    #: Analog bandwidth (-3 dB) of the scope's inputs, for channels whose probe entry states
+    #: no ``channel_bandwidth`` (optional; the system rise time, :func:`system_rise_time`).
+    bandwidth: Frequency | None = Field(default=None, gt=0)
 
     @field_validator("timeout")
     @classmethod
@@ -179,6 +186,11 @@ class ProbeEntry(StrictModel):
     deskew: Time = 0.0
     accuracy: ProbeAccuracy | None = None
     simulated: SimulatedProbeErrors | None = None
+    #: The probe's (or shunt's, or sensor's) bandwidth (-3 dB), and that of the scope input it
+    #: is wired to when it differs from the scope's ``bandwidth`` (a bandwidth limit set on
+    #: the channel); both optional (:func:`system_rise_time`).
+    bandwidth: Frequency | None = Field(default=None, gt=0)
+    channel_bandwidth: Frequency | None = Field(default=None, gt=0)
 
     @model_validator(mode="before")
     @classmethod
@@ -332,6 +344,29 @@ class BenchConfig(StrictModel):
     def simulated(self) -> bool:
         """True when every instrument is the in-process simulated bench."""
         return all(entry.simulated for _, entry in self.instruments.items())
+
+
+#: 10-90 % rise time × bandwidth of a single-pole (first-order) response: ln(9)/(2π) ≈ 0.35.
+RISE_TIME_BANDWIDTH = math.log(9.0) / (2.0 * math.pi)
+
+
+def system_rise_time(bench: BenchConfig, signal: str) -> float | None:
+    """10-90 % rise time of the measurement chain of ``signal`` (probe and scope input).
+
+    Each element's rise time is ``0.35 / bandwidth`` (a first-order response: ln 9/(2π)); the
+    chain's is their root sum of squares (cascaded stages without overshoot, Valley & Wallman,
+    Vacuum Tube Amplifiers, 1948, from memory). The scope input's bandwidth is the probe
+    entry's ``channel_bandwidth``, else the scope's ``bandwidth``. None when the bench file
+    states neither the probe's nor the input's bandwidth.
+    """
+    probe = bench.probes.get(signal)
+    if probe is None:
+        return None
+    channel = probe.channel_bandwidth or bench.instruments.scope.bandwidth
+    elements = [bw for bw in (probe.bandwidth, channel) if bw]
+    if not elements:
+        return None
+    return math.sqrt(math.fsum((RISE_TIME_BANDWIDTH / bw) ** 2 for bw in elements))
 
 
 def load_bench(path: str | Path) -> BenchConfig:

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from benchrun.analysis import ChannelData, ProbeCalibration, RecoveryOptions, analyze_channels
-from benchrun.config.bench import BenchConfig
+from benchrun.config.bench import BenchConfig, system_rise_time
 from benchrun.config.sequence import SequenceConfig
 from benchrun.errors import AnalysisError
 from benchrun.records import CONDITION_KEYS, ShotResult, TestPoint
@@ -52,7 +52,8 @@ def shot_key(point_index: int, serial: str, repeat: int, attempt: int) -> str:
 
 def probes_for(bench: BenchConfig) -> dict[str, ProbeCalibration]:
     """Probe calibrations of every wired signal."""
-    return {name: ProbeCalibration(scale=p.scale, deskew_s=p.deskew)
+    return {name: ProbeCalibration(scale=p.scale, deskew_s=p.deskew,
+                                   rise_time_s=system_rise_time(bench, name))
             for name, p in bench.probes.items()}
 
 
@@ -116,6 +117,11 @@ def acquisition_facts(dt: float, channels: Mapping[str, ChannelData],
         facts[key] = float(full_scale)
     if "diode_current" in channels:
         facts["adc_bits"] = adc_bits(channels["diode_current"])
+    for name, key in (("diode_current", "current_rise_time_s"),
+                      ("diode_voltage", "voltage_rise_time_s")):
+        rise = getattr(probes.get(name), "rise_time_s", None)
+        if rise is not None:  # the chain's rise time from the bench file's bandwidths
+            facts[key] = float(rise)
     return facts
 
 
