@@ -140,7 +140,7 @@ def _thermal_rows(thermal: Any, names: dict[Any, str]) -> list[list[str]]:
              f"{rth:g} K/W" if isinstance(rth, (int, float)) else "not stated"],
             ["dwell after a device swap", _seconds(thermal.get("swap_dwell_s"))]]
     points = thermal.get("points") if isinstance(thermal.get("points"), dict) else {}
-    for index, heat in sorted(points.items(), key=lambda kv: str(kv[0])):
+    for index, heat in sorted(points.items(), key=lambda kv: (len(str(kv[0])), str(kv[0]))):
         if not isinstance(heat, dict):
             continue
         name = names.get(int(index)) if str(index).isdigit() else None
