@@ -192,7 +192,7 @@ class SlotIndex(MutableMapping):
     """
 
     #: keys kept in the dict before they are merged into the sorted arrays
-    MERGE_AT = 4096
+    MERGE_AT = 512
 
     def __init__(self, store: SlotStore) -> None:
         self._store = store
