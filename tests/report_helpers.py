@@ -85,6 +85,17 @@ def capture(irrm: float, tau: float, *, seed: int, didt: float = 500e6, if_a: fl
     return t_start, dt, channels, probes
 
 
+def _thermal(run_dir: Path) -> dict:
+    """The run manifest's ``thermal`` entry as the runner writes it for these files."""
+    from benchrun.config.bench import load_bench
+    from benchrun.config.sequence import load_sequence
+    from benchrun.runner.plan import expand_points
+    from benchrun.runner.thermal import thermal_record
+
+    sequence = load_sequence(run_dir / "sequence.yaml")
+    return thermal_record(expand_points(sequence), sequence, load_bench(run_dir / "bench.yaml"))
+
+
 def build_run(tmp_path: Path, n_devices: int = 4, *, failing: tuple[int, ...] = (2,),
               run_id: str = "R-DEMO-0001") -> Path:
     """A run folder with raw record, results DB, configuration files and run.json."""
@@ -127,6 +138,7 @@ def build_run(tmp_path: Path, n_devices: int = 4, *, failing: tuple[int, ...] = 
                 shot_no += 1
     write_manifest(run_dir, {
         "run_id": run_id, "part": "DX-4417", "lot": "LT-0117", "status": "finished",
+        "thermal": _thermal(run_dir),
         "started": "2026-11-30T09:00:00+00:00", "finished": "2026-11-30T09:20:00+00:00",
         "software_version": "0.1.0",
         "instruments": {

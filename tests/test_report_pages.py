@@ -50,6 +50,34 @@ def test_a_dropped_cell_would_be_noticed(signed_run):  # noqa: F811
         "quarantined-by-hand"]
 
 
+def test_the_thermal_handling_is_stated(signed_run):  # noqa: F811
+    # issue 15 item 3: the report states which sensor the temperature was read from, the dwell
+    # after a device swap and the minimum shot interval with its rule and the fixture's
+    # constants, as run.json recorded them (the words are read back with pdftotext)
+    import json
+
+    from benchrun.units import format_si
+
+    thermal = json.loads((signed_run.run_dir / "run.json").read_text())["thermal"]
+    assert thermal["temperature_sensor"] == "plate" and thermal["swap_dwell_s"] > 0
+    # compared without white space: pdftotext may split or join words at a narrow space
+    text = re.sub(r"\s+", "", _text(signed_run.pdf))
+
+    def said(statement: str) -> bool:
+        return re.sub(r"\s+", "", statement) in text
+
+    assert said("temperature read from temperature plate")
+    assert said(f"dwell after a device swap {format_si(thermal['swap_dwell_s'], 's')}")
+    assert said(f"fixture thermal time constant {format_si(thermal['time_constant_s'], 's')}")
+    assert said(f"fixture thermal resistance {thermal['thermal_resistance_K_per_W']:g} K/W")
+    intervals = [h["min_interval_s"] for h in thermal["points"].values()]
+    assert intervals and all(i is not None for i in intervals)
+    assert text.count("minimumshotinterval,") == len(intervals)
+    for interval in intervals:
+        assert said(f"{format_si(interval, 's')}; heat per shot")
+    assert said("shot interval rule first-order thermal model of the fixture")
+
+
 def test_no_text_overlaps_other_text_or_leaves_the_page(signed_run):  # noqa: F811
     assert overlapping_words(signed_run.pdf) == []
 

@@ -166,9 +166,6 @@ def test_disk_full_by_a_file_size_limit(tmp_path):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="known open fault: on a really full tmpfs a traceback "
-                   "(OSError ENOSPC, raised as the direct cause of another error) still "
-                   "reaches standard error; the run itself reaches and records the safe state")
 def test_disk_full_on_a_small_tmpfs(tmp_path):
     if os.geteuid() != 0 or shutil.which("mount") is None:
         pytest.skip("mounting a tmpfs needs root")

@@ -282,3 +282,61 @@ def test_damaged_newest_slot_without_positional_io_is_cleared_through_hdf5(tmp_p
         assert _groups(f) == ["000001"]
     with RawRecord(path, "r") as raw:  # the shot group now holds the key
         _same_shot(raw.read_shot("000001"), make_channels(9, 500))
+
+
+def _strings_held(obj, seen=None) -> list[str]:
+    """Every str reachable from ``obj`` through containers and numpy arrays' Python objects
+    (not through the slot store the index points back to)."""
+    import gc
+
+    seen = set() if seen is None else seen
+    out = []
+    # a dict's keys explicitly: the collector does not visit string keys
+    refs = [*obj.keys(), *obj.values()] if isinstance(obj, dict) else gc.get_referents(obj)
+    for ref in refs:
+        if id(ref) in seen or isinstance(ref, SlotStore | type):
+            continue
+        seen.add(id(ref))
+        if isinstance(ref, str):
+            out.append(ref)
+        elif isinstance(ref, dict | list | tuple | set):
+            out += _strings_held(ref, seen)
+    return out
+
+
+def test_key_index_holds_no_key_and_tells_keys_of_one_hash_apart(tmp_path, monkeypatch):
+    # The index of a long run must not grow by a key string per shot (soak memory, issue 15):
+    # it keeps hashes and slot positions; a matching hash is confirmed against the header on
+    # disk. With every key given the same hash, lookups, the duplicate check, replace,
+    # removal and reopening still find exactly the right slot.
+    path = tmp_path / "raw.h5"
+    _write(path, 12)
+    with RawRecord(path, "a", compression=None) as raw:
+        index = raw._slots.index
+        names = [k for k in _strings_held(index) if k.isdigit()]
+        assert names == []  # no key string is held by the index
+        assert len(index) == 12 and sorted(index) == [f"{k:06d}" for k in range(12)]
+    monkeypatch.setattr(raw_slots.SlotIndex, "MERGE_AT", 3)  # entries in dict and arrays
+    monkeypatch.setattr(raw_slots, "_key_hash", lambda key: 7)  # every key one hash
+    with RawRecord(path, "a", compression=None) as raw:
+        assert raw.keys() == [f"{k:06d}" for k in range(12)]
+        for k in (0, 6, 11):
+            assert raw.read_shot(f"{k:06d}").attrs == {"k": k}
+        assert "000012" not in raw
+        with pytest.raises(StoreError, match="already in raw record"):
+            raw.append_shot("000003", 0.0, 1e-9, make_channels(3, 500), make_probes(), {})
+        raw.append_shot("000003", 0.0, 1e-9, make_channels(30, 500), make_probes(),
+                        {"k": 30}, replace=True)
+        for k in range(12, 16):  # the third merges the dict into the arrays
+            raw.append_shot(f"{k:06d}", 0.0, 1e-9, make_channels(k, 500), make_probes(),
+                            {"k": k})
+        raw._slots.drop("000005")
+        assert raw.read_shot("000003").attrs == {"k": 30}
+        assert raw.read_shot("000014").attrs == {"k": 14}
+        assert "000005" not in raw and len(raw._slots.index) == 15
+        entries = dict(raw._slots.index.items())
+        assert entries["000003"][2] == 12  # seq of the replacing slot
+    with RawRecord(path, "r") as raw:
+        assert raw.keys() == sorted({f"{k:06d}" for k in range(16)} - {"000005"})
+        assert raw.read_shot("000003").attrs == {"k": 30}
+        assert raw.read_shot("000015").attrs == {"k": 15}

@@ -119,6 +119,47 @@ def _fixture_table(bench: Any) -> list[list[str]]:
     return rows
 
 
+def _seconds(value: Any) -> str:
+    return format_si(float(value), "s") if isinstance(value, (int, float)) else "not stated"
+
+
+def _thermal_rows(thermal: Any, names: dict[Any, str]) -> list[list[str]]:
+    """Rows stating the junction-temperature handling the run used (run.json ``thermal``,
+    written by :func:`benchrun.runner.thermal.thermal_record`): the sensor the temperature was
+    read from, the fixture's thermal constants, the dwell after a device swap and, per test
+    point, the minimum shot interval with its rule."""
+    if not isinstance(thermal, dict):
+        return [["temperature sensor, swap dwell, shot interval", "not recorded by the run"]]
+    sensor = thermal.get("temperature_sensor")
+    where = {"plate": "temperature plate (the thermal controller's sensor on the plate)",
+             "case": "device case (the thermal controller's sensor on the case)"}
+    rth = thermal.get("thermal_resistance_K_per_W")
+    rows = [["temperature read from", where.get(sensor, str(sensor or "not recorded"))],
+            ["fixture thermal time constant", _seconds(thermal.get("time_constant_s"))],
+            ["fixture thermal resistance",
+             f"{rth:g} K/W" if isinstance(rth, (int, float)) else "not stated"],
+            ["dwell after a device swap", _seconds(thermal.get("swap_dwell_s"))]]
+    points = thermal.get("points") if isinstance(thermal.get("points"), dict) else {}
+    for index, heat in sorted(points.items(), key=lambda kv: (len(str(kv[0])), str(kv[0]))):
+        if not isinstance(heat, dict):
+            continue
+        name = names.get(int(index)) if str(index).isdigit() else None
+        name = name or heat.get("label") or f"point {index}"
+        interval = heat.get("min_interval_s")
+        energy = heat.get("energy_J")
+        text = (_seconds(interval) if interval is not None
+                else "none (no thermal time constant and resistance stated)")
+        if isinstance(energy, (int, float)):
+            text += f"; heat per shot {format_si(energy, 'J')} (upper estimate)"
+        rise = heat.get("rise_per_shot_K")
+        if isinstance(rise, (int, float)):
+            text += f", rise per shot {rise:.2g} K"
+        rows.append([f"minimum shot interval, {name}", text])
+    if thermal.get("rule"):
+        rows.append(["shot interval rule", str(thermal["rule"])])
+    return rows
+
+
 def _u_text(value: float, unit: str) -> str:
     if unit in ("1", ""):
         return percent(value)
@@ -302,7 +343,7 @@ def build_content(run: Any, lot: Any, signer: ReportSigner, sources: RunSources,
         run_window=window,
         conditions_table=_conditions_table(run, lot, sequence.tolerances if sequence else None),
         instruments_table=traceability_table(run, bench),
-        fixture_table=_fixture_table(bench),
+        fixture_table=_fixture_table(bench) + _thermal_rows(manifest.get("thermal"), names),
         definitions_table=method_table(options),
         decision_rule=[lot.decision_rule, lot.lot_rule],
         budget_tables=_budget_tables(lot),

@@ -353,6 +353,7 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
     signals = StopSignals().install()
     reserve = SpaceReserve(run_dir)
     unraisable, sys.unraisablehook = sys.unraisablehook, _log_unraisable
+    excepthook, sys.excepthook = sys.excepthook, _log_printed_error
     try:
         log.info("%s run %s: %s lot %s, sequence %s, bench %s",
                  "resuming" if resumed else "starting", run_id, prep.sequence.part,
@@ -408,6 +409,7 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
             signals.restore()
             gc.collect()  # objects the run released are released while their errors are logged
             sys.unraisablehook = unraisable
+            sys.excepthook = excepthook
             close_run_log(handler)
     return outcome
 
@@ -428,6 +430,14 @@ def _log_unraisable(unraisable: Any) -> None:
     """During a run: an error raised while an object is released (the HDF5 library's, when a
     full disk refuses the write of an object it closes) goes to the run log in one line."""
     log.warning("while releasing %r: %s", unraisable.object, unraisable.exc_value)
+
+
+def _log_printed_error(kind: type[BaseException], value: BaseException, tb: Any) -> None:
+    """During a run: an error a compiled library prints through ``sys.excepthook`` instead
+    of raising it (h5py prints the full traceback of an error in releasing an HDF5 object
+    this way, before the unraisable hook sees it) goes to the run log in one line. Errors
+    the run raises are not affected: they propagate to the caller, not to this hook."""
+    log.warning("while releasing an object: %s: %s", kind.__name__, value)
 
 
 def _report_only(run_id: str, run_dir: Path, manifest: dict[str, Any],

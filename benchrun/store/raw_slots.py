@@ -44,11 +44,12 @@ unlinked, flushed, then linked and flushed again.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import logging
 import os
 import re
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping, MutableMapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -148,6 +149,8 @@ class _Block:
     header_offset: int | None
     #: slots in use (filled in order)
     used: int = 0
+    #: position in :attr:`SlotStore.blocks`
+    number: int = -1
 
     @property
     def packed(self) -> bool:
@@ -168,6 +171,148 @@ class _Block:
     def fits(self, n_channels: int, length: int, dtype: np.dtype, header_bytes: int) -> bool:
         return (not self.packed and self.used < self.n_slots
                 and self.holds(n_channels, length, dtype) and header_bytes <= self.width)
+
+
+def _key_hash(key: str) -> int:
+    """64-bit hash of a shot key (BLAKE2b, 8 bytes; the same in every process)."""
+    return int.from_bytes(hashlib.blake2b(key.encode(), digest_size=8).digest(), "little")
+
+
+class SlotIndex(MutableMapping):
+    """Key → ``(block, slot, seq)`` of the newest slot of every key, in about 16 bytes a shot.
+
+    A dict of the keys themselves held about 180 bytes a shot (the key string, a tuple, its
+    integers and the dict entry), which grew a long run's memory shot by shot. This index keeps
+    only a 64-bit hash of each key and the slot's position (block number, slot) in two sorted
+    numpy arrays, plus the last :data:`MERGE_AT` keys in a small dict merged into the arrays
+    when it fills. The key itself stays where it already is, in the slot's header on disk: a
+    hash that matches is confirmed by reading that header (so two keys of one hash are still
+    told apart), and ``seq`` is read from it as well. A hash that matches nothing (a new key:
+    the duplicate check of every write) costs no read.
+    """
+
+    #: keys kept in the dict before they are merged into the sorted arrays
+    MERGE_AT = 512
+
+    def __init__(self, store: SlotStore) -> None:
+        self._store = store
+        self._hashes = np.empty(0, dtype=np.uint64)
+        #: block number << 32 | slot; -1 for a removed entry
+        self._positions = np.empty(0, dtype=np.int64)
+        self._recent: dict[int, list[int]] = {}
+        self._recent_count = 0
+        self._count = 0
+
+    @staticmethod
+    def _encode(block: _Block, slot: int) -> int:
+        return (block.number << 32) | int(slot)
+
+    def _header_at(self, position: int) -> tuple[_Block, int, dict[str, Any] | None]:
+        store = self._store
+        block, slot = store.blocks[position >> 32], position & 0xFFFFFFFF
+        return block, slot, _parse_header(store._read(block, "header", slot))
+
+    def _find(self, key: str) -> tuple[int, int, tuple[_Block, int, int]] | None:
+        """(where: -1 the dict, else the array index; list index in the dict; the entry)."""
+        h = _key_hash(key)
+        candidates: list[tuple[int, int, int]] = []
+        if self._hashes.size:
+            lo = int(np.searchsorted(self._hashes, np.uint64(h), side="left"))
+            hi = int(np.searchsorted(self._hashes, np.uint64(h), side="right"))
+            candidates += [(i, 0, int(self._positions[i])) for i in range(lo, hi)
+                           if self._positions[i] >= 0]
+        candidates += [(-1, j, p) for j, p in enumerate(self._recent.get(h, ()))]
+        for where, j, position in candidates:
+            block, slot, header = self._header_at(position)
+            if header is not None and header["key"] == key:
+                return where, j, (block, slot, int(header["seq"]))
+        return None
+
+    def __getitem__(self, key: str) -> tuple[_Block, int, int]:
+        found = self._find(key)
+        if found is None:
+            raise KeyError(key)
+        return found[2]
+
+    def __contains__(self, key: object) -> bool:
+        return isinstance(key, str) and self._find(key) is not None
+
+    def __setitem__(self, key: str, value: tuple[_Block, int, int]) -> None:
+        """Point ``key`` at ``(block, slot, seq)``; the slot's header must already name it."""
+        block, slot, _ = value
+        position = self._encode(block, slot)
+        found = self._find(key)
+        if found is not None:
+            where, j, _entry = found
+            if where < 0:
+                self._recent[_key_hash(key)][j] = position
+            else:
+                self._positions[where] = position
+            return
+        self._recent.setdefault(_key_hash(key), []).append(position)
+        self._recent_count += 1
+        self._count += 1
+        if self._recent_count >= self.MERGE_AT:
+            self._merge()
+
+    def __delitem__(self, key: str) -> None:
+        found = self._find(key)
+        if found is None:
+            raise KeyError(key)
+        where, j, _entry = found
+        if where < 0:
+            h = _key_hash(key)
+            del self._recent[h][j]
+            if not self._recent[h]:
+                del self._recent[h]
+            self._recent_count -= 1
+        else:
+            self._positions[where] = -1
+        self._count -= 1
+
+    def _merge(self) -> None:
+        """Move the dict's entries into the sorted arrays (and drop removed entries)."""
+        hashes = [h for h, ps in self._recent.items() for _ in ps]
+        positions = [p for ps in self._recent.values() for p in ps]
+        keep = self._positions >= 0
+        all_h = np.concatenate([self._hashes[keep], np.array(hashes, dtype=np.uint64)])
+        all_p = np.concatenate([self._positions[keep], np.array(positions, dtype=np.int64)])
+        order = np.argsort(all_h, kind="stable")
+        self._hashes, self._positions = all_h[order], all_p[order]
+        self._recent, self._recent_count = {}, 0
+
+    def __len__(self) -> int:
+        return self._count
+
+    def _live(self) -> Iterator[tuple[str, tuple[_Block, int, int]]]:
+        """Every entry, read from the slot headers (one read per block), in slot order."""
+        live = {int(p) for p in self._positions if p >= 0}
+        live.update(p for ps in self._recent.values() for p in ps)
+        store = self._store
+        for block in store.blocks:
+            mine = [slot for slot in range(block.used) if self._encode(block, slot) in live]
+            if not mine:
+                continue
+            rows = store._read(block, "header", 0, block.used)
+            for slot in mine:
+                header = _parse_header(rows[slot * block.width:(slot + 1) * block.width])
+                if header is not None:
+                    yield header["key"], (block, slot, int(header["seq"]))
+
+    def __iter__(self) -> Iterator[str]:
+        return (key for key, _ in self._live())
+
+    def items(self) -> list[tuple[str, tuple[_Block, int, int]]]:  # type: ignore[override]
+        return list(self._live())
+
+    def load(self, entries: Mapping[str, tuple[_Block, int, int]]) -> None:
+        """Replace the content by ``entries`` (opening a record: read from every header)."""
+        hashes = np.array([_key_hash(k) for k in entries], dtype=np.uint64)
+        positions = np.array([self._encode(b, s) for b, s, _ in entries.values()],
+                             dtype=np.int64)
+        order = np.argsort(hashes, kind="stable")
+        self._hashes, self._positions = hashes[order], positions[order]
+        self._recent, self._recent_count, self._count = {}, 0, len(entries)
 
 
 class SlotStore:
@@ -194,8 +339,8 @@ class SlotStore:
         self.path = path
         self.writable = writable
         self.blocks: list[_Block] = []
-        #: key → (block, slot, seq) of the newest slot of every key
-        self.index: dict[str, tuple[_Block, int, int]] = {}
+        #: key → (block, slot, seq) of the newest slot of every key (:class:`SlotIndex`)
+        self.index = SlotIndex(self)
         self._next_seq = 0
         fd = f.id.get_vfd_handle()  # the file's descriptor while it is open (sec2 driver)
         #: positional I/O on HDF5's own descriptor (POSIX); elsewhere slots are read through
@@ -257,8 +402,10 @@ class SlotStore:
         if group is None:
             return
         newest: tuple[int, str] | None = None
+        found: dict[str, tuple[_Block, int, int]] = {}  # only while the record is opened
         for name in sorted(group):
             block = self._open_block(name, group[name])
+            block.number = len(self.blocks)
             self.blocks.append(block)
             raw = np.frombuffer(self._read(block, "header", 0, block.n_slots),
                                 dtype=np.uint8).reshape(block.n_slots, block.width)
@@ -270,12 +417,14 @@ class SlotStore:
                     continue  # a header a crash left half-written: an empty slot
                 key, seq = header["key"], int(header["seq"])
                 self._next_seq = max(self._next_seq, seq + 1)
-                known = self.index.get(key)
+                known = found.get(key)
                 if known is None or known[2] < seq:
-                    self.index[key] = (block, int(slot), seq)
+                    found[key] = (block, int(slot), seq)
                 if newest is None or seq > newest[0]:
                     newest = (seq, key)
-        if self.writable and newest is not None and self.index[newest[1]][2] == newest[0]:
+        self.index.load(found)
+        if self.writable and newest is not None and found[newest[1]][2] == newest[0]:
+            del found
             self._check_newest(newest[1])
 
     def _open_block(self, name: str, group: h5py.Group) -> _Block:
@@ -454,6 +603,7 @@ class SlotStore:
             block = self._open_block(name, slots[name])
         except (OSError, ValueError, TypeError, KeyError) as exc:
             raise StoreError(f"cannot add a block of slots to {self.path}: {exc}") from exc
+        block.number = len(self.blocks)
         self.blocks.append(block)
         return block
 
