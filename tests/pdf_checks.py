@@ -108,6 +108,6 @@ def fonts_not_embedded(pdf: Path) -> list[str]:
 BENCH_SIM_TRACEABILITY = [
     "KPC-PRB-0451", "KPC-SHT-0207", "KPC-PRB-0452",     # probe serials
     "400 MHz", "2 GHz",                                  # probe bandwidths
-    "switch SW-9100 (invented), serial SWS-0042",       # fixture.switch
+    "switch SW-9100 (invented), serial SWS-0042;",      # fixture.switch
     "23 °C, 45 % relative humidity",                    # site
 ]
