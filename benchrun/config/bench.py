@@ -37,6 +37,11 @@ benches can share one results database (:func:`default_bench_id`).
 probe entry's ``channel_bandwidth`` for its input) give each channel's system rise time
 (:func:`system_rise_time`), recorded with every shot and behind the ``rise_time_limited`` flag.
 
+For the report's traceability (all optional): each probe's ``serial``; the fixture's
+``switch: {part: ..., serial: ...}`` (the switch that drives the diode); and ``site:
+{ambient_temperature: 23 degC, relative_humidity: 45 %}``, the lab's ambient as the lab states
+it, recorded in ``run.json`` as ``ambient`` (:meth:`SiteConditions.record`).
+
 The resource ``sim`` is a placeholder: ``benchrun demo`` and ``benchrun run`` resolve it to
 the matching instrument of an in-process simulated bench.
 """
