@@ -100,3 +100,14 @@ def fonts_not_embedded(pdf: Path) -> list[str]:
         return ["pdffonts gave no listing"]
     column = lines[0].index("emb")
     return [line.strip() for line in lines[2:] if line[column:column + 3] != "yes"]
+
+
+#: What the traceability and set-up tables must print for sequences/bench-sim.yaml (its probe
+#: serials and bandwidths, the switch under test, the lab's stated ambient) and the demo's
+#: operator: typed here from the bench file, not taken from the report's own content.
+BENCH_SIM_TRACEABILITY = [
+    "KPC-PRB-0451", "KPC-SHT-0207", "KPC-PRB-0452",     # probe serials
+    "400 MHz", "2 GHz",                                  # probe bandwidths
+    "switch SW-9100 (invented), serial SWS-0042;",      # fixture.switch
+    "23 °C, 45 % relative humidity",                    # site
+]

@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 from benchrun.analysis.pipeline import ChannelData, ProbeCalibration, analyze_channels
+from benchrun.config.bench import load_bench
 from benchrun.records import ShotResult, TestPoint
 from benchrun.store.raw import RawRecord
 from benchrun.store.results import ResultsStore
@@ -141,6 +142,9 @@ def build_run(tmp_path: Path, n_devices: int = 4, *, failing: tuple[int, ...] = 
         "thermal": _thermal(run_dir),
         "started": "2026-11-30T09:00:00+00:00", "finished": "2026-11-30T09:20:00+00:00",
         "software_version": "0.1.0",
+        # as the runner records them: --operator and the bench file's site block
+        "operator": "Q. Ashdown",
+        "ambient": load_bench(ROOT / "sequences" / "bench-sim.yaml").site.record(),
         "instruments": {
             "scope": {"idn": "BENCHRUN-SIM,SCOPE-8B,SN0001,1.0", "calibration_due": "2027-06-30"},
             "pulse": {"idn": "BENCHRUN-SIM,PULSE-2CH,SN0002,1.0"},

@@ -152,3 +152,38 @@ def test_bleeder_discharge_time(tmp_path):
     t = bench.fixture.discharge_time(600.0)
     assert t == pytest.approx(20e3 * 100e-6 * math.log(10.0))
     assert bench.fixture.discharge_time(50.0) == 0.0
+
+
+def test_probe_serial_switch_and_site_are_optional_and_parsed(tmp_path):
+    bench = load_bench(write(tmp_path, BENCH))
+    assert bench.site is None and bench.fixture.switch is None
+    assert bench.probes["diode_voltage"].serial is None
+    text = BENCH.replace("attenuation: 100}", "attenuation: 100, serial: PRB-7, "
+                         "bandwidth: 400 MHz}")
+    text = text.replace("  bleeder_resistance: 20 kohm\n", "  bleeder_resistance: 20 kohm\n"
+                        "  switch: {part: SW-1 (invented), serial: S-2}\n")
+    text += "site: {ambient_temperature: 23 degC, relative_humidity: 45 %}\n"
+    bench = load_bench(write(tmp_path, text))
+    assert bench.probes["diode_voltage"].serial == "PRB-7"
+    assert bench.probes["diode_voltage"].bandwidth == pytest.approx(400e6)
+    assert (bench.fixture.switch.part, bench.fixture.switch.serial) == ("SW-1 (invented)", "S-2")
+    # 23 degC = 296.15 K (SI brochure, 9th ed., 2.3.4: t/degC = T/K - 273.15)
+    assert bench.site.ambient_temperature == pytest.approx(296.15)
+    record = bench.site.record()
+    assert record["temperature_degC"] == pytest.approx(23.0)
+    assert record["relative_humidity_percent"] == pytest.approx(45.0)
+    assert "stated by the lab" in record["source"]
+
+
+@pytest.mark.parametrize("site", ["{ambient_temperature: 23}", "{relative_humidity: 45}",
+                                  "{relative_humidity: 120 %}", "{humidity: 45 %}"])
+def test_site_needs_units_and_sane_values(tmp_path, site):
+    with pytest.raises(ConfigError):
+        load_bench(write(tmp_path, BENCH + f"site: {site}\n"))
+
+
+def test_example_bench_names_probe_serials_switch_and_site():
+    bench = load_bench(ROOT / "sequences" / "bench-sim.yaml")
+    assert all(p.serial for p in bench.probes.values())
+    assert bench.fixture.switch is not None and bench.fixture.switch.part
+    assert bench.site is not None and bench.site.ambient_temperature is not None

@@ -28,6 +28,12 @@ def test_demo_end_to_end(tmp_path, capsys):
     si = next(r for r in runs if r.name.startswith("LT-0117"))
     manifest = json.loads((si / "run.json").read_text())
     assert manifest["status"] == "complete" and manifest["safe_state"]["reached"]
+    # the demo's invented operator and the bench file's stated ambient are recorded
+    from benchrun.commands.demo import DEMO_OPERATOR
+
+    assert manifest["operator"] == DEMO_OPERATOR
+    assert manifest["ambient"]["temperature_degC"] == pytest.approx(23.0)
+    assert manifest["ambient"]["relative_humidity_percent"] == pytest.approx(45.0)
     for name in ("raw.h5", "results.db", "run.log", "report.pdf", "limits.yaml"):
         assert (si / name).is_file(), name
 
@@ -58,6 +64,7 @@ def _check_pages(run_dir):
     if not (shutil.which("pdftotext") and shutil.which("pdffonts")):
         return
     from pdf_checks import (
+        BENCH_SIM_TRACEABILITY,
         expected_strings,
         fonts_not_embedded,
         missing_words,
@@ -76,5 +83,8 @@ def _check_pages(run_dir):
     content = build_content(run, lot, signer, run_sources(run))
     pdf = run_dir / "report.pdf"
     assert missing_words(pdf, expected_strings(content, lot)) == []
+    from benchrun.commands.demo import DEMO_OPERATOR
+
+    assert missing_words(pdf, [*BENCH_SIM_TRACEABILITY, DEMO_OPERATOR]) == []
     assert overlapping_words(pdf) == []
     assert fonts_not_embedded(pdf) == []

@@ -11,7 +11,13 @@ import shutil
 import subprocess
 
 import pytest
-from pdf_checks import expected_strings, fonts_not_embedded, missing_words, overlapping_words
+from pdf_checks import (
+    BENCH_SIM_TRACEABILITY,
+    expected_strings,
+    fonts_not_embedded,
+    missing_words,
+    overlapping_words,
+)
 from report_helpers import signed_run  # noqa: F401 - session fixture
 
 from benchrun.cli import main
@@ -80,6 +86,14 @@ def test_the_thermal_handling_is_stated(signed_run):  # noqa: F811
 
 def test_no_text_overlaps_other_text_or_leaves_the_page(signed_run):  # noqa: F811
     assert overlapping_words(signed_run.pdf) == []
+
+
+def test_operator_ambient_probe_serials_and_switch_are_printed(signed_run):  # noqa: F811
+    # typed from sequences/bench-sim.yaml and the run's manifest, not from the report content
+    assert missing_words(signed_run.pdf, [*BENCH_SIM_TRACEABILITY, "Q. Ashdown"]) == []
+    text = " ".join(_text(signed_run.pdf).split())
+    assert "bench file (site), as stated by the lab" in text
+    assert "switch not named" not in text
 
 
 def test_every_font_is_embedded(signed_run):  # noqa: F811

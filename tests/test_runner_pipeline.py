@@ -215,12 +215,13 @@ def test_durability_is_chosen_on_the_command_line_and_recorded(tmp_path, capsys)
     seq = write_sequence(tmp_path, devices="[SN0117-001]", temperatures="[25 degC]")
     out = tmp_path / "runs"
     code = cli.main(["run", str(seq), "--bench", str(BENCH), "--out", str(out),
-                     "--durability", "process", "--no-progress"])
+                     "--durability", "process", "--no-progress", "--operator", "R. Test"])
     assert code == 0, capsys.readouterr()
     import json
 
     manifest = json.loads((next(out.iterdir()) / "run.json").read_text())
     assert manifest["durability"] == "process"
+    assert manifest["operator"] == "R. Test"  # --operator is recorded as given
     with pytest.raises(SystemExit):
         cli.main(["run", str(seq), "--bench", str(BENCH), "--durability", "sometimes"])
 

@@ -78,11 +78,15 @@ def demo_signer(keys_dir: Path) -> tuple[Any, Path, str]:
     return load_signer(key, cert, passphrase, role=role), cert, how
 
 
+#: The invented operator the demo records (invented scenario, no real person).
+DEMO_OPERATOR = "A. Demo-Operator (invented)"
+
+
 def _run(sequence: Path, bench: Path, out: Path, progress: bool) -> RunOutcome:
     from benchrun.runner.execute import RunOptions
     from benchrun.runner.launch import run_on_bench
 
-    options = RunOptions(out_dir=out, show_progress=progress)
+    options = RunOptions(out_dir=out, show_progress=progress, operator=DEMO_OPERATOR)
     return run_on_bench(sequence, bench, options)
 
 

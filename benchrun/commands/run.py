@@ -56,6 +56,9 @@ def register(subparsers: Any) -> None:
                              "'power-loss' (default: synced to disk, survives a power cut) "
                              "or 'process' (handed to the operating system: survives the "
                              "program being killed, not a power cut or system crash)")
+    parser.add_argument("--operator", metavar="NAME", default=None,
+                        help="who runs the bench; recorded in run.json and printed in the "
+                             "report (default: not recorded)")
     parser.add_argument("--wrong-device", choices=("skip", "stop"), default="skip",
                         help="a device the handler reports as another part or lot: skip it "
                              "(default; recorded in run.json) or stop the run before "
@@ -122,6 +125,7 @@ def run(args: argparse.Namespace) -> int:
         show_progress=not args.no_progress and sys.stderr.isatty(),
         on_finish=print_outcome,
         db_outage_limit_s=_outage_limit(args.db_outage_limit),
+        operator=args.operator,
     )
     signer = signer_from_args(args) if wants_signing(args) else None
     if signer is not None:

@@ -37,6 +37,11 @@ benches can share one results database (:func:`default_bench_id`).
 probe entry's ``channel_bandwidth`` for its input) give each channel's system rise time
 (:func:`system_rise_time`), recorded with every shot and behind the ``rise_time_limited`` flag.
 
+For the report's traceability (all optional): each probe's ``serial``; the fixture's
+``switch: {part: ..., serial: ...}`` (the switch that drives the diode); and ``site:
+{ambient_temperature: 23 degC, relative_humidity: 45 %}``, the lab's ambient as the lab states
+it, recorded in ``run.json`` as ``ambient`` (:meth:`SiteConditions.record`).
+
 The resource ``sim`` is a placeholder: ``benchrun demo`` and ``benchrun run`` resolve it to
 the matching instrument of an in-process simulated bench.
 """
@@ -53,7 +58,7 @@ from typing import Literal
 
 from pydantic import Field, field_serializer, field_validator, model_validator
 
-from benchrun.config.explicit import ExplicitFraction, ExplicitTimeBound
+from benchrun.config.explicit import ExplicitFraction, ExplicitTimeBound, explicit
 from benchrun.config.loader import (
     Capacitance,
     Current,
@@ -191,6 +196,8 @@ class ProbeEntry(StrictModel):
     #: the channel); both optional (:func:`system_rise_time`).
     bandwidth: Frequency | None = Field(default=None, gt=0)
     channel_bandwidth: Frequency | None = Field(default=None, gt=0)
+    #: The probe's (or shunt's) serial number, printed in the report's traceability table.
+    serial: str | None = Field(default=None, min_length=1)
 
     @model_validator(mode="before")
     @classmethod
@@ -240,6 +247,19 @@ class ProbeEntry(StrictModel):
 ThermalResistance = quantity("thermal_resistance")
 
 
+class SwitchUnderTest(StrictModel):
+    """The switch that drives the diode in the fixture: its part number and serial number
+    (both optional; printed in the report's test set-up table)."""
+
+    part: str | None = Field(default=None, min_length=1)
+    serial: str | None = Field(default=None, min_length=1)
+
+    def describe(self) -> str:
+        """``"SW-9100, serial SWS-0042"``; what is not stated reads "not stated"."""
+        return (f"{self.part or 'part not stated'}, "
+                f"serial {self.serial or 'not stated'}")
+
+
 class FixtureSpec(StrictModel):
     """The double-pulse fixture: load inductor, loop, bus capacitor and its bleeder."""
 
@@ -260,6 +280,8 @@ class FixtureSpec(StrictModel):
     swap_dwell: Time | None = Field(default=None, ge=0)
     #: where the thermal controller's sensor sits: the temperature plate or the device case
     temperature_sensor: Literal["plate", "case"] = "plate"
+    #: the switch under test (the device that drives the diode), for the report
+    switch: SwitchUnderTest | None = None
 
     def discharge_time(self, from_V: float, to_V: float = TOUCH_SAFE_V) -> float:
         """Time for the bleeder to bring the bus from ``from_V`` to ``to_V`` (RC decay).
@@ -281,6 +303,28 @@ class SafetyLimits(StrictModel):
     max_capacitor_energy: Energy = Field(gt=0)
     touch_safe_voltage: Voltage = Field(default=TOUCH_SAFE_V, gt=0, le=TOUCH_SAFE_V)
     discharge_timeout: Time = Field(default=30.0, gt=0)
+
+
+_AmbientTemperature = explicit("temperature")
+_Relative = explicit("dimensionless")
+
+
+class SiteConditions(StrictModel):
+    """``site:`` block: the ambient conditions of the lab as the lab states them (optional;
+    recorded in ``run.json`` as ``ambient`` and printed in the report). Values carry their
+    units: ``ambient_temperature: 23 degC``, ``relative_humidity: 45 %``."""
+
+    ambient_temperature: _AmbientTemperature | None = Field(default=None, gt=0)
+    relative_humidity: _Relative | None = Field(default=None, ge=0, le=1)
+
+    def record(self) -> dict[str, object]:
+        """The ``ambient`` entry of ``run.json``: °C, % and where the values came from."""
+        out: dict[str, object] = {"source": "bench file (site), as stated by the lab"}
+        if self.ambient_temperature is not None:
+            out["temperature_degC"] = round(self.ambient_temperature - 273.15, 6)
+        if self.relative_humidity is not None:
+            out["relative_humidity_percent"] = round(self.relative_humidity * 100, 6)
+        return out
 
 
 class CalibrationPolicy(StrictModel):
@@ -318,6 +362,8 @@ class BenchConfig(StrictModel):
     fixture: FixtureSpec
     safety: SafetyLimits
     calibration: CalibrationPolicy = CalibrationPolicy()
+    #: ambient conditions of the lab as stated (optional)
+    site: SiteConditions | None = None
 
     @field_validator("probes")
     @classmethod

@@ -206,6 +206,10 @@ def _switch_text(bench: Any, sequence: Any) -> str:
     parts = []
     fixture = getattr(bench, "fixture", None)
     named = _get(fixture, "switch", "switch_part", "switch_device") if fixture else None
+    if isinstance(named, dict) or hasattr(named, "part"):
+        part, serial = _get(named, "part"), _get(named, "serial")
+        named = (f"{part or 'part not stated'}, serial {serial or 'not stated'}"
+                 if part or serial else None)
     parts.append(f"switch {named}" if named else "switch not named in the bench file")
     on = getattr(fixture, "switch_on_voltage", None) if fixture else None
     if on is not None:
@@ -259,15 +263,31 @@ def traceability_table(run: Any, bench: Any) -> list[list[str]]:
     return rows
 
 
+def ambient_text(ambient: Any) -> str | None:
+    """``"23 °C, 45 % relative humidity (bench file (site), as stated by the lab)"``."""
+    if not isinstance(ambient, dict):
+        return ambient
+    parts = []
+    if ambient.get("temperature_degC") is not None:
+        parts.append(f"{compact(float(ambient['temperature_degC']))} °C")
+    if ambient.get("relative_humidity_percent") is not None:
+        parts.append(f"{compact(float(ambient['relative_humidity_percent']))} % "
+                     "relative humidity")
+    parts += [f"{k} {v}" for k, v in ambient.items()
+              if k not in ("temperature_degC", "relative_humidity_percent", "source")]
+    if not parts:
+        return None
+    source = ambient.get("source")
+    return ", ".join(parts) + (f" ({source})" if source else "")
+
+
 def record_table(run: Any, sequence: Any, limits: Any, manifest_entries: Iterable[dict],
                  software_version: str, code_sha256: str, signer_fingerprint: str,
                  run_window: str) -> list[list[str]]:
     """Who, where, under which procedure, limits revision and software the run was made."""
     manifest = run.manifest or {}
     hashes = {m.get("name"): m.get("sha256") for m in manifest_entries}
-    ambient = manifest.get("ambient")
-    if isinstance(ambient, dict):
-        ambient = ", ".join(f"{k} {v}" for k, v in ambient.items())
+    ambient = ambient_text(manifest.get("ambient"))
     procedure = manifest.get("procedure") or (getattr(sequence, "name", "") or "")
     limits_revision = getattr(limits, "revision", None) or manifest.get("limits_revision")
     return [

@@ -143,7 +143,7 @@ def _traceability_pages(content: ReportContent, w: float) -> list[Flowable]:
                        "and probes, with their calibration as the bench file records it.",
                        "small"))
     story.append(sec.simple_table(content.instruments_table,
-                                  [26 * mm, 46 * mm, 20 * mm, 20 * mm, 26 * mm, w - 138 * mm]))
+                                  [26 * mm, 40 * mm, 26 * mm, 20 * mm, 26 * mm, w - 138 * mm]))
     story.append(sec.P("Run record", "h3"))
     story.append(sec.simple_table(content.record_table, [52 * mm, w - 52 * mm]))
     story.append(sec.P("Fixture", "h3"))

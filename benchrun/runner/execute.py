@@ -142,6 +142,8 @@ class RunOptions:
     #: first and longest wait between reconnection attempts (runner/journal.py)
     db_outage_limit_s: float = DEFAULT_OUTAGE_LIMIT_S
     db_backoff_s: tuple[float, float] = (BACKOFF_INITIAL_S, BACKOFF_MAX_S)
+    #: who runs the bench (recorded in ``run.json`` as ``operator``; None: not recorded)
+    operator: str | None = None
 
     def outage_settings(self) -> dict[str, float]:
         """Keyword arguments of :class:`~benchrun.runner.journal.JournaledStore`."""
@@ -324,6 +326,10 @@ def _open_run_folder(prep: PreparedRun, options: RunOptions
     }
     if options.db_url:
         manifest["store_url"] = options.db_url
+    if options.operator and options.operator.strip():
+        manifest["operator"] = options.operator.strip()
+    if prep.bench.site is not None:
+        manifest["ambient"] = prep.bench.site.record()
     write_manifest(run_dir, manifest)
     return run_id, run_dir, manifest, False
 
