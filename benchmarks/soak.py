@@ -3,15 +3,16 @@
 Runs one long sequence (one device, 25 degC, test points of at most 1,000 repeats, shot
 spacing 0) on the simulated bench and prints the runner process's resident set size (RSS, from
 ``/proc/self/statm``) after every 1,000 stored shots, with the growth per shot over the run
-after a warm-up of the first 2,000 shots (caches, allocator pools and the preallocated
-raw-record slots fill first). The simulated bench runs in a separate process (as real
-instruments are separate machines), so its memory does not count; ``--in-process`` runs it in
-the runner's process, as ``benchrun run`` starts it for ``sim`` resources, and counts it. Its
-circuit solution is cached per condition, so the repeats cost only digitising, transfer,
-storing and analysis: the work the runner repeats for every shot. Captures carry the
-simulator's noise (un-quantised noise before 8-bit quantisation); the gate resistance
-alternates between 10 and 12 ohm from one test point to the next, so the pulse settings, the
-trim and the circuit solution change during the run as well (``--vary 0`` keeps one).
+after a warm-up of the first 2,000 shots (caches, allocator pools and the preallocated raw-
+record slots fill first) and over the last half of the run. The simulated bench runs in a
+separate process (as real instruments are separate machines), so its memory does not count;
+``--in-process`` runs it in the runner's process, as ``benchrun run`` starts it for ``sim``
+resources, and counts it. Its circuit solution is cached per condition, so the repeats cost
+only digitising, transfer, storing and analysis: the work the runner repeats for every shot.
+Captures carry the simulator's noise (un-quantised noise before 8-bit quantisation); the gate
+resistance alternates between 10 and 12 ohm from one test point to the next, so the pulse
+settings, the trim and the circuit solution change during the run as well (``--vary 0`` keeps
+one).
 
 ``--trace`` also prints the ten allocation sites of what was allocated after the warm-up and
 is still alive at the end of the run (``tracemalloc`` from the warm-up on; slower).
@@ -75,6 +76,20 @@ def rss_kib() -> float:
     with open("/proc/self/statm") as fh:
         pages = int(fh.read().split()[1])
     return pages * os.sysconf("SC_PAGE_SIZE") / 1024.0
+
+
+def last_half_growth(rows: list[tuple[int, float]]
+                     ) -> tuple[tuple[int, float], tuple[int, float], float] | None:
+    """The first and last ``(shots, RSS kB)`` sample of the last half of the run and the
+    growth between them in kB per shot; None with fewer than two samples in that half."""
+    if not rows:
+        return None
+    middle = rows[-1][0] / 2
+    half = [row for row in rows if row[0] >= middle]
+    if len(half) < 2:
+        return None
+    (n0, r0), (n1, r1) = half[0], half[-1]
+    return (n0, r0), (n1, r1), (r1 - r0) / (n1 - n0)
 
 
 def _serve(seq_path: str, conn, stop) -> None:
@@ -178,6 +193,11 @@ def main() -> int:
               f"shots = {per_shot * 1024:+.0f} bytes per shot")
         print(f"goal < {GOAL_KB_PER_SHOT * 1024:.0f} bytes per shot: "
               f"{'met' if per_shot < GOAL_KB_PER_SHOT else 'NOT met'}")
+    half = last_half_growth([(n, rss) for n, rss, _ in rows])
+    if half is not None:
+        (n0, r0), (n1, r1), per_shot = half
+        print(f"RSS growth over the last half ({n0} to {n1} shots): {(r1 - r0) / 1024:+.2f} MB "
+              f"= {per_shot * 1024:+.0f} bytes per shot")
     return 0
 
 
