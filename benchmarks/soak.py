@@ -3,8 +3,8 @@
 Runs one long sequence (one device, 25 degC, test points of at most 1,000 repeats, shot
 spacing 0) on the simulated bench and prints the runner process's resident set size (RSS, from
 ``/proc/self/statm``) after every 1,000 stored shots, with the growth per shot over the run
-after a warm-up of the first 2,000 shots (caches, allocator pools and the preallocated raw-
-record slots fill first) and over the last half of the run. The simulated bench runs in a
+after a warm-up of the first 2,000 shots (caches, allocator pools and the preallocated
+raw-record slots fill first) and over the last half of the run. The simulated bench runs in a
 separate process (as real instruments are separate machines), so its memory does not count;
 ``--in-process`` runs it in the runner's process, as ``benchrun run`` starts it for ``sim``
 resources, and counts it. Its circuit solution is cached per condition, so the repeats cost
