@@ -9,6 +9,7 @@ ta and tb) is common practice (benchrun.analysis.quality).
 from __future__ import annotations
 
 import math
+import re
 
 import pytest
 from test_runner_run import run_sim
@@ -20,8 +21,19 @@ from benchrun.runner.shots import probes_for
 from benchrun.store.rundata import load_run
 
 
+def _without_bandwidths(text: str) -> str:
+    """The example bench file with its stated probe bandwidths taken out."""
+    return re.sub(r"\s*\bbandwidth: [0-9.]+ [A-Za-z]+,?", "", text)
+
+
+def _plain_bench(tmp_path):
+    path = tmp_path / "plain-bench.yaml"
+    path.write_text(_without_bandwidths(BENCH.read_text()))
+    return path
+
+
 def _bench_with(tmp_path, current_probe_extra: str = "", scope_extra: str = ""):
-    text = BENCH.read_text()
+    text = _without_bandwidths(BENCH.read_text())
     old = "resistance: 10 mohm, deskew: 0 ns,"
     assert old in text
     text = text.replace(old, f"resistance: 10 mohm, deskew: 0 ns,{current_probe_extra}")
@@ -50,7 +62,7 @@ def test_channel_bandwidth_overrides_the_scope_and_none_stays_none(tmp_path):
                                    "bandwidth: 1 GHz,"))
     k = math.log(9.0) / (2.0 * math.pi)
     assert system_rise_time(bench, "diode_current") == pytest.approx(k / 20e6)
-    plain = load_bench(BENCH)
+    plain = load_bench(_plain_bench(tmp_path))
     assert system_rise_time(plain, "diode_current") is None
     assert probes_for(plain)["diode_current"].rise_time_s is None
 
