@@ -177,22 +177,11 @@ def _bench(seq_path: Path, fresh: bool, in_process: bool, last_done):
             _instrument_bench(sim.bench, fresh, last_done)
             yield sim.resources, sim.clock
         return
-    ctx = multiprocessing.get_context("spawn")
-    parent, child = ctx.Pipe()
-    stop = ctx.Event()
-    proc = ctx.Process(target=_serve, args=(str(seq_path), fresh, last_done, child, stop),
-                       daemon=True)
-    proc.start()
-    try:
-        if not parent.poll(60):
-            raise RuntimeError("the simulated bench process did not start")
-        resources, t0, speedup = parent.recv()
-        from benchrun.runner.simbench import RemoteClock
+    from benchrun.runner.simbench import bench_in_child_process
 
-        yield resources, RemoteClock(t0, speedup)
-    finally:
-        stop.set()
-        proc.join(10)
+    with bench_in_child_process(_serve, (str(seq_path), fresh, last_done),
+                                start_timeout_s=60) as (resources, clock):
+        yield resources, clock
 
 
 def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None

@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import argparse
 import contextlib
-import multiprocessing
 import os
 import sys
 import tempfile
@@ -111,22 +110,10 @@ def _bench(seq_path: Path, in_process: bool = False):
         with simulated_bench(load_bench(BENCH_PATH), load_sequence(seq_path)) as sim:
             yield sim.resources, sim.clock
         return
-    ctx = multiprocessing.get_context("spawn")
-    parent, child = ctx.Pipe()
-    stop = ctx.Event()
-    proc = ctx.Process(target=_serve, args=(str(seq_path), child, stop), daemon=True)
-    proc.start()
-    child.close()
-    try:
-        if not parent.poll(120):
-            raise RuntimeError("the simulated bench did not start")
-        resources, t0, speedup = parent.recv()
-        from benchrun.runner.simbench import RemoteClock
+    from benchrun.runner.simbench import bench_in_child_process
 
-        yield resources, RemoteClock(t0, speedup)
-    finally:
-        stop.set()
-        proc.join(timeout=10)
+    with bench_in_child_process(_serve, (str(seq_path),)) as (resources, clock):
+        yield resources, clock
 
 
 def main() -> int:

@@ -58,6 +58,32 @@ class RemoteClock:
             time.sleep(seconds / self.speedup)
 
 
+@contextlib.contextmanager
+def bench_in_child_process(target: Any, args: tuple, start_timeout_s: float = 120.0
+                           ) -> Iterator[tuple[dict[str, str], RemoteClock]]:
+    """Run a simulated bench in a spawned child process and yield ``(resources, clock)``.
+
+    ``target(*args, conn, stop)`` must start the bench, send ``(resources, t0, speedup)``
+    through ``conn`` and wait on ``stop``; the child is stopped when the block ends.
+    """
+    import multiprocessing
+
+    ctx = multiprocessing.get_context("spawn")
+    parent, child = ctx.Pipe()
+    stop = ctx.Event()
+    proc = ctx.Process(target=target, args=(*args, child, stop), daemon=True)
+    proc.start()
+    child.close()
+    try:
+        if not parent.poll(start_timeout_s):
+            raise RuntimeError("the simulated bench process did not start")
+        resources, t0, speedup = parent.recv()
+        yield resources, RemoteClock(t0, speedup)
+    finally:
+        stop.set()
+        proc.join(10)
+
+
 @dataclass
 class SimulatedSetup:
     """A running simulated bench and what the runner needs from it."""
