@@ -53,6 +53,9 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--lot", metavar="LOT", help="grade every run of this lot in the "
                         "store as one lot (retest rule: the latest complete test of each "
                         "device counts)")
+    parser.add_argument("--runs", action="append", default=[], type=path_arg, metavar="DIR",
+                        help="with --lot: a folder holding run folders that are not where "
+                             "the store records them (repeat for several)")
     parser.add_argument("--json", action="store_true", help="print the grades as JSON")
     parser.set_defaults(func=run)
 
@@ -94,31 +97,17 @@ def run(args: argparse.Namespace) -> int:
 
 def _run_lot(args: argparse.Namespace) -> int:
     """``grade RESULTS --lot LOT``: every run of the lot in the store, graded as one lot."""
-    from benchrun.grading.across import lot_instrument_inputs
-    from benchrun.store.canonical import canonical_json as canonical
-    from benchrun.store.lotdata import RETEST_RULE, load_lot
+    from benchrun.grading.across import grade_across
+    from benchrun.store.lotdata import RETEST_RULE, counted_runs, load_lot, locate_lot_folders
 
-    lot_data = load_lot(args.results, args.lot)
+    lot_data, _ = locate_lot_folders(load_lot(args.results, args.lot), args.runs)
     if lot_data.pending:
         print(f"warning: {len(lot_data.pending)} shot(s) of lot {args.lot} were recorded but "
               "not analysed and are left out; 'benchrun run ... --resume' completes them",
               file=sys.stderr)
-    counted = [r for r in lot_data.runs if r.run_id in set(lot_data.device_runs.values())]
-    if args.limits:
-        limits, path = load_limits(Path(args.limits)), Path(args.limits)
-    else:
-        limits, path = _limits_for(args, counted[-1])
-    if args.bench:
-        inputs: Any = load_bench(args.bench)
-    else:
-        inputs = lot_instrument_inputs(
-            [(lot_data.bench_of(r.run_id) or r.run_id, run_bench(r)) for r in counted])
-    options = {canonical(r.manifest.get("analysis_options")) for r in counted}
-    if len(options) > 1:
-        raise GradingError(f"the runs of lot {args.lot} were analysed with different analysis "
-                           "options; grade them one run at a time")
-    lot = grade_lot(lot_data.shots, limits, bench=inputs,
-                    analysis_options=counted[-1].manifest.get("analysis_options"))
+    graded = grade_across(counted_runs(lot_data), lot_data.shots, limits_path=args.limits,
+                          bench_path=args.bench, lot=args.lot)
+    lot, path = graded.grade, graded.limits_path
     if args.json:
         payload = {"lot_runs": lot_data.to_dict(), "limits_file": str(path), **lot.to_dict()}
         print(json.dumps(payload, indent=2, sort_keys=True, ensure_ascii=False))

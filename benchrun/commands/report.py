@@ -32,6 +32,12 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--fsw", action="append", default=None, metavar="FREQ",
                         help="switching frequency for the loss section, e.g. 20kHz (repeat "
                              "for several; default: those the sequence names)")
+    parser.add_argument("--lot", default=None, metavar="LOT",
+                        help="report every run of this lot in the store as one lot (retest "
+                             "rule: the latest complete test of each device counts)")
+    parser.add_argument("--runs", action="append", default=[], type=path_arg, metavar="DIR",
+                        help="with --lot: a folder holding run folders that are not where "
+                             "the store records them (repeat for several)")
     parser.set_defaults(func=run)
 
 
@@ -124,6 +130,12 @@ def run(args: argparse.Namespace) -> int:
     freqs = None
     if args.fsw:
         freqs = [positive_frequency(text) for text in args.fsw]
+    if getattr(args, "lot", None):
+        return _run_lot(args, freqs)
+    if getattr(args, "runs", None):
+        from benchrun.errors import ReportError
+
+        raise ReportError("--runs names run folders of a lot: use it with --lot LOT")
     signer = signer_from_args(args)
     published = publish_report(args.results, signer, run_id=args.run_id,
                                limits_path=args.limits, out_pdf=args.pdf,
@@ -134,5 +146,39 @@ def run(args: argparse.Namespace) -> int:
         print(warning, file=sys.stderr)
     print_lot(published.lot)
     print(f"limits   {published.limits_path}")
+    print(f"report   {published.path} (signed)")
+    return 0
+
+
+def _run_lot(args: argparse.Namespace, freqs: list[float] | None) -> int:
+    """``report RESULTS --lot LOT``: every run of the lot in the store, one signed report."""
+    from benchrun.errors import ReportError
+    from benchrun.report.publish import publish_lot_report
+    from benchrun.store.lotdata import RETEST_RULE
+
+    if args.run_id is not None:
+        raise ReportError("give either --lot (every run of the lot) or --run-id, not both")
+    if args.limits is not None:
+        raise ReportError("a lot report grades against the limits.yaml of the newest run that "
+                          "counts (its hash is in the report); to see the lot against another "
+                          "file use 'benchrun grade RESULTS --lot LOT --limits FILE'")
+    signer = signer_from_args(args)
+    published = publish_lot_report(args.results, args.lot, signer, runs=tuple(args.runs),
+                                   out_pdf=args.pdf, switching_frequencies_Hz=freqs)
+    lot_data = published.lot_data
+    if lot_data.pending:
+        print(f"warning: {len(lot_data.pending)} shot(s) of lot {args.lot} were recorded but "
+              "not analysed and are left out; 'benchrun run ... --resume' completes them",
+              file=sys.stderr)
+    print_lot(published.lot)
+    for folder in published.folders:
+        print(f"  {folder.describe()}")
+    print(f"retest rule: {RETEST_RULE}")
+    for item in lot_data.superseded:
+        print(f"  superseded: {item.serial} in run {item.run_id} (bench "
+              f"{item.bench_id or 'not recorded'}), replaced by run {item.replaced_by}")
+    limits = published.graded
+    print(f"limits   {limits.limits_path}"
+          + (f" (run {limits.limits_run_id})" if limits.limits_run_id else ""))
     print(f"report   {published.path} (signed)")
     return 0

@@ -7,6 +7,12 @@ the stored raw waveforms reproduces every metric, grade and the disposition in t
 the results store's row of the report matches the signed file. The signer certificate's
 SHA-256 fingerprint is printed in full.
 The exit code is 0 only when every check holds, 1 otherwise.
+
+A lot report (``benchrun report RESULTS --lot LOT``) names every run of the lot: each is looked
+up in the results store the report names (or --store URL), and its run folder is the one the
+store records, else one found under a folder given with --runs DIR (repeatable; the folder
+itself, DIR/<run id>, or up to three levels down). The output lists which runs were checked
+and which could not be found; a run not found is a failed check.
 """
 
 from __future__ import annotations
@@ -28,6 +34,12 @@ def register(subparsers: Any) -> None:
                         help="the signer's certificate to trust")
     parser.add_argument("--data", metavar="RUN_DIR", type=path_arg,
                         help="run folder with the raw record (default: the report's folder)")
+    parser.add_argument("--runs", action="append", default=[], type=path_arg, metavar="DIR",
+                        help="folder holding run folders that are not where the store "
+                             "records them (a lot report's runs; repeat for several)")
+    parser.add_argument("--store", metavar="URL", default=None,
+                        help="lot report: the results store holding its runs (default: the "
+                             "one the report names)")
     parser.add_argument("--json", action="store_true", help="print the result as JSON")
     parser.add_argument("--details", action="store_true", help="list every hash and finding")
     parser.set_defaults(func=run)
@@ -36,11 +48,18 @@ def register(subparsers: Any) -> None:
 def run(args: argparse.Namespace) -> int:
     from benchrun.report.verify import verify_report
 
-    result = verify_report(args.report, cert=args.cert, data=args.data)
+    result = verify_report(args.report, cert=args.cert, data=args.data, store=args.store,
+                           runs=tuple(args.runs))
     if args.json:
         print(json.dumps(result.to_dict(), indent=2, ensure_ascii=False))
     else:
         print(f"Report {result.report}" + (f" ({result.report_id})" if result.report_id else ""))
+        runs = result.facts.get("runs") or []
+        if result.facts.get("kind") == "lot":
+            print(f"  Runs of lot {result.facts.get('lot')}: {len(runs)}")
+            for item in runs:
+                state = "checked  " if item["found"] else "NOT FOUND"
+                print(f"    {state} {item['line']}")
         for check in result.checks:
             print(f"  {'yes' if check.ok else 'NO '}  {check.name}: {check.reason}")
             if args.details or not check.ok:

@@ -157,6 +157,15 @@ class ReportContent:
     column_units: dict[str, tuple[float, str]] = field(default_factory=dict)
     budget_tables: list[tuple[str, list[list[str]]]] = field(default_factory=list)
     code_sha256: str = ""
+    # a lot tested in several runs (empty for the report of one run): benchrun.report.facts_lot
+    lot_runs: list[dict[str, Any]] = field(default_factory=list)
+    lot_runs_table: list[list[str]] = field(default_factory=list)
+    retest_rule: str = ""
+    superseded: list[dict[str, Any]] = field(default_factory=list)
+    superseded_table: list[list[str]] = field(default_factory=list)
+    run_instruments: list[tuple[str, list[list[str]]]] = field(default_factory=list)
+    store_url: str = ""
+    limits_run_id: str | None = None
 
 
 def new_report_id(run_id: str, when: _dt.datetime) -> str:
@@ -203,4 +212,19 @@ def attachment_dict(content: ReportContent) -> dict[str, Any]:
         ],
         "lot_grade": content.lot_grade,
         "manifest": content.manifest,
+        **(_lot_attachment(content) if content.lot_runs else {}),
+    }
+
+
+def _lot_attachment(content: ReportContent) -> dict[str, Any]:
+    """The keys a lot report adds (``kind: lot``): its runs (bench, status, devices counted,
+    manifest entries), the retest rule, the superseded tests, the store and the run whose
+    limits file was graded against."""
+    return {
+        "kind": "lot",
+        "lot_runs": content.lot_runs,
+        "retest_rule": content.retest_rule,
+        "superseded": content.superseded,
+        "store_url": content.store_url,
+        "limits_run_id": content.limits_run_id,
     }

@@ -65,6 +65,52 @@ def _pair_figures(figures: list[Any], width: float) -> list[Flowable]:
     return out
 
 
+def _run_line(content: ReportContent) -> tuple[str, str]:
+    """The cover's run line: the run, or for a lot tested in several runs how many, on
+    which benches (every run is listed in section 2)."""
+    window = f" ({content.run_window})" if content.run_window else ""
+    if not content.lot_runs:
+        return "Run", content.run_id + window
+    benches = sorted({str(r.get("bench_id") or "not recorded") for r in content.lot_runs})
+    return ("Runs", f"{len(content.lot_runs)} runs on {len(benches)} bench(es): "
+                    f"{', '.join(benches)}{window}; every run is listed in section 2")
+
+
+def _verify_hint(content: ReportContent) -> str:
+    if not content.lot_runs:
+        return "Check it with 'benchrun verify REPORT.pdf --cert SIGNER_CERT --data RUN_FOLDER'."
+    return ("Check it with 'benchrun verify REPORT.pdf --cert SIGNER_CERT': the runs are found "
+            "through the results store; name folders holding run folders that moved with "
+            "--runs DIR (repeatable).")
+
+
+def _lot_runs_pages(content: ReportContent, w: float) -> list[Flowable]:
+    """A lot tested in several runs: the runs, the retest rule and the superseded tests."""
+    story = [sec.P("Runs of the lot", "h3"),
+             sec.P("Every run of the lot in the results store, with the bench that made it "
+                   "and the devices whose shots count from it.", "small"),
+             sec.simple_table(content.lot_runs_table,
+                              [46 * mm, 20 * mm, 16 * mm, 40 * mm, 18 * mm, 28 * mm,
+                               w - 168 * mm]),
+             sec.P("Retest rule", "h3"),
+             sec.P(f"Retest rule: {content.retest_rule}.", "body")]
+    if content.superseded_table:
+        story.append(sec.keep(
+            sec.P("Superseded tests (kept in the store, not graded)", "h4"),
+            sec.simple_table(content.superseded_table,
+                             [22 * mm, 52 * mm, 22 * mm, 12 * mm, w - 108 * mm])))
+    else:
+        story.append(sec.P("No device was tested more than once.", "small"))
+    story.append(sec.P("Instruments per run", "h3"))
+    story.append(sec.P("Instruments (identity as reported by the instrument, IEEE 488.2 "
+                       "*IDN?) and probes of each run, with their calibration as that run's "
+                       "bench file records it.", "small"))
+    for title, rows in content.run_instruments:
+        story.append(sec.keep(sec.P(title, "h4"), sec.simple_table(
+            rows, [26 * mm, 40 * mm, 26 * mm, 20 * mm, 26 * mm, w - 138 * mm])))
+    return story
+
+
 def _cover(content: ReportContent, signature_slot: Flowable, width: float) -> list[Flowable]:
     counts = content.counts
     story: list[Flowable] = [
@@ -76,8 +122,7 @@ def _cover(content: ReportContent, signature_slot: Flowable, width: float) -> li
                 ("Lot", content.lot),
                 ("Report identifier", content.report_id),
                 ("Date of issue (UTC)", content.generated_utc),
-                ("Run", content.run_id + (f" ({content.run_window})" if content.run_window
-                                          else "")),
+                _run_line(content),
                 ("Software", f"benchrun {content.software_version}"),
                 ("Signer", ", ".join(x for x in (content.signer_name, content.signer_role,
                                                  content.signer_organisation) if x)),
@@ -106,7 +151,7 @@ def _cover(content: ReportContent, signature_slot: Flowable, width: float) -> li
         sec.P("Approval", "h3"),
         sec.P("The signature below is a PAdES digital signature over this whole file, including "
               "the embedded data file 'benchrun-report.json' that holds every number shown here. "
-              "Check it with 'benchrun verify REPORT.pdf --cert SIGNER_CERT --data RUN_FOLDER'.",
+              + _verify_hint(content),
               "small"),
         sec.spacer(2),
         signature_slot,
@@ -138,6 +183,14 @@ def _conditions_pages(content: ReportContent, w: float) -> list[Flowable]:
 
 
 def _traceability_pages(content: ReportContent, w: float) -> list[Flowable]:
+    if content.lot_runs:
+        story = sec.section("2  Traceability: benches, runs, people, files and software")
+        story += _lot_runs_pages(content, w)
+        story.append(sec.P("Run record", "h3"))
+        story.append(sec.simple_table(content.record_table, [52 * mm, w - 52 * mm]))
+        story.append(sec.P("Fixtures", "h3"))
+        story.append(sec.simple_table(content.fixture_table, [52 * mm, w - 52 * mm]))
+        return story
     story = sec.section("2  Traceability: bench, people, files and software")
     story.append(sec.P("Instruments (identity as reported by the instrument, IEEE 488.2 *IDN?) "
                        "and probes, with their calibration as the bench file records it.",
@@ -269,8 +322,10 @@ def build_story(
         story.append(sec.P(f"• {text}", "small"))
     story += sec.section("Manifest (SHA-256)")
     story.append(sec.P(
-        "Hashes of the data this report rests on (FIPS 180-4 SHA-256): the run's files, its "
-        "result rows and its row of the runs table.", "small"))
+        "Hashes of the data this report rests on (FIPS 180-4 SHA-256): " + (
+            "each run's files (named run id/file), its result rows and its row of the runs "
+            "table." if content.lot_runs else
+            "the run's files, its result rows and its row of the runs table."), "small"))
     rows = [["Item", "Kind", "Size", "SHA-256"]]
     rows += [[m["name"], m["kind"], "" if m.get("size") is None else str(m["size"]),
               m["sha256"]] for m in content.manifest]

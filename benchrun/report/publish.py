@@ -101,6 +101,97 @@ def publish_report(
                            limits_path=Path(limits_path))
 
 
+@dataclass(frozen=True)
+class PublishedLotReport:
+    """What :func:`publish_lot_report` made.
+
+    Attributes
+    ----------
+    lot_data
+        The :class:`~benchrun.store.lotdata.LotData` with each run's folder as found.
+    folders
+        Where each run's folder was found (:class:`~benchrun.store.lotdata.RunFolder`).
+    graded
+        The :class:`~benchrun.grading.across.LotAcross` (``.grade`` is the ``LotGrade``).
+    loss
+        The loss table, or ``None``.
+    path
+        The signed PDF.
+    """
+
+    lot_data: Any
+    folders: list[Any]
+    graded: Any
+    loss: Any
+    path: Path
+
+    @property
+    def lot(self) -> Any:
+        return self.graded.grade
+
+
+def publish_lot_report(
+    source: str | Path,
+    lot: str,
+    signer: Any,
+    *,
+    runs: tuple[str | Path, ...] | list[str | Path] = (),
+    out_pdf: str | Path | None = None,
+    switching_frequencies_Hz: list[float] | None = None,
+) -> PublishedLotReport:
+    """Grade every run of ``lot`` in the store behind ``source`` as one lot and render its
+    signed acceptance report.
+
+    Each device's shots come from the run the retest rule picks
+    (:data:`benchrun.store.lotdata.RETEST_RULE`); the limits are those of the newest run
+    that counts and the budgets take the largest accuracy bound of the benches involved
+    (:func:`benchrun.grading.across.grade_across`). Every run folder of the lot must be found
+    (where the store records it, else under one of ``runs``): the report's manifest hashes
+    each run's raw record, configuration files and rows.
+
+    Parameters
+    ----------
+    source
+        Results database URL, SQLite file, or a run folder whose store is meant.
+    runs
+        Folders to search for run folders that are not where the store records them.
+    out_pdf
+        Where to write the report; default ``report-<lot>.pdf`` in the current folder.
+
+    Raises
+    ------
+    ReportError
+        A run folder of the lot was not found (each one is named with where it was made).
+    StoreError, GradingError
+        No run of that lot, or it cannot be graded.
+    """
+    from benchrun.grading.across import grade_across
+    from benchrun.loss import capacitive_parts_of, estimate_losses, rejected_devices
+    from benchrun.report.lot_sources import lot_view
+    from benchrun.report.render import render_lot_report
+    from benchrun.store.lotdata import counted_runs, load_lot, locate_lot_folders
+
+    lot_data, folders = locate_lot_folders(load_lot(source, lot), runs)
+    missing = [f for f in folders if not f.found]
+    if missing:
+        raise ReportError(f"lot {lot}: " + "; ".join(f.describe() for f in missing))
+    counted = counted_runs(lot_data)
+    graded = grade_across(counted, lot_data.shots, lot=lot)
+    view, sources, facts = lot_view(lot_data, limits=graded.limits,
+                                    limits_run_id=graded.limits_run_id)
+    freqs = switching_frequencies_Hz
+    if freqs is None:
+        freqs = list(view.manifest.get("switching_frequencies_Hz") or [])
+    loss = estimate_losses(view.shots, freqs,
+                           capacitive_parts=capacitive_parts_of(view.manifest),
+                           rejected=rejected_devices(graded.grade)) if freqs else None
+    out = Path(out_pdf) if out_pdf is not None else Path(f"report-{lot}.pdf")
+    path = render_lot_report(view, graded.grade, out, signer=signer, sources=sources,
+                             lot_sources=facts, loss=loss)
+    return PublishedLotReport(lot_data=lot_data, folders=folders, graded=graded, loss=loss,
+                              path=Path(path))
+
+
 def load_signer_from_files(
     *, key: str | Path | None, cert: str | Path | None, p12: str | Path | None,
     role: str | None = None, passphrase: str | None = None,

@@ -29,6 +29,8 @@ def register_report(url: str, content: ReportContent, path: Path, sha256: str) -
                 "counts": dict(content.counts),
                 "manifest": list(content.manifest),
                 "reasons": list(content.disposition_reasons),
+                **({"kind": "lot", "run_ids": [r["run_id"] for r in content.lot_runs]}
+                   if content.lot_runs else {}),
             },
         )
 

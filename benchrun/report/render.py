@@ -84,6 +84,40 @@ def render_report(run: Any, lot: Any, out_pdf: str | Path, *, signer: ReportSign
     return path
 
 
+def render_lot_report(view: Any, lot: Any, out_pdf: str | Path, *, signer: ReportSigner,
+                      sources: Any, lot_sources: Any, loss: Any = None) -> Path:
+    """Render and sign the acceptance report of a lot tested in several runs.
+
+    The same facts, pages, signature and registration as :func:`render_report`, over the
+    lot's counted shots (``view``, :class:`benchrun.report.lot_sources.LotRunView`) with the
+    runs, benches, instruments, retest rule and superseded tests added
+    (:func:`benchrun.report.facts_lot.lot_content`). The report is registered in the store
+    under the newest run that counts.
+
+    Parameters
+    ----------
+    view, sources, lot_sources
+        From :func:`benchrun.report.lot_sources.lot_view`.
+    lot
+        ``LotGrade`` of ``view.shots`` (:func:`benchrun.grading.across.grade_across`).
+    """
+    from benchrun.report.facts_gather import build_content
+    from benchrun.report.facts_lot import lot_content
+    from benchrun.report.raw_waveforms import raw_waveform_loader
+
+    now = _dt.datetime.now(_dt.UTC).replace(microsecond=0)
+    content = lot_content(build_content(view, lot, signer, sources, now=now), lot_sources,
+                          now=now)
+    loss_parts: list[Flowable] = []
+    if loss is not None:
+        loss_parts = _loss_flowables(loss, _invalid_shots(view))
+    with raw_waveform_loader(view, content.analysis_options) as loader:
+        path = render_signed(content, out_pdf, signer, waveform_loader=loader,
+                             loss_flowables=loss_parts)
+    _register(view, content, path)
+    return path
+
+
 def _invalid_shots(run: Any) -> list[str]:
     """Every shot not valid, named with its reason (the loss estimate leaves them out)."""
     lines = []
@@ -117,4 +151,5 @@ def _register(run: Any, content: ReportContent, path: Path) -> None:
     register_report(url, content, path, digest)
 
 
-__all__ = ["__version__", "render_pdf_bytes", "render_report", "render_signed"]
+__all__ = ["__version__", "render_lot_report", "render_pdf_bytes", "render_report",
+           "render_signed"]

@@ -12,7 +12,7 @@ alone is never relied upon. Validation uses pyhanko's async API inside one event
 from __future__ import annotations
 
 import asyncio
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -20,9 +20,11 @@ from benchrun.errors import BenchrunError
 from benchrun.report.sign import read_attachment
 from benchrun.report.verify_checks import (
     ALL_CHECKS,
+    CHECK_LOT,
     CHECK_MANIFEST,
     CHECK_REANALYSIS,
     CHECK_REGISTRATION,
+    CHECK_RUNS,
     CHECK_SIGNATURE,
     CHECK_TRUST,
     Check,
@@ -32,8 +34,8 @@ from benchrun.report.verify_data import find_run_dir, load_run_folder, manifest_
 from benchrun.report.verify_reanalysis import reanalysis_check
 from benchrun.report.verify_signature import signature_checks
 
-__all__ = ["CHECK_MANIFEST", "CHECK_REANALYSIS", "CHECK_REGISTRATION", "CHECK_SIGNATURE",
-           "CHECK_TRUST", "Check",
+__all__ = ["CHECK_LOT", "CHECK_MANIFEST", "CHECK_REANALYSIS", "CHECK_REGISTRATION",
+           "CHECK_RUNS", "CHECK_SIGNATURE", "CHECK_TRUST", "Check",
            "VerificationResult", "verify_report"]
 
 
@@ -83,8 +85,32 @@ def _registration(attachment: dict[str, Any] | None, run: Any, pdf: bytes) -> Ch
                  "counts, signer, file SHA-256) matches the signed report")
 
 
+def _verify_lot(pdf_path: Path, raw: bytes, attachment: dict[str, Any], intact: Check,
+                trust: Check, facts: dict[str, Any], store: str | None,
+                runs: Sequence[str | Path]) -> VerificationResult:
+    """The checks of a lot report: signature and trust, then :mod:`benchrun.report.
+    verify_lot` (runs found, retest rule, manifest, re-analysis), then the reports-table row
+    in the store the runs were found in."""
+    from types import SimpleNamespace
+
+    from benchrun.report.verify_lot import verify_lot
+
+    lot = verify_lot(attachment, store=store, runs=runs)
+    if lot.store_url is None:
+        registration = Check(CHECK_REGISTRATION, False, lot.checks[0].reason)
+    else:
+        registration = _guarded(CHECK_REGISTRATION, lambda: _registration(
+            attachment, SimpleNamespace(store_url=lot.store_url), raw))
+    facts.update({k: attachment.get(k) for k in ("run_id", "part", "lot", "disposition")})
+    facts["kind"] = "lot"
+    facts["runs"] = [r.to_dict() for r in lot.runs]
+    return VerificationResult(str(pdf_path), (intact, trust, *lot.checks, registration),
+                              attachment.get("report_id"), facts)
+
+
 def verify_report(pdf: str | Path, cert: str | Path | None = None,
-                  data: str | Path | None = None) -> VerificationResult:
+                  data: str | Path | None = None, *, store: str | None = None,
+                  runs: Sequence[str | Path] = ()) -> VerificationResult:
     """Verify a signed report. Never raises: every failure is a negative :class:`Check`.
 
     Parameters
@@ -96,7 +122,15 @@ def verify_report(pdf: str | Path, cert: str | Path | None = None,
         check fails.
     data
         The run folder (raw record, configuration files, results DB); defaults to the report's
-        own folder when it holds ``run.json``.
+        own folder when it holds ``run.json``, else the folder of the report's run found
+        under ``runs``.
+    store
+        A lot report only: the results store to find its runs in (default: the one the
+        report names).
+    runs
+        Folders to search for run folders that are not where the store records them (a lot
+        report's runs; a one-run report's run when neither ``data`` nor the report's folder
+        holds it). See :mod:`benchrun.report.verify_lot`.
 
     Returns
     -------
@@ -123,7 +157,13 @@ def verify_report(pdf: str | Path, cert: str | Path | None = None,
         attachment = read_attachment(raw)
     except Exception:  # same: unreadable embedded data is reported by the checks below
         attachment = None
+    if isinstance(attachment, dict) and attachment.get("kind") == "lot":
+        return _verify_lot(pdf_path, raw, attachment, intact, trust, facts, store, runs)
     run_dir = find_run_dir(pdf_path, Path(data) if data is not None else None)
+    if run_dir is None and runs and isinstance(attachment, dict):
+        from benchrun.store.lotdata import search_run_folder
+
+        run_dir = search_run_folder(str(attachment.get("run_id")), runs)
     try:
         run, load_error = load_run_folder(run_dir)
     except Exception as exc:  # a damaged results store or run.json

@@ -15,6 +15,9 @@ CHECK_REGISTRATION = "reports-table row matches the signed report"
 #: Every check, in the order they are reported.
 ALL_CHECKS = (CHECK_SIGNATURE, CHECK_TRUST, CHECK_MANIFEST, CHECK_REANALYSIS,
               CHECK_REGISTRATION)
+#: A lot report (several runs) also answers these two (:mod:`benchrun.report.verify_lot`).
+CHECK_RUNS = "every run of the lot found"
+CHECK_LOT = "the retest rule reproduces the lot"
 
 
 @dataclass(frozen=True)

@@ -116,6 +116,29 @@ def _compare_grades(reported: dict[str, Any], lot: Any, problems: list[str]) -> 
             problems.append(f"device {serial} {key[0]} at {key[1]}: graded in the report only")
 
 
+def shots_with_fresh_metrics(rows: list[dict[str, Any]],
+                             metrics: dict[str, dict[str, Any]]) -> list[Any]:
+    """The report's shot rows as ``ShotResult`` objects, each re-analysed shot carrying the
+    re-analysis' metrics and measured conditions (what the regrade uses)."""
+    from benchrun.records import ShotResult
+
+    shots = []
+    for row in rows:
+        data = {k: v for k, v in row.items() if k != "condition"}
+        shot = ShotResult.from_dict(data)
+        fresh = metrics.get(shot.raw_ref)
+        if fresh is not None:
+            merged = {k: fresh.get(k) for k in shot.metrics}
+            conditions = dict(shot.conditions)
+            for key in ANALYSED_CONDITIONS:
+                if key in conditions and key in fresh:
+                    conditions[key] = fresh[key]
+            shot = ShotResult.from_dict({**shot.to_dict(), "metrics": merged,
+                                         "conditions": conditions})
+        shots.append(shot)
+    return shots
+
+
 def reanalysis_check(attachment: dict[str, Any] | None, run: Any,
                      load_error: str | None) -> Any:
     """The re-analysis check of :func:`benchrun.report.verify.verify_report`."""
@@ -132,26 +155,12 @@ def reanalysis_check(attachment: dict[str, Any] | None, run: Any,
     shot_problems = len(problems)
     try:
         from benchrun.grading import grade_lot, load_limits, run_bench
-        from benchrun.records import ShotResult
 
         if run.limits_path is None or not run.limits_path.is_file():
             problems.append("the run folder has no limits.yaml to regrade with")
         else:
             limits = load_limits(run.limits_path)
-            shots = []
-            for row in rows:
-                data = {k: v for k, v in row.items() if k != "condition"}
-                shot = ShotResult.from_dict(data)
-                fresh = metrics.get(shot.raw_ref)
-                if fresh is not None:
-                    merged = {k: fresh.get(k) for k in shot.metrics}
-                    conditions = dict(shot.conditions)
-                    for key in ANALYSED_CONDITIONS:
-                        if key in conditions and key in fresh:
-                            conditions[key] = fresh[key]
-                    shot = ShotResult.from_dict({**shot.to_dict(), "metrics": merged,
-                                                 "conditions": conditions})
-                shots.append(shot)
+            shots = shots_with_fresh_metrics(rows, metrics)
             _compare_grades(attachment.get("lot_grade") or {},
                             grade_lot(shots, limits, bench=run_bench(run)), problems)
     except BenchrunError as exc:
@@ -171,3 +180,8 @@ def reanalysis_check(attachment: dict[str, Any] | None, run: Any,
         return _check(False, f"{summary}: {problems[0]}", problems[:200])
     return _check(True, f"{len(rows)} shots re-analysed: every metric, grade, bin, device "
                         "verdict and the lot disposition reproduced")
+
+
+#: Public names for the lot verification (:mod:`benchrun.report.verify_lot`).
+reanalyse_shots = _reanalyse_shots
+compare_grades = _compare_grades

@@ -18,13 +18,23 @@ The sampling plan of the limits file then applies to the whole lot (all devices 
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass, field
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from benchrun.errors import StoreError
 from benchrun.records import ShotResult
 from benchrun.store.results import ResultsStore, normalize_url
-from benchrun.store.rundata import RunData, load_run, read_manifest, store_url_for
+from benchrun.store.rundata import (
+    RUN_MANIFEST,
+    RunData,
+    load_run,
+    read_manifest,
+    store_url_for,
+)
+
+#: How deep below a ``--runs DIR`` folder run folders are looked for.
+SEARCH_DEPTH = 3
 
 #: The retest rule in one sentence, for the grade output and the report.
 RETEST_RULE = (
@@ -184,3 +194,113 @@ def load_lot(source: str | os.PathLike[str], lot: str, *, part: str | None = Non
     shots = [s for run in runs for s in run.shots if device_runs.get(s.serial) == run.run_id]
     return LotData(lot=lot, part=parts[0], runs=runs, shots=shots, device_runs=device_runs,
                    superseded=superseded, unfinished=unfinished, store_url=public)
+
+
+@dataclass(frozen=True)
+class RunFolder:
+    """Where the folder of one run of a lot was found (or not).
+
+    Attributes
+    ----------
+    run_id, bench_id
+        The run and its bench.
+    run_dir
+        The folder holding the run's ``run.json`` (naming this run), or ``None``.
+    how
+        ``"recorded"`` (the folder the store records still holds it), ``"searched"`` (found
+        under a folder given to search) or ``"missing"``.
+    recorded
+        The folder the store records for the run (where it was made), if any.
+    """
+
+    run_id: str
+    bench_id: str | None
+    run_dir: Path | None
+    how: str
+    recorded: str | None = None
+
+    @property
+    def found(self) -> bool:
+        return self.run_dir is not None
+
+    def describe(self) -> str:
+        """One line for the user: where the run's folder is, or how to point at it."""
+        bench = self.bench_id or "—"
+        if self.run_dir is not None:
+            where = ("where the store records it" if self.how == "recorded"
+                     else "found by searching the folders given")
+            return f"run {self.run_id} (bench {bench}): folder {self.run_dir} ({where})"
+        made = f" (made in {self.recorded})" if self.recorded else ""
+        return (f"run {self.run_id} (bench {bench}): run folder not found{made}; name a "
+                "folder that holds it with --runs DIR")
+
+
+def _names_run(folder: Path, run_id: str) -> bool:
+    try:
+        return read_manifest(folder).get("run_id") == run_id
+    except StoreError:
+        return False
+
+
+def search_run_folder(run_id: str, search: Iterable[str | os.PathLike[str]],
+                      depth: int = SEARCH_DEPTH) -> Path | None:
+    """The first folder under one of ``search`` (the folder itself, then ``<dir>/<run_id>``,
+    then any folder up to ``depth`` levels down) whose ``run.json`` names ``run_id``."""
+    for top in (Path(d) for d in search):
+        if not top.is_dir():
+            continue
+        for candidate in (top, top / run_id):
+            if candidate.is_dir() and _names_run(candidate, run_id):
+                return candidate.resolve()
+        level = [top]
+        for _ in range(depth):
+            below: list[Path] = []
+            for folder in level:
+                try:
+                    below += sorted(p for p in folder.iterdir() if p.is_dir())
+                except OSError:
+                    continue
+            for folder in below:
+                if (folder / RUN_MANIFEST).is_file() and _names_run(folder, run_id):
+                    return folder.resolve()
+            level = below
+    return None
+
+
+def locate_run_folder(run: RunData, search: Sequence[str | os.PathLike[str]] = ()
+                      ) -> RunFolder:
+    """Where ``run``'s folder is: the one the store records when it still holds the run,
+    else the first found under ``search`` (:func:`search_run_folder`)."""
+    bench = run.run.bench_id if run.run is not None else None
+    recorded = run.manifest.get("run_dir") if isinstance(run.manifest, dict) else None
+    if run.run_dir is not None and _names_run(run.run_dir, run.run_id):
+        return RunFolder(run.run_id, bench, Path(run.run_dir), "recorded",
+                         str(recorded) if recorded else None)
+    found = search_run_folder(run.run_id, search)
+    if found is not None:
+        return RunFolder(run.run_id, bench, found, "searched",
+                         str(recorded) if recorded else None)
+    return RunFolder(run.run_id, bench, None, "missing", str(recorded) if recorded else None)
+
+
+def with_folder(run: RunData, folder: RunFolder) -> RunData:
+    """``run`` with the folder found for it (its ``run.json`` as the manifest), or without a
+    folder when none was found."""
+    if folder.run_dir is None:
+        return replace(run, run_dir=None)
+    return replace(run, run_dir=folder.run_dir, manifest=read_manifest(folder.run_dir))
+
+
+def locate_lot_folders(lot: LotData, search: Sequence[str | os.PathLike[str]] = ()
+                       ) -> tuple[LotData, list[RunFolder]]:
+    """Find every run folder of ``lot`` (:func:`locate_run_folder`); returns the lot with each
+    run's ``run_dir`` set to the folder found (``None`` when missing) and where each was."""
+    folders = [locate_run_folder(run, search) for run in lot.runs]
+    runs = [with_folder(run, f) for run, f in zip(lot.runs, folders, strict=True)]
+    return replace(lot, runs=runs), folders
+
+
+def counted_runs(lot: LotData) -> list[RunData]:
+    """The runs whose shots count for at least one device, oldest first."""
+    counted = set(lot.device_runs.values())
+    return [r for r in lot.runs if r.run_id in counted]
