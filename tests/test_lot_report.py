@@ -247,8 +247,51 @@ def test_a_lot_report_needs_every_run_folder_and_says_how_to_name_it(sqlite_lot,
         assert "--runs DIR" in err and "Traceback" not in err
         data = lot_report(db, pdf, sign, "--runs", str(tmp_path))
         assert data["lot_runs"][0]["run_dir"] == str(moved.resolve())
+        # grade --lot needs the folder too (bench and limits files), and takes --runs
+        assert cli.main(["grade", db, "--lot", LOT]) != 0
+        err = capsys.readouterr().err
+        assert f"run(s) {first.run_id} of lot {LOT} was not found" in err and "--runs" in err
+        assert cli.main(["grade", db, "--lot", LOT, "--runs", str(tmp_path)]) == 0
     finally:
         shutil.move(str(moved), first.run_dir)
+
+
+def test_the_lot_report_goes_to_the_current_folder_by_default(sqlite_lot, monkeypatch,
+                                                              tmp_path):
+    _tmp, db, _first, _second, sign = sqlite_lot
+    monkeypatch.chdir(tmp_path)
+    assert cli.main(["report", db, "--lot", LOT, *sign]) == 0
+    assert read_attachment((tmp_path / f"report-{LOT}.pdf").read_bytes())["kind"] == "lot"
+
+
+def test_verify_takes_the_store_from_store_when_it_moved(sqlite_lot, capsys, tmp_path):
+    tmp, db, _first, _second, sign = sqlite_lot
+    pdf = tmp_path / "lot.pdf"
+    lot_report(db, pdf, sign)
+    moved = tmp_path / "copy-of-shared.db"
+    shutil.move(str(tmp / "shared.db"), moved)
+    try:
+        capsys.readouterr()
+        assert cli.main(["verify", str(pdf), "--cert", cert_of(sign)]) == 1
+        out = capsys.readouterr().out
+        assert "cannot open the results store" in out and "--store URL" in out
+        assert "Traceback" not in out
+        assert cli.main(["verify", str(pdf), "--cert", cert_of(sign),
+                         "--store", str(moved)]) == 0
+    finally:
+        shutil.move(str(moved), tmp / "shared.db")
+
+
+def test_a_later_run_of_the_lot_is_named_but_does_not_fail_the_report(sqlite_lot, capsys,
+                                                                      tmp_path):
+    tmp, db, _first, _second, sign = sqlite_lot
+    pdf = tmp_path / "lot.pdf"
+    lot_report(db, pdf, sign)
+    later = run_part(tmp, "[SN0117-002]", "bench-c", db, name="c.yaml")
+    capsys.readouterr()
+    assert cli.main(["verify", str(pdf), "--cert", cert_of(sign), "--details"]) == 0
+    out = capsys.readouterr().out
+    assert f"does not name (made after it): {later.run_id}" in out
 
 
 def test_lot_options_that_do_not_fit_are_refused_in_one_line(sqlite_lot, capsys):
