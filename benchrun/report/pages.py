@@ -90,8 +90,8 @@ def _lot_runs_pages(content: ReportContent, w: float) -> list[Flowable]:
              sec.P("Every run of the lot in the results store, with the bench that made it "
                    "and the devices whose shots count from it.", "small"),
              sec.simple_table(content.lot_runs_table,
-                              [46 * mm, 20 * mm, 16 * mm, 40 * mm, 18 * mm, 28 * mm,
-                               w - 168 * mm]),
+                              [44 * mm, 18 * mm, 16 * mm, 38 * mm, 18 * mm, 26 * mm,
+                               w - 160 * mm]),
              sec.P("Retest rule", "h3"),
              sec.P(f"Retest rule: {content.retest_rule}.", "body")]
     if content.superseded_table:
