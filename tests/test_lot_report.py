@@ -26,6 +26,7 @@ from benchrun.config import load_bench, load_sequence
 from benchrun.report.sign import read_attachment
 from benchrun.runner.execute import RunOptions, run_sequence
 from benchrun.runner.simbench import simulated_bench
+from benchrun.store.results import ResultsStore
 from benchrun.store.rundata import read_manifest
 
 LOT = "LT-0117"
@@ -369,3 +370,23 @@ def test_the_report_of_a_lot_tested_through_an_outage_states_the_same_facts(tmp_
     calm, through = report_facts(reports["calm"]), report_facts(reports["outage"])
     assert len(calm["shots"]) == 24  # 3 devices × 8 repeats counted, nothing lost or doubled
     assert calm == through
+
+
+def test_devices_counted_from_a_run_that_did_not_complete_are_named(tmp_path, capsys):
+    db = f"sqlite:///{tmp_path / 'shared.db'}"
+    first = run_part(tmp_path, "[SN0117-001]", "bench-a", db, name="a.yaml")
+    second = run_part(tmp_path, "[SN0117-002, SN0117-001]", "bench-b", db, name="b.yaml")
+    with ResultsStore(db, create=False) as store:  # bench B's run stopped before its end
+        store.update_run(second.run_id, status="stopped")
+    sign = signing_args(tmp_path)
+    data = lot_report(db, tmp_path / "lot.pdf", sign)
+    # SN0117-001: the complete run counts, although bench B tested it later (retest rule)
+    assert {r["run_id"]: r["counted_devices"] for r in data["lot_runs"]} == {
+        first.run_id: ["SN0117-001"], second.run_id: ["SN0117-002"]}
+    assert data["unfinished"] == ["SN0117-002"]
+    assert data["superseded"][0]["run_id"] == second.run_id
+    flat = " ".join(pdf_text(tmp_path / "lot.pdf").split())
+    assert "Devices tested only in a run that did not complete (their shots count from the " \
+           "latest such run): SN0117-002." in flat
+    capsys.readouterr()
+    assert cli.main(["verify", str(tmp_path / "lot.pdf"), "--cert", cert_of(sign)]) == 0

@@ -163,6 +163,7 @@ class ReportContent:
     retest_rule: str = ""
     superseded: list[dict[str, Any]] = field(default_factory=list)
     superseded_table: list[list[str]] = field(default_factory=list)
+    unfinished: list[str] = field(default_factory=list)
     run_instruments: list[tuple[str, list[list[str]]]] = field(default_factory=list)
     store_url: str = ""
     limits_run_id: str | None = None
@@ -218,13 +219,14 @@ def attachment_dict(content: ReportContent) -> dict[str, Any]:
 
 def _lot_attachment(content: ReportContent) -> dict[str, Any]:
     """The keys a lot report adds (``kind: lot``): its runs (bench, status, devices counted,
-    manifest entries), the retest rule, the superseded tests, the store and the run whose
-    limits file was graded against."""
+    manifest entries), the retest rule, the superseded tests, the devices tested only in runs
+    that did not complete, the store and the run whose limits file was graded against."""
     return {
         "kind": "lot",
         "lot_runs": content.lot_runs,
         "retest_rule": content.retest_rule,
         "superseded": content.superseded,
+        "unfinished": content.unfinished,
         "store_url": content.store_url,
         "limits_run_id": content.limits_run_id,
     }

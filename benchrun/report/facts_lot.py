@@ -156,6 +156,7 @@ def lot_content(content: ReportContent, lot: Any, *, now: _dt.datetime) -> Repor
         retest_rule=lot.retest_rule,
         superseded=list(lot.superseded),
         superseded_table=superseded_table(lot.superseded),
+        unfinished=list(lot.unfinished),
         run_instruments=instruments,
         instruments_table=[],
         fixture_table=_fixture_tables(runs, names),

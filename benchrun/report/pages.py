@@ -101,6 +101,10 @@ def _lot_runs_pages(content: ReportContent, w: float) -> list[Flowable]:
                              [22 * mm, 52 * mm, 22 * mm, 12 * mm, w - 108 * mm])))
     else:
         story.append(sec.P("No device was tested more than once.", "small"))
+    if content.unfinished:
+        story.append(sec.P("Devices tested only in a run that did not complete (their shots "
+                           "count from the latest such run): "
+                           + ", ".join(content.unfinished) + ".", "caution"))
     story.append(sec.P("Instruments per run", "h3"))
     story.append(sec.P("Instruments (identity as reported by the instrument, IEEE 488.2 "
                        "*IDN?) and probes of each run, with their calibration as that run's "
