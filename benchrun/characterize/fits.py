@@ -189,7 +189,9 @@ class SurfaceFit:
 
     def describe(self) -> str:
         """One line: the fitted law with its coefficients ± standard errors."""
-        parts = [f"{self.quantity} = {self.y_ref:.4g} {self.unit}"]
+        from benchrun.units import format_si
+
+        parts = [f"{self.quantity} = {format_si(self.y_ref, self.unit, 4)}"]
         for axis in self.terms:
             coef, se = self.coefficient(axis), self.standard_error(axis)
             pm = "" if se is None else f" ± {se:.2g}"

@@ -273,7 +273,7 @@ def render_surface(surfaces: Any, results: list) -> str:
         m = "" if r.modulation is None else f", m = {r.modulation:g} (does not enter)"
         lines.append(
             f"    at Î = {format_si(r.peak_current_A, 'A', 3)}, VR = "
-            f"{format_si(r.vr_V, 'V', 3)}, T = {format_si(r.temperature_K, 'K', 5)}, "
+            f"{format_si(r.vr_V, 'V', 3)}, T = {format_si(r.temperature_K, 'K', 4)}, "
             f"di/dt = {format_si(r.didt_A_per_s, 'A/s', 3)}{m}: E(Î) = "
             f"{_j(r.energy_at_peak_J)}, mean over the half-cycle {_j(r.mean_energy_half_cycle_J)}")
         for fsw, p, leg, u in zip(r.fsw_hz, r.power_W, r.leg_power_W,
@@ -313,7 +313,8 @@ def render_text(table: LossTable, *, run_id: str = "") -> str:
         lines.append("No usable shots (valid, with Err and a switch-energy figure).")
     for part, lot in table.parts:
         lines.append(f"{part}   lot {lot}")
-        header = ["T", "VR", "IF", "devices", "basis", "Err", "Esw,rec", "E mean", "E max"]
+        header = ["T", "VR", "IF", "di/dt", "devices", "basis", "Err", "Esw,rec", "E mean",
+                  "E max"]
         for f in table.fsw_hz:
             fs = format_si(f, "Hz", digits=3)
             header += [f"P mean @{fs}", f"P max @{fs}"]
@@ -322,7 +323,8 @@ def render_text(table: LossTable, *, run_id: str = "") -> str:
             if (g.part, g.lot) != (part, lot):
                 continue
             row = [format_si(g.temperature_K, "K", 3), format_si(g.vr_nominal_V, "V", 3),
-                   format_si(g.if_nominal_A, "A", 3), str(g.n_devices), g.basis,
+                   format_si(g.if_nominal_A, "A", 3),
+                   format_si(g.didt_mean_A_per_s, "A/s", 3), str(g.n_devices), g.basis,
                    _j(g.err_mean_J), _j(g.switch_mean_J), _j(g.energy_mean_J),
                    _j(g.energy_max_J)]
             for mean, worst in zip(g.power_mean_W, g.power_max_W, strict=True):
