@@ -53,6 +53,7 @@ __all__ = [
     "metric_surfaces",
     "surface_points",
     "write_fits_csv",
+    "write_sweep_fits_csv",
 ]
 
 #: Axes of the surface, in the order of the coefficients after ln y_ref.
@@ -410,3 +411,12 @@ def write_fits_csv(path: str | Path, trends: Iterable[Any] = (),
         for row in fit_rows(trends, surfaces):
             writer.writerow({k: ("" if row.get(k) is None else row[k]) for k in FITS_COLUMNS})
     return path
+
+
+def write_sweep_fits_csv(shots: Sequence[ShotResult], path: str | Path) -> Path:
+    """``fits.csv`` of a sweep: the one-axis trends and the surfaces of the curve metrics
+    (what the characterisation report shows)."""
+    from benchrun.characterize.curves import CURVE_METRICS, fit_trends
+
+    surfaces, _ = metric_surfaces(shots, CURVE_METRICS)
+    return write_fits_csv(path, fit_trends(shots, CURVE_METRICS), surfaces)
