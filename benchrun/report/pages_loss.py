@@ -15,7 +15,13 @@ from xml.sax.saxutils import escape
 from reportlab.lib.styles import ParagraphStyle, getSampleStyleSheet
 from reportlab.platypus import Flowable, KeepTogether, LongTable, Paragraph, Spacer, TableStyle
 
-from benchrun.loss.estimate import BASIS_ESTIMATE, BASIS_MEASURED, BASIS_MIXED, LossTable
+from benchrun.loss.estimate import (
+    BASIS_ESTIMATE,
+    BASIS_MEASURED,
+    BASIS_MIXED,
+    MODEL_CLAIMS,
+    LossTable,
+)
 from benchrun.units import format_si
 
 #: The assumptions printed with every loss estimate.
@@ -84,12 +90,10 @@ def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] |
     freqs = ", ".join(format_si(f, "Hz", digits=3) for f in loss_table.fsw_hz)
     out: list[Flowable] = [
         Paragraph(escape(
-            "Energy lost per commutation because of the diode's reverse recovery, "
-            "E = Err + the switch turn-on energy the recovery causes (for a part declared "
-            "capacitive, the switch share only: its Err is stored and returned), and the "
-            "average power "
-            f"P = fsw·E at {freqs or 'no frequency'}. Means and maxima over the devices of "
-            "each part and lot at each test point (valid shots only)."), body),
+            "Energy lost per commutation because of the diode's reverse recovery and the "
+            f"average power at {freqs or 'no frequency'}; means and maxima over the devices "
+            "of each part and lot at each test point. "
+            + " ".join(sentence for _key, sentence in MODEL_CLAIMS)), body),
         Spacer(1, 3),
         Paragraph("Assumptions", h3),
     ]
