@@ -294,3 +294,35 @@ def test_loss_command_refuses_far_extrapolation_in_one_line(tmp_path, capsys):
     code = main(["loss", url, "--fsw", "20kHz", "--line-peak", "18A", "--vr", "450V"])
     err = capsys.readouterr().err
     assert code == 2 and "--temperature" in err and len(err.strip().splitlines()) == 1
+
+
+def test_loss_command_passes_the_runs_rejected_devices_to_the_surface(tmp_path, capsys,
+                                                                      monkeypatch):
+    # the command grades the run (when its folder holds limits) and leaves the devices not
+    # graded conforming out of the table and of the surface alike: here the grading is
+    # replaced by a fixed answer so the wiring is what is checked
+    import json
+
+    from benchrun.cli import main
+    from benchrun.commands import loss as loss_command
+    from benchrun.store.results import ResultsStore
+
+    url = _sweep_store(tmp_path / "sweep.db")
+    with ResultsStore(url) as store:  # a device with ten times the energy everywhere
+        for shot in _sweep_shots():
+            if shot.serial == "S1":
+                worse = _shot("S3", *(shot.conditions[k] for k in ("if_A", "vr_V")),
+                              shot.conditions["didt_A_per_s"], shot.conditions["temperature_K"],
+                              10 * (shot.metrics["err_J"] + shot.metrics["eon_recovery_J"]),
+                              point=shot.point.index)
+                store.add_shot(ShotResult.from_dict({**worse.to_dict(), "run_id": "R-SWEEP"}))
+    monkeypatch.setattr(loss_command, "_rejected", lambda data: ("S3",))
+    args = ["loss", url, "--fsw", "20kHz", "--line-peak", "18A", "--vr", "450V",
+            "--temperature", "100degC", "--didt", "600A/us", "--json"]
+    assert main(args) == 0
+    data = json.loads(capsys.readouterr().out)
+    block = data["surface_line_cycle"]
+    assert block["rejected_excluded"] is True
+    (res,) = block["results"]
+    assert res["fit"]["n_points"] == 72 and res["fit"]["residual_sd"] < 1e-9
+    assert all(r["serial"] != "S3" for r in data["loss"]["rows"])
