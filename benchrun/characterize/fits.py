@@ -201,7 +201,7 @@ class SurfaceFit:
                 pm_t = "" if se is None else f" ± {100 * se:.2g}"
                 parts.append(f"exp(({100 * coef:.3g}{pm_t} %/K)·(T − {ref:.5g} K))")
             else:
-                parts.append(f"({sym}/{ref:.4g} {AXIS_UNIT[axis]})^({coef:.3f}{pm})")
+                parts.append(f"({sym} / {format_si(ref, AXIS_UNIT[axis], 4)})^({coef:.3f}{pm})")
         return "·".join(parts)
 
 
