@@ -73,6 +73,8 @@ def test_exact_separable_law_is_recovered():
     assert fit.range_of("forward_current_A").minimum == 5.0
     assert fit.range_of("forward_current_A").maximum == 20.0
     assert fit.dof == 36 - 5
+    assert "(IF / 10 A)^(0.900 ± " in fit.describe()
+    assert "exp((0.6 ± " in fit.describe()
 
 
 def test_held_axis_and_rank_deficiency():

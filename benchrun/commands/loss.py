@@ -44,15 +44,18 @@ def register(subparsers: Any) -> None:
         help="recovery loss per commutation and average power at switching frequencies",
         description="Energy per commutation (Err + recovery-caused switch energy) and average "
         "power P = fsw·E per part/lot and test point of a stored run; with --compare, the "
-        "saving of this run's part over another run's part at matching conditions.",
+        "saving of this run's part over another run's part at matching conditions; with "
+        "--line-peak, the average over a sinusoidal line cycle.",
     )
     parser.add_argument("results", metavar="RESULTS", help="run folder or results database URL")
     parser.add_argument("--fsw", metavar="FREQ", action="append", required=True,
                         help="switching frequency, e.g. 20kHz (repeat for several)")
     parser.add_argument("--line-peak", metavar="CURRENT",
                         help="also average over a sinusoidal line cycle of this peak current "
-                        "(e.g. 28A), from a power law fitted in IF: P = fsw·(1/2π)·∫₀^π "
-                        "E(Î·sin θ) dθ, with its uncertainty")
+                        "(e.g. 28A): P = fsw·(1/2π)·∫₀^π E(Î·sin θ) dθ per diode, with its "
+                        "uncertainty; alone, E from a power law fitted in IF at each tested "
+                        "temperature and VR; with --vr, --temperature and --didt, from the "
+                        "energy surface fitted over the whole sweep")
     parser.add_argument("--vr", metavar="VOLTAGE",
                         help="with --line-peak, --temperature and --didt: evaluate the energy "
                         "surface E(IF, VR, T, di/dt) fitted over the run's sweep at this "
@@ -227,6 +230,8 @@ SURFACE_LINES = (
 
 def surface_payload(surfaces: Any, results: list) -> dict[str, Any]:
     """JSON of the surface line-cycle estimate."""
+    from benchrun.loss.surface import CONFIDENCE
+
     out = []
     for r in results:
         f = r.fit
@@ -238,7 +243,7 @@ def surface_payload(surfaces: Any, results: list) -> dict[str, Any]:
             "mean_energy_half_cycle_J": r.mean_energy_half_cycle_J,
             "power_W": list(r.power_W), "leg_power_W": list(r.leg_power_W),
             "u_W": None if r.u_W is None else list(r.u_W),
-            "coverage_factor": r.coverage_factor, "confidence": 0.95,
+            "coverage_factor": r.coverage_factor, "confidence": CONFIDENCE,
             "below_range_fraction": r.below_range_fraction,
             "above_range_fraction": r.above_range_fraction, "flags": list(r.flags),
             "fit": {"reference": dict(f.reference), "terms": list(f.terms),
