@@ -84,6 +84,15 @@ def test_held_axis_and_rank_deficiency():
     fit = fit_surface(pts, quantity="energy_J")
     assert "vr_V" not in fit.terms and fit.coefficient("vr_V") is None
     assert fit.range_of("vr_V").n_distinct == 1
+    # a condition that was not swept but wanders (di/dt ±10 % with the current, T by 3 K)
+    # is held, not fitted: its spread would take credit for the swept axes' effect
+    wander = {**{a: tuple(c[a] for c in grid) for a in AXES},
+              "didt_A_per_s": tuple(5e8 * (1 + 0.1 * math.sin(k)) for k in range(len(grid))),
+              "temperature_K": tuple(300.0 + 3.0 * math.cos(k) for k in range(len(grid)))}
+    held = fit_surface(SurfacePoints(wander, pts.y), quantity="energy_J")
+    assert held.terms == ("forward_current_A",)
+    assert held.range_of("didt_A_per_s").maximum > 5.4e8  # the range is still the measured one
+    assert held.coefficient("temperature_K") is None and held.percent_per_kelvin is None
     # IF and di/dt varied together only: they cannot be told apart
     together = {a: (5.0, 10.0, 20.0) for a in AXES}
     together["didt_A_per_s"] = (1e8, 2e8, 4e8)

@@ -21,9 +21,14 @@ geometric means of IF, VR and di/dt and the arithmetic mean of T, so the interce
 at the centre of the data.  Parameter covariance ``s²·(XᵀX)⁻¹`` with ``s²`` the residual
 variance over ν = n − p degrees of freedom (elementary regression; GUM, JCGM 100:2008, H.3);
 ``residual_sd`` = s, the relative scatter of the points about the surface (device-to-device
-spread plus repeatability).  An axis with one distinct value in the data is *held*: its term is
-left out and the surface holds only at that value.  The region of validity is the measured
-range of every axis (``ranges``); :meth:`SurfaceFit.outside` names what a condition leaves.
+spread plus repeatability).  An axis whose values span less than ``MIN_SPAN_RATIO`` = 1.3
+(IF, VR, di/dt) or ``MIN_SPAN_K`` = 10 K (T) is *held*: its term is left out and the surface
+holds only over that narrow range.  Such a spread is what a condition that was not swept
+wanders by (the measured di/dt moves with the commutated current and the temperature, the
+measured VR with the bus droop), and fitting it would credit that axis with what belongs to
+the swept ones (our choice, common practice for what counts as a sweep).  The region of
+validity is the measured range of every axis (``ranges``); :meth:`SurfaceFit.outside` names
+what a condition leaves.
 
 Points: the valid shots of one device at one test point are averaged into one point (their
 measured conditions — IF, VR after the event, di/dt by the measurement's definition, the
@@ -66,6 +71,10 @@ AXIS_UNIT = {"forward_current_A": "A", "vr_V": "V", "didt_A_per_s": "A/s",
              "temperature_K": "K"}
 #: Two values of an axis closer than this (relative) count as one value (float noise).
 _DISTINCT_REL = 1e-3
+#: An axis is fitted only when its values span at least this ratio (IF, VR, di/dt) ...
+MIN_SPAN_RATIO = 1.3
+#: ... or this many kelvin (T); else it is held (module docstring).
+MIN_SPAN_K = 10.0
 
 MODEL_TEXT = ("ln y = ln y_ref + b_IF·ln(IF/IF_ref) + b_VR·ln(VR/VR_ref) + "
               "b_didt·ln(di/dt / di/dt_ref) + c·(T − T_ref)")
@@ -214,6 +223,13 @@ def _distinct(values: np.ndarray) -> int:
     return 1 + int(np.sum(np.diff(v) > _DISTINCT_REL * np.maximum(scale, 1e-300)))
 
 
+def _spans(r: AxisRange) -> bool:
+    """True when the axis was swept (module docstring)."""
+    if r.axis == "temperature_K":
+        return r.maximum - r.minimum >= MIN_SPAN_K
+    return r.maximum >= MIN_SPAN_RATIO * r.minimum
+
+
 def fit_surface(points: SurfacePoints, *, quantity: str, unit: str = "",
                 part: str = "", lot: str = "") -> SurfaceFit:
     """Least-squares fit of the separable surface (module docstring) to ``points``.
@@ -232,7 +248,7 @@ def fit_surface(points: SurfacePoints, *, quantity: str, unit: str = "",
             raise ValueError(f"{quantity}: {AXIS_SYMBOL[axis]} must be positive at every point")
     ranges = tuple(AxisRange(a, float(cond[a].min()), float(cond[a].max()), _distinct(cond[a]))
                    for a in AXES)
-    terms = tuple(r.axis for r in ranges if r.n_distinct >= 2)
+    terms = tuple(r.axis for r in ranges if r.n_distinct >= 2 and _spans(r))
     reference = tuple(
         (a, float(np.mean(cond[a])) if a == "temperature_K"
          else float(np.exp(np.mean(np.log(cond[a]))))) for a in AXES)
@@ -381,8 +397,9 @@ def fit_rows(trends: Iterable[Any] = (), surfaces: Iterable[SurfaceFit] = ()
     for f in surfaces:
         row = {"kind": "surface", "part": f.part, "lot": f.lot, "metric": f.quantity,
                "unit": f.unit, "model": MODEL_TEXT,
-               "held": ";".join(f"{r.axis}={r.minimum:g}" for r in f.ranges
-                                if r.axis not in f.terms),
+               "held": ";".join(f"{r.axis}={r.minimum:g}" + ("" if r.n_distinct < 2
+                                                             else f"..{r.maximum:g}")
+                                for r in f.ranges if r.axis not in f.terms),
                "n_points": f.n_points, "dof": f.dof, "ref_value": f.y_ref,
                "u_ref_value_rel": f.standard_error(None), "residual_sd_rel": f.residual_sd}
         for axis, ref in f.reference:

@@ -122,8 +122,8 @@ SURFACE_TEXT = (
     "coefficient relative to the value (100·c %/K); c·y_ref the absolute one at T_ref. "
     "± one standard error (covariance s² times the inverse of X'X, n − p degrees of freedom); "
     "scatter: the "
-    "residual standard deviation of ln y. Valid over the measured ranges only; an axis with "
-    "one value is held."
+    "residual standard deviation of ln y. Valid over the measured ranges only; an axis not "
+    "swept (its values span less than 30 %, or 10 K) is held."
 )
 
 
