@@ -122,3 +122,68 @@ def test_signed_characterization_report(tmp_path):
                and abs(t["slope"] - 0.7) < 1e-9 for t in data["trends"])
     assert len(trends) == len(data["trends"])
     assert "kill" in CAUTION
+
+
+def _sweep_shots():
+    # Qrr = 1 µC·(IF/10 A)^0.7·(di/dt/5e8)^0.3·exp(0.005·(T − 298.15 K)), two devices
+    shots = []
+    k = 0
+    for i in (3.0, 10.0, 30.0):
+        for d in (2.5e8, 1e9):
+            for t in (233.15, 298.15, 398.15):
+                for serial in ("S1", "S2"):
+                    q = 1e-6 * (i / 10) ** 0.7 * (d / 5e8) ** 0.3 * np.exp(0.005 * (t - 298.15))
+                    s = _shot(i, t, {"qrr_C": q, "irrm_A": 2.0 * i ** 0.5}, serial=serial,
+                              didt=d, rg=10.0 if d < 5e8 else 3.0)
+                    shots.append(ShotResult.from_dict(
+                        {**s.to_dict(), "point": {**s.point.to_dict(), "index": k}}))
+                k += 1
+    return shots
+
+
+def test_fits_csv_holds_every_trend_and_surface(tmp_path):
+    from benchrun.characterize import metric_surfaces, write_sweep_fits_csv
+
+    shots = _sweep_shots()
+    path = write_sweep_fits_csv(shots, tmp_path / "fits.csv")
+    with path.open(encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    trends = fit_trends(shots)
+    surfaces, _ = metric_surfaces(shots, ["qrr_C", "irrm_A", "trr_s", "err_J", "softness"])
+    assert len(rows) == len(trends) + len(surfaces)
+    (qrr,) = [r for r in rows if r["kind"] == "surface" and r["metric"] == "qrr_C"]
+    assert float(qrr["b_forward_current"]) == pytest.approx(0.7)
+    assert float(qrr["b_didt"]) == pytest.approx(0.3)
+    assert qrr["b_vr"] == ""  # VR held at 600 V: not fitted
+    assert float(qrr["tc_percent_per_K"]) == pytest.approx(0.5)
+    assert float(qrr["tc_abs_per_K"]) == pytest.approx(0.005 * float(qrr["ref_value"]))
+    assert float(qrr["min_forward_current_A"]) == 3.0
+    assert float(qrr["max_temperature_K"]) == 398.15
+    line = [r for r in rows if r["kind"] == "trend" and r["axis"] == "temperature_K"
+            and r["metric"] == "qrr_C"]
+    assert line and all(r["tc_percent_per_K"] for r in line)
+
+
+def test_report_shows_the_surfaces_with_temperature_coefficients(tmp_path):
+    import shutil
+    import subprocess
+
+    from report_helpers import make_signer
+
+    from benchrun.characterize.report import render_characterization
+    from benchrun.report.sign import read_attachment
+
+    if shutil.which("pdftotext") is None:
+        pytest.skip("poppler-utils not installed")
+    _files, signer = make_signer(tmp_path)
+    out, _ = render_characterization(_sweep_shots(), tmp_path / "c.pdf", signer,
+                                     title="DX-4425 characterisation (invented part)")
+    data = read_attachment(out.read_bytes())
+    (q,) = [s for s in data["surfaces"] if s["metric"] == "qrr_C"]
+    assert q["percent_per_kelvin"] == pytest.approx(0.5)
+    text = subprocess.run(["pdftotext", "-layout", str(out), "-"], capture_output=True,
+                          text=True, timeout=30, check=True).stdout
+    flat = " ".join(text.split())
+    assert "Fitted surfaces and temperature coefficients" in flat
+    assert "0.500 %/K" in flat or "0.500" in flat
+    assert "0.700" in flat and "0.300" in flat

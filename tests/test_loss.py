@@ -193,3 +193,37 @@ def test_compare_refuses_a_different_didt():
     del unknown.conditions["didt_A_per_s"]
     (row,) = compare(estimate_losses([unknown], [20e3]), ref).rows
     assert "di/dt not compared" in row.match
+
+
+def _swept(serial, didt_target, didt, energy, part="DX-4417", lot="LT-0117", vr=600.0):
+    s = shot(serial, err=0.25 * energy, rec=0.75 * energy, vr=vr)
+    return ShotResult.from_dict({
+        **s.to_dict(), "part": part, "lot": lot,
+        "point": {**s.point.to_dict(), "didt_A_per_s": didt_target},
+        "conditions": {**s.conditions, "didt_A_per_s": didt}})
+
+
+def test_a_didt_sweep_stays_apart_and_comparison_picks_the_matching_didt():
+    # a reference swept in di/dt at one (T, VR, IF): two groups, and the part measured at
+    # 1e9 A/s is compared with the 1e9 A/s group only (recovery energy grows with di/dt)
+    ref = estimate_losses([_swept("R1", 2.5e8, 2.6e8, 400e-6), _swept("R1", 1e9, 1.0e9, 900e-6)],
+                          [20e3])
+    assert len(ref.groups) == 2
+    assert sorted(g.didt_target_A_per_s for g in ref.groups) == [2.5e8, 1e9]
+    part = estimate_losses([_swept("S1", 1e9, 1.05e9, 300e-6, part="DX-5203", lot="LT-0131")],
+                           [20e3])
+    (row,) = compare(part, ref).rows
+    assert row.energy_b_J == pytest.approx(900e-6) and "di/dt matched" in row.match
+    slow = estimate_losses([_swept("S1", 5e8, 6e8, 300e-6, part="DX-5203", lot="LT-0131")],
+                           [20e3])
+    c = compare(slow, ref)
+    assert c.rows == () and any("di/dt differs" in u for u in c.unmatched)
+    # interpolation in VR uses only reference points at the matching di/dt
+    ref2 = estimate_losses([_swept("R1", 1e9, 1e9, 600e-6, vr=400.0),
+                            _swept("R1", 1e9, 1e9, 1000e-6, vr=800.0),
+                            _swept("R1", 2.5e8, 2.5e8, 100e-6, vr=500.0)], [20e3])
+    mid = estimate_losses([_swept("S1", 1e9, 1e9, 300e-6, part="DX-5203", lot="LT-0131")],
+                          [20e3])
+    (row,) = compare(mid, ref2).rows
+    # linear in VR between 400 V (600 µJ) and 800 V (1 mJ) at 600 V: 800 µJ (hand)
+    assert row.energy_b_J == pytest.approx(800e-6) and "interpolated in VR" in row.match

@@ -92,3 +92,25 @@ def test_switch_energy_sentences_match_the_model():
     text = BASIS_TEXT[BASIS_MEASURED]
     assert "(i_sw − IF)/(di/dt)" in text and "dv/dt" not in text
     assert "ΔT(t) = (i_sw(t) − IL) / (di/dt)" in switching.__doc__
+
+
+def test_a_didt_sweep_shows_each_groups_didt():
+    # two groups at one (T, VR, IF) differing in the requested di/dt: the table says which
+    def swept(serial, target, measured, err):
+        s = _shot(serial, 298.15, err, 2 * err)
+        return ShotResult.from_dict({
+            **s.to_dict(), "point": {**s.point.to_dict(), "didt_A_per_s": target},
+            "conditions": {**s.conditions, "didt_A_per_s": measured}})
+
+    table = estimate_losses([swept("A1", 2.5e8, 2.6e8, 300e-6), swept("A1", 1e9, 9.8e8, 600e-6)],
+                            [20e3])
+    texts = []
+    for f in loss_flowables(table, getSampleStyleSheet()):
+        for inner in getattr(f, "_content", [f]):
+            texts += [str(c) for row in getattr(inner, "_cellvalues", []) for c in row]
+    assert "di/dt" in texts and "260 MA/s" in texts and "980 MA/s" in texts
+    single = estimate_losses([swept("A1", 1e9, 9.8e8, 600e-6)], [20e3])
+    cells = [str(c) for f in loss_flowables(single, getSampleStyleSheet())
+             for inner in getattr(f, "_content", [f])
+             for row in getattr(inner, "_cellvalues", []) for c in row]
+    assert "di/dt" not in cells

@@ -4,7 +4,10 @@ Layout: title and safety caution; what was swept; one figure per metric (Qrr, Ir
 softness) with three panels — against IF, against di/dt, against T — each point the mean of
 its valid shots with an error bar of its Type A standard uncertainty s/√n (GUM 4.2; no bar
 with one shot), the fitted trend drawn through it; the table of fits (model, exponent or
-temperature coefficient with its standard error, %/K); the points carrying flags.  The PDF
+temperature coefficient with its standard error, %/K); the fitted surfaces y(IF, VR, di/dt, T)
+of :mod:`benchrun.characterize.fits` (exponents and temperature coefficient per kelvin, relative
+and absolute, with standard errors, residual scatter and the measured ranges); the points
+carrying flags.  The PDF
 embeds the fits and points as JSON and is signed through the report package's signing entry
 point (:func:`benchrun.report.sign.sign_pdf_bytes`).
 """
@@ -21,6 +24,7 @@ import numpy as np
 
 from benchrun.analysis.metrics_meta import METRICS
 from benchrun.characterize.curves import CURVE_METRICS, Trend, fit_trends
+from benchrun.characterize.fits import AXIS_SYMBOL, MODEL_TEXT, SurfaceFit, metric_surfaces
 from benchrun.records import ShotResult
 from benchrun.units import format_si
 
@@ -110,6 +114,54 @@ def _trend_row(tr: Trend) -> list[str]:
     return [METRICS[tr.metric].name, law, held, str(len(tr.x)), slope, pct]
 
 
+SURFACE_TEXT = (
+    "Fitted surfaces: " + MODEL_TEXT + " (separable power law in IF, VR and di/dt, exponential "
+    "in T; common practice for scaling switching data between operating points), least "
+    "squares in ln y over one point per device and test point (valid shots), IF_ref, VR_ref "
+    "and di/dt_ref the geometric means and T_ref the mean of the points. c is the temperature "
+    "coefficient relative to the value (100·c %/K); c·y_ref the absolute one at T_ref. "
+    "± one standard error (covariance s² times the inverse of X'X, n − p degrees of freedom); "
+    "scatter: the "
+    "residual standard deviation of ln y. Valid over the measured ranges only; an axis not "
+    "swept (its values span less than 30 %, or 10 K) is held."
+)
+
+
+def _pm(value: float | None, se: float | None, fmt: str) -> str:
+    if value is None:
+        return "held"
+    return format(value, fmt) + ("" if se is None else " ± " + format(se, fmt))
+
+
+def _surface_rows(fits: Sequence[SurfaceFit]) -> list[list[str]]:
+    rows = [["metric", "part / lot", "n", "y_ref", "b IF", "b VR", "b di/dt", "c %/K",
+             "dy/dT at T_ref", "scat\u00adter", "measured ranges"]]
+    for f in fits:
+        unit = METRICS[f.quantity].unit if f.quantity in METRICS else f.unit
+        se_t = f.standard_error("temperature_K")
+        c_abs = f.absolute_per_kelvin
+        ranges = "; ".join(
+            f"{AXIS_SYMBOL[r.axis]} {format_si(r.minimum, _RANGE_UNIT[r.axis], 3)}"
+            + ("" if r.n_distinct < 2 else f"–{format_si(r.maximum, _RANGE_UNIT[r.axis], 3)}")
+            for r in f.ranges)
+        rows.append([
+            METRICS[f.quantity].name if f.quantity in METRICS else f.quantity,
+            f"{f.part} {f.lot}", str(f.n_points), format_si(f.y_ref, unit, 3),
+            _pm(f.coefficient("forward_current_A"), f.standard_error("forward_current_A"),
+                ".3f"),
+            _pm(f.coefficient("vr_V"), f.standard_error("vr_V"), ".3f"),
+            _pm(f.coefficient("didt_A_per_s"), f.standard_error("didt_A_per_s"), ".3f"),
+            _pm(f.percent_per_kelvin, None if se_t is None else 100 * se_t, ".3f"),
+            "held" if c_abs is None else format_si(c_abs, unit + "/K", 3),
+            "—" if f.residual_sd is None else f"{100 * f.residual_sd:.1f} %",
+            ranges])
+    return rows
+
+
+_RANGE_UNIT = {"forward_current_A": "A", "vr_V": "V", "didt_A_per_s": "A/s",
+               "temperature_K": "K"}
+
+
 def render_characterization(
     shots: Sequence[ShotResult],
     out_pdf: str | Path,
@@ -152,6 +204,18 @@ def render_characterization(
     table.setStyle(TableStyle([("FONTSIZE", (0, 0), (-1, -1), 6),
                                ("GRID", (0, 0), (-1, -1), 0.25, colors.grey)]))
     story += [Paragraph("Fitted trends", styles["Heading2"]), table]
+    surfaces, not_fitted = metric_surfaces(shots, CURVE_METRICS)
+    story += [Paragraph("Fitted surfaces and temperature coefficients", styles["Heading2"]),
+              Paragraph(escape(SURFACE_TEXT), body), Spacer(1, 3)]
+    if surfaces:
+        cell = styles["BodyText"].clone("cell", fontSize=6, leading=7)
+        srows = [[Paragraph(escape(c), cell) for c in row] for row in _surface_rows(surfaces)]
+        stable = Table(srows, repeatRows=1,
+                       colWidths=[32, 48, 20, 36, 44, 44, 44, 44, 40, 32, 68])
+        stable.setStyle(TableStyle([("GRID", (0, 0), (-1, -1), 0.25, colors.grey),
+                                    ("VALIGN", (0, 0), (-1, -1), "TOP")]))
+        story.append(stable)
+    story += [Paragraph(escape(f"Not fitted: {r}"), body) for r in not_fitted]
     story.append(Paragraph("Flagged points", styles["Heading2"]))
     story += [Paragraph(escape(f"• {f}"), body) for f in flagged] or [
         Paragraph("None.", body)]
@@ -168,6 +232,16 @@ def render_characterization(
                     "held": dict(t.held), "x": list(t.x), "y": list(t.y), "x_ref": t.x_ref,
                     "ref_value": t.ref_value, "slope": t.slope, "u_slope": t.u_slope}
                    for t in trends],
+        "surfaces": [{"metric": f.quantity, "part": f.part, "lot": f.lot,
+                      "reference": dict(f.reference), "terms": list(f.terms),
+                      "coefficients": list(f.coefficients),
+                      "standard_errors": [f.standard_error(None)]
+                      + [f.standard_error(a) for a in f.terms],
+                      "percent_per_kelvin": f.percent_per_kelvin,
+                      "absolute_per_kelvin": f.absolute_per_kelvin,
+                      "n_points": f.n_points, "residual_sd": f.residual_sd,
+                      "ranges": {r.axis: [r.minimum, r.maximum] for r in f.ranges}}
+                     for f in surfaces],
         "flagged": list(flagged),
     }
     signed = sign_pdf_bytes(pdf, signer, box, attachment=attachment,

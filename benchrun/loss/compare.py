@@ -9,7 +9,10 @@ Rules (stated with every comparison):
   linearly between the two nearest measured points. Never extrapolated; temperature is never
   interpolated.
 * The commutation di/dt must match too (recovery charge and energy grow with di/dt): the
-  mean measured di/dt of the two groups must agree within ``didt_tol`` (relative, default
+  reference groups whose mean measured di/dt differs from the part's by more than ``didt_tol``
+  are set aside before matching or interpolating (a di/dt sweep at one VR and IF is several
+  groups, see :func:`benchrun.loss.estimate.setting_key`); the mean measured di/dt of the
+  two groups must agree within ``didt_tol`` (relative, default
   25 %, the di/dt tolerance of the shipped sequences' test conditions), else the condition is
   reported as not matched with both values.  The measured di/dt includes part of the
   device's own recovery (its window reaches −0.5·Irrm), so two parts commutated by the same
@@ -143,12 +146,19 @@ def _reference_energy(
     same_t = [r for r in ref if abs(r.temperature_K - g.temperature_K) <= t_tol]
     if not same_t:
         return f"not measured at {format_si(g.temperature_K, 'K')}"
+    # a di/dt sweep holds several groups at one (T, VR, IF): keep those whose di/dt matches
+    # (or is not recorded), so neither the exact match nor an interpolation mixes di/dt
+    near = [r for r in same_t if _close(r.vr_nominal_V, g.vr_nominal_V, rel)
+            and _close(r.if_nominal_A, g.if_nominal_A, rel)]
+    same_didt = [r for r in same_t if _didt_check(g, [r], didt_tol) is None]
+    if near and not any(r in same_didt for r in near):
+        return _didt_check(g, near, didt_tol) or "di/dt differs"
+    if not same_didt:
+        return _didt_check(g, same_t, didt_tol) or "di/dt differs"
+    same_t = same_didt
     exact = [r for r in same_t if _close(r.vr_nominal_V, g.vr_nominal_V, rel)
              and _close(r.if_nominal_A, g.if_nominal_A, rel)]
     if exact:
-        differs = _didt_check(g, exact, didt_tol)
-        if differs:
-            return differs
         energy = sum(r.energy_mean_J for r in exact) / len(exact)
         bases = {r.basis for r in exact}
         return (energy, MATCH_MEASURED + _didt_note(g, exact),

@@ -23,8 +23,9 @@ Model (stated on the report and in ``benchrun loss``):
   nothing is scaled to other voltages or currents here. :func:`benchrun.loss.compare`
   interpolates between measured points only inside a measured sweep.
 
-Rows are formed per part, lot, device and nominal test point (temperature, VR, IF) from valid
-shots; groups aggregate the devices of one part/lot at one test point (mean and max).
+Rows are formed per part, lot, device and nominal test point (temperature, VR, IF and the
+di/dt setting: requested di/dt or gate resistance) from valid shots; groups aggregate the
+devices of one part/lot at one test point (mean and max).
 """
 
 from __future__ import annotations
@@ -35,6 +36,24 @@ from dataclasses import asdict, dataclass, field
 from typing import Any
 
 from benchrun.records import ShotResult
+
+#: What the loss estimate does, one claim per entry (key, sentence).  ``benchrun loss``, the
+#: report's loss page and :meth:`LossTable.to_dict` print these sentences, and
+#: ``tests/test_loss_model_text.py`` checks every claim against the code: change a sentence
+#: only with the code it describes.
+MODEL_CLAIMS: tuple[tuple[str, str], ...] = (
+    ("energy", "E = Err + Esw,rec: the diode's recovery energy Err plus the switch turn-on "
+     "energy the recovery causes, per commutation."),
+    ("switch_measured", "Esw,rec is measured (switch Eon minus the Eon modelled for a "
+     "charge-free diode) where the switch voltage was captured, marked 'measured'."),
+    ("switch_estimate", "Otherwise Esw,rec is the estimate VR·Qrr, marked 'estimate'."),
+    ("capacitive", "For a part declared capacitive (sequence loss.recovery: capacitive), "
+     "E = Esw,rec only: its Err is stored in the diode capacitance and returned, not "
+     "counted."),
+    ("power", "P = fsw·E: one recovery per switching period."),
+    ("valid_only", "Only valid shots count; with grades known, devices not graded conforming "
+     "are left out."),
+)
 
 BASIS_MEASURED = "measured"
 BASIS_ESTIMATE = "estimate"
@@ -67,6 +86,8 @@ class LossRow:
     if_A: float | None = None
     didt_A_per_s: float | None = None
     err_counted: bool = True
+    didt_target_A_per_s: float | None = None
+    gate_resistance_ohm: float | None = None
 
 
 @dataclass(frozen=True)
@@ -89,6 +110,8 @@ class LossGroup:
     power_max_W: tuple[float, ...]
     didt_mean_A_per_s: float | None = None
     err_counted: bool = True
+    didt_target_A_per_s: float | None = None
+    gate_resistance_ohm: float | None = None
 
 
 @dataclass(frozen=True)
@@ -139,6 +162,7 @@ class LossTable:
             "skipped": list(self.skipped),
             "rejected_excluded": self.rejected_excluded,
             "model": {
+                **dict(MODEL_CLAIMS),
                 "energy_per_commutation": "E = err_J + recovery-caused switch turn-on energy "
                 "(measured eon_recovery_J, else the estimate VR·Qrr); for a capacitive part "
                 "E = the switch energy only (err_J is stored in the diode capacitance and "
@@ -209,6 +233,15 @@ def point_key(shot: ShotResult) -> tuple[float, float, float]:
     return (round(p.temperature_K, 3), round(p.bus_voltage_V, 6), round(p.forward_current_A, 6))
 
 
+def setting_key(shot: ShotResult) -> tuple[float | None, float | None]:
+    """The di/dt setting of a shot's test point: (requested di/dt, gate resistance), each None
+    when the point does not name it.  Points of a di/dt sweep at one (T, VR, IF) differ here
+    only, and are kept apart (recovery energy grows with di/dt)."""
+    p = shot.point
+    return (None if p.didt_A_per_s is None else round(float(p.didt_A_per_s), 0),
+            None if p.gate_resistance_ohm is None else round(float(p.gate_resistance_ohm), 6))
+
+
 def capacitive_parts_of(manifest: dict[str, Any]) -> tuple[str, ...]:
     """The run's part when its sequence declares a capacitive recovery (``loss.recovery``)."""
     if manifest.get("loss_recovery") == RECOVERY_CAPACITIVE and manifest.get("part"):
@@ -275,12 +308,12 @@ def estimate_losses(
             reason = "no Err or no switch-energy figure in the metrics"
             skipped[reason] = skipped.get(reason, 0) + 1
             continue
-        key = (shot.part, shot.lot, shot.serial, *point_key(shot))
+        key = (shot.part, shot.lot, shot.serial, *point_key(shot), *setting_key(shot))
         per_device.setdefault(key, []).append((shot, *energy))
 
     rows: list[LossRow] = []
     for key, items in per_device.items():
-        part, lot, serial, temp, vr_nom, if_nom = key
+        part, lot, serial, temp, vr_nom, if_nom, didt_target, rg = key
         errs = [e for _, e, _, _ in items]
         sws = [s for _, _, s, _ in items]
         counted = part not in capacitive
@@ -295,17 +328,18 @@ def estimate_losses(
             vr_V=_mean_or_none([_finite(c.get("vr_V")) for c in conds]),
             if_A=_mean_or_none([_finite(c.get("if_A")) for c in conds]),
             didt_A_per_s=_mean_or_none([_finite(c.get("didt_A_per_s")) for c in conds]),
-            err_counted=counted,
+            err_counted=counted, didt_target_A_per_s=didt_target, gate_resistance_ohm=rg,
         ))
     rows.sort(key=lambda r: (r.part, r.lot, r.temperature_K, r.vr_nominal_V, r.if_nominal_A,
+                             r.didt_target_A_per_s or 0.0, r.gate_resistance_ohm or 0.0,
                              r.serial))
 
     grouped: dict[tuple, list[LossRow]] = {}
     for r in rows:
-        grouped.setdefault((r.part, r.lot, r.temperature_K, r.vr_nominal_V, r.if_nominal_A),
-                           []).append(r)
+        grouped.setdefault((r.part, r.lot, r.temperature_K, r.vr_nominal_V, r.if_nominal_A,
+                            r.didt_target_A_per_s, r.gate_resistance_ohm), []).append(r)
     groups = []
-    for (part, lot, temp, vr_nom, if_nom), members in grouped.items():
+    for (part, lot, temp, vr_nom, if_nom, didt_target, rg), members in grouped.items():
         energies = [m.energy_J for m in members]
         e_mean, e_max = _mean(energies), max(energies)
         groups.append(LossGroup(
@@ -319,6 +353,7 @@ def estimate_losses(
             power_max_W=tuple(f * e_max for f in freqs),
             didt_mean_A_per_s=_mean_or_none([m.didt_A_per_s for m in members]),
             err_counted=all(m.err_counted for m in members),
+            didt_target_A_per_s=didt_target, gate_resistance_ohm=rg,
         ))
     return LossTable(
         fsw_hz=freqs,

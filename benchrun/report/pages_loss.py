@@ -15,7 +15,13 @@ from xml.sax.saxutils import escape
 from reportlab.lib.styles import ParagraphStyle, getSampleStyleSheet
 from reportlab.platypus import Flowable, KeepTogether, LongTable, Paragraph, Spacer, TableStyle
 
-from benchrun.loss.estimate import BASIS_ESTIMATE, BASIS_MEASURED, BASIS_MIXED, LossTable
+from benchrun.loss.estimate import (
+    BASIS_ESTIMATE,
+    BASIS_MEASURED,
+    BASIS_MIXED,
+    MODEL_CLAIMS,
+    LossTable,
+)
 from benchrun.units import format_si
 
 #: The assumptions printed with every loss estimate.
@@ -84,12 +90,10 @@ def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] |
     freqs = ", ".join(format_si(f, "Hz", digits=3) for f in loss_table.fsw_hz)
     out: list[Flowable] = [
         Paragraph(escape(
-            "Energy lost per commutation because of the diode's reverse recovery, "
-            "E = Err + the switch turn-on energy the recovery causes (for a part declared "
-            "capacitive, the switch share only: its Err is stored and returned), and the "
-            "average power "
-            f"P = fsw·E at {freqs or 'no frequency'}. Means and maxima over the devices of "
-            "each part and lot at each test point (valid shots only)."), body),
+            "Energy lost per commutation because of the diode's reverse recovery and the "
+            f"average power at {freqs or 'no frequency'}; means and maxima over the devices "
+            "of each part and lot at each test point. "
+            + " ".join(sentence for _key, sentence in MODEL_CLAIMS)), body),
         Spacer(1, 3),
         Paragraph("Assumptions", h3),
     ]
@@ -102,13 +106,17 @@ def loss_flowables(loss_table: LossTable, styles: Mapping[str, ParagraphStyle] |
                              "figure.", body))
     for part, lot in loss_table.parts:
         groups = [g for g in loss_table.groups if (g.part, g.lot) == (part, lot)]
-        energy_rows = [["T", "VR", "IF", "devices", "basis", "Err", "Esw,rec", "E mean",
-                        "E max"]]
-        power_rows = [["T", "VR", "IF"] + [f"P @{format_si(f, 'Hz', digits=3)}"
-                                           for f in loss_table.fsw_hz]]
+        # a di/dt sweep holds several groups at one (T, VR, IF): show their measured di/dt
+        swept = len({(g.didt_target_A_per_s, g.gate_resistance_ohm) for g in groups}) > 1
+        head = ["T", "VR", "IF"] + (["di/dt"] if swept else [])
+        energy_rows = [[*head, "devices", "basis", "Err", "Esw,rec", "E mean", "E max"]]
+        power_rows = [head + [f"P @{format_si(f, 'Hz', digits=3)}"
+                              for f in loss_table.fsw_hz]]
         for g in groups:
             condition = [format_si(g.temperature_K, "K", 3), format_si(g.vr_nominal_V, "V", 3),
                          format_si(g.if_nominal_A, "A", 3)]
+            if swept:
+                condition.append(format_si(g.didt_mean_A_per_s, "A/s", 3))
             energy_rows.append([
                 *condition, str(g.n_devices), g.basis, format_si(g.err_mean_J, "J", 3),
                 format_si(g.switch_mean_J, "J", 3), format_si(g.energy_mean_J, "J", 3),
