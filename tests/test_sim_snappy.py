@@ -1,20 +1,20 @@
-"""The invented snappy part DX-4425 on the simulated bench: passes at nominal, snaps at worst case.
+"""The invented snappy part DX-4425 on the simulated bench: soft at nominal, snaps at worst case.
 
-Physics (benchrun.simulator.diode_models, punch-through sweep-out): the stored charge is
-exhausted when the depletion layer reaches the end of the base (Vpt ≈ 1000 V for DX-4425), so a
-recovery whose overshoot VR + Ls·di/dt approaches Vpt ends abruptly: the current's slope after
-the peak exceeds the commutation di/dt and the peak reverse voltage rises beyond VR + Ls·di/dt
-(snap indicators as DESIGN.md's measurement notes describe them; computed here on the dense
-simulator waveforms, common practice).
+Physics (benchrun.simulator.diode_models: sweep-out with the plasma-extent law): the plasma fills
+the base only at high stored charge, so the depletion layer runs out of plasma at
+Vex = Vpt·Q0/(Q0 + Q_h); with little charge (low current, cold) that lies below VR and the
+recovery ends abruptly.  Real PiN behaviour (B. J. Baliga, Fundamentals of Power Semiconductor
+Devices, ch. 5, from memory): softness falls at low current, snappier at high di/dt and cold.
+Snap indicator: the steepest current slope after the peak over the commutation slope, on the
+dense simulator waveforms; the analysis flags ``snap`` above 3 (benchrun.analysis.quality,
+SNAP_MULTIPLE, common practice).
 """
 
 from __future__ import annotations
 
 import dataclasses
-import math
 
 import numpy as np
-import pytest
 
 from benchrun.simulator.devices import load_virtual_parts
 from benchrun.simulator.physics import (
@@ -26,11 +26,11 @@ from benchrun.simulator.physics import (
 )
 
 
-def indicators(current_A: float, rg: float, temperature_K: float, vr: float, vpt=None):
+def indicators(current_A: float, rg: float, temperature_K: float, vr: float, fill=None):
     part = load_virtual_parts().part("DX-4425")
     diode = part.nominal_model()
-    if vpt is not None:
-        diode = dataclasses.replace(diode, punch_through_V=vpt)
+    if fill is not None:
+        diode = dataclasses.replace(diode, plasma_fill_charge_C=fill)
     fx = Fixture()
     timing = PulseTiming(first_pulse_for_current(fx, vr, current_A), 3e-6, 2e-6)
     wf = simulate_double_pulse(fx, SwitchModel(gate_resistance_ohm=rg), diode, timing, vr,
@@ -44,23 +44,32 @@ def indicators(current_A: float, rg: float, temperature_K: float, vr: float, vpt
             "vrm_expected": vr + fx.stray_inductance_H * commutation}
 
 
-def test_snappy_part_passes_at_nominal_and_snaps_at_worst_case():
+SNAP = 3.0  # benchrun.analysis.quality.SNAP_MULTIPLE
+WORST = (3.0, 4.0, 233.15, 800.0)  # 10 % of rated IF, fast commutation, -40 degC, 800 V
+
+
+def test_snappy_part_is_soft_at_nominal_and_snaps_at_worst_case():
     nominal = indicators(30.0, 10.0, 298.15, 600.0)
-    worst = indicators(30.0, 4.0, 233.15, 800.0)
+    worst = indicators(*WORST)
+    assert nominal["slope_ratio"] < SNAP
     assert nominal["vrm"] < 960.0  # DX-4425 limit: 80 % of VRRM
-    assert worst["vrm"] > 960.0
-    assert worst["slope_ratio"] > 1.5 * nominal["slope_ratio"]
+    assert worst["slope_ratio"] > 2.0 * SNAP
 
 
-def test_snap_comes_from_the_punch_through():
-    snappy = indicators(30.0, 4.0, 298.15, 800.0)
-    plain = indicators(30.0, 4.0, 298.15, 800.0, vpt=math.inf)
-    assert snappy["slope_ratio"] > 3.0 * plain["slope_ratio"]
-    assert snappy["vrm"] - snappy["vrm_expected"] > plain["vrm"] - plain["vrm_expected"] + 100.0
+def test_softness_falls_at_low_current():
+    low = indicators(*WORST)
+    rated = indicators(30.0, 4.0, 233.15, 800.0)  # same di/dt setting, cold, VR
+    assert rated["slope_ratio"] < SNAP < low["slope_ratio"]
 
 
-@pytest.mark.parametrize("vr", [700.0, 800.0])
-def test_higher_reverse_voltage_is_snappier(vr):
-    low = indicators(30.0, 4.0, 298.15, vr - 100.0)
-    high = indicators(30.0, 4.0, 298.15, vr)
-    assert high["slope_ratio"] > low["slope_ratio"]
+def test_hot_is_softer_and_faster_commutation_snappier():
+    cold = indicators(*WORST)
+    hot = indicators(3.0, 4.0, 398.15, 800.0)
+    slow = indicators(3.0, 10.0, 233.15, 800.0)
+    assert hot["slope_ratio"] < cold["slope_ratio"]
+    assert slow["slope_ratio"] < cold["slope_ratio"]
+
+
+def test_snap_comes_from_the_plasma_extent():
+    plain = indicators(*WORST, fill=0.0)  # plasma fills the base: sweep-out alone
+    assert plain["slope_ratio"] < SNAP < indicators(*WORST)["slope_ratio"]

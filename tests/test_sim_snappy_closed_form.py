@@ -79,3 +79,18 @@ def test_transit_time_and_lifetime_follow_temperature():
     assert hot.tm_s / cold.tm_s == pytest.approx((398.15 / 233.15) ** 1.5)
     assert hot.tau_s / cold.tau_s == pytest.approx((398.15 / 233.15) ** 2.0)
     assert hot.tail_time_constant_s > cold.tail_time_constant_s
+
+
+def test_plasma_extent_law():
+    """Vex = Vpt·Q0/(Q0 + Q_h) (module docstring); Q_h = 0 leaves Vpt unchanged."""
+    fill = dataclasses.replace(SNAPPY, plasma_fill_charge_C=2e-6)
+    jp = fill.at_temperature(298.15)
+    assert jp.at_stored_charge(2e-6).vpt_V == pytest.approx(350.0)
+    assert jp.at_stored_charge(6e-6).vpt_V == pytest.approx(700.0 * 6 / 8)
+    assert jp.at_stored_charge(0.0) is jp  # nothing stored, nothing swept
+    plain = SNAPPY.at_temperature(298.15)
+    assert plain.at_stored_charge(1e-7) is plain
+    # the pure sweep then exhausts the charge at −Vex: qM ∝ 1 − f(v) reaches 0 there
+    ex = jp.at_stored_charge(2e-6)
+    assert ex.depleted_fraction(-350.0) == pytest.approx(1.0)
+    assert ex.sweep_capacitance(-351.0, 1e-6) == 0.0

@@ -39,6 +39,25 @@ Two models:
   at high di/dt (the overshoot VR + Ls·di/dt reaches Vpt) and at high VR.  ``punch_through_V``
   = inf (default) switches it off and the model is exactly Lauritzen-Ma.
 
+  **Plasma extent set by the stored charge** (``plasma_fill_charge_C`` = Q_h, 0 = off; our
+  variant, on top of the sweep-out).  The plasma of a PiN diode fills the whole low-doped base
+  only at high injection; at low current density the cathode side injects little and the
+  plasma thins out towards it (B. J. Baliga, *Fundamentals of Power Semiconductor Devices*,
+  Springer 2008, ch. 5, on the carrier distribution and the reverse recovery of PiN
+  rectifiers; Lutz et al., ch. 5; both from memory).  We describe the depth of the plasma
+  x_p ≤ W by the saturating law (x_p/W)² = Q0/(Q0 + Q_h), Q0 the charge stored when the
+  recovery starts (frozen over the recovery: a quasi-static approximation of ours).  By the
+  square-root depletion law the layer reaches the end of the plasma at
+
+      Vex = Vpt·Q0/(Q0 + Q_h)
+
+  and the sweep-out above runs with Vex in place of Vpt.  The recovery then ends abruptly
+  when the layer runs out of plasma below the reverse voltage: at low forward current (small
+  Q0), cold (Q0 = τ(T)·IF falls with the lifetime), at high VR and at high di/dt (a steeper
+  commutation leaves less charge when the voltage builds up).  At rated current and hot the
+  plasma fills the base, Vex lies far above VR and the recovery ends in the recombination
+  tail: soft.  Q_h = 0 keeps Vex = Vpt (the sweep-out alone).
+
   The transit time may depend on temperature, TM(T) = TM·(T/T0)^a (``tm_temp_exponent``; TM
   = W²/(2·Da) and the ambipolar diffusivity Da falls as T rises, a ≈ 1-1.5, from memory).
 
@@ -57,6 +76,7 @@ Temperature laws (compact-model practice, exponents from memory):
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 
@@ -71,6 +91,9 @@ _EXP_LIMIT = 80.0
 _EXP_AT_LIMIT = math.exp(_EXP_LIMIT)
 #: smallest undepleted base fraction 1 − f used in the sweep capacitance (numerical floor)
 SWEEP_FLOOR = 0.01
+#: smallest voltage at which the layer reaches the end of the plasma (numerical floor: an event
+#: that starts with almost no stored charge has almost nothing to sweep)
+MIN_PLASMA_PUNCH_THROUGH_V = 1.0
 
 
 def thermal_voltage(temperature_K: float) -> float:
@@ -119,6 +142,7 @@ class LauritzenMaDiode:
     rs_temp_exponent: float = 0.0
     punch_through_V: float = math.inf
     tm_temp_exponent: float = 0.0
+    plasma_fill_charge_C: float = 0.0
 
     kind = "lauritzen-ma"
 
@@ -145,6 +169,7 @@ class LauritzenMaDiode:
             m=self.m,
             fc=self.fc,
             vpt_V=self.punch_through_V,
+            qfill_C=self.plasma_fill_charge_C,
         )
 
 
@@ -207,6 +232,19 @@ class JunctionParams:
     m: float
     fc: float
     vpt_V: float = math.inf  # punch-through voltage of the sweep-out extension (inf = off)
+    qfill_C: float = 0.0  # charge Q_h of the plasma-extent law (0 = the plasma fills the base)
+
+    def at_stored_charge(self, q_stored_C: float) -> JunctionParams:
+        """Parameters for a recovery that starts with stored charge ``q_stored_C``.
+
+        With the plasma-extent law (``qfill_C`` > 0) the depletion layer reaches the end of the
+        plasma at Vex = Vpt·Q0/(Q0 + Q_h) (see the module docstring); this returns a copy whose
+        ``vpt_V`` is Vex (unchanged otherwise, and for Q0 ≤ 0, where nothing can be swept).
+        """
+        if not self.has_sweep_out or self.qfill_C <= 0.0 or q_stored_C <= 0.0:
+            return self
+        vex = self.vpt_V * q_stored_C / (q_stored_C + self.qfill_C)
+        return dataclasses.replace(self, vpt_V=max(vex, MIN_PLASMA_PUNCH_THROUGH_V))
 
     @property
     def is_charge_control(self) -> bool:
