@@ -4,12 +4,11 @@ Model: Lauritzen-Ma charge control (IEEE Trans. Power Electronics 6(2), 1991) wi
 sweep-out and plasma-extent extensions (benchrun.simulator.diode_models): the depletion layer
 runs out of plasma at Vex = Vpt·Q0/(Q0 + Q_h).  Circuit: the diode, conducting IF, is switched
 onto a source of −VR through a loop inductance L, Cp across the diode
-(:func:`simulate_inductive_recovery`), so the snap-off current drives the overshoot and the L-C ringing.  ngspice (an independent circuit
-simulator, from Debian) integrates another formulation of the same equations: it carries the
-plasma density p = qM/(1 − f) (dp/dt = i/(1 − f) − p/τ), takes the sweep current −p·df/dt
-with df/dt from a 1 F capacitor driven by f, and uses its own junction-capacitance model.
-Peak reverse current, peak reverse voltage and its instant, and the current along the
-recovery must agree.
+(:func:`simulate_inductive_recovery`).  ngspice (an independent circuit simulator, from
+Debian) integrates another formulation of the same equations: it carries the plasma density
+p = qM/(1 − f) (dp/dt = i/(1 − f) − p/τ), takes the sweep current −p·df/dt with df/dt from a
+1 F capacitor driven by f, and uses its own junction-capacitance model.  Peak reverse
+current, peak reverse voltage and its instant, and the current along the recovery must agree.
 """
 
 from __future__ import annotations
