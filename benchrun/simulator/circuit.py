@@ -39,10 +39,11 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.integrate import odeint
+from scipy.integrate import ODEintWarning, odeint, solve_ivp
 
 from benchrun.simulator.diode_models import SWEEP_FLOOR, JunctionParams, limited_exp_array
 
@@ -280,12 +281,16 @@ def _make_rhs(c: EventCircuit):
         else:
             cap = c_lin0 + c_lin1 * vj
             dcap = c_lin1
-        cx = 0.0
+        cx = dcx = 0.0
         if sweep and vj < 0.0 and q > 0.0:
             root = sqrt(vj_v - vj)
             f = (root - root_vj) / span
             if f < 1.0:
                 cx = tau * q / (2.0 * root * span * max(1.0 - f, sweep_floor))
+                # ∂cx/∂vj: d ln cx/dvj = 1/(2·root²) − 1/(2·root·span·(1 − f)) (unfloored)
+                dcx = cx / (2.0 * root * root)
+                if 1.0 - f > sweep_floor:
+                    dcx -= cx / (2.0 * root * span * (1.0 - f))
         ctot = cap + Cpar + cx
         i_d = (IL - iLs) * inv_k - (vj - vsw + Vbus) * inv_rpk
         # ∂i_d/∂(vsw, iLs, IL, vj) and ∂v_d/∂(...)
@@ -320,16 +325,16 @@ def _make_rhs(c: EventCircuit):
         dvd = (0.0, Rs * did_vsw, Rs * did_ils, Rs * did_il, 1.0 + Rs * did_vj, 0.0)
         row2 = [0.0, (dvd[1] - 1.0) / Ls, dvd[2] / Ls, dvd[3] / Ls, dvd[4] / Ls, 0.0]
         row3 = [0.0, -dvd[1] / L, -dvd[2] / L, (-dvd[3] - R) / L, -dvd[4] / L, 0.0]
-        dvj_dvj = (did_vj - dij_dvj) / ctot - (i_d - ij) * dcap / (ctot * ctot)
+        dvj_dvj = (did_vj - dij_dvj) / ctot - (i_d - ij) * (dcap + dcx) / (ctot * ctot)
         dvj = (i_d - ij) / ctot
         dcx_dq = cx / q if cx > 0.0 else 0.0
         row4 = [
             0.0, did_vsw / ctot, did_ils / ctot, did_il / ctot, dvj_dvj,
             c_q / ctot - dvj * dcx_dq / ctot,
         ]
-        # sweep term cx·dvj/τ (∂cx/∂vj neglected: the Jacobian only steers Newton's iteration)
+        # sweep term cx·dvj/τ
         row5 = [0.0] + [cx * d * inv_tau for d in row4[1:]]
-        row5[4] += dij_dvj * inv_tau
+        row5[4] += (dij_dvj + dcx * dvj) * inv_tau
         row5[5] += (-c_q - 1.0 + dcx_dq * dvj) * inv_tau
         return [row0, row1, row2, row3, row4, row5]
 
@@ -337,6 +342,9 @@ def _make_rhs(c: EventCircuit):
 
 
 _ATOL = np.array([1e-4, 1e-3, 1e-4, 1e-4, 1e-4, 1e-5])
+#: steps allowed per output interval with the analytic Jacobian before the chunk is retried
+#: with a finite-difference one (an output interval is at most 0.1 ns: 5000 steps is ample)
+_MXSTEP_JAC = 5000
 
 
 @dataclass(frozen=True)
@@ -394,11 +402,22 @@ def solve_event(
         grid = t_now + dt * np.arange(n_chunk + 1)
         if grid[-1] >= t_limit:
             grid = np.append(grid[grid < t_limit - 0.01 * dt], t_limit)
-        sol, info = odeint(
-            rhs, y_now, grid, Dfun=jac, rtol=1e-6, atol=_ATOL, mxstep=200000, full_output=True
-        )
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ODEintWarning)
+            sol, info = odeint(
+                rhs, y_now, grid, Dfun=jac, rtol=1e-6, atol=_ATOL, mxstep=_MXSTEP_JAC,
+                full_output=True,
+            )
         if info["message"] != "Integration successful.":
-            raise RuntimeError(f"circuit integration failed: {info['message']}")
+            # LSODA can stall with femtosecond steps during the sweep-out of stored charge
+            # (seen for some devices and states): the chunk is integrated again by Radau IIA
+            # (scipy.integrate.solve_ivp, implicit, same Jacobian)
+            ivp = solve_ivp(lambda tt, yy: rhs(yy, tt), (float(grid[0]), float(grid[-1])),
+                            y_now, method="Radau", t_eval=grid, rtol=1e-6, atol=_ATOL,
+                            jac=lambda tt, yy: jac(yy, tt))
+            if not ivp.success:
+                raise RuntimeError(f"circuit integration failed: {ivp.message}")
+            sol = ivp.y.T
         ts.append(grid[1:])
         ys.append(sol[1:])
         t_now, y_now = float(grid[-1]), sol[-1]
