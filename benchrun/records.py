@@ -47,6 +47,9 @@ class TestPoint:
     didt_A_per_s: float | None = None
     gate_resistance_ohm: float | None = None
     label: str = ""
+    #: qualification step the point serves ("" = none; "worst_case_snappiness":
+    #: :mod:`benchrun.analysis.snappiness`), from the sequence's ``qualification``
+    qualification: str = ""
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)

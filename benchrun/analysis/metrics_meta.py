@@ -81,6 +81,16 @@ _TABLE = (
     ("vfp_V", "V", "VFP", "peak forward voltage at the diode's turn-on (forward recovery)"),
     ("tfr_s", "s", "tfr",
      "forward recovery time: current through 10 % of IF to voltage below 1.1·VF"),
+    ("overshoot_V", "V", "VRM−VR", "peak reverse voltage above the steady reverse voltage"),
+    ("ring_amplitude_A", "A", "I(ring)",
+     "largest current excursion after t2 from its settled level (snappiness.py)"),
+    ("ring_frequency_Hz", "Hz", "f(ring)",
+     "frequency of the current oscillation after t2, from its half-cycle peaks"),
+    ("ring_decay_s", "s", "τ(ring)",
+     "decay time constant of the oscillation's envelope after t2 (log-linear fit of its "
+     "half-cycle peaks)"),
+    ("vrm_dwell_s", "s", "VRM dwell",
+     "time the reverse voltage stays within 2 % of VRM around its peak (a clamp holds)"),
 )
 
 #: The recovery time intervals each metric needs resolved (linear-interpolation timing

@@ -21,6 +21,7 @@ import numpy as np
 from benchrun.analysis.conditioning import codes_to_volts, deskew, detect_clipping, scale
 from benchrun.analysis.forward import ForwardMetrics, analyze_forward
 from benchrun.analysis.recovery import RecoveryMetrics, RecoveryOptions, analyze_recovery
+from benchrun.analysis.snappiness import OscillationMetrics, analyze_oscillation
 from benchrun.analysis.switching import (
     analyze_switch_turn_on,
     switch_current_from_diode,
@@ -107,6 +108,7 @@ class ShotAnalysis:
     switching: SwitchingMetrics | None = None
     flags: tuple[str, ...] = field(default=())
     forward: ForwardMetrics | None = None
+    oscillation: OscillationMetrics | None = None
 
     def metrics(self) -> dict[str, float | None]:
         """All numeric keys of the recovery, switching and forward results, merged, and the
@@ -116,6 +118,8 @@ class ShotAnalysis:
             out.update(_numeric_items(self.switching))
         if self.forward is not None:
             out.update(_numeric_items(self.forward))
+        if self.oscillation is not None:
+            out.update(self.oscillation.to_dict())
         for key, u in self.recovery.u.items():
             if u is not None:
                 out[CAPTURE_U_PREFIX + key] = u
@@ -216,12 +220,18 @@ def analyze_channels(
         switching = switching_estimate(recovery)
     forward = _forward(t_start, dt, physical, channels[DIODE_VOLTAGE], probes[DIODE_VOLTAGE],
                        recovery)
+    # what follows the recovery: overshoot, oscillation, flat top (benchrun.analysis.snappiness)
+    t_axis = t_start + dt * np.arange(physical[DIODE_VOLTAGE].size)
+    oscillation = analyze_oscillation(t_axis, physical[DIODE_VOLTAGE], physical[DIODE_CURRENT],
+                                      t0_s=recovery.t0_s, t2_s=recovery.t2_s,
+                                      vr_V=recovery.vr_V, vrm_V=recovery.vrm_V)
     return ShotAnalysis(
         recovery=recovery,
         switching=switching,
         flags=_merge_flags(recovery.flags, switch_flags, forward.flags,
                            *conditioning_flags.values()),
         forward=forward,
+        oscillation=oscillation,
     )
 
 

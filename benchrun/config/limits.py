@@ -20,6 +20,15 @@ a limit that names an undefined condition). Example (``limits/DX-4417.yaml``)::
     uncertainty: {coverage_factor: 2}                  # GUM (JCGM 100:2008) settings
     bins: {metric: qrr_C, condition: 125C, classes: [{name: Q1, max: 4 uC}, ...]}
     lot: {lot_size: 10, sample_size: 10, plan: zero-acceptance, aql: 1 %}
+    worst_case:                         # optional: the worst-case snappiness step
+      condition: worst-case             # graded at the test point the sequence marks
+      rated_voltage: 1200 V             # VRRM
+      max_overshoot_excess: 10 %        # of VR + Ls·di/dt (Ls: the bench's stray inductance)
+      max_ring_amplitude: 20 %          # of Irrm, after the recovery
+      max_ring_decay: 100 ns            # envelope decay time constant
+      avalanche_fraction: 90 %          # of VRRM ...
+      clamp_time: 5 ns                  # ... held this long: dynamic avalanche suspected
+      allow_snap: false                 # the snap flag (RRSF < 1/3) fails the step
 
 Every limit, bin edge, tolerance and absolute uncertainty input is written with its unit
 (``150 ns``, ``5 %``, ``3 K``): a bare number is refused at its line
@@ -52,6 +61,7 @@ from benchrun.config.crosscheck import check_bin_order
 from benchrun.config.explicit import (
     ExplicitFraction,
     ExplicitTemperatureBand,
+    ExplicitTimeBound,
     ExplicitTolerance,
     explicit,
     has_no_unit,
@@ -389,6 +399,21 @@ class ConventionSpec(StrictModel):
     trr_threshold_fraction: float = Field(default=0.25, gt=0, lt=1)
 
 
+class WorstCaseSpec(StrictModel):
+    """``worst_case:`` block: limits of the worst-case snappiness step
+    (:mod:`benchrun.analysis.snappiness`), applied to the worst shot of the test point the
+    sequence marks ``qualification: worst_case_snappiness`` (at ``condition``)."""
+
+    condition: str = Field(min_length=1)
+    rated_voltage: _Voltage = Field(gt=0)
+    max_overshoot_excess: ExplicitFraction = Field(gt=0)
+    max_ring_amplitude: ExplicitFraction = Field(gt=0)
+    max_ring_decay: ExplicitTimeBound = Field(gt=0)
+    avalanche_fraction: ExplicitFraction = Field(default=0.9, gt=0)
+    clamp_time: ExplicitTimeBound = Field(default=5e-9, gt=0)
+    allow_snap: bool = False
+
+
 class LimitsSpec(StrictModel):
     """A whole limits file."""
 
@@ -403,6 +428,7 @@ class LimitsSpec(StrictModel):
     bins: BinSpec | None = None
     lot: LotRule
     convention: ConventionSpec = ConventionSpec()
+    worst_case: WorstCaseSpec | None = None
 
     def condition(self, name: str) -> Condition:
         """The condition called ``name``."""
@@ -457,6 +483,9 @@ def _cross_check(spec: LimitsSpec, filename: str, lines: dict[tuple[Any, ...], i
     for index, extra in enumerate(spec.uncertainty.extra):
         if extra.metric not in {item.metric for item in spec.limits}:
             fail(f"{extra.metric} has no limit to budget for", ("uncertainty", "extra", index))
+    if spec.worst_case is not None and spec.worst_case.condition not in names:
+        fail(f"unknown condition {spec.worst_case.condition!r} (defined: {', '.join(names)})",
+             ("worst_case", "condition"))
     if spec.bins is not None:
         if spec.bins.condition is not None and spec.bins.condition not in names:
             fail(f"unknown condition {spec.bins.condition!r}", ("bins", "condition"))

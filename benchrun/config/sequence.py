@@ -95,6 +95,9 @@ class TestPointSpec(StrictModel):
     didt: CurrentSlope | None = Field(default=None, gt=0)
     repeats: int = Field(default=1, ge=1, le=1000)
     shot_spacing: Time = Field(default=0.5, ge=0)
+    #: the qualification step this point serves: ``worst_case_snappiness`` grades its worst
+    #: shot by the limits file's ``worst_case`` block (benchrun.analysis.snappiness)
+    qualification: Literal["worst_case_snappiness"] | None = None
 
     @model_validator(mode="after")
     def _drive(self) -> TestPointSpec:

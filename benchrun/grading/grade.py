@@ -70,6 +70,7 @@ from benchrun.grading.uncertainty import (
     triangular,
     type_a,
 )
+from benchrun.grading.worst_case import WorstCaseGrade, grade_worst_case
 from benchrun.records import ShotResult, TestPoint, invalid_for_conditions_only
 from benchrun.units import format_si
 
@@ -657,6 +658,7 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
         devices.append(device)
         samples[serial] = device_samples
         acquisitions[serial] = device_acq
+    devices, worst_case = _apply_worst_case(shots, limits, points, bench, devices)
     verdicts = {d.serial: d.verdict for d in devices}
     decision, reasons = disposition(
         verdicts,
@@ -688,7 +690,40 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
         plan=sampling_plan(limits.lot),
         instrument_inputs=inputs.to_dict(),
         limits=_limit_table(limits),
+        worst_case=tuple(worst_case),
     )
+
+
+def _apply_worst_case(shots: Sequence[ShotResult], limits: LimitsSpec,
+                      points: Mapping[str, TestPoint | None],
+                      bench: BenchConfig | InstrumentInputs,
+                      devices: list[DeviceGrade]) -> tuple[list[DeviceGrade], list[WorstCaseGrade]]:
+    """Grade the worst-case snappiness step (:mod:`benchrun.grading.worst_case`) and fold its
+    outcome into each device's verdict and reasons."""
+    spec = limits.worst_case
+    valid: dict[int, bool] = {}
+    if spec is not None:
+        condition = limits.condition(spec.condition)
+        for shot in shots:
+            valid[id(shot)] = not shot_problems(shot, condition, limits.tolerances)
+    stray = bench.fixture.stray_inductance if isinstance(bench, BenchConfig) else None
+    graded = grade_worst_case(shots, spec, points, stray_inductance_H=stray, valid=valid)
+    by_serial = {g.serial: g for g in graded}
+    out = []
+    for device in devices:
+        step = by_serial.get(device.serial)
+        if step is None:
+            out.append(device)
+            continue
+        verdict = worst([device.verdict, step.outcome])
+        reasons = list(device.reasons)
+        if step.outcome != CONFORMING:
+            if reasons and reasons[0] == "every limit met at every required condition":
+                reasons[0] = "every limit met at every required condition but the worst case"
+            reasons.append(step.reason)
+        out.append(replace(device, verdict=verdict, reasons=tuple(reasons),
+                           bin=device.bin if verdict == CONFORMING else None))
+    return out, graded
 
 
 def _limit_table(spec: LimitsSpec) -> tuple[dict[str, Any], ...]:

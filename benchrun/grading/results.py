@@ -130,6 +130,8 @@ class LotGrade:
     instrument_inputs: dict[str, Any] = field(default_factory=dict)
     #: every limit in force per condition: metric, condition, unit, lower, upper, aggregation
     limits: tuple[dict[str, Any], ...] = ()
+    #: the worst-case snappiness step per device (:mod:`benchrun.grading.worst_case`)
+    worst_case: tuple[Any, ...] = ()
 
     def device(self, serial: str) -> DeviceGrade:
         """The grade of the device ``serial``."""
@@ -156,6 +158,8 @@ class LotGrade:
             "instrument_inputs": dict(self.instrument_inputs),
             "limits": [dict(row) for row in self.limits],
         }
+        if self.worst_case:  # only when graded: earlier grades keep their dictionary
+            data["worst_case"] = [w.to_dict() for w in self.worst_case]
         return json_safe(data)
 
 

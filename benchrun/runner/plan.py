@@ -335,6 +335,7 @@ def expand_with_specs(sequence: SequenceConfig) -> list[tuple[TestPoint, TestPoi
                 didt_A_per_s=spec.didt,
                 gate_resistance_ohm=spec.gate_resistance,
                 label=f"{label} @ {temperature - 273.15:g} degC",
+                qualification=spec.qualification or "",
             )
             pairs.append((point, spec))
     return pairs

@@ -35,6 +35,8 @@ def shot_row(shot: ShotResult, bench_id: str | None = None) -> dict[str, Any]:
     # the values of shot.to_dict(), without its deep copy (everything is serialised here)
     data = {f.name: getattr(shot, f.name) for f in fields(shot)}
     data["point"] = {f.name: getattr(shot.point, f.name) for f in fields(shot.point)}
+    if not data["point"].get("qualification"):  # added later: rows without one stay as they were
+        data["point"].pop("qualification", None)
     data["flags"] = list(shot.flags)
     point = data["point"]
     extra = {k: v for k, v in data.items() if k not in SHOT_COLUMNS}
