@@ -47,7 +47,7 @@ def graded(tmp_path_factory):
 
 @pytest.mark.slow
 def test_snappy_part_is_flagged_at_the_worst_case_and_passes_at_nominal(graded):
-    outcome, run, lot = graded
+    outcome, _, lot = graded
     assert outcome.status == "complete"
     assert len(lot.worst_case) == 6
     for device in lot.devices:
