@@ -109,3 +109,14 @@ def test_limits_block_needs_units_and_a_known_condition(tmp_path):
                                   "  condition: coldest\n  rated_voltage"))
     with pytest.raises(ConfigError, match="coldest"):
         load_limits(wrong)
+
+
+@pytest.mark.slow
+def test_the_report_table_carries_the_step_reason(graded):
+    from benchrun.report.facts_gather import _device_lines
+
+    _, _, lot = graded
+    lines, _ = _device_lines(lot)
+    worst = [line for line in lines if line.condition == "worst-case"]
+    assert len(worst) == 6
+    assert all("worst-case snappiness at worst-case failed" in line.note for line in worst)
