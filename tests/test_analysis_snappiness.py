@@ -119,3 +119,11 @@ def test_missing_evidence_fails_and_severity_orders_shots():
     mild = assess_snappiness(metrics(vrm_V=930.0), (), stray_inductance_H=40e-9, limits=LIMITS)
     bad = assess_snappiness(metrics(vrm_V=990.0), (), stray_inductance_H=40e-9, limits=LIMITS)
     assert bad.severity > 1.0 > mild.severity
+
+
+def test_a_ring_that_does_not_decay_within_reach_has_no_decay_time():
+    # constant-amplitude oscillation: the envelope does not fall, no time constant is resolved
+    t, v, i, t2 = ringing_record(tau=1.0)
+    m = analyze_oscillation(t, v, i, t0_s=t2 - 40e-9, t2_s=t2, vr_V=800.0, vrm_V=800.0)
+    assert m.ring_decay_s is None
+    assert m.ring_frequency_Hz == pytest.approx(80e6, rel=0.02)

@@ -33,7 +33,8 @@ Definitions (ours, stated so a reader can repeat them):
   ``ring_amplitude_A``: the largest excursion; ``ring_frequency_Hz``:
   1 / (2 × mean spacing of successive lobe peaks); ``ring_decay_s``: −1/slope of the
   least-squares line through ln(amplitude) against time of the lobe peaks (exponential
-  envelope of a damped L-C ring), with at least 3 lobes, else None.
+  envelope of a damped L-C ring), with at least 3 lobes and a falling envelope whose time
+  constant is at most ``RING_DECAY_MAX_MULTIPLE`` window spans, else None.
 * ``vrm_dwell_s``: how long the reverse voltage stays within ``DWELL_FRACTION`` of VRM around
   its peak, contiguous samples × dt.
 """
@@ -56,6 +57,9 @@ RING_WINDOW_MIN_S = 200e-9
 #: many noise sigmas (a lobe must stand out of the noise to count).
 RING_HYSTERESIS = 0.1
 RING_NOISE_MULTIPLE = 5.0
+#: A decay time constant beyond this many window spans is not resolved (the envelope barely
+#: falls within the window): reported as None, the amplitude limit judges such a ring.
+RING_DECAY_MAX_MULTIPLE = 20.0
 #: A voltage "at its peak" lies within this fraction of VRM (flat-top dwell).
 DWELL_FRACTION = 0.02
 
@@ -145,7 +149,8 @@ def analyze_oscillation(t: np.ndarray, v: np.ndarray, i: np.ndarray, *, t0_s: fl
                 lna = np.log(np.abs(dev[peaks]))
                 tc = tp - tp.mean()
                 slope = float(np.dot(tc, lna - lna.mean()) / np.dot(tc, tc))
-                decay = -1.0 / slope if slope < 0 else math.inf
+                if slope < 0 and -1.0 / slope <= RING_DECAY_MAX_MULTIPLE * span:
+                    decay = -1.0 / slope
     return OscillationMetrics(overshoot, amplitude, frequency, decay, dwell)
 
 
