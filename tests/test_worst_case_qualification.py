@@ -120,3 +120,22 @@ def test_the_report_table_carries_the_step_reason(graded):
     worst = [line for line in lines if line.condition == "worst-case"]
     assert len(worst) == 6
     assert all("worst-case snappiness at worst-case failed" in line.note for line in worst)
+
+
+@pytest.mark.slow
+def test_a_lot_graded_across_runs_grades_the_step_with_each_benchs_stray_inductance(
+        graded, capsys):
+    # grade --lot (and report --lot, verify of a lot report) grade through grade_across, whose
+    # instrument inputs merge several benches: the step must still take Ls from the bench
+    # that made each run, and agree with the one-run grade (KVL: VRM against VR + Ls·di/dt)
+    import json
+
+    from benchrun import cli
+
+    outcome, _, lot = graded
+    db = f"sqlite:///{outcome.run_dir / 'results.db'}"
+    assert cli.main(["grade", db, "--lot", "LT-0140", "--json"]) == 0
+    across = json.loads(capsys.readouterr().out)
+    steps = across["grade"]["worst_case"] if "grade" in across else across["worst_case"]
+    assert [s["outcome"] for s in steps] == [w.outcome for w in lot.worst_case]
+    assert {s["assessment"]["stray_inductance_H"] for s in steps} == {40e-9}

@@ -112,17 +112,22 @@ def grade_across(runs: Sequence[Any], shots: Sequence[Any], *,
         if path is None or not Path(path).is_file():
             raise GradingError(f"run {newest.run_id} has no limits.yaml; name one with "
                                "--limits FILE")
+    strays: dict[str, float] | None = None
     if bench_path is not None:
         inputs: Any = load_bench(bench_path)
     else:
+        benches = [(r, run_bench(r)) for r in runs]
         inputs = lot_instrument_inputs(
-            [((r.run.bench_id if r.run is not None else None) or r.run_id, run_bench(r))
-             for r in runs])
+            [((r.run.bench_id if r.run is not None else None) or r.run_id, b)
+             for r, b in benches])
+        strays = {r.run_id: b.fixture.stray_inductance for r, b in benches
+                  if b.fixture.stray_inductance is not None}
     options = {canonical_json(r.manifest.get("analysis_options")) for r in runs}
     if len(options) > 1:
         raise GradingError(f"the runs of lot {lot} were analysed with different analysis "
                            "options; grade them one run at a time")
     limits = load_limits(path)
     grade = grade_lot(list(shots), limits, bench=inputs,
-                      analysis_options=newest.manifest.get("analysis_options"))
+                      analysis_options=newest.manifest.get("analysis_options"),
+                      stray_inductance_by_run=strays)
     return LotAcross(grade, limits, Path(path), limits_run, inputs)

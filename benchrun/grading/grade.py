@@ -592,7 +592,8 @@ def describe_lot_rule(spec: LimitsSpec) -> str:
 
 def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
               bench: BenchConfig | InstrumentInputs,
-              analysis_options: Mapping[str, Any] | None = None) -> LotGrade:
+              analysis_options: Mapping[str, Any] | None = None,
+              stray_inductance_by_run: Mapping[str, float] | None = None) -> LotGrade:
     """Grade every device in ``shots`` against ``limits`` (pure).
 
     Parameters
@@ -608,6 +609,10 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
         The ``RecoveryOptions`` keyword arguments the shots were analysed with (a run's
         ``analysis_options``; None: the defaults). Their Qrr / Err / trr window convention
         must be the limits' ``convention``.
+    stray_inductance_by_run
+        Run id → the fixture's stray inductance Ls of the bench that made the run, for shots
+        from several benches (the worst-case snappiness step forms VR + Ls·di/dt with the Ls
+        of the bench that took each shot); None: the ``bench`` file's fixture.
 
     Raises
     ------
@@ -658,7 +663,8 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
         devices.append(device)
         samples[serial] = device_samples
         acquisitions[serial] = device_acq
-    devices, worst_case = _apply_worst_case(shots, limits, points, bench, devices)
+    devices, worst_case = _apply_worst_case(shots, limits, points, bench, devices,
+                                            stray_inductance_by_run)
     verdicts = {d.serial: d.verdict for d in devices}
     decision, reasons = disposition(
         verdicts,
@@ -697,7 +703,9 @@ def grade_lot(shots: Iterable[ShotResult], limits: LimitsSpec, *,
 def _apply_worst_case(shots: Sequence[ShotResult], limits: LimitsSpec,
                       points: Mapping[str, TestPoint | None],
                       bench: BenchConfig | InstrumentInputs,
-                      devices: list[DeviceGrade]) -> tuple[list[DeviceGrade], list[WorstCaseGrade]]:
+                      devices: list[DeviceGrade],
+                      stray_by_run: Mapping[str, float] | None = None,
+                      ) -> tuple[list[DeviceGrade], list[WorstCaseGrade]]:
     """Grade the worst-case snappiness step (:mod:`benchrun.grading.worst_case`) and fold its
     outcome into each device's verdict and reasons."""
     spec = limits.worst_case
@@ -706,7 +714,9 @@ def _apply_worst_case(shots: Sequence[ShotResult], limits: LimitsSpec,
         condition = limits.condition(spec.condition)
         for shot in shots:
             valid[id(shot)] = not shot_problems(shot, condition, limits.tolerances)
-    stray = bench.fixture.stray_inductance if isinstance(bench, BenchConfig) else None
+    stray: float | Mapping[str, float] | None = (
+        stray_by_run if stray_by_run is not None
+        else bench.fixture.stray_inductance if isinstance(bench, BenchConfig) else None)
     graded = grade_worst_case(shots, spec, points, stray_inductance_H=stray, valid=valid)
     by_serial = {g.serial: g for g in graded}
     out = []

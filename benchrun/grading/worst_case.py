@@ -62,9 +62,13 @@ def snappiness_limits(spec: WorstCaseSpec) -> SnappinessLimits:
 
 def grade_worst_case(shots: Sequence[ShotResult], spec: WorstCaseSpec | None,
                      points: Mapping[str, TestPoint | None], *,
-                     stray_inductance_H: float | None,
+                     stray_inductance_H: float | Mapping[str, float] | None,
                      valid: Mapping[int, bool] | None = None) -> list[WorstCaseGrade]:
     """Grade every device of ``shots`` at the worst-case snappiness point.
+
+    ``stray_inductance_H``: the fixture's Ls, one value for one bench, or run id → Ls when the
+    shots come from runs on several benches (a lot graded across runs); a shot whose run has
+    no Ls makes the device's step invalid.
 
     ``points``: condition name → the test point graded there (as matched by the grading);
     ``valid``: ``id(shot)`` → whether the shot is valid for grading at the condition (its
@@ -87,7 +91,8 @@ def grade_worst_case(shots: Sequence[ShotResult], spec: WorstCaseSpec | None,
         here = [s for s in shots if s.serial == serial and point is not None
                 and s.point == point]
         good = [s for s in here if (valid or {}).get(id(s), s.valid)]
-        if stray_inductance_H is None:
+        strays = {id(s): _stray_of(s, stray_inductance_H) for s in good}
+        if stray_inductance_H is None or any(v is None for v in strays.values()):
             out.append(WorstCaseGrade(serial, spec.condition, INVALID,
                                       "the bench fixture's stray inductance is not known "
                                       "(grade with the bench file): VR + Ls·di/dt cannot be "
@@ -100,7 +105,7 @@ def grade_worst_case(shots: Sequence[ShotResult], spec: WorstCaseSpec | None,
             out.append(WorstCaseGrade(serial, spec.condition, INVALID,
                                       f"worst-case snappiness at {spec.condition}: {why}"))
             continue
-        found = [(assess_snappiness(s.metrics, s.flags, stray_inductance_H=stray_inductance_H,
+        found = [(assess_snappiness(s.metrics, s.flags, stray_inductance_H=strays[id(s)],
                                     limits=limits), s) for s in good]
         assessment, shot = max(found, key=lambda pair: pair[0].severity)
         label = f"repeat {shot.repeat} attempt {shot.attempt}"
@@ -115,3 +120,10 @@ def grade_worst_case(shots: Sequence[ShotResult], spec: WorstCaseSpec | None,
         out.append(WorstCaseGrade(serial, spec.condition, outcome, reason, len(good), label,
                                   assessment))
     return out
+
+
+def _stray_of(shot: ShotResult, stray: float | Mapping[str, float] | None) -> float | None:
+    """The Ls of the bench that took ``shot``."""
+    if stray is None or isinstance(stray, (int, float)):
+        return stray
+    return stray.get(shot.run_id)
