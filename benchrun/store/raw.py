@@ -98,6 +98,7 @@ from benchrun.store.digests import shot_digest as shot_digest  # re-exported
 from benchrun.store.h5low import (  # noqa: F401 (names the write path and tests reach here)
     _CHUNK_BYTES,
     _LCPL_ASCII,
+    _SLOT_METADATA_CACHE_BYTES,
     _WRITE_METADATA_CACHE_BYTES,
     _code_type,
     _codes_create_plist,
@@ -304,6 +305,8 @@ class RawRecord:
         except StoreError:
             self.close()
             raise
+        if self.mode != "r" and self.compression is None and self._slot_store.direct:
+            _fix_metadata_cache(f, _SLOT_METADATA_CACHE_BYTES)  # shots go to slots
         if self.mode != "r" and not fresh and self._slot_store.blocks:
             self._describe_quietly()  # a record opened again (resume): views of every shot
 
