@@ -103,6 +103,10 @@ def test_every_font_is_embedded(signed_run):  # noqa: F811
 def test_numbers_have_no_exponent_and_no_cut_fingerprint(signed_run):  # noqa: F811
     text = _text(signed_run.pdf)
     plain = re.sub(r"\b[0-9a-f]{16,}\b", "", text)  # digests are hex, not numbers
+    # identifiers end in random hex ("...-6e98"): the run id, and the report id, whatever
+    # random suffix it drew (RPT-<run id>-<time>Z-<hex>)
+    plain = plain.replace(signed_run.run.run_id, "")
+    plain = re.sub(r"\bRPT-\S*?Z-[0-9a-f]{4,}\b", "", plain)
     assert not re.search(r"\d[eE][+-]?\d", plain)
     assert not re.search(r"[0-9a-f]{8,}…", text)  # no digest cut short
     assert text.count(signed_run.identity.fingerprint_sha256) >= 3  # cover, record, signature
