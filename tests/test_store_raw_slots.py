@@ -340,3 +340,38 @@ def test_key_index_holds_no_key_and_tells_keys_of_one_hash_apart(tmp_path, monke
         assert raw.keys() == sorted({f"{k:06d}" for k in range(16)} - {"000005"})
         assert raw.read_shot("000003").attrs == {"k": 30}
         assert raw.read_shot("000015").attrs == {"k": 15}
+
+
+def test_key_index_merges_in_place_into_reserved_arrays(tmp_path, monkeypatch):
+    # The soak's memory (issue 15): a merge must not rebuild the arrays (a rebuild allocated
+    # several whole-index arrays at every merge and fragmented the C heap). With the arrays
+    # reserved ahead, merges keep the same buffers; hashes stay sorted with equal hashes
+    # interleaved across merges, removals are compacted, and every key is still found.
+    monkeypatch.setattr(raw_slots.SlotIndex, "MERGE_AT", 5)
+    monkeypatch.setattr(raw_slots.SlotIndex, "RESERVE", 8)  # forces growth, then in place
+    monkeypatch.setattr(raw_slots, "_key_hash", lambda key: int(key) % 7)  # collisions
+    path = tmp_path / "raw.h5"
+    with RawRecord(path, "a", compression=None) as raw:
+        index = raw._slots.index
+        buffers = set()
+        for k in range(60):
+            raw.append_shot(f"{k:06d}", 0.0, 1e-9, make_channels(1, 50), make_probes(),
+                            {"k": k})
+            buffers.add(id(index._hashes))
+            hashes = index._hashes[:index._n]
+            assert np.all(hashes[:-1] <= hashes[1:])
+        # 8 → 16 → 32 → 64 entries: three growths for 60 keys, not one buffer per merge
+        assert len(buffers) <= 5 and index._hashes.size == 64
+        for k in range(0, 60, 2):
+            raw._slots.drop(f"{k:06d}")
+        for k in range(60, 70):  # merges after the removals compact the arrays
+            raw.append_shot(f"{k:06d}", 0.0, 1e-9, make_channels(1, 50), make_probes(),
+                            {"k": k})
+        assert index._removed <= index._n // 4
+        expected = sorted({f"{k:06d}" for k in range(70)} - {f"{k:06d}" for k in range(0, 60, 2)})
+        assert raw.keys() == expected and len(index) == len(expected)
+        for k in (1, 33, 59, 60, 69):
+            assert raw.read_shot(f"{k:06d}").attrs == {"k": k}
+        assert f"{2:06d}" not in raw
+    with RawRecord(path, "r") as raw:
+        assert raw.keys() == expected

@@ -193,12 +193,18 @@ class SlotIndex(MutableMapping):
 
     #: keys kept in the dict before they are merged into the sorted arrays
     MERGE_AT = 512
+    #: entries the arrays are reserved for at first (1 MiB of address space for both; pages
+    #: are committed only as entries are written, so memory grows by 16 bytes a shot)
+    RESERVE = 65536
 
     def __init__(self, store: SlotStore) -> None:
         self._store = store
+        #: sorted hashes and their positions (block number << 32 | slot; -1 for a removed
+        #: entry) in the first ``_n`` elements of buffers reserved ahead (:meth:`_reserve`)
         self._hashes = np.empty(0, dtype=np.uint64)
-        #: block number << 32 | slot; -1 for a removed entry
         self._positions = np.empty(0, dtype=np.int64)
+        self._n = 0
+        self._removed = 0
         self._recent: dict[int, list[int]] = {}
         self._recent_count = 0
         self._count = 0
@@ -216,9 +222,10 @@ class SlotIndex(MutableMapping):
         """(where: -1 the dict, else the array index; list index in the dict; the entry)."""
         h = _key_hash(key)
         candidates: list[tuple[int, int, int]] = []
-        if self._hashes.size:
-            lo = int(np.searchsorted(self._hashes, np.uint64(h), side="left"))
-            hi = int(np.searchsorted(self._hashes, np.uint64(h), side="right"))
+        if self._n:
+            hashes = self._hashes[:self._n]
+            lo = int(np.searchsorted(hashes, np.uint64(h), side="left"))
+            hi = int(np.searchsorted(hashes, np.uint64(h), side="right"))
             candidates += [(i, 0, int(self._positions[i])) for i in range(lo, hi)
                            if self._positions[i] >= 0]
         candidates += [(-1, j, p) for j, p in enumerate(self._recent.get(h, ()))]
@@ -268,25 +275,62 @@ class SlotIndex(MutableMapping):
             self._recent_count -= 1
         else:
             self._positions[where] = -1
+            self._removed += 1
         self._count -= 1
 
+    def _reserve(self, n: int) -> None:
+        """Make room for ``n`` entries in the arrays, keeping the first ``_n``."""
+        if n <= self._hashes.size:
+            return
+        size = max(n, self.RESERVE, 2 * self._hashes.size)
+        hashes, positions = np.empty(size, np.uint64), np.empty(size, np.int64)
+        hashes[:self._n], positions[:self._n] = self._hashes[:self._n], self._positions[:self._n]
+        self._hashes, self._positions = hashes, positions
+
     def _merge(self) -> None:
-        """Move the dict's entries into the sorted arrays (and drop removed entries)."""
-        hashes = [h for h, ps in self._recent.items() for _ in ps]
-        positions = [p for ps in self._recent.values() for p in ps]
-        keep = self._positions >= 0
-        all_h = np.concatenate([self._hashes[keep], np.array(hashes, dtype=np.uint64)])
-        all_p = np.concatenate([self._positions[keep], np.array(positions, dtype=np.int64)])
-        order = np.argsort(all_h, kind="stable")
-        self._hashes, self._positions = all_h[order], all_p[order]
+        """Move the dict's entries into the sorted arrays, in place.
+
+        The arrays are not rebuilt: each old entry moves right by the number of new entries
+        that sort before it, one slice per new entry, from the back (a rebuild allocated
+        several arrays of the whole index at every merge, a little larger each time, which
+        left the C heap fragmented and a long run's memory growing by steps).
+        """
+        if self._removed > self._n // 4:
+            self._compact()
+        new_h = np.fromiter((h for h, ps in self._recent.items() for _ in ps), np.uint64)
+        new_p = np.fromiter((p for ps in self._recent.values() for p in ps), np.int64)
+        order = np.argsort(new_h, kind="stable")
+        new_h, new_p = new_h[order], new_p[order]
+        n, m = self._n, new_h.size
+        self._reserve(n + m)
+        hashes, positions = self._hashes, self._positions
+        # old entries before which new entry j goes (equal hashes: the old one first)
+        cut = np.searchsorted(hashes[:n], new_h, side="right")
+        end = n
+        for j in range(m - 1, -1, -1):
+            start = int(cut[j])
+            if end > start:  # old entries [start, end) move right by j + 1
+                hashes[start + j + 1:end + j + 1] = hashes[start:end]
+                positions[start + j + 1:end + j + 1] = positions[start:end]
+            hashes[start + j], positions[start + j] = new_h[j], new_p[j]
+            end = start
+        self._n = n + m
         self._recent, self._recent_count = {}, 0
+
+    def _compact(self) -> None:
+        """Drop removed entries from the arrays (in place)."""
+        keep = np.flatnonzero(self._positions[:self._n] >= 0)
+        k = keep.size
+        self._hashes[:k] = self._hashes[keep]
+        self._positions[:k] = self._positions[keep]
+        self._n, self._removed = k, 0
 
     def __len__(self) -> int:
         return self._count
 
     def _live(self) -> Iterator[tuple[str, tuple[_Block, int, int]]]:
         """Every entry, read from the slot headers (one read per block), in slot order."""
-        live = {int(p) for p in self._positions if p >= 0}
+        live = {int(p) for p in self._positions[:self._n] if p >= 0}
         live.update(p for ps in self._recent.values() for p in ps)
         store = self._store
         for block in store.blocks:
@@ -311,7 +355,10 @@ class SlotIndex(MutableMapping):
         positions = np.array([self._encode(b, s) for b, s, _ in entries.values()],
                              dtype=np.int64)
         order = np.argsort(hashes, kind="stable")
-        self._hashes, self._positions = hashes[order], positions[order]
+        self._n = self._removed = 0
+        self._reserve(order.size)
+        self._hashes[:order.size], self._positions[:order.size] = hashes[order], positions[order]
+        self._n = order.size
         self._recent, self._recent_count, self._count = {}, 0, len(entries)
 
 
