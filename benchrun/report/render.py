@@ -69,19 +69,11 @@ def render_report(run: Any, lot: Any, out_pdf: str | Path, *, signer: ReportSign
         offers ``add_report``.
     """
     from benchrun.report.facts_gather import build_content
-    from benchrun.report.raw_waveforms import raw_waveform_loader
     from benchrun.report.run_sources import run_sources
 
     now = _dt.datetime.now(_dt.UTC).replace(microsecond=0)
     content = build_content(run, lot, signer, run_sources(run, limits), now=now)
-    loss_parts: list[Flowable] = []
-    if loss is not None:
-        loss_parts = _loss_flowables(loss, _invalid_shots(run))
-    with raw_waveform_loader(run, content.analysis_options) as loader:
-        path = render_signed(content, out_pdf, signer, waveform_loader=loader,
-                             loss_flowables=loss_parts)
-    _register(run, content, path)
-    return path
+    return _sign_and_register(run, content, out_pdf, signer, loss)
 
 
 def render_lot_report(view: Any, lot: Any, out_pdf: str | Path, *, signer: ReportSigner,
@@ -103,18 +95,26 @@ def render_lot_report(view: Any, lot: Any, out_pdf: str | Path, *, signer: Repor
     """
     from benchrun.report.facts_gather import build_content
     from benchrun.report.facts_lot import lot_content
-    from benchrun.report.raw_waveforms import raw_waveform_loader
 
     now = _dt.datetime.now(_dt.UTC).replace(microsecond=0)
     content = lot_content(build_content(view, lot, signer, sources, now=now), lot_sources,
                           now=now)
+    return _sign_and_register(view, content, out_pdf, signer, loss)
+
+
+def _sign_and_register(run: Any, content: Any, out_pdf: str | Path, signer: ReportSigner,
+                       loss: Any) -> Path:
+    """Render ``content`` (with the loss section when ``loss`` is given), sign it, and
+    register the report in the run's store."""
+    from benchrun.report.raw_waveforms import raw_waveform_loader
+
     loss_parts: list[Flowable] = []
     if loss is not None:
-        loss_parts = _loss_flowables(loss, _invalid_shots(view))
-    with raw_waveform_loader(view, content.analysis_options) as loader:
+        loss_parts = _loss_flowables(loss, _invalid_shots(run))
+    with raw_waveform_loader(run, content.analysis_options) as loader:
         path = render_signed(content, out_pdf, signer, waveform_loader=loader,
                              loss_flowables=loss_parts)
-    _register(view, content, path)
+    _register(run, content, path)
     return path
 
 
