@@ -27,11 +27,17 @@ from __future__ import annotations
 import logging
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
 
 from benchrun.config.gate_drive import GateDriveSpec
 from benchrun.records import TestPoint
-from benchrun.runner.didt import DidtModel, DidtSetting, control_didt
+from benchrun.runner.didt import DidtModel, DidtSetting, commutation_didt, control_didt
+from benchrun.runner.safety import check_shot
+
+if TYPE_CHECKING:
+    from benchrun.runner.station import Capture
 
 log = logging.getLogger("benchrun.runner")
 
@@ -199,3 +205,76 @@ def _rate(value: float | None) -> str:
 
 def _text(setting: DidtSetting) -> str:
     return f"Rg {setting.gate_resistance_ohm:g} ohm, drive {setting.drive_V:.3g} V"
+
+
+class GateDriveShots:
+    """The shot cycle's gate-drive part (:class:`benchrun.runner.cycle.ShotCycle` inherits
+    it): the setting sent for a point, the setting recorded with a shot, the di/dt trim shot.
+    The attributes and helpers it uses (station, writer, plan, ranges ...) are the cycle's."""
+
+    didt: DidtControl
+    bench: Any
+    station: Any
+    writer: Any
+    options: Any
+    outcome: Any
+    progress: Any
+    probes: Any
+    def _gate(self, point: TestPoint) -> tuple[float | None, float | None]:
+        """(gate resistance, drive voltage) to send for ``point``; the drive voltage only
+        when the fixture sets di/dt by it."""
+        setting = self.didt.setting(point)
+        if setting is None:
+            return point.gate_resistance_ohm, None
+        gate = self.bench.fixture.gate_drive
+        drive = setting.drive_V if gate is not None and gate.sets_drive_voltage else None
+        return setting.gate_resistance_ohm, drive
+
+    def _gate_record(self, point: TestPoint) -> dict[str, float] | None:
+        """The setting recorded with a shot (``ShotResult.acquisition``)."""
+        setting = self.didt.setting(point)
+        if setting is None:
+            return None
+        record = {"gate_resistance_ohm": setting.gate_resistance_ohm}
+        if setting.drive_V:
+            record["gate_drive_V"] = setting.drive_V
+        return record
+
+    def _didt_shot(self, point: TestPoint, setting: DidtSetting) -> float | None:
+        """One di/dt trim shot: a full double pulse at ``setting`` (diode current only,
+        nothing stored as a result); its commutation di/dt
+        (:func:`~benchrun.runner.didt.commutation_didt`)."""
+        plan = self._plan(point)
+        check_shot(plan, point, self.bench)
+        ranges = {"diode_current": self._ranges(point)["diode_current"]}
+        gate = self.bench.fixture.gate_drive
+        drive = setting.drive_V if gate is not None and gate.sets_drive_voltage else None
+        self.progress.status(f"di/dt trim {point.label}")
+
+        def shoot() -> Capture:
+            self.station.configure_pulse(plan, setting.gate_resistance_ohm, drive)
+            self.station.energise(point.bus_voltage_V)
+            self.station.configure_scope(plan, ranges, point.bus_voltage_V)
+
+            def before_fire() -> None:
+                self.writer.wait_stored()
+                self._wait_spacing()
+
+            return self.station.fire(["diode_current"], self.options.trigger_timeout_s,
+                                     before_fire=before_fire,
+                                     on_fired=lambda: self._fired(point))
+
+        capture = self._with_retry(shoot, "di/dt trim shot")
+        self.outcome.trim_shots += 1
+        trace = capture.traces["diode_current"]
+        amps = trace.volts() * self.probes["diode_current"].scale
+        t = trace.t_start + trace.dt * np.arange(amps.size)
+        window = ((t >= plan.first_pulse_s + 0.5 * plan.off_time_s)
+                  & (t <= plan.first_pulse_s + 0.95 * plan.off_time_s))
+        if window.sum() < 3:
+            return None
+        if_A = float(np.median(amps[window]))
+        if if_A > 0:  # the gate setting moves the current reached: correct t1 for it
+            self._correct(point, if_A, plan.first_pulse_s)
+        return commutation_didt(t, amps, if_A)
+
