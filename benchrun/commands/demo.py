@@ -108,7 +108,8 @@ def run(args: argparse.Namespace) -> int:
     folder = sequences_dir()
     progress = not args.no_progress and sys.stderr.isatty()
     print("benchrun demo: simulated bench, invented parts and lots (Korvane Power Components)")
-    print(f"  sequence {folder / SEQUENCE_SI}\n  bench    {folder / BENCH}")
+    first = SEQUENCE_CHARACTERIZE if args.characterize else SEQUENCE_SI
+    print(f"  sequence {folder / first}\n  bench    {folder / BENCH}")
 
     signer, cert, how = demo_signer(out / "keys")
     if args.characterize:
@@ -154,7 +155,6 @@ def _characterize(folder: Path, out: Path, signer: Any, cert: Path, how: str,
     """``--characterize``: the sweep run, its curves and its signed report."""
     from benchrun.characterize.publish import publish_characterization
 
-    print(f"  characterisation sequence {folder / SEQUENCE_CHARACTERIZE}")
     outcome = _run(folder / SEQUENCE_CHARACTERIZE, folder / BENCH, out / "runs", progress)
     published = publish_characterization(outcome.run_dir, signer)
     shots = published.shots
