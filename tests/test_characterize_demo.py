@@ -77,6 +77,8 @@ def test_characterize_demo_writes_signed_report_and_curves(tmp_path):
     assert worst and all("flags" in r for r in worst)
     assert float(worst[0]["forward_current_A"]) <= 0.1 * sequence.ratings.if_max
 
+    assert (run_dir / "fits.csv").is_file()
+
     # the report: signed (pyHanko validation, as benchrun verify does), fits attached
     from benchrun.report.sign import read_attachment
     from benchrun.report.verify_signature import signature_checks

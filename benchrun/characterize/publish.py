@@ -19,11 +19,12 @@ from benchrun.characterize.curves import Trend, write_curves_csv
 from benchrun.characterize.report import render_characterization
 from benchrun.records import ShotResult
 
-__all__ = ["CSV_NAME", "PDF_NAME", "PublishedCharacterization", "flagged_lines",
+__all__ = ["CSV_NAME", "FITS_NAME", "PDF_NAME", "PublishedCharacterization", "flagged_lines",
            "point_table", "publish_characterization"]
 
 PDF_NAME = "characterization.pdf"
 CSV_NAME = "curves.csv"
+FITS_NAME = "fits.csv"
 #: Flags of a valid shot worth listing on the report (recovery behaviour, not data quality).
 BEHAVIOUR_FLAGS = ("snap", "ringing", "avalanche")
 
@@ -34,6 +35,8 @@ class PublishedCharacterization:
     csv: Path
     trends: list[Trend]
     shots: list[ShotResult]
+    #: ``fits.csv``: every trend and surface fit (:mod:`benchrun.characterize.fits`)
+    fits: Path | None = None
 
 
 def _flag_name(flag: str) -> str:
@@ -99,6 +102,9 @@ def publish_characterization(run_dir: str | Path, signer: Any, *, title: str | N
     shots = sorted(run.shots, key=lambda s: (s.point.index, s.serial, s.repeat, s.attempt))
     run_folder = Path(run.run_dir or run_dir)
     csv_path = write_curves_csv(shots, run_folder / CSV_NAME)
+    from benchrun.characterize.fits import write_sweep_fits_csv
+
+    fits_path = write_sweep_fits_csv(shots, run_folder / FITS_NAME)
     didt = manifest.get("didt_control")
     not_fired = manifest.get("points_invalid") or {}
     from benchrun.config.sequence import load_sequence
@@ -132,4 +138,4 @@ def publish_characterization(run_dir: str | Path, signer: Any, *, title: str | N
         title=title or f"{part} characterisation — lot {lot}",
         flagged=flagged_lines(shots, not_fired, labels), notes=notes,
         conditions=point_table(shots, didt))
-    return PublishedCharacterization(pdf, csv_path, trends, shots)
+    return PublishedCharacterization(pdf, csv_path, trends, shots, fits_path)

@@ -165,6 +165,7 @@ def _characterize(folder: Path, out: Path, signer: Any, cert: Path, how: str,
     for index, reason in sorted(outcome.points_invalid.items()):
         print(f"  point {index} not fired: {reason}")
     print(f"  curves (CSV)  {published.csv}")
+    print(f"  fits (CSV)    {published.fits}")
     print(f"  report (signed PDF) {published.pdf}")
     print(f"signing certificate {cert}  (key passphrase: {how})")
     if outcome.safe_state is not None:
