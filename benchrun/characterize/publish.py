@@ -2,7 +2,8 @@
 
 :func:`publish_characterization` reads a run folder (:func:`benchrun.store.rundata.load_run`),
 writes ``curves.csv`` (:func:`benchrun.characterize.curves.write_curves_csv`: one row per
-measured shot) and ``characterization.pdf`` (:func:`benchrun.characterize.report
+measured shot), ``fits.csv`` (:func:`benchrun.characterize.fits.write_sweep_fits_csv`: every
+trend and surface fit) and ``characterization.pdf`` (:func:`benchrun.characterize.report
 .render_characterization`, signed like the acceptance report) into it, with the run's di/dt
 control (``run.json`` ``didt_control``: the means, each point's setting and trim) and every
 point that was not fired (``points_invalid``) stated on the report.
