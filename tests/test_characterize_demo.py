@@ -16,10 +16,6 @@ from benchrun.analysis.metrics_meta import METRICS
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=False, reason=(
-    "the simulated DX-4425's circuit integration (benchrun/simulator/circuit.py, odeint in "
-    "solve_event) can stall at some shot conditions, so the demo run may stop on a scope "
-    "timeout; to be removed once the simulator no longer stalls"))
 def test_characterize_demo_writes_signed_report_and_curves(tmp_path):
     # in a child process: a stalled simulator thread must not outlive the test and load the
     # rest of the session
