@@ -33,6 +33,7 @@ DIMENSIONS: dict[str, str] = {
     "temperature": "K",
     "temperature_difference": "delta_degC",
     "thermal_resistance": "K/W",
+    "conductance": "S",
     "dimensionless": "",
 }
 

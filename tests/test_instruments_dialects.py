@@ -53,6 +53,7 @@ OURS = {
     "GDRive:GAP": "double-pulse off time (gate-drive specific)",
     "GDRive:SECond:WIDTh": "double-pulse second pulse width (gate-drive specific)",
     "GDRive:RESistance": "turn-on gate resistance (gate-drive specific)",
+    "GDRive:VOLTage": "turn-on gate-drive voltage (gate-drive specific)",
     "WDOG:TIMeout": "output watchdog timeout",
     "WDOG:REFResh": "output watchdog refresh",
     "HANDler:DUT:CATalog": "device handler: serials held",

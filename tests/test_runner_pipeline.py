@@ -74,7 +74,7 @@ def test_every_shot_is_in_the_db_before_the_next_fires(tmp_path, monkeypatch):
     seen: list[tuple[int, int, int]] = []
     original = server_module.SimulatedBench.fire
 
-    def fire(self, timing, gate_resistance_ohm):
+    def fire(self, timing, gate_resistance_ohm, drive_V=None):
         # the simulated pulse source received the fire command: what is stored now was
         # stored before the runner sent it
         if timing[1] > 0:  # a double-pulse shot (a trim shot has no second pulse)
@@ -106,7 +106,7 @@ def test_invalid_shots_are_retried_while_later_shots_are_in_flight(tmp_path, mon
     original = server_module.SimulatedBench.fire
     fired = {"double": 0}
 
-    def fire(self, timing, gate_resistance_ohm):
+    def fire(self, timing, gate_resistance_ohm, drive_V=None):
         if timing[1] > 0:
             fired["double"] += 1
             if fired["double"] >= 2:

@@ -51,6 +51,8 @@ _CONDITION_COLUMNS = (
     ("measured_if_A", lambda s: s.conditions.get("if_A")),
     ("measured_vr_V", lambda s: s.conditions.get("vr_V")),
     ("measured_didt_A_per_s", lambda s: s.conditions.get("didt_A_per_s")),
+    ("gate_resistance_used_ohm", lambda s: s.acquisition.get("gate_resistance_ohm")),
+    ("gate_drive_used_V", lambda s: s.acquisition.get("gate_drive_V")),
 )
 
 
@@ -124,9 +126,11 @@ def _line(u: np.ndarray, v: np.ndarray) -> tuple[float, float, float | None, flo
 
 
 _AXES = {
-    "forward_current_A": ("power", ("temperature_K", "bus_voltage_V", "gate_resistance_ohm")),
+    "forward_current_A": ("power", ("temperature_K", "bus_voltage_V", "gate_resistance_ohm",
+                                    "didt_A_per_s")),
     "didt_A_per_s": ("power", ("temperature_K", "bus_voltage_V", "forward_current_A")),
-    "temperature_K": ("linear", ("bus_voltage_V", "forward_current_A", "gate_resistance_ohm")),
+    "temperature_K": ("linear", ("bus_voltage_V", "forward_current_A", "gate_resistance_ohm",
+                                 "didt_A_per_s")),
 }
 
 

@@ -78,7 +78,8 @@ def _figure(shots: Sequence[ShotResult], metric: str, trends: list[Trend]) -> by
             x, y, u = (np.array(v) for v in zip(*pts, strict=True))
             label = ", ".join(format_si(v, {"temperature_K": "K", "bus_voltage_V": "V",
                                             "forward_current_A": "A",
-                                            "gate_resistance_ohm": "Ω"}.get(k, ""), 3)
+                                            "gate_resistance_ohm": "Ω",
+                                            "didt_A_per_s": "A/s"}.get(k, ""), 3)
                               for k, v in tr.held if v)
             line = ax.errorbar(x, y, yerr=u, fmt="o", ms=3, capsize=2, label=label)
             xs = np.linspace(min(tr.x), max(tr.x), 50)
@@ -89,8 +90,12 @@ def _figure(shots: Sequence[ShotResult], metric: str, trends: list[Trend]) -> by
         ax.set_ylabel(f"{METRICS[metric].name} [{unit}]", fontsize=7)
         ax.tick_params(labelsize=6)
         if axis != "temperature_K" and ax.lines:
+            from matplotlib.ticker import NullFormatter
+
             ax.set_xscale("log")
             ax.set_yscale("log")
+            for scale in (ax.xaxis, ax.yaxis):  # decade labels only: no overprinted minors
+                scale.set_minor_formatter(NullFormatter())
         if ax.lines:
             ax.legend(fontsize=5)
     buf = io.BytesIO()
@@ -162,6 +167,12 @@ _RANGE_UNIT = {"forward_current_A": "A", "vr_V": "V", "didt_A_per_s": "A/s",
                "temperature_K": "K"}
 
 
+def _small(style: Any) -> Any:
+    from reportlab.lib.styles import ParagraphStyle
+
+    return ParagraphStyle("small", parent=style, fontSize=6.5, leading=8)
+
+
 def render_characterization(
     shots: Sequence[ShotResult],
     out_pdf: str | Path,
@@ -170,8 +181,11 @@ def render_characterization(
     title: str,
     flagged: Sequence[str] = (),
     notes: Sequence[str] = (),
+    conditions: Sequence[Sequence[str]] = (),
 ) -> tuple[Path, list[Trend]]:
-    """Write the signed characterisation PDF; returns its path and the fitted trends."""
+    """Write the signed characterisation PDF; returns its path and the fitted trends.
+    ``conditions``: an optional table (header row first) of the test points' requested
+    and measured conditions, printed after the notes."""
     from xml.sax.saxutils import escape
 
     from reportlab.lib import colors
@@ -192,6 +206,12 @@ def render_characterization(
         "in IF and in di/dt (least squares in log-log), straight line in T with its "
         "coefficient per kelvin; ± one standard error of the fit (n − 2 degrees of "
         "freedom; none with two points)."), body))
+    if conditions:
+        cells = [[Paragraph(escape(str(c)), _small(body)) for c in row] for row in conditions]
+        grid = Table(cells, repeatRows=1, colWidths=[190, 70, 80, 90, 60])
+        grid.setStyle(TableStyle([("GRID", (0, 0), (-1, -1), 0.25, colors.grey),
+                                  ("VALIGN", (0, 0), (-1, -1), "TOP")]))
+        story += [Paragraph("Test points and di/dt", styles["Heading2"]), grid]
     for metric in CURVE_METRICS:
         if not any(t.metric == metric for t in trends):
             continue

@@ -7,6 +7,11 @@ everything, and writes a signed acceptance report. It then tests a small lot of 
 Schottky diodes at the same conditions and compares the recovery losses of the two parts
 (``--no-sic`` skips this).
 
+``--characterize`` runs the characterisation sweep of the invented snappy diode DX-4425
+instead (``sequences/dx4425-characterize.yaml``: forward current, di/dt, bus voltage and
+temperature swept on a sample of three devices, di/dt set and verified by the runner) and
+writes the signed ``characterization.pdf`` and ``curves.csv`` into its run folder.
+
 The signing key is a throwaway demo key made in DIR/keys on first use; its passphrase is
 taken from BENCHRUN_KEY_PASSPHRASE or is the demo default printed below — demo only, never
 for real reports.
@@ -34,6 +39,7 @@ DEMO_SIGNER = ("Q. Ashdown", "Quality Engineer (demo signature)",
                "Korvane Power Components (invented, demo)")
 SEQUENCE_SI = "dx4417-demo.yaml"
 SEQUENCE_SIC = "dx5203-demo.yaml"
+SEQUENCE_CHARACTERIZE = "dx4425-characterize.yaml"
 BENCH = "bench-sim.yaml"
 
 
@@ -47,6 +53,9 @@ def register(subparsers: Any) -> None:
     parser.add_argument("--no-sic", action="store_true",
                         help="skip the DX-5203 SiC lot and the loss comparison")
     parser.add_argument("--no-progress", action="store_true", help="no live progress display")
+    parser.add_argument("--characterize", action="store_true",
+                        help="run the DX-4425 characterisation sweep instead and write its "
+                             "signed characterization.pdf and curves.csv")
     parser.set_defaults(func=run)
 
 
@@ -99,9 +108,12 @@ def run(args: argparse.Namespace) -> int:
     folder = sequences_dir()
     progress = not args.no_progress and sys.stderr.isatty()
     print("benchrun demo: simulated bench, invented parts and lots (Korvane Power Components)")
-    print(f"  sequence {folder / SEQUENCE_SI}\n  bench    {folder / BENCH}")
+    first = SEQUENCE_CHARACTERIZE if args.characterize else SEQUENCE_SI
+    print(f"  sequence {folder / first}\n  bench    {folder / BENCH}")
 
     signer, cert, how = demo_signer(out / "keys")
+    if args.characterize:
+        return _characterize(folder, out, signer, cert, how, progress, started)
     outcome = _run(folder / SEQUENCE_SI, folder / BENCH, out / "runs", progress)
     published = publish_report(outcome.run_dir, signer)
     lot, loss, report = published.lot, published.loss, published.path
@@ -135,6 +147,30 @@ def run(args: argparse.Namespace) -> int:
         _print_comparison(comparison)
     print(f"verify with:    benchrun verify {report} --cert {cert} --data {outcome.run_dir}")
     print(f"demo finished in {elapsed:.1f} s")
+    return 0
+
+
+def _characterize(folder: Path, out: Path, signer: Any, cert: Path, how: str,
+                  progress: bool, started: float) -> int:
+    """``--characterize``: the sweep run, its curves and its signed report."""
+    from benchrun.characterize.publish import publish_characterization
+
+    outcome = _run(folder / SEQUENCE_CHARACTERIZE, folder / BENCH, out / "runs", progress)
+    published = publish_characterization(outcome.run_dir, signer)
+    shots = published.shots
+    print()
+    print(f"characterisation run {outcome.run_dir}: {len(shots)} shots "
+          f"({sum(s.valid for s in shots)} valid), {len({s.point.index for s in shots})} "
+          f"test points, {len(published.trends)} fitted trends")
+    for index, reason in sorted(outcome.points_invalid.items()):
+        print(f"  point {index} not fired: {reason}")
+    print(f"  curves (CSV)  {published.csv}")
+    print(f"  fits (CSV)    {published.fits}")
+    print(f"  report (signed PDF) {published.pdf}")
+    print(f"signing certificate {cert}  (key passphrase: {how})")
+    if outcome.safe_state is not None:
+        print(outcome.safe_state.describe())
+    print(f"demo finished in {time.perf_counter() - started:.1f} s")
     return 0
 
 

@@ -59,6 +59,7 @@ from typing import Literal
 from pydantic import Field, field_serializer, field_validator, model_validator
 
 from benchrun.config.explicit import ExplicitFraction, ExplicitTimeBound, explicit
+from benchrun.config.gate_drive import GateDriveSpec
 from benchrun.config.loader import (
     Capacitance,
     Current,
@@ -282,6 +283,9 @@ class FixtureSpec(StrictModel):
     temperature_sensor: Literal["plate", "case"] = "plate"
     #: the switch under test (the device that drives the diode), for the report
     switch: SwitchUnderTest | None = None
+    #: how di/dt is set (switchable gate resistors or a drive-voltage range) with the
+    #: nominal values of the switch model; without it a test point cannot ask for a di/dt
+    gate_drive: GateDriveSpec | None = None
 
     def discharge_time(self, from_V: float, to_V: float = TOUCH_SAFE_V) -> float:
         """Time for the bleeder to bring the bus from ``from_V`` to ``to_V`` (RC decay).

@@ -18,6 +18,7 @@ from benchrun.errors import ConfigError
 from benchrun.units import format_si
 
 if TYPE_CHECKING:
+    from benchrun.config.bench import BenchConfig
     from benchrun.config.limits import LimitsSpec
     from benchrun.config.sequence import SequenceConfig
 
@@ -134,3 +135,26 @@ def check_run_files(sequence: SequenceConfig, sequence_path: str | Path, limits:
             and limits.bins.metric in NEEDS_SWITCH_VOLTAGE:
         _fail(f"{limits.bins.metric} is measured only with 'switch_voltage: true' in the "
               f"sequence {sequence_path}", limits_file, lines, ("bins", "metric"))
+
+
+def check_didt_means(sequence: SequenceConfig, sequence_path: str | Path, bench: BenchConfig,
+                     bench_path: str | Path) -> None:
+    """A test point (or sweep) asking for a di/dt needs a fixture that declares how di/dt is
+    set (``fixture.gate_drive`` in the bench file, :mod:`benchrun.config.gate_drive`).
+
+    Raises
+    ------
+    ConfigError
+        At the sequence's ``didt`` field of the first such entry, before anything fires.
+    """
+    if bench.fixture.gate_drive is not None:
+        return
+    entries = [(("test_points", i), spec.didt) for i, spec in enumerate(sequence.test_points)]
+    entries += [(("sweeps", j), sweep.didt) for j, sweep in enumerate(sequence.sweeps)]
+    for where, didt in entries:
+        if didt:
+            _, lines = read_yaml(sequence_path)
+            _fail(f"a di/dt target needs a fixture that can set di/dt, and the bench file "
+                  f"{bench_path} declares none: add 'fixture.gate_drive' (switchable gate "
+                  "resistors or a drive-voltage range with the switch's nominal values) or "
+                  "give 'gate_resistance' instead", str(sequence_path), lines, (*where, "didt"))

@@ -25,9 +25,9 @@ from __future__ import annotations
 
 import re
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
-from pydantic import Field, field_validator, model_validator
+from pydantic import BeforeValidator, Field, field_validator, model_validator
 
 from benchrun.config.explicit import ExplicitTemperatureBand, ExplicitTolerance
 from benchrun.config.loader import (
@@ -80,6 +80,14 @@ class PartRatings(StrictModel):
     if_max: Current = Field(gt=0)
     tj_max: Temperature = Field(gt=0)
     tj_min: Temperature = Field(default=218.15, gt=0)
+    #: repetitive peak forward current (optional): the double pulse conducts for
+    #: microseconds, so a test point may go up to it; without it ``if_max`` bounds IF
+    ifrm: Current | None = Field(default=None, gt=0)
+
+    @property
+    def max_test_current(self) -> float:
+        """Highest forward current a test point may ask for: IFRM when stated, else IF max."""
+        return self.if_max if self.ifrm is None else max(self.ifrm, self.if_max)
 
 
 class TestPointSpec(StrictModel):
@@ -104,6 +112,78 @@ class TestPointSpec(StrictModel):
         if self.gate_resistance is None and self.didt is None:
             raise ValueError("give 'gate_resistance' or a 'didt' target")
         return self
+
+
+def _as_list(value: Any) -> Any:
+    """A single value of a sweep axis is a one-element list."""
+    return value if isinstance(value, list) else [value]
+
+
+#: Largest number of test points the sweeps of one sequence may expand into (before the
+#: temperatures): a mistyped sweep must not plan a run of days.
+MAX_SWEEP_POINTS = 400
+
+
+class SweepSpec(StrictModel):
+    """A grid of test points: every combination of the listed values (a characterisation
+    sweep). Each axis takes one value or a list; each combination is one test point at every
+    temperature of ``temperatures``::
+
+        sweeps:
+          - label: IF sweep
+            bus_voltage: 600 V
+            forward_current: [3 A, 7.5 A, 15 A, 30 A, 45 A]
+            didt: 600 A/us
+            temperatures: [-40 degC, 25 degC, 125 degC]
+    """
+
+    label: str = "sweep"
+    bus_voltage: Annotated[list[Voltage], BeforeValidator(_as_list)] = Field(min_length=1)
+    forward_current: Annotated[list[Current], BeforeValidator(_as_list)] = Field(min_length=1)
+    didt: Annotated[list[CurrentSlope], BeforeValidator(_as_list)] | None = None
+    gate_resistance: Annotated[list[Resistance], BeforeValidator(_as_list)] | None = None
+    temperatures: list[Temperature] = Field(min_length=1)
+    repeats: int = Field(default=1, ge=1, le=1000)
+    shot_spacing: Time = Field(default=0.5, ge=0)
+
+    @model_validator(mode="after")
+    def _axes(self) -> SweepSpec:
+        if (self.didt is None) == (self.gate_resistance is None):
+            raise ValueError("give 'didt' targets or 'gate_resistance' values (one of them)")
+        for name in ("bus_voltage", "forward_current", "didt", "gate_resistance"):
+            values = getattr(self, name) or []
+            if any(v <= 0 for v in values):
+                raise ValueError(f"every {name} value must be positive")
+            if len(set(values)) != len(values):
+                raise ValueError(f"a {name} value is listed twice")
+        if len(self.combinations()) > MAX_SWEEP_POINTS:
+            raise ValueError(f"the sweep expands into {len(self.combinations())} test points "
+                             f"(at most {MAX_SWEEP_POINTS}); sweep fewer values")
+        return self
+
+    def combinations(self) -> list[tuple[float, float, float | None, float | None]]:
+        """(bus voltage, forward current, di/dt, gate resistance) of every grid point, in
+        file order (voltage slowest, then current, then the drive)."""
+        drives: list[tuple[float | None, float | None]] = (
+            [(d, None) for d in self.didt] if self.didt is not None
+            else [(None, r) for r in self.gate_resistance or []])
+        return [(v, i, d, r) for v in self.bus_voltage for i in self.forward_current
+                for d, r in drives]
+
+    def expand(self) -> list[TestPointSpec]:
+        """One :class:`TestPointSpec` per grid point, labelled with its values."""
+        from benchrun.units import format_si
+
+        points = []
+        for volts, amps, didt, ohms in self.combinations():
+            drive = (f"{didt / 1e6:g} A/us" if didt is not None
+                     else format_si(float(ohms or 0.0), "ohm"))
+            points.append(TestPointSpec(
+                label=f"{self.label}: {format_si(volts, 'V')}, {format_si(amps, 'A')}, {drive}",
+                bus_voltage=volts, forward_current=amps, temperatures=self.temperatures,
+                didt=didt, gate_resistance=ohms, repeats=self.repeats,
+                shot_spacing=self.shot_spacing))
+        return points
 
 
 class Tolerances(StrictModel):
@@ -226,7 +306,8 @@ class SequenceConfig(StrictModel):
     ratings: PartRatings | None = None
     devices: Literal["all"] | list[str] = "all"
     limits: str | None = None
-    test_points: list[TestPointSpec] = Field(min_length=1)
+    test_points: list[TestPointSpec] = Field(default_factory=list)
+    sweeps: list[SweepSpec] = Field(default_factory=list)
     tolerances: Tolerances = Tolerances()
     thermal: ThermalSettings = ThermalSettings()
     trim: TrimSettings = TrimSettings()
@@ -242,6 +323,39 @@ class SequenceConfig(StrictModel):
     def _lot(cls, value: str) -> str:
         return check_lot(value)
 
+    @model_validator(mode="after")
+    def _some_points(self) -> SequenceConfig:
+        if not self.test_points and not self.sweeps:
+            raise ValueError("give 'test_points' or 'sweeps' (at least one test point)")
+        return self
+
+    def point_sources(self) -> list[tuple[TestPointSpec, tuple[str, int]]]:
+        """Every test point entry, the sweeps expanded, with where it was written
+        (``("test_points", i)`` or ``("sweeps", j)``): explicit points first, then each
+        sweep's grid in file order."""
+        out: list[tuple[TestPointSpec, tuple[str, int]]] = [
+            (spec, ("test_points", i)) for i, spec in enumerate(self.test_points)]
+        seen: dict[tuple, set[float]] = {}
+        for spec, _ in out:
+            seen.setdefault(_drive_key(spec), set()).update(spec.temperatures)
+        for j, sweep in enumerate(self.sweeps):
+            for spec in sweep.expand():
+                # a grid point an earlier entry already tests (two sweeps crossing at the
+                # nominal point) is tested once, at the temperatures not yet covered
+                done = seen.setdefault(_drive_key(spec), set())
+                left = [t for t in spec.temperatures if t not in done]
+                if not left:
+                    continue
+                done.update(left)
+                if len(left) != len(spec.temperatures):
+                    spec = spec.model_copy(update={"temperatures": left})
+                out.append((spec, ("sweeps", j)))
+        return out
+
+    def all_points(self) -> list[TestPointSpec]:
+        """The explicit test points followed by every sweep's grid points."""
+        return [spec for spec, _ in self.point_sources()]
+
     @field_validator("devices")
     @classmethod
     def _serials(cls, value: Any) -> Any:
@@ -255,6 +369,10 @@ class SequenceConfig(StrictModel):
                     raise ValueError("empty serial")
                 check_serial(serial)
         return value
+
+
+def _drive_key(spec: TestPointSpec) -> tuple:
+    return (spec.bus_voltage, spec.forward_current, spec.didt, spec.gate_resistance)
 
 
 def load_sequence(path: str | Path) -> SequenceConfig:

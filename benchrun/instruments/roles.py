@@ -485,6 +485,11 @@ class PulseSource(_SwitchedOutput):
         self._send("gate_resistance", ohm=float(ohm))
         self.check_errors("setting the gate resistance")
 
+    def set_drive_voltage(self, volts: float) -> None:
+        """Turn-on gate-drive voltage (tables with a ``drive_voltage`` command)."""
+        self._send("drive_voltage", volts=float(volts))
+        self.check_errors("setting the gate-drive voltage")
+
     def fire(self) -> None:
         """Fire one pulse train. Never repeated by the session after a dropped connection."""
         self._send("fire", retry=False)

@@ -24,6 +24,7 @@ import numpy as np
 
 from benchrun.errors import CalibrationOverdue, InstrumentError, RunError, StoreError
 from benchrun.records import ShotResult, TestPoint
+from benchrun.runner.didt_trim import DidtControl, GateDriveShots
 from benchrun.runner.journal import JOURNAL_FILE, JournaledStore
 from benchrun.runner.plan import (
     RETAKE_WIDEN,
@@ -70,7 +71,7 @@ class _InFlight:
     widen: dict[str, float]
 
 
-class ShotCycle:
+class ShotCycle(GateDriveShots):
     """Runs the shots of one run on a connected station."""
 
     def __init__(self, prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
@@ -132,6 +133,8 @@ class ShotCycle:
                               or 0.0 for p in self._specs_points}
         self._swap_dwell = swap_dwell(self.bench)
         self._in_fixture: str | None = None
+        #: gate-drive settings: trimmed per point that asks for a di/dt (runner/didt_trim.py)
+        self.didt = DidtControl(self.bench.fixture.gate_drive, self.sequence.tolerances.didt)
 
     def close(self) -> None:
         """Finish storing and analysing every fired shot (called on every exit path, after
@@ -239,6 +242,17 @@ class ShotCycle:
                                    f"{point.label.split(' @ ')[0]} #{planned.repeat + 1}")
             self._select(planned.serial)
             self._trim(point)
+            if self.didt.needs_trim(point):
+                self.didt.trim(point, lambda setting, p=point: self._didt_shot(p, setting))
+            reason = self.didt.invalid_reason(point)
+            if reason is not None:  # never fired outside its di/dt tolerance
+                log.warning("%s %s not fired: %s", planned.serial, point.label, reason)
+                self.outcome.points_invalid[point.index] = reason
+                self._done(planned)
+                if flight is not None:
+                    self._flight = None
+                    self._conclude(flight, todo)
+                continue
             self._flight = self._fire(planned, attempt)
             if flight is not None:
                 self._conclude(flight, todo)
@@ -260,7 +274,8 @@ class ShotCycle:
         """Whether ``upcoming`` may fire before ``previous`` is concluded: same device (a
         retry of ``previous`` needs no device change) and no trim needed."""
         return (upcoming.serial == previous.serial
-                and upcoming.point.index in self.first_pulse)
+                and upcoming.point.index in self.first_pulse
+                and not self.didt.needs_trim(upcoming.point))
 
     def _conclude(self, flight: _InFlight, todo: deque[PlannedShot]) -> None:
         """Read a fired shot's analysed result; learn from it; queue its retry when it is
@@ -280,8 +295,12 @@ class ShotCycle:
             log.warning("%s %s repeat %d attempt %d invalid: %s", planned.serial, point.label,
                         planned.repeat, flight.attempt, "; ".join(result.flags))
             self._adjust_after(flight, result)
-            if self._next_attempt(planned.serial, point.index,
-                                  planned.repeat) < self.max_attempts:
+            retry = True
+            if any(f.startswith("condition:didt_A_per_s") for f in result.flags):
+                # learn from the miss: the retry is fired at a newly trimmed setting, or not
+                retry = self.didt.missed(point, result.conditions.get("didt_A_per_s"))
+            if retry and self._next_attempt(planned.serial, point.index,
+                                            planned.repeat) < self.max_attempts:
                 todo.appendleft(planned)
                 return
         self._done(planned)
@@ -409,7 +428,7 @@ class ShotCycle:
                                               current.high * scale)
 
         def shoot() -> Capture:
-            self.station.configure_pulse(plan, point.gate_resistance_ohm, single=True)
+            self.station.configure_pulse(plan, *self._gate(point), single=True)
             self.station.energise(volts)
             self.station.configure_scope(plan, ranges, volts)
             def before_fire() -> None:
@@ -478,6 +497,7 @@ class ShotCycle:
                 timestamp=measured["timestamp"], temperature_K=temperature_K,
                 bus_voltage_V=measured["bus_V"],
                 temperature_sensor=self.bench.fixture.temperature_sensor,
+                gate=self._gate_record(point),
             )  # fmt: skip
 
         def shoot() -> Capture:
@@ -490,7 +510,7 @@ class ShotCycle:
             """One shot; None when the handler did not report the device in the fixture
             during it (the capture is dropped and the device selected again)."""
             # the previous shot's fsync ("power-loss" mode) runs meanwhile
-            self.station.configure_pulse(plan, point.gate_resistance_ohm)
+            self.station.configure_pulse(plan, *self._gate(point))
             measured["bus_V"] = self.station.energise(point.bus_voltage_V)
             self.station.configure_scope(plan, ranges, point.bus_voltage_V)
             during: list[futures.Future[Any]] = []
@@ -535,7 +555,7 @@ class ShotCycle:
             "first_pulse_s": plan.first_pulse_s, "off_time_s": plan.off_time_s,
             "second_pulse_s": plan.second_pulse_s, "record_start_s": plan.record_start_s,
             "sample_interval_s": plan.sample_interval_s, "record_length": plan.points,
-            "gate_resistance_ohm": point.gate_resistance_ohm,
+            "gate_resistance_ohm": self._gate(point)[0], "gate_drive_V": self._gate(point)[1],
             "ranges": {name: [r.low, r.high] for name, r in ranges.items()},
         }  # fmt: skip
         probes = {name: self.probes[name] for name in channels}

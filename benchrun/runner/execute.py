@@ -166,6 +166,10 @@ class RunOutcome:
     shots_skipped: int = 0
     trim_shots: int = 0
     warnings: list[str] = field(default_factory=list)
+    #: test points not fired (point index → reason: their di/dt could not be set)
+    points_invalid: dict[int, str] = field(default_factory=dict)
+    #: how di/dt was set and each di/dt point's outcome (``run.json`` ``didt_control``)
+    didt_control: dict[str, Any] | None = None
     safe_state: SafeStateReport | None = None
     error: str | None = None
 
@@ -217,6 +221,9 @@ def prepare(sequence_path: str | Path, bench_path: str | Path, options: RunOptio
     if sequence.devices == "all" and bench.instruments.handler is None:
         raise ConfigError("'devices: all' needs a handler in the bench file",
                           file=str(sequence_path), field="devices")
+    from benchrun.config.crosscheck import check_didt_means
+
+    check_didt_means(sequence, sequence_path, bench, bench_path)
     preflight(expand_points(sequence), sequence, bench, ratings)
     heat = [shot_heat(p, sequence, bench).problem for p in expand_points(sequence)]
     if any(heat):
@@ -524,6 +531,8 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
             station.close()
         if cycle is not None:
             cycle.close()  # shots fired before the end are stored and analysed
+            if cycle.didt.points:
+                outcome.didt_control = cycle.didt.record()
             if cycle.close_error is not None and error is None:
                 outcome.status = "aborted"
                 outcome.error = str(cycle.close_error)
@@ -582,6 +591,10 @@ def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore |
     manifest["counts"] = {"stored": outcome.shots_stored, "valid": outcome.shots_valid,
                           "recovered": outcome.shots_recovered, "trim": outcome.trim_shots}
     manifest["store_url"] = manifest.get("store_url")
+    if outcome.didt_control is not None:
+        manifest["didt_control"] = outcome.didt_control
+    if outcome.points_invalid:
+        manifest["points_invalid"] = {str(k): v for k, v in outcome.points_invalid.items()}
 
 
 def _record_files(outcome: RunOutcome, manifest: dict[str, Any],

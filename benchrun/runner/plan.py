@@ -252,6 +252,20 @@ def planned_irrm(point: TestPoint, sequence: SequenceConfig,
     return sequence.expected.irrm_fraction * point.forward_current_A, "irrm_fraction × IF"
 
 
+def turn_off_delay(point: TestPoint, bench: BenchConfig) -> float:
+    """How long the switch may go on conducting after the second pulse ends, for a point
+    whose gate resistor the runner chooses (a di/dt target): the gate discharging from the
+    drive voltage to the threshold through the largest declared resistor,
+    Rg·Ciss·ln(Vdrive/Vth) (RC discharge, any circuit-theory text). 0 for other points
+    (their resistance was part of the plan before)."""
+    gate = bench.fixture.gate_drive
+    if gate is None or point.didt_A_per_s is None:
+        return 0.0
+    drive = gate.drive_voltage_range[1] if gate.drive_voltage_range else gate.drive_voltage
+    ratio = max(float(drive or 0.0) / gate.threshold_voltage, 1.0)
+    return max(gate.resistors) * gate.input_capacitance * math.log(ratio)
+
+
 def plan_ranges(point: TestPoint, sequence: SequenceConfig, bench: BenchConfig,
                 limits: LimitsSpec | None = None) -> dict[str, SignalRange]:
     """Scope full-scale windows of a test point, from the part's limits and the point alone.
@@ -272,7 +286,8 @@ def plan_ranges(point: TestPoint, sequence: SequenceConfig, bench: BenchConfig,
     IF = point.forward_current_A
     VR = point.bus_voltage_V
     irrm, _ = planned_irrm(point, sequence, limits)
-    after = IF + VR * sequence.timing.second_pulse / bench.fixture.load_inductance
+    conducts = sequence.timing.second_pulse + turn_off_delay(point, bench)
+    after = IF + VR * conducts / bench.fixture.load_inductance
     slope = expected_didt(point, sequence)
     if slope is not None:
         overshoot = bench.fixture.stray_inductance * slope * sequence.expected.overshoot_margin
@@ -317,13 +332,14 @@ def expand_with_specs(sequence: SequenceConfig) -> list[tuple[TestPoint, TestPoi
     order, so a resumed run numbers its points the same way.
     """
     order: list[float] = []
-    for spec in sequence.test_points:
+    specs = sequence.all_points()
+    for spec in specs:
         for temperature in spec.temperatures:
             if temperature not in order:
                 order.append(temperature)
     pairs: list[tuple[TestPoint, TestPointSpec]] = []
     for temperature in order:
-        for number, spec in enumerate(sequence.test_points):
+        for number, spec in enumerate(specs):
             if temperature not in spec.temperatures:
                 continue
             label = spec.label or f"point {number + 1}"

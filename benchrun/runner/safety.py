@@ -105,9 +105,10 @@ def point_problems(point: TestPoint, sequence: SequenceConfig, bench: BenchConfi
             if peak > ratings.vrrm:
                 problems.append(f"{where}: expected peak reverse voltage {peak:.4g} V "
                                 f"(VR + Ls*di/dt) exceeds VRRM {ratings.vrrm:g} V")
-        if amps > ratings.if_max:
+        if amps > ratings.max_test_current:
+            which = "IF max" if ratings.ifrm is None else "IFRM"
             problems.append(f"{where}: forward current {amps:g} A exceeds the part's rating "
-                            f"{ratings.if_max:g} A")
+                            f"{ratings.max_test_current:g} A ({which})")
         if temp > ratings.tj_max:
             problems.append(f"{where}: temperature {temp - 273.15:g} degC exceeds Tj max "
                             f"{ratings.tj_max - 273.15:g} degC")

@@ -22,6 +22,7 @@ from benchrun.config.sequence import SequenceConfig
 from benchrun.errors import AnalysisError
 from benchrun.records import CONDITION_KEYS, ShotResult, TestPoint
 from benchrun.runner.conditions import check_conditions
+from benchrun.runner.didt import commutation_didt
 
 #: Flag of a shot whose capture could not be analysed at all.
 FLAG_ANALYSIS_FAILED = "analysis_failed"
@@ -141,6 +142,9 @@ class ShotContext:
     bus_voltage_V: float | None
     #: where the temperature was measured: "plate" or "case" (bench fixture)
     temperature_sensor: str | None = None
+    #: the gate-drive setting the shot was fired with: ``gate_resistance_ohm`` and
+    #: ``gate_drive_V`` (None: not set by the runner)
+    gate: dict[str, float] | None = None
 
     def attrs(self, settings: dict[str, Any]) -> dict[str, Any]:
         """Shot attributes for the raw record."""
@@ -149,7 +153,7 @@ class ShotContext:
             "point": self.point.to_dict(), "repeat": self.repeat, "attempt": self.attempt,
             "timestamp": self.timestamp, "temperature_K": self.temperature_K,
             "bus_voltage_V": self.bus_voltage_V, "settings": settings,
-            "temperature_sensor": self.temperature_sensor,
+            "temperature_sensor": self.temperature_sensor, "gate": self.gate,
         }  # fmt: skip
 
     def identity(self) -> dict[str, Any]:
@@ -166,7 +170,7 @@ class ShotContext:
             repeat=int(attrs["repeat"]), attempt=int(attrs["attempt"]),
             timestamp=attrs["timestamp"], temperature_K=attrs.get("temperature_K"),
             bus_voltage_V=attrs.get("bus_voltage_V"),
-            temperature_sensor=attrs.get("temperature_sensor"),
+            temperature_sensor=attrs.get("temperature_sensor"), gate=attrs.get("gate"),
         )  # fmt: skip
 
 
@@ -177,7 +181,7 @@ def build_result(context: ShotContext, t_start: float, dt: float,
     metrics, flags = analyse(t_start, dt, channels, probes, recovery_options(sequence))
     conditions: dict[str, Any] = {
         "if_A": metrics.get("if_A"),
-        "didt_A_per_s": metrics.get("didt_A_per_s"),
+        "didt_A_per_s": measured_didt(t_start, dt, channels, probes, metrics.get("if_A")),
         "vr_V": metrics.get("vr_V"),
         "temperature_K": context.temperature_K,
     }
@@ -196,5 +200,22 @@ def build_result(context: ShotContext, t_start: float, dt: float,
         flags=tuple(dict.fromkeys(all_flags)),
         valid=valid,
         raw_ref=raw_ref,
-        acquisition=acquisition_facts(dt, channels, probes),
+        acquisition={**acquisition_facts(dt, channels, probes),
+                     **{k: float(v) for k, v in (context.gate or {}).items()
+                        if v is not None}},
     )
+
+
+def measured_didt(t_start: float, dt: float, channels: Mapping[str, ChannelData],
+                  probes: Mapping[str, ProbeCalibration], if_A: float | None) -> float | None:
+    """The shot's di/dt as a test condition: :func:`benchrun.runner.didt.commutation_didt`
+    on the diode current (the forward current's fall between 50 % and 10 % of IF, which
+    the device under test does not shape); None without a current channel or an IF."""
+    channel = channels.get("diode_current")
+    if channel is None or not if_A or not math.isfinite(if_A):
+        return None
+    probe = probes.get("diode_current")
+    amps = (np.asarray(channel.codes, dtype=float) * channel.gain + channel.offset) * (
+        probe.scale if probe is not None else 1.0)
+    t = t_start + dt * np.arange(amps.size)
+    return commutation_didt(t, amps, float(if_A))

@@ -98,6 +98,7 @@ class Station:
         self._scope_setup: tuple | None = None
         self._pulse_setup: tuple | None = None
         self._gate: float | None = None
+        self._drive: float | None = None
         self._voltage: float | None = None
         self._supply_on = False
         self._pulse_on = False
@@ -343,12 +344,16 @@ class Station:
         self._scope_setup = setup
 
     def configure_pulse(self, plan: PulsePlan, gate_resistance_ohm: float | None,
-                        *, single: bool = False) -> None:
-        """Pulse timing and gate resistance; only sent when they changed."""
+                        drive_V: float | None = None, *, single: bool = False) -> None:
+        """Pulse timing, gate resistance and (when given) the turn-on drive voltage; only
+        sent when they changed."""
         self._check_sessions()
         if gate_resistance_ohm is not None and gate_resistance_ohm != self._gate:
             self.pulse.set_gate_resistance(gate_resistance_ohm)
             self._gate = gate_resistance_ohm
+        if drive_V is not None and drive_V != self._drive:
+            self.pulse.set_drive_voltage(drive_V)
+            self._drive = drive_V
         setup = (plan.first_pulse_s, 0.0, 0.0) if single else (
             plan.first_pulse_s, plan.off_time_s, plan.second_pulse_s)
         if setup != self._pulse_setup:
@@ -393,6 +398,7 @@ class Station:
         self._scope_setup = None
         self._pulse_setup = None
         self._gate = None
+        self._drive = None
         self._voltage = None
         self._supply_on = False
         self._pulse_on = False

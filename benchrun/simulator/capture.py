@@ -15,6 +15,7 @@ the chosen direction is ``t = 0``; no crossing, no capture.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Mapping
 from typing import Any
@@ -171,6 +172,9 @@ class PhysicsCaptureModel:
 
         diode = catalog_device(catalog, condition.serial)
         switch = physics.SwitchModel(gate_resistance_ohm=condition.gate_resistance_ohm)
+        drive = getattr(condition, "gate_drive_V", None)
+        if drive is not None:
+            switch = dataclasses.replace(switch, gate_on_V=float(drive))
         if condition.second_pulse_s > 0:
             timing = physics.PulseTiming(condition.first_pulse_s, condition.off_time_s,
                                          condition.second_pulse_s)

@@ -61,7 +61,8 @@ class BenchLink(Protocol):
         """Simulated seconds since the bench started (accelerated clock)."""
         ...
 
-    def fire(self, timing: tuple[float, float, float], gate_resistance_ohm: float) -> str | None:
+    def fire(self, timing: tuple[float, float, float], gate_resistance_ohm: float,
+             drive_V: float | None = None) -> str | None:
         """The pulse source fired; returns a reason string when nothing could happen."""
         ...
 
@@ -422,6 +423,8 @@ class SimPulseSource(WatchdogMixin, SimInstrument):
         self.gap = 5e-6
         self.second = 2e-6
         self.gate_resistance = 10.0
+        #: turn-on drive voltage; None = the simulated switch's own (15 V)
+        self.drive_voltage: float | None = None
         self.output_on = False
         self.shots = 0
 
@@ -455,6 +458,12 @@ class SimPulseSource(WatchdogMixin, SimInstrument):
     def read_gate_resistance(self) -> dict[str, Any]:
         return {"ohm": self.gate_resistance}
 
+    def op_drive_voltage(self, volts: float) -> None:
+        self.drive_voltage = volts
+
+    def read_drive_voltage(self) -> dict[str, Any]:
+        return {"volts": 15.0 if self.drive_voltage is None else self.drive_voltage}
+
     def op_output(self, state: bool) -> None:
         self.output_on = state
 
@@ -466,7 +475,7 @@ class SimPulseSource(WatchdogMixin, SimInstrument):
             self.push_error(-221, "output off")
             return
         timing = (self.first, self.gap, self.second) if self.count == 2 else (self.first, 0.0, 0.0)
-        problem = self.bench.fire(timing, self.gate_resistance)
+        problem = self.bench.fire(timing, self.gate_resistance, self.drive_voltage)
         if problem:
             self.push_error(-221, problem)
             return

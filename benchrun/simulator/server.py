@@ -74,6 +74,8 @@ class ShotCondition:
     off_time_s: float
     second_pulse_s: float
     gate_resistance_ohm: float
+    #: turn-on gate-drive voltage; None = the simulated switch's own
+    gate_drive_V: float | None = None
 
 
 @dataclass(frozen=True)
@@ -287,7 +289,8 @@ class SimulatedBench:
         return float(_fixture_value(self.fixture, ("bleeder_ohm", "bleeder_resistance_ohm",
                                                    "r_bleeder_ohm"), DEFAULT_BLEEDER_OHM))
 
-    def fire(self, timing: tuple[float, float, float], gate_resistance_ohm: float) -> str | None:
+    def fire(self, timing: tuple[float, float, float], gate_resistance_ohm: float,
+             drive_V: float | None = None) -> str | None:
         """The pulse source fired: run the shot and fill the scope if it was armed."""
         serial = self.handler.selected
         if serial is None:
@@ -300,6 +303,7 @@ class SimulatedBench:
             off_time_s=timing[1],
             second_pulse_s=timing[2],
             gate_resistance_ohm=gate_resistance_ohm,
+            gate_drive_V=drive_V,
         )
         self.shots.append(condition)
         self.shots_fired += 1

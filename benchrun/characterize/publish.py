@@ -1,0 +1,142 @@
+"""From a finished sweep run to its signed characterisation report and curve CSV.
+
+:func:`publish_characterization` reads a run folder (:func:`benchrun.store.rundata.load_run`),
+writes ``curves.csv`` (:func:`benchrun.characterize.curves.write_curves_csv`: one row per
+measured shot), ``fits.csv`` (:func:`benchrun.characterize.fits.write_sweep_fits_csv`: every
+trend and surface fit) and ``characterization.pdf`` (:func:`benchrun.characterize.report
+.render_characterization`, signed like the acceptance report) into it, with the run's di/dt
+control (``run.json`` ``didt_control``: the means, each point's setting and trim) and every
+point that was not fired (``points_invalid``) stated on the report.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from benchrun.characterize.curves import Trend, write_curves_csv
+from benchrun.characterize.report import render_characterization
+from benchrun.records import ShotResult
+
+__all__ = ["CSV_NAME", "FITS_NAME", "PDF_NAME", "PublishedCharacterization", "flagged_lines",
+           "point_table", "publish_characterization"]
+
+PDF_NAME = "characterization.pdf"
+CSV_NAME = "curves.csv"
+FITS_NAME = "fits.csv"
+#: Flags of a valid shot worth listing on the report (recovery behaviour, not data quality).
+BEHAVIOUR_FLAGS = ("snap", "ringing", "avalanche")
+
+
+@dataclass(frozen=True)
+class PublishedCharacterization:
+    pdf: Path
+    csv: Path
+    trends: list[Trend]
+    shots: list[ShotResult]
+    #: ``fits.csv``: every trend and surface fit (:mod:`benchrun.characterize.fits`)
+    fits: Path | None = None
+
+
+def _flag_name(flag: str) -> str:
+    return flag.split(":", 1)[0].strip()
+
+
+def flagged_lines(shots: Sequence[ShotResult], not_fired: dict[str, str] | None = None,
+                  labels: dict[str, str] | None = None) -> list[str]:
+    """One line per invalid shot (its reasons), per valid shot with a recovery-behaviour
+    flag (:data:`BEHAVIOUR_FLAGS`) and per point that was not fired."""
+    lines = []
+    for s in shots:
+        where = f"{s.point.label}, {s.serial} repeat {s.repeat + 1} attempt {s.attempt + 1}"
+        if not s.valid:
+            lines.append(f"{where}: invalid ({'; '.join(s.flags)})")
+            continue
+        behaviour = [f for f in s.flags if _flag_name(f).startswith(BEHAVIOUR_FLAGS)]
+        if behaviour:
+            lines.append(f"{where}: {'; '.join(behaviour)}")
+    for index, reason in (not_fired or {}).items():
+        label = (labels or {}).get(index, f"point {index}")
+        lines.append(f"{label}: not fired — {reason}")
+    return lines
+
+
+def point_table(shots: Sequence[ShotResult], didt: dict[str, Any] | None
+                ) -> list[list[str]]:
+    """Rows of the conditions table: per test point the requested and the mean measured
+    di/dt of its valid shots, the gate setting used, valid shots / shots."""
+    points: dict[int, list[ShotResult]] = {}
+    for s in shots:
+        points.setdefault(s.point.index, []).append(s)
+    control = (didt or {}).get("points", {})
+    rows = [["point", "di/dt requested", "di/dt measured (mean)", "gate setting",
+             "valid / shots"]]
+    for index in sorted(points):
+        group = points[index]
+        point = group[0].point
+        measured = [float(s.conditions["didt_A_per_s"]) for s in group
+                    if s.valid and s.conditions.get("didt_A_per_s") is not None]
+        settings = sorted({s.acquisition.get("gate_resistance_ohm") for s in group
+                           if s.acquisition.get("gate_resistance_ohm") is not None})
+        setting = ", ".join(f"{r:g} Ω" for r in settings) or "—"
+        if control.get(str(index), {}).get("gate_drive_V"):
+            setting += f" at {control[str(index)]['gate_drive_V']:.3g} V"
+        rows.append([
+            point.label,
+            "—" if point.didt_A_per_s is None else f"{point.didt_A_per_s / 1e6:.0f} A/µs",
+            f"{sum(measured) / len(measured) / 1e6:.0f} A/µs" if measured else "—",
+            setting,
+            f"{sum(s.valid for s in group)} / {len(group)}",
+        ])
+    return rows
+
+
+def publish_characterization(run_dir: str | Path, signer: Any, *, title: str | None = None
+                             ) -> PublishedCharacterization:
+    """Write ``curves.csv`` and the signed ``characterization.pdf`` into ``run_dir``."""
+    from benchrun.store.rundata import load_run
+
+    run = load_run(Path(run_dir))
+    manifest = run.manifest
+    shots = sorted(run.shots, key=lambda s: (s.point.index, s.serial, s.repeat, s.attempt))
+    run_folder = Path(run.run_dir or run_dir)
+    csv_path = write_curves_csv(shots, run_folder / CSV_NAME)
+    from benchrun.characterize.fits import write_sweep_fits_csv
+
+    fits_path = write_sweep_fits_csv(shots, run_folder / FITS_NAME)
+    didt = manifest.get("didt_control")
+    not_fired = manifest.get("points_invalid") or {}
+    from benchrun.config.sequence import load_sequence
+    from benchrun.runner.plan import expand_points
+
+    labels: dict[str, str] = {}
+    sequence_file = run_folder / "sequence.yaml"
+    if sequence_file.is_file():
+        labels = {str(p.index): p.label for p in expand_points(load_sequence(sequence_file))}
+    part, lot = manifest.get("part", ""), manifest.get("lot", "")
+    serials = sorted({s.serial for s in shots})
+    temperatures = sorted({round(s.point.temperature_K - 273.15, 2) for s in shots})
+    notes = [
+        f"Run {manifest.get('run_id', '')}: part {part}, lot {lot}, devices "
+        f"{', '.join(serials)} (a sample of the lot); {len(shots)} shots "
+        f"({sum(s.valid for s in shots)} valid) at "
+        f"{len({s.point.index for s in shots})} test points; temperatures "
+        f"{', '.join(f'{t:g}' for t in temperatures)} °C.",
+        "di/dt is measured on every shot as the least-squares slope of the forward current "
+        "between 50 % and 10 % of IF before its zero crossing (the switch and the loop set "
+        "it there; the device under test does not shape it).",
+    ]
+    if didt:
+        notes.append(
+            f"di/dt was set by the runner ({didt.get('means')}), trimmed with trim shots to "
+            f"within {100 * float(didt.get('tolerance', 0)):g} % of each point's target and "
+            "verified on every shot; a shot outside the tolerance is invalid and never "
+            "enters a curve.")
+    pdf, trends = render_characterization(
+        shots, run_folder / PDF_NAME, signer,
+        title=title or f"{part} characterisation — lot {lot}",
+        flagged=flagged_lines(shots, not_fired, labels), notes=notes,
+        conditions=point_table(shots, didt))
+    return PublishedCharacterization(pdf, csv_path, trends, shots, fits_path)
