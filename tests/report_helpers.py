@@ -16,6 +16,7 @@ import pytest
 from benchrun.analysis.pipeline import ChannelData, ProbeCalibration, analyze_channels
 from benchrun.config.bench import load_bench
 from benchrun.records import ShotResult, TestPoint
+from benchrun.runner.shots import measured_didt
 from benchrun.store.raw import RawRecord
 from benchrun.store.results import ResultsStore
 from benchrun.store.rundata import default_store_url, write_manifest
@@ -128,7 +129,9 @@ def build_run(tmp_path: Path, n_devices: int = 4, *, failing: tuple[int, ...] = 
                     run_id=run_id, part="DX-4417", lot="LT-0117", serial=serial,
                     point=point, repeat=0, attempt=0,
                     timestamp=f"2026-11-30T09:{shot_no // 60:02d}:{shot_no % 60:02d}+00:00",
-                    conditions={"if_A": metrics["if_A"], "didt_A_per_s": metrics["didt_A_per_s"],
+                    conditions={"if_A": metrics["if_A"],  # di/dt as the runner measures it
+                                "didt_A_per_s": measured_didt(t0, dt, channels, probes,
+                                                              metrics["if_A"]),
                                 "vr_V": metrics["vr_V"],
                                 "temperature_K": point.temperature_K + 0.2},
                     metrics=metrics, flags=analysis.flags, valid=True, raw_ref=ref,

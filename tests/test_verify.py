@@ -190,3 +190,24 @@ def test_a_re_signed_report_with_an_edited_number_fails_re_analysis(signed_run, 
     reanalysis = result.check(CHECK_REANALYSIS)
     assert not reanalysis.ok and not result.ok
     assert f"{edited['serial']} {edited['raw_ref']}: qrr_C reported" in reanalysis.reason
+
+
+def test_re_analysis_re_measures_the_di_dt_condition_by_the_runners_definition(signed_run):  # noqa: F811
+    # di/dt as a test condition is the forward current's fall between 50 % and 10 % of IF
+    # (benchrun.runner.didt.commutation_didt), not the analysis' didt metric: the regrade
+    # must take that condition again from the raw record, and a changed one is caught
+    from benchrun.report.sign import read_attachment
+    from benchrun.report.verify_reanalysis import CONDITION_DIDT, reanalyse_shots
+
+    rows = read_attachment(signed_run.pdf.read_bytes())["shots"]
+    problems: list[str] = []
+    fresh = reanalyse_shots(rows, signed_run.run, None, problems)
+    assert problems == []
+    for row in rows:
+        stored = row["conditions"]["didt_A_per_s"]
+        assert fresh[row["raw_ref"]][CONDITION_DIDT] == pytest.approx(stored, rel=1e-9)
+    changed = [dict(r) for r in rows]
+    changed[0]["conditions"] = {**rows[0]["conditions"],
+                                "didt_A_per_s": rows[0]["conditions"]["didt_A_per_s"] * 1.1}
+    reanalyse_shots(changed, signed_run.run, None, problems)
+    assert len(problems) == 1 and "measured di/dt" in problems[0]

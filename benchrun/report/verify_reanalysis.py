@@ -23,7 +23,10 @@ from benchrun.report.verify_checks import CHECK_REANALYSIS, Check
 #: Relative agreement required between a reported and a re-computed number.
 REL_TOL = 1e-9
 #: Keys of ``ShotResult.conditions`` that the analysis itself measures (taken from it again).
-ANALYSED_CONDITIONS = ("if_A", "didt_A_per_s", "vr_V")
+ANALYSED_CONDITIONS = ("if_A", "vr_V")
+#: Key of a re-analysed shot's di/dt as a test condition (the runner's commutation definition,
+#: :func:`benchrun.runner.shots.measured_didt`, not the analysis' ``didt_A_per_s`` metric).
+CONDITION_DIDT = "condition:didt_A_per_s"
 
 
 def same_number(a: Any, b: Any) -> bool:
@@ -47,6 +50,8 @@ def _check(ok: bool, reason: str, details: list[str] | tuple[str, ...] = ()) -> 
 def _reanalyse_shots(rows: list[dict[str, Any]], run: Any, options: dict[str, Any] | None,
                      problems: list[str]) -> dict[str, dict[str, Any]]:
     """raw_ref → re-analysed metrics; problems collects every disagreement."""
+    from benchrun.runner.shots import measured_didt
+
     out: dict[str, dict[str, Any]] = {}
     try:
         raw = run.open_raw()
@@ -72,11 +77,18 @@ def _reanalyse_shots(rows: list[dict[str, Any]], run: Any, options: dict[str, An
                     problems.append(f"{label}: analysis now fails ({exc}) but the report has "
                                     "metrics")
                 continue
-            out[ref] = metrics
+            didt = measured_didt(shot.t_start, shot.dt, shot.channels, shot.probes,
+                                 metrics.get("if_A"))
+            out[ref] = {**metrics, CONDITION_DIDT: didt}
             for key, value in reported.items():
                 if not same_number(value, metrics.get(key)):
                     problems.append(f"{label}: {key} reported {value!r}, re-analysis gives "
                                     f"{metrics.get(key)!r}")
+            conditions = row.get("conditions") or {}
+            if "didt_A_per_s" in conditions and not same_number(conditions["didt_A_per_s"],
+                                                                 didt):
+                problems.append(f"{label}: measured di/dt reported "
+                                f"{conditions['didt_A_per_s']!r}, re-measurement gives {didt!r}")
     return out
 
 
@@ -133,6 +145,8 @@ def shots_with_fresh_metrics(rows: list[dict[str, Any]],
             for key in ANALYSED_CONDITIONS:
                 if key in conditions and key in fresh:
                     conditions[key] = fresh[key]
+            if "didt_A_per_s" in conditions and CONDITION_DIDT in fresh:
+                conditions["didt_A_per_s"] = fresh[CONDITION_DIDT]
             shot = ShotResult.from_dict({**shot.to_dict(), "metrics": merged,
                                          "conditions": conditions})
         shots.append(shot)
