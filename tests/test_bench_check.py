@@ -14,7 +14,7 @@ import pytest
 from benchrun.config import load_bench, load_sequence
 from benchrun.instruments.check import check_bench
 from benchrun.instruments.session import InstrumentSession
-from benchrun.simulator.instruments_sim import SimBusSupply
+from benchrun.simulator.instruments_sim_outputs import SimBusSupply
 from benchrun.simulator.server import SimulatedBench
 from tests.bench_process import BENCH, ROOT, SimProcess, env
 

@@ -9,7 +9,9 @@ a real bench::
 
 Each server runs in its own thread (``socketserver.ThreadingTCPServer``); messages are lines
 terminated by ``"\\n"``; the instruments are the state machines of
-:mod:`benchrun.simulator.instruments_sim`, reading the *same* command tables as the drivers.
+:mod:`benchrun.simulator.instruments_sim` (the scope) and
+:mod:`benchrun.simulator.instruments_sim_outputs` (the other roles), reading the *same* command
+tables as the drivers.
 
 Coupling: when the pulse source fires with its output on, a device in the fixture and the
 scope armed, the bench builds the shot condition from the supply's bus voltage, the thermal
@@ -37,13 +39,11 @@ from benchrun.errors import InstrumentError
 from benchrun.instruments import scpi
 from benchrun.instruments.commands import load_table
 from benchrun.simulator.faults import FaultSwitches
-from benchrun.simulator.instruments_sim import (
+from benchrun.simulator.instruments_sim import Block, SimInstrument, SimScope
+from benchrun.simulator.instruments_sim_outputs import (
     SIM_CLASSES,
-    Block,
     SimBusSupply,
     SimHandler,
-    SimInstrument,
-    SimScope,
     SimThermalController,
 )
 
