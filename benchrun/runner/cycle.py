@@ -427,25 +427,8 @@ class ShotCycle(GateDriveShots):
         ranges["diode_current"] = SignalRange("diode_current", current.low * scale,
                                               current.high * scale)
 
-        def shoot() -> Capture:
-            self.station.configure_pulse(plan, *self._gate(point), single=True)
-            self.station.energise(volts)
-            self.station.configure_scope(plan, ranges, volts)
-            def before_fire() -> None:
-                self.writer.wait_stored()
-                self._wait_spacing()  # a trim shot heats the device too
-
-            return self.station.fire(["diode_current"], self.options.trigger_timeout_s,
-                                     before_fire=before_fire,
-                                     on_fired=lambda: self._fired(point))
-
-        capture = self._with_retry(shoot, "trim shot")
-        self.outcome.trim_shots += 1
-        trace = capture.traces["diode_current"]
-        amps = trace.volts() * self.probes["diode_current"].scale
-        t = trace.t_start + trace.dt * np.arange(amps.size)
-        t_on = plan.first_pulse_s
-        window = (t >= t_on + 0.5 * plan.off_time_s) & (t <= t_on + 0.95 * plan.off_time_s)
+        _t, amps, window = self._fire_current_capture(
+            point, plan, self._gate(point), {"single": True}, volts, ranges, "trim shot")
         if window.sum() < 3:
             raise RunError("trim shot: the record does not cover the off time")
         return float(np.median(amps[window]))

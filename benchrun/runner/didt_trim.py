@@ -240,6 +240,35 @@ class GateDriveShots:
             record["gate_drive_V"] = setting.drive_V
         return record
 
+    def _fire_current_capture(self, point: TestPoint, plan: Any, pulse_args: tuple,
+                              pulse_kwargs: dict[str, Any], volts: float,
+                              ranges: dict[str, Any], what: str,
+                              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Fire one trim shot capturing the diode current alone (nothing stored as a result):
+        its time axis, amperes, and the mask of the freewheeling window (second half of the
+        off time, where the current is the one the second pulse commutates)."""
+        def shoot() -> Capture:
+            self.station.configure_pulse(plan, *pulse_args, **pulse_kwargs)
+            self.station.energise(volts)
+            self.station.configure_scope(plan, ranges, volts)
+
+            def before_fire() -> None:
+                self.writer.wait_stored()
+                self._wait_spacing()  # a trim shot heats the device too
+
+            return self.station.fire(["diode_current"], self.options.trigger_timeout_s,
+                                     before_fire=before_fire,
+                                     on_fired=lambda: self._fired(point))
+
+        capture = self._with_retry(shoot, what)
+        self.outcome.trim_shots += 1
+        trace = capture.traces["diode_current"]
+        amps = trace.volts() * self.probes["diode_current"].scale
+        t = trace.t_start + trace.dt * np.arange(amps.size)
+        window = ((t >= plan.first_pulse_s + 0.5 * plan.off_time_s)
+                  & (t <= plan.first_pulse_s + 0.95 * plan.off_time_s))
+        return t, amps, window
+
     def _didt_shot(self, point: TestPoint, setting: DidtSetting) -> float | None:
         """One di/dt trim shot: a full double pulse at ``setting`` (diode current only,
         nothing stored as a result); its commutation di/dt
@@ -251,26 +280,9 @@ class GateDriveShots:
         drive = setting.drive_V if gate is not None and gate.sets_drive_voltage else None
         self.progress.status(f"di/dt trim {point.label}")
 
-        def shoot() -> Capture:
-            self.station.configure_pulse(plan, setting.gate_resistance_ohm, drive)
-            self.station.energise(point.bus_voltage_V)
-            self.station.configure_scope(plan, ranges, point.bus_voltage_V)
-
-            def before_fire() -> None:
-                self.writer.wait_stored()
-                self._wait_spacing()
-
-            return self.station.fire(["diode_current"], self.options.trigger_timeout_s,
-                                     before_fire=before_fire,
-                                     on_fired=lambda: self._fired(point))
-
-        capture = self._with_retry(shoot, "di/dt trim shot")
-        self.outcome.trim_shots += 1
-        trace = capture.traces["diode_current"]
-        amps = trace.volts() * self.probes["diode_current"].scale
-        t = trace.t_start + trace.dt * np.arange(amps.size)
-        window = ((t >= plan.first_pulse_s + 0.5 * plan.off_time_s)
-                  & (t <= plan.first_pulse_s + 0.95 * plan.off_time_s))
+        t, amps, window = self._fire_current_capture(
+            point, plan, (setting.gate_resistance_ohm, drive), {}, point.bus_voltage_V, ranges,
+            "di/dt trim shot")
         if window.sum() < 3:
             return None
         if_A = float(np.median(amps[window]))
