@@ -4,8 +4,8 @@ the per-point trim, the re-choice after a miss, and a run on the simulated bench
 The reference for the achieved di/dt is the simulator's circuit (the switch's gate charging
 through Rg, three-capacitor model: B. J. Baliga, *Fundamentals of Power Semiconductor
 Devices*, ch. 6; from memory as to the exact form) measured by the stated definition
-(:func:`benchrun.runner.didt.commutation_didt`, the forward current's fall from 50 % to 10 %
-of IF). Tolerances are the sequence's (common practice: 20-25 % for di/dt).
+(:func:`benchrun.runner.didt.commutation_didt`, the current's rate of change through its zero
+crossing). Tolerances are the sequence's (common practice: 20-25 % for di/dt).
 """
 
 from __future__ import annotations

@@ -19,6 +19,7 @@ from typing import Any
 from benchrun.characterize.curves import Trend, write_curves_csv
 from benchrun.characterize.report import render_characterization
 from benchrun.records import ShotResult
+from benchrun.runner.didt import DIDT_DEFINITION
 
 __all__ = ["CSV_NAME", "FITS_NAME", "PDF_NAME", "PublishedCharacterization", "flagged_lines",
            "point_table", "publish_characterization"]
@@ -124,9 +125,7 @@ def publish_characterization(run_dir: str | Path, signer: Any, *, title: str | N
         f"({sum(s.valid for s in shots)} valid) at "
         f"{len({s.point.index for s in shots})} test points; temperatures "
         f"{', '.join(f'{t:g}' for t in temperatures)} °C.",
-        "di/dt is measured on every shot as the least-squares slope of the forward current "
-        "between 50 % and 10 % of IF before its zero crossing (the switch and the loop set "
-        "it there; the device under test does not shape it).",
+        f"Measured on every shot: {DIDT_DEFINITION}",
     ]
     if didt:
         notes.append(

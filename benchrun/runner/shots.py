@@ -209,8 +209,8 @@ def build_result(context: ShotContext, t_start: float, dt: float,
 def measured_didt(t_start: float, dt: float, channels: Mapping[str, ChannelData],
                   probes: Mapping[str, ProbeCalibration], if_A: float | None) -> float | None:
     """The shot's di/dt as a test condition: :func:`benchrun.runner.didt.commutation_didt`
-    on the diode current (the forward current's fall between 50 % and 10 % of IF, which
-    the device under test does not shape); None without a current channel or an IF."""
+    on the diode current (its rate of change through the zero crossing, which the
+    device under test barely shapes); None without a current channel or an IF."""
     channel = channels.get("diode_current")
     if channel is None or not if_A or not math.isfinite(if_A):
         return None
