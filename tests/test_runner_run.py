@@ -99,6 +99,29 @@ def test_reanalysis_of_raw_record_reproduces_stored_metrics(two_temperature_run)
 
 
 @pytest.mark.slow
+def test_reanalysis_from_the_raw_record_reproduces_flags_with_the_chain_rise_times(
+        two_temperature_run):
+    # the bench file's bandwidths give each chain a rise time (tr = 0.35/BW, first-order
+    # system; benchrun.config.bench.system_rise_time) that rise_time_limited needs: it is
+    # stored with every raw shot and the re-analysis (report, verify) uses it
+    from benchrun.config.bench import system_rise_time
+    from benchrun.report.raw_waveforms import raw_shot_probes, reanalyze_raw_shot
+
+    outcome, _ = two_temperature_run
+    run = load_run(outcome.run_dir)
+    bench = load_bench(outcome.run_dir / "bench.yaml")
+    options = run.manifest.get("analysis_options")
+    with RawRecord(outcome.run_dir / "raw.h5", "r") as raw:
+        for shot in run.shots[:4]:
+            stored = raw.read_shot(shot.raw_ref)
+            probes = raw_shot_probes(stored)
+            for name in ("diode_current", "diode_voltage"):
+                assert probes[name].rise_time_s == pytest.approx(system_rise_time(bench, name))
+            _, flags = reanalyze_raw_shot(stored, options)
+            assert [f for f in shot.flags if not f.startswith("condition:")] == list(flags)
+
+
+@pytest.mark.slow
 def test_safe_state_and_manifest(two_temperature_run):
     outcome, (pulse_on, supply_on, bus_V) = two_temperature_run
     assert not pulse_on and not supply_on

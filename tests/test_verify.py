@@ -193,7 +193,7 @@ def test_a_re_signed_report_with_an_edited_number_fails_re_analysis(signed_run, 
 
 
 def test_re_analysis_re_measures_the_di_dt_condition_by_the_runners_definition(signed_run):  # noqa: F811
-    # di/dt as a test condition is the forward current's fall between 50 % and 10 % of IF
+    # di/dt as a test condition is the current's rate of change through its zero crossing
     # (benchrun.runner.didt.commutation_didt), not the analysis' didt metric: the regrade
     # must take that condition again from the raw record, and a changed one is caught
     from benchrun.report.sign import read_attachment
@@ -211,3 +211,19 @@ def test_re_analysis_re_measures_the_di_dt_condition_by_the_runners_definition(s
                                 "didt_A_per_s": rows[0]["conditions"]["didt_A_per_s"] * 1.1}
     reanalyse_shots(changed, signed_run.run, None, problems)
     assert len(problems) == 1 and "measured di/dt" in problems[0]
+
+
+def test_re_analysis_reproduces_every_analysis_flag(signed_run):  # noqa: F811
+    # a flag the report holds and the re-analysis does not set (or the reverse) is a failed
+    # check: the flags decide validity and the worst-case step
+    from benchrun.report.sign import read_attachment
+    from benchrun.report.verify_reanalysis import reanalyse_shots
+
+    rows = read_attachment(signed_run.pdf.read_bytes())["shots"]
+    problems: list[str] = []
+    reanalyse_shots(rows, signed_run.run, None, problems)
+    assert problems == []
+    changed = [dict(r) for r in rows]
+    changed[0]["flags"] = [*rows[0]["flags"], "snap"]
+    reanalyse_shots(changed, signed_run.run, None, problems)
+    assert len(problems) == 1 and "flags differ" in problems[0] and "snap" in problems[0]

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 from collections.abc import Iterator
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -16,16 +17,29 @@ from benchrun.errors import BenchrunError
 from benchrun.report.facts import WaveformMarks
 
 
-def analyze_raw_shot(raw_shot: Any, options: dict[str, Any] | None) -> dict[str, Any]:
-    """Metrics of one raw shot through the runner's pipeline (``ShotAnalysis.metrics()``)."""
+def raw_shot_probes(raw_shot: Any) -> dict[str, Any]:
+    """The shot's probe calibrations with the chain rise times the runner recorded in its
+    attributes (``settings.probe_rise_times_s``; records without them: none)."""
+    rises = ((raw_shot.attrs or {}).get("settings") or {}).get("probe_rise_times_s") or {}
+    return {name: replace(probe, rise_time_s=float(rises[name])) if name in rises else probe
+            for name, probe in raw_shot.probes.items()}
+
+
+def reanalyze_raw_shot(raw_shot: Any, options: dict[str, Any] | None
+                       ) -> tuple[dict[str, Any], tuple[str, ...]]:
+    """Metrics and flags of one raw shot through the runner's pipeline."""
     from benchrun.analysis import RecoveryOptions
     from benchrun.analysis.pipeline import analyze_channels
 
     opts = RecoveryOptions(**options) if options else None
     result = analyze_channels(raw_shot.t_start, raw_shot.dt, raw_shot.channels,
-                              raw_shot.probes, opts)
-    return dict(result.metrics())
+                              raw_shot_probes(raw_shot), opts)
+    return dict(result.metrics()), tuple(result.flags)
 
+
+def analyze_raw_shot(raw_shot: Any, options: dict[str, Any] | None) -> dict[str, Any]:
+    """Metrics of one raw shot through the runner's pipeline (``ShotAnalysis.metrics()``)."""
+    return reanalyze_raw_shot(raw_shot, options)[0]
 
 
 def shot_waveform(raw_shot: Any, options: dict[str, Any]) -> tuple[Any, Any, Any,

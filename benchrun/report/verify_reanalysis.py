@@ -3,7 +3,9 @@
 Each shot listed in the report's embedded data is read back from the raw HDF5 record (its
 stored content hash is checked on reading), analysed again through
 ``benchrun.analysis.pipeline.analyze_channels`` with the analysis options of the run's sequence
-file, and every metric is compared with the report's number. The shots, with the re-analysed
+file, and every metric is compared with the report's number and the flags the analysis set
+with the report's (the chain's rise times, which ``rise_time_limited`` needs, are stored with
+each shot). The shots, with the re-analysed
 metrics, are then graded again with the run folder's limits file (``grade_lot``) and every
 grade, device verdict, bin and the lot disposition are compared with the report.
 
@@ -17,7 +19,7 @@ import math
 from typing import Any
 
 from benchrun.errors import BenchrunError
-from benchrun.report.raw_waveforms import analyze_raw_shot
+from benchrun.report.raw_waveforms import reanalyze_raw_shot
 from benchrun.report.verify_checks import CHECK_REANALYSIS, Check
 
 #: Relative agreement required between a reported and a re-computed number.
@@ -41,6 +43,12 @@ def same_number(a: Any, b: Any) -> bool:
     if a is None or b is None:
         return a is None and b is None
     return math.isclose(a, b, rel_tol=REL_TOL, abs_tol=0.0)
+
+
+def analysis_flags(flags: Any) -> tuple[str, ...]:
+    """A shot row's flags the analysis set (those the runner adds after it left out: the
+    measured conditions' ``condition:`` flags and ``metrics_missing``)."""
+    return tuple(f for f in flags if not str(f).startswith(("condition:", "metrics_missing")))
 
 
 def _check(ok: bool, reason: str, details: list[str] | tuple[str, ...] = ()) -> Check:
@@ -69,7 +77,7 @@ def _reanalyse_shots(rows: list[dict[str, Any]], run: Any, options: dict[str, An
                 problems.append(f"{label}: {exc}")
                 continue
             try:
-                metrics = analyze_raw_shot(shot, options)
+                metrics, flags = reanalyze_raw_shot(shot, options)
             except BenchrunError as exc:
                 if all(v is None for v in reported.values()):
                     out[ref] = {k: None for k in reported}
@@ -84,6 +92,13 @@ def _reanalyse_shots(rows: list[dict[str, Any]], run: Any, options: dict[str, An
                 if not same_number(value, metrics.get(key)):
                     problems.append(f"{label}: {key} reported {value!r}, re-analysis gives "
                                     f"{metrics.get(key)!r}")
+            stored = analysis_flags(row.get("flags") or ())
+            if stored != tuple(flags):
+                lost = [f for f in stored if f not in flags]
+                new = [f for f in flags if f not in stored]
+                problems.append(f"{label}: flags differ on re-analysis"
+                                + (f"; reported only: {'; '.join(lost)}" if lost else "")
+                                + (f"; re-analysis only: {'; '.join(new)}" if new else ""))
             conditions = row.get("conditions") or {}
             if "didt_A_per_s" in conditions and not same_number(conditions["didt_A_per_s"],
                                                                  didt):

@@ -542,6 +542,10 @@ class ShotCycle(GateDriveShots):
             "ranges": {name: [r.low, r.high] for name, r in ranges.items()},
         }  # fmt: skip
         probes = {name: self.probes[name] for name in channels}
+        # the chain's rise times (from the bench file's bandwidths) go with the shot, so a
+        # re-analysis from the raw record sets the same rise_time_limited flag
+        settings["probe_rise_times_s"] = {name: p.rise_time_s for name, p in probes.items()
+                                          if p.rise_time_s is not None}
         # handed to the operating system now (safe against kill -9); the fsync of
         # "power-loss" mode runs on the record's thread until the next fire waits for it
         key = shot_key(point.index, planned.serial, planned.repeat, attempt)
