@@ -191,3 +191,48 @@ def test_an_undefined_header_stops_that_instrument_with_one_clear_line(tmp_path)
     # the other instruments were checked to the end: per test point and temperature (4),
     # pulse 5 (double pulse, gate) + 2 (single pulse), supply 1, thermal 1
     assert report.settings_read_back == 4 * (5 + 2 + 1 + 1)
+
+
+CHARACTERIZE = ROOT / "sequences" / "dx4425-characterize.yaml"
+
+
+def test_di_dt_control_settings_are_set_and_read_back(monkeypatch):
+    # a di/dt sequence: the check sends every gate resistor the bench file declares (the
+    # runner's di/dt control may pick any); a pulse generator that keeps 3.9 ohm as 4.7 ohm
+    # (a missing relay, say) is one mismatch, found without firing
+    from benchrun.simulator.instruments_sim_outputs import SimPulseSource
+
+    real = SimPulseSource.op_gate_resistance
+    monkeypatch.setattr(SimPulseSource, "op_gate_resistance",
+                        lambda self, ohm: real(self, 4.7 if ohm == 3.9 else ohm))
+    bench, sequence = load_bench(BENCH), load_sequence(CHARACTERIZE)
+    assert bench.fixture.gate_drive is not None
+    with SimulatedBench(seed=1) as sim:
+        report = check_bench(bench, sim.resources, sequence)
+        assert sim.instruments["pulse"].shots == 0  # nothing fired
+    texts = [ln.text for ln in report.lines if ln.kind == "mismatch"]
+    assert texts == ["GDRive:RESistance 3.9: reads back '4.7'"]
+    assert not report.passed
+
+
+def test_drive_voltage_mode_sets_both_ends_of_the_range(monkeypatch, tmp_path):
+    # one resistor and a drive-voltage range: the check sends the drive voltage at both ends
+    import yaml
+
+    data = yaml.safe_load(BENCH.read_text(encoding="utf-8"))
+    gate = data["fixture"]["gate_drive"]
+    gate["resistors"] = ["10 ohm"]
+    gate.pop("drive_voltage")
+    gate["drive_voltage_range"] = ["10 V", "18 V"]
+    path = tmp_path / "bench.yaml"
+    path.write_text(yaml.safe_dump(data), encoding="utf-8")
+    sent: list[float] = []
+    from benchrun.simulator.instruments_sim_outputs import SimPulseSource
+
+    real = SimPulseSource.op_drive_voltage
+    monkeypatch.setattr(SimPulseSource, "op_drive_voltage",
+                        lambda self, volts: (sent.append(volts), real(self, volts))[1])
+    with SimulatedBench(seed=1) as sim:
+        report = check_bench(load_bench(path), sim.resources, load_sequence(CHARACTERIZE))
+    assert report.passed, [ln.text for ln in report.lines]
+    assert sent == [10.0, 18.0]

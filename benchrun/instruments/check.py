@@ -4,11 +4,13 @@
 and compares the model with the models its command table is written for
 (``identity.models``), then sends every setting a sequence would use (scope ranges, offsets,
 probes, coupling, time base and trigger of each test point; pulse widths and gate
-resistance, double and single pulse; the supply's voltage setpoint with its output OFF; the
-thermal setpoint with its output OFF), reads each one back (the tables' ``query``) and
-drains the SCPI error queue (``SYSTem:ERRor?``) after each step. Every mismatch and every
-error-queue entry becomes one line. At the end every output is switched off and read back,
-the supply's setpoint is put back to 0 V and the scope's acquisition is aborted.
+resistance, double and single pulse; for di/dt control, when a point has a di/dt target,
+every declared gate resistor or both ends of the drive-voltage range; the supply's voltage
+setpoint with its output OFF; the thermal setpoint with its output OFF), reads each one back
+(the tables' ``query``) and drains the SCPI error queue (``SYSTem:ERRor?``) after each step.
+Every mismatch and every error-queue entry becomes one line. At the end every output is
+switched off and read back, the supply's setpoint is put back to 0 V and the scope's
+acquisition is aborted.
 
 No output is ever switched on and no pulse is fired: the check is meant for a new instrument
 or a new command table on a real bench, before the first run.
@@ -321,7 +323,30 @@ def _steps(bench: BenchConfig, sequence: SequenceConfig | None, limits: Any = No
         if "thermal" in dict(bench.instruments.items()):
             steps.append(("thermal", f"the setpoint of {label} (output off)",
                           lambda d, k=point.temperature_K: d.set_temperature(k)))
-    return steps
+    return steps + _gate_drive_steps(bench, sequence)
+
+
+def _gate_drive_steps(bench: BenchConfig, sequence: SequenceConfig
+                      ) -> list[tuple[str, str, Callable[[Any], None]]]:
+    """The settings di/dt control may send (a test point with a di/dt target): every
+    declared gate resistor, or the one resistor at both ends of the drive-voltage range."""
+    from benchrun.runner.plan import expand_points
+
+    gate = bench.fixture.gate_drive
+    if gate is None or not any(p.didt_A_per_s for p in expand_points(sequence)):
+        return []
+    if gate.sets_drive_voltage:
+        (rg,) = gate.resistors
+        low, high = gate.drive_voltage_range  # type: ignore[misc]
+
+        def drive(d: Any, volts: float) -> None:
+            d.set_gate_resistance(rg)
+            d.set_drive_voltage(volts)
+
+        return [("pulse", f"the di/dt control's drive voltage {v:g} V through {rg:g} ohm",
+                 lambda d, v=v: drive(d, v)) for v in (low, high)]
+    return [("pulse", f"the di/dt control's gate resistor {r:g} ohm",
+             lambda d, r=r: d.set_gate_resistance(r)) for r in gate.resistors]
 
 
 def _bench_only_steps(bench: BenchConfig) -> list[tuple[str, str, Callable[[Any], None]]]:
