@@ -37,6 +37,7 @@ from benchrun.config.sequence import PartRatings, SequenceConfig, limits_path, l
 from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError, StoreError
 from benchrun.records import ShotResult
 from benchrun.runner.cycle import ShotCycle
+from benchrun.runner.didt_record import DidtRecord
 from benchrun.runner.identity import check_devices
 from benchrun.runner.interrupts import SpaceReserve, StopSignals, bounded
 from benchrun.runner.journal import BACKOFF_INITIAL_S, BACKOFF_MAX_S, DEFAULT_OUTAGE_LIMIT_S
@@ -166,9 +167,11 @@ class RunOutcome:
     shots_skipped: int = 0
     trim_shots: int = 0
     warnings: list[str] = field(default_factory=list)
-    #: test points not fired (point index → reason: their di/dt could not be set)
+    #: test points not fired in this session (point index → reason: their di/dt could not
+    #: be set); ``run.json`` ``points_invalid`` holds the run's (runner/didt_record.py)
     points_invalid: dict[int, str] = field(default_factory=dict)
-    #: how di/dt was set and each di/dt point's outcome (``run.json`` ``didt_control``)
+    #: how di/dt was set and each di/dt point's outcome, over every session of the run
+    #: (``run.json`` ``didt_control``, runner/didt_record.py)
     didt_control: dict[str, Any] | None = None
     safe_state: SafeStateReport | None = None
     error: str | None = None
@@ -476,6 +479,7 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
     resources = resolve_resources(prep.bench, options.sim_resources)
     station: Station | None = None
     cycle: ShotCycle | None = None
+    didt: DidtRecord | None = None
     error: BaseException | None = None
     live = None
     try:
@@ -498,6 +502,9 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         write_manifest(outcome.run_dir, manifest)
         steps = plan_run(prep.sequence, serials)
         cycle = ShotCycle(prep, options, outcome, station, store, raw)
+        # di/dt control outcomes go to run.json as they happen, merged with earlier sessions'
+        didt = DidtRecord(outcome.run_dir, manifest)
+        cycle.didt = didt.watch(cycle.didt)
         cycle.recover_orphans()
         done = cycle.completed()
         total = sum(len(step.shots) for step in steps)
@@ -531,13 +538,13 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
             station.close()
         if cycle is not None:
             cycle.close()  # shots fired before the end are stored and analysed
-            if cycle.didt.points:
-                outcome.didt_control = cycle.didt.record()
+            if didt is not None:
+                outcome.didt_control = didt.merged()
             if cycle.close_error is not None and error is None:
                 outcome.status = "aborted"
                 outcome.error = str(cycle.close_error)
                 error = cycle.close_error
-        _finish(outcome, manifest, store)
+        _finish(outcome, manifest, store, didt)
         if live is not None:
             live.close(outcome.status)
     if error is not None:
@@ -583,7 +590,8 @@ def _serials(sequence: SequenceConfig, station: Station) -> list[str]:
     return list(sequence.devices)
 
 
-def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore | None) -> None:
+def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore | None,
+            didt: DidtRecord | None = None) -> None:
     manifest["status"] = outcome.status
     manifest["finished"] = utc_now()
     manifest["safe_state"] = outcome.safe_state.to_dict() if outcome.safe_state else None
@@ -593,8 +601,13 @@ def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore |
     manifest["store_url"] = manifest.get("store_url")
     if outcome.didt_control is not None:
         manifest["didt_control"] = outcome.didt_control
-    if outcome.points_invalid:
-        manifest["points_invalid"] = {str(k): v for k, v in outcome.points_invalid.items()}
+    invalid = (didt.points_invalid(outcome.points_invalid) if didt is not None
+               else {**manifest.get("points_invalid", {}),
+                     **{str(k): v for k, v in outcome.points_invalid.items()}})
+    if invalid:
+        manifest["points_invalid"] = invalid
+    else:
+        manifest.pop("points_invalid", None)
 
 
 def _record_files(outcome: RunOutcome, manifest: dict[str, Any],
