@@ -18,12 +18,17 @@ syntax). Every ``meas`` result is parsed from ngspice's output into ``measures``
 ``at=`` instant of ``min``/``max`` results into ``at``). A ``meas`` that fails raises
 :class:`SpiceError`.
 
+:func:`charge_control_diode` gives the netlist lines of the simulator's charge-control diode
+(Lauritzen-Ma with sweep-out) as ngspice behavioural sources, for tests that put it in their
+own circuit.
+
 ngspice always runs in batch mode (``ngspice -b``) under a timeout (DESIGN.md §7: a stiff
 netlist can hang), in a temporary directory.
 """
 
 from __future__ import annotations
 
+import math
 import re
 import shutil
 import subprocess
@@ -31,6 +36,7 @@ import tempfile
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -162,3 +168,36 @@ def resample(time: np.ndarray, values: np.ndarray, dt: float) -> tuple[np.ndarra
     """Linear interpolation of a simulator waveform onto a uniform grid of step ``dt``."""
     grid = np.arange(time[0], time[-1], dt)
     return grid, np.interp(grid, time, values)
+
+
+def charge_control_diode(jp: Any, i_f: float) -> str:
+    """Netlist lines of a charge-control diode conducting ``i_f`` at t = 0, anode ``a``,
+    cathode ground, as ngspice behavioural sources.
+
+    ``jp`` holds the junction parameters at one temperature (``at_temperature(...)`` of a
+    :class:`benchrun.simulator.physics.LauritzenMaDiode`). Lauritzen-Ma charge control (IEEE
+    Trans. Power Electronics 6(2), 1991) with the sweep-out extension of
+    benchrun.simulator.diode_models, in another formulation than ours: the sources carry the
+    plasma density p = qM/(1 − f) (node ``xq``: dp/dt = i/(1 − f) − p/τ), the depleted
+    fraction f of the drift region (node ``xf``) and the sweep current −p·df/dt with df/dt
+    read from a 1 F capacitor driven by f; the junction capacitance is ngspice's own diode
+    model. Includes the ``.ic`` of forward conduction and the solver tolerances this stiff
+    circuit needs (``uic`` in the ``tran`` line).
+    """
+    root_vj = math.sqrt(jp.vj_V)
+    span = math.sqrt(jp.vj_V + jp.vpt_V) - root_vj
+    f = f"min((sqrt({jp.vj_V}+max(-v(a),0))-{root_vj:.12e})/{span:.12e},1)"
+    ijun = (f"({jp.is_A * jp.tau_s:.9e}*(exp(v(a)/{jp.nvt_V:.9e})-1)"
+            f"-{jp.tau_s:.9e}*v(xq)*(1-v(xf)))/{jp.tm_s:.9e}")
+    return f"""
+Bj a 0 I={ijun}+(-{jp.tau_s:.9e}*v(xq)*i(vd))
+Dc a 0 dcap
+.model dcap D(IS=1e-30 CJO={jp.cj0_F:.9e} VJ={jp.vj_V} M={jp.m} FC={jp.fc})
+Cq xq 0 {jp.tau_s:.9e}
+Bq 0 xq I=({ijun})/max(1-v(xf),0.01)-v(xq)
+Bf xf 0 V={f}
+Vd xf xd 0
+Cd xd 0 1
+.ic v(xq)={i_f} v(a)={jp.junction_voltage_forward(i_f)}
+.options reltol=1e-5 abstol=1e-9 vntol=1e-6 chgtol=1e-16
+"""

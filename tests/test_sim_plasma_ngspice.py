@@ -13,11 +13,9 @@ current, peak reverse voltage and its instant, and the current along the recover
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 import pytest
-from spice import have_ngspice, run_ngspice
+from spice import charge_control_diode, have_ngspice, run_ngspice
 
 from benchrun.simulator.devices import load_virtual_parts
 from benchrun.simulator.physics import simulate_inductive_recovery
@@ -33,29 +31,11 @@ PARALLEL_F = 60e-12  # capacitance across the diode (layout, probe), as in the f
 
 
 def netlist(temperature_K: float, i_f: float, vr: float) -> str:
+    """The diode, conducting ``i_f``, switched onto −``vr`` through the loop inductance."""
     jp = DIODE.at_temperature(temperature_K)
     jp = jp.at_stored_charge(jp.tau_s * i_f)  # the plasma extent of this recovery (Vex)
-    root_vj = math.sqrt(jp.vj_V)
-    span = math.sqrt(jp.vj_V + jp.vpt_V) - root_vj
-    f = f"min((sqrt({jp.vj_V}+max(-v(a),0))-{root_vj:.12e})/{span:.12e},1)"
-    ijun = (f"({jp.is_A * jp.tau_s:.9e}*(exp(v(a)/{jp.nvt_V:.9e})-1)"
-            f"-{jp.tau_s:.9e}*v(xq)*(1-v(xf)))/{jp.tm_s:.9e}")
-    return f"""
-Vr src 0 DC {-vr}
-Rs src m {jp.rs_ohm}
-L1 m a {LOOP_H} ic={i_f}
-Bj a 0 I={ijun}+(-{jp.tau_s:.9e}*v(xq)*i(vd))
-Dc a 0 dcap
-Cp a 0 {PARALLEL_F}
-.model dcap D(IS=1e-30 CJO={jp.cj0_F:.9e} VJ={jp.vj_V} M={jp.m} FC={jp.fc})
-Cq xq 0 {jp.tau_s:.9e}
-Bq 0 xq I=({ijun})/max(1-v(xf),0.01)-v(xq)
-Bf xf 0 V={f}
-Vd xf xd 0
-Cd xd 0 1
-.ic v(xq)={i_f} v(a)={jp.junction_voltage_forward(i_f)}
-.options reltol=1e-5 abstol=1e-9 vntol=1e-6 chgtol=1e-16
-"""
+    return (f"Vr src 0 DC {-vr}\nRs src m {jp.rs_ohm}\nL1 m a {LOOP_H} ic={i_f}\n"
+            f"Cp a 0 {PARALLEL_F}\n" + charge_control_diode(jp, i_f))
 
 
 @pytest.mark.parametrize(("i_f", "vr", "temperature_K"), [

@@ -12,11 +12,9 @@ Voltage, stored charge and the instant the voltage reaches −600 V must agree.
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 import pytest
-from spice import have_ngspice, run_ngspice
+from spice import charge_control_diode, have_ngspice, run_ngspice
 
 from benchrun.simulator.physics import LauritzenMaDiode, simulate_current_ramp
 
@@ -33,25 +31,9 @@ SNAPPY = LauritzenMaDiode(
 
 def ramp_netlist(diode: LauritzenMaDiode, temperature_K: float, i_f: float, didt: float,
                  t_end: float) -> str:
-    jp = diode.at_temperature(temperature_K)
-    root_vj = math.sqrt(jp.vj_V)
-    span = math.sqrt(jp.vj_V + jp.vpt_V) - root_vj
-    f = f"min((sqrt({jp.vj_V}+max(-v(a),0))-{root_vj:.12e})/{span:.12e},1)"
-    ijun = (f"({jp.is_A * jp.tau_s:.9e}*(exp(v(a)/{jp.nvt_V:.9e})-1)"
-            f"-{jp.tau_s:.9e}*v(xq)*(1-v(xf)))/{jp.tm_s:.9e}")
-    return f"""
-Iin 0 a PWL(0 {i_f} {t_end} {i_f - didt * t_end})
-Bj a 0 I={ijun}+(-{jp.tau_s:.9e}*v(xq)*i(vd))
-Dc a 0 dcap
-.model dcap D(IS=1e-30 CJO={jp.cj0_F:.9e} VJ={jp.vj_V} M={jp.m} FC={jp.fc})
-Cq xq 0 {jp.tau_s:.9e}
-Bq 0 xq I=({ijun})/max(1-v(xf),0.01)-v(xq)
-Bf xf 0 V={f}
-Vd xf xd 0
-Cd xd 0 1
-.ic v(xq)={i_f} v(a)={jp.junction_voltage_forward(i_f)}
-.options reltol=1e-5 abstol=1e-9 vntol=1e-6 chgtol=1e-16
-"""
+    """The diode driven by an ideal current source falling from ``i_f`` at ``didt``."""
+    return (f"Iin 0 a PWL(0 {i_f} {t_end} {i_f - didt * t_end})\n"
+            + charge_control_diode(diode.at_temperature(temperature_K), i_f))
 
 
 @pytest.mark.parametrize(("i_f", "didt", "temperature_K"),
