@@ -19,7 +19,7 @@ from test_runner_support import BENCH, write_sequence
 from benchrun.config import load_bench, load_sequence
 from benchrun.config.bench import BenchConfig, default_bench_id
 from benchrun.errors import ConfigError
-from benchrun.runner import execute
+from benchrun.runner import runfolder
 from benchrun.store.canonical import canonical_json
 from benchrun.store.raw import RawRecord
 from benchrun.store.results import ResultsStore
@@ -54,8 +54,8 @@ def test_run_ids_differ_between_benches_and_within_one_second(tmp_path, monkeypa
         def now(tz=None):
             return dt.datetime(2026, 12, 3, 10, 0, 0, tzinfo=dt.UTC)
 
-    monkeypatch.setattr(execute, "_dt", types.SimpleNamespace(datetime=Frozen, UTC=dt.UTC))
-    ids = [execute._new_run_id(seq, bench, tmp_path) for bench in ("b1", "b2", "b1", "b1")]
+    monkeypatch.setattr(runfolder, "_dt", types.SimpleNamespace(datetime=Frozen, UTC=dt.UTC))
+    ids = [runfolder.new_run_id(seq, bench, tmp_path) for bench in ("b1", "b2", "b1", "b1")]
     assert len(set(ids)) == 4
     assert ids[0].startswith("LT-0117-20261203T100000Z-b1-")
     assert ids[1].startswith("LT-0117-20261203T100000Z-b2-")

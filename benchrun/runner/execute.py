@@ -6,7 +6,8 @@
 2. calibration dates (warning when due soon, :class:`~benchrun.errors.CalibrationOverdue`
    when overdue unless overridden — the override is written to the manifest);
 3. pre-flight safety on every planned point (:func:`benchrun.runner.safety.preflight`);
-4. run folder and manifest (or, with ``resume``, the unfinished run folder), results DB;
+4. run folder and manifest (or, with ``resume``, the unfinished run folder:
+   :mod:`benchrun.runner.runfolder`), results DB;
 5. instruments: identities, device list; then per temperature: settle and soak; per device
    and point: trim shots, then the repeats, each stored in the raw record *and* the results DB
    before the next shot; an invalid shot is fired once more;
@@ -21,17 +22,13 @@ from __future__ import annotations
 
 import datetime as _dt
 import gc
-import hashlib
 import logging
-import secrets
-import shutil
 import sys
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from benchrun import __version__
 from benchrun.config.bench import BenchConfig, load_bench
 from benchrun.config.sequence import PartRatings, SequenceConfig, limits_path, load_sequence
 from benchrun.errors import BenchrunError, ConfigError, RunError, SafetyError, StoreError
@@ -43,6 +40,7 @@ from benchrun.runner.interrupts import SpaceReserve, StopSignals, bounded
 from benchrun.runner.journal import BACKOFF_INITIAL_S, BACKOFF_MAX_S, DEFAULT_OUTAGE_LIMIT_S
 from benchrun.runner.plan import expand_points, plan_run
 from benchrun.runner.progress import RunProgress, close_run_log, open_run_log, start_live
+from benchrun.runner.runfolder import open_run_folder
 from benchrun.runner.safety import (
     CalibrationCheck,
     Clock,
@@ -52,19 +50,14 @@ from benchrun.runner.safety import (
     preflight,
 )
 from benchrun.runner.station import Station, resolve_resources
-from benchrun.runner.thermal import shot_heat, thermal_record
+from benchrun.runner.thermal import shot_heat
 from benchrun.store.raw import DURABILITY_POWER_LOSS, RawRecord, check_durability
 from benchrun.store.results import ResultsStore, utc_now
 from benchrun.store.rundata import (
-    BENCH_FILE,
-    LIMITS_FILE,
     LOG_FILE,
     RAW_FILE,
-    REPORT_FILE,
-    SEQUENCE_FILE,
     default_store_url,
     hash_run_files,
-    read_manifest,
     store_url_for,
     write_manifest,
 )
@@ -236,113 +229,6 @@ def prepare(sequence_path: str | Path, bench_path: str | Path, options: RunOptio
                        calibration)
 
 
-def _sha256(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
-def _new_run_id(sequence: SequenceConfig, bench_id: str, out_dir: Path) -> str:
-    """``<lot>-<UTC time>-<bench id>-<6 random hex digits>``: unique across benches sharing
-    one store even when they start the same lot in the same second (the random part makes
-    a clash between two starts on one bench in one second a 1 in 16 million event; a folder
-    already there draws again)."""
-    stamp = _dt.datetime.now(_dt.UTC).strftime("%Y%m%dT%H%M%SZ")
-    while True:
-        run_id = f"{sequence.lot}-{stamp}-{bench_id}-{secrets.token_hex(3)}"
-        if not (out_dir / run_id).exists():
-            return run_id
-
-
-def report_missing(run_dir: Path, manifest: dict[str, Any]) -> bool:
-    """Whether a signed report was asked for this run and never written: no ``report.pdf``
-    in the run folder, or none registered in its results store (the process died while
-    signing, or between writing the report and registering it)."""
-    if not manifest.get("report_requested"):
-        return False
-    if not (run_dir / REPORT_FILE).is_file():
-        return True
-    try:
-        with ResultsStore(store_url_for(run_dir, manifest), create=False) as store:
-            return not store.reports(str(manifest.get("run_id")))
-    except BenchrunError:
-        return True
-
-
-def find_resumable(out_dir: Path, part: str, lot: str) -> Path:
-    """Newest run folder in ``out_dir`` of this part and lot that did not complete, or
-    that completed without the signed report it was started to write."""
-    candidates = []
-    for manifest_path in out_dir.glob("*/run.json"):
-        try:
-            manifest = read_manifest(manifest_path.parent)
-        except BenchrunError:
-            continue
-        if manifest.get("part") == part and manifest.get("lot") == lot and (
-                manifest.get("status") != "complete"
-                or report_missing(manifest_path.parent, manifest)):
-            candidates.append((manifest.get("started", ""), manifest_path.parent))
-    if not candidates:
-        raise RunError(f"nothing to resume: no unfinished run of {part} lot {lot} in {out_dir}")
-    return sorted(candidates)[-1][1]
-
-
-def _open_run_folder(prep: PreparedRun, options: RunOptions
-                     ) -> tuple[str, Path, dict[str, Any], bool]:
-    out_dir = Path(options.out_dir)
-    if options.resume:
-        run_dir = (Path(options.resume) if isinstance(options.resume, Path)
-                   else find_resumable(out_dir, prep.sequence.part, prep.sequence.lot))
-        manifest = read_manifest(run_dir)
-        for name, source in ((SEQUENCE_FILE, prep.sequence_path), (BENCH_FILE, prep.bench_path)):
-            kept = run_dir / name
-            if kept.is_file() and _sha256(kept) != _sha256(source):
-                raise RunError(f"cannot resume {run_dir.name}: {source} differs from the "
-                               f"{name} the run started with")
-        if manifest.get("status") == "complete" and not report_missing(run_dir, manifest):
-            raise RunError(f"run {run_dir.name} is already complete")
-        return str(manifest["run_id"]), run_dir, manifest, True
-    out_dir.mkdir(parents=True, exist_ok=True)
-    run_id = _new_run_id(prep.sequence, prep.bench.bench_id, out_dir)
-    run_dir = out_dir / run_id
-    run_dir.mkdir()
-    shutil.copyfile(prep.sequence_path, run_dir / SEQUENCE_FILE)
-    shutil.copyfile(prep.bench_path, run_dir / BENCH_FILE)
-    if prep.limits_file is not None:
-        shutil.copyfile(prep.limits_file, run_dir / LIMITS_FILE)
-    manifest: dict[str, Any] = {
-        "run_id": run_id,
-        "part": prep.sequence.part,
-        "lot": prep.sequence.lot,
-        "status": "running",
-        "started": utc_now(),
-        "finished": None,
-        "software_version": __version__,
-        "sequence_source": str(prep.sequence_path.resolve()),
-        "bench_source": str(prep.bench_path.resolve()),
-        "run_dir": str(run_dir.resolve()),
-        "analysis_options": prep.sequence.analysis.option_values(),
-        "calibration": prep.calibration.to_dict(),
-        "allow_overdue_calibration": bool(options.allow_overdue_calibration),
-        "tolerances": prep.sequence.tolerances.model_dump(),
-        "switching_frequencies_Hz": list(prep.sequence.loss.switching_frequencies),
-        "loss_recovery": prep.sequence.loss.recovery,
-        "fixture": prep.bench.fixture.model_dump(),
-        "probes": {k: v.model_dump() for k, v in prep.bench.probes.items()},
-        "bench_name": prep.bench.name,
-        "bench_id": prep.bench.bench_id,
-        "durability": options.durability,
-        "resumes": [],
-        "report_requested": bool(options.report),
-        "thermal": thermal_record(expand_points(prep.sequence), prep.sequence, prep.bench),
-    }
-    if options.db_url:
-        manifest["store_url"] = options.db_url
-    if options.operator and options.operator.strip():
-        manifest["operator"] = options.operator.strip()
-    if prep.bench.site is not None:
-        manifest["ambient"] = prep.bench.site.record()
-    write_manifest(run_dir, manifest)
-    return run_id, run_dir, manifest, False
-
 
 def run_sequence(sequence_path: str | Path, bench_path: str | Path,
                  options: RunOptions) -> RunOutcome:
@@ -359,7 +245,7 @@ def run_sequence(sequence_path: str | Path, bench_path: str | Path,
     """
     durability = check_durability(options.durability)
     prep = prepare(sequence_path, bench_path, options)
-    run_id, run_dir, manifest, resumed = _open_run_folder(prep, options)
+    run_id, run_dir, manifest, resumed = open_run_folder(prep, options)
     if resumed and manifest.get("status") == "complete":
         return _report_only(run_id, run_dir, manifest, options)
     url = store_url_for(run_dir, manifest) if resumed else (options.db_url
