@@ -43,8 +43,7 @@ import tempfile
 import time
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
-BENCH_PATH = ROOT / "sequences" / "bench-sim.yaml"
+from sim_setup import BENCH_PATH, ROOT, repeated_point, sequence_text
 
 
 # -- the throwaway cluster ------------------------------------------------------------------
@@ -109,25 +108,6 @@ class Cluster:
 
 
 # -- one bench (a worker process) -----------------------------------------------------------
-def _sequence_text(serial: str, shots: int) -> str:
-    return f"""\
-part: DX-4417
-lot: LT-0117
-devices: [{serial}]
-ratings: {{vrrm: 1200 V, if_max: 30 A, tj_max: 150 degC}}
-test_points:
-  - bus_voltage: 600 V
-    forward_current: 30 A
-    temperatures: [25 degC]
-    gate_resistance: 10 ohm
-    repeats: {shots}
-    shot_spacing: 0 s
-thermal: {{band: 1 K, dwell: 5 s, soak: 0 s, poll_interval: 1 s}}
-expected: {{irrm_fraction: 2.0, didt: 1000 A/us}}
-switch_voltage: true
-"""
-
-
 def worker(args: argparse.Namespace) -> int:
     from benchrun.config import load_bench, load_sequence
     from benchrun.runner.execute import RunOptions, run_sequence
@@ -137,7 +117,7 @@ def worker(args: argparse.Namespace) -> int:
     folder = Path(args.out)
     folder.mkdir(parents=True, exist_ok=True)
     seq = folder / "sequence.yaml"
-    seq.write_text(_sequence_text(args.serial, args.shots))
+    seq.write_text(sequence_text([repeated_point(args.shots)], serial=args.serial))
     bench = folder / "bench.yaml"
     bench.write_text(f"bench: {{id: {args.bench_id}}}\n" + BENCH_PATH.read_text())
     latencies: list[float] = []

@@ -70,7 +70,6 @@ machine's load average is printed too (other processes on the machine inflate bo
 from __future__ import annotations
 
 import argparse
-import contextlib
 import itertools
 import multiprocessing
 import os
@@ -85,33 +84,14 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))  # measure the tree this script belongs to
 
+from sim_setup import BENCH_PATH, repeated_point, running_bench, sequence_text  # noqa: E402
+
 #: acquisition parts, in display order
 ACQ_PARTS = ("arm scope (SINGle, *OPC?)", "fire command", "fire -> record in scope",
              "waveform preamble (source, scaling)", "waveform blocks")
 TRIGGER_POLL = "trigger polling latency"
 BACKGROUND = ("results DB: pending row (from the fire on)",
               "analysis + condition check", "results DB: completed row")
-BENCH_PATH = ROOT / "sequences" / "bench-sim.yaml"
-
-
-def _sequence_text(repeats: int, sample_interval: str) -> str:
-    return f"""\
-part: DX-4417
-lot: LT-0117
-devices: [SN0117-001]
-ratings: {{vrrm: 1200 V, if_max: 30 A, tj_max: 150 degC}}
-test_points:
-  - bus_voltage: 600 V
-    forward_current: 30 A
-    temperatures: [25 degC]
-    gate_resistance: 10 ohm
-    repeats: {repeats}
-    shot_spacing: 0 s
-thermal: {{band: 1 K, dwell: 5 s, soak: 0 s, poll_interval: 1 s}}
-expected: {{irrm_fraction: 2.0, didt: 1000 A/us}}
-timing: {{sample_interval: {sample_interval}}}
-switch_voltage: true
-"""
 
 
 def _instrument_bench(sim_bench, fresh: bool, last_done) -> None:
@@ -149,39 +129,6 @@ def _instrument_bench(sim_bench, fresh: bool, last_done) -> None:
             return original_fire(self, *a, **k)
 
         type(sim_bench).fire = fire
-
-
-def _serve(seq_path: str, fresh: bool, last_done, conn, stop) -> None:
-    """Child process: run the simulated bench until ``stop`` is set."""
-    from benchrun.config import load_bench, load_sequence
-    from benchrun.runner.simbench import simulated_bench
-
-    # five simulated instruments share this process with the circuit solver: a short switch
-    # interval lets them answer a query while a shot is being computed, as separate real
-    # instruments would (the default 5 ms would delay every answer to the end of the solve)
-    sys.setswitchinterval(0.0005)
-    with simulated_bench(load_bench(BENCH_PATH), load_sequence(Path(seq_path))) as sim:
-        _instrument_bench(sim.bench, fresh, last_done)
-        conn.send((sim.resources, sim.bench._t0, sim.bench.clock_speedup))
-        stop.wait()
-
-
-@contextlib.contextmanager
-def _bench(seq_path: Path, fresh: bool, in_process: bool, last_done):
-    """(resources, clock) of a running simulated bench."""
-    if in_process:
-        from benchrun.config import load_bench, load_sequence
-        from benchrun.runner.simbench import simulated_bench
-
-        with simulated_bench(load_bench(BENCH_PATH), load_sequence(seq_path)) as sim:
-            _instrument_bench(sim.bench, fresh, last_done)
-            yield sim.resources, sim.clock
-        return
-    from benchrun.runner.simbench import bench_in_child_process
-
-    with bench_in_child_process(_serve, (str(seq_path), fresh, last_done),
-                                start_timeout_s=60) as (resources, clock):
-        yield resources, clock
 
 
 def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
@@ -323,7 +270,9 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
             f"{'in this process' if args.in_process else 'in its own process'}")
     with tempfile.TemporaryDirectory(dir=args.out_dir) as tmp:
         seq_path = Path(tmp) / "seq.yaml"
-        seq_path.write_text(_sequence_text(args.repeats, args.sample_interval))
+        seq_path.write_text(sequence_text(
+            [repeated_point(args.repeats)],
+            extra=f"timing: {{sample_interval: {args.sample_interval}}}\n"))
         stamps: list[float] = []
         snapshots: list[dict[str, float]] = []
 
@@ -335,7 +284,10 @@ def measure(args: argparse.Namespace, fresh: bool, durability: str | None = None
         load_bench(BENCH_PATH)
         load_sequence(seq_path)
         try:
-            with _bench(seq_path, fresh, args.in_process, last_done) as (resources, clock):
+            with running_bench(seq_path, in_process=args.in_process,
+                               prepare=_instrument_bench,
+                               prepare_args=(fresh, last_done),
+                               start_timeout_s=60) as (resources, clock):
                 extra = {} if durability is None else {"durability": durability}
                 options = RunOptions(out_dir=Path(tmp) / "out", sim_resources=resources,
                                      clock=clock, show_progress=False,

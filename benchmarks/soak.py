@@ -29,7 +29,6 @@ add < 2 MB).
 from __future__ import annotations
 
 import argparse
-import contextlib
 import ctypes
 import os
 import sys
@@ -40,7 +39,8 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))  # measure the tree this script belongs to
 
-BENCH_PATH = ROOT / "sequences" / "bench-sim.yaml"
+from sim_setup import BENCH_PATH, repeated_point, running_bench, sequence_text  # noqa: E402
+
 EVERY = 1000
 WARMUP = 2000
 GOAL_KB_PER_SHOT = 0.1
@@ -50,30 +50,11 @@ MAX_REPEATS = 1000
 def _sequence_text(shots: int, vary: int) -> str:
     """Test points of at most 1,000 repeats each (the sequence schema's limit), the gate
     resistance alternating between 10 and 12 ohm from point to point (``vary``) or kept."""
-    points = []
     count = -(-shots // MAX_REPEATS)
-    for k in range(count):
-        gate = "12 ohm" if vary and k % 2 else "10 ohm"
-        repeats = min(MAX_REPEATS, shots - k * MAX_REPEATS)
-        points.append(f"""\
-  - label: p{k}
-    bus_voltage: 600 V
-    forward_current: 30 A
-    temperatures: [25 degC]
-    gate_resistance: {gate}
-    repeats: {repeats}
-    shot_spacing: 0 s
-""")
-    return f"""\
-part: DX-4417
-lot: LT-0117
-devices: [SN0117-001]
-ratings: {{vrrm: 1200 V, if_max: 30 A, tj_max: 150 degC}}
-test_points:
-{''.join(points)}thermal: {{band: 1 K, dwell: 5 s, soak: 0 s, poll_interval: 1 s}}
-expected: {{irrm_fraction: 2.0, didt: 1000 A/us}}
-switch_voltage: true
-"""
+    return sequence_text([
+        repeated_point(min(MAX_REPEATS, shots - k * MAX_REPEATS),
+                       gate="12 ohm" if vary and k % 2 else "10 ohm", label=f"p{k}")
+        for k in range(count)])
 
 
 def rss_kib() -> float:
@@ -137,31 +118,6 @@ def last_half_growth(rows: list[tuple[int, float]]
     return (n0, r0), (n1, r1), (r1 - r0) / (n1 - n0)
 
 
-def _serve(seq_path: str, conn, stop) -> None:
-    from benchrun.config import load_bench, load_sequence
-    from benchrun.runner.simbench import simulated_bench
-
-    sys.setswitchinterval(0.0005)
-    with simulated_bench(load_bench(BENCH_PATH), load_sequence(Path(seq_path))) as sim:
-        conn.send((sim.resources, sim.bench._t0, sim.bench.clock_speedup))
-        stop.wait()
-
-
-@contextlib.contextmanager
-def _bench(seq_path: Path, in_process: bool = False):
-    if in_process:  # as `benchrun run` does with sim resources: its memory counts too
-        from benchrun.config import load_bench, load_sequence
-        from benchrun.runner.simbench import simulated_bench
-
-        with simulated_bench(load_bench(BENCH_PATH), load_sequence(seq_path)) as sim:
-            yield sim.resources, sim.clock
-        return
-    from benchrun.runner.simbench import bench_in_child_process
-
-    with bench_in_child_process(_serve, (str(seq_path),)) as (resources, clock):
-        yield resources, clock
-
-
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--shots", type=int, default=20000)
@@ -204,7 +160,8 @@ def main() -> int:
 
                 state["snap"] = tracemalloc.take_snapshot()  # while the run holds it
 
-        with _bench(seq, args.in_process) as (resources, clock):
+        # in process: as `benchrun run` does with sim resources; its memory counts too
+        with running_bench(seq, in_process=args.in_process) as (resources, clock):
             options = RunOptions(out_dir=Path(tmp) / "runs", sim_resources=resources,
                                  clock=clock, show_progress=False, on_stored=on_stored,
                                  durability=args.durability)
