@@ -26,57 +26,84 @@ from sqlalchemy import (
 
 metadata = MetaData()
 
+
+# column kinds shared by the tables (every column is NOT NULL unless ``nullable=True``)
+def _name(key: str, *args: Any, nullable: bool = False, **kw: Any) -> Column[Any]:
+    """Identifiers, part numbers, lots, serials, labels: up to 200 characters."""
+    return Column(key, String(200), *args, nullable=nullable, **kw)
+
+
+def _time(key: str, nullable: bool = False) -> Column[Any]:
+    """An ISO 8601 UTC time (:func:`utc_now`)."""
+    return Column(key, String(40), nullable=nullable)
+
+
+def _word(key: str) -> Column[Any]:
+    """A state or kind word (status, disposition ...): up to 40 characters."""
+    return Column(key, String(40), nullable=False)
+
+
+def _text(key: str, nullable: bool = False) -> Column[Any]:
+    """Unbounded text: canonical JSON (:func:`canonical_json`), paths, messages."""
+    return Column(key, Text, nullable=nullable)
+
+
+def _run_ref() -> Column[Any]:
+    """The run a row belongs to (``runs.run_id``), indexed."""
+    return _name("run_id", ForeignKey("runs.run_id"), index=True)
+
+
 runs_table = Table(
     "runs",
     metadata,
-    Column("run_id", String(200), primary_key=True),
-    Column("part", String(200), nullable=False),
-    Column("lot", String(200), nullable=False),
-    Column("started", String(40), nullable=False),
-    Column("finished", String(40), nullable=True),
-    Column("status", String(40), nullable=False),
-    Column("manifest", Text, nullable=False),
-    Column("bench_id", String(200), nullable=True, index=True),
+    _name("run_id", primary_key=True),
+    _name("part"),
+    _name("lot"),
+    _time("started"),
+    _time("finished", nullable=True),
+    _word("status"),
+    _text("manifest"),
+    _name("bench_id", nullable=True, index=True),
 )
 
 shots_table = Table(
     "shots",
     metadata,
     Column("id", Integer, primary_key=True, autoincrement=True),
-    Column("run_id", String(200), ForeignKey("runs.run_id"), nullable=False, index=True),
-    Column("part", String(200), nullable=False),
-    Column("lot", String(200), nullable=False),
-    Column("serial", String(200), nullable=False),
+    _run_ref(),
+    _name("part"),
+    _name("lot"),
+    _name("serial"),
     Column("point_index", Integer, nullable=False),
     Column("repeat", Integer, nullable=False),
     Column("attempt", Integer, nullable=False),
-    Column("timestamp", String(40), nullable=False),
+    _time("timestamp"),
     Column("temperature_K", Double, nullable=True),
     Column("bus_voltage_V", Double, nullable=True),
     Column("forward_current_A", Double, nullable=True),
-    Column("point", Text, nullable=False),
-    Column("conditions", Text, nullable=False),
-    Column("metrics", Text, nullable=False),
-    Column("flags", Text, nullable=False),
+    _text("point"),
+    _text("conditions"),
+    _text("metrics"),
+    _text("flags"),
     Column("valid", Boolean, nullable=False),
     Column("raw_ref", String(400), nullable=False),
-    Column("acquisition", Text, nullable=False),
-    Column("extra", Text, nullable=False),
-    Column("bench_id", String(200), nullable=True),
+    _text("acquisition"),
+    _text("extra"),
+    _name("bench_id", nullable=True),
     UniqueConstraint("run_id", "serial", "point_index", "repeat", "attempt", name="uq_shot"),
 )
 
 reports_table = Table(
     "reports",
     metadata,
-    Column("report_id", String(200), primary_key=True),
-    Column("run_id", String(200), ForeignKey("runs.run_id"), nullable=False, index=True),
-    Column("path", Text, nullable=False),
+    _name("report_id", primary_key=True),
+    _run_ref(),
+    _text("path"),
     Column("sha256", String(64), nullable=False),
-    Column("created", String(40), nullable=False),
-    Column("signer", Text, nullable=False),
-    Column("disposition", String(40), nullable=False),
-    Column("details", Text, nullable=False),
+    _time("created"),
+    _text("signer"),
+    _word("disposition"),
+    _text("details"),
 )
 
 #: Live state of a run in progress, one row per run, written by the runner's progress
@@ -84,21 +111,21 @@ reports_table = Table(
 live_runs_table = Table(
     "live_runs",
     metadata,
-    Column("run_id", String(200), primary_key=True),
-    Column("bench", String(200), nullable=False),
-    Column("part", String(200), nullable=False),
-    Column("lot", String(200), nullable=False),
-    Column("state", String(40), nullable=False),
-    Column("updated", String(40), nullable=False),
-    Column("started", String(40), nullable=False),
-    Column("status_text", Text, nullable=False),
-    Column("serial", String(200), nullable=True),
+    _name("run_id", primary_key=True),
+    _name("bench"),
+    _name("part"),
+    _name("lot"),
+    _word("state"),
+    _time("updated"),
+    _time("started"),
+    _text("status_text"),
+    _name("serial", nullable=True),
     Column("temperature_K", Double, nullable=True),
-    Column("point_label", String(200), nullable=True),
+    _name("point_label", nullable=True),
     Column("done", Integer, nullable=False),
     Column("total", Integer, nullable=False),
     Column("eta_s", Double, nullable=True),
-    Column("last_shot", Text, nullable=True),
+    _text("last_shot", nullable=True),
 )
 
 #: Retries, invalid shots, safe-state reports and other log lines of a run in progress.
@@ -106,11 +133,11 @@ live_events_table = Table(
     "live_events",
     metadata,
     Column("id", Integer, primary_key=True, autoincrement=True),
-    Column("run_id", String(200), nullable=False, index=True),
-    Column("time", String(40), nullable=False),
-    Column("kind", String(40), nullable=False),
+    _name("run_id", index=True),
+    _time("time"),
+    _word("kind"),
     Column("level", String(20), nullable=False),
-    Column("message", Text, nullable=False),
+    _text("message"),
 )
 
 #: Columns added after the first release, per table: databases made before them are given the
