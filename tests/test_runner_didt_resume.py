@@ -140,3 +140,39 @@ def test_merge_latest_session_wins_earlier_kept_and_stale_invalid_dropped():
     # point 1 was invalid in session 0 and fired in session 1: no longer "not fired"
     assert merge_points_invalid({"1": "between resistors", "3": "beyond"}, {5: "x"},
                                 {"1", "2"}) == {"3": "beyond", "5": "x"}
+
+
+def test_record_is_written_at_each_trim_and_a_point_controlled_again_leaves_points_invalid(
+        tmp_path):
+    """DidtRecord on its own: run.json holds the merged record right after a trim, and the
+    point left invalid by the earlier session drops out of points_invalid once this session
+    controlled it again (set valid)."""
+    from benchrun.config.gate_drive import GateDriveSpec
+    from benchrun.records import TestPoint
+    from benchrun.runner.didt_record import DidtRecord
+    from benchrun.runner.didt_trim import DidtControl
+    from benchrun.store.rundata import write_manifest
+
+    gate = GateDriveSpec.model_validate(
+        {"resistors": ["4.7 ohm", "10 ohm", "22 ohm", "47 ohm"], "drive_voltage": "15 V",
+         "threshold_voltage": "4 V", "transconductance": "12 S",
+         "input_capacitance": "10 nF"})
+    earlier = {"means": "resistors", "tolerance": 0.2,
+               "points": {"0": {"valid": True, "trim_shots": 1, "session": 0},
+                          "1": {"valid": False, "reason": "missed", "trim_shots": 4,
+                                "session": 0}}}
+    manifest = {"run_id": "R", "resumes": [{"at": "t"}], "didt_control": earlier,
+                "points_invalid": {"1": "missed"}}
+    write_manifest(tmp_path, manifest)
+    record = DidtRecord(tmp_path, manifest)
+    control = record.watch(DidtControl(gate, 0.2))
+    point = TestPoint(index=1, temperature_K=298.15, bus_voltage_V=600.0,
+                      forward_current_A=20.0, didt_A_per_s=6e8, label="p1")
+    state = control.trim(point, lambda setting: 6e8)  # lands on the target
+    assert state.valid
+    on_disk = _on_disk(tmp_path)["didt_control"]["points"]
+    assert on_disk["0"] == earlier["points"]["0"]
+    assert on_disk["1"]["session"] == 1 and on_disk["1"]["valid"]
+    assert on_disk["1"]["earlier"] == [earlier["points"]["1"]]
+    assert record.points_invalid({}) == {}
+    assert record.points_invalid({3: "beyond"}) == {"3": "beyond"}
