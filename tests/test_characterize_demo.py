@@ -15,16 +15,22 @@ import pytest
 from benchrun.analysis.metrics_meta import METRICS
 
 
-@pytest.mark.slow
-def test_characterize_demo_writes_signed_report_and_curves(tmp_path):
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    """One ``benchrun demo --characterize`` run for the tests of this module: (out, stdout)."""
     # in a child process: a stalled simulator thread must not outlive the test and load the
     # rest of the session
-    out = tmp_path / "demo"
+    out = tmp_path_factory.mktemp("chardemo") / "demo"
     done = subprocess.run([sys.executable, "-m", "benchrun.cli", "demo", "--characterize",
                            "--out", str(out), "--no-progress"], capture_output=True, text=True,
                           timeout=900)
     assert done.returncode == 0, done.stderr[-2000:]
-    text = done.stdout
+    return out, done.stdout
+
+
+@pytest.mark.slow
+def test_characterize_demo_writes_signed_report_and_curves(demo):
+    out, text = demo
     runs = sorted((out / "runs").iterdir())
     assert len(runs) == 1 and runs[0].name.startswith("LT-0140")
     run_dir = runs[0]
@@ -93,3 +99,77 @@ def test_characterize_demo_writes_signed_report_and_curves(tmp_path):
                            capture_output=True, text=True, check=True).stdout
     assert "kill" in words and "Test points and di/dt" in words
     assert re.search(r"worst-case snappiness", words)
+
+
+@pytest.mark.slow
+def test_characterize_report_shows_the_qualification_verdicts(demo):
+    # The worst-case snappiness step and the nominal verdicts on the signed report and in the
+    # printed summary, each consistent with the grading computed here from the run's results:
+    # grade_worst_case on the marked point's shots (validity by the limits' tolerances at its
+    # condition, Ls the bench file's fixture stray inductance) and grade_lot on the shots of
+    # the sequence's point labelled "nominal" plus the marked point.  The expected VRM is
+    # VR + Ls·di/dt (Kirchhoff's voltage law round the commutation loop).  No particular
+    # verdict is asserted: it depends on the sequence's worst-case point.
+    from benchrun.config.bench import load_bench
+    from benchrun.config.limits import load_limits
+    from benchrun.grading.decision import worst
+    from benchrun.grading.grade import grade_lot, shot_problems
+    from benchrun.grading.worst_case import grade_worst_case
+    from benchrun.report.sign import read_attachment
+    from benchrun.store.rundata import load_run
+    from benchrun.units import format_si
+
+    out, stdout = demo
+    run_dir = sorted((out / "runs").iterdir())[0]
+    run = load_run(run_dir)
+    limits = load_limits(run_dir / "limits.yaml")
+    bench = load_bench(run_dir / "bench.yaml")
+    stray = bench.fixture.stray_inductance
+    spec = limits.worst_case
+    serials = sorted({s.serial for s in run.shots})
+
+    marked = [s for s in run.shots if s.point.qualification == "worst_case_snappiness"]
+    (point,) = {s.point for s in marked}
+    condition = limits.condition(spec.condition)
+    valid = {id(s): not shot_problems(s, condition, limits.tolerances) for s in marked}
+    steps = {g.serial: g for g in grade_worst_case(
+        marked, spec, {spec.condition: point}, stray_inductance_H=stray, valid=valid)}
+    assert sorted(steps) == serials
+
+    nominal = [s for s in run.shots if s.point.label.split(" @ ")[0] == "nominal"]
+    assert len({s.point for s in nominal}) == 1
+    lot = grade_lot(nominal + marked, limits, bench=bench,
+                    analysis_options=run.manifest.get("analysis_options"))
+    at_nominal = {d.serial: worst([g.outcome for g in d.grades if g.condition == "nominal"])
+                  for d in lot.devices}
+
+    pdf = run_dir / "characterization.pdf"
+    data = read_attachment(pdf.read_bytes())["qualification"]
+    devices = {d["serial"]: d for d in data["devices"]}
+    words = subprocess.run(["pdftotext", "-layout", str(pdf), "-"], capture_output=True,
+                           text=True, check=True).stdout
+    flat = " ".join(words.split())
+    assert "Qualification verdicts" in flat and "Worst-case snappiness step" in flat
+    assert f"Ls = {format_si(stray, 'H')}" in flat
+    lines = words.splitlines()
+    outcome = next(x for x in lines if x.strip().startswith("outcome"))
+    assert outcome.split()[1:] == [steps[s].outcome for s in serials]
+    verdicts = next(x for x in lines if x.strip().startswith("verdict at nominal"))
+    assert verdicts.split()[3:] == [at_nominal[s] for s in serials]
+    for serial in serials:
+        step = steps[serial]
+        attached = devices[serial]["worst_case"]
+        assert (attached["outcome"], attached["shot"]) == (step.outcome, step.shot)
+        assert step.reason in flat
+        # the expected peak the report states is VR + Ls·di/dt of the graded shot's metrics
+        shot = next(s for s in marked if s.serial == serial
+                    and f"repeat {s.repeat} attempt {s.attempt}" == step.shot)
+        expected = shot.metrics["vr_V"] + stray * abs(shot.metrics["didt_A_per_s"])
+        assert attached["assessment"]["vrm_expected_V"] == pytest.approx(expected)
+        assert format_si(expected, "V") in flat
+        conditions = {c["condition"]: c for c in devices[serial]["conditions"]}
+        assert conditions["nominal"]["outcome"] == at_nominal[serial]
+        # the printed summary: one line per device with both verdicts
+        (line,) = [x for x in stdout.splitlines() if x.strip().startswith(serial)]
+        assert f"nominal: {at_nominal[serial]}" in line
+        assert f"worst-case snappiness: {step.outcome}" in line

@@ -6,7 +6,10 @@ measured shot), ``fits.csv`` (:func:`benchrun.characterize.fits.write_sweep_fits
 trend and surface fit) and ``characterization.pdf`` (:func:`benchrun.characterize.report
 .render_characterization`, signed like the acceptance report) into it, with the run's di/dt
 control (``run.json`` ``didt_control``: the means, each point's setting and trim) and every
-point that was not fired (``points_invalid``) stated on the report.
+point that was not fired (``points_invalid``) stated on the report, and the qualification
+verdicts (:func:`benchrun.characterize.qualification.grade_qualification`: the run folder's
+``limits.yaml`` applied, with its ``bench.yaml``, to the test points standing for the limits'
+conditions, and the worst-case snappiness step).
 """
 
 from __future__ import annotations
@@ -39,6 +42,9 @@ class PublishedCharacterization:
     shots: list[ShotResult]
     #: ``fits.csv``: every trend and surface fit (:mod:`benchrun.characterize.fits`)
     fits: Path | None = None
+    #: the qualification verdicts shown on the report
+    #: (:class:`benchrun.characterize.qualification.Qualification`)
+    qualification: Any = None
 
 
 def _flag_name(flag: str) -> str:
@@ -50,8 +56,8 @@ def flagged_lines(shots: Sequence[ShotResult], not_fired: dict[str, str] | None 
     """One line per invalid shot (its reasons), per valid shot with a recovery-behaviour
     flag (:data:`BEHAVIOUR_FLAGS`) and per point that was not fired."""
     lines = []
-    for s in shots:
-        where = f"{s.point.label}, {s.serial} repeat {s.repeat + 1} attempt {s.attempt + 1}"
+    for s in shots:  # repeats and attempts numbered from 0, as in curves.csv and the grading
+        where = f"{s.point.label}, {s.serial} repeat {s.repeat} attempt {s.attempt}"
         if not s.valid:
             lines.append(f"{where}: invalid ({'; '.join(s.flags)})")
             continue
@@ -110,12 +116,16 @@ def publish_characterization(run_dir: str | Path, signer: Any, *, title: str | N
     didt = manifest.get("didt_control")
     not_fired = manifest.get("points_invalid") or {}
     from benchrun.config.sequence import load_sequence
-    from benchrun.runner.plan import expand_points
+    from benchrun.runner.plan import expand_points, expand_with_specs
 
     labels: dict[str, str] = {}
+    entry_labels: dict[int, str] = {}
     sequence_file = run_folder / "sequence.yaml"
     if sequence_file.is_file():
         labels = {str(p.index): p.label for p in expand_points(load_sequence(sequence_file))}
+        entry_labels = {p.index: spec.label or "" for p, spec
+                        in expand_with_specs(load_sequence(sequence_file))}
+    qualification = _qualification(run, shots, entry_labels)
     part, lot = manifest.get("part", ""), manifest.get("lot", "")
     serials = sorted({s.serial for s in shots})
     temperatures = sorted({round(s.point.temperature_K - 273.15, 2) for s in shots})
@@ -137,5 +147,24 @@ def publish_characterization(run_dir: str | Path, signer: Any, *, title: str | N
         shots, run_folder / PDF_NAME, signer,
         title=title or f"{part} characterisation — lot {lot}",
         flagged=flagged_lines(shots, not_fired, labels), notes=notes,
-        conditions=point_table(shots, didt))
-    return PublishedCharacterization(pdf, csv_path, trends, shots, fits_path)
+        conditions=point_table(shots, didt), qualification=qualification)
+    return PublishedCharacterization(pdf, csv_path, trends, shots, fits_path, qualification)
+
+
+def _qualification(run: Any, shots: Sequence[ShotResult], entry_labels: dict[int, str]) -> Any:
+    """The run folder's limits and bench files applied to the run
+    (:func:`benchrun.characterize.qualification.grade_qualification`)."""
+    from benchrun.characterize.qualification import grade_qualification
+    from benchrun.config.bench import load_bench
+    from benchrun.config.limits import load_limits
+
+    limits_path, bench_path = run.limits_path, run.bench_path
+    limits = load_limits(limits_path) if limits_path is not None and limits_path.is_file() \
+        else None
+    bench = load_bench(bench_path) if bench_path is not None and bench_path.is_file() else None
+    source = "" if limits is None else (
+        f"the run's {limits_path.name} ({limits.part}"
+        + (f" rev {limits.revision}" if limits.revision else "") + ")")
+    return grade_qualification(shots, limits, bench, entry_labels=entry_labels,
+                               analysis_options=run.manifest.get("analysis_options"),
+                               limits_source=source)

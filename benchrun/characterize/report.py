@@ -173,6 +173,87 @@ def _small(style: Any) -> Any:
     return ParagraphStyle("small", parent=style, fontSize=6.5, leading=8)
 
 
+#: First cells of the verdict rows of the qualification tables (set in bold).
+_VERDICT_ROWS = ("outcome", "verdict at ", "worst-case snappiness step", "device verdict")
+
+
+def _grid(rows: Sequence[Sequence[str]], widths: Sequence[float], style: Any) -> Any:
+    """A table of small wrapped cells with a grey grid; a one-cell row spans the table and is
+    shaded (a section heading inside the table); verdict rows are bold."""
+    from xml.sax.saxutils import escape
+
+    from reportlab.lib import colors
+    from reportlab.platypus import Paragraph, Table, TableStyle
+
+    n = len(widths)
+    bold = style.clone("bold", fontName="Helvetica-Bold")
+    cells = [[Paragraph(escape(str(c)), bold if i == 0 or str(row[0]).startswith(_VERDICT_ROWS)
+                        else style) for c in row] + [""] * (n - len(row))
+             for i, row in enumerate(rows)]
+    commands: list[tuple] = [("GRID", (0, 0), (-1, -1), 0.25, colors.grey),
+                             ("VALIGN", (0, 0), (-1, -1), "TOP"),
+                             ("BACKGROUND", (0, 0), (-1, 0), colors.HexColor("#e8e8e8"))]
+    for i, row in enumerate(rows):
+        if i and len(row) == 1:
+            commands += [("SPAN", (0, i), (-1, i)),
+                         ("BACKGROUND", (0, i), (-1, i), colors.HexColor("#f2f2f2"))]
+    table = Table(cells, repeatRows=1, colWidths=list(widths))
+    table.setStyle(TableStyle(commands))
+    return table
+
+
+def _qualification_story(q: Any, styles: Any) -> list[Any]:
+    """Section "Qualification verdicts": the worst-case snappiness step and the limits at
+    their conditions (:mod:`benchrun.characterize.qualification_tables`)."""
+    from xml.sax.saxutils import escape
+
+    from reportlab.platypus import KeepTogether, Paragraph, Spacer
+
+    from benchrun.characterize.qualification_tables import (
+        condition_reasons,
+        condition_rows,
+        device_groups,
+        worst_case_limits_text,
+        worst_case_rows,
+    )
+
+    body, small = styles["BodyText"], _small(styles["BodyText"])
+    story: list[Any] = [Paragraph("Qualification verdicts", styles["Heading2"]),
+                        Paragraph(escape(
+                            "The limits file applied to one test point per limits condition, "
+                            "as the acceptance grading does (limits, GUM budgets, decision "
+                            "rule); the sweep's other points are characterisation data and are "
+                            "not graded. Repeats and attempts are numbered from 0, as in "
+                            "curves.csv."), body)]
+    if q.lot is None:
+        story.append(Paragraph(escape(f"Not graded: {q.not_graded}"), body))
+        return story
+    story += [Paragraph(escape(f"• {g.condition}: {g.how}"), body) for g in q.selection]
+    heading = Paragraph("Worst-case snappiness step", styles["Heading3"])
+    for group in device_groups(q.serials):
+        other = (451.0 - 120.0 - 95.0) / max(len(group), 1)
+        table = _grid(worst_case_rows(q, group), [120.0, 95.0] + [other] * len(group), small)
+        story += [KeepTogether([heading, table]) if heading is not None else table,
+                  Spacer(1, 3)]
+        heading = None
+    story.append(Paragraph(escape(worst_case_limits_text(q)), small))
+    story += [Paragraph(escape(f"• {w.serial}: {w.reason}"), small) for w in q.worst_case]
+    names = ", ".join(q.nominal_conditions) or "—"
+    heading = Paragraph(escape(f"Limits at their conditions ({names} and the worst case)"),
+                        styles["Heading3"])
+    for group in device_groups(q.serials):
+        other = (451.0 - 100.0 - 55.0) / max(len(group), 1)
+        table = _grid(condition_rows(q, group), [100.0, 55.0] + [other] * len(group), small)
+        story += [KeepTogether([heading, table]) if heading is not None else table,
+                  Spacer(1, 3)]
+        heading = None
+    story += [Paragraph(escape(f"• {line}"), small) for line in condition_reasons(q)]
+    story.append(Paragraph(escape(
+        "Value ± U: the graded value (mean of the valid shots, or the worst shot where the "
+        "limit says so) with its expanded uncertainty. " + q.lot.decision_rule), small))
+    return story
+
+
 def render_characterization(
     shots: Sequence[ShotResult],
     out_pdf: str | Path,
@@ -182,10 +263,13 @@ def render_characterization(
     flagged: Sequence[str] = (),
     notes: Sequence[str] = (),
     conditions: Sequence[Sequence[str]] = (),
+    qualification: Any = None,
 ) -> tuple[Path, list[Trend]]:
     """Write the signed characterisation PDF; returns its path and the fitted trends.
     ``conditions``: an optional table (header row first) of the test points' requested
-    and measured conditions, printed after the notes."""
+    and measured conditions, printed after the notes.  ``qualification``: the
+    :class:`~benchrun.characterize.qualification.Qualification` of the run, shown after the
+    notes (section "Qualification verdicts") and attached as JSON."""
     from xml.sax.saxutils import escape
 
     from reportlab.lib import colors
@@ -206,6 +290,8 @@ def render_characterization(
         "in IF and in di/dt (least squares in log-log), straight line in T with its "
         "coefficient per kelvin; ± one standard error of the fit (n − 2 degrees of "
         "freedom; none with two points)."), body))
+    if qualification is not None:
+        story += _qualification_story(qualification, styles)
     if conditions:
         cells = [[Paragraph(escape(str(c)), _small(body)) for c in row] for row in conditions]
         grid = Table(cells, repeatRows=1, colWidths=[190, 70, 80, 90, 60])
@@ -264,6 +350,8 @@ def render_characterization(
                      for f in surfaces],
         "flagged": list(flagged),
     }
+    if qualification is not None:
+        attachment["qualification"] = qualification.to_dict()
     signed = sign_pdf_bytes(pdf, signer, box, attachment=attachment,
                             reason="Characterisation report approved")
     out = write_signed_pdf(out_pdf, signed)

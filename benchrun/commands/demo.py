@@ -10,7 +10,9 @@ Schottky diodes at the same conditions and compares the recovery losses of the t
 ``--characterize`` runs the characterisation sweep of the invented snappy diode DX-4425
 instead (``sequences/dx4425-characterize.yaml``: forward current, di/dt, bus voltage and
 temperature swept on a sample of three devices, di/dt set and verified by the runner) and
-writes the signed ``characterization.pdf`` and ``curves.csv`` into its run folder.
+writes the signed ``characterization.pdf``, ``curves.csv`` and ``fits.csv`` into its run
+folder; it prints one line per device with its verdict at the limits' nominal condition and
+its worst-case snappiness step.
 
 The signing key is a throwaway demo key made in DIR/keys on first use; its passphrase is
 taken from BENCHRUN_KEY_PASSPHRASE or is the demo default printed below — demo only, never
@@ -164,6 +166,12 @@ def _characterize(folder: Path, out: Path, signer: Any, cert: Path, how: str,
           f"test points, {len(published.trends)} fitted trends")
     for index, reason in sorted(outcome.points_invalid.items()):
         print(f"  point {index} not fired: {reason}")
+    if published.qualification is not None:
+        from benchrun.characterize.qualification_tables import summary_lines
+
+        print("qualification verdicts (the run's limits file; details in the report):")
+        for line in summary_lines(published.qualification):
+            print(f"  {line}")
     print(f"  curves (CSV)  {published.csv}")
     print(f"  fits (CSV)    {published.fits}")
     print(f"  report (signed PDF) {published.pdf}")
