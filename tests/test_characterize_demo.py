@@ -151,6 +151,9 @@ def test_characterize_report_shows_the_qualification_verdicts(demo):
     flat = " ".join(words.split())
     assert "Qualification verdicts" in flat and "Worst-case snappiness step" in flat
     assert f"Ls = {format_si(stray, 'H')}" in flat
+    # the graded points are named: the labelled nominal point and the marked point
+    assert "the sequence's point labelled 'nominal'" in flat
+    assert "marked qualification: worst_case_snappiness" in flat
     lines = words.splitlines()
     outcome = next(x for x in lines if x.strip().startswith("outcome"))
     assert outcome.split()[1:] == [steps[s].outcome for s in serials]

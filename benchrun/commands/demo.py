@@ -166,15 +166,15 @@ def _characterize(folder: Path, out: Path, signer: Any, cert: Path, how: str,
           f"test points, {len(published.trends)} fitted trends")
     for index, reason in sorted(outcome.points_invalid.items()):
         print(f"  point {index} not fired: {reason}")
+    print(f"  curves (CSV)  {published.csv}")
+    print(f"  fits (CSV)    {published.fits}")
+    print(f"  report (signed PDF) {published.pdf}")
     if published.qualification is not None:
         from benchrun.characterize.qualification_tables import summary_lines
 
         print("qualification verdicts (the run's limits file; details in the report):")
         for line in summary_lines(published.qualification):
             print(f"  {line}")
-    print(f"  curves (CSV)  {published.csv}")
-    print(f"  fits (CSV)    {published.fits}")
-    print(f"  report (signed PDF) {published.pdf}")
     print(f"signing certificate {cert}  (key passphrase: {how})")
     if outcome.safe_state is not None:
         print(outcome.safe_state.describe())
