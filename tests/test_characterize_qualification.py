@@ -134,6 +134,8 @@ def test_nominal_verdict_grades_only_the_labelled_point():
     assert q.nominal_conditions == ["nominal"]
     rows = condition_rows(q, SERIALS)
     assert ["verdict at nominal", "", CONFORMING, CONFORMING] in rows
+    # values and U with engineering prefixes, never in exponent notation (U of trr < 1 ns)
+    assert not any("e+" in cell or "e-" in cell for row in rows for cell in row[2:])
     assert ["device verdict (every condition and the worst-case step)", "", CONFORMING,
             NONCONFORMING] in rows
     lines = summary_lines(q)

@@ -153,7 +153,7 @@ def _grade_cell(g: MetricGrade | None) -> str:
     if g.value is None:
         return f"{g.outcome} ({g.reason})"
     u = ("" if g.expanded_uncertainty is None
-         else f" ± {format_si(g.expanded_uncertainty, g.unit, 2)}")
+         else f" ± {format_si(g.expanded_uncertainty, g.unit, 3)}")
     return f"{format_si(g.value, g.unit, 4)}{u} (n = {g.n}): {g.outcome}"
 
 
@@ -227,7 +227,7 @@ def summary_lines(q: Qualification) -> list[str]:
         if step is not None:
             text = f"worst-case snappiness: {step.outcome}"
             if step.assessment is not None:
-                text += f" (worst of {step.n} shots: {step.shot}"
+                text += f" (worst of {step.n} shot{'' if step.n == 1 else 's'}: {step.shot}"
                 text += "".join(f"; {r}" for r in step.assessment.reasons) + ")"
             else:
                 text += f" ({step.reason})"
