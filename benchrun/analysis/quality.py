@@ -29,10 +29,10 @@ common practice unless a source is named; the README's metrics section lists the
 - ``ringing``: after t2 the current (locator) swings beyond 10 % of Irrm (and 5 noise sigmas).
 - ``snap``: the steepest current slope after the peak exceeds 3 times the slope at t0
   (RRSF < 1/3) by more than noise alone would lift the largest of the N window slopes
-  searched: ``steepest − z·u(steepest) > 3·(|slope_t0| + z·u(slope_t0))`` with
-  ``z = Φ⁻¹(1 − α/(N + 1))``, α = ``SNAP_FALSE_ALARM`` (1 %) and N the number of sliding
-  windows (see :func:`snap_margin`). On noise-free samples (u = 0) this is the plain
-  threshold 3.
+  searched: some window's ``slope − z·u(slope) > 3·(|slope_t0| + z·u(slope_t0))`` with
+  ``z = Φ⁻¹(1 − α/(N + 1))``, α = ``SNAP_FALSE_ALARM`` (1 %), over the RRSF windows and
+  windows 2, 4, 8… times as wide, N all of them (see :func:`is_snap`, :func:`snap_margin`).
+  On noise-free samples (u = 0) this is the plain threshold 3.
 - ``ta_unresolved``: the standard uncertainty of ta exceeds 10 % of ta.
 - ``end_in_noise`` (set in :mod:`benchrun.analysis.measure`): the integration end level
   ``integration_end_fraction·Irrm`` lies below ``END_NOISE_MULTIPLE`` (3) current noise
@@ -98,6 +98,7 @@ class Evidence:
     u_steepest: float = 0.0
     n_windows: int = 1
     width_v: int = 1
+    width_s: int = 3
 
 
 def code_step(x: np.ndarray) -> float:
@@ -211,13 +212,43 @@ def selection_bias_bound(n_windows: int) -> float:
     return math.sqrt(2.0 * math.log(n)) if n > 1 else 0.0
 
 
+def window_slopes(iw: np.ndarray, dt: float, width: int) -> tuple[np.ndarray, float]:
+    """Least-squares slopes of every run of ``width`` consecutive samples of ``iw`` and the
+    standard uncertainty of one of them per unit noise sigma (``1/(dt·√Σj²)``)."""
+    j = np.arange(width, dtype=np.float64) - 0.5 * (width - 1)
+    sjj = float(np.dot(j, j))
+    return np.convolve(iw, j[::-1] / (sjj * dt), mode="valid"), 1.0 / (dt * math.sqrt(sjj))
+
+
 def is_snap(slope_t0: float, u_slope_t0: float, steepest: float, u_steepest: float,
-            n_windows: int) -> bool:
-    """The ``snap`` rule of the module docstring."""
+            segment: np.ndarray | None = None, dt: float = 0.0, width: int = 3,
+            sigma: float = 0.0) -> bool:
+    """The ``snap`` rule of the module docstring.
+
+    Noise-free (``u_steepest`` = 0): ``steepest > 3·|slope_t0|``. Otherwise the windows of
+    ``width`` samples over ``segment`` (the raw samples from the peak to t2) and of 2, 4, 8…
+    times that width are all searched: a least-squares slope over uniform samples is a
+    positively weighted mean of the successive differences, so without noise no window's
+    slope exceeds the steepest local slope, and a wide window's lower bound is as valid as a
+    narrow one's while its noise is lower (a snap spread over many samples is resolved on
+    noisy data). ``snap`` when some window's ``slope − z·u`` exceeds
+    ``3·(|slope_t0| + z·u(slope_t0))``, z from :func:`snap_margin` over all windows searched.
+    """
     if not slope_t0:
         return False
-    z = snap_margin(n_windows)
-    return steepest - z * u_steepest > SNAP_MULTIPLE * (abs(slope_t0) + z * u_slope_t0)
+    threshold = SNAP_MULTIPLE * abs(slope_t0)
+    if u_steepest <= 0 or segment is None or dt <= 0 or sigma <= 0:
+        return steepest > threshold
+    found, w = [], max(3, int(width))
+    while w <= segment.size:
+        slopes, u_unit = window_slopes(segment, dt, w)
+        found.append((float(slopes.max()), sigma * u_unit, slopes.size))
+        w = 2 * w
+    if not found:
+        return False
+    z = snap_margin(sum(n for _, _, n in found))
+    bound = max(top - z * u_w for top, u_w, _ in found)
+    return bound > SNAP_MULTIPLE * (abs(slope_t0) + z * u_slope_t0)
 
 
 def voltage_rises_early(tw: np.ndarray, iw: np.ndarray, sv: np.ndarray, sigma_sv: float,
@@ -338,8 +369,9 @@ def quality_flags(values: dict[str, Any], u: dict[str, Any], corrections: dict[s
             swing = float(np.max(np.abs(e.s[k2 : e.k_end])))
             if swing > RINGING_FRACTION * irrm and swing > 5.0 * e.sigma:
                 out.append(fl.FLAG_RINGING)
+    k_stop = int(np.searchsorted(e.tw, e.t_end)) if e.t_end is not None else e.iw.size
     if e.steepest is not None and is_snap(e.slope_t0, e.u_slope_t0, e.steepest, e.u_steepest,
-                                          e.n_windows):
+                                          e.iw[e.k_min : k_stop], e.dt, e.width_s, e.sigma):
         out.append(fl.FLAG_SNAP)
     u_ta = u.get("ta_s")
     if ta is not None and ta > 0 and u_ta is not None and u_ta > TA_U_FRACTION * ta:
