@@ -159,7 +159,7 @@ def test_rule_texts_state_the_noise_margin_and_the_voltage_criterion():
     from benchrun.analysis.method import FLAG_RULES
 
     readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
-    for flag, texts in (("snap", (f"1 − {qa.SNAP_FALSE_ALARM:g}/(N + 1)", "2, 4, 8")),
+    for flag, texts in (("snap", (f"1 − {qa.SNAP_FALSE_ALARM:g}/N", "2, 4, 8")),
                         ("trr_beyond_integration",
                          (f"{100 * qa.CAPACITIVE_VOLTAGE_FRACTION:g} %",))):
         row = next(line for line in readme.splitlines() if line.startswith(f"| `{flag}`"))

@@ -80,9 +80,10 @@ FLAG_RULES: dict[str, str] = {
     "ringing": (f"the current swings beyond {100 * qa.RINGING_FRACTION:g} % of Irrm (and 5σ) "
                 "after t2"),
     "snap": (f"the steepest slope after the peak above {qa.SNAP_MULTIPLE:g} × the slope at t0 "
-             "by more than noise explains: some window's slope − z·u above "
-             f"{qa.SNAP_MULTIPLE:g} × (|slope at t0| + z·u), over the RRSF windows and 2, 4, "
-             f"8… times wider ones, z = Φ⁻¹(1 − {qa.SNAP_FALSE_ALARM:g}/(N + 1)) for N "
+             "by more than noise explains: some window's slope − "
+             f"{qa.SNAP_MULTIPLE:g} × |slope at t0| above z·√(u² + 9·u(t0 slope)²), over the "
+             "RRSF windows and 2, 4, "
+             f"8… times wider ones, z = Φ⁻¹(1 − {qa.SNAP_FALSE_ALARM:g}/N) for N "
              "windows (union bound: noise alone flags a recovery at the threshold with at "
              f"most {100 * qa.SNAP_FALSE_ALARM:g} % probability); without noise plain "
              f"{qa.SNAP_MULTIPLE:g} ×"),

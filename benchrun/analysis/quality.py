@@ -29,8 +29,8 @@ common practice unless a source is named; the README's metrics section lists the
 - ``ringing``: after t2 the current (locator) swings beyond 10 % of Irrm (and 5 noise sigmas).
 - ``snap``: the steepest current slope after the peak exceeds 3 times the slope at t0
   (RRSF < 1/3) by more than noise alone would lift the largest of the N window slopes
-  searched: some window's ``slope − z·u(slope) > 3·(|slope_t0| + z·u(slope_t0))`` with
-  ``z = Φ⁻¹(1 − α/(N + 1))``, α = ``SNAP_FALSE_ALARM`` (1 %), over the RRSF windows and
+  searched: some window's ``slope − 3·|slope_t0| > z·√(u(slope)² + 9·u(slope_t0)²)`` with
+  ``z = Φ⁻¹(1 − α/N)``, α = ``SNAP_FALSE_ALARM`` (1 %), over the RRSF windows and
   windows 2, 4, 8… times as wide, N all of them (see :func:`is_snap`, :func:`snap_margin`).
   On noise-free samples (u = 0) this is the plain threshold 3.
 - ``ta_unresolved``: the standard uncertainty of ta exceeds 10 % of ta.
@@ -190,15 +190,16 @@ def snap_margin(n_windows: int, alpha: float = SNAP_FALSE_ALARM) -> float:
     exceed the true steepest slope: for N independent normal errors its expected excess grows
     like ``u·√(2·ln N)`` (the extreme-value behaviour of the maximum of N standard normals;
     Cramér, *Mathematical Methods of Statistics*, 1946, §28.6; from memory), and overlapping
-    windows are not independent. Whatever their dependence, the union (Bonferroni) bound
-    ``P(max_k e_k > z·u) ≤ Σ_k P(e_k > z·u) = N·(1 − Φ(z))`` holds; with one more event for
-    the slope at t0 falling short by ``z·u`` the probability that noise alone raises
-    ``snap`` on a recovery at the threshold is at most ``(N + 1)·(1 − Φ(z)) = α`` for
-    ``z = Φ⁻¹(1 − α/(N + 1))``.
+    windows are not independent. Each window's difference ``slope_k − 3·|slope_t0|`` has a
+    normal error of standard deviation ``u_k' = √(u_k² + 9·u(slope_t0)²)`` (the t0 samples are
+    not in the window); whatever the windows' dependence, the union (Bonferroni) bound
+    ``P(max_k (e_k − z·u_k') > 0) ≤ Σ_k (1 − Φ(z)) = N·(1 − Φ(z))`` holds, so the probability
+    that noise alone raises ``snap`` on a recovery at the threshold is at most α for
+    ``z = Φ⁻¹(1 − α/N)``.
     """
     from statistics import NormalDist
 
-    return NormalDist().inv_cdf(1.0 - alpha / (max(1, int(n_windows)) + 1))
+    return NormalDist().inv_cdf(1.0 - alpha / max(1, int(n_windows)))
 
 
 def selection_bias_bound(n_windows: int) -> float:
@@ -231,8 +232,8 @@ def is_snap(slope_t0: float, u_slope_t0: float, steepest: float, u_steepest: flo
     positively weighted mean of the successive differences, so without noise no window's
     slope exceeds the steepest local slope, and a wide window's lower bound is as valid as a
     narrow one's while its noise is lower (a snap spread over many samples is resolved on
-    noisy data). ``snap`` when some window's ``slope − z·u`` exceeds
-    ``3·(|slope_t0| + z·u(slope_t0))``, z from :func:`snap_margin` over all windows searched.
+    noisy data). ``snap`` when some window's ``slope − 3·|slope_t0|`` exceeds
+    ``z·√(u² + 9·u(slope_t0)²)``, z from :func:`snap_margin` over all windows searched.
     """
     if not slope_t0:
         return False
@@ -247,8 +248,9 @@ def is_snap(slope_t0: float, u_slope_t0: float, steepest: float, u_steepest: flo
     if not found:
         return False
     z = snap_margin(sum(n for _, _, n in found))
-    bound = max(top - z * u_w for top, u_w, _ in found)
-    return bound > SNAP_MULTIPLE * (abs(slope_t0) + z * u_slope_t0)
+    # the t0 samples are not among the window's: independent errors, combined in quadrature
+    return any(top - threshold > z * math.hypot(u_w, SNAP_MULTIPLE * u_slope_t0)
+               for top, u_w, _ in found)
 
 
 def voltage_rises_early(tw: np.ndarray, iw: np.ndarray, sv: np.ndarray, sigma_sv: float,
