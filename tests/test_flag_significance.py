@@ -22,6 +22,8 @@ import math
 
 import numpy as np
 import pytest
+from spice import have_ngspice, resample, run_ngspice
+from test_analysis_validation import SIC_DIODE, cell, tt_diode
 
 from benchrun.analysis import analyze_recovery
 
@@ -166,3 +168,34 @@ def test_rule_texts_state_the_noise_margin_and_the_voltage_criterion():
         for text in texts:
             assert text in FLAG_RULES[flag] and text in row, (flag, text)
     assert "half of the charge" in readme and qa.CAPACITIVE_CHARGE_FRACTION == 0.5
+
+
+# ngspice (an independent circuit simulator), double-pulse cell of tests/test_analysis_validation
+# with light damping (150 nH, 1 kΩ across it): the current rings through zero after the peak.
+NGSPICE_CASES = {
+    # SPICE junction diode, TT = 10 ns: the stored charge lasts until the current peak (the
+    # voltage stays forward until then), then the junction capacitance rings with the loop
+    # (the old rule called this capacitive)
+    "stored_charge": (dict(diode=tt_diode("10n", "IS=1e-12 N=1.6 RS=5m CJO=500p VJ=0.7 M=0.4"),
+                           vbus=600, IF=30, didt=2e9, ls=150e-9, rdamp=1000), False),
+    # capacitive only (TT = 0, CJO = 1.2 nF, M = 0.5: a nonlinear, SiC-Schottky-like
+    # capacitor)
+    "capacitive": (dict(diode=SIC_DIODE, vbus=600, IF=20, didt=1e9, ls=150e-9, rdamp=1000,
+                        tfall=50e-9, toff=1e-6, snubber=(20, 5e-9)), True),
+}
+
+
+@pytest.mark.ngspice
+@pytest.mark.skipif(not have_ngspice(), reason="ngspice binary not installed")
+@pytest.mark.parametrize("name", list(NGSPICE_CASES))
+def test_ngspice_ringing_recovery_is_flagged_only_when_capacitive(name):
+    kwargs, capacitive = NGSPICE_CASES[name]
+    netlist, ton = cell(**kwargs)
+    stop = ton + kwargs["IF"] / kwargs["didt"] + 0.6e-6
+    sim = run_ngspice(netlist, tran=f"tran 0.1n {stop}", vectors=["v(a,kk)", "i(vsense)"],
+                      measures=[], timeout_s=60)
+    t, i = resample(sim.time, sim.vectors["i(vsense)"], 0.1e-9)
+    _, v = resample(sim.time, sim.vectors["v(a,kk)"], 0.1e-9)
+    m = analyze_recovery(t, v, i)
+    assert "ringing" in names(m.flags)
+    assert ("trr_beyond_integration" in names(m.flags)) is capacitive
