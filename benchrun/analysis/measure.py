@@ -477,7 +477,7 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
         sigma=sigma_u, sigma_v=sigma_vu, slope_t0=slopes[0][0] if slopes else slope_t0,
         steepest=slopes[1][0] if slopes else None, t_end=end[0] if end is not None else None,
         u_slope_t0=slopes[0][1] if slopes else 0.0, u_steepest=slopes[1][1] if slopes else 0.0,
-        n_windows=slopes[2] if slopes else 1, width_v=width_v, width_s=max(3, width_r),
+        width_v=width_v, width_s=max(3, width_r),
     )
     flags.extend(qa.quality_flags(values, u, corrections, evidence, opts))
     flags.extend(f for f in clip_flags if f not in flags)

@@ -96,7 +96,6 @@ class Evidence:
     t_end: float | None
     u_slope_t0: float = 0.0
     u_steepest: float = 0.0
-    n_windows: int = 1
     width_v: int = 1
     width_s: int = 3
 
