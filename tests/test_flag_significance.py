@@ -167,7 +167,9 @@ def test_rule_texts_state_the_noise_margin_and_the_voltage_criterion():
         row = next(line for line in readme.splitlines() if line.startswith(f"| `{flag}`"))
         for text in texts:
             assert text in FLAG_RULES[flag] and text in row, (flag, text)
-    assert "half of the charge" in readme and qa.CAPACITIVE_CHARGE_FRACTION == 0.5
+    assert "(1 + √x)/2 of the charge" in readme and "(1 + √x)/2 of the charge" in (
+        FLAG_RULES["trr_beyond_integration"])
+    assert qa.capacitive_charge_limit(0.1) == pytest.approx(0.658, abs=1e-3)
 
 
 # ngspice (an independent circuit simulator), double-pulse cell of tests/test_analysis_validation

@@ -73,10 +73,10 @@ FLAG_RULES: dict[str, str] = {
     "trr_beyond_integration": ("the trr end after t2 by more than a straight return would "
                                "put it, and the reverse voltage passes "
                                f"{100 * qa.CAPACITIVE_VOLTAGE_FRACTION:g} % of its value at "
-                               "the current peak before "
-                               f"{100 * qa.CAPACITIVE_CHARGE_FRACTION:g} % of the charge to "
-                               "the peak has flowed (the junction charges like a capacitor "
-                               "from t0): capacitive recovery; Qrr and Err are Qc and Ec"),
+                               "the current peak (or 5 noise sigmas: a fraction x) before "
+                               "(1 + √x)/2 of the charge to the peak has flowed (the "
+                               "junction charges like a capacitor from t0): capacitive "
+                               "recovery; Qrr and Err are Qc and Ec"),
     "ringing": (f"the current swings beyond {100 * qa.RINGING_FRACTION:g} % of Irrm (and 5σ) "
                 "after t2"),
     "snap": (f"the steepest slope after the peak above {qa.SNAP_MULTIPLE:g} × the slope at t0 "

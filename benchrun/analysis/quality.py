@@ -18,9 +18,10 @@ common practice unless a source is named; the README's metrics section lists the
 - ``trr_beyond_integration``: the trr end lies after t2, the return through
   ``integration_end_fraction·Irrm``, by more than a straight return from the peak would put
   it (``f·(t_trr − t_irrm)``) plus one sample interval or 3 u(t_trr), **and** the diode's
-  voltage shows a capacitive recovery: less than half of the charge from t0 to the current
-  peak has flowed when the reverse voltage passes 10 % of the value it reaches by the peak
-  (and 5 noise sigmas of its locator; see :func:`voltage_rises_early`).
+  voltage shows a capacitive recovery: the reverse voltage passes 10 % of the value it
+  reaches by the current peak (or 5 noise sigmas of its locator, when higher: a fraction x)
+  before (1 + √x)/2 of the charge from t0 to the peak (0.66 at 10 %) has flowed (see
+  :func:`voltage_rises_early`).
   A capacitive recovery (e.g. a SiC Schottky) returns the current through zero as a
   displacement current, not by extracting stored charge; trr, tb and S are then not
   meaningful and Qrr / Err are the capacitive charge Qc and energy Ec. A stored-charge (PiN)
@@ -63,12 +64,10 @@ SNAP_MULTIPLE = 3.0
 #: Probability, at most, that noise alone raises ``snap`` on a recovery whose steepest slope
 #: is exactly at the threshold (common practice: 1 %; see :func:`snap_margin`).
 SNAP_FALSE_ALARM = 0.01
-#: A capacitive recovery: the reverse voltage passes this fraction of the voltage it reaches
-#: by the current peak ...
+#: A capacitive recovery: the reverse voltage passes this fraction x of the voltage it
+#: reaches by the current peak (or 5 noise sigmas, when higher) before (1 + √x)/2 of the
+#: charge from t0 to the peak has flowed (see :func:`voltage_rises_early`).
 CAPACITIVE_VOLTAGE_FRACTION = 0.1
-#: ... before this fraction of the charge from t0 to the peak has flowed
-#: (see :func:`voltage_rises_early`).
-CAPACITIVE_CHARGE_FRACTION = 0.5
 #: A diode commutation: the reverse voltage after it exceeds the plateau voltage before it
 #: by this factor (a freewheeling diode conducts at a few volts, then blocks the bus).
 COMMUTATION_VOLTAGE_RATIO = 5.0
@@ -252,29 +251,37 @@ def is_snap(slope_t0: float, u_slope_t0: float, steepest: float, u_steepest: flo
                for top, u_w, _ in found)
 
 
+def capacitive_charge_limit(x: float) -> float:
+    """Largest fraction of Qa a capacitive diode has taken when its voltage passes the
+    fraction ``x`` of its peak-time value, as :func:`voltage_rises_early` uses it:
+    ``(1 + √x)/2``, the midpoint between ``√x`` (a depletion capacitance with grading
+    coefficient ½, ``q ∝ √V``) and 1 (a diode that holds its voltage until the peak)."""
+    return 0.5 * (1.0 + math.sqrt(x))
+
+
 def voltage_rises_early(tw: np.ndarray, iw: np.ndarray, sv: np.ndarray, sigma_sv: float,
                         k0: int, k_pk: int) -> bool:
-    """True when the diode charges like a capacitor during ta: less than
-    ``CAPACITIVE_CHARGE_FRACTION`` (half) of the charge ``Qa = −∫ i dt`` from t0 to the
-    current peak has flowed when the reverse voltage passes ``CAPACITIVE_VOLTAGE_FRACTION``
-    (10 %) of the reverse voltage it reaches by the peak (and 5 noise sigmas of the voltage
-    locator ``sv``, whose noise is ``sigma_sv``).
+    """True when the diode charges like a capacitor during ta: the reverse voltage passes
+    the level ``x·V_pk`` — x = ``CAPACITIVE_VOLTAGE_FRACTION`` (10 %) of the reverse voltage
+    V_pk it reaches by the current peak, raised to 5 noise sigmas of the voltage locator
+    ``sv`` (noise ``sigma_sv``) when that is higher — before the charge ``q = −∫ i dt`` from
+    t0 reaches :func:`capacitive_charge_limit` (x) of its value Qa at the peak (0.66 at 10 %).
 
     Physics: a capacitive diode (Schottky, SiC) carries the reverse current as displacement
     current, ``i = C(v)·dv/dt``, so its junction charges from the current zero t0 on and its
-    voltage is a function of the charge ``q(t) = −∫ i dt`` alone, whatever the current's
-    shape. With a depletion capacitance ``C ∝ (Vj + V)^(−m)`` (grading coefficient m ≤ 1/2
-    for an abrupt junction; Sze, *Physics of Semiconductor Devices*, depletion capacitance)
-    ``q ∝ V^(1−m)``, so 10 % of the peak-time voltage is reached after at most
-    ``0.1^(1−m)`` = 32 % of Qa (10 % for a constant capacitance; less still when Vj is not
-    negligible). A stored-charge (PiN) diode stays forward biased, at a few volts, while its
-    excess carriers near the junction are extracted, and supports reverse voltage only once
-    the carrier density at the junction has fallen to zero, close to the current peak
-    (Baliga, *Fundamentals of Power Semiconductor Devices*, 2008, ch. 5 on reverse recovery;
-    in the Lauritzen–Ma model, IEEE Trans. Power Electronics 6(2), 1991, the junction charge
-    stays positive until near the peak; both from memory): most of Qa has flowed before its
-    voltage rises. The 50 % split lies between the two (common practice). A record whose
-    reverse voltage does not rise above the noise by the peak is not capacitive.
+    voltage is a function of the charge alone, whatever the current's shape. With a depletion
+    capacitance ``C ∝ (Vj + V)^(−m)`` (grading coefficient m ≤ 1/2 for an abrupt junction;
+    Sze, *Physics of Semiconductor Devices*, depletion capacitance) ``q ∝ V^(1−m)``, so the
+    fraction x of the peak-time voltage is reached after at most ``x^(1−m) ≤ √x`` of Qa
+    (32 % at x = 10 %; x for a constant capacitance; less still when Vj is not negligible).
+    A stored-charge (PiN) diode stays forward biased, at a few volts, while its excess
+    carriers near the junction are extracted, and supports reverse voltage only once the
+    carrier density at the junction has fallen to zero, close to the current peak (Baliga,
+    *Fundamentals of Power Semiconductor Devices*, 2008, ch. 5 on reverse recovery; in the
+    Lauritzen–Ma model, IEEE Trans. Power Electronics 6(2), 1991, the junction charge stays
+    positive until near the peak; both from memory): nearly all of Qa has flowed before its
+    voltage rises. The split is the midpoint between the two (common practice). A record
+    whose reverse voltage does not rise above that level by the peak is not capacitive.
     """
     if k_pk <= k0 + 1:
         return False
@@ -286,7 +293,7 @@ def voltage_rises_early(tw: np.ndarray, iw: np.ndarray, sv: np.ndarray, sigma_sv
     q = -np.concatenate(([0.0], np.cumsum(0.5 * (iw[k0 + 1 : k_pk + 1] + iw[k0:k_pk])
                                           * np.diff(tw[k0 : k_pk + 1]))))
     q_a = float(q[-1])
-    return q_a > 0 and float(q[k_v - k0]) < CAPACITIVE_CHARGE_FRACTION * q_a
+    return q_a > 0 and float(q[k_v - k0]) < capacitive_charge_limit(level / v_pk) * q_a
 
 
 def ev_last_above(s, level, start, stop):
