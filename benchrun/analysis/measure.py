@@ -359,10 +359,13 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
                             T0_SLOPE_BAND)
     rrsf = u_rrsf = None
     if slopes is not None:
-        (s0, u_s0), (s1, u_s1) = slopes
+        (s0, u_s0), (s1, u_s1), n_win = slopes
         if s1 > 0 and s0 != 0.0:
             rrsf = abs(s0) / s1
-            u_rrsf = rrsf * rss(u_s0 / abs(s0), u_s1 / s1)
+            # the largest of n_win noisy slopes exceeds the true steepest one by up to
+            # √(2·ln n_win)·u on average (qa.selection_bias_bound): an uncertainty component
+            u_s1_all = u_s1 * math.hypot(1.0, qa.selection_bias_bound(n_win))
+            u_rrsf = rrsf * rss(u_s0 / abs(s0), u_s1_all / s1)
     if rrsf is None:
         flags.append(FLAG_RRSF)
 
@@ -473,6 +476,8 @@ def _measure_window(a, b, can_grow, plateau, level, v, i, timebase, opts, zeros)
         tw=tw, iw=iw, vw=vw, s=s, sv=sv, k0=k0, k_min=k_min, k_end=k_r1, dt=dt_local,
         sigma=sigma_u, sigma_v=sigma_vu, slope_t0=slopes[0][0] if slopes else slope_t0,
         steepest=slopes[1][0] if slopes else None, t_end=end[0] if end is not None else None,
+        u_slope_t0=slopes[0][1] if slopes else 0.0, u_steepest=slopes[1][1] if slopes else 0.0,
+        width_v=width_v, width_s=max(3, width_r),
     )
     flags.extend(qa.quality_flags(values, u, corrections, evidence, opts))
     flags.extend(f for f in clip_flags if f not in flags)

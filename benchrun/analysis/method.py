@@ -58,7 +58,8 @@ UNCERTAINTY_TEXT = (
     "noise-free quantised data), noise/|slope| at every crossing, the peak fit's covariance "
     "and model error (up to the most extreme sample under the fit, rectangular), "
     "σ·Δt·√N for the integrals and the offset residuals, propagated into ta, tb, trr, S, "
-    "Qrr and Err"
+    "Qrr and Err; u(RRSF) adds the bound √(2·ln N)·u on how far noise lifts the largest of "
+    "the N window slopes above the true steepest one"
 )
 
 FLAG_RULES: dict[str, str] = {
@@ -70,10 +71,22 @@ FLAG_RULES: dict[str, str] = {
     "rrsf_unresolved": f"RRSF not found or u(RRSF) above {100 * qa.RRSF_U_FRACTION:g} % of it",
     "vrm_below_vr": "VRM more than 3 u below VR",
     "trr_beyond_integration": ("the trr end after t2 by more than a straight return would "
-                               "put it: capacitive recovery; Qrr and Err are Qc and Ec"),
+                               "put it, and the reverse voltage passes "
+                               f"{100 * qa.CAPACITIVE_VOLTAGE_FRACTION:g} % of its value at "
+                               "the current peak (or 5 noise sigmas: a fraction x) before "
+                               "(1 + √x)/2 of the charge to the peak has flowed (the "
+                               "junction charges like a capacitor from t0): capacitive "
+                               "recovery; Qrr and Err are Qc and Ec"),
     "ringing": (f"the current swings beyond {100 * qa.RINGING_FRACTION:g} % of Irrm (and 5σ) "
                 "after t2"),
-    "snap": f"the steepest slope after the peak above {qa.SNAP_MULTIPLE:g} × the slope at t0",
+    "snap": (f"the steepest slope after the peak above {qa.SNAP_MULTIPLE:g} × the slope at t0 "
+             "by more than noise explains: some window's slope − "
+             f"{qa.SNAP_MULTIPLE:g} × |slope at t0| above z·√(u² + 9·u(t0 slope)²), over the "
+             "RRSF windows and 2, 4, "
+             f"8… times wider ones, z = Φ⁻¹(1 − {qa.SNAP_FALSE_ALARM:g}/N) for N "
+             "windows (union bound: noise alone flags a recovery at the threshold with at "
+             f"most {100 * qa.SNAP_FALSE_ALARM:g} % probability); without noise plain "
+             f"{qa.SNAP_MULTIPLE:g} ×"),
     "ta_unresolved": f"u(ta) above {100 * qa.TA_U_FRACTION:g} % of ta",
     "end_in_noise": (f"the integration end level below {END_NOISE_MULTIPLE:g} current noise "
                      "sigmas: t2 from a wider moving average, the return must hold for its "

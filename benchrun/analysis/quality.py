@@ -17,13 +17,23 @@ common practice unless a source is named; the README's metrics section lists the
 - ``vrm_below_vr``: VRM lies below VR by more than 3 standard uncertainties.
 - ``trr_beyond_integration``: the trr end lies after t2, the return through
   ``integration_end_fraction·Irrm``, by more than a straight return from the peak would put
-  it (``f·(t_trr − t_irrm)``) plus one sample interval or 3 u(t_trr) (a capacitive
-  recovery, e.g. a SiC Schottky: the current returns through zero as a displacement
-  current, not by extracting stored charge); trr, tb and S are then not meaningful and
-  Qrr / Err are the capacitive charge Qc and energy Ec.
+  it (``f·(t_trr − t_irrm)``) plus one sample interval or 3 u(t_trr), **and** the diode's
+  voltage shows a capacitive recovery: the reverse voltage passes 10 % of the value it
+  reaches by the current peak (or 5 noise sigmas of its locator, when higher: a fraction x)
+  before (1 + √x)/2 of the charge from t0 to the peak (0.66 at 10 %) has flowed (see
+  :func:`voltage_rises_early`).
+  A capacitive recovery (e.g. a SiC Schottky) returns the current through zero as a
+  displacement current, not by extracting stored charge; trr, tb and S are then not
+  meaningful and Qrr / Err are the capacitive charge Qc and energy Ec. A stored-charge (PiN)
+  recovery followed by strong loop ringing also puts the extrapolated trr end after t2, but
+  it is not capacitive, so it is not flagged (``ringing`` says what happened).
 - ``ringing``: after t2 the current (locator) swings beyond 10 % of Irrm (and 5 noise sigmas).
 - ``snap``: the steepest current slope after the peak exceeds 3 times the slope at t0
-  (RRSF < 1/3).
+  (RRSF < 1/3) by more than noise alone would lift the largest of the N window slopes
+  searched: some window's ``slope − 3·|slope_t0| > z·√(u(slope)² + 9·u(slope_t0)²)`` with
+  ``z = Φ⁻¹(1 − α/N)``, α = ``SNAP_FALSE_ALARM`` (1 %), over the RRSF windows and
+  windows 2, 4, 8… times as wide, N all of them (see :func:`is_snap`, :func:`snap_margin`).
+  On noise-free samples (u = 0) this is the plain threshold 3.
 - ``ta_unresolved``: the standard uncertainty of ta exceeds 10 % of ta.
 - ``end_in_noise`` (set in :mod:`benchrun.analysis.measure`): the integration end level
   ``integration_end_fraction·Irrm`` lies below ``END_NOISE_MULTIPLE`` (3) current noise
@@ -51,6 +61,13 @@ RRSF_U_FRACTION = 0.1
 TA_U_FRACTION = 0.1
 RINGING_FRACTION = 0.1
 SNAP_MULTIPLE = 3.0
+#: Probability, at most, that noise alone raises ``snap`` on a recovery whose steepest slope
+#: is exactly at the threshold (common practice: 1 %; see :func:`snap_margin`).
+SNAP_FALSE_ALARM = 0.01
+#: A capacitive recovery: the reverse voltage passes this fraction x of the voltage it
+#: reaches by the current peak (or 5 noise sigmas, when higher) before (1 + √x)/2 of the
+#: charge from t0 to the peak has flowed (see :func:`voltage_rises_early`).
+CAPACITIVE_VOLTAGE_FRACTION = 0.1
 #: A diode commutation: the reverse voltage after it exceeds the plateau voltage before it
 #: by this factor (a freewheeling diode conducts at a few volts, then blocks the bus).
 COMMUTATION_VOLTAGE_RATIO = 5.0
@@ -76,6 +93,10 @@ class Evidence:
     slope_t0: float
     steepest: float | None
     t_end: float | None
+    u_slope_t0: float = 0.0
+    u_steepest: float = 0.0
+    width_v: int = 1
+    width_s: int = 3
 
 
 def code_step(x: np.ndarray) -> float:
@@ -138,7 +159,10 @@ def rrsf_slopes(tw, iw, s, k0, k_min, k_stop, level, width, sigma, band):
     above ``+band·min(IF, Irrm)`` before t0 to the first at or below ``−band·min(IF, Irrm)``
     after it (``level`` = min(IF, Irrm)). Steepest
     slope after the minimum: the largest least-squares slope over ``width`` consecutive raw
-    samples (at least 3) between the minimum and t2. Standard uncertainties ``σ/√Σ(t − t̄)²``.
+    samples (at least 3) between the minimum and t2. Standard uncertainties ``σ/√Σ(t − t̄)²``
+    (of one window's slope: the largest of many is biased upwards by noise, see
+    :func:`snap_margin` and :func:`selection_bias_bound`). The third item is the number of
+    windows searched.
     """
     lo = ev_last_above(s, band * level, max(0, k0 - 100_000), k0)
     hi = ev_first_below(s, -band * level, k0, k_min + 1)
@@ -153,7 +177,123 @@ def rrsf_slopes(tw, iw, s, k0, k_min, k_stop, level, width, sigma, band):
     sjj = float(np.dot(j, j))
     dt = float(tw[1] - tw[0])
     slopes = np.convolve(seg, j[::-1] / (sjj * dt), mode="valid")
-    return first, (float(slopes.max()), sigma / (dt * math.sqrt(sjj)))
+    return first, (float(slopes.max()), sigma / (dt * math.sqrt(sjj))), int(slopes.size)
+
+
+def snap_margin(n_windows: int, alpha: float = SNAP_FALSE_ALARM) -> float:
+    """Noise margin ``z`` (in standard uncertainties) of the ``snap`` rule.
+
+    The steepest slope is the largest of ``n_windows`` least-squares slopes over sliding
+    windows. Noise alone makes the largest of N slopes, each with standard uncertainty u,
+    exceed the true steepest slope: for N independent normal errors its expected excess grows
+    like ``u·√(2·ln N)`` (the extreme-value behaviour of the maximum of N standard normals;
+    Cramér, *Mathematical Methods of Statistics*, 1946, §28.6; from memory), and overlapping
+    windows are not independent. Each window's difference ``slope_k − 3·|slope_t0|`` has a
+    normal error of standard deviation ``u_k' = √(u_k² + 9·u(slope_t0)²)`` (the t0 samples are
+    not in the window); whatever the windows' dependence, the union (Bonferroni) bound
+    ``P(max_k (e_k − z·u_k') > 0) ≤ Σ_k (1 − Φ(z)) = N·(1 − Φ(z))`` holds, so the probability
+    that noise alone raises ``snap`` on a recovery at the threshold is at most α for
+    ``z = Φ⁻¹(1 − α/N)``.
+    """
+    from statistics import NormalDist
+
+    return NormalDist().inv_cdf(1.0 - alpha / max(1, int(n_windows)))
+
+
+def selection_bias_bound(n_windows: int) -> float:
+    """Upper bound, in standard uncertainties, of the mean excess of the largest of
+    ``n_windows`` window slopes over the true steepest slope: ``√(2·ln N)`` (for any N
+    normal errors of equal variance, whatever their correlation:
+    ``E[max e_k] ≤ u·√(2·ln N)`` from Jensen's inequality on ``E[exp(λ·max e_k)]``; a
+    standard bound, from memory). The reported RRSF keeps the definition's largest slope
+    (biased low by up to this much on noisy data); its uncertainty includes this bound."""
+    n = max(1, int(n_windows))
+    return math.sqrt(2.0 * math.log(n)) if n > 1 else 0.0
+
+
+def window_slopes(iw: np.ndarray, dt: float, width: int) -> tuple[np.ndarray, float]:
+    """Least-squares slopes of every run of ``width`` consecutive samples of ``iw`` and the
+    standard uncertainty of one of them per unit noise sigma (``1/(dt·√Σj²)``)."""
+    j = np.arange(width, dtype=np.float64) - 0.5 * (width - 1)
+    sjj = float(np.dot(j, j))
+    return np.convolve(iw, j[::-1] / (sjj * dt), mode="valid"), 1.0 / (dt * math.sqrt(sjj))
+
+
+def is_snap(slope_t0: float, u_slope_t0: float, steepest: float, u_steepest: float,
+            segment: np.ndarray | None = None, dt: float = 0.0, width: int = 3,
+            sigma: float = 0.0) -> bool:
+    """The ``snap`` rule of the module docstring.
+
+    Noise-free (``u_steepest`` = 0): ``steepest > 3·|slope_t0|``. Otherwise the windows of
+    ``width`` samples over ``segment`` (the raw samples from the peak to t2) and of 2, 4, 8…
+    times that width are all searched: a least-squares slope over uniform samples is a
+    positively weighted mean of the successive differences, so without noise no window's
+    slope exceeds the steepest local slope, and a wide window's lower bound is as valid as a
+    narrow one's while its noise is lower (a snap spread over many samples is resolved on
+    noisy data). ``snap`` when some window's ``slope − 3·|slope_t0|`` exceeds
+    ``z·√(u² + 9·u(slope_t0)²)``, z from :func:`snap_margin` over all windows searched.
+    """
+    if not slope_t0:
+        return False
+    threshold = SNAP_MULTIPLE * abs(slope_t0)
+    if u_steepest <= 0 or segment is None or dt <= 0 or sigma <= 0:
+        return steepest > threshold
+    found, w = [], max(3, int(width))
+    while w <= segment.size:
+        slopes, u_unit = window_slopes(segment, dt, w)
+        found.append((float(slopes.max()), sigma * u_unit, slopes.size))
+        w = 2 * w
+    if not found:
+        return False
+    z = snap_margin(sum(n for _, _, n in found))
+    # the t0 samples are not among the window's: independent errors, combined in quadrature
+    return any(top - threshold > z * math.hypot(u_w, SNAP_MULTIPLE * u_slope_t0)
+               for top, u_w, _ in found)
+
+
+def capacitive_charge_limit(x: float) -> float:
+    """Largest fraction of Qa a capacitive diode has taken when its voltage passes the
+    fraction ``x`` of its peak-time value, as :func:`voltage_rises_early` uses it:
+    ``(1 + √x)/2``, the midpoint between ``√x`` (a depletion capacitance with grading
+    coefficient ½, ``q ∝ √V``) and 1 (a diode that holds its voltage until the peak)."""
+    return 0.5 * (1.0 + math.sqrt(x))
+
+
+def voltage_rises_early(tw: np.ndarray, iw: np.ndarray, sv: np.ndarray, sigma_sv: float,
+                        k0: int, k_pk: int) -> bool:
+    """True when the diode charges like a capacitor during ta: the reverse voltage passes
+    the level ``x·V_pk`` — x = ``CAPACITIVE_VOLTAGE_FRACTION`` (10 %) of the reverse voltage
+    V_pk it reaches by the current peak, raised to 5 noise sigmas of the voltage locator
+    ``sv`` (noise ``sigma_sv``) when that is higher — before the charge ``q = −∫ i dt`` from
+    t0 reaches :func:`capacitive_charge_limit` (x) of its value Qa at the peak (0.66 at 10 %).
+
+    Physics: a capacitive diode (Schottky, SiC) carries the reverse current as displacement
+    current, ``i = C(v)·dv/dt``, so its junction charges from the current zero t0 on and its
+    voltage is a function of the charge alone, whatever the current's shape. With a depletion
+    capacitance ``C ∝ (Vj + V)^(−m)`` (grading coefficient m ≤ 1/2 for an abrupt junction;
+    Sze, *Physics of Semiconductor Devices*, depletion capacitance) ``q ∝ V^(1−m)``, so the
+    fraction x of the peak-time voltage is reached after at most ``x^(1−m) ≤ √x`` of Qa
+    (32 % at x = 10 %; x for a constant capacitance; less still when Vj is not negligible).
+    A stored-charge (PiN) diode stays forward biased, at a few volts, while its excess
+    carriers near the junction are extracted, and supports reverse voltage only once the
+    carrier density at the junction has fallen to zero, close to the current peak (Baliga,
+    *Fundamentals of Power Semiconductor Devices*, 2008, ch. 5 on reverse recovery; in the
+    Lauritzen–Ma model, IEEE Trans. Power Electronics 6(2), 1991, the junction charge stays
+    positive until near the peak; both from memory): nearly all of Qa has flowed before its
+    voltage rises. The split is the midpoint between the two (common practice). A record
+    whose reverse voltage does not rise above that level by the peak is not capacitive.
+    """
+    if k_pk <= k0 + 1:
+        return False
+    v_pk = float(-np.min(sv[k0 : k_pk + 1]))
+    level = max(CAPACITIVE_VOLTAGE_FRACTION * v_pk, 5.0 * sigma_sv)
+    if not v_pk > level:
+        return False
+    k_v = k0 + int(np.argmax(sv[k0 : k_pk + 1] < -level))
+    q = -np.concatenate(([0.0], np.cumsum(0.5 * (iw[k0 + 1 : k_pk + 1] + iw[k0:k_pk])
+                                          * np.diff(tw[k0 : k_pk + 1]))))
+    q_a = float(q[-1])
+    return q_a > 0 and float(q[k_v - k0]) < capacitive_charge_limit(level / v_pk) * q_a
 
 
 def ev_last_above(s, level, start, stop):
@@ -225,7 +365,9 @@ def quality_flags(values: dict[str, Any], u: dict[str, Any], corrections: dict[s
     t_trr, t_pk = values["t_trr_s"], values["t_irrm_s"]
     if t_trr is not None and e.t_end is not None and t_trr > e.t_end + (
             opts.integration_end_fraction * (t_trr - t_pk)
-            + max(e.dt, 3.0 * (u.get("t_trr_s") or 0.0))):
+            + max(e.dt, 3.0 * (u.get("t_trr_s") or 0.0))) and (
+            voltage_rises_early(e.tw, e.iw, e.sv, e.sigma_v / math.sqrt(e.width_v), e.k0,
+                                int(np.searchsorted(e.tw, t_pk)))):
         out.append(f"{fl.FLAG_TRR_BEYOND}: the trr end lies after t2 (capacitive recovery); "
                    "trr_s, tb_s and softness are not meaningful, qrr_C and err_J are the "
                    "capacitive charge Qc and energy Ec")
@@ -235,7 +377,9 @@ def quality_flags(values: dict[str, Any], u: dict[str, Any], corrections: dict[s
             swing = float(np.max(np.abs(e.s[k2 : e.k_end])))
             if swing > RINGING_FRACTION * irrm and swing > 5.0 * e.sigma:
                 out.append(fl.FLAG_RINGING)
-    if e.steepest is not None and e.slope_t0 and e.steepest > SNAP_MULTIPLE * abs(e.slope_t0):
+    k_stop = int(np.searchsorted(e.tw, e.t_end)) if e.t_end is not None else e.iw.size
+    if e.steepest is not None and is_snap(e.slope_t0, e.u_slope_t0, e.steepest, e.u_steepest,
+                                          e.iw[e.k_min : k_stop], e.dt, e.width_s, e.sigma):
         out.append(fl.FLAG_SNAP)
     u_ta = u.get("ta_s")
     if ta is not None and ta > 0 and u_ta is not None and u_ta > TA_U_FRACTION * ta:
