@@ -76,8 +76,14 @@ def test_worst_case_point_is_marked_and_metrics_reach_the_curves(graded, tmp_pat
         rows = list(csv.DictReader(fh))
     for key in ("overshoot_V", "ring_amplitude_A", "vrm_dwell_s"):
         assert all(r[key] != "" for r in rows if r["valid"] == "True"), key
+    # snap is a per-shot finding with a noise margin (benchrun.analysis.quality.is_snap): the
+    # step grades each device on its worst shot, so each device shows it on a shot there,
+    # and no shot at the nominal point shows it
     worst = [r for r in rows if r["label"].startswith("worst") and r["valid"] == "True"]
-    assert all("snap" in r["flags"] for r in worst)
+    assert {r["serial"] for r in worst if "snap" in r["flags"].split(";")} == {
+        r["serial"] for r in worst}
+    nominal = [r for r in rows if r["label"].startswith("nominal")]
+    assert nominal and not any("snap" in r["flags"].split(";") for r in nominal)
 
 
 @pytest.mark.slow

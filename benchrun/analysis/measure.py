@@ -49,8 +49,12 @@ MIN_SAMPLES_IN_TA = 10
 #: Locator width (samples) used to pin down the reverse-current peak on noisy data.
 PEAK_LOCATOR_WIDTH = 5
 #: The slope at t0 is the least-squares line through the raw samples between the falling
-#: crossings of ``±T0_SLOPE_BAND·min(IF, Irrm)`` (common practice).
-T0_SLOPE_BAND = 0.25
+#: crossings of ``±T0_SLOPE_BAND·min(IF, Irrm)``: JEDEC's "diRR/dt when the current is passing
+#: through zero" (JESD282-B, RRSF), the same window as the runner's di/dt condition
+#: (:func:`benchrun.runner.didt.commutation_didt`). Symmetric about zero it reads the tangent
+#: there; half of min(IF, Irrm) keeps it clear of the reverse peak and holds enough samples at
+#: low current (band and window ours, common practice).
+T0_SLOPE_BAND = 0.5
 
 #: The forward plateau must exceed this many noise sigmas, else the record is refused as noise
 #: (common practice).

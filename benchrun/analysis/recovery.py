@@ -20,7 +20,7 @@ Definitions (all results positive magnitudes, SI units; times by linear interpol
 - ``rrsf``: reverse-recovery softness factor in the JEDEC (JESD24 / JESD282 style) sense,
   ``|di/dt at t0| / |steepest di/dt after the minimum|``; both slopes by least squares
   (:func:`benchrun.analysis.quality.rrsf_slopes`: at t0 over the samples between
-  ``±0.25·min(IF, Irrm)``, after the minimum the largest slope over a sliding window).
+  ``±0.5·min(IF, Irrm)``, after the minimum the largest slope over a sliding window).
 - ``qrr_C``: ``-∫ i dt`` from t0 to t2, t2 being the first instant after the minimum at which
   the current rises through ``-integration_end_fraction·Irrm`` (2 % by default, the integration
   end used in IEC 60747-9 practice).
