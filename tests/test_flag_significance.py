@@ -201,3 +201,15 @@ def test_ngspice_ringing_recovery_is_flagged_only_when_capacitive(name):
     m = analyze_recovery(t, v, i)
     assert "ringing" in names(m.flags)
     assert ("trr_beyond_integration" in names(m.flags)) is capacitive
+
+
+@pytest.mark.parametrize("dt", [1e-9, 2e-9])
+def test_an_abrupt_end_within_a_sample_or_two_is_still_called_snappy(dt):
+    # ratio 40: the return lasts about 1 ns, so t2 follows the peak within one or two samples;
+    # the steepest slope over the 3 samples from the peak is a lower bound of the true one
+    # (a least-squares slope is a weighted mean of successive differences), and still far
+    # above 3× the commutation slope (triangular recovery, as above)
+    t, v, i = triangular(40.0, dt)
+    m = analyze_recovery(t, v, i)
+    assert m.rrsf is not None and m.rrsf < 1 / 3
+    assert "snap" in names(m.flags)

@@ -159,7 +159,10 @@ def rrsf_slopes(tw, iw, s, k0, k_min, k_stop, level, width, sigma, band):
     above ``+band·min(IF, Irrm)`` before t0 to the first at or below ``−band·min(IF, Irrm)``
     after it (``level`` = min(IF, Irrm)). Steepest
     slope after the minimum: the largest least-squares slope over ``width`` consecutive raw
-    samples (at least 3) between the minimum and t2. Standard uncertainties ``σ/√Σ(t − t̄)²``
+    samples (at least 3) between the minimum and t2, or over the first ``width`` samples
+    from the minimum when t2 comes sooner (an abrupt end sampled coarsely: a window wider
+    than the snap reads a lower bound of its slope, so ``snap`` stays a safe conclusion).
+    Standard uncertainties ``σ/√Σ(t − t̄)²``
     (of one window's slope: the largest of many is biased upwards by noise, see
     :func:`snap_margin` and :func:`selection_bias_bound`). The third item is the number of
     windows searched.
@@ -170,7 +173,7 @@ def rrsf_slopes(tw, iw, s, k0, k_min, k_stop, level, width, sigma, band):
         return None
     first = _line_slope(tw[lo : hi + 1], iw[lo : hi + 1], sigma)
     w = int(width)
-    seg = iw[k_min:k_stop]
+    seg = iw[k_min:max(k_stop, min(iw.size, k_min + w))]
     if first is None or seg.size < w:
         return None
     j = np.arange(w, dtype=np.float64) - 0.5 * (w - 1)
