@@ -181,3 +181,20 @@ def test_temperatures_grouped_across_points(tmp_path):
     assert temps == sorted(temps, key=lambda t: [398.15, 298.15].index(t))
     assert len(plan_run(seq, ["X"])) == 2
     assert points[0].bus_voltage_V == 400.0  # first-listed temperature (125 degC) first
+
+
+def test_worst_case_point_voltage_window_reaches_the_rating(bench):
+    """At a point marked for the worst-case snappiness step the voltage window reaches 1.1·VRRM
+    (the step judges a snap-off overshoot and a reverse voltage clamped near the rating:
+    dynamic avalanche suspected at 90 % of VRRM, limits/DX-4425.yaml), so neither clips."""
+    seq = load_sequence(ROOT / "sequences" / "dx4425-worstcase.yaml")
+    vrrm = seq.ratings.vrrm
+    marked = TestPoint(index=0, temperature_K=233.15, bus_voltage_V=800.0,
+                       forward_current_A=3.0, didt_A_per_s=1.5e9,
+                       qualification="worst_case_snappiness")
+    plain = TestPoint(index=1, temperature_K=233.15, bus_voltage_V=800.0,
+                      forward_current_A=3.0, didt_A_per_s=1.5e9)
+    assert plan_ranges(marked, seq, bench)["diode_voltage"].low == pytest.approx(-1.1 * vrrm)
+    overshoot = 40e-9 * 1.5e9 * seq.expected.overshoot_margin  # Ls·di/dt × margin
+    assert plan_ranges(plain, seq, bench)["diode_voltage"].low == pytest.approx(
+        -1.1 * (800.0 + overshoot))

@@ -17,6 +17,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+from benchrun.analysis.snappiness import WORST_CASE_SNAPPINESS
 from benchrun.config.bench import BenchConfig, FixtureSpec
 from benchrun.config.limits import LimitsSpec
 from benchrun.config.sequence import SequenceConfig, TestPointSpec
@@ -277,7 +278,10 @@ def plan_ranges(point: TestPoint, sequence: SequenceConfig, bench: BenchConfig,
       the current the diode takes over after the second pulse (IF + VR·t2/L), whichever is
       higher, so the end of the record does not clip;
     - diode voltage: from −1.1·(VR + overshoot) to +max(5 % of VR, 20 V); the overshoot is
-      Ls·di/dt times a margin, or 25 % of VR when no di/dt is known (common practice);
+      Ls·di/dt times a margin, or 25 % of VR when no di/dt is known (common practice); at a
+      point marked ``qualification: worst_case_snappiness`` the window reaches at least
+      1.1·VRRM (the sequence's rating), since that step judges a snap-off overshoot and a
+      reverse voltage clamped near the rating, which a narrower window would clip;
     - switch voltage: from −5 % of VR to 1.1·(VR + overshoot); gate: ±20 V.
 
     The same point gets the same windows for every device and in any test order; a shot that
@@ -293,12 +297,15 @@ def plan_ranges(point: TestPoint, sequence: SequenceConfig, bench: BenchConfig,
         overshoot = bench.fixture.stray_inductance * slope * sequence.expected.overshoot_margin
     else:
         overshoot = 0.25 * VR
+    peak_V = VR + overshoot
+    if point.qualification == WORST_CASE_SNAPPINESS and sequence.ratings is not None:
+        peak_V = max(peak_V, sequence.ratings.vrrm)
     ranges = {
         "diode_current": SignalRange("diode_current", -RANGE_HEADROOM * irrm,
                                      max(1.3 * IF, 1.1 * after)),
-        "diode_voltage": SignalRange("diode_voltage", -1.1 * (VR + overshoot),
+        "diode_voltage": SignalRange("diode_voltage", -1.1 * peak_V,
                                      max(0.05 * VR, 20.0)),
-        "switch_voltage": SignalRange("switch_voltage", -0.05 * VR, 1.1 * (VR + overshoot)),
+        "switch_voltage": SignalRange("switch_voltage", -0.05 * VR, 1.1 * peak_V),
         "gate": SignalRange("gate", -20.0, 20.0),
     }
     return {name: ranges[name] for name in bench.probes if name in ranges}
