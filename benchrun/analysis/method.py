@@ -30,7 +30,7 @@ METRIC_DEFINITIONS: dict[str, str] = {
     "rrsf": ("|di/dt at t0| / steepest di/dt after the minimum; both least-squares slopes: "
              f"at t0 over the samples between ±{T0_SLOPE_BAND:g}·min(IF, Irrm), after the "
              "minimum the largest slope of a line over a sliding window (at least 3 samples) "
-             "up to t2"),
+             "up to t2, or over one window from the minimum when t2 comes sooner"),
     "qrr_C": "−∫ i dt from t0 to t2; t2 where i rises through −{end}·Irrm",
     "qrr_C_trr_end": "−∫ i dt from t0 to the trr end",
     "qrr_C_triangle": "½·Irrm·trr (triangle)",
