@@ -37,9 +37,15 @@ from benchrun.runner.cycle import ShotCycle
 from benchrun.runner.didt_record import DidtRecord
 from benchrun.runner.identity import check_devices
 from benchrun.runner.interrupts import SpaceReserve, StopSignals, bounded
-from benchrun.runner.journal import BACKOFF_INITIAL_S, BACKOFF_MAX_S, DEFAULT_OUTAGE_LIMIT_S
+from benchrun.runner.journal import (
+    BACKOFF_INITIAL_S,
+    BACKOFF_MAX_S,
+    DEFAULT_OUTAGE_LIMIT_S,
+    DatabaseOutage,
+)
 from benchrun.runner.plan import expand_points, plan_run
 from benchrun.runner.progress import RunProgress, close_run_log, open_run_log, start_live
+from benchrun.runner.run_counts import RunCounts
 from benchrun.runner.runfolder import open_run_folder
 from benchrun.runner.safety import (
     CalibrationCheck,
@@ -168,6 +174,23 @@ class RunOutcome:
     didt_control: dict[str, Any] | None = None
     safe_state: SafeStateReport | None = None
     error: str | None = None
+    #: the run's shot counts over every session (``run.json`` ``counts``,
+    #: runner/run_counts.py); the ``shots_*`` and ``trim_shots`` fields are this session's
+    counts: dict[str, Any] | None = None
+    #: called after ``trim_shots``, ``shots_valid`` (set after ``shots_stored`` for each
+    #: stored shot) or ``shots_recovered`` changes (:meth:`RunCounts.watch`)
+    on_count: Callable[[], None] | None = field(default=None, repr=False, compare=False)
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        object.__setattr__(self, name, value)
+        if name in _WATCHED_COUNTS:
+            hook = self.__dict__.get("on_count")
+            if hook is not None:
+                hook()
+
+
+#: RunOutcome fields whose change writes run.json's counts (runner/run_counts.py)
+_WATCHED_COUNTS = frozenset({"trim_shots", "shots_valid", "shots_recovered"})
 
 
 @dataclass(frozen=True)
@@ -349,7 +372,8 @@ def _report_only(run_id: str, run_dir: Path, manifest: dict[str, Any],
     if not options.report:
         raise RunError(f"run {run_id} is complete but its signed report was never written: "
                        "resume with a signing identity, or write it with 'benchrun report'")
-    outcome = RunOutcome(run_id, run_dir, store_url_for(run_dir, manifest), status="complete")
+    outcome = RunOutcome(run_id, run_dir, store_url_for(run_dir, manifest), status="complete",
+                         counts=manifest.get("counts"))
     with ResultsStore(outcome.store_url, create=False) as store:
         outcome.shots_skipped = len(store.tested_keys(run_id))
     outcome.warnings.append("the run was complete; its signed report had not been written "
@@ -366,6 +390,7 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
     station: Station | None = None
     cycle: ShotCycle | None = None
     didt: DidtRecord | None = None
+    counts: RunCounts | None = None
     error: BaseException | None = None
     live = None
     try:
@@ -396,6 +421,10 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
         total = sum(len(step.shots) for step in steps)
         skipped = sum(1 for step in steps for s in step.shots if s.identity in done)
         outcome.shots_skipped = skipped
+        # shot counts: recounted from the store now, written to run.json as they change
+        counts = RunCounts(outcome.run_dir, manifest, outcome)
+        counts.start(store)
+        counts.watch()
         if skipped:
             log.info("resume: %d of %d tests already complete", skipped, total)
         live = start_live(store.url, outcome.run_id, part=prep.sequence.part,
@@ -430,7 +459,10 @@ def _execute(prep: PreparedRun, options: RunOptions, outcome: RunOutcome,
                 outcome.status = "aborted"
                 outcome.error = str(cycle.close_error)
                 error = cycle.close_error
-        _finish(outcome, manifest, store, didt)
+        outcome.on_count = None
+        # recounted from the store unless the store's outage ended the run
+        _finish(outcome, manifest, None if isinstance(error, DatabaseOutage) else store, didt,
+                counts)
         if live is not None:
             live.close(outcome.status)
     if error is not None:
@@ -477,13 +509,14 @@ def _serials(sequence: SequenceConfig, station: Station) -> list[str]:
 
 
 def _finish(outcome: RunOutcome, manifest: dict[str, Any], store: ResultsStore | None,
-            didt: DidtRecord | None = None) -> None:
+            didt: DidtRecord | None = None, counts: RunCounts | None = None) -> None:
     manifest["status"] = outcome.status
     manifest["finished"] = utc_now()
     manifest["safe_state"] = outcome.safe_state.to_dict() if outcome.safe_state else None
     manifest["error"] = outcome.error
-    manifest["counts"] = {"stored": outcome.shots_stored, "valid": outcome.shots_valid,
-                          "recovered": outcome.shots_recovered, "trim": outcome.trim_shots}
+    # the run's counts over every session, recounted from the store (runner/run_counts.py)
+    counts = counts if counts is not None else RunCounts(outcome.run_dir, manifest, outcome)
+    outcome.counts = manifest["counts"] = counts.merged(store)
     manifest["store_url"] = manifest.get("store_url")
     if outcome.didt_control is not None:
         manifest["didt_control"] = outcome.didt_control

@@ -1,0 +1,144 @@
+"""A resumed run's ``run.json`` ``counts`` are the run's totals over every session
+(runner/run_counts.py): stored and valid shots equal what the results store holds for the
+run (the rows the acceptance report is made from), trim shots are the sum over the sessions,
+and each session keeps its own figures under ``sessions``; the counts are on disk as each
+shot is stored (a ``kill -9`` leaves them).
+
+Runs on the simulated bench. The reference is the results store itself (independent of the
+runner's tallies): the counts must equal its rows; no physics value is checked here.
+"""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+from test_runner_support import BENCH, crashing_on_call
+
+from benchrun.config import load_bench, load_sequence
+from benchrun.report.manifest import build_manifest
+from benchrun.runner.execute import RunOptions, run_sequence
+from benchrun.runner.run_counts import merge_counts
+from benchrun.runner.simbench import simulated_bench
+from benchrun.store.results import ResultsStore
+from benchrun.store.rundata import load_run
+
+
+class Crash(BaseException):
+    """Stands for the process dying while a shot is being stored."""
+
+
+def _sequence(tmp_path):
+    path = tmp_path / "seq.yaml"
+    path.write_text(
+        "part: DX-4417\nlot: LT-0117\ndevices: [SN0117-001]\n"
+        "ratings: {vrrm: 1200 V, if_max: 30 A, tj_max: 150 degC}\n"
+        "sweeps:\n"
+        "  - {label: sweep, bus_voltage: 600 V, forward_current: [10 A, 20 A],"
+        " didt: [300 A/us, 600 A/us], temperatures: [25 degC], repeats: 2,"
+        " shot_spacing: 0.05 s}\n"
+        "tolerances: {forward_current: 5 %, didt: 20 %, reverse_voltage: 5 %, "
+        "temperature: 3 K}\n"
+        "thermal: {band: 1 K, dwell: 30 s, soak: 60 s, timeout: 1800 s, poll_interval: 2 s}\n"
+        "timing: {off_time: 3 us, second_pulse: 1 us, sample_interval: 1 ns}\n"
+        "expected: {irrm_fraction: 2.0}\n")
+    return path
+
+
+def _counts(run_dir):
+    return json.loads((run_dir / "run.json").read_text())["counts"]
+
+
+@pytest.mark.slow
+def test_resumed_run_counts_are_the_stores_rows_and_every_sessions_trim_shots(
+        tmp_path, monkeypatch):
+    seq = _sequence(tmp_path)
+    out = tmp_path / "runs"
+    outcomes = []
+    on_disk: list[tuple[int, dict]] = []
+
+    def look(result):  # while the run goes on: are the counts already in run.json?
+        on_disk.append((len(on_disk), _counts(next(out.iterdir()))))
+
+    with simulated_bench(load_bench(BENCH), load_sequence(seq)) as sim:
+        options = dict(out_dir=out, sim_resources=sim.resources, clock=sim.clock,
+                       ratings_lookup=sim.ratings, show_progress=False,
+                       on_finish=outcomes.append)
+        original = ResultsStore.record_pending
+        # the 4th shot dies being stored: it is in the raw record only (the resume analyses
+        # it from there); the shots after it are left to the resume
+        monkeypatch.setattr(ResultsStore, "record_pending",
+                            crashing_on_call(original, 4, Crash))
+        with pytest.raises(Crash):
+            run_sequence(seq, BENCH, RunOptions(on_stored=look, **options))
+        monkeypatch.setattr(ResultsStore, "record_pending", original)
+        run_dir = next(out.iterdir())
+        first = _counts(run_dir)
+        crashed = load_run(run_dir)
+        outcome = run_sequence(seq, BENCH, RunOptions(resume=True, **options))
+    assert outcome.status == "complete"
+    start, resume = outcomes
+    assert start.status == "aborted"
+
+    # after the crash: the store's rows, session 0's figures
+    assert first["stored"] == len(crashed.shots) >= 3
+    assert first["valid"] == sum(s.valid for s in crashed.shots)
+    assert [e["session"] for e in first["sessions"]] == [0]
+    assert first["sessions"][0]["status"] == "aborted"
+    assert first["trim"] == start.trim_shots >= 1
+
+    # each stored shot found the session's count (and its trim shots) already in run.json
+    assert [c["sessions"][-1]["stored"] for _, c in on_disk] == \
+        list(range(1, len(on_disk) + 1))
+    assert all(c["trim"] >= 1 for _, c in on_disk)
+
+    counts = _counts(run_dir)
+    run = load_run(run_dir)  # what the acceptance report is made from
+    assert counts["recounted"] is True
+    assert counts["stored"] == len(run.shots)
+    assert counts["valid"] == sum(1 for s in run.shots if s.valid and not s.pending)
+    # the resume stored fewer than the run holds: a last-session figure would under-report
+    assert resume.shots_stored < counts["stored"]
+    assert resume.shots_recovered >= 1  # the shot that died being stored
+    assert counts["trim"] == start.trim_shots + resume.trim_shots
+    assert counts["recovered"] == start.shots_recovered + resume.shots_recovered
+    assert [e["session"] for e in counts["sessions"]] == [0, 1]
+    assert [e["status"] for e in counts["sessions"]] == ["aborted", "complete"]
+    assert [e["trim"] for e in counts["sessions"]] == [start.trim_shots, resume.trim_shots]
+    assert counts["sessions"][1]["stored"] == resume.shots_stored
+    assert counts["sessions"][1]["skipped"] == resume.shots_skipped > 0
+    assert resume.counts == counts
+    # every shot of the run is in the store and stored once (4 points, 2 repeats)
+    assert len({(s.point.index, s.repeat, s.attempt) for s in run.shots}) == len(run.shots)
+    assert counts["stored"] >= 8
+    # the signed report's manifest of result rows counts the same rows
+    rows = [e for e in build_manifest(run) if e.kind == "rows"]
+    assert [e.size for e in rows] == [counts["stored"]]
+
+
+def test_merge_counts_sums_trims_keeps_sessions_and_takes_the_store_recount():
+    s0 = {"session": 0, "status": "aborted", "stored": 3, "valid": 3, "recovered": 0,
+          "trim": 5, "skipped": 0}
+    after0 = merge_counts(None, s0, (3, 3))
+    assert after0 == {"stored": 3, "valid": 3, "recovered": 0, "trim": 5, "recounted": True,
+                      "sessions": [s0]}
+    s1 = {"session": 1, "status": "complete", "stored": 6, "valid": 5, "recovered": 1,
+          "trim": 4, "skipped": 3}
+    after1 = merge_counts(after0, s1, (10, 9))
+    assert (after1["stored"], after1["valid"], after1["trim"], after1["recovered"]) == \
+        (10, 9, 9, 1)
+    assert after1["sessions"] == [s0, s1]
+    # written again in the same session (a later save): its entry is replaced, not added
+    s1_later = {**s1, "stored": 7, "trim": 6}
+    again = merge_counts(after1, s1_later, None, base=(4, 4))
+    assert again["sessions"] == [s0, s1_later] and again["trim"] == 11
+    assert (again["stored"], again["valid"], again["recounted"]) == (11, 9, False)
+    # no recount at all (the store could not be read): earlier totals + this session's
+    blind = merge_counts(after0, s1, None)
+    assert (blind["stored"], blind["valid"]) == (3 + 1 + 6, 3 + 1 + 5)
+    # counts written before sessions were kept become one incomplete earlier entry
+    legacy = merge_counts({"stored": 3, "valid": 2, "recovered": 0, "trim": 5}, s1, (10, 8))
+    assert legacy["sessions"][0] == {"session": 0, "stored": 3, "valid": 2, "recovered": 0,
+                                     "trim": 5, "incomplete": True}
+    assert legacy["trim"] == 9
+    assert after0["sessions"][0] is not s0  # arguments are not shared or changed
