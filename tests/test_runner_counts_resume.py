@@ -142,3 +142,70 @@ def test_merge_counts_sums_trims_keeps_sessions_and_takes_the_store_recount():
                                      "trim": 5, "incomplete": True}
     assert legacy["trim"] == 9
     assert after0["sessions"][0] is not s0  # arguments are not shared or changed
+
+
+class _Shot:
+    def __init__(self, valid, pending=False):
+        self.valid, self.pending = valid, pending
+
+
+class _Store:
+    def __init__(self, shots):
+        self.rows = shots
+
+    def shots(self, run_id):
+        if self.rows is None:
+            from benchrun.errors import StoreError
+
+            raise StoreError("the results database cannot be reached")
+        return self.rows
+
+
+def test_run_counts_recount_pending_rows_and_fall_back_when_the_store_cannot_be_read(
+        tmp_path):
+    """RunCounts on its own: a pending row is stored, not valid; a store that cannot be
+    read at the end leaves the start's recount plus the session's figures, marked not
+    recounted; every save is in run.json."""
+    from benchrun.runner.execute import RunOutcome
+    from benchrun.runner.run_counts import RunCounts, store_totals
+
+    rows = [_Shot(True), _Shot(False), _Shot(False, pending=True)]
+    assert store_totals(_Store(rows), "R") == (3, 1)
+    earlier = merge_counts(None, {"session": 0, "status": "aborted", "stored": 3, "valid": 1,
+                                  "recovered": 0, "trim": 2, "skipped": 0}, (3, 1))
+    manifest = {"run_id": "R", "resumes": [{"at": "t"}], "counts": earlier}
+    outcome = RunOutcome("R", tmp_path, "sqlite://")
+    outcome.shots_recovered = 1  # the pending row analysed from the raw record: now valid
+    counts = RunCounts(tmp_path, manifest, outcome)
+    counts.start(_Store([_Shot(True), _Shot(False), _Shot(True)]))
+    assert _counts(tmp_path)["stored"] == 3 and _counts(tmp_path)["valid"] == 2
+    counts.watch()
+    outcome.trim_shots += 1  # a trim shot is written at once
+    assert _counts(tmp_path)["trim"] == 3
+    outcome.shots_stored += 1
+    outcome.shots_valid += 1
+    on_disk = _counts(tmp_path)
+    assert (on_disk["stored"], on_disk["valid"]) == (4, 3)
+    assert on_disk["sessions"][1]["status"] == "running"  # a kill -9 now leaves this
+    outcome.status = "aborted"
+    blind = counts.merged(_Store(None))
+    assert (blind["stored"], blind["valid"], blind["recounted"]) == (4, 3, False)
+    assert blind["trim"] == 3 and blind["recovered"] == 1
+
+
+def test_the_run_command_prints_the_run_totals_after_a_resume(tmp_path, capsys):
+    from benchrun.commands.run import print_outcome
+    from benchrun.runner.execute import RunOutcome
+
+    sessions = [{"session": 0, "stored": 3, "valid": 3, "trim": 2},
+                {"session": 1, "stored": 5, "valid": 4, "trim": 1}]
+    outcome = RunOutcome("R", tmp_path, "sqlite://", status="complete", shots_stored=5,
+                         shots_valid=4, trim_shots=1,
+                         counts={"stored": 9, "valid": 8, "trim": 3, "sessions": sessions})
+    print_outcome(outcome)
+    text = capsys.readouterr().out
+    assert "5 stored this session" in text
+    assert "run totals:  9 shots stored (8 valid) over 2 sessions, 3 trim shots" in text
+    outcome.counts = {"stored": 5, "valid": 4, "trim": 1, "sessions": sessions[1:]}
+    print_outcome(outcome)
+    assert "run totals" not in capsys.readouterr().out

@@ -85,6 +85,10 @@ def print_outcome(outcome: RunOutcome) -> None:
     print(f"  shots:       {outcome.shots_stored} stored this session "
           f"({outcome.shots_valid} valid), {outcome.shots_recovered} recovered from the raw "
           f"record, {outcome.shots_skipped} tests already done, {outcome.trim_shots} trim shots")
+    counts = outcome.counts  # the run's totals, after a resume (runner/run_counts.py)
+    if counts and len(counts.get("sessions", ())) > 1:
+        print(f"  run totals:  {counts['stored']} shots stored ({counts['valid']} valid) over "
+              f"{len(counts['sessions'])} sessions, {counts['trim']} trim shots")
     for warning in outcome.warnings:
         print(f"  warning:     {warning}")
     if outcome.error:
