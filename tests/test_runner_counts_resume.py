@@ -94,7 +94,7 @@ def test_resumed_run_counts_are_the_stores_rows_and_every_sessions_trim_shots(
 
     counts = _counts(run_dir)
     run = load_run(run_dir)  # what the acceptance report is made from
-    assert counts["recounted"] is True
+    assert counts["recounted"] is True and counts["pending"] == len(run.pending) == 0
     assert counts["stored"] == len(run.shots)
     assert counts["valid"] == sum(1 for s in run.shots if s.valid and not s.pending)
     # the resume stored fewer than the run holds: a last-session figure would under-report
@@ -119,25 +119,27 @@ def test_resumed_run_counts_are_the_stores_rows_and_every_sessions_trim_shots(
 def test_merge_counts_sums_trims_keeps_sessions_and_takes_the_store_recount():
     s0 = {"session": 0, "status": "aborted", "stored": 3, "valid": 3, "recovered": 0,
           "trim": 5, "skipped": 0}
-    after0 = merge_counts(None, s0, (3, 3))
-    assert after0 == {"stored": 3, "valid": 3, "recovered": 0, "trim": 5, "recounted": True,
-                      "sessions": [s0]}
+    after0 = merge_counts(None, s0, (3, 3, 0))
+    assert after0 == {"stored": 3, "valid": 3, "pending": 0, "recovered": 0, "trim": 5,
+                      "recounted": True, "sessions": [s0]}
     s1 = {"session": 1, "status": "complete", "stored": 6, "valid": 5, "recovered": 1,
           "trim": 4, "skipped": 3}
-    after1 = merge_counts(after0, s1, (10, 9))
+    after1 = merge_counts(after0, s1, (10, 9, 0))
     assert (after1["stored"], after1["valid"], after1["trim"], after1["recovered"]) == \
         (10, 9, 9, 1)
     assert after1["sessions"] == [s0, s1]
     # written again in the same session (a later save): its entry is replaced, not added
     s1_later = {**s1, "stored": 7, "trim": 6}
-    again = merge_counts(after1, s1_later, None, base=(4, 4))
+    again = merge_counts(after1, s1_later, None, base=(4, 4, 0))
     assert again["sessions"] == [s0, s1_later] and again["trim"] == 11
     assert (again["stored"], again["valid"], again["recounted"]) == (11, 9, False)
+    assert "pending" not in again
     # no recount at all (the store could not be read): earlier totals + this session's
     blind = merge_counts(after0, s1, None)
     assert (blind["stored"], blind["valid"]) == (3 + 1 + 6, 3 + 1 + 5)
     # counts written before sessions were kept become one incomplete earlier entry
-    legacy = merge_counts({"stored": 3, "valid": 2, "recovered": 0, "trim": 5}, s1, (10, 8))
+    legacy = merge_counts({"stored": 3, "valid": 2, "recovered": 0, "trim": 5}, s1,
+                          (10, 8, 1))
     assert legacy["sessions"][0] == {"session": 0, "stored": 3, "valid": 2, "recovered": 0,
                                      "trim": 5, "incomplete": True}
     assert legacy["trim"] == 9
@@ -170,15 +172,16 @@ def test_run_counts_recount_pending_rows_and_fall_back_when_the_store_cannot_be_
     from benchrun.runner.run_counts import RunCounts, store_totals
 
     rows = [_Shot(True), _Shot(False), _Shot(False, pending=True)]
-    assert store_totals(_Store(rows), "R") == (3, 1)
+    assert store_totals(_Store(rows), "R") == (3, 1, 1)
     earlier = merge_counts(None, {"session": 0, "status": "aborted", "stored": 3, "valid": 1,
-                                  "recovered": 0, "trim": 2, "skipped": 0}, (3, 1))
+                                  "recovered": 0, "trim": 2, "skipped": 0}, (3, 1, 1))
     manifest = {"run_id": "R", "resumes": [{"at": "t"}], "counts": earlier}
     outcome = RunOutcome("R", tmp_path, "sqlite://")
     outcome.shots_recovered = 1  # the pending row analysed from the raw record: now valid
     counts = RunCounts(tmp_path, manifest, outcome)
     counts.start(_Store([_Shot(True), _Shot(False), _Shot(True)]))
     assert _counts(tmp_path)["stored"] == 3 and _counts(tmp_path)["valid"] == 2
+    assert _counts(tmp_path)["pending"] == 0
     counts.watch()
     outcome.trim_shots += 1  # a trim shot is written at once
     assert _counts(tmp_path)["trim"] == 3

@@ -14,6 +14,10 @@ only. The run's ``counts`` hold the run's totals, each by what it means:
     again). Between the two recounts they are the start's recount plus the session's own
     figures. ``recounted`` is false when the store could not be read at the end (an outage
     of the results database): the totals are then the earlier sessions' plus this one's.
+``pending``
+    (recounted only) of the ``stored`` rows, those recorded before their analysis finished
+    (the next ``--resume`` analyses them from the raw record). The acceptance report's shots
+    (:func:`~benchrun.store.rundata.load_run` ``shots``) are ``stored`` − ``pending``.
 ``recovered``, ``trim``
     summed over the sessions: the shots recovered from the raw record, and the trim shots
     fired (first-pulse and di/dt trims). Trim shots are stored nowhere but here, so each
@@ -52,11 +56,13 @@ SESSION_FIGURES = {"stored": "shots_stored", "valid": "shots_valid",
 SUMMED = ("recovered", "trim")
 
 
-def store_totals(store: Any, run_id: str) -> tuple[int, int]:
-    """``(stored, valid)``: the run's shot rows in the results store, and those analysed
-    and valid (a pending row is stored, not valid)."""
+def store_totals(store: Any, run_id: str) -> tuple[int, int, int]:
+    """``(stored, valid, pending)``: the run's shot rows in the results store, those
+    analysed and valid, and those recorded before their analysis finished (stored, not
+    valid)."""
     shots = store.shots(run_id)
-    return len(shots), sum(1 for s in shots if s.valid and not s.pending)
+    return (len(shots), sum(1 for s in shots if s.valid and not s.pending),
+            sum(1 for s in shots if s.pending))
 
 
 def earlier_sessions(counts: dict[str, Any] | None, session: int) -> list[dict[str, Any]]:
@@ -72,17 +78,19 @@ def earlier_sessions(counts: dict[str, Any] | None, session: int) -> list[dict[s
 
 
 def merge_counts(earlier: dict[str, Any] | None, entry: dict[str, Any],
-                 totals: tuple[int, int] | None, base: tuple[int, int] | None = None
-                 ) -> dict[str, Any]:
+                 totals: tuple[int, int, int] | None,
+                 base: tuple[int, int, int] | None = None) -> dict[str, Any]:
     """The run's ``counts`` (module docstring) from ``earlier`` (``run.json`` ``counts``
-    when the session started), the session's ``entry`` and ``totals`` (``(stored, valid)``
-    recounted from the store now; None: the start's recount ``base`` plus the session's
-    figures, or without ``base`` the earlier totals plus them). No argument is changed."""
+    when the session started), the session's ``entry`` and ``totals`` (``(stored, valid,
+    pending)`` recounted from the store now; None: the start's recount ``base`` plus the
+    session's figures, or without ``base`` the earlier totals plus them). No argument is
+    changed."""
     session = int(entry["session"])
     sessions = [*earlier_sessions(earlier, session), copy.deepcopy(entry)]
     merged: dict[str, Any] = {k: sum(int(e.get(k, 0)) for e in sessions) for k in SUMMED}
     if totals is not None:
         merged["stored"], merged["valid"] = int(totals[0]), int(totals[1])
+        merged["pending"] = int(totals[2])
         merged["recounted"] = True
     else:
         if base is None:
@@ -109,8 +117,8 @@ class RunCounts:
         self.outcome = outcome
         self.session = len(manifest.get("resumes") or [])
         self.earlier = copy.deepcopy(manifest.get("counts"))
-        #: (stored, valid) recounted from the store when the session started
-        self.base: tuple[int, int] | None = None
+        #: (stored, valid, pending) recounted from the store when the session started
+        self.base: tuple[int, int, int] | None = None
         self.save_error: str | None = None
         self._lock = threading.Lock()
 
@@ -119,10 +127,11 @@ class RunCounts:
         figures = {k: int(getattr(self.outcome, name)) for k, name in SESSION_FIGURES.items()}
         return {"session": self.session, "status": self.outcome.status, **figures}
 
-    def merged(self, store: Any = None) -> dict[str, Any]:
-        """The run's ``counts`` now: recounted from ``store`` when given and readable."""
-        totals = None
-        if store is not None:
+    def merged(self, store: Any = None,
+               totals: tuple[int, int, int] | None = None) -> dict[str, Any]:
+        """The run's ``counts`` now: recounted from ``store`` when given and readable (or
+        with the ``totals`` just recounted)."""
+        if store is not None and totals is None:
             try:
                 totals = store_totals(store, self.outcome.run_id)
             except (BenchrunError, OSError) as exc:
@@ -139,18 +148,18 @@ class RunCounts:
         except (BenchrunError, OSError) as exc:
             log.warning("the results store could not be read to count the run's shots: %s",
                         exc)
-        self.save()
+        self.save(totals=self.base)
 
     def watch(self) -> None:
         """Write the counts each time the session stores a shot or fires a trim shot."""
         self.outcome.on_count = self.save
 
-    def save(self, store: Any = None) -> None:
-        """Write the merged counts to ``run.json`` now (recounted from ``store`` when
-        given). A failure (a full disk) is logged once and left to the end of the session,
-        which writes them again."""
+    def save(self, store: Any = None, totals: tuple[int, int, int] | None = None) -> None:
+        """Write the merged counts to ``run.json`` now (arguments: :meth:`merged`). A
+        failure (a full disk) is logged once and left to the end of the session, which
+        writes them again."""
         with self._lock:
-            self.manifest["counts"] = self.merged(store)
+            self.manifest["counts"] = self.merged(store, totals)
             try:
                 write_manifest(self.run_dir, self.manifest)
             except (BenchrunError, OSError) as exc:
