@@ -212,3 +212,49 @@ def test_the_run_command_prints_the_run_totals_after_a_resume(tmp_path, capsys):
     outcome.counts = {"stored": 5, "valid": 4, "trim": 1, "sessions": sessions[1:]}
     print_outcome(outcome)
     assert "run totals" not in capsys.readouterr().out
+
+
+@pytest.mark.slow
+def test_kill_9_leaves_the_sessions_counts_and_the_resume_adds_to_them(tmp_path):
+    """A real ``kill -9`` (a subprocess held after its 5th analysed row, as in
+    test_runner_resume.py): run.json keeps the killed session's counts (status ``running``,
+    its trim shots); the resume's counts equal the store's rows and add its trim shots."""
+    import os
+    import signal
+    import subprocess
+
+    from test_runner_resume import DEVICES, cli, start_and_wait
+    from test_runner_support import write_sequence
+
+    seq = write_sequence(tmp_path, devices=DEVICES, temperatures="[25 degC]", repeats=2)
+    out = tmp_path / "runs"
+    proc = start_and_wait(seq, out, shots=3)
+    assert proc.poll() is None, "the run ended before it could be killed"
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.communicate(timeout=30)
+    assert proc.returncode == -signal.SIGKILL
+    run_dir = next(out.iterdir())
+    left = _counts(run_dir)
+    killed = left["sessions"]
+    assert [(e["session"], e["status"]) for e in killed] == [(0, "running")]
+    # every device was trimmed before its first shot (first pulse): at least one trim shot
+    # per device that stored a shot
+    assert killed[0]["trim"] >= 1 and killed[0]["stored"] >= 1
+    assert left["trim"] == killed[0]["trim"]
+    stored_then = load_run(run_dir)
+    assert left["stored"] <= len(stored_then.shots) + len(stored_then.pending)
+
+    done = subprocess.run(cli("run", str(seq), "--bench", str(BENCH), "--out", str(out),
+                              "--resume", "--no-progress"),
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    counts = _counts(run_dir)
+    run = load_run(run_dir)
+    assert counts["stored"] == len(run.shots) >= 8
+    assert counts["valid"] == sum(s.valid for s in run.shots) >= 8
+    assert counts["sessions"][0] == killed[0]  # the killed session's figures are kept
+    assert counts["sessions"][1]["status"] == "complete"
+    assert counts["trim"] == killed[0]["trim"] + counts["sessions"][1]["trim"]
+    assert counts["sessions"][1]["stored"] < counts["stored"]
+    assert (f"run totals:  {counts['stored']} shots stored ({counts['valid']} valid) over 2 "
+            f"sessions, {counts['trim']} trim shots") in done.stdout
