@@ -177,16 +177,17 @@ class RunOutcome:
     #: the run's shot counts over every session (``run.json`` ``counts``,
     #: runner/run_counts.py); the ``shots_*`` and ``trim_shots`` fields are this session's
     counts: dict[str, Any] | None = None
-    #: called after ``trim_shots``, ``shots_valid`` (set after ``shots_stored`` for each
-    #: stored shot) or ``shots_recovered`` changes (:meth:`RunCounts.watch`)
-    on_count: Callable[[], None] | None = field(default=None, repr=False, compare=False)
+    #: called with the field's name after ``trim_shots``, ``shots_valid`` (set after
+    #: ``shots_stored`` for each stored shot) or ``shots_recovered`` changes
+    #: (:meth:`RunCounts.watch`)
+    on_count: Callable[[str], None] | None = field(default=None, repr=False, compare=False)
 
     def __setattr__(self, name: str, value: Any) -> None:
         object.__setattr__(self, name, value)
         if name in _WATCHED_COUNTS:
             hook = self.__dict__.get("on_count")
             if hook is not None:
-                hook()
+                hook(name)
 
 
 #: RunOutcome fields whose change writes run.json's counts (runner/run_counts.py)
