@@ -177,9 +177,8 @@ class RunOutcome:
     #: the run's shot counts over every session (``run.json`` ``counts``,
     #: runner/run_counts.py); the ``shots_*`` and ``trim_shots`` fields are this session's
     counts: dict[str, Any] | None = None
-    #: called with the field's name after ``trim_shots``, ``shots_valid`` (set after
-    #: ``shots_stored`` for each stored shot) or ``shots_recovered`` changes
-    #: (:meth:`RunCounts.watch`)
+    #: called with the field's name after ``trim_shots`` or ``shots_valid`` (set after
+    #: ``shots_stored`` for each stored shot) changes (:meth:`RunCounts.watch`)
     on_count: Callable[[str], None] | None = field(default=None, repr=False, compare=False)
 
     def __setattr__(self, name: str, value: Any) -> None:
@@ -191,7 +190,7 @@ class RunOutcome:
 
 
 #: RunOutcome fields whose change writes run.json's counts (runner/run_counts.py)
-_WATCHED_COUNTS = frozenset({"trim_shots", "shots_valid", "shots_recovered"})
+_WATCHED_COUNTS = frozenset({"trim_shots", "shots_valid"})
 
 
 @dataclass(frozen=True)

@@ -29,15 +29,16 @@ only. The run's ``counts`` hold the run's totals, each by what it means:
     (shots fired and stored by it), ``recovered``, ``trim`` and ``skipped`` (tests already
     complete when it started).
 
-The counts are written to ``run.json`` when the session starts, after each trim shot it
-fires and each shot it recovers from the raw record (:meth:`RunCounts.watch`), after a shot
-it stores when the last write is :data:`STORED_WRITE_INTERVAL_S` old or older, and at its
-end. So a process that dies without recording its end (``kill -9``, a power cut) leaves
+The counts are written to ``run.json`` when the session starts (once the shots a crash
+left unfinished were recovered), after each trim shot it fires (:meth:`RunCounts.watch`),
+after a shot it stores when the last write is :data:`STORED_WRITE_INTERVAL_S` old or older,
+and at its end. So a process that dies without recording its end (``kill -9``, a power cut) leaves
 every trim shot it fired for the resume to add (they are stored nowhere else), and its own
 ``stored`` and ``valid`` at most that interval old (the run's totals lose nothing: the
-resume recounts them from the store). Each write is an atomic, synced ``run.json`` (~2 ms
-measured, benchmarks/shot_overhead.py); writing it after every shot stored doubled the
-runner's overhead per shot, hence the interval for stored shots.
+resume recounts them from the store). Each write is an atomic, synced ``run.json``; written
+after every stored shot it added ~2.5 ms to the runner's overhead per shot on the critical
+path (benchmarks/shot_overhead.py, whose goal is < 10 % of a ~35 ms acquisition), hence the
+interval for stored shots.
 """
 
 from __future__ import annotations
@@ -64,7 +65,7 @@ SUMMED = ("recovered", "trim")
 #: a shot stored writes the counts when the last write is this old or older, s
 STORED_WRITE_INTERVAL_S = 1.0
 #: ``RunOutcome`` fields whose change writes the counts at once
-WRITTEN_AT_ONCE = frozenset({"trim_shots", "shots_recovered"})
+WRITTEN_AT_ONCE = frozenset({"trim_shots"})
 
 
 def store_totals(store: Any, run_id: str) -> tuple[int, int, int]:
@@ -172,8 +173,8 @@ class RunCounts:
         self.outcome.on_count = self.changed
 
     def changed(self, name: str) -> None:
-        """``RunOutcome.name`` changed: write the counts now (a trim shot, a recovered shot)
-        or, for a stored shot, when the last write is the interval old."""
+        """``RunOutcome.name`` changed: write the counts now (a trim shot) or, for a stored
+        shot, when the last write is the interval old."""
         if name in WRITTEN_AT_ONCE or \
                 self._clock() - self._written >= self.stored_interval_s:
             self.save()
