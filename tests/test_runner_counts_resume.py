@@ -188,18 +188,18 @@ def test_run_counts_recount_pending_rows_and_fall_back_when_the_store_cannot_be_
     assert _counts(tmp_path)["stored"] == 3 and _counts(tmp_path)["valid"] == 2
     assert _counts(tmp_path)["pending"] == 0
     counts.watch()
-    outcome.trim_shots += 1  # a trim shot is written at once
+    outcome.tally("trim_shots")  # a trim shot is written at once
     assert _counts(tmp_path)["trim"] == 3
-    outcome.shots_stored += 1
-    outcome.shots_valid += 1  # within a second of the last write: not written yet
+    outcome.tally("shots_stored")
+    outcome.tally("shots_valid")  # within a second of the last write: not written yet
     assert (_counts(tmp_path)["stored"], _counts(tmp_path)["valid"]) == (3, 2)
     now[0] = 1.0
-    outcome.shots_stored += 1
-    outcome.shots_valid += 0  # an invalid shot, a second after the last write: written
+    outcome.tally("shots_stored")
+    outcome.tally("shots_valid", 0)  # an invalid shot, a second after the last write: written
     on_disk = _counts(tmp_path)
     assert (on_disk["stored"], on_disk["valid"]) == (5, 3)
     now[0] = 1.5
-    outcome.trim_shots += 1  # a trim shot is written at once, whatever the interval
+    outcome.tally("trim_shots")  # a trim shot is written at once, whatever the interval
     assert _counts(tmp_path)["trim"] == 4
     assert on_disk["sessions"][1]["status"] == "running"  # a kill -9 now leaves this
     outcome.status = "aborted"

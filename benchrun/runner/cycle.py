@@ -149,10 +149,10 @@ class ShotCycle(GateDriveShots):
         flight, self._flight = self._flight, None
         if flight is None or flight.ticket.stored.exception() is not None:
             return
-        self.outcome.shots_stored += 1
+        self.outcome.tally("shots_stored")
         analysed = flight.ticket.analysed
         if analysed.exception() is None:
-            self.outcome.shots_valid += int(analysed.result().valid)
+            self.outcome.tally("shots_valid", int(analysed.result().valid))
 
     # --- resume ----------------------------------------------------------------------------
 
@@ -282,8 +282,8 @@ class ShotCycle(GateDriveShots):
         invalid and attempts remain, else count its test as done."""
         planned, point = flight.planned, flight.planned.point
         result = flight.ticket.result()
-        self.outcome.shots_stored += 1
-        self.outcome.shots_valid += int(result.valid)
+        self.outcome.tally("shots_stored")
+        self.outcome.tally("shots_valid", int(result.valid))
         if result.valid and result.conditions.get("if_A"):
             deviation = result.conditions["if_A"] / point.forward_current_A - 1.0
             if abs(deviation) > 0.5 * self.sequence.tolerances.forward_current:

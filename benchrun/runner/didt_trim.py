@@ -261,7 +261,7 @@ class GateDriveShots:
                                      on_fired=lambda: self._fired(point))
 
         capture = self._with_retry(shoot, what)
-        self.outcome.trim_shots += 1
+        self.outcome.tally("trim_shots")
         trace = capture.traces["diode_current"]
         amps = trace.volts() * self.probes["diode_current"].scale
         t = trace.t_start + trace.dt * np.arange(amps.size)

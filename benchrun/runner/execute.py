@@ -177,20 +177,16 @@ class RunOutcome:
     #: the run's shot counts over every session (``run.json`` ``counts``,
     #: runner/run_counts.py); the ``shots_*`` and ``trim_shots`` fields are this session's
     counts: dict[str, Any] | None = None
-    #: called with the field's name after ``trim_shots`` or ``shots_valid`` (set after
-    #: ``shots_stored`` for each stored shot) changes (:meth:`RunCounts.watch`)
+    #: called with the field's name after :meth:`tally` changes a count
+    #: (:meth:`RunCounts.watch`)
     on_count: Callable[[str], None] | None = field(default=None, repr=False, compare=False)
 
-    def __setattr__(self, name: str, value: Any) -> None:
-        object.__setattr__(self, name, value)
-        if name in _WATCHED_COUNTS:
-            hook = self.__dict__.get("on_count")
-            if hook is not None:
-                hook(name)
-
-
-#: RunOutcome fields whose change writes run.json's counts (runner/run_counts.py)
-_WATCHED_COUNTS = frozenset({"trim_shots", "shots_valid"})
+    def tally(self, name: str, n: int = 1) -> None:
+        """Add ``n`` to the count field ``name`` (``shots_stored``, ``shots_valid``,
+        ``trim_shots``) and tell ``on_count`` (run.json's counts follow)."""
+        setattr(self, name, getattr(self, name) + n)
+        if self.on_count is not None:
+            self.on_count(name)
 
 
 @dataclass(frozen=True)
