@@ -61,11 +61,14 @@ def run(args: argparse.Namespace) -> int:
                 state = "checked  " if item["found"] else "NOT FOUND"
                 print(f"    {state} {item['line']}")
         for check in result.checks:
-            print(f"  {'yes' if check.ok else 'NO '}  {check.name}: {check.reason}")
+            mark = "n/a" if not check.applicable else "yes" if check.ok else "NO "
+            print(f"  {mark}  {check.name}: {check.reason}")
             if args.details or not check.ok:
                 for line in check.details[: None if args.details else 10]:
                     print(f"         {line}")
         for fingerprint in result.facts.get("signer_certificate_sha256", []):
             print(f"  signer certificate SHA-256: {fingerprint}")
-        print("VERIFIED: every check holds." if result.ok else "NOT VERIFIED.")
+        every = ("every applicable check" if any(not c.applicable for c in result.checks)
+                 else "every check")
+        print(f"VERIFIED: {every} holds." if result.ok else "NOT VERIFIED.")
     return 0 if result.ok else 1

@@ -159,6 +159,11 @@ def verify_report(pdf: str | Path, cert: str | Path | None = None,
         attachment = None
     if isinstance(attachment, dict) and attachment.get("kind") == "lot":
         return _verify_lot(pdf_path, raw, attachment, intact, trust, facts, store, runs)
+    if isinstance(attachment, dict) and attachment.get("kind") == "characterization":
+        from benchrun.characterize.verify import verify_characterization
+
+        return verify_characterization(pdf_path, attachment, intact, trust, facts,
+                                       Path(data) if data is not None else None, runs)
     run_dir = find_run_dir(pdf_path, Path(data) if data is not None else None)
     if run_dir is None and runs and isinstance(attachment, dict):
         from benchrun.store.lotdata import search_run_folder
