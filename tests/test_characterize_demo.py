@@ -202,7 +202,8 @@ def _char_run(demo, tmp_path=None):
 
 
 @pytest.mark.slow
-def test_verify_passes_every_applicable_check_of_a_fresh_characterisation_report(demo, capsys):
+def test_verify_passes_every_applicable_check_of_a_fresh_characterisation_report(
+        demo, capsys, tmp_path):
     from benchrun.cli import main
     from benchrun.report.sign import read_attachment
     from benchrun.report.verify import (
@@ -241,6 +242,14 @@ def test_verify_passes_every_applicable_check_of_a_fresh_characterisation_report
         assert sum(x.split("  ", 1)[-1].startswith(check.name + ":") for x in lines) == 1
     assert any(x.startswith("n/a  reports-table row") for x in lines)
     assert "VERIFIED: every applicable check holds." in out
+    # a copy of the report away from its run folder, with --data RUN_DIR
+    import shutil
+
+    away = tmp_path / "characterization.pdf"
+    shutil.copy(pdf, away)
+    assert verify_report(away, cert=cert, data=run_dir).ok
+    assert main(["verify", str(away), "--cert", str(cert), "--data", str(run_dir)]) == 0
+    assert not verify_report(away, cert=cert).check(CHECK_MANIFEST).ok  # no run data
 
 
 @pytest.mark.slow

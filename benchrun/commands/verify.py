@@ -13,6 +13,10 @@ up in the results store the report names (or --store URL), and its run folder is
 store records, else one found under a folder given with --runs DIR (repeatable; the folder
 itself, DIR/<run id>, or up to three levels down). The output lists which runs were checked
 and which could not be found; a run not found is a failed check.
+
+A characterisation report (``benchrun demo --characterize``) is checked for signature, trust,
+manifest hashes, re-analysis of every shot it rests on and its qualification verdicts graded
+again; the reports-table check does not apply to it and is printed as n/a with the reason.
 """
 
 from __future__ import annotations

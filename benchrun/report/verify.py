@@ -7,6 +7,9 @@ not even when the report file itself cannot be read.
 Signature checks follow DESIGN §7: pyhanko's ``intact`` and coverage decide integrity, its
 ``bottom_line`` (with the given certificate as the only trust root) decides trust; ``valid``
 alone is never relied upon. Validation uses pyhanko's async API inside one event loop.
+
+A lot report is checked by :mod:`benchrun.report.verify_lot`, a characterisation report by
+:mod:`benchrun.characterize.verify`.
 """
 
 from __future__ import annotations
