@@ -259,9 +259,16 @@ def test_verify_characterisation_report_catches_a_flipped_byte_in_the_raw_record
     from benchrun.report.verify import CHECK_MANIFEST, CHECK_REANALYSIS, verify_report
 
     run_dir, cert = _char_run(demo, tmp_path)
+    import h5py
+
     raw = run_dir / "raw.h5"
+    with h5py.File(raw, "r") as h5:  # one shot's stored samples, found by their bytes
+        key = sorted(h5["shots"])[len(h5["shots"]) // 2]
+        samples = h5["shots"][key]["diode_current"][()].tobytes()[:4096]
     data = bytearray(raw.read_bytes())
-    data[len(data) // 2] ^= 0x10
+    at = data.find(samples)
+    assert at > 0 and data.count(samples) == 1
+    data[at + 1000] ^= 0x10
     raw.write_bytes(bytes(data))
     result = verify_report(run_dir / "characterization.pdf", cert=cert)
     manifest = result.check(CHECK_MANIFEST)
@@ -269,6 +276,7 @@ def test_verify_characterisation_report_catches_a_flipped_byte_in_the_raw_record
     assert "\n" not in manifest.reason and "limits.yaml" not in manifest.reason
     reanalysis = result.check(CHECK_REANALYSIS)
     assert not reanalysis.ok and "\n" not in reanalysis.reason, reanalysis.reason
+    assert key in reanalysis.reason  # the shot whose samples changed is named
     assert not result.ok
     assert main(["verify", str(run_dir / "characterization.pdf"), "--cert", str(cert)]) == 1
     captured = capsys.readouterr()
