@@ -184,3 +184,168 @@ def test_characterize_report_shows_the_qualification_verdicts(demo):
         assert at_nominal[serial] == "conforming"
     nominal_rows = [s for s in nominal if "snap" in s.flags]
     assert nominal_rows == []
+
+
+# --- benchrun verify on the characterisation report -------------------------------------
+# Outside references as in tests/test_verify.py: SHA-256 (FIPS 180-4, hashlib) for the
+# manifest, and ``sqlite3`` (Python standard library) editing a row behind the store's back.
+
+def _char_run(demo, tmp_path=None):
+    """The demo's run folder, or a private copy of it to tamper with; and the certificate."""
+    import shutil
+
+    out, _ = demo
+    run_dir = sorted((out / "runs").iterdir())[0]
+    if tmp_path is not None:
+        run_dir = shutil.copytree(run_dir, tmp_path / run_dir.name)
+    return run_dir, next((out / "keys").glob("*.cert.pem"))
+
+
+@pytest.mark.slow
+def test_verify_passes_every_applicable_check_of_a_fresh_characterisation_report(
+        demo, capsys, tmp_path):
+    from benchrun.cli import main
+    from benchrun.report.sign import read_attachment
+    from benchrun.report.verify import (
+        CHECK_MANIFEST,
+        CHECK_REANALYSIS,
+        CHECK_REGISTRATION,
+        CHECK_SIGNATURE,
+        CHECK_TRUST,
+        verify_report,
+    )
+    from benchrun.store.rundata import load_run
+
+    run_dir, cert = _char_run(demo)
+    pdf = run_dir / "characterization.pdf"
+    result = verify_report(pdf, cert=cert)
+    assert result.ok, [c.to_dict() for c in result.checks]
+    assert [c.name for c in result.checks] == [CHECK_SIGNATURE, CHECK_TRUST, CHECK_MANIFEST,
+                                               CHECK_REANALYSIS, CHECK_REGISTRATION]
+    assert [c.applicable for c in result.checks] == [True, True, True, True, False]
+    assert result.check(CHECK_REGISTRATION).reason.startswith("not applicable: ")
+    # every run file the acceptance report hashes, the result rows and the runs-table row
+    data = read_attachment(pdf.read_bytes())
+    names = {m["name"] for m in data["manifest"]}
+    assert {"raw.h5", "sequence.yaml", "bench.yaml", "limits.yaml", "run.json"} <= names
+    assert {m["kind"] for m in data["manifest"]} == {"file", "rows", "run-row"}
+    run = load_run(run_dir)
+    assert f"all {len(data['manifest'])} hashes match" in result.check(CHECK_MANIFEST).reason
+    # every shot the report rests on is listed and re-analysed
+    assert len(data["shots"]) == len(run.shots)
+    assert f"{len(run.shots)} shots re-analysed" in result.check(CHECK_REANALYSIS).reason
+    # the CLI: one line per check, exit 0
+    assert main(["verify", str(pdf), "--cert", str(cert)]) == 0
+    out = capsys.readouterr().out
+    lines = [x.strip() for x in out.splitlines()]
+    for check in result.checks:
+        assert sum(x.split("  ", 1)[-1].startswith(check.name + ":") for x in lines) == 1
+    assert any(x.startswith("n/a  reports-table row") for x in lines)
+    assert "VERIFIED: every applicable check holds." in out
+    # a copy of the report away from its run folder, with --data RUN_DIR
+    import shutil
+
+    away = tmp_path / "characterization.pdf"
+    shutil.copy(pdf, away)
+    assert verify_report(away, cert=cert, data=run_dir).ok
+    assert main(["verify", str(away), "--cert", str(cert), "--data", str(run_dir)]) == 0
+    assert not verify_report(away, cert=cert).check(CHECK_MANIFEST).ok  # no run data
+
+
+@pytest.mark.slow
+def test_verify_characterisation_report_catches_a_flipped_byte_in_the_raw_record(
+        demo, tmp_path, capsys):
+    from benchrun.cli import main
+    from benchrun.report.verify import CHECK_MANIFEST, CHECK_REANALYSIS, verify_report
+
+    run_dir, cert = _char_run(demo, tmp_path)
+    import h5py
+
+    raw = run_dir / "raw.h5"
+    with h5py.File(raw, "r") as h5:  # one shot's stored samples, found by their bytes
+        key = sorted(h5["shots"])[len(h5["shots"]) // 2]
+        samples = h5["shots"][key]["diode_current"][()].tobytes()[:4096]
+    data = bytearray(raw.read_bytes())
+    at = data.find(samples)
+    assert at > 0 and data.count(samples) == 1
+    data[at + 1000] ^= 0x10
+    raw.write_bytes(bytes(data))
+    result = verify_report(run_dir / "characterization.pdf", cert=cert)
+    manifest = result.check(CHECK_MANIFEST)
+    assert not manifest.ok and manifest.reason.startswith("raw.h5: SHA-256 differs")
+    assert "\n" not in manifest.reason and "limits.yaml" not in manifest.reason
+    reanalysis = result.check(CHECK_REANALYSIS)
+    assert not reanalysis.ok and "\n" not in reanalysis.reason, reanalysis.reason
+    assert key in reanalysis.reason  # the shot whose samples changed is named
+    assert not result.ok
+    assert main(["verify", str(run_dir / "characterization.pdf"), "--cert", str(cert)]) == 1
+    captured = capsys.readouterr()
+    assert "NO   manifest hashes match: raw.h5: SHA-256 differs" in captured.out
+    assert "Traceback" not in captured.out + captured.err
+
+
+@pytest.mark.slow
+def test_verify_characterisation_report_catches_a_changed_database_row(demo, tmp_path):
+    import sqlite3
+
+    from benchrun.report.verify import CHECK_MANIFEST, CHECK_REANALYSIS, verify_report
+
+    run_dir, cert = _char_run(demo, tmp_path)
+    with sqlite3.connect(run_dir / "results.db") as db:
+        (rowid, metrics), = db.execute(
+            "SELECT id, metrics FROM shots ORDER BY id LIMIT 1").fetchall()
+        values = json.loads(metrics)
+        values["qrr_C"] = values["qrr_C"] * 0.5
+        db.execute("UPDATE shots SET metrics = ? WHERE id = ?", (json.dumps(values), rowid))
+    result = verify_report(run_dir / "characterization.pdf", cert=cert)
+    manifest = result.check(CHECK_MANIFEST)
+    assert not manifest.ok and "database rows changed" in manifest.reason
+    assert "raw.h5" not in manifest.reason
+    # the raw waveforms still reproduce the signed report: the row, not the capture, changed
+    assert result.check(CHECK_REANALYSIS).ok
+    assert not result.ok
+
+
+@pytest.mark.slow
+def test_verify_characterisation_report_catches_a_re_signed_qualification_verdict(
+        demo, tmp_path, monkeypatch):
+    """An insider who turns a device's worst-case step and its verdict conforming and signs
+    again passes the signature and manifest checks; regrading the re-analysed shots catches
+    it."""
+    from benchrun.characterize.publish import publish_characterization
+    from benchrun.characterize.qualification import Qualification
+    from benchrun.commands.demo import demo_signer
+    from benchrun.report.sign import read_attachment
+    from benchrun.report.verify import CHECK_MANIFEST, CHECK_REANALYSIS, verify_report
+
+    run_dir, cert = _char_run(demo, tmp_path)
+    honest = Qualification.to_dict
+    changed: list[str] = []
+
+    def tampered(self):
+        data = honest(self)
+        device = data["devices"][0]
+        assert device["worst_case"]["outcome"] == "non-conforming"
+        device["worst_case"]["outcome"] = "conforming"
+        device["verdict"] = "conforming"
+        changed.append(device["serial"])
+        return data
+
+    monkeypatch.setattr(Qualification, "to_dict", tampered)
+    signer, _, _ = demo_signer(cert.parent)
+    publish_characterization(run_dir, signer)
+    monkeypatch.undo()
+    pdf = run_dir / "characterization.pdf"
+    serial = changed[0]
+    attached = read_attachment(pdf.read_bytes())["qualification"]["devices"][0]
+    assert attached["serial"] == serial and attached["worst_case"]["outcome"] == "conforming"
+    result = verify_report(pdf, cert=cert)
+    assert all(result.check(n).ok for n in ("signature intact", "signer trusted",
+                                            CHECK_MANIFEST))
+    reanalysis = result.check(CHECK_REANALYSIS)
+    assert not reanalysis.ok and not result.ok
+    assert reanalysis.reason.startswith("shots agree; 2 qualification disagreement(s)")
+    assert (f"device {serial}: verdict reported 'conforming', regrading gives "
+            "'non-conforming'") in reanalysis.details
+    assert (f"device {serial} worst-case snappiness step: outcome reported 'conforming', "
+            "regrading gives 'non-conforming'") in reanalysis.details

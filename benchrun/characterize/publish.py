@@ -25,7 +25,7 @@ from benchrun.records import ShotResult
 from benchrun.runner.didt import DIDT_DEFINITION
 
 __all__ = ["CSV_NAME", "FITS_NAME", "PDF_NAME", "PublishedCharacterization", "flagged_lines",
-           "point_table", "publish_characterization"]
+           "grade_run_qualification", "point_table", "publish_characterization"]
 
 PDF_NAME = "characterization.pdf"
 CSV_NAME = "curves.csv"
@@ -115,17 +115,15 @@ def publish_characterization(run_dir: str | Path, signer: Any, *, title: str | N
     fits_path = write_sweep_fits_csv(shots, run_folder / FITS_NAME)
     didt = manifest.get("didt_control")
     not_fired = manifest.get("points_invalid") or {}
+    from benchrun.characterize.verify import verification_data
     from benchrun.config.sequence import load_sequence
-    from benchrun.runner.plan import expand_points, expand_with_specs
+    from benchrun.runner.plan import expand_points
 
     labels: dict[str, str] = {}
-    entry_labels: dict[int, str] = {}
     sequence_file = run_folder / "sequence.yaml"
     if sequence_file.is_file():
         labels = {str(p.index): p.label for p in expand_points(load_sequence(sequence_file))}
-        entry_labels = {p.index: spec.label or "" for p, spec
-                        in expand_with_specs(load_sequence(sequence_file))}
-    qualification = _qualification(run, shots, entry_labels)
+    qualification = grade_run_qualification(run, shots)
     part, lot = manifest.get("part", ""), manifest.get("lot", "")
     serials = sorted({s.serial for s in shots})
     temperatures = sorted({round(s.point.temperature_K - 273.15, 2) for s in shots})
@@ -147,14 +145,18 @@ def publish_characterization(run_dir: str | Path, signer: Any, *, title: str | N
         shots, run_folder / PDF_NAME, signer,
         title=title or f"{part} characterisation — lot {lot}",
         flagged=flagged_lines(shots, not_fired, labels), notes=notes,
-        conditions=point_table(shots, didt), qualification=qualification)
+        conditions=point_table(shots, didt), qualification=qualification,
+        verification=verification_data(run))
     return PublishedCharacterization(pdf, csv_path, trends, shots, fits_path, qualification)
 
 
-def _qualification(run: Any, shots: Sequence[ShotResult], entry_labels: dict[int, str]) -> Any:
-    """The run folder's limits and bench files applied to the run
-    (:func:`benchrun.characterize.qualification.grade_qualification`)."""
+def grade_run_qualification(run: Any, shots: Sequence[ShotResult]) -> Any:
+    """The run folder's limits and bench files applied to ``shots`` of ``run``
+    (:func:`benchrun.characterize.qualification.grade_qualification`; the points selected by
+    the labels of the run folder's sequence file).  Verification calls it again with the
+    re-analysed shots."""
     from benchrun.characterize.qualification import grade_qualification
+    from benchrun.characterize.verify import entry_labels_of
     from benchrun.config.bench import load_bench
     from benchrun.config.limits import load_limits
 
@@ -165,6 +167,8 @@ def _qualification(run: Any, shots: Sequence[ShotResult], entry_labels: dict[int
     source = "" if limits is None else (
         f"the run's {limits_path.name} ({limits.part}"
         + (f" rev {limits.revision}" if limits.revision else "") + ")")
-    return grade_qualification(shots, limits, bench, entry_labels=entry_labels,
+    sequence_path = getattr(run, "sequence_path", None)
+    return grade_qualification(shots, limits, bench,
+                               entry_labels=entry_labels_of(sequence_path),
                                analysis_options=run.manifest.get("analysis_options"),
                                limits_source=source)

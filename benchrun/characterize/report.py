@@ -264,12 +264,15 @@ def render_characterization(
     notes: Sequence[str] = (),
     conditions: Sequence[Sequence[str]] = (),
     qualification: Any = None,
+    verification: dict[str, Any] | None = None,
 ) -> tuple[Path, list[Trend]]:
     """Write the signed characterisation PDF; returns its path and the fitted trends.
     ``conditions``: an optional table (header row first) of the test points' requested
     and measured conditions, printed after the notes.  ``qualification``: the
     :class:`~benchrun.characterize.qualification.Qualification` of the run, shown after the
-    notes (section "Qualification verdicts") and attached as JSON."""
+    notes (section "Qualification verdicts") and attached as JSON.  ``verification``: more
+    entries of the attachment, what verification compares
+    (:func:`benchrun.characterize.verify.verification_data`: manifest, shot rows)."""
     from xml.sax.saxutils import escape
 
     from reportlab.lib import colors
@@ -352,6 +355,7 @@ def render_characterization(
     }
     if qualification is not None:
         attachment["qualification"] = qualification.to_dict()
+    attachment.update(verification or {})
     signed = sign_pdf_bytes(pdf, signer, box, attachment=attachment,
                             reason="Characterisation report approved")
     out = write_signed_pdf(out_pdf, signed)

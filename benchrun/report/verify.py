@@ -7,6 +7,9 @@ not even when the report file itself cannot be read.
 Signature checks follow DESIGN §7: pyhanko's ``intact`` and coverage decide integrity, its
 ``bottom_line`` (with the given certificate as the only trust root) decides trust; ``valid``
 alone is never relied upon. Validation uses pyhanko's async API inside one event loop.
+
+A lot report is checked by :mod:`benchrun.report.verify_lot`, a characterisation report by
+:mod:`benchrun.characterize.verify`.
 """
 
 from __future__ import annotations
@@ -159,6 +162,11 @@ def verify_report(pdf: str | Path, cert: str | Path | None = None,
         attachment = None
     if isinstance(attachment, dict) and attachment.get("kind") == "lot":
         return _verify_lot(pdf_path, raw, attachment, intact, trust, facts, store, runs)
+    if isinstance(attachment, dict) and attachment.get("kind") == "characterization":
+        from benchrun.characterize.verify import verify_characterization
+
+        return verify_characterization(pdf_path, attachment, intact, trust, facts,
+                                       Path(data) if data is not None else None, runs)
     run_dir = find_run_dir(pdf_path, Path(data) if data is not None else None)
     if run_dir is None and runs and isinstance(attachment, dict):
         from benchrun.store.lotdata import search_run_folder

@@ -22,16 +22,20 @@ CHECK_LOT = "the retest rule reproduces the lot"
 
 @dataclass(frozen=True)
 class Check:
-    """One verification check: its name, yes/no, the reason and supporting details."""
+    """One verification check: its name, yes/no, the reason and supporting details.
+
+    ``applicable`` False: the check does not apply to this kind of report (``ok`` is then
+    True and ``reason`` says why it does not apply)."""
 
     name: str
     ok: bool
     reason: str
     details: tuple[str, ...] = ()
+    applicable: bool = True
 
     def to_dict(self) -> dict[str, Any]:
         return {"name": self.name, "ok": self.ok, "reason": self.reason,
-                "details": list(self.details)}
+                "details": list(self.details), "applicable": self.applicable}
 
 
 @dataclass(frozen=True)
