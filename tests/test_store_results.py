@@ -293,3 +293,40 @@ def test_numpy_scalars_in_a_shot_are_stored_as_plain_numbers(store):
     (back,) = store.shots("R-0001")
     assert back.acquisition == {"adc_bits": 8, "sample_interval_s": 2e-10}
     assert type(back.acquisition["adc_bits"]) is int
+
+
+def test_creating_the_tables_of_a_new_postgresql_store_waits_for_the_schema_lock(postgres_url):
+    # two benches preparing a new shared store at once both found a table missing and both
+    # ran CREATE TABLE; the second failed with 'relation "runs" already exists' (seen under
+    # load in tests/test_multibench_ids.py). Table creation now holds a transaction-level
+    # advisory lock (PostgreSQL documentation, "Advisory Locks"): while another session
+    # holds it, a new store waits, and opens once it is released.
+    import threading
+
+    from benchrun.store.results import SCHEMA_LOCK_KEY
+
+    holder = sa.create_engine(postgres_url)
+    done = threading.Event()
+    errors: list[BaseException] = []
+
+    def open_store() -> None:
+        try:
+            with ResultsStore(postgres_url):
+                done.set()
+        except BaseException as exc:  # collected for the assertion
+            errors.append(exc)
+            done.set()
+
+    with holder.connect() as conn:
+        conn.exec_driver_sql(f"SELECT pg_advisory_lock({SCHEMA_LOCK_KEY})")
+        worker = threading.Thread(target=open_store)
+        worker.start()
+        assert not done.wait(1.0)  # waiting for the lock, tables not created yet
+        conn.exec_driver_sql(f"SELECT pg_advisory_unlock({SCHEMA_LOCK_KEY})")
+        assert done.wait(30.0)
+    worker.join(30)
+    holder.dispose()
+    assert errors == []
+    with ResultsStore(postgres_url) as store:
+        store.create_run("R-1", "DX-4417", "LT-0117")
+        assert [r.run_id for r in store.runs()] == ["R-1"]

@@ -125,6 +125,21 @@ def _sqlite_pragmas(durability: str) -> Any:
     return set_pragmas
 
 
+#: Key of the PostgreSQL advisory lock that serialises creating the tables of a new store.
+SCHEMA_LOCK_KEY = 0x62656E6368  # "bench"
+
+
+def _create_tables(engine: Engine) -> None:
+    """Create the tables that do not exist yet. On PostgreSQL under a transaction-level
+    advisory lock: two benches preparing a new shared store at the same moment would both
+    find a table missing and both create it, and the second ``CREATE TABLE`` fails
+    ("relation already exists"); with the lock the second waits, then finds the tables."""
+    with engine.begin() as conn:
+        if engine.dialect.name == "postgresql":
+            conn.exec_driver_sql(f"SELECT pg_advisory_xact_lock({SCHEMA_LOCK_KEY})")
+        metadata.create_all(conn)
+
+
 class ResultsStore:
     """Runs, shots and reports in a SQL database.
 
@@ -188,12 +203,7 @@ class ResultsStore:
         self._delete_pending = delete(shots_table).where(*identity(pending=True))
         if create:
             with self._errors(f"cannot prepare the results tables in {self.public_url}"):
-                try:
-                    metadata.create_all(engine)
-                except IntegrityError:
-                    # two benches creating the tables of a new shared database at the same
-                    # moment: the other one won; check again (no-op when the tables exist)
-                    metadata.create_all(engine)
+                _create_tables(engine)
                 add_missing_columns(engine)
                 self._migrated = True
 
