@@ -217,3 +217,26 @@ def test_store_older_than_the_live_tables(tmp_path):
     client = create_app(WebConfig(results=str(db), verify_in_background=False)).test_client()
     assert client.get("/live").status_code == 200
     assert client.get("/").status_code == 200
+
+
+def test_check_upload_shows_a_check_that_does_not_apply_as_n_a(web_site, monkeypatch):  # noqa: F811
+    # a characterisation report is not entered in the reports table: verify marks that
+    # check not applicable (benchrun.report.verify_checks.Check.applicable); the page must
+    # say "n/a", not "yes", and that every applicable check holds
+    from benchrun.report.verify_checks import Check, VerificationResult
+    from benchrun.web import verifying
+
+    def fake(pdf, cert=None, data=None):
+        return VerificationResult(str(pdf), (
+            Check("signature intact", True, "intact"),
+            Check("reports-table row", True, "not entered in the reports table",
+                  applicable=False)))
+
+    monkeypatch.setattr(verifying, "verify_report", fake)
+    client = _client(web_site.app(), "ada")
+    token = csrf_of(client, "/check")
+    text = client.post("/check", data={
+        "csrf": token, "report": (io.BytesIO(web_site.signed.pdf.read_bytes()), "c.pdf")},
+        content_type="multipart/form-data").get_data(as_text=True)
+    assert "VERIFIED: every applicable check holds." in text
+    assert '<li class="na"><span class="mark">n/a</span> <strong>reports-table row' in text

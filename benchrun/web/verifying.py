@@ -32,6 +32,8 @@ class CheckView:
     ok: bool
     reason: str
     details: tuple[str, ...]
+    #: False: the check does not apply to this kind of report (shown "n/a")
+    applicable: bool = True
 
 
 @dataclass(frozen=True)
@@ -48,7 +50,8 @@ class Outcome:
 
 def _outcome(result: Any, cert: Path | None) -> Outcome:
     return Outcome(bool(result.ok),
-                   tuple(CheckView(c.name, bool(c.ok), c.reason, tuple(c.details))
+                   tuple(CheckView(c.name, bool(c.ok), c.reason, tuple(c.details),
+                                   bool(getattr(c, "applicable", True)))
                          for c in result.checks),
                    result.report_id, dict(result.facts), cert.name if cert else None)
 
