@@ -13,7 +13,7 @@ from __future__ import annotations
 import json
 
 import pytest
-from test_runner_support import BENCH, crashing_on_call
+from test_runner_support import BENCH, Crash, crashing_on_call, write_didt_sweep
 
 from benchrun.config import load_bench, load_sequence
 from benchrun.report.manifest import build_manifest
@@ -25,27 +25,6 @@ from benchrun.store.results import ResultsStore
 from benchrun.store.rundata import load_run
 
 
-class Crash(BaseException):
-    """Stands for the process dying while a shot is being stored."""
-
-
-def _sequence(tmp_path):
-    path = tmp_path / "seq.yaml"
-    path.write_text(
-        "part: DX-4417\nlot: LT-0117\ndevices: [SN0117-001]\n"
-        "ratings: {vrrm: 1200 V, if_max: 30 A, tj_max: 150 degC}\n"
-        "sweeps:\n"
-        "  - {label: sweep, bus_voltage: 600 V, forward_current: [10 A, 20 A],"
-        " didt: [300 A/us, 600 A/us], temperatures: [25 degC], repeats: 2,"
-        " shot_spacing: 0.05 s}\n"
-        "tolerances: {forward_current: 5 %, didt: 20 %, reverse_voltage: 5 %, "
-        "temperature: 3 K}\n"
-        "thermal: {band: 1 K, dwell: 30 s, soak: 60 s, timeout: 1800 s, poll_interval: 2 s}\n"
-        "timing: {off_time: 3 us, second_pulse: 1 us, sample_interval: 1 ns}\n"
-        "expected: {irrm_fraction: 2.0}\n")
-    return path
-
-
 def _counts(run_dir):
     return json.loads((run_dir / "run.json").read_text())["counts"]
 
@@ -53,7 +32,7 @@ def _counts(run_dir):
 @pytest.mark.slow
 def test_resumed_run_counts_are_the_stores_rows_and_every_sessions_trim_shots(
         tmp_path, monkeypatch):
-    seq = _sequence(tmp_path)
+    seq = write_didt_sweep(tmp_path)
     out = tmp_path / "runs"
     outcomes = []
     on_disk: list[tuple[int, dict]] = []
@@ -231,21 +210,14 @@ def test_kill_9_leaves_the_sessions_counts_and_the_resume_adds_to_them(tmp_path)
     """A real ``kill -9`` (a subprocess held after its 5th analysed row, as in
     test_runner_resume.py): run.json keeps the killed session's counts (status ``running``,
     its trim shots); the resume's counts equal the store's rows and add its trim shots."""
-    import os
-    import signal
     import subprocess
 
-    from test_runner_resume import DEVICES, cli, start_and_wait
+    from test_runner_resume import DEVICES, cli, kill_9_after
     from test_runner_support import write_sequence
 
     seq = write_sequence(tmp_path, devices=DEVICES, temperatures="[25 degC]", repeats=2)
     out = tmp_path / "runs"
-    proc = start_and_wait(seq, out, shots=3)
-    assert proc.poll() is None, "the run ended before it could be killed"
-    os.kill(proc.pid, signal.SIGKILL)
-    proc.communicate(timeout=30)
-    assert proc.returncode == -signal.SIGKILL
-    run_dir = next(out.iterdir())
+    run_dir = kill_9_after(seq, out, shots=3)
     left = _counts(run_dir)
     killed = left["sessions"]
     assert [(e["session"], e["status"]) for e in killed] == [(0, "running")]

@@ -13,7 +13,7 @@ from __future__ import annotations
 import json
 
 import pytest
-from test_runner_support import BENCH, crashing_on_call
+from test_runner_support import BENCH, Crash, crashing_on_call, write_didt_sweep
 
 from benchrun.config import load_bench, load_sequence
 from benchrun.runner.didt_record import merge_didt_records, merge_points_invalid
@@ -24,34 +24,13 @@ from benchrun.store.results import ResultsStore
 from benchrun.store.rundata import load_run
 
 
-class Crash(BaseException):
-    """Stands for the process dying while a shot is being stored."""
-
-
-def _sequence(tmp_path):
-    path = tmp_path / "seq.yaml"
-    path.write_text(
-        "part: DX-4417\nlot: LT-0117\ndevices: [SN0117-001]\n"
-        "ratings: {vrrm: 1200 V, if_max: 30 A, tj_max: 150 degC}\n"
-        "sweeps:\n"
-        "  - {label: sweep, bus_voltage: 600 V, forward_current: [10 A, 20 A],"
-        " didt: [300 A/us, 600 A/us], temperatures: [25 degC], repeats: 2,"
-        " shot_spacing: 0.05 s}\n"
-        "tolerances: {forward_current: 5 %, didt: 20 %, reverse_voltage: 5 %, "
-        "temperature: 3 K}\n"
-        "thermal: {band: 1 K, dwell: 30 s, soak: 60 s, timeout: 1800 s, poll_interval: 2 s}\n"
-        "timing: {off_time: 3 us, second_pulse: 1 us, sample_interval: 1 ns}\n"
-        "expected: {irrm_fraction: 2.0}\n")
-    return path
-
-
 def _on_disk(run_dir):
     return json.loads((run_dir / "run.json").read_text())
 
 
 @pytest.mark.slow
 def test_resume_keeps_every_sessions_didt_record(tmp_path, monkeypatch):
-    seq = _sequence(tmp_path)
+    seq = write_didt_sweep(tmp_path)
     out = tmp_path / "runs"
     points = [p.index for p in expand_points(load_sequence(seq))]
     assert len(points) == 4

@@ -89,16 +89,22 @@ def start_and_wait(seq: Path, out: Path, shots: int) -> subprocess.Popen:
     return proc
 
 
-@pytest.mark.slow
-def test_kill_9_then_resume_loses_nothing_and_duplicates_nothing(tmp_path):
-    seq = write_sequence(tmp_path, devices=DEVICES, temperatures="[25 degC]", repeats=2)
-    out = tmp_path / "runs"
-    proc = start_and_wait(seq, out, shots=3)
+def kill_9_after(seq, out, shots: int) -> Path:
+    """Start ``benchrun run`` in its own process, kill -9 it once ``shots`` shots are
+    stored, and return its run folder."""
+    proc = start_and_wait(seq, out, shots=shots)
     assert proc.poll() is None, "the run ended before it could be killed"
     os.kill(proc.pid, signal.SIGKILL)
     proc.communicate(timeout=30)
     assert proc.returncode == -signal.SIGKILL
-    run_dir = next(out.iterdir())
+    return next(out.iterdir())
+
+
+@pytest.mark.slow
+def test_kill_9_then_resume_loses_nothing_and_duplicates_nothing(tmp_path):
+    seq = write_sequence(tmp_path, devices=DEVICES, temperatures="[25 degC]", repeats=2)
+    out = tmp_path / "runs"
+    run_dir = kill_9_after(seq, out, shots=3)
     killed = load_run(run_dir)
     before = {(s.serial, s.point.index, s.repeat, s.attempt): s
               for s in killed.shots + killed.pending}

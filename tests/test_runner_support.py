@@ -107,3 +107,25 @@ def run_until_crash(seq: Path, out: Path, sim, monkeypatch, owner, name: str, n:
     monkeypatch.setattr(owner, name, original)
     return RunOptions(out_dir=out, resume=True, sim_resources=sim.resources, clock=sim.clock,
                       ratings_lookup=sim.ratings, show_progress=False)
+
+
+class Crash(BaseException):
+    """Stands for the process dying while a shot is being stored."""
+
+
+def write_didt_sweep(folder: Path) -> Path:
+    """One device, a 2 × 2 sweep of IF and di/dt at 25 °C, two repeats (di/dt control)."""
+    path = folder / "seq.yaml"
+    path.write_text(
+        "part: DX-4417\nlot: LT-0117\ndevices: [SN0117-001]\n"
+        "ratings: {vrrm: 1200 V, if_max: 30 A, tj_max: 150 degC}\n"
+        "sweeps:\n"
+        "  - {label: sweep, bus_voltage: 600 V, forward_current: [10 A, 20 A],"
+        " didt: [300 A/us, 600 A/us], temperatures: [25 degC], repeats: 2,"
+        " shot_spacing: 0.05 s}\n"
+        "tolerances: {forward_current: 5 %, didt: 20 %, reverse_voltage: 5 %, "
+        "temperature: 3 K}\n"
+        "thermal: {band: 1 K, dwell: 30 s, soak: 60 s, timeout: 1800 s, poll_interval: 2 s}\n"
+        "timing: {off_time: 3 us, second_pulse: 1 us, sample_interval: 1 ns}\n"
+        "expected: {irrm_fraction: 2.0}\n")
+    return path
