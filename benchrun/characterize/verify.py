@@ -28,15 +28,14 @@ from typing import Any
 from benchrun.errors import BenchrunError
 from benchrun.records import json_safe
 from benchrun.report.verify_checks import (
-    CHECK_MANIFEST,
     CHECK_REANALYSIS,
     CHECK_REGISTRATION,
     Check,
     VerificationResult,
 )
 from benchrun.report.verify_reanalysis import (
+    compare_grade,
     reanalyse_shots,
-    same_number,
     shots_with_fresh_metrics,
 )
 
@@ -129,13 +128,7 @@ def compare_qualification(reported: dict[str, Any], regraded: dict[str, Any],
                     problems.append(f"{where} {metric}: graded only in the "
                                     f"{'regrade' if a is None else 'report'}")
                     continue
-                if a.get("outcome") != b.get("outcome"):
-                    problems.append(f"{where} {metric}: grade reported {a.get('outcome')!r}, "
-                                    f"regrading gives {b.get('outcome')!r}")
-                for field in ("value", "U", "lower", "upper"):
-                    if not same_number(a.get(field), b.get(field)):
-                        problems.append(f"{where} {metric}: {field} reported "
-                                        f"{a.get(field)!r}, regrading gives {b.get(field)!r}")
+                compare_grade(f"{where} {metric}", a, b, problems)
         for name in old_conditions:
             problems.append(f"device {serial} at {name}: in the report only")
 
@@ -194,23 +187,9 @@ def verify_characterization(pdf_path: Path, attachment: dict[str, Any], intact: 
                             trust: Check, facts: dict[str, Any], data: Path | None,
                             runs: Any = ()) -> VerificationResult:
     """The checks of a characterisation report (module docstring); never raises."""
-    from benchrun.report.verify import _guarded, _raw_note, _why
-    from benchrun.report.verify_data import find_run_dir, load_run_folder, manifest_check
+    from benchrun.report.verify import data_checks
 
-    run_dir = find_run_dir(pdf_path, data)
-    if run_dir is None and runs and attachment.get("run_id"):
-        from benchrun.store.lotdata import search_run_folder
-
-        run_dir = search_run_folder(str(attachment.get("run_id")), runs)
-    try:
-        run, load_error = load_run_folder(run_dir)
-    except Exception as exc:  # a damaged results store or run.json
-        run, load_error = None, f"cannot load the run from {run_dir}: {_why(exc)}"
-    manifest = _guarded(CHECK_MANIFEST,
-                        lambda: manifest_check(attachment, run, run_dir, load_error))
-    reanalysis = _guarded(CHECK_REANALYSIS,
-                          lambda: reanalysis_check(attachment, run, load_error))
-    manifest = _raw_note(manifest, reanalysis)
+    _, manifest, reanalysis = data_checks(pdf_path, attachment, data, runs, reanalysis_check)
     registration = Check(CHECK_REGISTRATION, True, NOT_REGISTERED, applicable=False)
     facts.update({k: attachment.get(k) for k in ("run_id", "part", "lot")})
     facts["kind"] = KIND

@@ -55,6 +55,26 @@ def _why(exc: BaseException) -> str:
     return text if isinstance(exc, BenchrunError) else f"{type(exc).__name__}: {text}"
 
 
+def data_checks(pdf_path: Path, attachment: Any, data: Path | None, runs: Any,
+                reanalyse: Any) -> tuple[Any, Check, Check]:
+    """``(run, manifest check, re-analysis check)`` of a one-run report: its run folder
+    found (``data``, beside the report, or under ``runs``), loaded, its manifest hashes
+    checked and ``reanalyse(attachment, run, load_error)`` run; never raises."""
+    run_dir = find_run_dir(pdf_path, data)
+    if run_dir is None and runs and isinstance(attachment, dict) and attachment.get("run_id"):
+        from benchrun.store.lotdata import search_run_folder
+
+        run_dir = search_run_folder(str(attachment.get("run_id")), runs)
+    try:
+        run, load_error = load_run_folder(run_dir)
+    except Exception as exc:  # a damaged results store or run.json
+        run, load_error = None, f"cannot load the run from {run_dir}: {_why(exc)}"
+    manifest = _guarded(CHECK_MANIFEST,
+                        lambda: manifest_check(attachment, run, run_dir, load_error))
+    reanalysis = _guarded(CHECK_REANALYSIS, lambda: reanalyse(attachment, run, load_error))
+    return run, _raw_note(manifest, reanalysis), reanalysis
+
+
 def _raw_note(manifest: Check, reanalysis: Check) -> Check:
     """When ``raw.h5``'s bytes changed but every shot still reads back with its stored
     content hash and re-analyses to the reported numbers, say so: the shot data are intact."""
@@ -167,20 +187,9 @@ def verify_report(pdf: str | Path, cert: str | Path | None = None,
 
         return verify_characterization(pdf_path, attachment, intact, trust, facts,
                                        Path(data) if data is not None else None, runs)
-    run_dir = find_run_dir(pdf_path, Path(data) if data is not None else None)
-    if run_dir is None and runs and isinstance(attachment, dict):
-        from benchrun.store.lotdata import search_run_folder
-
-        run_dir = search_run_folder(str(attachment.get("run_id")), runs)
-    try:
-        run, load_error = load_run_folder(run_dir)
-    except Exception as exc:  # a damaged results store or run.json
-        run, load_error = None, f"cannot load the run from {run_dir}: {_why(exc)}"
-    manifest = _guarded(CHECK_MANIFEST,
-                        lambda: manifest_check(attachment, run, run_dir, load_error))
-    reanalysis = _guarded(CHECK_REANALYSIS,
-                          lambda: reanalysis_check(attachment, run, load_error))
-    manifest = _raw_note(manifest, reanalysis)
+    run, manifest, reanalysis = data_checks(
+        pdf_path, attachment, Path(data) if data is not None else None, runs,
+        reanalysis_check)
     registration = _guarded(CHECK_REGISTRATION,
                             lambda: _registration(attachment, run, raw))
     report_id = attachment.get("report_id") if isinstance(attachment, dict) else None

@@ -107,6 +107,19 @@ def _reanalyse_shots(rows: list[dict[str, Any]], run: Any, options: dict[str, An
     return out
 
 
+def compare_grade(where: str, before: dict[str, Any], after: dict[str, Any],
+                  problems: list[str]) -> None:
+    """One metric's grade as reported (``before``) and regraded (``after``): outcome, value,
+    U and limits; each disagreement a line in ``problems``."""
+    if before.get("outcome") != after.get("outcome"):
+        problems.append(f"{where}: grade reported {before.get('outcome')!r}, regrading gives "
+                        f"{after.get('outcome')!r}")
+    for field in ("value", "U", "lower", "upper"):
+        if not same_number(before.get(field), after.get(field)):
+            problems.append(f"{where}: {field} reported {before.get(field)!r}, regrading "
+                            f"gives {after.get(field)!r}")
+
+
 def _compare_grades(reported: dict[str, Any], lot: Any, problems: list[str]) -> None:
     new = lot.to_dict()
     if reported.get("disposition") != new["disposition"]:
@@ -132,13 +145,7 @@ def _compare_grades(reported: dict[str, Any], lot: Any, problems: list[str]) -> 
             if before is None:
                 problems.append(f"{where}: not in the report")
                 continue
-            if before.get("outcome") != g.get("outcome"):
-                problems.append(f"{where}: grade reported {before.get('outcome')!r}, regrading "
-                                f"gives {g.get('outcome')!r}")
-            for field in ("value", "U", "lower", "upper"):
-                if not same_number(before.get(field), g.get(field)):
-                    problems.append(f"{where}: {field} reported {before.get(field)!r}, "
-                                    f"regrading gives {g.get(field)!r}")
+            compare_grade(where, before, g, problems)
         for key in old_grades:
             problems.append(f"device {serial} {key[0]} at {key[1]}: graded in the report only")
 
